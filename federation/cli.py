@@ -1,0 +1,276 @@
+"""`federation`: the coordinator's command line."""
+
+from __future__ import annotations
+
+import argparse
+from collections.abc import Sequence
+from pathlib import Path
+
+from federation.protocol import (
+    BundleError,
+    DocumentError,
+    KeyRing,
+    Request,
+    Schema,
+    ValidationToolError,
+    key_id,
+    load_bundle,
+    load_private_key,
+    load_public_key,
+    write_keypair,
+)
+from federation.protocol.bundle import split_bundle
+from federation.protocol.cli_support import print_json, run_cli, write_atomic
+
+from .analysis import analyze
+from .modelpack import model_format_for, pack_model
+from .store import Store
+from .study import issue_request
+
+
+def _read(path: Path, what: str) -> bytes:
+    try:
+        return Path(path).read_bytes()
+    except FileNotFoundError:
+        raise ValidationToolError(f"{path}: {what} not found") from None
+
+
+def cmd_keys_new(args: argparse.Namespace) -> int:
+    private, public = write_keypair(args.out, "coordinator")
+    print(f"wrote {private} (private, keep it secret) and {public} (give this to every site)")
+    print(f"key id: {key_id(load_public_key(public))}")
+    return 0
+
+
+def cmd_bundle_pack(args: argparse.Namespace) -> int:
+    schema_text = _read(args.schema, "schema file").decode("utf-8", errors="replace")
+    schema = Schema.from_toml(schema_text, str(args.schema))
+    model = _read(args.model, "model file")
+    thresholds = [args.threshold] if args.threshold is not None else None
+    data = pack_model(model, model_format_for(args.model), schema, load_private_key(args.sign), thresholds, args.name)
+    write_atomic(args.out, data)
+    print(f"wrote {args.out} (sha256 {load_bundle_hash(data)})")
+    return 0
+
+
+def load_bundle_hash(data: bytes) -> str:
+    from federation.protocol import sha256_hex
+
+    return sha256_hex(data)
+
+
+def cmd_bundle_show(args: argparse.Namespace) -> int:
+    data = _read(args.bundle, "bundle")
+    signer, _, _ = split_bundle(data, str(args.bundle))
+    if args.trust:
+        bundle = load_bundle(data, KeyRing.from_paths(args.trust), str(args.bundle))
+        verified = True
+    else:
+        # Our own file: show it, saying plainly that the signature was not checked.
+        public_ring = _self_ring_unverified(data, str(args.bundle))
+        bundle = load_bundle(data, public_ring, str(args.bundle)) if public_ring else None
+        verified = False
+    if bundle is None:
+        raise BundleError(f"{args.bundle}: give --trust COORDINATOR.pub to check and show it")
+    manifest = bundle.manifest.to_dict()
+    info = {
+        "file": str(args.bundle),
+        "sha256": bundle.sha256,
+        "signer_key_id": signer,
+        "signature_verified": verified,
+        "manifest": manifest,
+    }
+    if args.json:
+        print_json(info)
+        return 0
+    print(f"bundle      {args.bundle}")
+    print(f"sha256      {bundle.sha256}")
+    print(f"signed by   {signer} ({'verified' if verified else 'NOT verified: give --trust'})")
+    print(f"model       {bundle.manifest.model_format}, score = {bundle.manifest.score_kind}")
+    print(f"thresholds  {', '.join(str(t) for t in bundle.manifest.thresholds)} (positive when score >= threshold)")
+    print("inputs")
+    for feature in bundle.schema.features:
+        rule = (
+            "categories " + "/".join(feature.categories)
+            if feature.categories
+            else f"{feature.type} in [{feature.minimum}, {feature.maximum}]"
+        )
+        print(f"  {feature.name:<20} {rule}")
+    return 0
+
+
+def _self_ring_unverified(data: bytes, source: str) -> KeyRing | None:
+    """A ring that accepts the bundle's own signature, for showing a file without a pinned key."""
+    from federation.protocol.keys import verify as _verify  # noqa: F401 - kept explicit for readers
+
+    class _Accept(KeyRing):
+        def verify(self, signer_key_id: str, message: bytes, signature_b64: str, what: str) -> None:
+            return None
+
+    return _Accept({})
+
+
+def cmd_request_new(args: argparse.Namespace) -> int:
+    thresholds = tuple(_float_list(args.thresholds, "--thresholds")) if args.thresholds else ()
+    document = issue_request(
+        Store(args.store),
+        args.study_id,
+        _read(args.bundle, "bundle"),
+        load_private_key(args.sign),
+        thresholds,
+        args.request_id,
+    )
+    write_atomic(args.out, document)
+    request = Request.from_bytes(document, None, str(args.out))
+    print(f"wrote {args.out} (study {request.study_id}, request {request.request_id})")
+    return 0
+
+
+def _float_list(text: str, flag: str) -> list[float]:
+    try:
+        return [float(part) for part in text.split(",") if part.strip()]
+    except ValueError:
+        raise DocumentError(f"{flag}: must be comma-separated numbers") from None
+
+
+def cmd_enrol(args: argparse.Namespace) -> int:
+    kid = Store(args.store).enrol(args.site_id, _read(args.key, "site public key"), str(args.key))
+    print(f"enrolled site {args.site_id} with release-signing key {kid}")
+    return 0
+
+
+def cmd_ingest(args: argparse.Namespace) -> int:
+    store = Store(args.store)
+    documents = [(_read(path, "release file"), str(path)) for path in args.releases]
+    releases = store.ingest(documents)
+    for release in releases:
+        print(f"ingested release of site {release.site_id} for request {release.request_id}")
+    return 0
+
+
+def cmd_analyze(args: argparse.Namespace) -> int:
+    result = analyze(Store(args.store), args.study_id)
+    if args.json:
+        print_json(result)
+    else:
+        print(format_table(result))
+    return 0
+
+
+def _fmt(value: dict | None) -> str:
+    if not value:
+        return "—"
+    return f"{value['estimate']:.3f} ({value['ci_low']:.3f}–{value['ci_high']:.3f})"
+
+
+def format_table(result: dict) -> str:
+    lines = [f"Study {result['study_id']}", ""]
+    header = (
+        f"{'site':<24}{'TP':>6}{'FP':>6}{'FN':>6}{'TN':>7}  {'sensitivity (95% CI)':<24}{'specificity (95% CI)':<24}"
+    )
+    lines += [header, "-" * len(header)]
+    for site in result["sites"]:
+        cells = "".join(
+            f"{('·' if site[c] is None else site[c]):>{6 if c != 'tn' else 7}}" for c in ("tp", "fp", "fn", "tn")
+        )
+        lines.append(f"{site['site_id']:<24}{cells}  {_fmt(site['sensitivity']):<24}{_fmt(site['specificity']):<24}")
+    pooled = result["pooled"]
+    lines.append("-" * len(header))
+    lines.append(f"{'pooled (random effects)':<49}{_fmt(pooled['sensitivity']):<24}{_fmt(pooled['specificity']):<24}")
+    if pooled.get("sensitivity"):
+        parts = [
+            f"tau² logit {name[:4]} {pooled[f'tau2_logit_{name}']:.3f}, I² {100 * pooled[f'i2_logit_{name}']:.1f}%"
+            for name in ("sensitivity", "specificity")
+        ]
+        lines.append("heterogeneity: " + "; ".join(parts))
+    else:
+        lines.append(pooled.get("note", ""))
+    for entry in pooled["sites_not_pooled"]:
+        lines.append(f"not pooled: {entry['site_id']} ({entry['reason']})")
+    lines.append("· = suppressed by the site's minimum cell size")
+    return "\n".join(lines)
+
+
+def cmd_demo(args: argparse.Namespace) -> int:
+    # The demo drives both sides of the invented consortium, so it lives in `simulations`.
+    from simulations.demo import run_demo
+
+    return run_demo(args.out, engine=args.engine, seed=args.seed)
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="federation",
+        description="Coordinator tools: sign a frozen model, issue study requests, enrol sites, "
+        "ingest their signed releases and pool the results.",
+    )
+    sub = parser.add_subparsers(title="commands", metavar="COMMAND")
+
+    keys = sub.add_parser("keys", help="coordinator signing keys").add_subparsers(metavar="ACTION")
+    p = keys.add_parser("new", help="make coordinator.key (private, mode 0600) and coordinator.pub")
+    p.add_argument("--out", type=Path, required=True, help="folder to write the key pair into")
+    p.set_defaults(handler=cmd_keys_new)
+
+    bundle = sub.add_parser("bundle", help="pack, sign and inspect model bundles").add_subparsers(metavar="ACTION")
+    p = bundle.add_parser("pack", help="pack a frozen model and its input schema into one signed file")
+    p.add_argument("--model", type=Path, required=True, help="model file: .onnx, or .json scorecard")
+    p.add_argument("--schema", type=Path, required=True, help="input schema (TOML, see docs/formats.md)")
+    p.add_argument("--threshold", type=float, help="screen-positive when score >= this (default 0.5 for probabilities)")
+    p.add_argument("--sign", type=Path, required=True, help="coordinator private key (coordinator.key)")
+    p.add_argument("--name", default="model", help="a short name for the model shown to sites")
+    p.add_argument("--out", type=Path, required=True, help="bundle file to write")
+    p.set_defaults(handler=cmd_bundle_pack)
+    p = bundle.add_parser("show", help="show what a bundle holds")
+    p.add_argument("bundle", type=Path)
+    p.add_argument("--trust", type=Path, action="append", help="coordinator public key to verify the signature with")
+    p.add_argument("--json", action="store_true", help="machine-readable output")
+    p.set_defaults(handler=cmd_bundle_show)
+
+    request = sub.add_parser("request", help="issue study requests").add_subparsers(metavar="ACTION")
+    p = request.add_parser("new", help="record and sign a request for the sites of a study")
+    p.add_argument("--store", type=Path, required=True, help="study store (SQLite file; created if missing)")
+    p.add_argument("--study-id", required=True, help="study identifier (letters, digits, . _ -)")
+    p.add_argument("--bundle", type=Path, required=True, help="the signed model bundle the sites will run")
+    p.add_argument("--sign", type=Path, required=True, help="coordinator private key")
+    p.add_argument("--thresholds", help="comma-separated thresholds (default: the bundle's)")
+    p.add_argument("--request-id", help="request identifier (default: a random one)")
+    p.add_argument("--out", type=Path, required=True, help="request file to write (send it to the sites)")
+    p.set_defaults(handler=cmd_request_new)
+
+    p = sub.add_parser("enrol", help="enrol a site's release-signing public key")
+    p.add_argument("--store", type=Path, required=True)
+    p.add_argument("--site-id", required=True)
+    p.add_argument("--key", type=Path, required=True, help="the site's site.pub")
+    p.set_defaults(handler=cmd_enrol)
+
+    p = sub.add_parser("ingest", help="verify and store signed releases (all or none)")
+    p.add_argument("--store", type=Path, required=True)
+    p.add_argument("releases", type=Path, nargs="+", help="release files from sites")
+    p.set_defaults(handler=cmd_ingest)
+
+    p = sub.add_parser("analyze", help="per-site and pooled accuracy from the stored releases")
+    p.add_argument("--store", type=Path, required=True)
+    p.add_argument("--study-id", help="which study (needed when the store holds several)")
+    p.add_argument("--json", action="store_true", help="JSON on stdout")
+    p.set_defaults(handler=cmd_analyze)
+
+    p = sub.add_parser("demo", help="run the invented demo consortium end to end")
+    p.add_argument("--out", type=Path, required=True, help="folder for the demo's data, sites, store and releases")
+    p.add_argument(
+        "--engine",
+        choices=("simulation", "inprocess", "offline"),
+        default="simulation",
+        help="simulation: Flower simulation engine (default); inprocess: Flower apps without Ray; "
+        "offline: the command-line path with release files",
+    )
+    p.add_argument("--seed", type=int, default=2026)
+    p.set_defaults(handler=cmd_demo)
+    return parser
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    return run_cli(build_parser(), argv, "federation")
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())

@@ -1,0 +1,174 @@
+"""The coordinator's study store (SQLite): bundles, requests issued, enrolled sites, ingested releases.
+
+Every write happens in one transaction, so a refused or failed ingest leaves the store as it was.
+"""
+
+from __future__ import annotations
+
+import sqlite3
+from collections.abc import Iterator
+from contextlib import contextmanager
+from dataclasses import dataclass
+from datetime import UTC, datetime
+from pathlib import Path
+
+from federation.protocol import (
+    IngestError,
+    KeyRing,
+    Release,
+    Request,
+    SignatureError,
+    ValidationToolError,
+    key_id,
+    sha256_hex,
+)
+from federation.protocol.keys import parse_public_key, public_pem
+
+SCHEMA = """
+CREATE TABLE IF NOT EXISTS bundles (
+    sha256 TEXT PRIMARY KEY, name TEXT NOT NULL, manifest TEXT NOT NULL, added_at TEXT NOT NULL);
+CREATE TABLE IF NOT EXISTS requests (
+    request_id TEXT PRIMARY KEY, study_id TEXT NOT NULL, bundle_sha256 TEXT NOT NULL,
+    document BLOB NOT NULL, issued_at TEXT NOT NULL);
+CREATE TABLE IF NOT EXISTS sites (
+    site_id TEXT PRIMARY KEY, key_id TEXT NOT NULL UNIQUE, public_key BLOB NOT NULL, enrolled_at TEXT NOT NULL);
+CREATE TABLE IF NOT EXISTS releases (
+    release_sha256 TEXT PRIMARY KEY, request_id TEXT NOT NULL REFERENCES requests(request_id),
+    study_id TEXT NOT NULL, site_id TEXT NOT NULL REFERENCES sites(site_id), document BLOB NOT NULL,
+    ingested_at TEXT NOT NULL, UNIQUE (request_id, site_id));
+"""
+
+
+def _now() -> str:
+    return datetime.now(UTC).replace(microsecond=0).isoformat()
+
+
+@dataclass(frozen=True)
+class StoredRelease:
+    release: Release
+    document: bytes
+
+
+class Store:
+    def __init__(self, path: Path) -> None:
+        self.path = Path(path)
+        try:
+            self._db = sqlite3.connect(self.path, isolation_level=None)
+            self._db.executescript(SCHEMA)
+        except sqlite3.DatabaseError:
+            raise ValidationToolError(f"{path}: not a study store (SQLite database)") from None
+
+    def close(self) -> None:
+        self._db.close()
+
+    @contextmanager
+    def transaction(self) -> Iterator[sqlite3.Connection]:
+        self._db.execute("BEGIN IMMEDIATE")
+        try:
+            yield self._db
+        except BaseException:
+            self._db.execute("ROLLBACK")
+            raise
+        self._db.execute("COMMIT")
+
+    # --- bundles and requests -------------------------------------------------------------------------
+    def add_bundle(self, sha256: str, name: str, manifest_json: str) -> None:
+        with self.transaction() as db:
+            db.execute("INSERT OR IGNORE INTO bundles VALUES (?, ?, ?, ?)", (sha256, name, manifest_json, _now()))
+
+    def add_request(self, request: Request, document: bytes) -> None:
+        with self.transaction() as db:
+            db.execute(
+                "INSERT INTO requests VALUES (?, ?, ?, ?, ?)",
+                (request.request_id, request.study_id, request.bundle_sha256, document, request.issued_at),
+            )
+
+    def request(self, request_id: str) -> Request | None:
+        row = self._db.execute("SELECT document FROM requests WHERE request_id = ?", (request_id,)).fetchone()
+        return Request.from_bytes(row[0], None, "stored request") if row else None
+
+    def studies(self) -> list[str]:
+        return [r[0] for r in self._db.execute("SELECT DISTINCT study_id FROM requests ORDER BY study_id")]
+
+    # --- sites ----------------------------------------------------------------------------------------
+    def enrol(self, site_id: str, public_key_pem: bytes, source: str) -> str:
+        key = parse_public_key(public_key_pem, source)
+        kid = key_id(key)
+        with self.transaction() as db:
+            row = db.execute("SELECT key_id FROM sites WHERE site_id = ?", (site_id,)).fetchone()
+            if row and row[0] != kid:
+                raise IngestError(f"site {site_id!r} is already enrolled with another key ({row[0]})")
+            other = db.execute("SELECT site_id FROM sites WHERE key_id = ?", (kid,)).fetchone()
+            if other and other[0] != site_id:
+                raise IngestError(f"{source}: this key is already enrolled for site {other[0]!r}")
+            db.execute("INSERT OR IGNORE INTO sites VALUES (?, ?, ?, ?)", (site_id, kid, public_pem(key), _now()))
+        return kid
+
+    def site_keys(self) -> dict[str, KeyRing]:
+        rings = {}
+        for site_id, pem in self._db.execute("SELECT site_id, public_key FROM sites"):
+            key = parse_public_key(pem, f"store key of {site_id}")
+            rings[site_id] = KeyRing({key_id(key): key})
+        return rings
+
+    def sites(self) -> list[str]:
+        return [r[0] for r in self._db.execute("SELECT site_id FROM sites ORDER BY site_id")]
+
+    # --- releases -------------------------------------------------------------------------------------
+    def check_release(self, data: bytes, source: str) -> Release:
+        """Everything ingest checks, without writing: structure, site key, request, bundle, duplicates."""
+        release = Release.from_bytes(data, source)
+        ring = self.site_keys().get(release.site_id)
+        if ring is None:
+            raise IngestError(f"{source}: site {release.site_id!r} is not enrolled in this store")
+        try:
+            release.verify(ring, source)
+        except SignatureError as exc:
+            raise IngestError(f"{exc} (not the key enrolled for site {release.site_id!r})") from None
+        request = self.request(release.request_id)
+        if request is None:
+            raise IngestError(f"{source}: answers request {release.request_id!r}, which this store did not issue")
+        if request.study_id != release.study_id:
+            raise IngestError(f"{source}: study id does not match request {release.request_id!r}")
+        if request.bundle_sha256 != release.bundle_sha256:
+            raise IngestError(f"{source}: bundle hash does not match the one request {release.request_id!r} named")
+        row = self._db.execute(
+            "SELECT release_sha256 FROM releases WHERE request_id = ? AND site_id = ?",
+            (release.request_id, release.site_id),
+        ).fetchone()
+        if row:
+            same = row[0] == sha256_hex(data)
+            raise IngestError(
+                f"{source}: site {release.site_id!r} already answered request {release.request_id!r}"
+                + (" (this release is already ingested)" if same else " (a replay or second answer is refused)")
+            )
+        return release
+
+    def ingest(self, documents: list[tuple[bytes, str]]) -> list[Release]:
+        """Ingest all documents or none: each is checked, then all are written in one transaction."""
+        seen: set[tuple[str, str]] = set()
+        checked = []
+        for data, source in documents:
+            release = self.check_release(data, source)
+            pair = (release.request_id, release.site_id)
+            if pair in seen:
+                raise IngestError(f"{source}: the same site answers the same request twice in this batch")
+            seen.add(pair)
+            checked.append((release, data))
+        with self.transaction() as db:
+            for release, data in checked:
+                db.execute(
+                    "INSERT INTO releases VALUES (?, ?, ?, ?, ?, ?)",
+                    (sha256_hex(data), release.request_id, release.study_id, release.site_id, data, _now()),
+                )
+        return [release for release, _ in checked]
+
+    def releases(self, study_id: str) -> list[StoredRelease]:
+        rows = self._db.execute(
+            "SELECT document FROM releases WHERE study_id = ? ORDER BY site_id, ingested_at", (study_id,)
+        )
+        return [StoredRelease(Release.from_bytes(doc, "stored release"), doc) for (doc,) in rows]
+
+    def answered(self, request_id: str) -> set[str]:
+        rows = self._db.execute("SELECT site_id FROM releases WHERE request_id = ?", (request_id,))
+        return {r[0] for r in rows}

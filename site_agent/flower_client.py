@@ -1,0 +1,76 @@
+"""Flower ClientApp: a thin adapter from a Flower message to :func:`site_agent.runner.run_request`.
+
+The message carries the request and the bundle as bytes; the reply carries the signed release as bytes,
+or a refusal reason (one of the agent's own messages, never a record value or a stack trace).
+
+Which site folder a node serves: ``node_config["site-dir"]`` in deployment
+(``flower-supernode --node-config 'site-dir="/srv/site"'``); in simulation the factory maps each virtual
+node's ``partition-id`` to a site folder.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from pathlib import Path
+
+from flwr.app import ConfigRecord, Context, Message, RecordDict
+from flwr.clientapp import ClientApp
+
+from federation.protocol import ValidationToolError
+
+from .config import load_site
+from .runner import run_request
+
+ACTION = "validate"
+MESSAGE_TYPE = f"query.{ACTION}"
+
+
+def _site_dir(context: Context, site_dirs: Sequence[Path] | None) -> Path:
+    if "site-dir" in context.node_config:
+        return Path(str(context.node_config["site-dir"]))
+    if site_dirs is not None and "partition-id" in context.node_config:
+        return Path(site_dirs[int(context.node_config["partition-id"])])
+    raise ValidationToolError("this node has no site folder (set node config site-dir)")
+
+
+def answer(message: Message, context: Context, site_dirs: Sequence[Path] | None = None) -> Message:
+    """Answer one validation request; every outcome is a normal reply the coordinator can record."""
+    try:
+        site = load_site(_site_dir(context, site_dirs))
+    except ValidationToolError as exc:
+        return _reply(message, {"status": "refused", "reason": str(exc), "site_id": ""})
+    except Exception as exc:  # the folder cannot even be read: say what kind of failure, nothing more
+        return _reply(message, {"status": "refused", "reason": f"internal error ({type(exc).__name__})", "site_id": ""})
+    try:
+        record = message.content.config_records["request"]
+        request_bytes, bundle_bytes = record["request"], record["bundle"]
+        if not isinstance(request_bytes, bytes) or not isinstance(bundle_bytes, bytes):
+            raise ValidationToolError("message: request and bundle must be bytes")
+    except (KeyError, TypeError):
+        return _reply(message, {"status": "refused", "reason": "message: no request in it", "site_id": site.site_id})
+    try:
+        outcome = run_request(site, request_bytes, bundle_bytes)
+    except ValidationToolError as exc:
+        return _reply(message, {"status": "refused", "reason": str(exc), "site_id": site.site_id})
+    except Exception as exc:  # recorded in the ledger by run_request; only the type travels
+        return _reply(
+            message, {"status": "refused", "reason": f"internal error ({type(exc).__name__})", "site_id": site.site_id}
+        )
+    return _reply(message, {"status": "released", "release": outcome.release_bytes, "site_id": site.site_id})
+
+
+def _reply(message: Message, fields: dict) -> Message:
+    return Message(RecordDict({"result": ConfigRecord(fields)}), reply_to=message)
+
+
+def make_client_app(site_dirs: Sequence[Path] | None = None) -> ClientApp:
+    client = ClientApp()
+
+    @client.query(ACTION)
+    def validate(message: Message, context: Context) -> Message:
+        return answer(message, context, site_dirs)
+
+    return client
+
+
+app = make_client_app()
