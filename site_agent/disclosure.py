@@ -13,18 +13,9 @@ from __future__ import annotations
 
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
+from typing import Any
 
-
-@dataclass(frozen=True)
-class Relation:
-    """``total`` equals the sum of ``parts`` (names of counts in the same release)."""
-
-    total: str
-    parts: tuple[str, ...]
-
-    @property
-    def members(self) -> tuple[str, ...]:
-        return (self.total, *self.parts)
+from .counts import CountSet, Relation
 
 
 def is_unsafe(count: int, min_cell_size: int, allow_zero: bool) -> bool:
@@ -59,3 +50,23 @@ def suppress(
             changed = True
     released = {name: (None if name in suppressed else value) for name, value in counts.items()}
     return released, frozenset(suppressed)
+
+
+@dataclass(frozen=True)
+class Protected:
+    """What disclosure control lets through: counts (None = suppressed) and derived statistics."""
+
+    released: dict[str, int | None]
+    suppressed: frozenset[str]
+    derived: dict[str, Any]
+
+    def facts(self, counts: CountSet) -> list[dict[str, Any]]:
+        """Definitions of every count, with the value only where it was released (for the audit)."""
+        return [{**counts.definitions[name].to_dict(), "value": self.released[name]} for name in sorted(counts.values)]
+
+
+def protect(counts: CountSet, policy: Any) -> Protected:
+    """Apply the site policy (``min_cell_size``, ``allow_zero``) to one analysis' counts."""
+    released, hidden = suppress(counts.values, counts.relations, policy.min_cell_size, policy.allow_zero)
+    derived = {name: value for name, (value, rests_on) in counts.derived.items() if not (rests_on & hidden)}
+    return Protected(released, hidden, derived)

@@ -8,7 +8,6 @@ synced) before it is written out or returned for sending; every refusal is in th
 
 from __future__ import annotations
 
-from collections import Counter
 from dataclasses import dataclass
 from datetime import UTC, datetime
 from pathlib import Path
@@ -27,11 +26,11 @@ from federation.protocol import (
 from federation.protocol.cli_support import write_atomic
 
 from . import ledger
+from .analyses import Flow, build_analyses
 from .config import Site
-from .data import DEFAULT_CHUNK_ROWS, EXCLUSION_REASONS, prepare_chunk, read_csv_chunks
-from .disclosure import Relation, suppress
+from .data import DEFAULT_CHUNK_ROWS, prepare_chunk, read_csv_chunks
+from .disclosure import protect
 from .mapping import default_mapping, load_mapping
-from .tables import ConfusionCounts
 
 
 @dataclass(frozen=True)
@@ -75,7 +74,7 @@ def run_request(
     )
     try:
         request, bundle = check_request(site, request_bytes, bundle_bytes)
-        release = _compute(
+        release, facts = _compute(
             site, request, bundle, data_path or site.data_path, mapping_path or site.mapping_path, chunk_rows
         )
     except Exception as exc:
@@ -100,6 +99,7 @@ def run_request(
             "request_id": signed.request_id,
             "release_sha256": sha256_hex(release_bytes),
             "release": release_bytes.decode("utf-8"),
+            "facts": facts,
         },
     )
     write_atomic(site.releases_dir / f"{signed.study_id}-{signed.request_id}.json", release_bytes)
@@ -113,63 +113,35 @@ def _compute(
     data_path: Path | None,
     mapping_path: Path | None,
     chunk_rows: int,
-) -> Release:
+) -> tuple[Release, list[dict]]:
+    """Return the unsigned release and the audit facts (definitions of what it shows and hides)."""
     if data_path is None:
         raise ValidationToolError("no data file: give --data or set [data].path in site.toml")
     schema = bundle.schema
     mapping = load_mapping(mapping_path, schema) if mapping_path else default_mapping(schema)
-    thresholds: list[float] = []
-    for analysis in request.analyses:
-        if analysis.name == "confusion":
-            thresholds.extend(analysis.thresholds or bundle.manifest.thresholds)
-    thresholds = sorted(set(thresholds))
     scorer = make_scorer(bundle)
-    confusion = ConfusionCounts(tuple(thresholds))
-    read, positives, negatives = 0, 0, 0
-    excluded: Counter[str] = Counter({reason: 0 for reason in EXCLUSION_REASONS})
+    flow = Flow()
+    analyses = build_analyses(request.analyses, bundle)
     for frame in read_csv_chunks(data_path, mapping.columns_needed(), chunk_rows):
         chunk = prepare_chunk(frame, schema, mapping, str(data_path))
-        read += chunk.read
-        excluded.update(chunk.excluded)
-        positives += int(chunk.outcome.sum())
-        negatives += len(chunk.outcome) - int(chunk.outcome.sum())
-        confusion.add(scorer.score(chunk.inputs), chunk.outcome)
-    counts = {
-        "flow.read": read,
-        "flow.analysed": positives + negatives,
-        "flow.analysed_positive": positives,
-        "flow.analysed_negative": negatives,
-        **{f"flow.excluded.{reason}": excluded[reason] for reason in EXCLUSION_REASONS},
-    }
-    relations = [
-        Relation("flow.read", ("flow.analysed", *(f"flow.excluded.{r}" for r in EXCLUSION_REASONS))),
-        Relation("flow.analysed", ("flow.analysed_positive", "flow.analysed_negative")),
-    ]
-    for i in range(len(thresholds)):
-        table = confusion.table(i)
-        counts.update({f"confusion[{i}].{cell}": value for cell, value in table.items()})
-        relations.append(Relation("flow.analysed_positive", (f"confusion[{i}].tp", f"confusion[{i}].fn")))
-        relations.append(Relation("flow.analysed_negative", (f"confusion[{i}].fp", f"confusion[{i}].tn")))
-    released, hidden = suppress(counts, relations, site.policy.min_cell_size, site.policy.allow_zero)
-    flow = {
-        "read": released["flow.read"],
-        "analysed": released["flow.analysed"],
-        "analysed_positive": released["flow.analysed_positive"],
-        "analysed_negative": released["flow.analysed_negative"],
-        "excluded": {reason: released[f"flow.excluded.{reason}"] for reason in EXCLUSION_REASONS},
-        "suppressed": sorted(name.removeprefix("flow.") for name in hidden if name.startswith("flow.")),
-    }
-    tables = []
-    for i, threshold in enumerate(thresholds):
-        cells = {cell: released[f"confusion[{i}].{cell}"] for cell in ("tp", "fp", "fn", "tn")}
-        tables.append(ConfusionTable(threshold, cells, tuple(c for c in ("tp", "fp", "fn", "tn") if cells[c] is None)))
-    return Release(
+        scores = scorer.score(chunk.inputs)
+        flow.add(chunk, scores)
+        for analysis in analyses:
+            analysis.add(chunk, scores)
+    counts = flow.counts()
+    for analysis in analyses:
+        counts.merge(analysis.counts())
+    protected = protect(counts, site.policy)
+    results = {a.name: a.render(protected.released, protected.derived) for a in analyses}
+    release = Release(
         study_id=request.study_id,
         request_id=request.request_id,
         bundle_sha256=bundle.sha256,
         site_id=site.site_id,
         created_at=datetime.now(UTC).replace(microsecond=0).isoformat(),
         policy=site.policy.release_statement(),
-        flow=flow,
-        confusion=tuple(tables),
+        flow=flow.render(protected.released, protected.derived),
+        confusion=tuple(ConfusionTable.from_dict(t, "release.results.confusion") for t in results.pop("confusion", [])),
+        extra=results,
     )
+    return release, protected.facts(counts)
