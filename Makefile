@@ -23,7 +23,7 @@ demo: $(STAMP)
 
 test: $(STAMP)
 	$(BIN)/ruff check federation site_agent simulations tests
-	$(BIN)/python -m pytest
+	$(BIN)/python -m pytest -q
 
 lint: $(STAMP)
 	$(BIN)/ruff check federation site_agent simulations tests

@@ -23,7 +23,7 @@ from pathlib import Path
 from federation.analysis import analyze
 from federation.cli import format_table
 from federation.flower_server import RoundConfig, SiteOutcome, make_server_app
-from federation.modelpack import bundle_from_sklearn
+from federation.modelpack import bundle_from_sklearn, onnx_from_sklearn
 from federation.protocol import Schema, load_private_key, write_keypair
 from federation.protocol.cli_support import write_atomic
 from federation.store import Store
@@ -66,6 +66,8 @@ def prepare_study(root: Path, seed: int = 2026, study_id: str = STUDY_ID) -> Dem
     schema = Schema.from_toml(consortium.schema_path.read_text(), str(consortium.schema_path))
     model = train_demo_model(consortium.development_path)
     bundle_bytes = bundle_from_sklearn(model, schema, private_key, threshold=0.5, name="tallowmere-demo-screen")
+    # The frozen model as a plain ONNX file too, so the README's by-hand sequence can pack it again.
+    write_atomic(coordinator / "model.onnx", onnx_from_sklearn(model, len(schema.features)))
     write_atomic(coordinator / "model.bundle", bundle_bytes)
     store_path = coordinator / "study.db"
     store = Store(store_path)

@@ -1,0 +1,84 @@
+"""Request and release documents: validated on parse, errors name the field."""
+
+from __future__ import annotations
+
+import json
+
+import pytest
+
+from federation.protocol import (
+    AnalysisSpec,
+    DocumentError,
+    KeyRing,
+    Release,
+    Request,
+    SignatureError,
+    key_id,
+    load_private_key,
+    write_keypair,
+)
+
+
+@pytest.fixture
+def key(tmp_path):
+    private_path, _ = write_keypair(tmp_path, "coordinator")
+    return load_private_key(private_path)
+
+
+def request_doc(key) -> dict:
+    request = Request("study-1", "req-1", "a" * 64, (AnalysisSpec("confusion", (0.4, 0.6)),), "2026-01-01T00:00:00")
+    return json.loads(request.signed_bytes(key))
+
+
+def ring(key) -> KeyRing:
+    return KeyRing({key_id(key.public_key()): key.public_key()})
+
+
+def test_request_round_trip(key):
+    doc = request_doc(key)
+    parsed = Request.from_bytes(json.dumps(doc).encode(), ring(key))
+    assert parsed.analyses[0].thresholds == (0.4, 0.6)
+    assert parsed.coordinator_key_id == key_id(key.public_key())
+
+
+@pytest.mark.parametrize(
+    "change, message",
+    [
+        (lambda d: d.update(version=2), "unsupported request version"),
+        (lambda d: d.pop("study_id"), "missing field 'study_id'"),
+        (lambda d: d.update(analyses="confusion"), "request.analyses: wrong type"),
+        (lambda d: d.update(analyses=[{"name": "everything"}]), "unknown analysis"),
+        (lambda d: d.update(request_id="../../etc"), "request.request_id: malformed identifier"),
+        (lambda d: d.update(kind="release"), "not a request document"),
+    ],
+)
+def test_request_errors_name_the_field(key, change, message):
+    doc = request_doc(key)
+    change(doc)
+    with pytest.raises(DocumentError, match=message.replace(".", r"\.").replace("(", r"\(")):
+        Request.from_bytes(json.dumps(doc).encode(), None)
+
+
+def test_request_edit_breaks_the_signature(key):
+    doc = request_doc(key)
+    doc["study_id"] = "study-2"
+    with pytest.raises(SignatureError, match="does not verify"):
+        Request.from_bytes(json.dumps(doc).encode(), ring(key))
+
+
+def test_deeply_nested_or_huge_documents_are_refused():
+    with pytest.raises(DocumentError, match="nested too deeply|not a JSON"):
+        Request.from_bytes(b"[" * 100_000 + b"]" * 100_000, None)
+    with pytest.raises(DocumentError, match="larger than"):
+        Release.from_bytes(b" " * (9 * 1024 * 1024), "release")
+
+
+def test_release_counts_must_be_counts(key):
+    release = Release("s", "r", "b" * 64, "site", "t", {"min_cell_size": 10}, {"read": 5}, ())
+    doc = json.loads(release.signed_bytes(key))
+    doc["results"]["confusion"] = [{"threshold": 0.5, "cells": {"tp": -1, "fp": 0, "fn": 0, "tn": 0}, "suppressed": []}]
+    with pytest.raises(DocumentError, match=r"cells\.tp: a count must be a non-negative integer"):
+        Release.from_bytes(json.dumps(doc).encode(), "release")
+    doc["results"]["confusion"][0]["cells"]["tp"] = None
+    with pytest.raises(DocumentError, match="must list exactly the cells that are null"):
+        Release.from_bytes(json.dumps(doc).encode(), "release")

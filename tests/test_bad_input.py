@@ -1,0 +1,219 @@
+"""Bad input at every door: one clear line, a non-zero exit, nothing half-written, no record value leaked."""
+
+from __future__ import annotations
+
+import json
+import sqlite3
+from pathlib import Path
+
+import pandas as pd
+import pytest
+
+from federation.cli import main as federation
+from federation.protocol import load_private_key, write_keypair
+from federation.protocol.bundle import pack_bundle
+from federation.protocol.schema import Schema
+from site_agent.cli import main as site_agent
+
+from . import breast_cancer
+from .test_offline_path import offline_round
+
+SECRET = "zz-secret-value-4711"  # a record value that must never appear in any message
+
+
+@pytest.fixture
+def study(tmp_path: Path) -> breast_cancer.Study:
+    return breast_cancer.build(tmp_path / "study")
+
+
+@pytest.fixture
+def ready(study, tmp_path):
+    """A request, a site folder and the coordinator store, before any site has run."""
+    store = tmp_path / "study.db"
+    request = tmp_path / "request.json"
+    args = ["request", "new", "--store", str(store), "--study-id", "bc-bad", "--bundle", str(study.bundle_path)]
+    assert federation([*args, "--sign", str(study.coordinator_key), "--out", str(request)]) == 0
+    site_dir = tmp_path / "site"
+    assert (
+        site_agent(["init", "--site-id", "site-a", "--trust", str(study.coordinator_pub), "--out", str(site_dir)]) == 0
+    )
+    return store, request, site_dir
+
+
+def one_error_line(capsys: pytest.CaptureFixture[str], prog: str) -> str:
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1, err
+    assert err[0].startswith(f"{prog}: error: ")
+    assert "Traceback" not in err[0]
+    return err[0]
+
+
+def run_site(study, request, site_dir, data, out, mapping=None, bundle=None) -> int:
+    args = ["run", "--site", str(site_dir), "--request", str(request), "--bundle", str(bundle or study.bundle_path)]
+    args += ["--data", str(data), "--out", str(out)]
+    if mapping:
+        args += ["--mapping", str(mapping)]
+    return site_agent(args)
+
+
+def ledger_events(site_dir: Path) -> list[dict]:
+    return [json.loads(line) for line in (site_dir / "ledger.jsonl").read_text().splitlines()]
+
+
+def test_tampered_bundle_byte_is_refused(study, ready, tmp_path, capsys):
+    _, request, site_dir = ready
+    data = bytearray(study.bundle_path.read_bytes())
+    data[-20] ^= 0x01  # one bit in the signed body
+    tampered = tmp_path / "tampered.bundle"
+    tampered.write_bytes(bytes(data))
+    out = tmp_path / "release.json"
+    assert run_site(study, request, site_dir, study.site_csvs[0], out, bundle=tampered) == 2
+    assert "signature does not verify" in one_error_line(capsys, "site-agent")
+    assert not out.exists()
+    events = ledger_events(site_dir)
+    assert [e["event"] for e in events] == ["request_received", "refusal"]
+    assert site_agent(["ledger", "verify", "--site", str(site_dir)]) == 0
+
+
+def test_bundle_signed_by_unpinned_key_is_refused(study, ready, tmp_path, capsys):
+    _, request, site_dir = ready
+    key, _ = write_keypair(tmp_path / "intruder", "coordinator")
+    schema = Schema.from_toml(study.schema_path.read_text(), "schema")
+    original = study.bundle_path.read_bytes()
+    model = json.loads(original.split(b"\n", 3)[3])
+    import base64
+
+    forged = pack_bundle(
+        model_bytes=base64.b64decode(model["model_b64"]),
+        model_format="onnx",
+        schema=schema,
+        score_kind="probability",
+        thresholds=[0.5],
+        private_key=load_private_key(key),
+    )
+    path = tmp_path / "forged.bundle"
+    path.write_bytes(forged)
+    out = tmp_path / "release.json"
+    assert run_site(study, request, site_dir, study.site_csvs[0], out, bundle=path) == 2
+    assert "not pinned here" in one_error_line(capsys, "site-agent")
+    assert not out.exists()
+
+
+def test_release_from_unenrolled_site_and_duplicate_ingest(study, tmp_path, capsys):
+    store, releases = offline_round(study, tmp_path, min_cell_size=10)
+    before = sqlite3.connect(store).execute("SELECT COUNT(*) FROM releases").fetchone()[0]
+    # The same release again: refused, store unchanged.
+    capsys.readouterr()
+    assert federation(["ingest", "--store", str(store), str(releases[0])]) == 2
+    assert "already answered" in one_error_line(capsys, "federation")
+    # A site that was never enrolled signs a release: refused.
+    stranger = tmp_path / "stranger"
+    assert (
+        site_agent(["init", "--site-id", "stranger", "--trust", str(study.coordinator_pub), "--out", str(stranger)])
+        == 0
+    )
+    out = tmp_path / "stranger.json"
+    assert run_site(study, tmp_path / "request.json", stranger, study.site_csvs[0], out) == 0
+    capsys.readouterr()
+    assert federation(["ingest", "--store", str(store), str(out)]) == 2
+    assert "not enrolled" in one_error_line(capsys, "federation")
+    # A release claiming an enrolled site but signed with another key: refused.
+    doc = json.loads(out.read_text())
+    doc["site_id"] = "site-0"
+    forged = tmp_path / "forged.json"
+    forged.write_text(json.dumps(doc))
+    assert federation(["ingest", "--store", str(store), str(forged)]) == 2
+    assert "not the key enrolled for site 'site-0'" in one_error_line(capsys, "federation")
+    # ... and naming the enrolled key's id does not help: the signature itself fails.
+    doc["site_key_id"] = json.loads(releases[0].read_text())["site_key_id"]
+    forged.write_text(json.dumps(doc))
+    assert federation(["ingest", "--store", str(store), str(forged)]) == 2
+    assert "signature does not verify" in one_error_line(capsys, "federation")
+    # A batch with one bad file ingests nothing (all or none).
+    assert federation(["ingest", "--store", str(store), str(out), str(releases[1])]) == 2
+    one_error_line(capsys, "federation")
+    after = sqlite3.connect(store).execute("SELECT COUNT(*) FROM releases").fetchone()[0]
+    assert after == before == breast_cancer.N_SITES
+
+
+def write_site_csv(study, tmp_path, change) -> Path:
+    frame = pd.read_csv(study.site_csvs[0], dtype=str)
+    change(frame)
+    path = tmp_path / "bad.csv"
+    frame.to_csv(path, index=False)
+    return path
+
+
+@pytest.mark.parametrize(
+    "case, change, expected",
+    [
+        ("missing mapped column", lambda f: f.pop("mean_radius"), "not in the file's header"),
+        (
+            "non-numeric answer",
+            lambda f: f.__setitem__("mean_texture", f["mean_texture"].where(f.index != 3, SECRET)),
+            "not a number",
+        ),
+        (
+            "outcome neither positive nor negative",
+            lambda f: f.__setitem__("outcome", f["outcome"].where(f.index != 5, SECRET)),
+            "neither positive nor negative",
+        ),
+    ],
+)
+def test_bad_data_is_one_line_and_leaks_no_value(study, ready, tmp_path, capsys, case, change, expected):
+    _, request, site_dir = ready
+    data = write_site_csv(study, tmp_path, change)
+    out = tmp_path / "release.json"
+    capsys.readouterr()
+    assert run_site(study, request, site_dir, data, out) == 1, case
+    line = one_error_line(capsys, "site-agent")
+    assert expected in line
+    assert SECRET not in line
+    assert not out.exists()
+    refusal = ledger_events(site_dir)[-1]
+    assert refusal["event"] == "refusal"
+    assert SECRET not in json.dumps(refusal)
+    assert not list((site_dir / "releases").iterdir())
+
+
+def test_out_of_range_values_are_excluded_and_counted(study, ready, tmp_path, capsys):
+    _, request, site_dir = ready
+    data = write_site_csv(
+        study, tmp_path, lambda f: f.__setitem__("mean_area", f["mean_area"].where(f.index >= 12, "-3"))
+    )
+    out = tmp_path / "release.json"
+    assert run_site(study, request, site_dir, data, out) == 0
+    flow = json.loads(out.read_text())["flow"]
+    assert flow["excluded"]["out_of_range"] == 12
+    assert flow["read"] == flow["analysed"] + 12
+
+
+def test_mapping_maps_local_names_and_codes(study, ready, tmp_path):
+    _, request, site_dir = ready
+    frame = pd.read_csv(study.site_csvs[0])
+    frame = frame.rename(columns={"mean_radius": "RADIUS", "outcome": "dx"})
+    frame["dx"] = frame["dx"].map({1: "malignant", 0: "benign"})
+    data = tmp_path / "local.csv"
+    frame.to_csv(data, index=False)
+    mapping = tmp_path / "mapping.toml"
+    mapping.write_text(
+        '[outcome]\ncolumn = "dx"\npositive = ["malignant"]\nnegative = ["benign"]\n\n'
+        '[features.mean_radius]\ncolumn = "RADIUS"\n'
+    )
+    out_mapped, out_plain = tmp_path / "mapped.json", tmp_path / "plain.json"
+    assert run_site(study, request, site_dir, data, out_mapped, mapping=mapping) == 0
+    other = tmp_path / "site2"
+    assert site_agent(["init", "--site-id", "site-b", "--trust", str(study.coordinator_pub), "--out", str(other)]) == 0
+    assert run_site(study, request, other, study.site_csvs[0], out_plain) == 0
+    mapped = json.loads(out_mapped.read_text())["results"]["confusion"]
+    plain = json.loads(out_plain.read_text())["results"]["confusion"]
+    assert mapped == plain
+
+
+def test_second_answer_to_the_same_request_is_refused_by_the_site(study, ready, tmp_path, capsys):
+    _, request, site_dir = ready
+    assert run_site(study, request, site_dir, study.site_csvs[0], tmp_path / "r1.json") == 0
+    capsys.readouterr()
+    assert run_site(study, request, site_dir, study.site_csvs[0], tmp_path / "r2.json") == 2
+    assert "already answered" in one_error_line(capsys, "site-agent")
+    assert not (tmp_path / "r2.json").exists()
