@@ -8,7 +8,8 @@ from datetime import UTC, datetime
 
 from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PrivateKey
 
-from federation.protocol import AnalysisSpec, KeyRing, Request, key_id, load_bundle
+from federation.protocol import AnalysisSpec, DocumentError, KeyRing, Request, key_id, load_bundle
+from federation.protocol.documents import ANALYSES, SubgroupSpec
 
 from .store import Store
 
@@ -20,20 +21,89 @@ def issue_request(
     private_key: Ed25519PrivateKey,
     thresholds: tuple[float, ...] = (),
     request_id: str | None = None,
+    analyses: tuple[AnalysisSpec, ...] | None = None,
+    compare_bundle_bytes: bytes | None = None,
 ) -> bytes:
-    """Sign a request for ``bundle_bytes`` and record the request (and the bundle) in ``store``."""
+    """Sign a request for ``bundle_bytes`` and record the request (and the bundle) in ``store``.
+
+    ``analyses`` default to one confusion table at ``thresholds``; a paired analysis names the SHA-256 of
+    ``compare_bundle_bytes``, which is verified and recorded too.
+    """
     public = private_key.public_key()
     ring = KeyRing({key_id(public): public})
     bundle = load_bundle(bundle_bytes, ring, "bundle")
+    specs = analyses if analyses is not None else (AnalysisSpec("confusion", thresholds),)
+    compare = load_bundle(compare_bundle_bytes, ring, "comparison bundle") if compare_bundle_bytes else None
+    for spec in specs:
+        if spec.name == "calibration" and bundle.manifest.score_kind != "probability":
+            raise DocumentError("--analyses calibration: the bundle's score is not a probability")
+        if spec.name == "margin" and not spec.bands and bundle.manifest.score_kind != "probability":
+            raise DocumentError("--analyses margin: a points model needs --margin-bands")
+        if spec.name == "paired" and (compare is None or compare.sha256 != spec.compare_bundle_sha256):
+            raise DocumentError("--compare: the paired analysis needs the comparison bundle it names")
+        for subgroup in spec.subgroups:
+            if subgroup.variable not in bundle.schema.names:
+                raise DocumentError(f"--subgroup {subgroup.variable}: not an input of the model's schema")
+            numeric = bundle.schema.feature(subgroup.variable).type != "category"
+            if numeric != bool(subgroup.edges):
+                raise DocumentError(
+                    f"--subgroup {subgroup.variable}: "
+                    + ("a numeric variable needs edges (VAR=EDGE,...)" if numeric else "a category takes no edges")
+                )
     request = Request(
         study_id=study_id,
         request_id=request_id or uuid.uuid4().hex,
         bundle_sha256=bundle.sha256,
-        analyses=(AnalysisSpec("confusion", thresholds),),
+        analyses=tuple(specs),
         issued_at=datetime.now(UTC).replace(microsecond=0).isoformat(),
     )
     document = request.signed_bytes(private_key)
     parsed = Request.from_bytes(document, ring, "request")  # validates ids and the signature we just made
     store.add_bundle(bundle.sha256, bundle.manifest.name, json.dumps(bundle.manifest.to_dict()))
+    if compare is not None:
+        store.add_bundle(compare.sha256, compare.manifest.name, json.dumps(compare.manifest.to_dict()))
     store.add_request(parsed, document)
     return document
+
+
+def analysis_specs(
+    names: list[str],
+    thresholds: tuple[float, ...] = (),
+    bands: tuple[float, ...] = (),
+    margin_bands: tuple[float, ...] = (),
+    calibration_bins: tuple[float, ...] = (),
+    subgroups: tuple[SubgroupSpec, ...] = (),
+    compare_sha256: str = "",
+) -> tuple[AnalysisSpec, ...]:
+    """The analysis specs `federation request new` builds from its flags (validated like a parsed request)."""
+    wanted = list(dict.fromkeys(names))
+    if subgroups and "subgroups" not in wanted:
+        wanted.append("subgroups")
+    if compare_sha256 and "paired" not in wanted:
+        wanted.append("paired")
+    unknown = [n for n in wanted if n not in ANALYSES]
+    if unknown:
+        raise DocumentError(f"--analyses: unknown analysis {unknown[0]!r} (known: {', '.join(ANALYSES)})")
+    if "subgroups" in wanted and not subgroups:
+        raise DocumentError("--analyses subgroups: name at least one --subgroup VAR")
+    if "paired" in wanted and not compare_sha256:
+        raise DocumentError("--analyses paired: give --compare OTHER.bundle")
+    specs = []
+    for name in wanted:
+        raw: dict = {"name": name}
+        if name in ("confusion", "margin", "agreement") and thresholds:
+            raw["thresholds"] = list(thresholds)
+        if name == "roc" and bands:
+            raw["bands"] = list(bands)
+        if name == "calibration" and calibration_bins:
+            raw["bands"] = list(calibration_bins)
+        if name == "margin" and margin_bands:
+            raw["bands"] = list(margin_bands)
+        if name == "subgroups":
+            raw["variables"] = [s.to_dict() for s in subgroups]
+        if name == "paired":
+            raw["compare_bundle_sha256"] = compare_sha256
+            if thresholds:
+                raw["thresholds"] = list(thresholds[:1])
+        specs.append(AnalysisSpec.from_dict(raw, f"--analyses {name}"))
+    return tuple(specs)

@@ -1,150 +1,258 @@
-"""Reading local records, mapping them to the schema and validating them, chunk by chunk.
+"""Mapping local records to the schema and validating them, chunk by chunk (columnar, no per-record loop).
 
 A record that breaks the schema is excluded and counted under exactly one reason (the first that applies,
 in the order of ``EXCLUSION_REASONS``); the run goes on. A problem with the file or the mapping as a whole
 (missing column, text in a numeric column, an outcome code the mapping does not list) stops the run with a
-:class:`DataValidationError` naming the file, the column and the rule. No message carries a record's value.
+:class:`DataValidationError` naming the source, the column and the rule. No message carries a record's value.
+
+Duplicates: when the mapping names an id column, the first record with a given id is kept (it may still be
+excluded for another reason) and every later record with the same id is excluded as ``duplicate_id``. Ids
+are remembered as 64-bit hashes (8 bytes each), so memory grows by 8 bytes per distinct id only when an id
+column is mapped; two different ids share a hash with probability about n²/2⁶⁵.
 """
 
 from __future__ import annotations
 
-import csv
 from collections import Counter
-from collections.abc import Iterator
-from dataclasses import dataclass, field
-from pathlib import Path
+from dataclasses import dataclass, field, replace
 
 import numpy as np
 import pandas as pd
+import pyarrow as pa
+import pyarrow.compute as pc
 
 from federation.protocol import DataValidationError, Feature, Schema
 
-from .mapping import FeatureMap, Mapping
+from .mapping import FeatureMap, Mapping, ReferenceMap
+from .sources import DEFAULT_CHUNK_ROWS, arrow_text
 
-EXCLUSION_REASONS = ("missing_outcome", "missing_feature", "out_of_range", "unknown_category")
-DEFAULT_CHUNK_ROWS = 200_000
+EXCLUSION_REASONS = ("duplicate_id", "missing_outcome", "missing_feature", "out_of_range", "unknown_category")
+
+__all__ = [
+    "DEFAULT_CHUNK_ROWS",
+    "EXCLUSION_REASONS",
+    "IdTracker",
+    "PreparedChunk",
+    "exclusion_reasons",
+    "prepare_chunk",
+]
+
+
+def exclusion_reasons(mapping: Mapping) -> tuple[str, ...]:
+    """The reasons a run can exclude for: ``duplicate_id`` only when an id column is mapped."""
+    return EXCLUSION_REASONS if mapping.id_column else tuple(r for r in EXCLUSION_REASONS if r != "duplicate_id")
 
 
 @dataclass
 class PreparedChunk:
-    inputs: np.ndarray  # float32 [analysed, n_features], categories as 0-based codes
+    """The analysed records of one chunk, and how many records the chunk read and excluded (by reason)."""
+
+    inputs: np.ndarray  # float32 [analysed, n_features] of the requested model, categories as 0-based codes
     outcome: np.ndarray  # int8 [analysed], 1 = condition present
     read: int
     excluded: Counter[str] = field(default_factory=Counter)
+    columns: dict[str, np.ndarray] = field(default_factory=dict)  # every schema feature as the models see it
+    reference2: np.ndarray | None = None  # int8: 1, 0, or -1 (missing); None when not mapped
+    compare_scores: np.ndarray | None = None  # the comparison model's scores (paired requests)
 
+    def __len__(self) -> int:
+        return len(self.outcome)
 
-def read_csv_chunks(path: Path, columns: list[str], chunk_rows: int = DEFAULT_CHUNK_ROWS) -> Iterator[pd.DataFrame]:
-    """Yield frames of text cells holding ``columns``; raise DataValidationError for unusable files."""
-    source = str(path)
-    try:
-        with open(path, "rb") as handle:
-            head = handle.read(65536)
-    except FileNotFoundError:
-        raise DataValidationError(f"{source}: data file not found") from None
-    except IsADirectoryError:
-        raise DataValidationError(f"{source}: is a folder, not a data file") from None
-    if not head.strip():
-        raise DataValidationError(f"{source}: the file is empty")
-    try:
-        header_line = head.decode("utf-8-sig").splitlines()[0]
-    except UnicodeDecodeError:
-        raise DataValidationError(f"{source}: not UTF-8 text (re-export the file as UTF-8)") from None
-    header = next(csv.reader([header_line]))
-    if len(header) == 1 and any(sep in header_line for sep in (";", "\t", "|")):
-        raise DataValidationError(f"{source}: the header has one column; the file must be comma-separated")
-    missing = [c for c in columns if c not in header]
-    if missing:
-        raise DataValidationError(f"{source}: column {missing[0]!r} named in the mapping is not in the file's header")
-    rows = 0
-    try:
-        reader = pd.read_csv(
-            path,
-            usecols=columns,
-            dtype=str,
-            keep_default_na=False,
-            na_filter=False,
-            chunksize=chunk_rows,
-            encoding="utf-8-sig",
+    def matrix(self, schema: Schema) -> np.ndarray:
+        """The float32 model-input matrix for ``schema`` (a second model may use other features)."""
+        if not schema.features:
+            return np.zeros((len(self), 0), dtype=np.float32)
+        return np.column_stack([self.columns[f.name] for f in schema.features]).astype(np.float32)
+
+    @classmethod
+    def concat(cls, chunks: list[PreparedChunk]) -> PreparedChunk:
+        """One chunk holding the analysed records of ``chunks`` in order; reads and exclusions are summed."""
+        if len(chunks) == 1:
+            return chunks[0]
+        excluded: Counter[str] = Counter()
+        for chunk in chunks:
+            excluded.update(chunk.excluded)
+        first = chunks[0]
+        return cls(
+            inputs=np.concatenate([c.inputs for c in chunks]),
+            outcome=np.concatenate([c.outcome for c in chunks]),
+            read=sum(c.read for c in chunks),
+            excluded=excluded,
+            columns={name: np.concatenate([c.columns[name] for c in chunks]) for name in first.columns},
+            reference2=None if first.reference2 is None else np.concatenate([c.reference2 for c in chunks]),
         )
-        for frame in reader:
-            rows += len(frame)
-            yield frame
-    except UnicodeDecodeError:
-        raise DataValidationError(f"{source}: not UTF-8 text (re-export the file as UTF-8)") from None
-    except pd.errors.ParserError:
-        raise DataValidationError(f"{source}: malformed CSV (a row has more fields than the header)") from None
-    if rows == 0:
-        raise DataValidationError(f"{source}: the file has a header but no records")
+
+    def split(self, rows: int) -> tuple[PreparedChunk, PreparedChunk]:
+        """The first ``rows`` analysed records (carrying this chunk's reads and exclusions), and the rest.
+
+        Both parts are views of this chunk's arrays (no copy)."""
+
+        def part(piece: slice, read: int, excluded: Counter[str]) -> PreparedChunk:
+            return PreparedChunk(
+                inputs=self.inputs[piece],
+                outcome=self.outcome[piece],
+                read=read,
+                excluded=excluded,
+                columns={name: values[piece] for name, values in self.columns.items()},
+                reference2=None if self.reference2 is None else self.reference2[piece],
+                compare_scores=None if self.compare_scores is None else self.compare_scores[piece],
+            )
+
+        return part(slice(None, rows), self.read, self.excluded), part(slice(rows, None), 0, Counter())
+
+    def subset(self, keep: np.ndarray) -> PreparedChunk:
+        """The analysed records where ``keep`` is true (``read`` and exclusions are not carried over)."""
+        return replace(
+            self,
+            inputs=self.inputs[keep],
+            outcome=self.outcome[keep],
+            read=0,
+            excluded=Counter(),
+            columns={name: values[keep] for name, values in self.columns.items()},
+            reference2=None if self.reference2 is None else self.reference2[keep],
+            compare_scores=None if self.compare_scores is None else self.compare_scores[keep],
+        )
 
 
-def prepare_chunk(frame: pd.DataFrame, schema: Schema, mapping: Mapping, source: str) -> PreparedChunk:
-    n = len(frame)
+class IdTracker:
+    """Remembers the ids seen so far (as sorted 64-bit hashes) to flag records that repeat one."""
+
+    def __init__(self) -> None:
+        self._seen = np.zeros(0, dtype=np.uint64)
+
+    def repeats(self, column: pa.Array, missing: frozenset[str]) -> np.ndarray:
+        """True for each record whose id was already seen in an earlier record; missing ids never repeat."""
+        text = arrow_text(column)
+        present = _present(text, missing)
+        keys = np.asarray(
+            pd.util.hash_array(np.asarray(text.fill_null("").to_numpy(zero_copy_only=False), dtype=object))
+        )
+        index = np.flatnonzero(present)
+        keys = keys[index]
+        repeat = np.zeros(len(text), dtype=bool)
+        if len(keys) == 0:
+            return repeat
+        order = np.argsort(keys, kind="stable")  # stable: the earliest record of a key comes first
+        ordered = keys[order]
+        later = np.zeros(len(keys), dtype=bool)
+        later[order[1:][ordered[1:] == ordered[:-1]]] = True
+        if len(self._seen):
+            position = np.clip(np.searchsorted(self._seen, keys), 0, len(self._seen) - 1)
+            later |= self._seen[position] == keys
+        repeat[index] = later
+        self._seen = np.union1d(self._seen, keys)
+        return repeat
+
+
+def _present(text: pa.Array, missing: frozenset[str]) -> np.ndarray:
+    absent = pc.or_(pc.is_null(text), pc.is_in(text, value_set=pa.array(sorted(missing), type=pa.string())))
+    return ~np.asarray(absent.fill_null(True).to_numpy(zero_copy_only=False), dtype=bool)
+
+
+def _bools(array: pa.Array) -> np.ndarray:
+    return np.asarray(array.fill_null(False).to_numpy(zero_copy_only=False), dtype=bool)
+
+
+def prepare_chunk(
+    batch: pa.RecordBatch | pa.Table,
+    schema: Schema,
+    mapping: Mapping,
+    source: str,
+    ids: IdTracker | None = None,
+    primary: Schema | None = None,
+) -> PreparedChunk:
+    """Map and validate one chunk against ``schema``; ``inputs`` follow ``primary`` (default ``schema``).
+
+    With two models (a paired comparison) ``schema`` holds the features of both, so a record is analysed
+    only if every input of either model is valid, and both models see the same records.
+    """
+    n = batch.num_rows
     reasons = {reason: np.zeros(n, dtype=bool) for reason in EXCLUSION_REASONS}
-    outcome = _outcome(frame[mapping.outcome_column], mapping, source, reasons)
-    columns = []
-    for feature in schema.features:
+    if mapping.id_column and ids is not None:
+        reasons["duplicate_id"] = ids.repeats(batch.column(mapping.id_column), mapping.missing)
+    outcome_map = ReferenceMap(mapping.outcome_column, mapping.positive, mapping.negative)
+    outcome = _reference(
+        batch.column(mapping.outcome_column), outcome_map, mapping.missing, source, "reference standard"
+    )
+    reasons["missing_outcome"] |= outcome < 0
+    reference2 = None
+    if mapping.reference2 is not None:
+        reference2 = _reference(
+            batch.column(mapping.reference2.column), mapping.reference2, mapping.missing, source, "second reference"
+        )
+    matrix = np.empty((n, len(schema.features)), dtype=np.float32)  # what the models see, one column a feature
+    for j, feature in enumerate(schema.features):
         fmap = mapping.features[feature.name]
-        columns.append(_feature(frame[fmap.column], feature, fmap, mapping, source, reasons))
+        matrix[:, j] = _feature(batch.column(fmap.column), feature, fmap, mapping, source, reasons)
     excluded = np.zeros(n, dtype=bool)
     counts: Counter[str] = Counter()
-    for reason in EXCLUSION_REASONS:  # first reason that applies wins
+    for reason in EXCLUSION_REASONS:  # the first reason that applies wins
         hit = reasons[reason] & ~excluded
         counts[reason] += int(hit.sum())
         excluded |= hit
     keep = ~excluded
-    inputs = np.column_stack(columns).astype(np.float32)[keep] if columns else np.zeros((int(keep.sum()), 0))
-    return PreparedChunk(inputs, outcome[keep].astype(np.int8), n, counts)
+    kept = matrix[keep] if excluded.any() else matrix
+    columns = {feature.name: kept[:, j] for j, feature in enumerate(schema.features)}
+    model = primary or schema
+    positions = [schema.names.index(name) for name in model.names]
+    if positions == list(range(len(schema.features))):
+        inputs = kept
+    else:
+        inputs = np.ascontiguousarray(kept[:, positions])
+    return PreparedChunk(
+        inputs=inputs,
+        outcome=outcome[keep].astype(np.int8),
+        read=n,
+        excluded=counts,
+        columns=columns,
+        reference2=None if reference2 is None else reference2[keep],
+    )
 
 
-def _outcome(raw: pd.Series, mapping: Mapping, source: str, reasons: dict[str, np.ndarray]) -> np.ndarray:
-    text = raw.str.strip()
-    missing = text.isin(mapping.missing).to_numpy()
-    positive = text.isin(mapping.positive).to_numpy()
-    negative = text.isin(mapping.negative).to_numpy()
-    if np.any(~(missing | positive | negative)):
+def _reference(column: pa.Array, ref: ReferenceMap, missing: frozenset[str], source: str, what: str) -> np.ndarray:
+    """1 (present), 0 (absent) or -1 (missing) per record; an unlisted value stops the run."""
+    text = arrow_text(column)
+    absent = ~_present(text, missing)
+    positive = _bools(pc.is_in(text, value_set=pa.array(sorted(ref.positive), type=pa.string())))
+    negative = _bools(pc.is_in(text, value_set=pa.array(sorted(ref.negative), type=pa.string())))
+    if np.any(~(absent | positive | negative)):
         raise DataValidationError(
-            f"{source}: column {mapping.outcome_column!r} (reference standard) holds values the mapping lists "
-            "as neither positive nor negative; add them to [outcome] positive/negative or to missing"
+            f"{source}: column {ref.column!r} ({what}) holds values the mapping lists as neither positive nor "
+            "negative; add them to the mapping's positive/negative lists or to missing"
         )
-    reasons["missing_outcome"] |= missing
-    return positive.astype(np.int8)
+    result = np.where(positive, 1, 0).astype(np.int8)
+    result[absent] = -1
+    return result
 
 
 def _feature(
-    raw: pd.Series,
+    column: pa.Array,
     feature: Feature,
     fmap: FeatureMap,
     mapping: Mapping,
     source: str,
     reasons: dict[str, np.ndarray],
 ) -> np.ndarray:
-    text = raw.str.strip()
-    missing = text.isin(mapping.missing).to_numpy()
-    if fmap.codes:
-        text = text.map(fmap.codes).fillna(text)
     where = f"{source}: column {fmap.column!r} (feature {feature.name})"
+    if isinstance(column, pa.ChunkedArray):
+        column = column.combine_chunks()
     if feature.type == "category":
-        lookup = {name: float(i) for i, name in enumerate(feature.categories)}
-        values = text.map(lookup).to_numpy(dtype=np.float64)
+        values, missing = _category(column, feature, fmap, mapping)
         reasons["unknown_category"] |= ~missing & np.isnan(values)
     else:
-        values = pd.to_numeric(text.where(~missing), errors="coerce").to_numpy(dtype=np.float64)
-        if np.any(~missing & np.isnan(values)):
-            raise DataValidationError(
-                f"{where}: holds text that is not a number; map the codes in the mapping file or fix the data"
-            )
+        values, missing = _number(column, fmap, mapping, where)
         values = values * fmap.multiply
         reasons["out_of_range"] |= ~missing & ~np.isfinite(values)
         if feature.type == "int":
             if fmap.multiply != 1.0:  # a unit conversion: round to the schema's whole unit
                 values = np.round(values)
-            bad = ~missing & (np.abs(values - np.round(values)) > 1e-9)
-            reasons["out_of_range"] |= bad
+            with np.errstate(invalid="ignore"):
+                reasons["out_of_range"] |= ~missing & (np.abs(values - np.round(values)) > 1e-9)
         low = feature.minimum if feature.minimum is not None else -np.inf
         high = feature.maximum if feature.maximum is not None else np.inf
         with np.errstate(invalid="ignore"):
             reasons["out_of_range"] |= ~missing & ((values < low) | (values > high))
-    if feature.missing_value is not None:
+    if feature.missing_value is not None:  # the schema's missing-answer policy: score as a stated value
         fill = (
             float(feature.categories.index(feature.missing_value))
             if feature.type == "category"
@@ -153,4 +261,71 @@ def _feature(
         values = np.where(missing, fill, values)
     else:
         reasons["missing_feature"] |= missing
-    return np.nan_to_num(values, nan=0.0)
+    return np.nan_to_num(values, nan=0.0, posinf=0.0, neginf=0.0)
+
+
+def _category(column: pa.Array, feature: Feature, fmap: FeatureMap, mapping: Mapping) -> tuple[np.ndarray, np.ndarray]:
+    """0-based category codes (NaN = unknown) and the missing mask; local codes are applied first."""
+    text = arrow_text(column)
+    missing = ~_present(text, mapping.missing)
+    keys = list(fmap.codes) + [c for c in feature.categories if c not in fmap.codes]
+    targets = [fmap.codes.get(k, k) for k in keys]
+    code_of = np.array([float(feature.categories.index(t)) for t in targets] + [np.nan])
+    position = pc.index_in(text, value_set=pa.array(keys, type=pa.string())).fill_null(len(keys))
+    values = code_of[np.asarray(position.to_numpy(zero_copy_only=False), dtype=np.int64)]
+    values[missing] = np.nan
+    return values, missing
+
+
+def _number(column: pa.Array, fmap: FeatureMap, mapping: Mapping, where: str) -> tuple[np.ndarray, np.ndarray]:
+    """Float64 values (NaN where missing) and the missing mask; text that is not a number stops the run."""
+    kind = column.type
+    numeric_missing = []
+    for spelling in mapping.missing:
+        try:
+            numeric_missing.append(float(spelling))
+        except ValueError:
+            continue
+    coded = np.zeros(len(column), dtype=bool)
+    coded_values = np.zeros(len(column))
+    if fmap.codes:
+        text = arrow_text(column)
+        keys = list(fmap.codes)
+        position = pc.index_in(text, value_set=pa.array(keys, type=pa.string()))
+        coded = _bools(pc.is_valid(position))
+        targets = np.array([float(fmap.codes[k]) for k in keys] + [np.nan])
+        coded_values = targets[np.asarray(position.fill_null(len(keys)).to_numpy(zero_copy_only=False), dtype=np.int64)]
+    if pa.types.is_dictionary(kind):
+        column = column.dictionary_decode()
+        kind = column.type
+    if pa.types.is_string(kind) or pa.types.is_large_string(kind):
+        text = pc.utf8_trim_whitespace(column).cast(pa.string())
+        missing = ~_present(text, mapping.missing) & ~coded  # an explicit code wins over a missing spelling
+        blank = pa.array(missing | coded)
+        try:
+            parsed = pc.cast(pc.if_else(blank, pa.scalar(None, pa.string()), text), pa.float64())
+        except (pa.ArrowInvalid, pa.ArrowNotImplementedError):
+            raise DataValidationError(
+                f"{where}: holds text that is not a number; map the codes in the mapping file or fix the data"
+            ) from None
+        values = np.asarray(parsed.to_numpy(zero_copy_only=False), dtype=np.float64)
+    elif pa.types.is_null(kind):
+        values = np.full(len(column), np.nan)
+        missing = np.ones(len(column), dtype=bool)
+    elif (
+        pa.types.is_integer(kind)
+        or pa.types.is_floating(kind)
+        or pa.types.is_decimal(kind)
+        or pa.types.is_boolean(kind)
+    ):
+        as_float = pc.cast(pc.cast(column, pa.int8()) if pa.types.is_boolean(kind) else column, pa.float64())
+        values = np.asarray(as_float.to_numpy(zero_copy_only=False), dtype=np.float64)  # nulls become NaN
+        missing = np.isnan(values)
+        if numeric_missing:
+            missing |= np.isin(values, numeric_missing)
+        missing &= ~coded
+    else:
+        raise DataValidationError(f"{where}: holds {kind} values, not numbers")
+    values = np.where(coded, coded_values, values)
+    values[missing] = np.nan
+    return values, missing

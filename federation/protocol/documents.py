@@ -8,6 +8,7 @@ other field.
 from __future__ import annotations
 
 import json
+import math
 import re
 from dataclasses import dataclass, field
 from typing import Any
@@ -20,11 +21,26 @@ from .keys import KeyRing, key_id, sign
 
 VERSION = 1
 MAX_DOCUMENT_BYTES = 8 * 1024 * 1024
-ANALYSES = ("confusion",)  # the closed vocabulary of analyses a request may name
+# The closed vocabulary of analyses a request may name, and the parameters each takes.
+ANALYSES = ("confusion", "roc", "calibration", "subgroups", "margin", "agreement", "paired")
+ANALYSIS_PARAMETERS = {
+    "confusion": ("thresholds",),
+    "roc": ("bands",),
+    "calibration": ("bands",),
+    "subgroups": ("variables",),
+    "margin": ("thresholds", "bands"),
+    "agreement": ("thresholds",),
+    "paired": ("thresholds", "compare_bundle_sha256"),
+}
+MAX_THRESHOLDS = 50
+MAX_BANDS = 100
+MAX_SUBGROUP_VARIABLES = 10
+MAX_SUBGROUP_EDGES = 50
 CELLS = ("tp", "fp", "fn", "tn")
 _ID = re.compile(r"^[A-Za-z0-9][A-Za-z0-9._-]{0,63}$")
 _HEX64 = re.compile(r"^[0-9a-f]{64}$")
 _KEY_ID = re.compile(r"^[0-9a-f]{16}$")
+_VARIABLE = re.compile(r"^[A-Za-z_][A-Za-z0-9_]{0,63}$")
 
 
 def parse_json(data: bytes, source: str) -> dict[str, Any]:
@@ -83,15 +99,71 @@ def _unsigned(doc: dict[str, Any]) -> dict[str, Any]:
     return {k: v for k, v in doc.items() if k != "signature"}
 
 
+def _numbers(raw: Any, where: str, limit: int, increasing: bool) -> tuple[float, ...]:
+    if not isinstance(raw, list) or len(raw) > limit:
+        raise DocumentError(f"{where}: must be a list of at most {limit} numbers")
+    values = []
+    for value in raw:
+        if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value):
+            raise DocumentError(f"{where}: must hold finite numbers only")
+        values.append(float(value))
+    if increasing and any(b <= a for a, b in zip(values, values[1:], strict=False)):
+        raise DocumentError(f"{where}: must be strictly increasing")
+    return tuple(values)
+
+
+@dataclass(frozen=True)
+class SubgroupSpec:
+    """A subgroup variable (a schema feature); ``edges`` cut a numeric one into bands low <= value < high."""
+
+    variable: str
+    edges: tuple[float, ...] = ()
+
+    def to_dict(self) -> dict[str, Any]:
+        out: dict[str, Any] = {"name": self.variable}
+        if self.edges:
+            out["edges"] = list(self.edges)
+        return out
+
+    @classmethod
+    def from_dict(cls, raw: Any, where: str) -> SubgroupSpec:
+        if not isinstance(raw, dict):
+            raise DocumentError(f"{where}: must be an object")
+        unknown = sorted(set(raw) - {"name", "edges"})
+        if unknown:
+            raise DocumentError(f"{where}: unknown field {str(unknown[0])[:40]!r} (allowed: name, edges)")
+        name = _get(raw, "name", str, where)
+        if not _VARIABLE.match(name):
+            raise DocumentError(f"{where}.name: must be a schema feature name")
+        edges = _numbers(raw.get("edges", []), f"{where}.edges", MAX_SUBGROUP_EDGES, increasing=True)
+        return cls(name, edges)
+
+
 @dataclass(frozen=True)
 class AnalysisSpec:
+    """One analysis a request names, with its parameters (see ``ANALYSIS_PARAMETERS``).
+
+    ``thresholds``: screen-positive when score >= threshold (default: the bundle's); ``bands``: strictly
+    increasing edges (ROC score bands, calibration risk bins, margin distances); ``subgroups``: the
+    variables of a ``subgroups`` analysis; ``compare_bundle_sha256``: the second bundle of ``paired``.
+    """
+
     name: str
     thresholds: tuple[float, ...] = ()
+    bands: tuple[float, ...] = ()
+    subgroups: tuple[SubgroupSpec, ...] = ()
+    compare_bundle_sha256: str = ""
 
     def to_dict(self) -> dict[str, Any]:
         out: dict[str, Any] = {"name": self.name}
         if self.thresholds:
             out["thresholds"] = list(self.thresholds)
+        if self.bands:
+            out["bands"] = list(self.bands)
+        if self.subgroups:
+            out["variables"] = [v.to_dict() for v in self.subgroups]
+        if self.compare_bundle_sha256:
+            out["compare_bundle_sha256"] = self.compare_bundle_sha256
         return out
 
     @classmethod
@@ -101,14 +173,30 @@ class AnalysisSpec:
         name = _get(raw, "name", str, where)
         if name not in ANALYSES:
             raise DocumentError(f"{where}.name: unknown analysis (known: {', '.join(ANALYSES)})")
-        thresholds = raw.get("thresholds", [])
-        if (
-            not isinstance(thresholds, list)
-            or len(thresholds) > 50
-            or not all(isinstance(t, (int, float)) and not isinstance(t, bool) for t in thresholds)
-        ):
-            raise DocumentError(f"{where}.thresholds: must be a list of at most 50 numbers")
-        return cls(name, tuple(float(t) for t in thresholds))
+        allowed = ANALYSIS_PARAMETERS[name]
+        unknown = sorted(set(raw) - {"name", *allowed})
+        if unknown:
+            raise DocumentError(
+                f"{where}: {name} takes no field {str(unknown[0])[:40]!r} (allowed: {', '.join(allowed) or 'none'})"
+            )
+        thresholds = _numbers(raw.get("thresholds", []), f"{where}.thresholds", MAX_THRESHOLDS, increasing=False)
+        bands = _numbers(raw.get("bands", []), f"{where}.bands", MAX_BANDS, increasing=True)
+        if name == "margin" and any(b <= 0 for b in bands):
+            raise DocumentError(f"{where}.bands: margin distances must be positive")
+        subgroups: tuple[SubgroupSpec, ...] = ()
+        if name == "subgroups":
+            variables = _get(raw, "variables", list, where)
+            if not 1 <= len(variables) <= MAX_SUBGROUP_VARIABLES:
+                raise DocumentError(f"{where}.variables: must name between 1 and {MAX_SUBGROUP_VARIABLES} variables")
+            subgroups = tuple(SubgroupSpec.from_dict(v, f"{where}.variables[{i}]") for i, v in enumerate(variables))
+            if len({v.variable for v in subgroups}) != len(subgroups):
+                raise DocumentError(f"{where}.variables: a variable is named twice")
+        compare = ""
+        if name == "paired":
+            compare = _identifier(raw, "compare_bundle_sha256", where, _HEX64)
+            if len(thresholds) > 2:
+                raise DocumentError(f"{where}.thresholds: paired takes at most two (this model's, the other's)")
+        return cls(name, thresholds, bands, subgroups, compare)
 
 
 @dataclass(frozen=True)
@@ -133,6 +221,11 @@ class Request:
             "coordinator_key_id": self.coordinator_key_id,
         }
 
+    @property
+    def compare_bundle_sha256(self) -> str:
+        """The second bundle of a paired comparison ("" when the request names none)."""
+        return next((a.compare_bundle_sha256 for a in self.analyses if a.name == "paired"), "")
+
     def signed_bytes(self, private_key: Ed25519PrivateKey) -> bytes:
         body = {**self.body(), "coordinator_key_id": key_id(private_key.public_key())}
         return json.dumps(_signed(body, private_key), indent=2, sort_keys=True).encode() + b"\n"
@@ -149,11 +242,15 @@ class Request:
         raw_analyses = _get(doc, "analyses", list, source)
         if not raw_analyses or len(raw_analyses) > 50:
             raise DocumentError(f"{source}.analyses: must name between 1 and 50 analyses")
+        analyses = tuple(AnalysisSpec.from_dict(a, f"{source}.analyses[{i}]") for i, a in enumerate(raw_analyses))
+        names = [a.name for a in analyses if a.name != "confusion"]  # several confusion specs add thresholds
+        if len(set(names)) != len(names):
+            raise DocumentError(f"{source}.analyses: an analysis other than confusion is named twice")
         return cls(
             study_id=_identifier(doc, "study_id", source),
             request_id=_identifier(doc, "request_id", source),
             bundle_sha256=_identifier(doc, "bundle_sha256", source, _HEX64),
-            analyses=tuple(AnalysisSpec.from_dict(a, f"{source}.analyses[{i}]") for i, a in enumerate(raw_analyses)),
+            analyses=analyses,
             issued_at=_get(doc, "issued_at", str, source)[:64],
             coordinator_key_id=signer,
             signature=signature,

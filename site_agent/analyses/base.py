@@ -10,6 +10,13 @@ from ..counts import CountSet
 from ..data import PreparedChunk
 
 
+class CellPolicy(Protocol):
+    """The part of the site policy an analysis needs to merge bands (site_agent.config.Policy has it)."""
+
+    min_cell_size: int
+    allow_zero: bool
+
+
 class LocalAnalysis(Protocol):
     """One analysis a request names. Accumulation is additive over chunks (memory stays flat)."""
 
@@ -17,7 +24,9 @@ class LocalAnalysis(Protocol):
 
     def add(self, chunk: PreparedChunk, scores: np.ndarray) -> None: ...
 
-    def counts(self) -> CountSet: ...
+    def counts(self, policy: CellPolicy) -> CountSet:
+        """Named counts with definitions; banded analyses merge bands first (site_agent.banding)."""
+        ...
 
     def render(self, released: dict[str, int | None], derived: dict[str, Any]) -> Any:
         """The JSON the release carries, from the counts and derived statistics that may be shown."""

@@ -8,6 +8,7 @@ import numpy as np
 
 from ..counts import ANALYSED, NEGATIVE, POSITIVE, Condition, CountSet
 from ..data import PreparedChunk
+from .base import CellPolicy
 
 CELLS = ("tp", "fp", "fn", "tn")
 
@@ -29,7 +30,7 @@ class Confusion:
             fp = int(np.count_nonzero(called & ~diseased))
             self.table[i] += (tp, fp, n_diseased - tp, n_healthy - fp)
 
-    def counts(self) -> CountSet:
+    def counts(self, policy: CellPolicy) -> CountSet:
         out = CountSet()
         for i, threshold in enumerate(self.thresholds):
             above = Condition("score", low=threshold, high=None)

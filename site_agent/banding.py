@@ -1,0 +1,210 @@
+"""Merging adjacent bands so that every count a release shows per band and class is 0 or at least k.
+
+ROC score bands, margin bands and calibration bins are cut at edges the request fixes. A band whose
+count of positives (or negatives) lies between 1 and k−1 would be suppressed by disclosure control, and
+a suppressed band loses its records for every later use; merging it with a neighbour keeps them, only
+coarser. So a banded analysis merges before it names its counts: :func:`merge_bands` finds the partition
+of the bands into runs of adjacent bands in which every per-class count is 0 (when the policy allows
+zeros) or at least ``min_cell_size``, with as many runs as possible (ties: the runs of most even size).
+If no such partition exists (a class has between 1 and k−1 records in all), everything becomes one band,
+which disclosure control then suppresses.
+
+The merge depends only on the counts, which never leave the site; the merged edges are released.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+
+
+@dataclass(frozen=True)
+class Band:
+    """A run of merged bands: ``low <= value < high`` (``None`` = unbounded), with its per-class counts."""
+
+    low: float | None
+    high: float | None
+    counts: tuple[int, ...]
+    first: int  # index of the first original band in the run
+    last: int  # index of the last original band in the run (inclusive)
+
+    @property
+    def merged(self) -> bool:
+        return self.last > self.first
+
+
+def intervals(edges: Sequence[float]) -> list[tuple[float | None, float | None]]:
+    """The bands cut by strictly increasing ``edges``: (−∞, e1), [e1, e2), ..., [em, ∞)."""
+    bounds: list[float | None] = [None, *[float(e) for e in edges], None]
+    return [(bounds[i], bounds[i + 1]) for i in range(len(bounds) - 1)]
+
+
+def is_safe(count: int, min_cell_size: int, allow_zero: bool) -> bool:
+    """A count may be shown: at least k, or exactly 0 when the policy allows zeros."""
+    return count >= min_cell_size or (count == 0 and allow_zero)
+
+
+def merge_bands(counts: np.ndarray, min_cell_size: int, allow_zero: bool = True) -> list[tuple[int, int]]:
+    """Partition bands (rows of ``counts``, one column per class) into runs ``[start, stop)``.
+
+    Dynamic programming over run ends, O(bands² × classes): maximise the number of runs in which every
+    column sum is safe, then minimise the sum of squared run sizes (records), so runs are as even as the
+    counts allow. Returns ``[(0, bands)]`` when no partition is safe.
+    """
+    table = np.asarray(counts, dtype=np.int64)
+    if table.ndim != 2 or table.shape[0] == 0:
+        raise ValueError("counts must be a non-empty bands × classes table")
+    bands = table.shape[0]
+    prefix = np.vstack([np.zeros((1, table.shape[1]), dtype=np.int64), np.cumsum(table, axis=0)])
+    best: list[tuple[int, float] | None] = [None] * (bands + 1)
+    start_of: list[int] = [-1] * (bands + 1)
+    best[0] = (0, 0.0)
+    for stop in range(1, bands + 1):
+        for start in range(stop):
+            before = best[start]
+            if before is None:
+                continue
+            sums = prefix[stop] - prefix[start]
+            if not all(is_safe(int(c), min_cell_size, allow_zero) for c in sums):
+                continue
+            size = float(sums.sum())
+            candidate = (before[0] + 1, before[1] - size * size)
+            current = best[stop]
+            if current is None or candidate > current:
+                best[stop] = candidate
+                start_of[stop] = start
+    if best[bands] is None:
+        return [(0, bands)]
+    runs = []
+    stop = bands
+    while stop > 0:
+        start = start_of[stop]
+        runs.append((start, stop))
+        stop = start
+    return runs[::-1]
+
+
+def merged_bands(edges: Sequence[float], counts: np.ndarray, min_cell_size: int, allow_zero: bool = True) -> list[Band]:
+    """The bands cut by ``edges`` with their per-class ``counts`` (bands × classes), merged to be safe."""
+    cuts = intervals(edges)
+    table = np.asarray(counts, dtype=np.int64)
+    if table.shape[0] != len(cuts):
+        raise ValueError("counts must have one row per band (len(edges) + 1)")
+    out = []
+    for start, stop in merge_bands(table, min_cell_size, allow_zero):
+        sums = table[start:stop].sum(axis=0)
+        out.append(Band(cuts[start][0], cuts[stop - 1][1], tuple(int(c) for c in sums), start, stop - 1))
+    return out
+
+
+def bands_at_cuts(edges: Sequence[float], counts: np.ndarray, cuts: frozenset[float]) -> list[Band]:
+    """Group the bands cut by ``edges`` into runs whose boundaries are the edges that are in ``cuts``."""
+    spans = intervals(edges)
+    table = np.asarray(counts, dtype=np.int64)
+    if table.shape[0] != len(spans):
+        raise ValueError("counts must have one row per band (len(edges) + 1)")
+    kept = [i for i, edge in enumerate(edges) if float(edge) in cuts]
+    starts = [0, *(i + 1 for i in kept)]
+    stops = [*(i + 1 for i in kept), len(spans)]
+    out = []
+    for start, stop in zip(starts, stops, strict=True):
+        sums = table[start:stop].sum(axis=0)
+        out.append(Band(spans[start][0], spans[stop - 1][1], tuple(int(c) for c in sums), start, stop - 1))
+    return out
+
+
+def _partition(
+    table: np.ndarray, edges: Sequence[float], forced: Sequence[float], min_cell_size: int, allow_zero: bool
+) -> set[float]:
+    """Which of ``edges`` (cutting ``table``'s rows) to keep: every forced edge, and the boundaries of the
+    finest safe partition of each stretch between forced edges (:func:`merge_bands`)."""
+    kept = {e for e in edges if e in forced}
+    forced_at = [i for i, edge in enumerate(edges) if edge in forced]
+    bounds = [0, *(i + 1 for i in forced_at), table.shape[0]]
+    for start, stop in zip(bounds, bounds[1:], strict=False):
+        if stop <= start:
+            continue
+        segment = table[start:stop]
+        # A class (or level) whose total in this stretch is itself unsafe is suppressed whatever the cuts;
+        # it must not stop the others from being cut finer.
+        usable = [c for c in range(segment.shape[1]) if is_safe(int(segment[:, c].sum()), min_cell_size, allow_zero)]
+        if not usable:
+            continue
+        for _, run_stop in merge_bands(segment[:, usable], min_cell_size, allow_zero):
+            if start + run_stop < table.shape[0]:
+                kept.add(edges[start + run_stop - 1])
+    return kept
+
+
+class ScoreAxis:
+    """The score cuts every banded analysis of one release shares.
+
+    Different analyses cut the score at different edges (ROC bands, calibration bins, margin bands) and
+    subgroups repeat them per level. If each merged its bands alone, the difference between two released
+    bands of different analyses could be a small count that no single band shows. So the release merges
+    once. The atoms are cut by the union of every requested edge, and the thresholds are forced cuts (a
+    2×2 table at the threshold is released anyway, so no band may span one):
+
+    - the overall cuts are the finest in which every run between cuts is safe for each class;
+    - each subgroup variable gets one set of cuts, a subset of the overall cuts, in which every run is
+      safe for each class in every level of that variable; all its levels share them, so a level's band
+      can never be had as "overall minus the other levels".
+
+    A class or level too small to be shown at all in a stretch between forced cuts does not constrain the
+    cuts: its cells are suppressed whatever the cuts. Each analysis then shows its own edges that are among
+    its scope's cuts; each of its bands is a union of safe runs, and so is every difference of its bands.
+
+    One analysis (the *feeder*) passes each chunk to :meth:`add`, so every record is counted once.
+    """
+
+    def __init__(
+        self,
+        edges: Sequence[float],
+        forced: Sequence[float] = (),
+        strata: Sequence[tuple[str, int, Callable[[Any], np.ndarray]]] = (),
+    ) -> None:
+        self.forced = tuple(sorted({float(t) for t in forced}))
+        self.edges = tuple(sorted({float(e) for e in edges} | set(self.forced)))
+        self.strata = list(strata)  # (variable, number of levels, chunk -> level index per record)
+        atoms = len(self.edges) + 1
+        self.overall = np.zeros((atoms, 2), dtype=np.int64)
+        self.levels = {name: np.zeros((n, atoms, 2), dtype=np.int64) for name, n, _ in self.strata}
+        self._feeder: object | None = None
+        self._cuts: dict[tuple[int, bool, str | None], frozenset[float]] = {}
+
+    def claim_feeder(self, analysis: object) -> bool:
+        """True for the first analysis that asks: that one passes every chunk to :meth:`add`."""
+        if self._feeder is None:
+            self._feeder = analysis
+        return self._feeder is analysis
+
+    def add(self, chunk: Any, scores: np.ndarray) -> None:
+        atom = np.searchsorted(np.asarray(self.edges, dtype=np.float64), scores, side="right")
+        cell = atom * 2 + np.where(np.asarray(chunk.outcome) == 1, 0, 1)
+        size = self.overall.size
+        self.overall += np.bincount(cell, minlength=size).reshape(self.overall.shape)
+        for name, levels, level_of in self.strata:
+            index = level_of(chunk).astype(np.int64) * size + cell
+            self.levels[name] += np.bincount(index, minlength=levels * size).reshape(self.levels[name].shape)
+
+    def cuts(self, min_cell_size: int, allow_zero: bool, scope: str | None = None) -> frozenset[float]:
+        """The surviving edges overall (``scope`` None) or for the levels of subgroup variable ``scope``."""
+        key = (min_cell_size, allow_zero, scope)
+        if key in self._cuts:
+            return self._cuts[key]
+        if scope is None:
+            kept = _partition(self.overall, self.edges, self.forced, min_cell_size, allow_zero)
+        else:
+            overall = sorted(self.cuts(min_cell_size, allow_zero))
+            # Runs of the overall cuts become the cells the variable's levels are merged over.
+            is_cut = np.array([edge in overall for edge in self.edges], dtype=np.int64)
+            run_of_atom = np.concatenate([[0], np.cumsum(is_cut)])
+            levels = self.levels[scope]
+            table = np.zeros((len(overall) + 1, levels.shape[0] * 2), dtype=np.int64)
+            np.add.at(table, run_of_atom, np.concatenate(list(levels), axis=1))
+            kept = _partition(table, overall, self.forced, min_cell_size, allow_zero)
+        self._cuts[key] = frozenset(kept)
+        return self._cuts[key]

@@ -1,0 +1,116 @@
+"""AUC (Mann–Whitney) and DeLong standard errors and covariance, against published and reference values."""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pytest
+from sklearn.metrics import roc_auc_score
+
+from site_agent.analyses import Paired, Roc
+from site_agent.analyses.histogram import ScoreHistogram, mann_whitney_delong
+
+from .conftest import Cancer
+from .helpers import Policy, feed
+
+# Hanley & McNeil (1982), Radiology 143:29-36, Table I: ratings 1 (definitely normal) .. 5 (definitely
+# abnormal) of 58 normal and 51 abnormal CT images.
+NORMAL = (33, 6, 6, 11, 2)
+ABNORMAL = (3, 2, 2, 11, 33)
+
+
+def rating_data() -> tuple[np.ndarray, np.ndarray]:
+    ratings = np.arange(1, 6, dtype=np.float64)
+    scores = np.concatenate([np.repeat(ratings, NORMAL), np.repeat(ratings, ABNORMAL)])
+    outcome = np.concatenate([np.zeros(sum(NORMAL), dtype=np.int64), np.ones(sum(ABNORMAL), dtype=np.int64)])
+    return scores, outcome
+
+
+def structural_components(positive: np.ndarray, negative: np.ndarray) -> tuple[float, float, np.ndarray, np.ndarray]:
+    """Independent check: DeLong et al. (1988) computed directly over all m×n pairs (O(mn)).
+
+    psi(x, y) = 1 if x > y, 1/2 if x = y, 0 otherwise; V10(x_i) = mean_j psi(x_i, y_j),
+    V01(y_j) = mean_i psi(x_i, y_j); Var = S10/m + S01/n with S the sample variances of V10 and V01.
+    """
+    psi = (positive[:, None] > negative[None, :]) + 0.5 * (positive[:, None] == negative[None, :])
+    v10, v01 = psi.mean(axis=1), psi.mean(axis=0)
+    auc = float(psi.mean())
+    variance = v10.var(ddof=1) / len(positive) + v01.var(ddof=1) / len(negative)
+    return auc, float(variance), v10, v01
+
+
+def test_hanley_mcneil_rating_data() -> None:
+    scores, outcome = rating_data()
+    roc = feed(Roc((1.5, 2.5, 3.5, 4.5)), scores, outcome, pieces=5)
+    counts = roc.counts(Policy(min_cell_size=1))
+    auc, se = counts.derived["roc.auc"][0], counts.derived["roc.auc_se"][0]
+    # Hanley & McNeil 1982, Table I: area 0.8932 (= 2642/2958, the Mann-Whitney statistic with ties 1/2).
+    assert auc == pytest.approx(2642 / 2958, abs=1e-12)
+    assert round(auc, 4) == 0.8932
+    assert auc == pytest.approx(roc_auc_score(outcome, scores), abs=1e-12)  # scikit-learn on the expanded data
+    reference_auc, variance, _, _ = structural_components(scores[outcome == 1], scores[outcome == 0])
+    assert reference_auc == pytest.approx(auc, abs=1e-12)
+    assert se == pytest.approx(math.sqrt(variance), abs=1e-12)
+    assert round(se, 4) == 0.0307  # DeLong SE as stated in the issue brief (0.0307), from the direct computation
+    # The released bands are Table I itself (k = 1: no merging needed).
+    released = {name: counts.values[name] for name in counts.values}
+    assert [released[f"roc.band[{j}].negative"] for j in range(5)] == list(NORMAL)
+    assert [released[f"roc.band[{j}].positive"] for j in range(5)] == list(ABNORMAL)
+
+
+def test_bands_merge_but_auc_stays_exact() -> None:
+    scores, outcome = rating_data()
+    roc = feed(Roc((1.5, 2.5, 3.5, 4.5)), scores, outcome)
+    counts = roc.counts(Policy(min_cell_size=10))
+    # Abnormal counts 3, 2, 2 in ratings 1-3 are below 10: merged with their neighbour until safe.
+    bands = [(b.low, b.high, b.counts) for b in roc.bands]
+    assert all(c == 0 or c >= 10 for _, _, pair in bands for c in pair)
+    assert sum(pair[0] for _, _, pair in bands) == 51 and sum(pair[1] for _, _, pair in bands) == 58
+    assert counts.derived["roc.auc"][0] == pytest.approx(2642 / 2958, abs=1e-12)
+
+
+def test_delong_on_breast_cancer_matches_direct_computation(cancer: Cancer) -> None:
+    roc = feed(Roc((0.5,)), cancer.scores, cancer.outcome, pieces=3)
+    derived = roc.counts(Policy()).derived
+    positive, negative = cancer.scores[cancer.outcome == 1], cancer.scores[cancer.outcome == 0]
+    auc, variance, _, _ = structural_components(positive, negative)
+    assert derived["roc.auc"][0] == pytest.approx(roc_auc_score(cancer.outcome, cancer.scores), abs=1e-12)
+    assert derived["roc.auc"][0] == pytest.approx(auc, abs=1e-12)
+    assert derived["roc.auc_se"][0] == pytest.approx(math.sqrt(variance), rel=1e-9)
+
+
+def test_paired_delong_covariance_matches_direct_computation(cancer: Cancer) -> None:
+    paired = feed(Paired(0.5, 0.5, "0" * 64), cancer.scores, cancer.outcome, pieces=4, compare=cancer.compare_scores)
+    derived = {name: value for name, (value, _) in paired.counts(Policy()).derived.items()}
+    diseased = cancer.outcome == 1
+    a = structural_components(cancer.scores[diseased], cancer.scores[~diseased])
+    b = structural_components(cancer.compare_scores[diseased], cancer.compare_scores[~diseased])
+    # DeLong et al. 1988, eq. for the covariance of two correlated AUCs: S10_ab/m + S01_ab/n.
+    s10 = np.cov(a[2], b[2], ddof=1)[0, 1]
+    s01 = np.cov(a[3], b[3], ddof=1)[0, 1]
+    covariance = s10 / diseased.sum() + s01 / (~diseased).sum()
+    assert derived["paired.auc_model"] == pytest.approx(a[0], abs=1e-12)
+    assert derived["paired.auc_compare"] == pytest.approx(b[0], abs=1e-12)
+    assert derived["paired.auc_covariance"] == pytest.approx(covariance, rel=1e-9)
+    assert derived["paired.auc_model_se"] == pytest.approx(math.sqrt(a[1]), rel=1e-9)
+    assert derived["paired.auc_difference_se"] == pytest.approx(math.sqrt(a[1] + b[1] - 2 * covariance), rel=1e-9)
+
+
+def test_histogram_coarsens_past_its_cap_and_says_so() -> None:
+    rng = np.random.default_rng(3)  # continuous scores with more distinct values than the cap
+    outcome = rng.integers(0, 2, 20_000)
+    scores = rng.normal(outcome * 1.0, 1.0)
+    histogram = ScoreHistogram(max_keys=1000)
+    for part in np.array_split(np.arange(len(outcome)), 10):
+        histogram.add(scores[part], outcome[part])
+    assert len(histogram.keys) <= 1000 and histogram.resolution is not None
+    assert histogram.n_positive == int(outcome.sum()) and histogram.n_negative == int((1 - outcome).sum())
+    result = mann_whitney_delong(histogram)
+    assert result is not None
+    assert result.auc == pytest.approx(roc_auc_score(outcome, scores), abs=2e-3)  # rounding to the grid only
+
+
+def test_one_class_only_gives_no_auc() -> None:
+    roc = feed(Roc((0.5,)), np.array([0.1, 0.7, 0.9]), np.array([1, 1, 1]))
+    assert "roc.auc" not in roc.counts(Policy()).derived
