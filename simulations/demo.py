@@ -28,6 +28,7 @@ from federation.protocol import Schema, load_private_key, write_keypair
 from federation.protocol.cli_support import write_atomic
 from federation.store import Store
 from federation.study import issue_request
+from site_agent.approval import record_sent
 from site_agent.config import init_site, load_site
 from site_agent.flower_client import make_client_app
 from site_agent.runner import run_request
@@ -91,6 +92,7 @@ def run_offline(study: DemoStudy) -> list[SiteOutcome]:
         result = run_request(site, study.request_bytes, study.bundle_bytes)
         path = study.root / "releases" / f"{site.site_id}.json"
         write_atomic(path, result.release_bytes)
+        record_sent(site, result.release_bytes, "file", path)
         files.append((result.release_bytes, str(path)))
         outcomes.append(SiteOutcome(index + 1, site.site_id, "released"))
     store = Store(study.store_path)
@@ -170,6 +172,11 @@ def run_demo(out: Path, engine: str = "simulation", seed: int = 2026) -> int:
     print(f"store:    {study.store_path}")
     print(f"request:  {study.root / 'coordinator' / 'request.json'}")
     print(f"sites:    {study.root / 'site-folders'} (each with its ledger and releases/)")
+    from federation.report import write_report  # imported here: matplotlib loads only when a report is drawn
+
+    report_path = study.root / "report.html"
+    write_report(study.store_path, report_path, STUDY_ID)
+    print(f"report:   {report_path} (open it in any browser; it fetches nothing)")
     print(f"finished in {time.monotonic() - started:.1f} s")
     print("Screening is not diagnosis; these figures do not replace clinical judgement, local regulation")
     print("or ethics approval. All data in this demo is invented.")

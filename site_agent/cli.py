@@ -11,7 +11,8 @@ from pathlib import Path
 from federation.protocol import ValidationToolError
 from federation.protocol.cli_support import print_json, run_cli, write_atomic
 
-from . import ledger
+from . import review
+from .approval import AwaitingApproval, record_sent
 from .config import init_site, load_site
 from .runner import run_request
 
@@ -34,16 +35,23 @@ def cmd_init(args: argparse.Namespace) -> int:
 
 
 def cmd_run(args: argparse.Namespace) -> int:
+    from .preview import source_from_args
+
     site = load_site(args.site)
-    outcome = run_request(
-        site,
-        _read(args.request, "request file"),
-        _read(args.bundle, "bundle file"),
-        args.data,
-        args.mapping,
-    )
+    try:
+        outcome = run_request(
+            site,
+            _read(args.request, "request file"),
+            _read(args.bundle, "bundle file"),
+            source_from_args(site, args.data, args.table, args.query),
+            args.mapping,
+            compare_bundle_bytes=_read(args.compare_bundle, "comparison bundle") if args.compare_bundle else None,
+        )
+    except AwaitingApproval as held:
+        return review.print_pending(held, args.site)
     release = outcome.release
     write_atomic(args.out, outcome.release_bytes)
+    record_sent(site, outcome.release_bytes, "file", args.out)
     if args.json:
         print_json(json.loads(outcome.release_bytes))
         return 0
@@ -55,23 +63,85 @@ def cmd_run(args: argparse.Namespace) -> int:
     return 0
 
 
-def cmd_ledger_verify(args: argparse.Namespace) -> int:
+def _add_data_arguments(p: argparse.ArgumentParser) -> None:
+    p.add_argument(
+        "--data",
+        help="local records: a CSV or Parquet file, or a database URL (sqlite:///..., postgresql+psycopg://...); "
+        "default: [data] in site.toml",
+    )
+    p.add_argument("--table", help="database table to read (with a database URL)")
+    p.add_argument("--query", help="one read-only SELECT to read (with a database URL)")
+    p.add_argument("--mapping", type=Path, help="mapping file (TOML); default: [data].mapping, else by name")
+    p.add_argument("--compare-bundle", type=Path, help="the second bundle of a paired request")
+
+
+def cmd_check(args: argparse.Namespace) -> int:
+    from .preview import check_report, format_check, source_from_args
+    from .runner import preview_request
+
     site = load_site(args.site)
-    count = ledger.verify_ledger(site.ledger_path, site.public_key())
-    print(f"{site.ledger_path}: {count} entries, chain and signatures intact")
+    preview = preview_request(
+        site,
+        _read(args.request, "request file"),
+        _read(args.bundle, "bundle file"),
+        source_from_args(site, args.data, args.table, args.query),
+        args.mapping,
+        compare_bundle_bytes=_read(args.compare_bundle, "comparison bundle") if args.compare_bundle else None,
+    )
+    if args.json:
+        print_json(check_report(preview))
+    else:
+        print(format_check(preview))
     return 0
 
 
-def cmd_ledger_show(args: argparse.Namespace) -> int:
-    site = load_site(args.site)
-    entries = ledger.read_entries(site.ledger_path)
+def cmd_map_suggest(args: argparse.Namespace) -> int:
+    from .preview import schema_for_suggest, source_from_args, write_suggestion
+
+    site = load_site(args.site) if args.site else None
+    schema = schema_for_suggest(site, args.bundle, args.schema)
+    source = source_from_args(None, args.data, args.table, args.query)
+    if args.rows < 1:
+        raise ValidationToolError("--rows: must be at least 1")
+    notes = write_suggestion(source, schema, args.out, args.rows)
+    print(f"wrote {args.out}: a proposed mapping. Check every line marked CONFIRM before using it.")
+    for note in notes:
+        print(f"  to do: {note}")
+    return 0
+
+
+cmd_ledger_verify = review.cmd_ledger_verify
+cmd_ledger_show = review.cmd_ledger_show
+
+
+def cmd_join(args: argparse.Namespace) -> int:
+    from .supernode import JoinSettings, run_join
+
+    settings = JoinSettings(
+        site_dir=args.site,
+        superlink=args.superlink,
+        root_certificates=args.root_certificates,
+        runtime_port=args.runtime_port,
+        max_restarts=args.max_restarts,
+        task_poll_s=args.task_poll,
+    )
+    return run_join(settings, lambda line: print(line, flush=True))
+
+
+def cmd_app_hash(args: argparse.Namespace) -> int:
+    from .launcher import build_app_bundle
+
+    content, digest = build_app_bundle()
+    if args.out:
+        write_atomic(args.out, content)
+    allowed = load_site(args.site).allowed_fab_sha256 if args.site else None
     if args.json:
-        print_json(entries)
+        print_json({"sha256": digest, "size": len(content), "allowed": None if allowed is None else digest in allowed})
         return 0
-    for entry in entries:
-        details = entry.get("details", {})
-        summary = {k: v for k, v in details.items() if k != "release"}
-        print(f"{entry.get('seq'):>4}  {entry.get('time')}  {entry.get('event'):<17} {json.dumps(summary)}")
+    print(digest)
+    if allowed is not None:
+        state = "listed" if digest in allowed else "NOT listed"
+        print(f"{state} in {args.site / 'site.toml'} [app] allowed_fab_sha256", file=sys.stderr)
     return 0
 
 
@@ -96,20 +166,59 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--site", type=Path, required=True, help="site folder (made by `site-agent init`)")
     p.add_argument("--request", type=Path, required=True, help="request file from the coordinator")
     p.add_argument("--bundle", type=Path, required=True, help="model bundle from the coordinator")
-    p.add_argument("--data", type=Path, help="local records (CSV); default: [data].path in site.toml")
-    p.add_argument("--mapping", type=Path, help="mapping file (TOML); default: [data].mapping, else by name")
+    _add_data_arguments(p)
     p.add_argument("--out", type=Path, required=True, help="release file to write (hand it to the coordinator)")
     p.add_argument("--json", action="store_true", help="print the release JSON on stdout")
     p.set_defaults(handler=cmd_run)
 
+    p = sub.add_parser("check", help="show what a request would release, without signing or sending anything")
+    p.add_argument("--site", type=Path, required=True, help="site folder (made by `site-agent init`)")
+    p.add_argument("--request", type=Path, required=True, help="request file from the coordinator")
+    p.add_argument("--bundle", type=Path, required=True, help="model bundle from the coordinator")
+    _add_data_arguments(p)
+    p.add_argument("--json", action="store_true", help="machine-readable output: the unsigned release and more")
+    p.set_defaults(handler=cmd_check)
+
+    mapping = sub.add_parser("map", help="mapping files: local columns and codes -> the model's inputs")
+    actions = mapping.add_subparsers(metavar="ACTION")
+    p = actions.add_parser("suggest", help="propose a mapping from the local columns, for a person to confirm")
+    p.add_argument("--data", required=True, help="local records: a CSV or Parquet file, or a database URL")
+    p.add_argument("--table", help="database table (with a database URL)")
+    p.add_argument("--query", help="one read-only SELECT (with a database URL)")
+    p.add_argument("--schema", type=Path, help="the model's input schema (TOML)")
+    p.add_argument("--bundle", type=Path, help="or the model bundle (its schema; verified with --site's keys)")
+    p.add_argument("--site", type=Path, help="site folder whose pinned keys verify --bundle")
+    p.add_argument("--rows", type=int, default=5000, help="how many records to look at (default 5000)")
+    p.add_argument("--out", type=Path, required=True, help="mapping file to write (never overwritten)")
+    p.set_defaults(handler=cmd_map_suggest)
+
+    p = sub.add_parser("join", help="join the coordinator's federation online (runs until stopped)")
+    p.add_argument("--superlink", required=True, help="the coordinator's SuperLink, HOST:PORT")
+    p.add_argument("--site", type=Path, required=True, help="site folder (made by `site-agent init`)")
+    p.add_argument("--root-certificates", type=Path, help="the coordinator's CA certificate (ca.crt)")
+    p.add_argument("--runtime-port", type=int, help="local port for the SuperNode's Runtime API (default: a free one)")
+    p.add_argument("--max-restarts", type=int, help="give up after this many SuperNode restarts (default: never)")
+    p.add_argument("--task-poll", type=float, help="seconds between the app runner's task polls (Flower: 1)")
+    p.set_defaults(handler=cmd_join)
+
+    app = sub.add_parser("app", help="the app bundle this site runs online").add_subparsers(metavar="ACTION")
+    p = app.add_parser("hash", help="build the app bundle from the installed agent and print its SHA-256")
+    p.add_argument("--site", type=Path, help="also say whether site.toml [app] allowed_fab_sha256 lists it")
+    p.add_argument("--out", type=Path, help="write the bundle (a zip holding only pyproject.toml) to review it")
+    p.add_argument("--json", action="store_true")
+    p.set_defaults(handler=cmd_app_hash)
+
     led = sub.add_parser("ledger", help="inspect and verify the site's ledger").add_subparsers(metavar="ACTION")
     p = led.add_parser("verify", help="check the hash chain and signatures; names the first bad line")
     p.add_argument("--site", type=Path, required=True)
+    p.add_argument("--public-key", type=Path, help="check against this copy of the site key (default: site.pub)")
     p.set_defaults(handler=cmd_ledger_verify)
     p = led.add_parser("show", help="list ledger entries")
     p.add_argument("--site", type=Path, required=True)
     p.add_argument("--json", action="store_true")
     p.set_defaults(handler=cmd_ledger_show)
+
+    review.add_commands(sub)  # review, approve, reject, release
     return parser
 
 

@@ -4,6 +4,7 @@ Layout made by ``site-agent init``::
 
     SITEDIR/site.toml          site id, disclosure policy, trusted coordinator keys, data location
     SITEDIR/site.key, site.pub the site's release-signing key pair (Ed25519; the private key is mode 0600)
+    SITEDIR/node.key, node.pub the site's node key for joining the coordinator's SuperLink (EC P-384, OpenSSH)
     SITEDIR/trusted/*.pub      coordinator public keys the site accepts requests and bundles from
     SITEDIR/ledger.jsonl       append-only, hash-chained, signed record of everything that happened
     SITEDIR/releases/          copies of every release written
@@ -14,7 +15,7 @@ from __future__ import annotations
 import re
 import shutil
 import tomllib
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import Any
 
@@ -31,7 +32,10 @@ from federation.protocol import (
 )
 from federation.protocol.documents import ANALYSES
 
+from .sources import SourceSpec
+
 _SITE_ID = re.compile(r"^[A-Za-z0-9][A-Za-z0-9._-]{0,63}$")
+_SHA256 = re.compile(r"^[0-9a-fA-F]{64}$")
 
 SITE_TOML = """\
 # Site configuration for the validation agent. This file is the site's disclosure policy: read it, change
@@ -50,6 +54,22 @@ allow_zero = true
 allowed_analyses = {analyses}
 # How many different requests of one study this site answers at most.
 max_requests_per_study = 20
+# Variables (schema features) a request may split results by in the subgroups analysis; a request naming
+# any other variable is refused.
+allowed_subgroups = ["age_months", "sex"]
+# Whether a person must approve each release before it leaves (`site-agent review`, then `approve` or
+# `reject`). While a release waits, nothing is sent and the coordinator is told it is pending.
+require_approval = false
+# Before anything leaves, the agent checks everything this site has released to the same study, taken
+# together: a hidden count must stay uncertain. This is how many different whole numbers must remain
+# possible for it (2 = it can never be worked out exactly; larger is stricter; 1 switches the check off).
+protection_width = 2
+
+[policy.min_band_width]
+# The narrowest band a request may ask for, per numeric variable, in the variable's own unit (for example
+# age_months = 6 refuses age bands narrower than six months; score = 0.05 for score bands). Variables not
+# listed may be banded as finely as a request asks; every band is still subject to min_cell_size.
+# age_months = 6
 
 [trust]
 # Coordinator public keys this site accepts requests and model bundles from (paths relative to this folder).
@@ -58,8 +78,18 @@ coordinator_keys = [{trusted}]
 [data]
 # Where the local records are and how their columns map to the model's inputs (used when the agent runs
 # online; `site-agent run --data/--mapping` override them). Paths relative to this folder, or absolute.
-# path = "data.csv"
+# path = "data.csv"                 # a CSV (.csv) or Parquet (.parquet) file
 # mapping = "mapping.toml"
+# Or a SQL database (read-only; instead of path): a SQLAlchemy URL and a table name or one SELECT.
+# A password is better kept out of this file (PGPASSWORD or ~/.pgpass for PostgreSQL).
+# url = "postgresql+psycopg://reader@dbhost/clinic"   # or "sqlite:///records.db"
+# table = "screening_export"
+# query = "SELECT * FROM screening_export WHERE visit = 1"
+
+[app]
+# SHA-256 of the app bundles (Flower FABs) this site agrees to run online; anything else is refused.
+# `site-agent app hash` prints the hash of the bundle built from the agent installed here.
+allowed_fab_sha256 = []
 """
 
 
@@ -69,6 +99,11 @@ class Policy:
     allow_zero: bool = True
     allowed_analyses: tuple[str, ...] = ANALYSES
     max_requests_per_study: int = 20
+    require_approval: bool = False
+    protection_width: int = 2
+    min_band_width: tuple[tuple[str, float], ...] = ()  # (variable, narrowest band), sorted by variable
+    trusted_coordinator_keys: tuple[str, ...] = ()  # key ids of [trust].coordinator_keys, sorted
+    allowed_subgroups: tuple[str, ...] = ("age_months", "sex")
 
     def to_dict(self) -> dict[str, Any]:
         return {
@@ -76,6 +111,11 @@ class Policy:
             "allow_zero": self.allow_zero,
             "allowed_analyses": list(self.allowed_analyses),
             "max_requests_per_study": self.max_requests_per_study,
+            "require_approval": self.require_approval,
+            "protection_width": self.protection_width,
+            "min_band_width": dict(self.min_band_width),
+            "trusted_coordinator_keys": list(self.trusted_coordinator_keys),
+            "allowed_subgroups": list(self.allowed_subgroups),
         }
 
     def release_statement(self) -> dict[str, Any]:
@@ -91,6 +131,23 @@ class Site:
     trusted: KeyRing
     data_path: Path | None
     mapping_path: Path | None
+    allowed_fab_sha256: tuple[str, ...] = ()
+    data_url: str | None = None  # a SQL source: SQLAlchemy URL with data_table or data_query
+    data_table: str | None = None
+    data_query: str | None = None
+
+    def source(self, data: Path | str | None = None) -> SourceSpec:
+        """Where records are read from: ``data`` (a path or URL given on the command line) or [data]."""
+        if data is not None:
+            text = str(data)
+            if "://" in text:
+                return SourceSpec(url=text, table=self.data_table, query=self.data_query)
+            return SourceSpec(path=Path(data))
+        if self.data_url is not None:
+            return SourceSpec(url=self.data_url, table=self.data_table, query=self.data_query)
+        if self.data_path is None:
+            raise ValidationToolError("no data: give --data or set [data].path or [data].url in site.toml")
+        return SourceSpec(path=self.data_path)
 
     @property
     def ledger_path(self) -> Path:
@@ -124,6 +181,9 @@ def init_site(out: Path, site_id: str, trusted_keys: list[Path]) -> Path:
         shutil.copyfile(path, target)
         pinned.append(f'"trusted/{target.name}"')
     write_keypair(out, "site")
+    from .supernode import write_node_key  # late import: supernode imports this module
+
+    write_node_key(out)
     analyses = "[" + ", ".join(f'"{a}"' for a in ANALYSES) + "]"
     (out / "site.toml").write_text(SITE_TOML.format(site_id=site_id, analyses=analyses, trusted=", ".join(pinned)))
     (out / "ledger.jsonl").touch()
@@ -147,12 +207,31 @@ def load_site(root: Path) -> Site:
     if not isinstance(keys, list) or not keys or not all(isinstance(k, str) for k in keys):
         raise DocumentError(f"{path}: [trust].coordinator_keys must list at least one key file")
     trusted = KeyRing.from_paths([_resolve(root, k) for k in keys])
+    policy = replace(policy, trusted_coordinator_keys=tuple(sorted(trusted.keys)))
     data = doc.get("data", {})
     if not isinstance(data, dict):
         raise DocumentError(f"{path}: [data] must be a table")
     data_path = _resolve(root, data["path"]) if isinstance(data.get("path"), str) else None
     mapping_path = _resolve(root, data["mapping"]) if isinstance(data.get("mapping"), str) else None
-    return Site(root, site_id, policy, trusted, data_path, mapping_path)
+    allowed = _allowed_fab_hashes(doc.get("app", {}), f"{path}: [app]")
+    sql = {key: data.get(key) for key in ("url", "table", "query")}
+    for key, value in sql.items():
+        if value is not None and (not isinstance(value, str) or not value.strip()):
+            raise DocumentError(f"{path}: [data].{key} must be text")
+    if sql["url"] is not None and (data_path is not None or (sql["table"] is None) == (sql["query"] is None)):
+        raise DocumentError(f"{path}: [data] with url needs exactly one of table or query, and no path")
+    return Site(
+        root, site_id, policy, trusted, data_path, mapping_path, allowed, sql["url"], sql["table"], sql["query"]
+    )
+
+
+def _allowed_fab_hashes(raw: Any, where: str) -> tuple[str, ...]:
+    if not isinstance(raw, dict):
+        raise DocumentError(f"{where} must be a table")
+    hashes = raw.get("allowed_fab_sha256", [])
+    if not isinstance(hashes, list) or not all(isinstance(h, str) and _SHA256.match(h) for h in hashes):
+        raise DocumentError(f"{where}.allowed_fab_sha256: must list SHA-256 hashes (64 hex digits)")
+    return tuple(h.lower() for h in hashes)
 
 
 def _resolve(root: Path, value: str) -> Path:
@@ -163,7 +242,16 @@ def _resolve(root: Path, value: str) -> Path:
 def _policy(raw: Any, where: str) -> Policy:
     if not isinstance(raw, dict):
         raise DocumentError(f"{where} must be a table")
-    known = {"min_cell_size", "allow_zero", "allowed_analyses", "max_requests_per_study"}
+    known = {
+        "min_cell_size",
+        "allow_zero",
+        "allowed_analyses",
+        "max_requests_per_study",
+        "require_approval",
+        "protection_width",
+        "min_band_width",
+        "allowed_subgroups",
+    }
     unknown = sorted(set(raw) - known)
     if unknown:
         raise DocumentError(f"{where}: unknown setting {unknown[0]!r}")
@@ -179,4 +267,27 @@ def _policy(raw: Any, where: str) -> Policy:
     max_requests = raw.get("max_requests_per_study", 20)
     if isinstance(max_requests, bool) or not isinstance(max_requests, int) or max_requests < 1:
         raise DocumentError(f"{where}.max_requests_per_study: must be a whole number of at least 1")
-    return Policy(k, allow_zero, tuple(analyses), max_requests)
+    require_approval = raw.get("require_approval", False)
+    if not isinstance(require_approval, bool):
+        raise DocumentError(f"{where}.require_approval: must be true or false")
+    width = raw.get("protection_width", 2)
+    if isinstance(width, bool) or not isinstance(width, int) or not 1 <= width <= 1000:
+        raise DocumentError(f"{where}.protection_width: must be a whole number from 1 to 1000")
+    bands = raw.get("min_band_width", {})
+    if not isinstance(bands, dict) or not all(
+        isinstance(v, (int, float)) and not isinstance(v, bool) and v > 0 for v in bands.values()
+    ):
+        raise DocumentError(f"{where}.min_band_width: must map variable names to positive numbers")
+    subgroups = raw.get("allowed_subgroups", ["age_months", "sex"])
+    if not isinstance(subgroups, list) or not all(isinstance(v, str) and v for v in subgroups):
+        raise DocumentError(f"{where}.allowed_subgroups: must list variable names (schema features)")
+    return Policy(
+        allowed_subgroups=tuple(subgroups),
+        min_cell_size=k,
+        allow_zero=allow_zero,
+        allowed_analyses=tuple(analyses),
+        max_requests_per_study=max_requests,
+        require_approval=require_approval,
+        protection_width=width,
+        min_band_width=tuple(sorted((str(name), float(v)) for name, v in bands.items())),
+    )

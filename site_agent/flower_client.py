@@ -18,6 +18,7 @@ from flwr.clientapp import ClientApp
 
 from federation.protocol import ValidationToolError
 
+from .approval import AwaitingApproval, record_sent
 from .config import load_site
 from .runner import run_request
 
@@ -44,19 +45,28 @@ def answer(message: Message, context: Context, site_dirs: Sequence[Path] | None 
     try:
         record = message.content.config_records["request"]
         request_bytes, bundle_bytes = record["request"], record["bundle"]
+        compare_bytes = record.get("compare_bundle")  # the second bundle of a paired request
         if not isinstance(request_bytes, bytes) or not isinstance(bundle_bytes, bytes):
             raise ValidationToolError("message: request and bundle must be bytes")
+        if compare_bytes is not None and not isinstance(compare_bytes, bytes):
+            raise ValidationToolError("message: the comparison bundle must be bytes")
     except (KeyError, TypeError):
         return _reply(message, {"status": "refused", "reason": "message: no request in it", "site_id": site.site_id})
+    except ValidationToolError as exc:
+        return _reply(message, {"status": "refused", "reason": str(exc), "site_id": site.site_id})
     try:
-        outcome = run_request(site, request_bytes, bundle_bytes)
+        outcome = run_request(site, request_bytes, bundle_bytes, compare_bundle_bytes=compare_bytes)
+    except AwaitingApproval as exc:  # held at the site until a person approves it; nothing was sent
+        return _reply(message, {"status": "pending", "reason": str(exc), "site_id": site.site_id})
     except ValidationToolError as exc:
         return _reply(message, {"status": "refused", "reason": str(exc), "site_id": site.site_id})
     except Exception as exc:  # recorded in the ledger by run_request; only the type travels
         return _reply(
             message, {"status": "refused", "reason": f"internal error ({type(exc).__name__})", "site_id": site.site_id}
         )
-    return _reply(message, {"status": "released", "release": outcome.release_bytes, "site_id": site.site_id})
+    reply = _reply(message, {"status": "released", "release": outcome.release_bytes, "site_id": site.site_id})
+    record_sent(site, outcome.release_bytes, "flower")  # handed to the node for delivery
+    return reply
 
 
 def _reply(message: Message, fields: dict) -> Message:

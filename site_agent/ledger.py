@@ -1,15 +1,30 @@
 """The site ledger: append-only JSON Lines, each entry hash-chained to the previous one and signed.
 
-Entry fields: ``seq`` (1, 2, ...), ``time``, ``event`` (``request_received``, ``refusal``, ``release``),
-``details``, ``prev`` (the previous entry's hash, or 64 zeros), ``hash`` (SHA-256 of the canonical JSON of
-the fields before it) and ``signature`` (the site key's Ed25519 signature of ``hash``). An entry is written
-and flushed to disk (fsync) before anything it records is sent.
+Entry fields: ``seq`` (1, 2, ...), ``time`` (UTC), ``event``, ``details``, ``prev`` (the previous entry's
+hash, or 64 zeros), ``hash`` (SHA-256 of the canonical JSON of the fields before it) and ``signature`` (the
+site key's Ed25519 signature of ``hash``). An entry is written and flushed to disk (fsync) before anything
+it records is sent, so a crash between the two leaves an entry that says what was about to leave.
+
+Events:
+
+``request_received``  a request arrived (its SHA-256 and the bundle's)
+``refusal``           the request was refused (the reason, as it was sent back)
+``preview``           a release was prepared and held for a person's approval (full text, audit facts, review)
+``approval``          a person approved a held release (who, when, the SHA-256 they approved)
+``rejection``         a person rejected a held release (who, when, why)
+``release``           a release is about to leave (full text and the audit facts of what it shows and hides)
+``sent``              the release was handed over (``via``: ``file`` with its path, or ``flower``)
+
+A ``release`` without a later ``sent`` for the same SHA-256 means the agent stopped between recording and
+handing over (a crash or an interrupted command): the release may or may not have reached the coordinator.
 """
 
 from __future__ import annotations
 
+import fcntl
 import json
 import os
+from collections.abc import Iterator
 from dataclasses import dataclass
 from datetime import UTC, datetime
 from pathlib import Path
@@ -17,10 +32,14 @@ from typing import Any
 
 from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PrivateKey, Ed25519PublicKey
 
-from federation.protocol import ValidationToolError, canonical_bytes, sha256_hex
+from federation.protocol import ValidationToolError, canonical_bytes, key_id, sha256_hex
 from federation.protocol.keys import sign, verify
 
+from .audit import ReleaseFacts
+
 GENESIS = "0" * 64
+EVENTS = ("request_received", "refusal", "preview", "approval", "rejection", "release", "sent")
+_FIELDS = ("seq", "time", "event", "details", "prev")
 
 
 class LedgerError(ValidationToolError):
@@ -42,70 +61,225 @@ def _entry_hash(fields: dict[str, Any]) -> str:
     return sha256_hex(canonical_bytes(fields))
 
 
+def _lines(path: Path) -> Iterator[tuple[int, bytes, bool]]:
+    """(line number, content, ended by a newline) for every line of the file."""
+    data = path.read_bytes()
+    lines = data.split(b"\n")
+    for number, line in enumerate(lines, start=1):
+        last = number == len(lines)
+        if last and line == b"":
+            return
+        yield number, line, not last
+
+
 def read_entries(path: Path) -> list[dict[str, Any]]:
+    """Every entry, in file order; raise LedgerError naming a line that is not a JSON entry."""
     if not path.exists():
         return []
     entries = []
-    with open(path, encoding="utf-8") as handle:
-        for number, line in enumerate(handle, start=1):
-            if not line.strip():
-                continue
-            try:
-                entries.append(json.loads(line))
-            except json.JSONDecodeError:
-                raise LedgerError(f"{path}: line {number} is not a JSON entry") from None
+    for number, line, _ in _lines(path):
+        if not line.strip():
+            continue
+        try:
+            entry = json.loads(line)
+        except (json.JSONDecodeError, UnicodeDecodeError):
+            raise LedgerError(f"{path}: line {number} is not a JSON entry") from None
+        if not isinstance(entry, dict):
+            raise LedgerError(f"{path}: line {number} is not a JSON entry")
+        entries.append(entry)
     return entries
 
 
+def _last_entry(fd: int) -> dict[str, Any] | None:
+    """The last entry of the open ledger, read from the end (the ledger can be long)."""
+    size = os.fstat(fd).st_size
+    if size == 0:
+        return None
+    chunk = 1 << 16
+    buffer = b""
+    position = size
+    while position > 0:
+        step = min(chunk, position)
+        position -= step
+        buffer = os.pread(fd, step, position) + buffer
+        stripped = buffer.rstrip(b"\n")
+        if b"\n" in stripped or position == 0:
+            line = stripped.rsplit(b"\n", 1)[-1]
+            try:
+                return json.loads(line)
+            except (json.JSONDecodeError, UnicodeDecodeError):
+                raise LedgerError(
+                    "ledger: the last line is not a complete entry; run `site-agent ledger verify`"
+                ) from None
+    return None
+
+
 def append(path: Path, private_key: Ed25519PrivateKey, event: str, details: dict[str, Any]) -> Entry:
-    """Append one signed entry and fsync it before returning."""
-    entries = read_entries(path)
-    prev = entries[-1]["hash"] if entries else GENESIS
-    fields = {
-        "seq": len(entries) + 1,
-        "time": datetime.now(UTC).isoformat(timespec="microseconds"),
-        "event": event,
-        "details": details,
-        "prev": prev,
-    }
-    digest = _entry_hash(fields)
-    entry = {**fields, "hash": digest, "signature": sign(private_key, digest.encode("ascii"))}
-    line = json.dumps(entry, sort_keys=True, separators=(",", ":")) + "\n"
-    fd = os.open(path, os.O_WRONLY | os.O_APPEND | os.O_CREAT, 0o600)
+    """Append one signed entry and fsync it before returning (an exclusive lock orders concurrent writers)."""
+    if event not in EVENTS:
+        raise ValueError(f"unknown ledger event {event!r}")
+    fd = os.open(path, os.O_RDWR | os.O_APPEND | os.O_CREAT, 0o600)
     try:
+        fcntl.flock(fd, fcntl.LOCK_EX)
+        last = _last_entry(fd)
+        fields = {
+            "seq": (int(last["seq"]) + 1) if last else 1,
+            "time": datetime.now(UTC).isoformat(timespec="microseconds"),
+            "event": event,
+            "details": details,
+            "prev": last["hash"] if last else GENESIS,
+        }
+        digest = _entry_hash(fields)
+        entry = {**fields, "hash": digest, "signature": sign(private_key, digest.encode("ascii"))}
+        line = json.dumps(entry, sort_keys=True, separators=(",", ":")) + "\n"
         os.write(fd, line.encode("utf-8"))
         os.fsync(fd)
     finally:
-        os.close(fd)
+        os.close(fd)  # closing releases the lock
     return Entry(**entry)
 
 
 def verify_ledger(path: Path, public_key: Ed25519PublicKey) -> int:
-    """Check every entry; return the number of entries or raise LedgerError naming the first bad line."""
-    expected_prev = GENESIS
-    entries = read_entries(path)
-    for number, entry in enumerate(entries, start=1):
+    """Check every entry; return the number of entries or raise LedgerError naming the first bad line.
+
+    Detects an edited entry (its hash no longer matches), an entry signed by another key, and a deleted,
+    inserted or reordered entry (sequence numbers and the hash chain break). Removing entries from the end
+    leaves a shorter valid chain; :func:`check_copies` catches that when a release copy is left behind.
+    """
+    if not path.exists():
+        raise LedgerError(f"{path}: no ledger file")
+    expected_prev, expected_seq = GENESIS, 1
+    site_key = key_id(public_key)
+    for number, line, complete in _lines(path):
         where = f"{path}: line {number}"
+        if not line.strip():
+            raise LedgerError(f"{where}: empty line (an entry was removed or the file was edited)")
+        if not complete:
+            raise LedgerError(f"{where}: incomplete entry (the file was cut off, e.g. by a crash while writing)")
         try:
-            fields = {k: entry[k] for k in ("seq", "time", "event", "details", "prev")}
+            entry = json.loads(line)
+            fields = {k: entry[k] for k in _FIELDS}
             digest, signature = entry["hash"], entry["signature"]
+        except (json.JSONDecodeError, UnicodeDecodeError):
+            raise LedgerError(f"{where}: not a JSON entry (the file was edited)") from None
         except (KeyError, TypeError):
-            raise LedgerError(f"{where}: entry is missing a field") from None
-        if fields["seq"] != number:
-            raise LedgerError(f"{where}: sequence number breaks (entry deleted, inserted or reordered)")
-        if fields["prev"] != expected_prev:
-            raise LedgerError(f"{where}: does not chain to the previous entry (deleted, inserted or reordered)")
+            raise LedgerError(f"{where}: entry is missing a field (the file was edited)") from None
+        if set(entry) != {*_FIELDS, "hash", "signature"}:
+            raise LedgerError(f"{where}: entry has fields an entry does not have (the file was edited)")
         if _entry_hash(fields) != digest:
-            raise LedgerError(f"{where}: entry was edited (hash does not match its content)")
-        if not verify(public_key, digest.encode("ascii"), signature):
-            raise LedgerError(f"{where}: signature is not the site key's")
-        expected_prev = digest
-    return len(entries)
+            raise LedgerError(f"{where}: entry was edited (its hash does not match its content)")
+        if not isinstance(signature, str) or not verify(public_key, digest.encode("ascii"), signature):
+            raise LedgerError(f"{where}: signature is not by the site key {site_key} (signed by another key or forged)")
+        seq = fields["seq"]
+        if seq != expected_seq:
+            if isinstance(seq, int) and seq > expected_seq:
+                raise LedgerError(
+                    f"{where}: sequence number {seq} where {expected_seq} was expected (an entry before it was "
+                    "deleted, or entries were reordered)"
+                )
+            raise LedgerError(
+                f"{where}: sequence number {seq} where {expected_seq} was expected (an entry was inserted, or "
+                "entries were reordered)"
+            )
+        if fields["prev"] != expected_prev:
+            raise LedgerError(f"{where}: does not chain to the entry before it (an entry was replaced or moved)")
+        expected_prev, expected_seq = digest, expected_seq + 1
+    return expected_seq - 1
+
+
+def check_copies(path: Path, folder: Path) -> list[str]:
+    """Release files in ``folder`` that the ledger does not record (entries removed from its end)."""
+    recorded = {
+        e["details"].get("release_sha256") for e in read_entries(path) if e.get("event") in ("release", "preview")
+    }
+    missing = []
+    for copy in sorted(folder.glob("*.json")) if folder.is_dir() else []:
+        if copy.name.endswith(".review.json"):
+            continue
+        if sha256_hex(copy.read_bytes()) not in recorded:
+            missing.append(copy.name)
+    return missing
+
+
+def head(path: Path) -> str:
+    entries = read_entries(path)
+    return entries[-1]["hash"] if entries else GENESIS
 
 
 def releases_for_study(path: Path, study_id: str) -> list[dict[str, Any]]:
+    """Details of every ``release`` entry of the study."""
     return [
         e["details"]
         for e in read_entries(path)
         if e.get("event") == "release" and e.get("details", {}).get("study_id") == study_id
     ]
+
+
+def answered_for_study(path: Path, study_id: str) -> list[dict[str, Any]]:
+    """Releases of the study that left or may leave: released, or held and not rejected (one per SHA-256)."""
+    entries = read_entries(path)
+    rejected = {e["details"].get("release_sha256") for e in entries if e.get("event") == "rejection"}
+    answered: dict[str, dict[str, Any]] = {}
+    for entry in entries:
+        details = entry.get("details", {})
+        if entry.get("event") not in ("release", "preview") or details.get("study_id") != study_id:
+            continue
+        digest = details.get("release_sha256")
+        if entry.get("event") == "preview" and digest in rejected:
+            continue
+        answered.setdefault(digest, details)
+    return list(answered.values())
+
+
+def facts_for_study(path: Path, study_id: str) -> list[ReleaseFacts]:
+    """What the study's recipient knows or may yet learn from this site: the audit facts of every release to
+    the study, including releases awaiting approval (so that approving them later stays safe)."""
+    facts = []
+    for details in answered_for_study(path, study_id):
+        raw = details.get("facts")
+        if raw is None:
+            continue
+        label = str(details.get("request_id", "?"))
+        bundle = ""
+        if isinstance(raw, dict):
+            bundle = str(raw.get("bundle", ""))
+        if not bundle and isinstance(details.get("release"), str):
+            try:
+                bundle = str(json.loads(details["release"]).get("bundle_sha256", ""))
+            except json.JSONDecodeError:
+                bundle = ""
+        facts.append(ReleaseFacts.from_dict(label, raw, bundle))
+    return facts
+
+
+def unsent(path: Path) -> list[dict[str, Any]]:
+    """``release`` entries with no later ``sent`` entry for the same release (interrupted hand-overs)."""
+    entries = read_entries(path)
+    sent = {e["details"].get("release_sha256") for e in entries if e.get("event") == "sent"}
+    return [e for e in entries if e.get("event") == "release" and e["details"].get("release_sha256") not in sent]
+
+
+def summary(entry: dict[str, Any]) -> str:
+    """One line for people: what happened, without the release text or the audit facts."""
+    details = entry.get("details", {}) or {}
+    event = entry.get("event")
+    short = {k: v for k, v in details.items() if k not in ("release", "facts", "review")}
+    for key in ("request_sha256", "bundle_sha256", "release_sha256"):
+        if isinstance(short.get(key), str):
+            short[key] = short[key][:12]
+    if event == "release" or event == "preview":
+        study, request = details.get("study_id"), details.get("request_id")
+        text = f"study {study} request {request} release {str(details.get('release_sha256', ''))[:12]}"
+        if event == "preview":
+            text += f" held for approval as {details.get('pending_id')}"
+        return text
+    if event == "approval":
+        return f"{details.get('pending_id')} approved by {details.get('by')}"
+    if event == "rejection":
+        return f"{details.get('pending_id')} rejected by {details.get('by')}: {details.get('reason')}"
+    if event == "sent":
+        where = details.get("path") or details.get("via")
+        return f"release {str(details.get('release_sha256', ''))[:12]} handed over via {where}"
+    if event == "refusal":
+        return f"refused: {details.get('reason')}"
+    return json.dumps(short, sort_keys=True)

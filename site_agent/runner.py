@@ -11,6 +11,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 from datetime import UTC, datetime
 from pathlib import Path
+from typing import Any
 
 from federation.protocol import (
     Bundle,
@@ -25,12 +26,15 @@ from federation.protocol import (
 )
 from federation.protocol.cli_support import write_atomic
 
-from . import ledger
-from .analyses import Flow, build_analyses
+from . import approval, ledger
+from .analyses import Flow, build_analyses, collect_counts, combined_schema, tabulate
+from .approval import AwaitingApproval
 from .config import Site
-from .data import DEFAULT_CHUNK_ROWS, prepare_chunk, read_csv_chunks
-from .disclosure import protect
+from .counts import CountSet
+from .data import DEFAULT_CHUNK_ROWS, exclusion_reasons
+from .disclosure import Protected, protect
 from .mapping import default_mapping, load_mapping
+from .sources import SourceSpec
 
 
 @dataclass(frozen=True)
@@ -48,7 +52,13 @@ def check_request(site: Site, request_bytes: bytes, bundle_bytes: bytes) -> tupl
     for analysis in request.analyses:
         if analysis.name not in site.policy.allowed_analyses:
             raise PolicyViolation(f"request: analysis {analysis.name!r} is not allowed by this site's policy")
-    earlier = ledger.releases_for_study(site.ledger_path, request.study_id)
+        for subgroup in analysis.subgroups:
+            if subgroup.variable not in site.policy.allowed_subgroups:
+                raise PolicyViolation(
+                    f"request: subgroup variable {subgroup.variable!r} is not allowed by this site's policy "
+                    "(allowed_subgroups)"
+                )
+    earlier = ledger.answered_for_study(site.ledger_path, request.study_id)  # released, or held and not rejected
     if any(r.get("request_id") == request.request_id for r in earlier):
         raise PolicyViolation("request: this request id was already answered (a replay or duplicate)")
     if len(earlier) >= site.policy.max_requests_per_study:
@@ -56,13 +66,29 @@ def check_request(site: Site, request_bytes: bytes, bundle_bytes: bytes) -> tupl
     return request, bundle
 
 
+def check_compare_bundle(site: Site, request: Request, compare_bundle_bytes: bytes | None) -> Bundle | None:
+    """The second bundle of a paired request, verified like the first; None when the request has none."""
+    expected = request.compare_bundle_sha256
+    if not expected:
+        if compare_bundle_bytes is not None:
+            raise PolicyViolation("request: a comparison bundle was given, but the request names no paired analysis")
+        return None
+    if compare_bundle_bytes is None:
+        raise PolicyViolation("request: names a paired comparison; the comparison bundle is missing (--compare-bundle)")
+    compare = load_bundle(compare_bundle_bytes, site.trusted, "comparison bundle")
+    if compare.sha256 != expected:
+        raise PolicyViolation("comparison bundle: its SHA-256 is not the one the request names")
+    return compare
+
+
 def run_request(
     site: Site,
     request_bytes: bytes,
     bundle_bytes: bytes,
-    data_path: Path | None = None,
+    data_path: Path | str | SourceSpec | None = None,
     mapping_path: Path | None = None,
     chunk_rows: int = DEFAULT_CHUNK_ROWS,
+    compare_bundle_bytes: bytes | None = None,
 ) -> Outcome:
     """Answer one request; every outcome, release or refusal, is written to the ledger first."""
     private_key = site.private_key()
@@ -72,11 +98,20 @@ def run_request(
         "request_received",
         {"request_sha256": sha256_hex(request_bytes), "bundle_sha256": sha256_hex(bundle_bytes)},
     )
+    holder: dict[str, Any] = {}
     try:
+        held = approval.held_for_request(site, sha256_hex(request_bytes))
+        if held is not None:  # asked before and held for approval: answer with exactly the reviewed bytes
+            Request.from_bytes(request_bytes, site.trusted, "request")
+            data = approval.hand_over(site, held)
+            return Outcome(Release.from_bytes(data, "release"), data)
         request, bundle = check_request(site, request_bytes, bundle_bytes)
+        compare = check_compare_bundle(site, request, compare_bundle_bytes)
         release, facts = _compute(
-            site, request, bundle, data_path or site.data_path, mapping_path or site.mapping_path, chunk_rows
+            site, request, bundle, data_path, mapping_path or site.mapping_path, chunk_rows, compare, holder
         )
+    except AwaitingApproval:
+        raise
     except Exception as exc:
         # Only our own messages (which never hold record values) are recorded and may travel; anything
         # unexpected is named by its type alone.
@@ -90,6 +125,11 @@ def run_request(
         raise
     release_bytes = release.signed_bytes(private_key)
     signed = Release.from_bytes(release_bytes, "release")
+    if site.policy.require_approval:
+        held = approval.hold(site, sha256_hex(request_bytes), release_bytes, facts, holder["protected"].review())
+        raise AwaitingApproval(
+            held.pending_id, f"release {held.pending_id} awaits approval by the site (nothing has been sent)"
+        )
     ledger.append(
         site.ledger_path,
         private_key,
@@ -100,38 +140,63 @@ def run_request(
             "release_sha256": sha256_hex(release_bytes),
             "release": release_bytes.decode("utf-8"),
             "facts": facts,
+            "review": holder["protected"].review(),
         },
     )
     write_atomic(site.releases_dir / f"{signed.study_id}-{signed.request_id}.json", release_bytes)
     return Outcome(signed, release_bytes)
 
 
+@dataclass(frozen=True)
+class Preview:
+    """What a request would release, before signing: the release, every count and what was suppressed."""
+
+    release: Release
+    counts: CountSet
+    protected: Protected
+
+
+def preview_request(
+    site: Site,
+    request_bytes: bytes,
+    bundle_bytes: bytes,
+    data: Path | str | SourceSpec | None = None,
+    mapping_path: Path | None = None,
+    chunk_rows: int = DEFAULT_CHUNK_ROWS,
+    compare_bundle_bytes: bytes | None = None,
+) -> Preview:
+    """Everything ``run_request`` computes, without signing, sending or writing to the ledger."""
+    request, bundle = check_request(site, request_bytes, bundle_bytes)
+    compare = check_compare_bundle(site, request, compare_bundle_bytes)
+    holder: dict[str, Any] = {}
+    release, _ = _compute(site, request, bundle, data, mapping_path or site.mapping_path, chunk_rows, compare, holder)
+    return Preview(release, holder["counts"], holder["protected"])
+
+
 def _compute(
     site: Site,
     request: Request,
     bundle: Bundle,
-    data_path: Path | None,
+    data: Path | str | SourceSpec | None,
     mapping_path: Path | None,
     chunk_rows: int,
-) -> tuple[Release, list[dict]]:
+    compare: Bundle | None = None,
+    holder: dict[str, Any] | None = None,
+) -> tuple[Release, dict[str, Any]]:
     """Return the unsigned release and the audit facts (definitions of what it shows and hides)."""
-    if data_path is None:
-        raise ValidationToolError("no data file: give --data or set [data].path in site.toml")
-    schema = bundle.schema
+    source = data if isinstance(data, SourceSpec) else site.source(data)
+    schema = combined_schema(bundle.schema, compare.schema if compare else None)
     mapping = load_mapping(mapping_path, schema) if mapping_path else default_mapping(schema)
     scorer = make_scorer(bundle)
-    flow = Flow()
-    analyses = build_analyses(request.analyses, bundle)
-    for frame in read_csv_chunks(data_path, mapping.columns_needed(), chunk_rows):
-        chunk = prepare_chunk(frame, schema, mapping, str(data_path))
-        scores = scorer.score(chunk.inputs)
-        flow.add(chunk, scores)
-        for analysis in analyses:
-            analysis.add(chunk, scores)
-    counts = flow.counts()
-    for analysis in analyses:
-        counts.merge(analysis.counts())
-    protected = protect(counts, site.policy)
+    flow = Flow(exclusion_reasons(mapping))
+    analyses = build_analyses(request.analyses, bundle, compare)
+    pair = (compare, make_scorer(compare)) if compare is not None else None
+    tabulate(source, mapping, bundle, scorer, flow, analyses, chunk_rows, pair)
+    counts = collect_counts(flow, analyses, site.policy)
+    earlier = ledger.facts_for_study(site.ledger_path, request.study_id)
+    protected = protect(counts, site.policy, earlier, bundle.sha256, request.request_id)
+    if holder is not None:
+        holder.update(counts=counts, protected=protected)
     results = {a.name: a.render(protected.released, protected.derived) for a in analyses}
     release = Release(
         study_id=request.study_id,

@@ -1,0 +1,245 @@
+"""Releases held for a person's approval (policy ``require_approval = true``).
+
+A held release is prepared and signed once; its exact bytes are written to ``SITEDIR/pending/ID.json``
+(with what suppression did and the audit's result beside it in ``ID.review.json``) and recorded in full in
+the ledger (``preview``). Reviewing, approving and releasing all use those bytes: approving records their
+SHA-256, and a release leaves only if the bytes still have that SHA-256, so nothing is recomputed between
+what a person saw and what leaves. The state of each held release is read from the ledger alone:
+
+``pending``   prepared, no decision yet (nothing has left)
+``approved``  a person approved it; the next ``site-agent run`` of the same request, the online agent's
+              next answer to it, or ``site-agent release ID`` hands it over
+``rejected``  a person rejected it; it never leaves
+``released``  approved and handed over (recorded by a ``release`` entry)
+
+``ID`` is the first 16 hex digits of the release's SHA-256.
+"""
+
+from __future__ import annotations
+
+import json
+from dataclasses import dataclass
+from datetime import UTC, datetime
+from pathlib import Path
+from typing import Any
+
+from federation.protocol import PolicyViolation, Release, ValidationToolError, sha256_hex
+from federation.protocol.cli_support import EXIT_PARTIAL, write_atomic
+
+from . import ledger
+from .config import Site
+
+PENDING_DIR = "pending"
+
+
+class AwaitingApproval(ValidationToolError):
+    """The release is held until a person at the site approves it (not an error: exit code 3)."""
+
+    exit_code = EXIT_PARTIAL
+
+    def __init__(self, pending_id: str, message: str) -> None:
+        super().__init__(message)
+        self.pending_id = pending_id
+
+
+@dataclass(frozen=True)
+class Held:
+    pending_id: str
+    state: str  # pending | approved | rejected | released
+    study_id: str
+    request_id: str
+    request_sha256: str
+    release_sha256: str
+    prepared_at: str
+    decided_by: str = ""
+    decided_at: str = ""
+    reason: str = ""
+
+    def path(self, site: Site) -> Path:
+        return site.root / PENDING_DIR / f"{self.pending_id}.json"
+
+
+def hold(site: Site, request_sha256: str, release_bytes: bytes, facts: dict[str, Any], review: dict[str, Any]) -> Held:
+    """Queue a signed release for approval: ledger first (fsynced), then the files people read."""
+    release = Release.from_bytes(release_bytes, "release")
+    digest = sha256_hex(release_bytes)
+    pending_id = digest[:16]
+    entry = ledger.append(
+        site.ledger_path,
+        site.private_key(),
+        "preview",
+        {
+            "pending_id": pending_id,
+            "study_id": release.study_id,
+            "request_id": release.request_id,
+            "request_sha256": request_sha256,
+            "release_sha256": digest,
+            "release": release_bytes.decode("utf-8"),
+            "facts": facts,
+            "review": review,
+        },
+    )
+    folder = site.root / PENDING_DIR
+    write_atomic(folder / f"{pending_id}.json", release_bytes)
+    write_atomic(folder / f"{pending_id}.review.json", json.dumps(review, indent=2, sort_keys=True).encode() + b"\n")
+    return Held(pending_id, "pending", release.study_id, release.request_id, request_sha256, digest, entry.time)
+
+
+def held_releases(site: Site) -> dict[str, Held]:
+    """Every release ever held at this site, by id, with its state as the ledger records it."""
+    held: dict[str, Held] = {}
+    for entry in ledger.read_entries(site.ledger_path):
+        details = entry.get("details", {})
+        event = entry.get("event")
+        pending_id = details.get("pending_id")
+        if event == "preview":
+            held[pending_id] = Held(
+                pending_id,
+                "pending",
+                details.get("study_id", ""),
+                details.get("request_id", ""),
+                details.get("request_sha256", ""),
+                details.get("release_sha256", ""),
+                entry.get("time", ""),
+            )
+        elif pending_id in held and event in ("approval", "rejection", "release"):
+            old = held[pending_id]
+            if event == "release":
+                held[pending_id] = _replace(old, state="released")
+            elif old.state == "pending":
+                held[pending_id] = _replace(
+                    old,
+                    state="approved" if event == "approval" else "rejected",
+                    decided_by=str(details.get("by", "")),
+                    decided_at=str(details.get("decided_at", entry.get("time", ""))),
+                    reason=str(details.get("reason", "")),
+                )
+    return held
+
+
+def _replace(held: Held, **changes: Any) -> Held:
+    return Held(**{**held.__dict__, **changes})
+
+
+def held_for_request(site: Site, request_sha256: str) -> Held | None:
+    """The latest held release answering exactly these request bytes, if any."""
+    matches = [h for h in held_releases(site).values() if h.request_sha256 == request_sha256]
+    return matches[-1] if matches else None
+
+
+def find(site: Site, pending_id: str) -> Held:
+    held = held_releases(site)
+    if pending_id not in held:
+        matches = [h for key, h in held.items() if key.startswith(pending_id)] if len(pending_id) >= 6 else []
+        if len(matches) != 1:
+            raise ValidationToolError(f"{pending_id}: no held release with this id (see `site-agent review`)")
+        return matches[0]
+    return held[pending_id]
+
+
+def reviewed_bytes(site: Site, held: Held) -> bytes:
+    """The held release's bytes, checked against the SHA-256 the ledger recorded when it was prepared."""
+    path = held.path(site)
+    try:
+        data = path.read_bytes()
+    except FileNotFoundError:
+        data = _from_ledger(site, held)
+    if sha256_hex(data) != held.release_sha256:
+        raise ValidationToolError(
+            f"{path}: changed since it was prepared (its SHA-256 is not the one in the ledger); reject it and run "
+            "the request again"
+        )
+    return data
+
+
+def _from_ledger(site: Site, held: Held) -> bytes:
+    for entry in ledger.read_entries(site.ledger_path):
+        details = entry.get("details", {})
+        if entry.get("event") == "preview" and details.get("pending_id") == held.pending_id:
+            return str(details.get("release", "")).encode("utf-8")
+    raise ValidationToolError(f"{held.pending_id}: the ledger holds no prepared release with this id")
+
+
+def review_details(site: Site, held: Held) -> dict[str, Any]:
+    """What suppression did and the audit's result, as recorded in the ledger when the release was prepared."""
+    for entry in ledger.read_entries(site.ledger_path):
+        details = entry.get("details", {})
+        if entry.get("event") == "preview" and details.get("pending_id") == held.pending_id:
+            return details.get("review", {}) or {}
+    return {}
+
+
+def _decide(site: Site, pending_id: str, event: str, by: str, reason: str = "") -> Held:
+    held = find(site, pending_id)
+    if held.state != "pending":
+        raise ValidationToolError(f"{held.pending_id}: already {held.state}; a decision is made once")
+    if not by.strip():
+        raise ValidationToolError("--by: name the person who decides")
+    reviewed_bytes(site, held)  # the decision is about exactly these bytes
+    now = datetime.now(UTC).replace(microsecond=0).isoformat()
+    details = {
+        "pending_id": held.pending_id,
+        "study_id": held.study_id,
+        "request_id": held.request_id,
+        "release_sha256": held.release_sha256,
+        "by": by.strip()[:200],
+        "decided_at": now,
+    }
+    if reason:
+        details["reason"] = reason.strip()[:2000]
+    ledger.append(site.ledger_path, site.private_key(), event, details)
+    return find(site, held.pending_id)
+
+
+def approve(site: Site, pending_id: str, by: str) -> Held:
+    return _decide(site, pending_id, "approval", by)
+
+
+def reject(site: Site, pending_id: str, reason: str, by: str) -> Held:
+    if not reason.strip():
+        raise ValidationToolError("--reason: say why the release is rejected")
+    return _decide(site, pending_id, "rejection", by, reason)
+
+
+def hand_over(site: Site, held: Held) -> bytes:
+    """The approved bytes, with the ``release`` entry written (once) before they may leave.
+
+    Raises AwaitingApproval while no one has decided, and PolicyViolation once it was rejected.
+    """
+    if held.state == "pending":
+        raise AwaitingApproval(
+            held.pending_id, f"release {held.pending_id} awaits approval by the site (nothing has been sent)"
+        )
+    if held.state == "rejected":
+        raise PolicyViolation(f"release {held.pending_id}: the site's reviewer rejected it; it will not be sent")
+    data = reviewed_bytes(site, held)
+    if held.state == "approved":
+        release = Release.from_bytes(data, "release")
+        facts = {}
+        for entry in ledger.read_entries(site.ledger_path):
+            details = entry.get("details", {})
+            if entry.get("event") == "preview" and details.get("pending_id") == held.pending_id:
+                facts = details.get("facts", {})
+        ledger.append(
+            site.ledger_path,
+            site.private_key(),
+            "release",
+            {
+                "pending_id": held.pending_id,
+                "study_id": release.study_id,
+                "request_id": release.request_id,
+                "release_sha256": held.release_sha256,
+                "release": data.decode("utf-8"),
+                "facts": facts,
+            },
+        )
+        write_atomic(site.releases_dir / f"{release.study_id}-{release.request_id}.json", data)
+    return data
+
+
+def record_sent(site: Site, release_bytes: bytes, via: str, path: Path | None = None) -> None:
+    """Ledger entry after a release was handed over (``via`` = ``file`` or ``flower``)."""
+    details: dict[str, Any] = {"release_sha256": sha256_hex(release_bytes), "via": via}
+    if path is not None:
+        details["path"] = str(path)
+    ledger.append(site.ledger_path, site.private_key(), "sent", details)
