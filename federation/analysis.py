@@ -1,19 +1,58 @@
 """From stored releases to the numbers a validation paper reports.
 
-Per site: the 2×2 at the bundle's threshold, sensitivity and specificity with Wilson 95% intervals.
-Pooled: DerSimonian–Laird random effects of logit sensitivity and logit specificity (tau², I²), with 0.5
-added to every cell of a site that has a zero cell, and only then. A site with a suppressed cell is listed
-as not pooled, with the reason.
+Per site: the 2×2 at the bundle's threshold, sensitivity and specificity with Wilson 95% intervals, PPV and
+NPV (at the site's prevalence, and at a prevalence the coordinator states), likelihood ratios and the
+diagnostic odds ratio.
+
+Pooled (``pooled``):
+
+- the univariate summary kept from the first version: DerSimonian–Laird random effects of logit
+  sensitivity and logit specificity (tau², I², prediction intervals), with 0.5 added to every cell of a
+  site that has a zero cell, and only then; a site with a suppressed cell is listed as not pooled;
+- ``bivariate``: the bivariate normal REML model (Reitsma et al. 2005) of the complete tables, with HSROC
+  parameters, SROC curve and AUC, confidence and prediction regions;
+- ``bivariate_glmm``: the exact binomial GLMM (Chu & Cole 2006) of the complete tables;
+- ``bivariate_glmm_suppression_aware``: the same GLMM with suppressed sites kept in the pool, each
+  contributing the probability of the tables its release allows (the release's ``min_cell_size``,
+  ``allow_zero`` and flow margins; :mod:`federation.stats.suppression`).
+
+Further analyses, pooled where a release carries them: ``discrimination`` (AUC on the logit scale, pooled
+ROC from merged bands), ``calibration`` (O:E on the log scale, calibration intercept and slope),
+``paired`` (differences in sensitivity, specificity and AUC between two models), ``subgroups`` (per-level
+pooled logit sensitivity, specificity and AUC with a test of subgroup difference). Every pooled result
+names its method, the sites pooled and the sites not pooled with the reason. A result that cannot be
+estimated is ``{"status": "not estimated", "reason": ...}``, never a NaN. The ``margin`` and ``agreement``
+sections are per-site descriptions and are not pooled here (the report reads them from the releases).
 """
 
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass
+from collections.abc import Callable
+from dataclasses import dataclass, field
 from typing import Any
 
 from federation.protocol import ValidationToolError
-from federation.stats import random_effects, wilson
+from federation.stats import (
+    PoolingError,
+    ReleasedTable,
+    SiteBands,
+    diagnostic_odds_ratio,
+    glmm_accuracy,
+    likelihood_ratios,
+    paired_difference,
+    pool_auc,
+    pool_auc_difference,
+    pool_calibration_intercept,
+    pool_calibration_slope,
+    pool_observed_expected,
+    pooled_roc,
+    predictive_values,
+    random_effects,
+    reitsma,
+    subgroup_analysis,
+    wilson,
+)
 
 from .store import Store, StoredRelease
 
@@ -31,6 +70,24 @@ class SiteTable:
     cells: dict[str, int | None]
     suppressed: tuple[str, ...]
     flow: dict[str, Any]
+    policy: dict[str, Any] = field(default_factory=dict)
+    extra: dict[str, Any] = field(default_factory=dict)
+
+    def released_table(self) -> ReleasedTable:
+        """The table with what the release says about its hidden cells (policy and flow margins)."""
+        excluded = self.flow.get("excluded") if isinstance(self.flow.get("excluded"), dict) else {}
+        k = self.policy.get("min_cell_size")
+        return ReleasedTable(
+            self.site_id,
+            *(self.cells.get(c) for c in CELLS),
+            positives=self.flow.get("analysed_positive"),
+            negatives=self.flow.get("analysed_negative"),
+            analysed=self.flow.get("analysed"),
+            read=self.flow.get("read"),
+            excluded=tuple(excluded.values()),
+            min_cell_size=k if isinstance(k, int) and not isinstance(k, bool) else None,
+            allow_zero=bool(self.policy.get("allow_zero", True)),
+        )
 
 
 def choose_study(store: Store, study_id: str | None) -> str:
@@ -60,8 +117,30 @@ def site_tables(releases: list[StoredRelease], threshold: float | None = None) -
         if not candidates:
             continue
         table = candidates[0]
-        tables.append(SiteTable(site_id, table.threshold, dict(table.cells), table.suppressed, release.flow))
+        tables.append(
+            SiteTable(
+                site_id,
+                table.threshold,
+                dict(table.cells),
+                table.suppressed,
+                release.flow,
+                dict(release.policy),
+                dict(release.extra),
+            )
+        )
     return tables
+
+
+def _not_estimated(reason: str) -> dict[str, str]:
+    return {"status": "not estimated", "reason": reason}
+
+
+def _attempt(function: Callable[..., Any], *args: Any, **kwargs: Any) -> dict[str, Any]:
+    """Run a pooling function; its result as JSON, or why it could not be estimated."""
+    try:
+        return function(*args, **kwargs).to_dict()
+    except ValueError as error:  # PoolingError and the engine's own input checks; messages hold no counts
+        return _not_estimated(str(error))
 
 
 def _proportion(x: int, n: int) -> dict[str, float] | None:
@@ -79,13 +158,28 @@ def _expit(value: float) -> float:
     return 1.0 / (1.0 + math.exp(-value))
 
 
+def _logit_pair(events: int | None, others: int | None) -> tuple[float | None, float | None]:
+    """Logit of events/(events + others) and its variance, 0.5 added to both when one is 0."""
+    if events is None or others is None or events + others == 0:
+        return None, None
+    a, b = (events + 0.5, others + 0.5) if 0 in (events, others) else (float(events), float(others))
+    return math.log(a / b), 1 / a + 1 / b
+
+
+def _hidden(table: SiteTable) -> list[str]:
+    """The cells a table does not show (suppressed, or missing from the release)."""
+    return [c for c in CELLS if table.cells.get(c) is None]
+
+
 def pool_accuracy(tables: list[SiteTable]) -> dict[str, Any]:
+    """Univariate DerSimonian–Laird pooling of logit sensitivity and specificity (complete tables only)."""
     pooled_sites, not_pooled = [], []
     sens_est, sens_var, spec_est, spec_var = [], [], [], []
     corrected = []
     for table in tables:
-        if table.suppressed:
-            not_pooled.append({"site_id": table.site_id, "reason": "suppressed cells: " + ", ".join(table.suppressed)})
+        hidden = _hidden(table)
+        if hidden:
+            not_pooled.append({"site_id": table.site_id, "reason": "suppressed cells: " + ", ".join(hidden)})
             continue
         cells = {c: float(table.cells[c]) for c in CELLS}  # type: ignore[arg-type]
         if cells["tp"] + cells["fn"] == 0 or cells["fp"] + cells["tn"] == 0:
@@ -102,7 +196,8 @@ def pool_accuracy(tables: list[SiteTable]) -> dict[str, Any]:
         spec_var.append(var)
         pooled_sites.append(table.site_id)
     result: dict[str, Any] = {
-        "method": "DerSimonian-Laird random effects on the logit scale, Wald 95% interval",
+        "method": "DerSimonian-Laird random effects on the logit scale, Wald 95% interval, "
+        "prediction interval with t on k-2 df",
         "sites_pooled": pooled_sites,
         "sites_not_pooled": not_pooled,
         "continuity_corrected_sites": corrected,
@@ -126,6 +221,8 @@ def pool_accuracy(tables: list[SiteTable]) -> dict[str, Any]:
             "estimate": _expit(pooled.estimate),
             "ci_low": _expit(pooled.ci_low),
             "ci_high": _expit(pooled.ci_high),
+            "pi_low": None if pooled.pi_low is None else _expit(pooled.pi_low),
+            "pi_high": None if pooled.pi_high is None else _expit(pooled.pi_high),
         }
         result[f"tau2_logit_{name}"] = pooled.tau2
         result[f"i2_logit_{name}"] = pooled.i2
@@ -133,12 +230,247 @@ def pool_accuracy(tables: list[SiteTable]) -> dict[str, Any]:
     return result
 
 
-def analyze(store: Store, study_id: str | None = None) -> dict[str, Any]:
-    study = choose_study(store, study_id)
-    releases = store.releases(study)
-    if not releases:
-        raise AnalysisError(f"{store.path}: study {study!r} has no ingested releases yet")
-    tables = site_tables(releases)
+def _interval_dict(interval: Any) -> dict[str, Any]:
+    return {
+        "estimate": interval.estimate,
+        "ci_low": interval.ci_low,
+        "ci_high": interval.ci_high,
+        "method": interval.method,
+    }
+
+
+def _site_accuracy(table: SiteTable, prevalence: float | None) -> dict[str, Any]:
+    """PPV/NPV, likelihood ratios and DOR of a complete table (None where undefined)."""
+    out: dict[str, Any] = {
+        "prevalence": None,
+        "ppv": None,
+        "npv": None,
+        "likelihood_ratio_positive": None,
+        "likelihood_ratio_negative": None,
+        "diagnostic_odds_ratio": None,
+    }
+    if prevalence is not None:
+        out.update(
+            {"stated_prevalence": prevalence, "ppv_at_stated_prevalence": None, "npv_at_stated_prevalence": None}
+        )
+    if _hidden(table):
+        return out
+    tp, fp, fn, tn = (int(table.cells[c]) for c in CELLS)  # type: ignore[arg-type]
+    total = tp + fp + fn + tn
+    if total == 0:
+        return out
+    out["prevalence"] = (tp + fn) / total
+    out["ppv"] = _proportion(tp, tp + fp)
+    out["npv"] = _proportion(tn, tn + fn)
+    if tp + fn > 0 and fp + tn > 0:
+        positive, negative = likelihood_ratios(tp, fp, fn, tn)
+        out["likelihood_ratio_positive"] = _interval_dict(positive)
+        out["likelihood_ratio_negative"] = _interval_dict(negative)
+        out["diagnostic_odds_ratio"] = _interval_dict(diagnostic_odds_ratio(tp, fp, fn, tn))
+        if prevalence is not None:
+            ppv, npv = predictive_values(tp / (tp + fn), tn / (tn + fp), prevalence)
+            out["ppv_at_stated_prevalence"], out["npv_at_stated_prevalence"] = ppv, npv
+    return out
+
+
+def _bivariate_results(tables: list[SiteTable]) -> dict[str, Any]:
+    released = []
+    invalid = []
+    for table in tables:
+        try:
+            released.append(table.released_table())
+        except PoolingError as error:
+            invalid.append({"site_id": table.site_id, "reason": str(error)})
+    results = {
+        "bivariate": _attempt(lambda: reitsma(released)),
+        "bivariate_glmm": _attempt(lambda: glmm_accuracy(released, suppressed="drop")),
+        "bivariate_glmm_suppression_aware": _attempt(lambda: glmm_accuracy(released, suppressed="censor")),
+    }
+    if invalid:
+        for value in results.values():
+            value.setdefault("sites_not_pooled", [])
+            value["sites_not_pooled"] = [*value["sites_not_pooled"], *invalid]
+    return results
+
+
+# --- further analyses from release sections ----------------------------------------------------------
+
+
+def _number(value: Any) -> float | None:
+    if isinstance(value, bool) or not isinstance(value, int | float) or not math.isfinite(value):
+        return None
+    return float(value)
+
+
+def _count(value: Any) -> int | None:
+    return value if isinstance(value, int) and not isinstance(value, bool) and value >= 0 else None
+
+
+def _section(table: SiteTable, name: str) -> dict[str, Any] | None:
+    value = table.extra.get(name)
+    return value if isinstance(value, dict) else None
+
+
+def _bands(site_id: str, roc: dict[str, Any]) -> SiteBands | None:
+    bands = roc.get("bands")
+    if not isinstance(bands, list) or not bands or not all(isinstance(b, dict) for b in bands):
+        return None
+    low = _number(bands[0].get("low"))
+    edges = [-math.inf if low is None else low]
+    for band in bands:
+        high = _number(band.get("high"))
+        edges.append(math.inf if high is None else high)
+    return SiteBands(
+        site_id,
+        tuple(edges),
+        tuple(_count(b.get("positive")) for b in bands),
+        tuple(_count(b.get("negative")) for b in bands),
+    )
+
+
+def _discrimination(tables: list[SiteTable]) -> dict[str, Any] | None:
+    sites = [(t.site_id, _section(t, "roc")) for t in tables]
+    sites = [(s, r) for s, r in sites if r is not None]
+    if not sites:
+        return None
+    ids = [s for s, _ in sites]
+    out: dict[str, Any] = {
+        "pooled_auc": _attempt(
+            lambda: pool_auc(
+                ids, [_number(r.get("auc")) for _, r in sites], [_number(r.get("auc_se")) for _, r in sites]
+            )
+        )
+    }
+    bands = [b for s, r in sites if (b := _bands(s, r)) is not None]
+    out["pooled_roc"] = _attempt(lambda: pooled_roc(bands)) if bands else _not_estimated("no site released bands")
+    return out
+
+
+def _calibration(tables: list[SiteTable]) -> dict[str, Any] | None:
+    sites = [(t.site_id, _section(t, "calibration")) for t in tables]
+    sites = [(s, c) for s, c in sites if c is not None]
+    if not sites:
+        return None
+    ids = [s for s, _ in sites]
+    observed = [_count(c.get("observed")) for _, c in sites]
+    others = [_count(c.get("non_events")) for _, c in sites]
+    n = [None if o is None or e is None else o + e for o, e in zip(observed, others, strict=True)]
+    return {
+        "observed_expected": _attempt(
+            lambda: pool_observed_expected(ids, observed, [_number(c.get("expected")) for _, c in sites], n)
+        ),
+        "calibration_intercept": _attempt(
+            lambda: pool_calibration_intercept(
+                ids, [_number(c.get("citl")) for _, c in sites], [_number(c.get("citl_se")) for _, c in sites]
+            )
+        ),
+        "calibration_slope": _attempt(
+            lambda: pool_calibration_slope(
+                ids, [_number(c.get("slope")) for _, c in sites], [_number(c.get("slope_se")) for _, c in sites]
+            )
+        ),
+    }
+
+
+def _paired(tables: list[SiteTable]) -> dict[str, Any] | None:
+    sites = [(t.site_id, _section(t, "paired")) for t in tables]
+    sites = [(s, p) for s, p in sites if p is not None]
+    if not sites:
+        return None
+    ids = [s for s, _ in sites]
+
+    def cells(label: str, keys: tuple[str, str, str, str]) -> list[list[int | None]]:
+        columns: list[list[int | None]] = [[], [], [], []]
+        for _, p in sites:
+            table = p.get(label) if isinstance(p.get(label), dict) else {}
+            for j, key in enumerate(keys):
+                columns[j].append(_count(table.get(key)))
+        return columns
+
+    # Sensitivity: "correct" = called positive among the diseased; specificity: called negative among the rest.
+    sens = cells("diseased", ("model1_compare1", "model1_compare0", "model0_compare1", "model0_compare0"))
+    spec = cells("non_diseased", ("model0_compare0", "model0_compare1", "model1_compare0", "model1_compare1"))
+    return {
+        "sensitivity_difference": _attempt(
+            lambda: paired_difference(ids, *sens, measure="difference in sensitivity (model minus comparison)")
+        ),
+        "specificity_difference": _attempt(
+            lambda: paired_difference(ids, *spec, measure="difference in specificity (model minus comparison)")
+        ),
+        "auc_difference": _attempt(
+            lambda: pool_auc_difference(
+                ids,
+                *([_number(p.get(key)) for _, p in sites] for key in ("auc_model", "auc_compare", "auc_model_se")),
+                [_number(p.get("auc_compare_se")) for _, p in sites],
+                [_number(p.get("auc_covariance")) for _, p in sites],
+            )
+        ),
+    }
+
+
+def _level_confusion(level: dict[str, Any], threshold: float) -> dict[str, Any] | None:
+    tables = level.get("confusion")
+    if not isinstance(tables, list):
+        return None
+    for entry in tables:
+        if isinstance(entry, dict) and isinstance(entry.get("threshold"), int | float):
+            if math.isclose(float(entry["threshold"]), threshold) and isinstance(entry.get("cells"), dict):
+                return entry["cells"]
+    return None
+
+
+def _subgroups(tables: list[SiteTable]) -> dict[str, Any] | None:
+    rows: dict[str, list[tuple[str, str, dict[str, Any], float]]] = {}
+    for table in tables:
+        section = _section(table, "subgroups")
+        if section is None or not isinstance(section.get("variables"), list):
+            continue
+        for variable in section["variables"]:
+            if not isinstance(variable, dict) or not isinstance(variable.get("levels"), list):
+                continue
+            name = str(variable.get("variable"))
+            for level in variable["levels"]:
+                if isinstance(level, dict):
+                    rows.setdefault(name, []).append((table.site_id, str(level.get("level")), level, table.threshold))
+    if not rows:
+        return None
+    out: dict[str, Any] = {}
+    for variable, entries in rows.items():
+        ids = [e[0] for e in entries]
+        levels = [e[1] for e in entries]
+        result: dict[str, Any] = {}
+        for measure, (events, others) in (("sensitivity", ("tp", "fn")), ("specificity", ("tn", "fp"))):
+            estimates, variances = [], []
+            for _, _, level, threshold in entries:
+                cells = _level_confusion(level, threshold) or {}
+                y, v = _logit_pair(_count(cells.get(events)), _count(cells.get(others)))
+                estimates.append(y)
+                variances.append(v)
+            result[measure] = _attempt(
+                subgroup_analysis, ids, estimates, variances, levels, measure=f"logit {measure}", scale="logit"
+            )
+        auc_y, auc_v = [], []
+        for _, _, level, _ in entries:
+            roc = level.get("roc") if isinstance(level.get("roc"), dict) else {}
+            c, s = _number(roc.get("auc")), _number(roc.get("auc_se"))
+            if c is None or s is None or not 0 < c < 1:
+                auc_y.append(None)
+                auc_v.append(None)
+            else:
+                auc_y.append(math.log(c / (1 - c)))
+                auc_v.append((s / (c * (1 - c))) ** 2)
+        if any(y is not None for y in auc_y):
+            result["auc"] = _attempt(subgroup_analysis, ids, auc_y, auc_v, levels, measure="logit AUC", scale="logit")
+        out[variable] = result
+    return out
+
+
+def analyze_tables(study_id: str, tables: list[SiteTable], prevalence: float | None = None) -> dict[str, Any]:
+    """Per-site and pooled results from each site's table and release sections (see the module docstring)."""
+    if prevalence is not None and (
+        isinstance(prevalence, bool) or not isinstance(prevalence, int | float) or not 0 <= prevalence <= 1
+    ):
+        raise AnalysisError("prevalence: must be a number between 0 and 1")
     sites = []
     for table in tables:
         cells = table.cells
@@ -156,5 +488,31 @@ def analyze(store: Store, study_id: str | None = None) -> dict[str, Any]:
             else None
         )
         entry["flow"] = table.flow
+        entry.update(_site_accuracy(table, prevalence))
         sites.append(entry)
-    return {"study_id": study, "sites": sites, "pooled": pool_accuracy(tables)}
+    pooled = pool_accuracy(tables)
+    pooled.update(_bivariate_results(tables))
+    result: dict[str, Any] = {"study_id": study_id, "sites": sites}
+    for key, build in (
+        ("discrimination", _discrimination),
+        ("calibration", _calibration),
+        ("paired", _paired),
+        ("subgroups", _subgroups),
+    ):
+        value = build(tables)
+        if value is not None:
+            result[key] = value
+    result["pooled"] = pooled
+    return result
+
+
+def analyze(store: Store, study_id: str | None = None, prevalence: float | None = None) -> dict[str, Any]:
+    """Per-site and pooled results of a study, as ``federation analyze --json`` prints them.
+
+    ``prevalence`` (optional) is a pre-test probability at which every site's PPV and NPV are also given.
+    """
+    study = choose_study(store, study_id)
+    releases = store.releases(study)
+    if not releases:
+        raise AnalysisError(f"{store.path}: study {study!r} has no ingested releases yet")
+    return analyze_tables(study, site_tables(releases), prevalence)

@@ -1,9 +1,41 @@
 """Statistics for validating a frozen screening model across sites.
 
 Single-site accuracy (:mod:`.proportions`), univariate pooling across sites (:mod:`.univariate`) and
-the JSON-safe result objects they return (:mod:`.results`).
+the JSON-safe result objects they return (:mod:`.results`); bivariate pooling of sensitivity and
+specificity (:mod:`.bivariate`, :mod:`.glmm`) with suppressed cells modelled (:mod:`.suppression`);
+discrimination and calibration (:mod:`.performance`); subgroups and paired comparisons (:mod:`.comparison`).
 """
 
+from federation.stats.bivariate import (
+    BivariateFit,
+    HSROCParameters,
+    Region,
+    SROCCurve,
+    bivariate_random_effects,
+    hsroc_parameters,
+    reitsma,
+    sroc_auc_grid,
+)
+from federation.stats.comparison import (
+    MetaRegression,
+    SubgroupAnalysis,
+    SubgroupEstimate,
+    meta_regression,
+    paired_difference,
+    pool_auc_difference,
+    subgroup_analysis,
+)
+from federation.stats.glmm import binomial_glmm, glmm_accuracy, marginal_log_likelihood
+from federation.stats.performance import (
+    PooledMeasure,
+    PooledRoc,
+    SiteBands,
+    pool_auc,
+    pool_calibration_intercept,
+    pool_calibration_slope,
+    pool_observed_expected,
+    pooled_roc,
+)
 from federation.stats.proportions import (
     LikelihoodRatios,
     clopper_pearson,
@@ -15,6 +47,9 @@ from federation.stats.proportions import (
     wilson_cc,
 )
 from federation.stats.results import Interval, PooledEstimate
+from federation.stats.serial import PoolingError, ResultRecord, SiteExclusion
+from federation.stats.suppression import SiteEvidence, site_evidence
+from federation.stats.tables import ReleasedTable
 from federation.stats.univariate import (
     LogitProportion,
     expit,
@@ -25,7 +60,39 @@ from federation.stats.univariate import (
 )
 
 __all__ = [
+    "BivariateFit",
+    "HSROCParameters",
     "Interval",
+    "MetaRegression",
+    "PooledMeasure",
+    "PooledRoc",
+    "PoolingError",
+    "Region",
+    "ReleasedTable",
+    "ResultRecord",
+    "SROCCurve",
+    "SiteBands",
+    "SiteEvidence",
+    "SiteExclusion",
+    "SubgroupAnalysis",
+    "SubgroupEstimate",
+    "binomial_glmm",
+    "bivariate_random_effects",
+    "glmm_accuracy",
+    "hsroc_parameters",
+    "marginal_log_likelihood",
+    "meta_regression",
+    "paired_difference",
+    "pool_auc",
+    "pool_auc_difference",
+    "pool_calibration_intercept",
+    "pool_calibration_slope",
+    "pool_observed_expected",
+    "pooled_roc",
+    "reitsma",
+    "site_evidence",
+    "sroc_auc_grid",
+    "subgroup_analysis",
     "LikelihoodRatios",
     "LogitProportion",
     "PooledEstimate",

@@ -1,0 +1,276 @@
+r"""What a release with suppressed counts still says about a site's 2×2 table.
+
+The site's disclosure rule (docs: DESIGN.md, "Disclosure control") releases every count exactly or
+hides it. A hidden count is either **primary** — it lay in :math:`P = [1, k-1]` (or :math:`[0, k-1]`
+when the policy hides zeros), :math:`k` the minimum cell size — or **secondary**: hidden so that a
+primary one cannot be recomputed from a total and its parts. The additive relations are
+
+    records read = analysed + excluded (one count per reason)
+    analysed     = with the condition (n1) + without it (n0)
+    n1           = TP + FN,        n0 = FP + TN.
+
+Secondary suppression fires in a relation when exactly one of its members is hidden and then hides
+one more *part* (never the total). So, in every relation: at most one hidden part lies outside P; if
+one does, exactly one hidden member lies in P, or none does and the total was itself hidden by the
+relation above it; and a relation never ends with exactly one hidden member. These conditions are
+necessary for any table the rule could have produced, so the set of tables they allow always
+contains the true one; they do not assume which released member the rule picks, so the set can be a
+little larger than the truth requires (the likelihood is then slightly less informative, never wrong).
+
+For the likelihood, the total analysed :math:`N` is taken as given when released, and otherwise every
+value the rules allow is given equal weight; the split :math:`n_1 \mid N` has the prevalence
+integrated out under a uniform prior, :math:`P(n_1 \mid N) = 1/(N+1)` (the beta-binomial with
+:math:`a = b = 1`); given the margins, TP and FP are binomial in sensitivity and false-positive rate.
+A site's evidence is therefore a weighted list of blocks :math:`(w, n_1, T, n_0, F)`: margins and the
+sets of TP and FP values the rules allow, and
+
+.. math:: L(\mathrm{Se}, \mathrm{FPR}) = \sum_b w_b \sum_{t \in T_b} \mathrm{Bin}(t; n_{1b}, \mathrm{Se})
+          \sum_{f \in F_b} \mathrm{Bin}(f; n_{0b}, \mathrm{FPR}).
+
+References
+----------
+Hutchison D, et al. (2001). Statistical Disclosure Control (Hundepool A et al., eds., 2012,
+Wiley), ch. 4 (primary and secondary cell suppression). Berger JO, Liseo B, Wolpert RL (1999).
+Integrated likelihood methods for eliminating nuisance parameters. Stat Sci 14:1–28.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+from numpy.typing import NDArray
+
+from federation.stats.serial import PoolingError
+from federation.stats.tables import ReleasedTable
+
+__all__ = ["SiteEvidence", "site_evidence"]
+
+_MAX_BLOCKS = 5000  # far above what the rules allow for any k a policy uses; guards against misuse
+
+
+@dataclass(frozen=True, eq=False)
+class SiteEvidence:
+    """The likelihood terms one site contributes: blocks of (weight, margins, allowed TP and FP values)."""
+
+    site_id: str
+    weights: NDArray[np.float64]
+    positives: NDArray[np.int64]
+    negatives: NDArray[np.int64]
+    tp_values: tuple[NDArray[np.int64], ...]
+    fp_values: tuple[NDArray[np.int64], ...]
+    censored: bool = field(default=False)
+
+    @property
+    def n_blocks(self) -> int:
+        return int(self.weights.size)
+
+    def allows(self, tp: int, fp: int, fn: int, tn: int) -> bool:
+        """Whether the full table (tp, fp, fn, tn) is one the evidence allows (used by tests)."""
+        for b in range(self.n_blocks):
+            if self.positives[b] == tp + fn and self.negatives[b] == fp + tn:
+                return bool(np.isin(tp, self.tp_values[b]) and np.isin(fp, self.fp_values[b]))
+        return False
+
+
+def _relation_ok(n_primary: int, nonprimary_parts: int, total_hidden_secondary: bool) -> bool:
+    """The conditions above, for one relation, given which hidden members lie in P."""
+    if nonprimary_parts > 1:
+        return False
+    if nonprimary_parts == 1:
+        return n_primary == 1 or (n_primary == 0 and total_hidden_secondary)
+    if n_primary == 1 and not total_hidden_secondary:
+        return False  # a single hidden member: the rule would have hidden one more
+    return not (n_primary == 0 and total_hidden_secondary)
+
+
+class _Rules:
+    def __init__(self, table: ReleasedTable) -> None:
+        assert table.min_cell_size is not None
+        self.k = table.min_cell_size
+        self.low = 1 if table.allow_zero else 0
+
+    def primary(self, value: int) -> bool:
+        return self.low <= value <= self.k - 1
+
+    def candidates(self, total: int) -> list[int]:
+        """Values of one of two hidden parts summing to ``total``: at least one of them lies in P."""
+        near = set(range(0, min(self.k, total + 1)))
+        near.update(range(max(0, total - self.k + 1), total + 1))
+        return sorted(near)
+
+    def split_ok(self, total: int, total_hidden: bool, parts: list[tuple[int, bool]]) -> bool:
+        """Check a relation: total and its parts as (value, hidden)."""
+        n_primary = int(total_hidden and self.primary(total))
+        nonprimary = 0
+        for value, hidden in parts:
+            if hidden:
+                if self.primary(value):
+                    n_primary += 1
+                else:
+                    nonprimary += 1
+        return _relation_ok(n_primary, nonprimary, total_hidden and not self.primary(total))
+
+
+def _released_consistent(table: ReleasedTable, rules: _Rules) -> None:
+    released = [
+        v for v in (*table.cells, table.positives, table.negatives, table.analysed, table.read) if v is not None
+    ]
+    released += [v for v in table.excluded if v is not None]
+    if any(rules.primary(v) for v in released):
+        raise PoolingError(
+            f"site {table.site_id!r}: a released count lies below the release's own minimum cell size; "
+            "the release contradicts its policy"
+        )
+
+
+def _analysed_candidates(table: ReleasedTable, rules: _Rules) -> list[int]:
+    """Values of the total analysed that the release and the read = analysed + excluded relation allow."""
+    if table.analysed is not None:
+        return [table.analysed]
+    margins = None
+    if table.positives is not None and table.negatives is not None:
+        margins = table.positives + table.negatives
+    flow_known = table.read is not None or bool(table.excluded)
+    if not flow_known:
+        if margins is None:
+            raise PoolingError(
+                f"site {table.site_id!r}: the total analysed and the margins are suppressed and no records-read "
+                "count was released, so nothing bounds the table"
+            )
+        return [margins]
+    known = sum(v for v in table.excluded if v is not None)
+    hidden = sum(1 for v in table.excluded if v is None)
+    # A hidden records-read count has no relation above it, so only primary suppression can hide it.
+    reads = [table.read] if table.read is not None else list(range(rules.low, rules.k))
+    if margins is not None:
+        pool = {margins}
+    else:
+        pool = set()
+        for read in reads:
+            top = read - known
+            pool.update(range(0, min(rules.k, top + 1)))  # the total analysed itself was primary
+            pool.update(range(max(0, top - hidden * (rules.k - 1)), top + 1))  # every hidden exclusion was
+    return [
+        n for n in sorted(pool) if any(_read_relation_ok(r, table.read is None, n, known, hidden, rules) for r in reads)
+    ]
+
+
+def _read_relation_ok(read: int, read_hidden: bool, analysed: int, known: int, hidden: int, rules: _Rules) -> bool:
+    """Whether some values of the hidden exclusion counts complete read = analysed + excluded."""
+    rest = read - known - analysed
+    if rest < 0:
+        return False
+    analysed_primary = rules.primary(analysed)
+    for in_p in range(hidden + 1):
+        others = hidden - in_p  # hidden exclusion counts outside P (secondary)
+        if others > 1:
+            continue
+        low, high = in_p * rules.low, in_p * (rules.k - 1)
+        if others == 0:
+            fits = low <= rest <= high
+        else:  # the secondary one is 0 (only where zeros may be shown) or at least k
+            fits = (rules.low == 1 and low <= rest <= high) or rest - rules.k >= low
+        n_primary = int(read_hidden) + int(analysed_primary) + in_p
+        if fits and _relation_ok(n_primary, others + int(not analysed_primary), False):
+            return True
+    return False
+
+
+def site_evidence(table: ReleasedTable) -> SiteEvidence:
+    """The likelihood evidence of one released table (exact when complete, censored otherwise).
+
+    Parameters
+    ----------
+    table : ReleasedTable
+        A complete table, or one with suppressed cells whose release states ``min_cell_size``.
+
+    Returns
+    -------
+    SiteEvidence
+
+    Raises
+    ------
+    PoolingError
+        When the release contradicts its own policy or its totals, when a suppressed table has no
+        minimum cell size, or when nothing released bounds the table (the total analysed, the margins
+        and the records read are all hidden).
+    """
+    site = table.site_id
+    tp, fp, fn, tn = table.cells
+    if table.is_complete:
+        n1, n0 = tp + fn, fp + tn  # type: ignore[operator]
+        if (table.positives is not None and table.positives != n1) or (
+            table.negatives is not None and table.negatives != n0
+        ):
+            raise PoolingError(f"site {site!r}: the released cells do not add up to the released margins")
+        return SiteEvidence(
+            site,
+            np.ones(1),
+            np.array([n1], dtype=np.int64),
+            np.array([n0], dtype=np.int64),
+            (np.array([tp], dtype=np.int64),),
+            (np.array([fp], dtype=np.int64),),
+            censored=False,
+        )
+    if table.min_cell_size is None:
+        raise PoolingError(f"site {site!r}: suppressed cells but the release states no minimum cell size")
+    rules = _Rules(table)
+    _released_consistent(table, rules)
+    analysed_hidden = table.analysed is None
+    totals = _analysed_candidates(table, rules)
+    if not totals:
+        raise PoolingError(f"site {site!r}: no table is consistent with the release and its suppression rule")
+    blocks: list[tuple[float, int, NDArray[np.int64], int, NDArray[np.int64]]] = []
+    weight_total = 1.0 / len(totals)
+    for total in totals:
+        for n1 in _margin_candidates(table, total, rules):
+            n0 = total - n1
+            parts = [(n1, table.positives is None), (n0, table.negatives is None)]
+            if not rules.split_ok(total, analysed_hidden, parts):
+                continue
+            tps = _cell_candidates(tp, fn, n1, table.positives is None, rules)
+            fps = _cell_candidates(fp, tn, n0, table.negatives is None, rules)
+            if tps.size and fps.size:
+                blocks.append((weight_total / (total + 1), n1, tps, n0, fps))
+            if len(blocks) > _MAX_BLOCKS:
+                raise PoolingError(f"site {site!r}: the release leaves too many possible tables to enumerate")
+    if not blocks:
+        raise PoolingError(f"site {site!r}: no table is consistent with the release and its suppression rule")
+    return SiteEvidence(
+        site,
+        np.array([b[0] for b in blocks]),
+        np.array([b[1] for b in blocks], dtype=np.int64),
+        np.array([b[3] for b in blocks], dtype=np.int64),
+        tuple(b[2] for b in blocks),
+        tuple(b[4] for b in blocks),
+        censored=True,
+    )
+
+
+def _margin_candidates(table: ReleasedTable, total: int, rules: _Rules) -> list[int]:
+    if table.positives is not None:
+        return [table.positives] if table.positives <= total else []
+    if table.negatives is not None:
+        return [total - table.negatives] if table.negatives <= total else []
+    return rules.candidates(total)
+
+
+def _cell_candidates(
+    cell: int | None, other: int | None, margin: int, margin_hidden: bool, rules: _Rules
+) -> NDArray[np.int64]:
+    """Allowed values of ``cell`` (TP or FP) given its margin, under the relation margin = cell + other."""
+    if cell is not None:
+        values = [cell]
+    elif other is not None:
+        values = [margin - other]
+    else:
+        values = rules.candidates(margin)
+    allowed = [
+        v
+        for v in values
+        if 0 <= v <= margin
+        and (other is None or other == margin - v)
+        and rules.split_ok(margin, margin_hidden, [(v, cell is None), (margin - v, other is None)])
+    ]
+    return np.array(allowed, dtype=np.int64)
