@@ -1,0 +1,127 @@
+"""Studies that stress the report: suppressed sites, a second reference, a probability model, one site,
+a tampered store, bad input; and any analysis JSON at all renders without an error."""
+
+from __future__ import annotations
+
+import csv
+import io
+import json
+import sqlite3
+from base64 import b64decode
+from pathlib import Path
+
+from hypothesis import given, settings
+from hypothesis import strategies as st
+
+from federation.report.analyses import render_json
+
+from .dom import parse
+from .studies import SECOND_REFERENCE_SITE, analyze_json, federation
+
+
+def _csv_from_link(href: str) -> list[dict[str, str]]:
+    assert href.startswith("data:text/csv;charset=utf-8;base64,")
+    return list(csv.DictReader(io.StringIO(b64decode(href.split(",", 1)[1]).decode("utf-8"))))
+
+
+def test_one_site_explains_instead_of_a_diamond(one_site_store: Path, tmp_path: Path) -> None:
+    out = tmp_path / "one.html"
+    result = federation("report", "--store", str(one_site_store), "--out", str(out), "--json")
+    # Seven enrolled sites sent nothing: the report is written, and the exit code says results are partial.
+    assert result.returncode == 3, result.stderr
+    info = json.loads(result.stdout)
+    analysis = analyze_json(one_site_store)
+    assert len(info["sites"]) == 1 and len(info["enrolled_without_release"]) == 7
+    assert info["sites_pooled"] == analysis["pooled"]["sites_pooled"] and analysis["pooled"]["sensitivity"] is None
+
+    dom = parse(out.read_text(encoding="utf-8"))
+    note = dom.find_id("no-pooled-estimate")
+    assert note is not None
+    assert analysis["pooled"]["note"] in note.text()
+    assert "too few to pool" in dom.find_id("summary").text()
+    assert dom.find_id("pooled-sensitivity") is None  # no headline card for a pooled value
+    figure = dom.find_id("fig-forest-sensitivity")
+    assert figure is not None
+    svg_text = "".join(t.text() for t in figure.iter("text"))
+    assert "not pooled" in svg_text and "Pooled (random effects)" not in svg_text
+    link = next(a for a in figure.iter("a") if a.attrs.get("download") == "forest-sensitivity.csv")
+    rows = _csv_from_link(link.attrs["href"])
+    assert [r["site"] for r in rows] == info["sites"]  # site rows only: no pooled row
+
+
+def test_suppressed_site_is_shown_as_suppressed(demo_store: Path, demo_report: Path) -> None:
+    analysis = analyze_json(demo_store)
+    suppressed = [s["site_id"] for s in analysis["sites"] if s["suppressed"]]
+    assert suppressed == ["skarrow-specialist"]
+    dom = parse(demo_report.read_text(encoding="utf-8"))
+    card = next(n for n in dom.iter("div") if n.attrs.get("data-site") == "skarrow-specialist")
+    assert "suppressed" in card.text()
+    figure = dom.find_id("fig-forest-sensitivity")
+    link = next(a for a in figure.iter("a") if a.attrs.get("download") == "forest-sensitivity.csv")
+    rows = {r["site"]: r for r in _csv_from_link(link.attrs["href"])}
+    assert rows["skarrow-specialist"]["estimate"] == "" and rows["skarrow-specialist"]["pooled"] == "False"
+    pooled = analysis["pooled"]["sensitivity"]
+    assert float(rows["pooled"]["estimate"]) == pooled["estimate"]
+    for site in analysis["sites"]:
+        if site["sensitivity"]:
+            assert float(rows[site["site_id"]]["estimate"]) == site["sensitivity"]["estimate"]
+    summary = dom.find_id("summary")
+    assert "skarrow-specialist" in summary.text()
+
+
+def test_second_reference_and_probability_model_sections(extended_report: tuple[Path, dict]) -> None:
+    out, _ = extended_report
+    dom = parse(out.read_text(encoding="utf-8"))
+    agreement = dom.find_id("analysis-agreement")
+    assert agreement is not None
+    rows = [r for r in agreement.iter("tr") if r.children and SECOND_REFERENCE_SITE in r.text()]
+    assert rows, "the site with a second reference has a row in the agreement table"
+    calibration = dom.find_id("analysis-calibration")
+    assert calibration is not None and "calibration" in calibration.text().lower()
+    # The methods name what ran: the model's score is a probability and every asked analysis is listed.
+    methods = " ".join(dom.find_id("methods").text().split())
+    assert "score: probability" in methods
+    assert "roc, calibration, margin, subgroups, agreement" in methods
+
+
+def test_tampered_release_is_refused_with_exit_2(demo_store: Path, tmp_path: Path) -> None:
+    copy = tmp_path / "tampered.db"
+    copy.write_bytes(demo_store.read_bytes())
+    db = sqlite3.connect(copy)
+    key, document = db.execute("SELECT release_sha256, document FROM releases LIMIT 1").fetchone()
+    altered = document.replace(b'"read": ', b'"read": 1', 1)  # a changed count, signature left as it was
+    assert altered != document
+    db.execute("UPDATE releases SET document = ? WHERE release_sha256 = ?", (altered, key))
+    db.commit()
+    db.close()
+    out = tmp_path / "never.html"
+    result = federation("report", "--store", str(copy), "--out", str(out))
+    assert result.returncode == 2
+    assert "signature does not verify" in result.stderr and len(result.stderr.strip().splitlines()) == 1
+    assert not out.exists()
+
+
+def test_bad_input_is_one_line_and_exit_1(demo_store: Path, tmp_path: Path) -> None:
+    missing = federation("report", "--store", str(tmp_path / "absent.db"), "--out", str(tmp_path / "r.html"))
+    assert missing.returncode == 1 and "study store not found" in missing.stderr
+    assert not (tmp_path / "absent.db").exists()  # the report does not create an empty store
+    unknown = federation("report", "--store", str(demo_store), "--study-id", "nope", "--out", str(tmp_path / "r.html"))
+    assert unknown.returncode == 1 and "no study 'nope'" in unknown.stderr
+    for result in (missing, unknown):
+        assert len(result.stderr.strip().splitlines()) == 1 and "Traceback" not in result.stderr
+
+
+JSON = st.recursive(
+    st.none() | st.booleans() | st.integers(-(10**9), 10**9) | st.floats(allow_nan=True) | st.text(max_size=12),
+    lambda inner: st.lists(inner, max_size=4) | st.dictionaries(st.text(max_size=8), inner, max_size=4),
+    max_leaves=30,
+)
+
+
+@settings(max_examples=150, deadline=None)
+@given(JSON)
+def test_any_analysis_json_renders_as_escaped_html(value: object) -> None:
+    html = render_json(value, "Some analysis <b>", "some-analysis")
+    assert "<b>" not in html  # text from the JSON is escaped, never markup
+    tree = parse(f"<div>{html}</div>")
+    assert tree.children  # parses as HTML
