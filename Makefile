@@ -8,7 +8,7 @@ DEMO_OUT ?= demo-output
 export FLWR_TELEMETRY_ENABLED := 0
 export FLWR_DISABLE_UPDATE_CHECK := 1
 
-.PHONY: install demo test lint clean
+.PHONY: install demo test lint clean browser postgres validate-stats
 
 $(STAMP): pyproject.toml
 	@test -x $(BIN)/python || $(PYTHON) -m venv $(VENV)
@@ -21,9 +21,24 @@ install: $(STAMP)
 demo: $(STAMP)
 	$(BIN)/federation demo --out $(DEMO_OUT)
 
-test: $(STAMP)
+# The report tests open the HTML report in a real headless browser: Debian's chromium, installed when missing.
+browser:
+	@command -v chromium >/dev/null 2>&1 || (apt-get update && DEBIAN_FRONTEND=noninteractive apt-get install -y chromium)
+
+# The site-agent source tests start their own PostgreSQL server on loopback: Debian's postgresql, installed
+# when pg_ctl/initdb are missing.
+postgres:
+	@(command -v pg_ctl && command -v initdb) >/dev/null 2>&1 || ls /usr/lib/postgresql/*/bin/initdb >/dev/null 2>&1 \
+		|| (apt-get update && DEBIAN_FRONTEND=noninteractive apt-get install -y postgresql)
+
+test: $(STAMP) browser postgres
 	$(BIN)/ruff check federation site_agent simulations tests
 	$(BIN)/python -m pytest -q
+
+# Simulation study of the pooling methods (not part of `make test`): 1,000 synthetic consortia, dropping
+# suppressed sites against suppression-aware pooling; prints a table, writes simulations/validate_stats_results.json.
+validate-stats: $(STAMP)
+	$(BIN)/python -m simulations.validate_stats --consortia 1000
 
 lint: $(STAMP)
 	$(BIN)/ruff check federation site_agent simulations tests

@@ -25,7 +25,7 @@ from federation.protocol.cli_support import print_json, run_cli, write_atomic
 from .analysis import analyze
 from .modelpack import model_format_for, pack_model
 from .store import Store
-from .study import issue_request
+from .study import analysis_specs, issue_request
 
 
 def _read(path: Path, what: str) -> bytes:
@@ -111,7 +111,25 @@ def _self_ring_unverified(data: bytes, source: str) -> KeyRing | None:
 
 
 def cmd_request_new(args: argparse.Namespace) -> int:
+    from federation.protocol import sha256_hex
+    from federation.protocol.documents import SubgroupSpec
+
     thresholds = tuple(_float_list(args.thresholds, "--thresholds")) if args.thresholds else ()
+    compare_bytes = _read(args.compare, "comparison bundle") if args.compare else None
+    subgroups = []
+    for text in args.subgroup or []:
+        variable, _, edges = text.partition("=")
+        raw = {"name": variable.strip(), **({"edges": _float_list(edges, "--subgroup")} if edges else {})}
+        subgroups.append(SubgroupSpec.from_dict(raw, f"--subgroup {variable.strip()[:64]}"))
+    specs = analysis_specs(
+        [name.strip() for name in args.analyses.split(",") if name.strip()],
+        thresholds,
+        tuple(_float_list(args.bands, "--bands")) if args.bands else (),
+        tuple(_float_list(args.margin_bands, "--margin-bands")) if args.margin_bands else (),
+        tuple(_float_list(args.calibration_bins, "--calibration-bins")) if args.calibration_bins else (),
+        tuple(subgroups),
+        sha256_hex(compare_bytes) if compare_bytes else "",
+    )
     document = issue_request(
         Store(args.store),
         args.study_id,
@@ -119,10 +137,15 @@ def cmd_request_new(args: argparse.Namespace) -> int:
         load_private_key(args.sign),
         thresholds,
         args.request_id,
+        specs,
+        compare_bytes,
     )
     write_atomic(args.out, document)
     request = Request.from_bytes(document, None, str(args.out))
     print(f"wrote {args.out} (study {request.study_id}, request {request.request_id})")
+    print(f"  analyses: {', '.join(a.name for a in request.analyses)}")
+    if request.compare_bundle_sha256:
+        print(f"  send {args.compare} with it: sites need both bundles for the paired comparison")
     return 0
 
 
@@ -134,8 +157,13 @@ def _float_list(text: str, flag: str) -> list[float]:
 
 
 def cmd_enrol(args: argparse.Namespace) -> int:
-    kid = Store(args.store).enrol(args.site_id, _read(args.key, "site public key"), str(args.key))
+    store = Store(args.store)
+    kid = store.enrol(args.site_id, _read(args.key, "site public key"), str(args.key))
     print(f"enrolled site {args.site_id} with release-signing key {kid}")
+    if args.node_key:
+        from .deploy.commands import enrol_node_key
+
+        enrol_node_key(store, args.site_id, args.node_key)
     return 0
 
 
@@ -191,6 +219,23 @@ def format_table(result: dict) -> str:
     return "\n".join(lines)
 
 
+def cmd_report(args: argparse.Namespace) -> int:
+    from federation.protocol.cli_support import EXIT_OK, EXIT_PARTIAL
+
+    from .report import write_report
+
+    report = write_report(args.store, args.out, args.study_id)
+    missing = report.enrolled_without_release
+    if args.json:
+        print_json({"out": str(args.out), **report.to_dict()})
+    else:
+        print(f"wrote {args.out} (study {report.study_id}: {len(report.sites)} site(s) released, "
+              f"{len(report.sites_pooled)} pooled)")
+        if missing:
+            print(f"no release yet from {len(missing)} enrolled site(s): {', '.join(missing)}")
+    return EXIT_PARTIAL if missing else EXIT_OK
+
+
 def cmd_demo(args: argparse.Namespace) -> int:
     # The demo drives both sides of the invented consortium, so it lives in `simulations`.
     from simulations.demo import run_demo
@@ -233,6 +278,23 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--bundle", type=Path, required=True, help="the signed model bundle the sites will run")
     p.add_argument("--sign", type=Path, required=True, help="coordinator private key")
     p.add_argument("--thresholds", help="comma-separated thresholds (default: the bundle's)")
+    p.add_argument(
+        "--analyses",
+        default="confusion",
+        help="comma-separated analyses: confusion, roc, calibration, margin, agreement, subgroups, paired "
+        "(default: confusion)",
+    )
+    p.add_argument(
+        "--subgroup",
+        action="append",
+        metavar="VAR[=EDGE,...]",
+        help="split results by a model input: a category (sex), or a number cut at edges (age_months=24,36); "
+        "repeatable; sites refuse variables their policy does not allow",
+    )
+    p.add_argument("--bands", help="comma-separated ROC score band edges (default: 0.05 steps for probabilities)")
+    p.add_argument("--margin-bands", help="comma-separated distances from the threshold for the margin analysis")
+    p.add_argument("--calibration-bins", help="comma-separated predicted-risk bin edges (default: deciles)")
+    p.add_argument("--compare", type=Path, metavar="OTHER.bundle", help="a second bundle for a paired comparison")
     p.add_argument("--request-id", help="request identifier (default: a random one)")
     p.add_argument("--out", type=Path, required=True, help="request file to write (send it to the sites)")
     p.set_defaults(handler=cmd_request_new)
@@ -241,6 +303,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--store", type=Path, required=True)
     p.add_argument("--site-id", required=True)
     p.add_argument("--key", type=Path, required=True, help="the site's site.pub")
+    p.add_argument("--node-key", type=Path, help="the site's node.pub: binds the site to its SuperNode (online)")
     p.set_defaults(handler=cmd_enrol)
 
     p = sub.add_parser("ingest", help="verify and store signed releases (all or none)")
@@ -253,6 +316,25 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--study-id", help="which study (needed when the store holds several)")
     p.add_argument("--json", action="store_true", help="JSON on stdout")
     p.set_defaults(handler=cmd_analyze)
+
+    p = sub.add_parser(
+        "report",
+        help="write the validation report: one self-contained HTML file from the study store",
+        description="Write the validation report (summary, participant flow, forest plots, methods, cautions, "
+        "and the data behind every figure as CSV) to one HTML file that opens offline in any browser. It is "
+        "built from the store alone and every stored release's signature is checked again. Exit codes: 0 "
+        "written; 1 bad input (no store, no such study, no releases); 2 a stored release no longer verifies; "
+        "3 written, but some enrolled sites have sent no release for this study.",
+    )
+    p.add_argument("--store", type=Path, required=True, help="study store (SQLite file made by the other commands)")
+    p.add_argument("--study-id", help="which study (needed when the store holds several)")
+    p.add_argument("--out", type=Path, required=True, help="HTML file to write, e.g. report.html")
+    p.add_argument("--json", action="store_true", help="print what was written as JSON (sites, sections)")
+    p.set_defaults(handler=cmd_report)
+
+    from .deploy.commands import add_deploy_commands
+
+    add_deploy_commands(sub)
 
     p = sub.add_parser("demo", help="run the invented demo consortium end to end")
     p.add_argument("--out", type=Path, required=True, help="folder for the demo's data, sites, store and releases")

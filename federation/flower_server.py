@@ -27,7 +27,7 @@ MESSAGE_TYPE = "query.validate"
 class SiteOutcome:
     node_id: int
     site_id: str
-    status: str  # released | refused | rejected | unreachable
+    status: str  # released | pending (held for the site's approval) | refused | rejected | unreachable
     reason: str = ""
 
 
@@ -37,6 +37,7 @@ class RoundConfig:
     request_bytes: bytes
     bundle_bytes: bytes
     min_sites: int = 1
+    compare_bundle_bytes: bytes | None = None  # the second bundle of a paired request
     wait_for_sites_s: float = 60.0
     deadline_s: float = 600.0
     poll_s: float = 0.2
@@ -53,7 +54,10 @@ def run_round(grid: Grid, config: RoundConfig) -> list[SiteOutcome]:
         time.sleep(config.poll_s)
     if len(node_ids) < config.min_sites:
         raise ValidationToolError(f"only {len(node_ids)} sites connected; the study needs {config.min_sites}")
-    content = RecordDict({"request": ConfigRecord({"request": config.request_bytes, "bundle": config.bundle_bytes})})
+    fields = {"request": config.request_bytes, "bundle": config.bundle_bytes}
+    if config.compare_bundle_bytes is not None:
+        fields["compare_bundle"] = config.compare_bundle_bytes
+    content = RecordDict({"request": ConfigRecord(fields)})
     messages = [
         Message(content, dst_node_id=node, message_type=MESSAGE_TYPE, ttl=config.deadline_s) for node in node_ids
     ]
@@ -88,6 +92,8 @@ def _record(store: Store, node: int, reply: Message) -> SiteOutcome:
     except KeyError:
         return SiteOutcome(node, "", "rejected", "reply holds no result")
     site_id = str(result.get("site_id", ""))
+    if result.get("status") == "pending":
+        return SiteOutcome(node, site_id, "pending", str(result.get("reason", ""))[:500])
     if result.get("status") != "released":
         return SiteOutcome(node, site_id, "refused", str(result.get("reason", ""))[:500])
     release = result.get("release")
@@ -118,12 +124,19 @@ app = ServerApp()
 @app.main()
 def main(grid: Grid, context: Context) -> None:
     """Deployment entry point: the study folder (run config ``study-dir``) holds request, bundle and store."""
+    if context.run_config.get("round-id"):
+        # Submitted by `federation run`: quorum, node-key binding, retries, per-site status in the store.
+        from federation.deploy.rounds import RoundSettings, run_deployed_round
+
+        run_deployed_round(grid, RoundSettings.from_run_config(context.run_config))
+        return
     study = Path(str(context.run_config["study-dir"]))
     config = RoundConfig(
         store_path=study / "study.db",
         request_bytes=(study / "request.json").read_bytes(),
         bundle_bytes=(study / "model.bundle").read_bytes(),
         min_sites=int(context.run_config.get("min-sites", 1)),
+        compare_bundle_bytes=(study / "compare.bundle").read_bytes() if (study / "compare.bundle").exists() else None,
     )
     outcomes = run_round(grid, config)
     (study / "round.json").write_text(json.dumps([asdict(o) for o in outcomes], indent=2))

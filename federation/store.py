@@ -36,6 +36,17 @@ CREATE TABLE IF NOT EXISTS releases (
     release_sha256 TEXT PRIMARY KEY, request_id TEXT NOT NULL REFERENCES requests(request_id),
     study_id TEXT NOT NULL, site_id TEXT NOT NULL REFERENCES sites(site_id), document BLOB NOT NULL,
     ingested_at TEXT NOT NULL, UNIQUE (request_id, site_id));
+CREATE TABLE IF NOT EXISTS site_nodes (
+    site_id TEXT PRIMARY KEY REFERENCES sites(site_id), node_key_sha256 TEXT NOT NULL UNIQUE,
+    node_public_key BLOB NOT NULL, bound_at TEXT NOT NULL);
+CREATE TABLE IF NOT EXISTS rounds (
+    round_id TEXT PRIMARY KEY, request_id TEXT NOT NULL REFERENCES requests(request_id), kind TEXT NOT NULL,
+    min_sites INTEGER NOT NULL, deadline_s REAL NOT NULL, state TEXT NOT NULL, note TEXT NOT NULL,
+    run_id TEXT, started_at TEXT NOT NULL, updated_at TEXT NOT NULL);
+CREATE TABLE IF NOT EXISTS round_sites (
+    round_id TEXT NOT NULL REFERENCES rounds(round_id), site_id TEXT NOT NULL, status TEXT NOT NULL,
+    reason TEXT NOT NULL, node_id TEXT, attempts INTEGER NOT NULL, updated_at TEXT NOT NULL,
+    PRIMARY KEY (round_id, site_id));
 """
 
 
@@ -172,3 +183,72 @@ class Store:
     def answered(self, request_id: str) -> set[str]:
         rows = self._db.execute("SELECT site_id FROM releases WHERE request_id = ?", (request_id,))
         return {r[0] for r in rows}
+
+    # --- node keys (online sites): node key <-> site id <-> release-signing key ------------------------
+    def bind_node_key(self, site_id: str, node_key_sha256: str, node_public_key_pem: bytes, source: str) -> None:
+        """Bind an enrolled site to the node key its SuperNode authenticates with (one key per site)."""
+        with self.transaction() as db:
+            if db.execute("SELECT 1 FROM sites WHERE site_id = ?", (site_id,)).fetchone() is None:
+                raise IngestError(f"{source}: site {site_id!r} is not enrolled (enrol its release-signing key too)")
+            row = db.execute("SELECT node_key_sha256 FROM site_nodes WHERE site_id = ?", (site_id,)).fetchone()
+            if row and row[0] != node_key_sha256:
+                raise IngestError(f"site {site_id!r} is already bound to another node key ({row[0][:16]})")
+            query = "SELECT site_id FROM site_nodes WHERE node_key_sha256 = ?"
+            other = db.execute(query, (node_key_sha256,)).fetchone()
+            if other and other[0] != site_id:
+                raise IngestError(f"{source}: this node key is already bound to site {other[0]!r}")
+            db.execute(
+                "INSERT OR IGNORE INTO site_nodes VALUES (?, ?, ?, ?)",
+                (site_id, node_key_sha256, node_public_key_pem, _now()),
+            )
+
+    def node_keys(self) -> dict[str, tuple[str, bytes]]:
+        """Site id -> (SHA-256 of the node key's DER form, PEM public key), for every bound site."""
+        rows = self._db.execute("SELECT site_id, node_key_sha256, node_public_key FROM site_nodes ORDER BY site_id")
+        return {site: (digest, pem) for site, digest, pem in rows}
+
+    # --- rounds: what happened to each site when a request went out online ---------------------------
+    def start_round(self, round_id: str, request_id: str, kind: str, min_sites: int, deadline_s: float) -> None:
+        with self.transaction() as db:
+            db.execute(
+                "INSERT INTO rounds VALUES (?, ?, ?, ?, ?, 'submitted', '', NULL, ?, ?)",
+                (round_id, request_id, kind, min_sites, deadline_s, _now(), _now()),
+            )
+
+    def set_round(self, round_id: str, state: str | None, note: str | None = "", run_id: int | None = None) -> None:
+        """Update a round; ``None`` keeps the stored state or note."""
+        with self.transaction() as db:
+            db.execute(
+                "UPDATE rounds SET state = COALESCE(?, state), note = COALESCE(?, note), "
+                "run_id = COALESCE(?, run_id), updated_at = ? WHERE round_id = ?",
+                (state, note, None if run_id is None else str(run_id), _now(), round_id),
+            )
+
+    def set_round_site(
+        self, round_id: str, site_id: str, status: str, reason: str = "", node_id: int | None = None, sent: bool = False
+    ) -> None:
+        """Record a site's status in a round; ``sent`` counts one more attempt."""
+        with self.transaction() as db:
+            db.execute(
+                "INSERT INTO round_sites VALUES (?, ?, ?, ?, ?, ?, ?) ON CONFLICT (round_id, site_id) DO UPDATE SET "
+                "status = excluded.status, reason = excluded.reason, node_id = COALESCE(excluded.node_id, node_id), "
+                "attempts = attempts + excluded.attempts, updated_at = excluded.updated_at",
+                (round_id, site_id, status, reason[:500], None if node_id is None else str(node_id), int(sent), _now()),
+            )
+
+    def rounds(self, request_id: str) -> list[dict]:
+        rows = self._db.execute(
+            "SELECT round_id, kind, min_sites, deadline_s, state, note, run_id, started_at, updated_at FROM rounds "
+            "WHERE request_id = ? ORDER BY started_at, rowid",
+            (request_id,),
+        )
+        keys = ("round_id", "kind", "min_sites", "deadline_s", "state", "note", "run_id", "started_at", "updated_at")
+        return [dict(zip(keys, row, strict=True)) for row in rows]
+
+    def round_sites(self, round_id: str) -> dict[str, dict]:
+        rows = self._db.execute(
+            "SELECT site_id, status, reason, node_id, attempts, updated_at FROM round_sites WHERE round_id = ?",
+            (round_id,),
+        )
+        keys = ("status", "reason", "node_id", "attempts", "updated_at")
+        return {row[0]: dict(zip(keys, row[1:], strict=True)) for row in rows}

@@ -1,0 +1,290 @@
+"""One online round, run by the ServerApp inside the SuperLink: quorum, sending, collecting, retrying.
+
+Every enrolled site whose node key is bound in the store and that has not yet released for the study's
+request is a *target*. The round
+
+1. waits (until the deadline) for a quorum: released-before plus connected targets >= ``min-sites``;
+2. sends the request to each target's node as soon as it is online (nodes are matched to sites by their
+   node key, never by the name a node gives itself), and sends again only when Flower reports the
+   message undeliverable (node gone, message expired, ClientApp crashed) and the node is back;
+3. collects replies by message id and records each site in the store as it happens: ``released``
+   (the release was ingested), ``pending`` (held at the site for a person's approval; ``--resume`` asks
+   again), ``refused`` (the site's reason), ``rejected`` (the coordinator refused the release: wrong key,
+   wrong site for this node, replay), or, at the deadline, ``unreachable``;
+4. never waits past the deadline.
+
+Because every outcome is written when it happens, a round cut short (SuperLink stopped, run stopped)
+leaves an exact record; ``federation run --resume`` starts a new round for the same request that asks
+only the sites that have not released.
+"""
+
+from __future__ import annotations
+
+import re
+import time
+from collections.abc import Mapping
+from dataclasses import dataclass, field
+from pathlib import Path
+
+from flwr.app import ConfigRecord, Message, RecordDict
+from flwr.common.constant import ErrorCode
+from flwr.serverapp import Grid
+
+from federation.protocol import Release, Request, ValidationToolError
+from federation.store import Store
+
+from .nodes import fingerprint_of_reported
+
+VALIDATE = "validate"
+PING = "ping"  # a trivial query: measures Flower's own round floor on the same deployment
+MESSAGE_TYPES = {VALIDATE: "query.validate", PING: "query.ping"}
+# Final within a round; ``pending`` (held for a person's approval at the site) is asked again by --resume.
+FINAL = {"released", "refused", "rejected", "pending", "answered"}
+RETRY_CODES = {ErrorCode.NODE_UNAVAILABLE, ErrorCode.MESSAGE_UNAVAILABLE, ErrorCode.CLIENT_APP_CRASHED}
+_CLIENTAPP_REASON = re.compile(r"^<class '[\w.]+'>:<'(.*)'>$", re.DOTALL)
+
+
+@dataclass(frozen=True)
+class RoundSettings:
+    study_dir: Path
+    round_id: str
+    kind: str = VALIDATE
+    min_sites: int = 1
+    deadline_s: float = 600.0
+    poll_s: float = 0.2
+
+    @classmethod
+    def from_run_config(cls, run_config: Mapping[str, object]) -> RoundSettings:
+        kind = str(run_config.get("round-kind", VALIDATE))
+        if kind not in MESSAGE_TYPES:
+            raise ValidationToolError(f"run config round-kind: must be one of {', '.join(MESSAGE_TYPES)}")
+        return cls(
+            study_dir=Path(str(run_config["study-dir"])),
+            round_id=str(run_config["round-id"]),
+            kind=kind,
+            min_sites=int(run_config.get("min-sites", 1)),  # type: ignore[call-overload]
+            deadline_s=float(run_config.get("deadline-s", 600.0)),  # type: ignore[arg-type]
+            poll_s=float(run_config.get("poll-s", 0.2)),  # type: ignore[arg-type]
+        )
+
+
+@dataclass
+class _Target:
+    site_id: str
+    fingerprint: str
+    status: str = "waiting"
+    node_id: int | None = None
+    retry: bool = False
+
+
+@dataclass
+class RoundResult:
+    state: str
+    released_total: int
+    statuses: dict[str, str] = field(default_factory=dict)
+
+
+def clientapp_reason(reason: str) -> str:
+    """The message a ClientApp error carries, without Flower's ``<class ...>:<'...'>`` wrapping."""
+    match = _CLIENTAPP_REASON.match(reason.strip())
+    return (match.group(1) if match else reason.strip())[:500]
+
+
+def check_release_binding(release_bytes: bytes, expected_site: str, node_id: int) -> str | None:
+    """Why a release may not be accepted from this node, or None: a node speaks only for its bound site."""
+    try:
+        release = Release.from_bytes(release_bytes, f"release from node {node_id}")
+    except ValidationToolError as exc:
+        return str(exc)
+    if release.site_id != expected_site:
+        return f"node {node_id} is bound to site {expected_site!r} but its release claims site {release.site_id!r}"
+    return None
+
+
+class DeployedRound:
+    """The round's state machine; :meth:`run` drives it against a Flower ``Grid``."""
+
+    def __init__(self, grid: Grid, settings: RoundSettings) -> None:
+        self.grid = grid
+        self.settings = settings
+        study = settings.study_dir
+        self.store = Store(study / "study.db")
+        self.request_bytes = (study / "request.json").read_bytes()
+        self.bundle_bytes = (study / "model.bundle").read_bytes()
+        compare = study / "compare.bundle"  # the second bundle of a paired request, when the study has one
+        self.compare_bundle_bytes = compare.read_bytes() if compare.exists() else None
+        self.request = Request.from_bytes(self.request_bytes, None, str(study / "request.json"))
+        released = self.store.answered(self.request.request_id) if settings.kind == VALIDATE else set()
+        self.released_before = len(released)
+        self.targets = {
+            site: _Target(site, fingerprint)
+            for site, (fingerprint, _) in self.store.node_keys().items()
+            if site not in released
+        }
+        self.by_message: dict[str, _Target] = {}
+
+    # --- bookkeeping ------------------------------------------------------------------------------------
+    def _set(self, target: _Target, status: str, reason: str = "", sent: bool = False) -> None:
+        target.status = status
+        self.store.set_round_site(self.settings.round_id, target.site_id, status, reason, target.node_id, sent)
+
+    def _online(self) -> dict[str, int]:
+        """Fingerprint -> node id of every online node."""
+        online = {}
+        for info in self.grid.get_nodes():
+            fingerprint = fingerprint_of_reported(bytes(info.public_key))
+            if fingerprint:
+                online[fingerprint] = int(info.node_id)
+        return online
+
+    def _released_total(self) -> int:
+        return self.released_before + sum(t.status in ("released", "answered") for t in self.targets.values())
+
+    # --- the round --------------------------------------------------------------------------------------
+    def run(self) -> RoundResult:
+        settings = self.settings
+        end = time.monotonic() + settings.deadline_s
+        mine = [r for r in self.store.rounds(self.request.request_id) if r["round_id"] == settings.round_id]
+        if not mine or mine[0]["state"] != "submitted":
+            # Not a round `federation run` is waiting for (e.g. a stale run restarted): ask nobody.
+            return RoundResult("ignored", self.released_before)
+        for target in self.targets.values():
+            self._set(target, "waiting")
+        self.store.set_round(settings.round_id, "waiting", f"waiting for {settings.min_sites} sites")
+        while True:
+            online = self._online()
+            connected = sum(t.fingerprint in online for t in self.targets.values())
+            if self.released_before + connected >= settings.min_sites or not self.targets:
+                break
+            if time.monotonic() >= end:
+                return self._finish(
+                    f"quorum not reached before the deadline: {connected} of {len(self.targets)} "
+                    f"sites connected, {settings.min_sites} needed"
+                )
+            time.sleep(settings.poll_s)
+        self.store.set_round(settings.round_id, "running", f"sending to {len(self.targets)} sites")
+        while any(t.status not in FINAL for t in self.targets.values()) and time.monotonic() < end:
+            self._send(self._online(), end)
+            self._collect()
+            time.sleep(settings.poll_s)
+        return self._finish("")
+
+    def _send(self, online: dict[str, int], end: float) -> None:
+        # Send once per site, and again only after Flower said the message could not be delivered or run
+        # (node gone, message expired, ClientApp crashed). Never on a guess: a second copy of a message the
+        # node already holds would be refused by the site's ledger as a replay and hide the first answer.
+        batch = []
+        for target in self.targets.values():
+            if target.status in FINAL or target.fingerprint not in online:
+                continue
+            if target.status == "sent" or (target.status == "unreachable" and not target.retry):
+                continue
+            target.node_id = online[target.fingerprint]
+            batch.append(target)
+        if not batch:
+            return
+        ttl = max(1.0, end - time.monotonic())
+        messages = [Message(self._content(), dst_node_id=t.node_id, message_type=self._type(), ttl=ttl) for t in batch]
+        for target, message_id in zip(batch, self.grid.push_messages(messages), strict=True):
+            if not message_id:
+                self._set(target, "unreachable", "message could not be queued at the SuperLink")
+                target.retry = True
+                continue
+            target.retry = False
+            self.by_message[message_id] = target
+            self._set(target, "sent", f"sent to node {target.node_id}", sent=True)
+
+    def _content(self) -> RecordDict:
+        if self.settings.kind == PING:
+            return RecordDict({"ping": ConfigRecord({"round": self.settings.round_id})})
+        fields = {"request": self.request_bytes, "bundle": self.bundle_bytes}
+        if self.compare_bundle_bytes is not None:
+            fields["compare_bundle"] = self.compare_bundle_bytes
+        return RecordDict({"request": ConfigRecord(fields)})
+
+    def _type(self) -> str:
+        return MESSAGE_TYPES[self.settings.kind]
+
+    def _collect(self) -> None:
+        if not self.by_message:
+            return
+        for reply in self.grid.pull_messages(list(self.by_message)):
+            target = self.by_message.pop(reply.metadata.reply_to_message_id, None)
+            if target is not None:
+                self._classify(target, reply)
+
+    def _classify(self, target: _Target, reply: Message) -> None:
+        if self.settings.kind == PING:
+            # The floor round: any answer from the node's ClientApp process counts, error or not.
+            self._set(target, "answered")
+            return
+        if reply.has_error():
+            code, reason = int(reply.error.code), clientapp_reason(str(reply.error.reason))
+            if code in RETRY_CODES:
+                target.retry = True
+                self._set(target, "unreachable", f"Flower error code {code}; will retry while the deadline allows")
+            elif code == ErrorCode.CLIENT_APP_RAISED_EXCEPTION:
+                self._set(target, "refused", reason or "the site's app runner refused the message")
+            elif code == ErrorCode.INVALID_FAB:
+                self._set(target, "refused", "the app bundle failed the site's verification")
+            elif code == ErrorCode.LOAD_CLIENT_APP_EXCEPTION:
+                self._set(target, "refused", "the site could not load the validation app")
+            else:
+                target.retry = True
+                self._set(target, "unreachable", f"Flower error code {code}")
+            return
+        try:
+            result = reply.content.config_records["result"]
+        except KeyError:
+            self._set(target, "rejected", "the reply holds no result")
+            return
+        if result.get("status") == "pending":
+            self._set(target, "pending", str(result.get("reason", ""))[:500] or "held for approval at the site")
+            return
+        if result.get("status") != "released":
+            self._set(target, "refused", str(result.get("reason", ""))[:500] or "refused without a reason")
+            return
+        release = result.get("release")
+        if not isinstance(release, bytes):
+            self._set(target, "rejected", "the reply holds no release")
+            return
+        problem = check_release_binding(release, target.site_id, int(target.node_id or 0))
+        if problem:
+            self._set(target, "rejected", problem)
+            return
+        try:
+            self.store.ingest([(release, f"release from node {target.node_id} (site {target.site_id})")])
+        except ValidationToolError as exc:
+            self._set(target, "rejected", str(exc))
+            return
+        self._set(target, "released")
+
+    def _finish(self, note: str) -> RoundResult:
+        for target in self.targets.values():
+            if target.status in FINAL:
+                continue
+            reason = (
+                "no reply before the deadline"
+                if target.status == "sent"
+                else "did not connect before the deadline"
+                if target.status == "waiting"
+                else "still unreachable at the deadline"
+            )
+            self._set(target, "unreachable", reason)
+        total = self._released_total()
+        state = "complete" if total >= self.settings.min_sites else "no-quorum"
+        if not note:
+            note = f"{total} released of {self.released_before + len(self.targets)} bound sites"
+        self.store.set_round(self.settings.round_id, state, note)
+        return RoundResult(state, total, {t.site_id: t.status for t in self.targets.values()})
+
+    def close(self) -> None:
+        self.store.close()
+
+
+def run_deployed_round(grid: Grid, settings: RoundSettings) -> RoundResult:
+    round_ = DeployedRound(grid, settings)
+    try:
+        return round_.run()
+    finally:
+        round_.close()

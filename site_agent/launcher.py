@@ -1,0 +1,150 @@
+"""The site's own ``flwr-clientapp``: runs an app bundle only if the site listed its SHA-256.
+
+Flower's SuperNode runs whatever app bundle (FAB) the coordinator submitted: for every message its app
+runner starts ``flwr-clientapp`` (found on ``PATH``), which installs and imports the bundle. Flower 1.42 has
+no hash allowlist (its ``--trusted-entities`` accepts only bundles signed through Flower's online hub), so
+``site-agent join`` puts this launcher first on the app runner's ``PATH`` under that name. It:
+
+1. reads the allowlist from ``site.toml [app] allowed_fab_sha256`` afresh for every message;
+2. hands over to Flower's own entry point with the bundle installer wrapped, so the SHA-256 of the exact
+   bytes about to be installed is checked before anything in them is unpacked or imported;
+3. refuses an unlisted bundle: the refusal is written to the site ledger and travels back to the
+   coordinator as the ClientApp's error (its text names the hash and the rule, nothing else);
+4. exits when the process that started it (the app runner) goes away, so a hung ClientApp does not
+   outlive its node.
+
+The wrapped installer (``flwr.supernode.runtime.run_clientapp.install_from_fab``) is Flower-internal;
+``flwr==1.42.0`` is pinned for that reason and a test runs the real launcher against a real SuperNode.
+
+``build_app_bundle`` builds the bundle the coordinator submits from this installation, byte for byte as
+``federation.deploy.fab`` does (the site agent may import only ``federation.protocol``), so site IT can pin
+the hash of the code they reviewed: ``site-agent app hash``.
+"""
+
+from __future__ import annotations
+
+import argparse
+import hashlib
+import importlib
+import os
+import sys
+from collections.abc import Sequence
+from importlib.metadata import PackageNotFoundError, version
+from pathlib import Path
+
+from federation.protocol import PolicyViolation, ValidationToolError
+
+from . import ledger
+from .config import load_site
+
+DISTRIBUTION = "multisite-validation"
+APP_NAME = "msv-validation-app"
+PUBLISHER = "multisite-validation"
+RUN_CONFIG_DEFAULTS: tuple[tuple[str, str], ...] = (
+    ("study-dir", '""'),
+    ("round-id", '""'),
+    ("round-kind", '"validate"'),
+    ("min-sites", "1"),
+    ("deadline-s", "600.0"),
+    ("poll-s", "0.2"),
+)
+
+
+class AppBundleRefused(PolicyViolation):
+    """The coordinator's app bundle is not one this site listed in ``[app] allowed_fab_sha256``."""
+
+
+def _installed_version(name: str) -> str:
+    try:
+        return version(name)
+    except PackageNotFoundError:
+        raise ValidationToolError(f"package {name!r} is not installed; install it to build the app bundle") from None
+
+
+def app_pyproject(package_version: str, flwr_version: str) -> str:
+    """The bundle's only file. Keep byte-identical with ``federation.deploy.fab.app_pyproject``."""
+    config = "".join(f"{key} = {value}\n" for key, value in RUN_CONFIG_DEFAULTS)
+    return (
+        "[project]\n"
+        f'name = "{APP_NAME}"\n'
+        f'version = "{package_version}"\n'
+        'description = "Validation rounds: runs the installed coordinator and site agent, carries no code"\n'
+        'license = "Apache-2.0"\n'
+        f'dependencies = ["{DISTRIBUTION}=={package_version}", "flwr=={flwr_version}"]\n'
+        "\n"
+        "[tool.flwr.app]\n"
+        f'publisher = "{PUBLISHER}"\n'
+        "\n"
+        "[tool.flwr.app.components]\n"
+        'serverapp = "federation.flower_server:app"\n'
+        'clientapp = "site_agent.flower_client:app"\n'
+        "\n"
+        "[tool.flwr.app.config]\n" + config
+    )
+
+
+def build_app_bundle() -> tuple[bytes, str]:
+    """The FAB built from this installation and its SHA-256 (deterministic: same versions, same bytes)."""
+    from flwr.cli.build import build_fab_from_files
+
+    text = app_pyproject(_installed_version(DISTRIBUTION), _installed_version("flwr"))
+    content, _ = build_fab_from_files({"pyproject.toml": text.encode("utf-8")})
+    return content, hashlib.sha256(content).hexdigest()
+
+
+def check_app_bundle(site_dir: Path, content: bytes) -> str:
+    """Return the bundle's SHA-256 if the site allows it; otherwise record the refusal and raise."""
+    digest = hashlib.sha256(content).hexdigest()
+    site = load_site(site_dir)
+    if digest in site.allowed_fab_sha256:
+        return digest
+    reason = (
+        f"site {site.site_id}: app bundle sha256 {digest} is not in this site's allowlist "
+        "(site.toml [app] allowed_fab_sha256)"
+    )
+    ledger.append(
+        site.ledger_path,
+        site.private_key(),
+        "refusal",
+        {"reason": reason, "error": AppBundleRefused.__name__, "app_bundle_sha256": digest},
+    )
+    raise AppBundleRefused(reason)
+
+
+def _watch_parent() -> None:
+    """Exit when the app runner that started this process is gone (it is re-parented on Linux)."""
+    from flwr.supercore.app_utils import start_parent_process_monitor
+
+    start_parent_process_monitor(os.getppid())
+
+
+def main(argv: Sequence[str] | None = None) -> None:
+    """Entry point ``site-agent-clientapp --site SITEDIR [flwr-clientapp arguments ...]``."""
+    parser = argparse.ArgumentParser(
+        prog="site-agent-clientapp",
+        description="Run one Flower ClientApp task if the app bundle's SHA-256 is in the site's allowlist. "
+        "Started by the site's app runner in place of flwr-clientapp (see `site-agent join`).",
+    )
+    parser.add_argument("--site", type=Path, required=True, help="site folder (its site.toml holds the allowlist)")
+    args, flower_args = parser.parse_known_args(argv)
+    site_dir = args.site.resolve()
+
+    # Import the modules, not the same-named functions the package re-exports.
+    entry = importlib.import_module("flwr.supernode.cli.flwr_clientapp")
+    runtime = importlib.import_module("flwr.supernode.runtime.run_clientapp")
+
+    flower_install = runtime.install_from_fab
+
+    def install_checked(fab_file: Path | bytes, *more: object, **options: object) -> Path:
+        content = fab_file.read_bytes() if isinstance(fab_file, Path) else fab_file
+        check_app_bundle(site_dir, content)
+        return flower_install(content, *more, **options)
+
+    runtime.install_from_fab = install_checked
+    _watch_parent()
+    sys.argv = ["flwr-clientapp", *flower_args]
+    entry.flwr_clientapp()
+
+
+if __name__ == "__main__":
+    main()

@@ -1,0 +1,122 @@
+"""Measure once: a validation round against Flower's own floor, 10 sites on loopback, same deployment.
+
+Not collected by pytest (a measurement, not a check). Run with
+``.venv/bin/python -m tests.deploy.measure_round [--rounds N] [--out DIR]``. It starts a TLS SuperLink and
+10 authenticated SuperNodes (the invented consortium's 8 sites plus 2 more reading two sites' data under
+new site ids), then alternates a trivial query round (``federation run --ping``: every node starts its
+ClientApp process and answers, nothing is computed) and a validation round (a fresh request each time),
+and prints the wall time of each and the ratio of medians. Every process is stopped by PID at the end.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import statistics
+import tempfile
+from pathlib import Path
+
+from federation.deploy.commands import enrol_node_key
+from federation.deploy.runs import RunOptions, run_study
+from federation.protocol import load_private_key
+from federation.protocol.cli_support import write_atomic
+from federation.store import Store
+from federation.study import issue_request
+from simulations.demo import prepare_study, set_site_data
+from site_agent.config import init_site
+from site_agent.launcher import build_app_bundle
+
+from .harness import BIN, Fleet, free_port, port_listening, processes_under, wait_until
+
+EXTRA_SITES = (("northvale-annex", "northvale-community"), ("quillbrook-annex", "quillbrook-community"))
+
+
+def measure(out: Path, rounds: int, task_poll: str) -> dict:
+    study = prepare_study(out / "study")
+    coordinator = study.root / "coordinator"
+    sites = {d.name: d for d in study.site_dirs}
+    store = Store(study.store_path)
+    for new_id, like in EXTRA_SITES:
+        folder = init_site(study.root / "site-folders" / new_id, new_id, [coordinator / "coordinator.pub"])
+        source = next(s for s in study.consortium.sites if s.site_id == like)
+        set_site_data(folder, source.data_path, source.mapping_path)
+        store.enrol(new_id, (folder / "site.pub").read_bytes(), "site.pub")
+        sites[new_id] = folder
+    store.close()
+    _, digest = build_app_bundle()
+    for folder in sites.values():
+        config = folder / "site.toml"
+        config.write_text(config.read_text().replace("allowed_fab_sha256 = []", f'allowed_fab_sha256 = ["{digest}"]'))
+    fleet = Fleet(out)
+    port = free_port()
+    result = fleet.run([str(BIN / "federation"), "certs", "new", "--out", str(coordinator / "certs")], 60)
+    assert result.returncode == 0, result.stderr
+    times: dict[str, list[float]] = {"ping": [], "validate": []}
+    try:
+        serve = [str(BIN / "federation"), "serve", "--study", str(coordinator), "--port", str(port)]
+        fleet.start("superlink", [*serve, "--task-poll", task_poll])
+        wait_until(lambda: port_listening(port), 60, "the SuperLink")
+        store = Store(study.store_path)
+        for name, folder in sites.items():
+            enrol_node_key(store, name, folder / "node.pub")
+        store.close()
+        for name, folder in sites.items():
+            fleet.start(
+                f"join-{name}",
+                [
+                    str(BIN / "site-agent"),
+                    "join",
+                    "--superlink",
+                    f"127.0.0.1:{port}",
+                    "--site",
+                    str(folder),
+                    "--root-certificates",
+                    str(coordinator / "certs" / "ca.crt"),
+                    "--task-poll",
+                    task_poll,
+                ],
+            )
+        options = RunOptions(study=coordinator, deadline_s=300)
+        first = run_study(RunOptions(study=coordinator, deadline_s=300, kind="ping"), lambda line: None)
+        assert first.state == "complete", first.to_dict()  # warm-up: every node connected and answering
+        key = load_private_key(coordinator / "coordinator.key")
+        for index in range(rounds):
+            ping = run_study(RunOptions(study=coordinator, deadline_s=300, kind="ping"), lambda line: None)
+            assert ping.state == "complete", ping.to_dict()
+            times["ping"].append(ping.wall_s)
+            store = Store(study.store_path)
+            document = issue_request(store, f"measure-{index}", study.bundle_bytes, key)
+            store.close()
+            write_atomic(coordinator / "request.json", document)
+            validate = run_study(options, lambda line: None)
+            assert validate.state == "complete" and validate.released == len(sites), validate.to_dict()
+            times["validate"].append(validate.wall_s)
+            print(f"round {index + 1}: floor {ping.wall_s:.2f} s, validation {validate.wall_s:.2f} s", flush=True)
+    finally:
+        fleet.stop_all()
+        wait_until(lambda: not processes_under(out), 30, "every process to exit")
+    floor, validation = statistics.median(times["ping"]), statistics.median(times["validate"])
+    return {
+        "sites": len(sites),
+        "rounds": rounds,
+        "task_poll_s": float(task_poll),
+        "floor_s": times["ping"],
+        "validation_s": times["validate"],
+        "median_floor_s": round(floor, 2),
+        "median_validation_s": round(validation, 2),
+        "ratio": round(validation / floor, 2),
+    }
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--rounds", type=int, default=3)
+    parser.add_argument("--task-poll", default="0.2", help="app runners' task polling in seconds (Flower: 1)")
+    parser.add_argument("--out", type=Path, help="working folder (default: a new temporary folder)")
+    args = parser.parse_args()
+    out = args.out or Path(tempfile.mkdtemp(prefix="msv-measure-"))
+    print(json.dumps(measure(out, args.rounds, args.task_poll), indent=2))
+
+
+if __name__ == "__main__":
+    main()

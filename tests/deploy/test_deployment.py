@@ -1,0 +1,438 @@
+"""Flower's deployment engine for real: a TLS SuperLink and authenticated SuperNodes on loopback.
+
+One module-scoped deployment (the invented consortium, 3 sites that allow the app bundle plus 1 that does
+not) serves four scenarios in order; each test starts from what the previous ones left and says so.
+The reference for "same result" is outside the online path: the offline command-line path
+(``simulations.demo.run_offline``) on a second copy of the same invented data.
+
+Every process is started here, found through its environment (:mod:`tests.deploy.harness`), stopped by
+PID in teardown, and teardown asserts that none is left and the SuperLink's port is free.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import re
+import signal
+import socket
+import ssl
+import subprocess
+from dataclasses import dataclass, replace
+from pathlib import Path
+
+import pytest
+
+from federation.analysis import analyze
+from federation.deploy.commands import enrol_node_key
+from federation.deploy.nodes import parse_node_key
+from federation.deploy.superlink import LinkSettings, registered_nodes
+from federation.protocol import load_private_key, sha256_hex
+from federation.protocol.cli_support import write_atomic
+from federation.store import Store
+from federation.study import issue_request
+from simulations.demo import DemoStudy, prepare_study, run_offline
+from site_agent import ledger
+from site_agent.config import init_site, load_site
+from site_agent.launcher import build_app_bundle
+
+from .harness import (
+    BIN,
+    Fleet,
+    children,
+    cmdline,
+    free_port,
+    gone,
+    port_is_free,
+    port_listening,
+    processes_under,
+    wait_until,
+)
+
+ALLOWING = ("vellacombe-primary", "brackenholt-specialist", "amberlow-referral")
+KILLED = "amberlow-referral"  # the site killed mid-round, and again absent when the SuperLink restarts
+REFUSING = "skarrow-specialist"  # enrolled and online, but its allowlist lacks the bundle
+PER_RUN_FIELDS = {"study_id", "request_id", "bundle_sha256", "created_at", "site_key_id", "signature"}
+PER_RUN_POLICY_FIELDS = {"trusted_coordinator_keys", "policy_sha256"}
+TASK_POLL = "0.2"  # the app runners' task polling; Flower's default is 1 s
+
+
+@dataclass
+class Deployment:
+    root: Path
+    study: DemoStudy
+    coordinator: Path
+    sites: dict[str, Path]
+    reference: DemoStudy
+    fleet: Fleet
+    port: int
+    fab_sha256: str
+
+    @property
+    def ca(self) -> Path:
+        return self.coordinator / "certs" / "ca.crt"
+
+    def start_superlink(self) -> None:
+        argv = [str(BIN / "federation"), "serve", "--study", str(self.coordinator), "--port", str(self.port)]
+        process = self.fleet.start("superlink", [*argv, "--task-poll", TASK_POLL])
+        wait_until(lambda: port_listening(self.port) or process.poll() is not None, 60, "the SuperLink's port")
+        assert process.poll() is None, self.fleet.log("superlink")
+
+    def join(self, site: str, *extra: str) -> subprocess.Popen[bytes]:
+        argv = [
+            str(BIN / "site-agent"),
+            "join",
+            "--superlink",
+            f"127.0.0.1:{self.port}",
+            "--site",
+            str(self.sites[site]),
+        ]
+        return self.fleet.start(
+            f"join-{site}", [*argv, "--root-certificates", str(self.ca), "--task-poll", TASK_POLL, *extra]
+        )
+
+    def online(self) -> set[str]:
+        """Sites whose node the SuperLink lists as online (matched by node key, as the ServerApp does)."""
+        nodes = registered_nodes(LinkSettings(f"127.0.0.1:{self.port}", self.ca))
+        online = set()
+        for site, folder in self.sites.items():
+            key = parse_node_key((folder / "node.pub").read_bytes(), site)
+            if nodes.get(key.fingerprint, (0, ""))[1] == "online":
+                online.add(site)
+        return online
+
+    def federation_run(self, *args: str, timeout_s: float = 240) -> tuple[int, dict]:
+        argv = [str(BIN / "federation"), "run", "--study", str(self.coordinator), "--json", *args]
+        result = self.fleet.run(argv, timeout_s)
+        assert result.stdout.strip(), result.stderr
+        return result.returncode, json.loads(result.stdout)
+
+    def enrol(self, site: str, folder: Path) -> subprocess.CompletedProcess[str]:
+        """`federation enrol --node-key`: binds the node key and, with the SuperLink up, registers it."""
+        argv = [str(BIN / "federation"), "enrol", "--store", str(self.coordinator / "study.db"), "--site-id", site]
+        result = self.fleet.run([*argv, "--key", str(folder / "site.pub"), "--node-key", str(folder / "node.pub")], 60)
+        assert result.returncode == 0, result.stderr
+        return result
+
+    def new_request(self, study_id: str) -> bytes:
+        """Issue a new request (what `federation request new --out STUDY/request.json` does)."""
+        store = Store(self.coordinator / "study.db")
+        try:
+            bundle = (self.coordinator / "model.bundle").read_bytes()
+            key = load_private_key(self.coordinator / "coordinator.key")
+            document = issue_request(store, study_id, bundle, key)
+        finally:
+            store.close()
+        write_atomic(self.coordinator / "request.json", document)
+        return document
+
+
+def _allow(site_dir: Path, digest: str) -> None:
+    config = site_dir / "site.toml"
+    config.write_text(config.read_text().replace("allowed_fab_sha256 = []", f'allowed_fab_sha256 = ["{digest}"]'))
+
+
+@pytest.fixture(scope="module")
+def deployment(tmp_path_factory: pytest.TempPathFactory):  # noqa: ANN201
+    root = tmp_path_factory.mktemp("deploy")
+    study = prepare_study(root / "online")
+    reference = prepare_study(root / "offline")
+    coordinator = study.root / "coordinator"
+    fleet = Fleet(root)
+    sites = {d.name: d for d in study.site_dirs if d.name in (*ALLOWING, REFUSING)}
+    _, digest = build_app_bundle()
+    for name in ALLOWING:
+        _allow(sites[name], digest)
+    made = fleet.run([str(BIN / "federation"), "certs", "new", "--out", str(coordinator / "certs")], 60)
+    assert made.returncode == 0, made.stderr
+    deployment = Deployment(root, study, coordinator, sites, reference, fleet, free_port(), digest)
+    try:
+        deployment.start_superlink()
+        deployment.enrol(REFUSING, sites[REFUSING])  # the command line once; the same function for the rest
+        store = Store(coordinator / "study.db")
+        try:
+            for name in ALLOWING:
+                enrol_node_key(store, name, sites[name] / "node.pub")
+        finally:
+            store.close()
+        for name in sites:
+            deployment.join(name)
+        yield deployment
+    finally:
+        fleet.stop_all()
+        leftovers = wait_until_gone(root)
+        assert not leftovers, "processes left running: " + "; ".join(cmdline(p) for p in leftovers)
+        assert port_is_free(deployment.port), f"port {deployment.port} still in use"
+        for port in runtime_ports(deployment.sites.values()):  # each SuperNode's local Runtime API
+            assert port_is_free(port), f"runtime port {port} still in use"
+
+
+def runtime_ports(site_dirs) -> set[int]:  # noqa: ANN001
+    ports = set()
+    for folder in site_dirs:
+        log = folder / "runtime" / "supernode.log"
+        if log.exists():
+            ports |= {int(p) for p in re.findall(r"Uvicorn running on http://127\.0\.0\.1:(\d+)", log.read_text())}
+    return ports
+
+
+def wait_until_gone(root: Path, timeout_s: float = 20.0) -> list[int]:
+    try:
+        wait_until(lambda: not processes_under(root), timeout_s, "Flower processes to exit")
+    except AssertionError:
+        pids = processes_under(root)
+        for pid in pids:  # kill by PID so the next module starts clean, then report them
+            try:
+                os.kill(pid, signal.SIGKILL)
+            except ProcessLookupError:
+                pass
+        return pids
+    return []
+
+
+def _comparable(document: bytes) -> dict:
+    """A release without what differs between two runs of the same data (ids, times, keys, signatures)."""
+    release = {k: v for k, v in json.loads(document).items() if k not in PER_RUN_FIELDS}
+    if isinstance(release.get("policy"), dict):  # the two studies pin different (random) coordinator keys
+        release["policy"] = {k: v for k, v in release["policy"].items() if k not in PER_RUN_POLICY_FIELDS}
+    return release
+
+
+def _releases(store_path: Path, study_id: str) -> dict[str, bytes]:
+    store = Store(store_path)
+    try:
+        return {r.release.site_id: r.document for r in store.releases(study_id)}
+    finally:
+        store.close()
+
+
+def _round_entries(site_dir: Path, request_bytes: bytes) -> list[str]:
+    """The ledger events a site wrote for one request (request_received carries the request's SHA-256)."""
+    digest = sha256_hex(request_bytes)
+    events = []
+    for entry in ledger.read_entries(site_dir / "ledger.jsonl"):
+        details = entry.get("details", {})
+        if details.get("request_sha256") == digest or (
+            entry["event"] == "release" and details.get("request_id") == json.loads(request_bytes)["request_id"]
+        ):
+            events.append(entry["event"])
+    return events
+
+
+@pytest.fixture(scope="module")
+def offline_reference(deployment: Deployment) -> tuple[dict[str, bytes], dict]:
+    """The offline path on the same three sites' data: the numbers the online round must reproduce."""
+    subset = tuple(d for d in deployment.reference.site_dirs if d.name in ALLOWING)
+    run_offline(replace(deployment.reference, site_dirs=subset))
+    study_id = json.loads(deployment.reference.request_bytes)["study_id"]
+    store = Store(deployment.reference.store_path)
+    try:
+        analysis = analyze(store, study_id)
+    finally:
+        store.close()
+    return _releases(deployment.reference.store_path, study_id), analysis
+
+
+@pytest.fixture(scope="module")
+def first_round(deployment: Deployment) -> tuple[int, dict]:
+    wait_until(lambda: deployment.online() == set(deployment.sites), 90, "all four SuperNodes online")
+    return deployment.federation_run("--min-sites", "3", "--deadline", "90")
+
+
+def test_superlink_runs_with_tls_node_auth_and_no_dependency_installs(deployment: Deployment) -> None:
+    pid = deployment.fleet.procs["superlink"].pid
+    argv = cmdline(pid)  # `federation serve` replaced itself with flower-superlink
+    assert "flower-superlink" in argv
+    for flag in ("--enable-supernode-auth", "--disable-runtime-dependency-installation", "--ssl-ca-certfile"):
+        assert flag in argv
+    assert f"--database {deployment.coordinator.resolve() / 'superlink' / 'state.db'}" in argv
+    environ = Path(f"/proc/{pid}/environ").read_bytes().split(b"\0")
+    assert b"FLWR_TELEMETRY_ENABLED=0" in environ and b"FLWR_DISABLE_UPDATE_CHECK=1" in environ
+    # TLS, checked with Python's ssl module: our CA verifies the server; the system trust store does not.
+    trusted = ssl.create_default_context(cafile=str(deployment.ca))
+    with socket.create_connection(("127.0.0.1", deployment.port), timeout=5) as raw:
+        with trusted.wrap_socket(raw, server_hostname="127.0.0.1") as tls:
+            assert tls.version() in ("TLSv1.2", "TLSv1.3")
+    with socket.create_connection(("127.0.0.1", deployment.port), timeout=5) as raw:
+        with pytest.raises(ssl.SSLCertVerificationError):
+            ssl.create_default_context().wrap_socket(raw, server_hostname="127.0.0.1")
+
+
+def test_round_matches_offline_path(deployment: Deployment, first_round: tuple[int, dict], offline_reference) -> None:
+    code, outcome = first_round
+    assert outcome["state"] == "complete"
+    assert {s: outcome["sites"][s]["status"] for s in ALLOWING} == dict.fromkeys(ALLOWING, "released")
+    assert code == 3  # quorum reached, but not every site released (the refusing one)
+    reference_releases, reference_analysis = offline_reference
+    study_id = json.loads(deployment.study.request_bytes)["study_id"]
+    online = _releases(deployment.coordinator / "study.db", study_id)
+    assert set(online) == set(ALLOWING) == set(reference_releases)
+    for site in ALLOWING:
+        assert _comparable(online[site]) == _comparable(reference_releases[site]), site
+    store = Store(deployment.coordinator / "study.db")
+    try:
+        analysis = analyze(store, study_id)
+    finally:
+        store.close()
+    assert analysis["sites"] == reference_analysis["sites"]
+    assert analysis["pooled"] == reference_analysis["pooled"]
+    assert len(analysis["sites"]) == 3 and analysis["pooled"]["sensitivity"] is not None
+
+
+def test_site_refuses_bundle_missing_from_its_allowlist(deployment: Deployment, first_round: tuple[int, dict]) -> None:
+    _, outcome = first_round
+    refusal = outcome["sites"][REFUSING]
+    assert refusal["status"] == "refused"
+    assert f"app bundle sha256 {deployment.fab_sha256} is not in this site's allowlist" in refusal["reason"]
+    site = load_site(deployment.sites[REFUSING])
+    entries = ledger.read_entries(site.ledger_path)
+    assert [e["event"] for e in entries] == ["refusal"]
+    assert entries[0]["details"]["app_bundle_sha256"] == deployment.fab_sha256
+    assert ledger.verify_ledger(site.ledger_path, site.public_key()) == 1
+    assert not list(site.releases_dir.iterdir())
+    # Nothing of the bundle was installed at the refusing site.
+    assert not list((deployment.sites[REFUSING] / "runtime" / "flwr-home").glob("apps/*"))
+
+
+def test_site_killed_mid_round_is_unreachable_and_round_completes(deployment: Deployment, first_round) -> None:
+    fleet, site_dir = deployment.fleet, deployment.sites[KILLED]
+    request = deployment.new_request("tallowmere-online-2")
+    argv = [str(BIN / "federation"), "run", "--study", str(deployment.coordinator), "--json"]
+    running = subprocess.Popen(
+        [*argv, "--min-sites", "2", "--deadline", "18"], stdout=subprocess.PIPE, env=fleet.env, text=True
+    )
+    try:
+        join_pid = fleet.procs[f"join-{KILLED}"].pid
+
+        def clientapp() -> int | None:
+            for pid in processes_under(site_dir):
+                if f"--site {site_dir.resolve()}" in cmdline(pid) and "clientapp" in cmdline(pid):
+                    return pid
+            return None
+
+        app_pid = int(wait_until(clientapp, 60, "the killed site's ClientApp to start", step_s=0.02))
+        supernode = next(p for p in children(join_pid) if "flower-supernode" in cmdline(p))
+        runner = next(p for p in children(join_pid) if "flower-superexec" in cmdline(p))
+        for pid in (join_pid, supernode):  # the site's supervisor and node die at once, as in a crash
+            os.kill(pid, signal.SIGKILL)
+        fleet.procs.pop(f"join-{KILLED}").wait(timeout=10)
+        # The app runner and the ClientApp it was running do not outlive their node.
+        wait_until(lambda: gone(runner) and gone(app_pid), 15, "the app runner and ClientApp to exit")
+        stdout, _ = running.communicate(timeout=120)
+    finally:
+        if running.poll() is None:
+            running.kill()
+            running.wait()
+    outcome = json.loads(stdout)
+    assert running.returncode == 3
+    assert outcome["state"] == "complete"
+    statuses = {site: info["status"] for site, info in outcome["sites"].items()}
+    assert statuses == {
+        "vellacombe-primary": "released",
+        "brackenholt-specialist": "released",
+        KILLED: "unreachable",
+        REFUSING: "refused",
+    }
+    assert outcome["sites"][KILLED]["reason"] == "no reply before the deadline"
+    assert outcome["sites"][KILLED]["attempts"] == 1
+    assert set(_releases(deployment.coordinator / "study.db", "tallowmere-online-2")) == {
+        "vellacombe-primary",
+        "brackenholt-specialist",
+    }
+    assert "release" not in _round_entries(site_dir, request)
+
+
+def test_superlink_restart_then_resume_loses_and_duplicates_nothing(deployment: Deployment, offline_reference) -> None:
+    fleet = deployment.fleet
+    fleet.stop(f"join-{KILLED}")  # absent when the round starts (already so if the previous test ran)
+    request = deployment.new_request("tallowmere-online-3")
+    request_id = json.loads(request)["request_id"]
+    argv = [str(BIN / "federation"), "run", "--study", str(deployment.coordinator), "--json"]
+    first = subprocess.Popen(
+        [*argv, "--min-sites", "3", "--deadline", "120"], stdout=subprocess.PIPE, env=fleet.env, text=True
+    )
+    try:
+
+        def two_released() -> bool:
+            released = set(_releases(deployment.coordinator / "study.db", "tallowmere-online-3"))
+            return released == {"vellacombe-primary", "brackenholt-specialist"}
+
+        wait_until(two_released, 90, "two releases before the restart", step_s=0.2)
+        fleet.stop("superlink", signal.SIGKILL)  # the SuperLink crashes mid-round, waiting for the third site
+        stdout, _ = first.communicate(timeout=60)  # the command ends on its own
+    finally:
+        if first.poll() is None:
+            first.kill()
+            first.wait()
+    interrupted = json.loads(stdout) if stdout.strip() else {}
+    assert first.returncode == 4, interrupted
+    assert interrupted["state"] == "interrupted"
+    assert interrupted["sites"][KILLED]["status"] == "unreachable"
+    # The ServerApp and the SuperLink's app runner went down with it.
+    wait_until(
+        lambda: not processes_under(deployment.coordinator.resolve() / "superlink"), 20, "the SuperLink's children"
+    )
+
+    deployment.start_superlink()  # same state database: node registrations survive
+    # Resume first, then let the absent site back in: `--resume` stops the dead round's run at the SuperLink
+    # before it submits a new one, so the returning site is asked by the new round only.
+    resume = subprocess.Popen(
+        [*argv, "--resume", "--min-sites", "3", "--deadline", "90"], stdout=subprocess.PIPE, env=fleet.env, text=True
+    )
+    try:
+
+        def resumed_round_live() -> bool:
+            store = Store(deployment.coordinator / "study.db")
+            try:
+                rounds = store.rounds(request_id)
+            finally:
+                store.close()
+            return len(rounds) == 2 and rounds[-1]["state"] in ("waiting", "running")
+
+        wait_until(resumed_round_live, 60, "the resumed round to start", step_s=0.2)
+        deployment.join(KILLED)
+        stdout, _ = resume.communicate(timeout=150)
+    finally:
+        if resume.poll() is None:
+            resume.kill()
+            resume.wait()
+    resumed = json.loads(stdout)
+    assert resumed["state"] == "complete", resumed
+    assert resume.returncode == 3  # the refusing site still refuses
+    assert resumed["released_before"] == 2
+    assert set(resumed["sites"]) == {KILLED, REFUSING}  # sites that had released were not asked again
+    assert resumed["sites"][KILLED]["status"] == "released"
+
+    online = _releases(deployment.coordinator / "study.db", "tallowmere-online-3")
+    assert set(online) == set(ALLOWING)  # nothing lost
+    store = Store(deployment.coordinator / "study.db")
+    try:
+        assert store.answered(request_id) == set(ALLOWING)
+        assert sum(1 for _ in store.releases("tallowmere-online-3")) == 3  # nothing duplicated
+    finally:
+        store.close()
+    for site in ALLOWING:  # each site was asked once and released once for this request
+        assert _round_entries(deployment.sites[site], request) == ["request_received", "release"], site
+    reference_releases, _ = offline_reference
+    for site in ALLOWING:
+        assert _comparable(online[site]) == _comparable(reference_releases[site]), site
+
+
+def test_unregistered_node_key_is_refused_and_supervisor_restarts_after_305(deployment: Deployment) -> None:
+    fleet = deployment.fleet
+    newcomer = init_site(deployment.root / "newcomer", "newcomer-clinic", [deployment.coordinator / "coordinator.pub"])
+    deployment.sites["newcomer-clinic"] = newcomer
+    joined = deployment.join("newcomer-clinic", "--max-restarts", "0")
+    assert joined.wait(timeout=60) == 3
+    fleet.procs.pop("join-newcomer-clinic")
+    assert "Exit Code: 305" in (newcomer / "runtime" / "supernode.log").read_text()
+    assert "refused or lost this node" in fleet.log("join-newcomer-clinic")
+    assert "newcomer-clinic" not in deployment.online()
+
+    # The same site, supervised without a restart limit, gets in once the coordinator registers its key.
+    deployment.join("newcomer-clinic")
+    wait_until(lambda: "restarting in" in fleet.log("join-newcomer-clinic"), 60, "the supervisor to see exit 305")
+    enrolled = deployment.enrol("newcomer-clinic", newcomer)
+    assert "registered with the SuperLink as node" in enrolled.stdout
+    wait_until(lambda: "newcomer-clinic" in deployment.online(), 60, "the newcomer's node online")
+    assert fleet.procs["join-newcomer-clinic"].poll() is None
