@@ -22,7 +22,6 @@ from federation.protocol import (
 from federation.protocol.bundle import split_bundle
 from federation.protocol.cli_support import print_json, run_cli, write_atomic
 
-from .analysis import analyze
 from .modelpack import model_format_for, pack_model
 from .store import Store
 from .study import analysis_specs, issue_request
@@ -177,6 +176,8 @@ def cmd_ingest(args: argparse.Namespace) -> int:
 
 
 def cmd_analyze(args: argparse.Namespace) -> int:
+    from .analysis import analyze  # scipy: imported here so `federation --help` starts fast
+
     result = analyze(Store(args.store), args.study_id)
     if args.json:
         print_json(result)
@@ -205,6 +206,10 @@ def format_table(result: dict) -> str:
     pooled = result["pooled"]
     lines.append("-" * len(header))
     lines.append(f"{'pooled (random effects)':<49}{_fmt(pooled['sensitivity']):<24}{_fmt(pooled['specificity']):<24}")
+    aware = pooled.get("bivariate_glmm_suppression_aware") or {}
+    if aware.get("sensitivity"):
+        label = f"suppression-aware ({len(aware.get('sites_pooled', []))} sites)"
+        lines.append(f"{label:<49}{_fmt(aware['sensitivity']):<24}{_fmt(aware['specificity']):<24}")
     if pooled.get("sensitivity"):
         parts = [
             f"tau² logit {name[:4]} {pooled[f'tau2_logit_{name}']:.3f}, I² {100 * pooled[f'i2_logit_{name}']:.1f}%"
@@ -216,6 +221,8 @@ def format_table(result: dict) -> str:
     for entry in pooled["sites_not_pooled"]:
         lines.append(f"not pooled: {entry['site_id']} ({entry['reason']})")
     lines.append("· = suppressed by the site's minimum cell size")
+    if aware.get("sensitivity"):
+        lines.append("suppression-aware: exact binomial model in which a suppressed cell counts as lying in 1..k-1")
     return "\n".join(lines)
 
 

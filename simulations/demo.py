@@ -12,6 +12,7 @@ Steps (each the same code the command lines run):
 
 from __future__ import annotations
 
+import logging
 import os
 import shutil
 import sys
@@ -130,6 +131,9 @@ def run_flower_simulation(study: DemoStudy) -> list[SiteOutcome]:
     server = make_server_app(round_config(study), outcomes.extend)
     client = make_client_app([str(d) for d in study.site_dirs])
     ray_tmp = tempfile.mkdtemp(prefix="msv-ray-", dir="/tmp")
+    # Flower announces run_simulation's deprecation and Ray a GPU tip on every run; neither helps a user here.
+    logging.getLogger("flwr").setLevel(logging.ERROR)
+    os.environ.setdefault("RAY_ACCEL_ENV_VAR_OVERRIDE_ON_ZERO", "0")
     try:
         run_simulation(
             server_app=server,
