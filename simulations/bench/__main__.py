@@ -1,0 +1,118 @@
+"""``make bench``: run every stage, print one table of ratios, write ``bench/results.json``.
+
+``python -m simulations.bench [--quick] [--deploy] [--out bench/results.json] [--work DIR]``; the Makefile
+passes ``--quick`` when ``BENCH_QUICK=1`` and ``--deploy`` when ``BENCH_DEPLOY=1``. Full run: site path at 1M
+and 10M records, federation at 20, 100 and 200 virtual sites. Quick run: 1M and 3M records, 20 and 100 sites.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import shutil
+import tempfile
+import time
+from datetime import UTC, datetime
+from pathlib import Path
+from typing import Any
+
+from . import audit, federation, site_path, stats
+from .common import ROOT, machine, say
+
+
+def _table(results: dict[str, Any]) -> str:
+    lines = ["| stage | size | tool | baseline | ratio | target | peak RSS |", "| --- " * 7 + "|"]
+    for row in results.get("site_path", []):
+        lines.append(
+            f"| site path, {row['format']} | {row['records']:,} records | {row['site_s']:.2f} s | "
+            f"{row['bare_s']:.2f} s (pyarrow + numpy) | {row['ratio']:.2f}x (CPU {row['cpu_ratio']:.2f}x) | <= 1.3x | "
+            f"{row['site_peak_rss_mib']:.0f} MiB (bare {row['bare_peak_rss_mib']:.0f}) |"
+        )
+    a = results.get("audit")
+    if a:
+        lines.append(
+            f"| disclosure audit | {a['counts_in_release']} counts vs {a['earlier_releases']} releases | "
+            f"{a['protect_s']:.2f} s (LP audit {a['audit_s']:.2f} s) | {a['protect_alone_s']:.3f} s (no history) | "
+            f"{a['ratio_to_alone']:.0f}x; {a['ratio_to_target']:.2f} of target | < 2 s | |"
+        )
+    for row in results.get("stats", []):
+        lines.append(
+            f"| univariate DL / REML | {row['sites']:,} sites | "
+            f"{row['dl_s'] * 1e3:.2f} / {row['reml_s'] * 1e3:.2f} ms | "
+            f"{row['statsmodels_dl_s'] * 1e3:.2f} / {row['statsmodels_pm_s'] * 1e3:.2f} ms (statsmodels DL / PM) | "
+            f"{row['dl_ratio']:.2f}x / {row['reml_ratio']:.2f}x | | |"
+        )
+        lines.append(
+            f"| bivariate REML / GLMM | {row['sites']:,} sites | "
+            f"{row['bivariate_reml_s']:.3f} / {row['glmm_s']:.2f} s | "
+            f"univariate DL | {row['bivariate_ratio_to_dl']:.0f}x / {row['glmm_ratio_to_dl']:.0f}x; REML "
+            f"{row['bivariate_ratio_to_target']:.3f} of target | REML < 1 s at 1,000 | |"
+        )
+    for row in [*results.get("federation", []), *([results["deployment"]] if "deployment" in results else [])]:
+        target = "<= 1.5x" if row["engine"].startswith("deployment") else "<= 2x"
+        lines.append(
+            f"| federation, {row['engine']} | {row['sites']} sites | {row['validation_round_s']:.1f} s | "
+            f"{row['floor_round_s']:.1f} s (trivial query) | {row['ratio']:.2f}x | {target} | |"
+        )
+    return "\n".join(lines)
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--quick", action="store_true", help="1M and 3M records; 20 and 100 virtual sites")
+    parser.add_argument("--deploy", action="store_true", help="also 10 sites through a loopback deployment")
+    parser.add_argument("--out", type=Path, default=ROOT / "bench" / "results.json")
+    parser.add_argument("--work", type=Path, help="working folder (default: a new temporary folder, removed)")
+    parser.add_argument("--records", help="comma-separated record counts (overrides --quick/full)")
+    parser.add_argument("--sites", help="comma-separated virtual site counts (overrides --quick/full)")
+    args = parser.parse_args()
+    records = (1_000_000, 3_000_000) if args.quick else (1_000_000, 10_000_000)
+    sites = (20, 100) if args.quick else (20, 100, 200)
+    if args.records:
+        records = tuple(int(x) for x in args.records.split(","))
+    if args.sites:
+        sites = tuple(int(x) for x in args.sites.split(","))
+    work = args.work or Path(tempfile.mkdtemp(prefix="msv-bench-", dir="/tmp"))
+    started = time.perf_counter()
+    results: dict[str, Any] = {
+        "created_at": datetime.now(UTC).replace(microsecond=0).isoformat(),
+        "mode": "quick" if args.quick else "full",
+        "machine": machine(),
+    }
+    args.out.parent.mkdir(parents=True, exist_ok=True)
+
+    def stage(name: str, function: Any, *stage_args: Any) -> None:
+        """Run one stage and save at once: its result, or its failure in one line (the other stages still run)."""
+        try:
+            results[name] = function(*stage_args)
+        except Exception as exc:  # a benchmark stage that fails is reported, and the others still run
+            results.setdefault("failures", {})[name] = f"{type(exc).__name__}: {exc}"[:500]
+            say(f"{name}: FAILED: {results['failures'][name]}")
+        args.out.write_text(json.dumps(results, indent=2) + "\n")
+
+    try:
+        stage("site_path", site_path.run, work, records, 1 if args.quick else 2)
+        stage("audit", audit.run, work)
+        stage("stats", stats.run)
+        stage("federation", federation.run_simulation_engine, work, sites)
+        if args.deploy:
+            stage("deployment", federation.run_deployment, work)
+    finally:
+        if args.work is None:
+            shutil.rmtree(work, ignore_errors=True)
+    results["load_average_at_end"] = [round(x, 2) for x in __import__("os").getloadavg()]
+    results["minutes"] = round((time.perf_counter() - started) / 60, 1)
+    results["table"] = _table(results)
+    args.out.write_text(json.dumps(results, indent=2) + "\n")
+    m = results["machine"]
+    print(
+        f"Machine: {m['cores']} cores, {m['memory_gib']} GiB, {m['cpu_model']}, Python {m['python']}, "
+        f"load {m['load_average_at_start']} at start"
+    )
+    print(results["table"])
+    print(f"written: {args.out} ({results['minutes']} min)")
+    say("")
+
+
+if __name__ == "__main__":
+    main()
