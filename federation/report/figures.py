@@ -16,7 +16,7 @@ from .plots import (
     forest_plot,
     roc_plot,
 )
-from .readers import calibration_bins, find_keys, get_path, number, points, roc_from_bands
+from .readers import calibration_bins, get_path, number, points, roc_from_bands
 
 __all__ = [
     "accuracy_forests",
@@ -242,6 +242,11 @@ def _site_result(inputs: ReportInputs, site: dict[str, Any], name: str) -> Any:
     return release.extra.get(name) if release is not None else None
 
 
+# Exact places a pooled ROC curve may sit in `federation analyze --json`. Looked up by exact key, never by a
+# substring search: "roc" is inside "sroc", and an SROC curve (bivariate model) must not be drawn as a pooled ROC.
+POOLED_ROC_PATHS: tuple[tuple[str, ...], ...] = (("discrimination", "pooled_roc"), ("pooled_roc",), ("roc",))
+
+
 def roc_figure(inputs: ReportInputs) -> str:
     """ROC curves per site (from released score bands) and pooled, when any exist; else empty."""
     series, rows = [], []
@@ -251,7 +256,10 @@ def roc_figure(inputs: ReportInputs) -> str:
         if curve:
             series.append(RocSeries(site["site_id"], [p[0] for p in curve], [p[1] for p in curve]))
             rows += [[site["site_id"], x, y] for x, y in curve]
-    for _, value in find_keys({k: v for k, v in inputs.analysis.items() if k != "sites"}, "roc", max_depth=3):
+    for path in POOLED_ROC_PATHS:
+        value = get_path(inputs.analysis, path)
+        if value is None:
+            continue
         curve = points(value) or roc_from_bands(value)
         if curve:
             curve = sorted({(0.0, 0.0), *curve, (1.0, 1.0)})  # a pooled curve may list only interior points
