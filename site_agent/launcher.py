@@ -16,9 +16,9 @@ no hash allowlist (its ``--trusted-entities`` accepts only bundles signed throug
 The wrapped installer (``flwr.supernode.runtime.run_clientapp.install_from_fab``) is Flower-internal;
 ``flwr==1.42.0`` is pinned for that reason and a test runs the real launcher against a real SuperNode.
 
-``build_app_bundle`` builds the bundle the coordinator submits from this installation, byte for byte as
-``federation.deploy.fab`` does (the site agent may import only ``federation.protocol``), so site IT can pin
-the hash of the code they reviewed: ``site-agent app hash``.
+``build_app_bundle`` (from :mod:`federation.protocol.app_bundle`, the one definition both sides use) builds
+the bundle the coordinator submits from this installation, so site IT can pin the hash of the code they
+reviewed: ``site-agent app hash``.
 """
 
 from __future__ import annotations
@@ -29,67 +29,16 @@ import importlib
 import os
 import sys
 from collections.abc import Sequence
-from importlib.metadata import PackageNotFoundError, version
 from pathlib import Path
 
-from federation.protocol import PolicyViolation, ValidationToolError
+from federation.protocol import PolicyViolation
 
 from . import ledger
 from .config import load_site
 
-DISTRIBUTION = "multisite-validation"
-APP_NAME = "msv-validation-app"
-PUBLISHER = "multisite-validation"
-RUN_CONFIG_DEFAULTS: tuple[tuple[str, str], ...] = (
-    ("study-dir", '""'),
-    ("round-id", '""'),
-    ("round-kind", '"validate"'),
-    ("min-sites", "1"),
-    ("deadline-s", "600.0"),
-    ("poll-s", "0.2"),
-)
-
 
 class AppBundleRefused(PolicyViolation):
     """The coordinator's app bundle is not one this site listed in ``[app] allowed_fab_sha256``."""
-
-
-def _installed_version(name: str) -> str:
-    try:
-        return version(name)
-    except PackageNotFoundError:
-        raise ValidationToolError(f"package {name!r} is not installed; install it to build the app bundle") from None
-
-
-def app_pyproject(package_version: str, flwr_version: str) -> str:
-    """The bundle's only file. Keep byte-identical with ``federation.deploy.fab.app_pyproject``."""
-    config = "".join(f"{key} = {value}\n" for key, value in RUN_CONFIG_DEFAULTS)
-    return (
-        "[project]\n"
-        f'name = "{APP_NAME}"\n'
-        f'version = "{package_version}"\n'
-        'description = "Validation rounds: runs the installed coordinator and site agent, carries no code"\n'
-        'license = "Apache-2.0"\n'
-        f'dependencies = ["{DISTRIBUTION}=={package_version}", "flwr=={flwr_version}"]\n'
-        "\n"
-        "[tool.flwr.app]\n"
-        f'publisher = "{PUBLISHER}"\n'
-        "\n"
-        "[tool.flwr.app.components]\n"
-        'serverapp = "federation.flower_server:app"\n'
-        'clientapp = "site_agent.flower_client:app"\n'
-        "\n"
-        "[tool.flwr.app.config]\n" + config
-    )
-
-
-def build_app_bundle() -> tuple[bytes, str]:
-    """The FAB built from this installation and its SHA-256 (deterministic: same versions, same bytes)."""
-    from flwr.cli.build import build_fab_from_files
-
-    text = app_pyproject(_installed_version(DISTRIBUTION), _installed_version("flwr"))
-    content, _ = build_fab_from_files({"pyproject.toml": text.encode("utf-8")})
-    return content, hashlib.sha256(content).hexdigest()
 
 
 def check_app_bundle(site_dir: Path, content: bytes) -> str:

@@ -1,85 +1,21 @@
-"""The app bundle (Flower FAB) the coordinator submits: configuration only, no code.
+"""The app bundle the coordinator submits; defined once in :mod:`federation.protocol.app_bundle`."""
 
-A FAB is what a SuperNode installs and imports for every message. Ours holds a single ``pyproject.toml``
-whose components name the *installed* packages (``federation.flower_server:app`` at the coordinator,
-``site_agent.flower_client:app`` at a site), so a site runs only code its IT installed, and the bundle's
-SHA-256 is something a site can pin: it changes only when the package version, the Flower version or the
-declared run settings change.
-
-Flower's own builder (``flwr.cli.build.build_fab_from_files``) writes the zip with fixed timestamps and
-sorted entries, so the same text builds to the same bytes. The site agent builds the same bytes in
-``site_agent.launcher.build_app_bundle`` (the site side may not import this module); a test checks that
-the two agree.
-"""
-
-from __future__ import annotations
-
-import hashlib
-from dataclasses import dataclass
-from importlib.metadata import PackageNotFoundError, version
-
-from flwr.cli.build import build_fab_from_files
-
-from federation.protocol import ValidationToolError
-
-DISTRIBUTION = "multisite-validation"
-APP_NAME = "msv-validation-app"
-PUBLISHER = "multisite-validation"
-
-# Run settings the ServerApp reads (Flower refuses run-config overrides that the bundle does not declare).
-RUN_CONFIG_DEFAULTS: tuple[tuple[str, str], ...] = (
-    ("study-dir", '""'),
-    ("round-id", '""'),
-    ("round-kind", '"validate"'),
-    ("min-sites", "1"),
-    ("deadline-s", "600.0"),
-    ("poll-s", "0.2"),
+from federation.protocol.app_bundle import (
+    APP_NAME,
+    DISTRIBUTION,
+    PUBLISHER,
+    RUN_CONFIG_DEFAULTS,
+    AppBundle,
+    app_pyproject,
+    build_app_bundle,
 )
 
-
-@dataclass(frozen=True)
-class AppBundle:
-    """The FAB bytes and their SHA-256 (what sites list in ``site.toml [app] allowed_fab_sha256``)."""
-
-    content: bytes
-    sha256: str
-    package_version: str
-    flwr_version: str
-
-
-def _installed_version(name: str) -> str:
-    try:
-        return version(name)
-    except PackageNotFoundError:
-        raise ValidationToolError(f"package {name!r} is not installed; install it to build the app bundle") from None
-
-
-def app_pyproject(package_version: str, flwr_version: str) -> str:
-    """The bundle's only file. Keep byte-identical with ``site_agent.launcher.app_pyproject``."""
-    config = "".join(f"{key} = {value}\n" for key, value in RUN_CONFIG_DEFAULTS)
-    return (
-        "[project]\n"
-        f'name = "{APP_NAME}"\n'
-        f'version = "{package_version}"\n'
-        'description = "Validation rounds: runs the installed coordinator and site agent, carries no code"\n'
-        'license = "Apache-2.0"\n'
-        f'dependencies = ["{DISTRIBUTION}=={package_version}", "flwr=={flwr_version}"]\n'
-        "\n"
-        "[tool.flwr.app]\n"
-        f'publisher = "{PUBLISHER}"\n'
-        "\n"
-        "[tool.flwr.app.components]\n"
-        'serverapp = "federation.flower_server:app"\n'
-        'clientapp = "site_agent.flower_client:app"\n'
-        "\n"
-        "[tool.flwr.app.config]\n" + config
-    )
-
-
-def build_app_bundle() -> AppBundle:
-    """Build the FAB from the installed package versions (deterministic: same versions, same bytes)."""
-    package_version = _installed_version(DISTRIBUTION)
-    flwr_version = _installed_version("flwr")
-    text = app_pyproject(package_version, flwr_version)
-    content, _ = build_fab_from_files({"pyproject.toml": text.encode("utf-8")})
-    return AppBundle(content, hashlib.sha256(content).hexdigest(), package_version, flwr_version)
+__all__ = [
+    "APP_NAME",
+    "DISTRIBUTION",
+    "PUBLISHER",
+    "RUN_CONFIG_DEFAULTS",
+    "AppBundle",
+    "app_pyproject",
+    "build_app_bundle",
+]

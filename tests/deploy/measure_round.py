@@ -19,12 +19,12 @@ from pathlib import Path
 from federation.deploy.commands import enrol_node_key
 from federation.deploy.runs import RunOptions, run_study
 from federation.protocol import load_private_key
+from federation.protocol.app_bundle import build_app_bundle
 from federation.protocol.cli_support import write_atomic
 from federation.store import Store
 from federation.study import issue_request
 from simulations.demo import prepare_study, set_site_data
 from site_agent.config import init_site
-from site_agent.launcher import build_app_bundle
 
 from .harness import BIN, Fleet, free_port, port_listening, processes_under, wait_until
 
@@ -43,7 +43,7 @@ def measure(out: Path, rounds: int, task_poll: str) -> dict:
         store.enrol(new_id, (folder / "site.pub").read_bytes(), "site.pub")
         sites[new_id] = folder
     store.close()
-    _, digest = build_app_bundle()
+    digest = build_app_bundle().sha256
     for folder in sites.values():
         config = folder / "site.toml"
         config.write_text(config.read_text().replace("allowed_fab_sha256 = []", f'allowed_fab_sha256 = ["{digest}"]'))

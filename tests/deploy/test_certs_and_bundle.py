@@ -22,7 +22,7 @@ from cryptography import x509
 from federation.deploy.certs import certificate_names, new_certificates
 from federation.deploy.fab import build_app_bundle as coordinator_bundle
 from federation.protocol import ValidationToolError
-from site_agent.launcher import build_app_bundle as site_bundle
+from federation.protocol.app_bundle import build_app_bundle as site_bundle
 
 from .harness import BIN
 
@@ -54,7 +54,8 @@ def test_certificates_refuse_overwrite_and_bad_names(tmp_path: Path) -> None:
 
 def test_coordinator_and_site_build_the_same_bundle_with_no_code() -> None:
     coordinator = coordinator_bundle()
-    content, digest = site_bundle()
+    built = site_bundle()
+    content, digest = built.content, built.sha256
     assert content == coordinator.content and digest == coordinator.sha256
     assert digest == hashlib.sha256(content).hexdigest()
     assert coordinator_bundle().content == content  # deterministic
@@ -69,7 +70,7 @@ def test_coordinator_and_site_build_the_same_bundle_with_no_code() -> None:
 
 
 def test_site_agent_app_hash_command_prints_the_hash(tmp_path: Path) -> None:
-    _, digest = site_bundle()
+    digest = site_bundle().sha256
     result = subprocess.run(
         [str(BIN / "site-agent"), "app", "hash", "--json", "--out", str(tmp_path / "app.fab")],
         capture_output=True,

@@ -28,13 +28,13 @@ from federation.deploy.commands import enrol_node_key
 from federation.deploy.nodes import parse_node_key
 from federation.deploy.superlink import LinkSettings, registered_nodes
 from federation.protocol import load_private_key, sha256_hex
+from federation.protocol.app_bundle import build_app_bundle
 from federation.protocol.cli_support import write_atomic
 from federation.store import Store
 from federation.study import issue_request
 from simulations.demo import DemoStudy, prepare_study, run_offline
 from site_agent import ledger
 from site_agent.config import init_site, load_site
-from site_agent.launcher import build_app_bundle
 
 from .harness import (
     BIN,
@@ -140,7 +140,7 @@ def deployment(tmp_path_factory: pytest.TempPathFactory):  # noqa: ANN201
     coordinator = study.root / "coordinator"
     fleet = Fleet(root)
     sites = {d.name: d for d in study.site_dirs if d.name in (*ALLOWING, REFUSING)}
-    _, digest = build_app_bundle()
+    digest = build_app_bundle().sha256
     for name in ALLOWING:
         _allow(sites[name], digest)
     made = fleet.run([str(BIN / "federation"), "certs", "new", "--out", str(coordinator / "certs")], 60)
