@@ -8,7 +8,7 @@ DEMO_OUT ?= demo-output
 export FLWR_TELEMETRY_ENABLED := 0
 export FLWR_DISABLE_UPDATE_CHECK := 1
 
-.PHONY: install demo test lint clean browser postgres validate-stats
+.PHONY: install demo test lint clean browser postgres validate-stats fuzz bench
 
 $(STAMP): pyproject.toml
 	@test -x $(BIN)/python || $(PYTHON) -m venv $(VENV)
@@ -32,7 +32,7 @@ postgres:
 		|| (apt-get update && DEBIAN_FRONTEND=noninteractive apt-get install -y postgresql)
 
 test: $(STAMP) browser postgres
-	$(BIN)/ruff check federation site_agent simulations tests
+	$(BIN)/ruff check federation site_agent simulations tests fuzz
 	$(BIN)/python -m pytest -q
 
 # Simulation study of the pooling methods (not part of `make test`): 1,000 synthetic consortia, dropping
@@ -40,8 +40,25 @@ test: $(STAMP) browser postgres
 validate-stats: $(STAMP)
 	$(BIN)/python -m simulations.validate_stats --consortia 1000
 
+# Benchmarks (not part of `make test`): every cost as a ratio to a baseline measured in the same run; prints a
+# table, writes bench/results.json. BENCH_QUICK=1: 1M/3M records, 20/100 sites; BENCH_DEPLOY=1: also 10 sites
+# over a loopback TLS deployment.
+bench: $(STAMP)
+	$(BIN)/python -m simulations.bench $(if $(BENCH_QUICK),--quick) $(if $(BENCH_DEPLOY),--deploy)
+
+# Coverage-guided fuzzing (atheris, installed into the venv on demand) of every parser that reads another
+# party's bytes: FUZZ_SECONDS per target (default 600). Findings land in fuzz/findings/ and stop the run.
+FUZZ_SECONDS ?= 600
+FUZZ_TARGETS ?= request signed_request release bundle_frame bundle_body scorecard schema mapping policy
+fuzz: $(STAMP)
+	@$(BIN)/python -c "import atheris" 2>/dev/null || $(BIN)/python -m pip install --quiet atheris
+	@for target in $(FUZZ_TARGETS); do \
+		echo "fuzz: $$target for $(FUZZ_SECONDS) s"; \
+		$(BIN)/python -m fuzz.run $$target --seconds $(FUZZ_SECONDS) || exit 1; \
+	done
+
 lint: $(STAMP)
-	$(BIN)/ruff check federation site_agent simulations tests
+	$(BIN)/ruff check federation site_agent simulations tests fuzz
 
 clean:
 	rm -rf $(DEMO_OUT) .pytest_cache

@@ -22,6 +22,7 @@ from federation.protocol import (
     key_id,
     sha256_hex,
 )
+from federation.protocol.crashpoints import crash_point
 from federation.protocol.keys import parse_public_key, public_pem
 
 SCHEMA = """
@@ -58,6 +59,38 @@ def _now() -> str:
 class StoredRelease:
     release: Release
     document: bytes
+
+
+def _check_consistency(release: Release, request: Request, source: str) -> None:
+    """Refuse a release whose released counts contradict each other or whose results the request did not ask for.
+
+    Only relations between counts that are all released are checked (a suppressed count is null): analysed
+    = analysed_positive + analysed_negative; read = analysed + every exclusion; at each threshold
+    tp + fn = analysed_positive and fp + tn = analysed_negative.
+    """
+    asked = {"confusion", *(a.name for a in request.analyses)}
+    unasked = sorted(set(release.extra) - asked)
+    if unasked:
+        raise IngestError(f"{source}: results.{unasked[0][:40]} was not asked for by request {release.request_id!r}")
+    for name, value in release.extra.items():
+        if not isinstance(value, (dict, list)):
+            raise IngestError(f"{source}: results.{name} must be an object or a list")
+    flow = release.flow
+    analysed, positive, negative = (flow.get(k) for k in ("analysed", "analysed_positive", "analysed_negative"))
+    if None not in (analysed, positive, negative) and positive + negative != analysed:
+        raise IngestError(f"{source}: flow.analysed is not analysed_positive + analysed_negative")
+    excluded = list(flow.get("excluded", {}).values())
+    read = flow.get("read")
+    if read is not None and analysed is not None:
+        known = analysed + sum(e for e in excluded if e is not None)
+        if known > read or (None not in excluded and known != read):
+            raise IngestError(f"{source}: flow.read does not match analysed + the excluded counts")
+    sums = (("tp", "fn", positive, "analysed_positive"), ("fp", "tn", negative, "analysed_negative"))
+    for i, table in enumerate(release.confusion):
+        cells = table.cells
+        for a, b, total, name in sums:
+            if None not in (cells[a], cells[b], total) and cells[a] + cells[b] != total:
+                raise IngestError(f"{source}: results.confusion[{i}]: {a} + {b} is not flow.{name}")
 
 
 class Store:
@@ -143,6 +176,7 @@ class Store:
             raise IngestError(f"{source}: study id does not match request {release.request_id!r}")
         if request.bundle_sha256 != release.bundle_sha256:
             raise IngestError(f"{source}: bundle hash does not match the one request {release.request_id!r} named")
+        _check_consistency(release, request, source)
         row = self._db.execute(
             "SELECT release_sha256 FROM releases WHERE request_id = ? AND site_id = ?",
             (release.request_id, release.site_id),
@@ -172,6 +206,7 @@ class Store:
                     "INSERT INTO releases VALUES (?, ?, ?, ?, ?, ?)",
                     (sha256_hex(data), release.request_id, release.study_id, release.site_id, data, _now()),
                 )
+                crash_point("coordinator:mid-ingest")  # inert unless MSV_CRASH_AT says so (crash-safety tests)
         return [release for release, _ in checked]
 
     def releases(self, study_id: str) -> list[StoredRelease]:

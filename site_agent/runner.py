@@ -8,6 +8,7 @@ synced) before it is written out or returned for sending; every refusal is in th
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import dataclass
 from datetime import UTC, datetime
 from pathlib import Path
@@ -25,6 +26,7 @@ from federation.protocol import (
     sha256_hex,
 )
 from federation.protocol.cli_support import write_atomic
+from federation.protocol.crashpoints import crash_point
 
 from . import approval, ledger
 from .analyses import Flow, build_analyses, collect_counts, combined_schema, tabulate
@@ -89,8 +91,12 @@ def run_request(
     mapping_path: Path | None = None,
     chunk_rows: int = DEFAULT_CHUNK_ROWS,
     compare_bundle_bytes: bytes | None = None,
+    progress: Callable[[int], None] | None = None,
 ) -> Outcome:
-    """Answer one request; every outcome, release or refusal, is written to the ledger first."""
+    """Answer one request; every outcome, release or refusal, is written to the ledger first.
+
+    ``progress``, when given, is called with the number of records in each chunk read (for a progress bar).
+    """
     private_key = site.private_key()
     ledger.append(
         site.ledger_path,
@@ -105,10 +111,16 @@ def run_request(
             Request.from_bytes(request_bytes, site.trusted, "request")
             data = approval.hand_over(site, held)
             return Outcome(Release.from_bytes(data, "release"), data)
+        answered = recorded_release(site, sha256_hex(request_bytes))
+        if answered is not None:  # the same bytes asked again (a lost reply): the recorded release, not a new one
+            Request.from_bytes(request_bytes, site.trusted, "request")
+            copy = site.releases_dir / f"{answered.release.study_id}-{answered.release.request_id}.json"
+            write_atomic(copy, answered.release_bytes)  # restores the site's copy if a crash came first
+            return answered
         request, bundle = check_request(site, request_bytes, bundle_bytes)
         compare = check_compare_bundle(site, request, compare_bundle_bytes)
         release, facts = _compute(
-            site, request, bundle, data_path, mapping_path or site.mapping_path, chunk_rows, compare, holder
+            site, request, bundle, data_path, mapping_path or site.mapping_path, chunk_rows, compare, holder, progress
         )
     except AwaitingApproval:
         raise
@@ -137,14 +149,34 @@ def run_request(
         {
             "study_id": signed.study_id,
             "request_id": signed.request_id,
+            "request_sha256": sha256_hex(request_bytes),
             "release_sha256": sha256_hex(release_bytes),
             "release": release_bytes.decode("utf-8"),
             "facts": facts,
             "review": holder["protected"].review(),
         },
     )
+    crash_point("site:after-ledger-release")
     write_atomic(site.releases_dir / f"{signed.study_id}-{signed.request_id}.json", release_bytes)
+    crash_point("site:before-send")
     return Outcome(signed, release_bytes)
+
+
+def recorded_release(site: Site, request_sha256: str) -> Outcome | None:
+    """The release this site already recorded for exactly these request bytes, or None.
+
+    Handing it back again discloses nothing new: the bytes are the ones already in the ledger (and already
+    audited); nothing is recomputed. A different request that reuses the request id is still refused by
+    :func:`check_request`.
+    """
+    for entry in ledger.read_entries(site.ledger_path):
+        details = entry.get("details", {})
+        if entry.get("event") == "release" and details.get("request_sha256") == request_sha256:
+            data = details["release"].encode("utf-8")
+            if sha256_hex(data) != details.get("release_sha256"):
+                raise PolicyViolation("ledger: the recorded release does not match its SHA-256 (run ledger verify)")
+            return Outcome(Release.from_bytes(data, "recorded release"), data)
+    return None
 
 
 @dataclass(frozen=True)
@@ -164,12 +196,15 @@ def preview_request(
     mapping_path: Path | None = None,
     chunk_rows: int = DEFAULT_CHUNK_ROWS,
     compare_bundle_bytes: bytes | None = None,
+    progress: Callable[[int], None] | None = None,
 ) -> Preview:
     """Everything ``run_request`` computes, without signing, sending or writing to the ledger."""
     request, bundle = check_request(site, request_bytes, bundle_bytes)
     compare = check_compare_bundle(site, request, compare_bundle_bytes)
     holder: dict[str, Any] = {}
-    release, _ = _compute(site, request, bundle, data, mapping_path or site.mapping_path, chunk_rows, compare, holder)
+    release, _ = _compute(
+        site, request, bundle, data, mapping_path or site.mapping_path, chunk_rows, compare, holder, progress
+    )
     return Preview(release, holder["counts"], holder["protected"])
 
 
@@ -182,6 +217,7 @@ def _compute(
     chunk_rows: int,
     compare: Bundle | None = None,
     holder: dict[str, Any] | None = None,
+    progress: Callable[[int], None] | None = None,
 ) -> tuple[Release, dict[str, Any]]:
     """Return the unsigned release and the audit facts (definitions of what it shows and hides)."""
     source = data if isinstance(data, SourceSpec) else site.source(data)
@@ -191,7 +227,7 @@ def _compute(
     flow = Flow(exclusion_reasons(mapping))
     analyses = build_analyses(request.analyses, bundle, compare)
     pair = (compare, make_scorer(compare)) if compare is not None else None
-    tabulate(source, mapping, bundle, scorer, flow, analyses, chunk_rows, pair)
+    tabulate(source, mapping, bundle, scorer, flow, analyses, chunk_rows, pair, progress)
     counts = collect_counts(flow, analyses, site.policy)
     earlier = ledger.facts_for_study(site.ledger_path, request.study_id)
     protected = protect(counts, site.policy, earlier, bundle.sha256, request.request_id)

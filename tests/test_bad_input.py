@@ -211,9 +211,25 @@ def test_mapping_maps_local_names_and_codes(study, ready, tmp_path):
 
 
 def test_second_answer_to_the_same_request_is_refused_by_the_site(study, ready, tmp_path, capsys):
+    """The identical request again (a lost reply) gets the recorded release back, computed once; a different
+    request reusing the request id is refused."""
+    from dataclasses import replace
+
+    from federation.protocol import Request
+
     _, request, site_dir = ready
     assert run_site(study, request, site_dir, study.site_csvs[0], tmp_path / "r1.json") == 0
+    # Other data on the second run: if anything were recomputed, the release would differ.
+    assert run_site(study, request, site_dir, study.site_csvs[1], tmp_path / "r2.json") == 0
+    assert (tmp_path / "r2.json").read_bytes() == (tmp_path / "r1.json").read_bytes()
+    events = [e["event"] for e in ledger_events(site_dir)]
+    assert events == ["request_received", "release", "sent", "request_received", "sent"]
     capsys.readouterr()
-    assert run_site(study, request, site_dir, study.site_csvs[0], tmp_path / "r2.json") == 2
+    parsed = Request.from_bytes(request.read_bytes(), None)
+    key = load_private_key(study.coordinator_key)
+    changed = replace(parsed, issued_at="2000-01-01T00:00:00+00:00").signed_bytes(key)
+    other = tmp_path / "same-id-other-bytes.json"
+    other.write_bytes(changed)
+    assert run_site(study, other, site_dir, study.site_csvs[0], tmp_path / "r3.json") == 2
     assert "already answered" in one_error_line(capsys, "site-agent")
-    assert not (tmp_path / "r2.json").exists()
+    assert not (tmp_path / "r3.json").exists()

@@ -271,11 +271,15 @@ class ConfusionTable:
         if not isinstance(raw, dict):
             raise DocumentError(f"{where}: must be an object")
         threshold = _get(raw, "threshold", (int, float), where)
+        if not math.isfinite(threshold):
+            raise DocumentError(f"{where}.threshold: must be a finite number")
         cells_raw = _get(raw, "cells", dict, where)
         if set(cells_raw) != set(CELLS):
             raise DocumentError(f"{where}.cells: must hold exactly {', '.join(CELLS)}")
         cells = {c: _count(cells_raw[c], f"{where}.cells.{c}") for c in CELLS}
         suppressed = _get(raw, "suppressed", list, where)
+        if not all(isinstance(c, str) for c in suppressed):
+            raise DocumentError(f"{where}.suppressed: must list cell names")
         if set(suppressed) != {c for c in CELLS if cells[c] is None} or len(suppressed) != len(set(suppressed)):
             raise DocumentError(f"{where}.suppressed: must list exactly the cells that are null")
         return cls(float(threshold), cells, tuple(c for c in CELLS if c in suppressed))

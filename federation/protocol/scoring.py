@@ -114,7 +114,7 @@ class Scorecard:
                 continue
             if not isinstance(table, dict):
                 raise BundleError(f"scorecard.points.{feature.name} must be an object")
-            lookups.append(_lookup(table, feature.name, feature.categories))
+            lookups.append(_lookup(table, feature.name, feature.categories) or None)  # empty: 0 points for all
         weight_vector = np.array(
             [_finite(weights.get(f.name, 0), f"scorecard.weights.{f.name}") for f in schema.features]
         )
@@ -157,5 +157,7 @@ def _lookup(table: dict[str, Any], name: str, categories: tuple[str, ...]) -> di
                 code = int(key)
             except ValueError:
                 raise BundleError(f"scorecard.points.{name}: key {key!r} is not an integer value") from None
+            if abs(code) > 2**53:  # model inputs are float: a larger key could never match (and breaks lookup)
+                raise BundleError(f"scorecard.points.{name}: key {key[:40]!r} is out of range (at most 2**53)")
         out[code] = _finite(value, f"scorecard.points.{name}.{key}")
     return out
