@@ -122,14 +122,11 @@ def run_flower_inprocess(study: DemoStudy) -> list[SiteOutcome]:
     return outcomes
 
 
-def run_flower_simulation(study: DemoStudy) -> list[SiteOutcome]:
-    """Flower's simulation engine (Ray), one virtual SuperNode per site, on this machine's CPUs."""
+def simulate(server: object, client: object, num_supernodes: int) -> None:
+    """Flower's simulation engine (Ray) on this machine's CPUs, with Ray's own temp dir, removed afterwards."""
     import ray
     from flwr.simulation import run_simulation
 
-    outcomes: list[SiteOutcome] = []
-    server = make_server_app(round_config(study), outcomes.extend)
-    client = make_client_app([str(d) for d in study.site_dirs])
     ray_tmp = tempfile.mkdtemp(prefix="msv-ray-", dir="/tmp")
     # Flower announces run_simulation's deprecation and Ray a GPU tip on every run; neither helps a user here.
     logging.getLogger("flwr").setLevel(logging.ERROR)
@@ -138,7 +135,7 @@ def run_flower_simulation(study: DemoStudy) -> list[SiteOutcome]:
         run_simulation(
             server_app=server,
             client_app=client,
-            num_supernodes=len(study.site_dirs),
+            num_supernodes=num_supernodes,
             backend_config={
                 "init_args": {
                     "address": "local",
@@ -154,6 +151,13 @@ def run_flower_simulation(study: DemoStudy) -> list[SiteOutcome]:
         if ray.is_initialized():
             ray.shutdown()
         shutil.rmtree(ray_tmp, ignore_errors=True)
+
+
+def run_flower_simulation(study: DemoStudy) -> list[SiteOutcome]:
+    """Flower's simulation engine (Ray), one virtual SuperNode per site."""
+    outcomes: list[SiteOutcome] = []
+    server = make_server_app(round_config(study), outcomes.extend)
+    simulate(server, make_client_app([str(d) for d in study.site_dirs]), len(study.site_dirs))
     return outcomes
 
 

@@ -180,7 +180,8 @@ def prepare_chunk(
         reference2 = _reference(
             batch.column(mapping.reference2.column), mapping.reference2, mapping.missing, source, "second reference"
         )
-    matrix = np.empty((n, len(schema.features)), dtype=np.float32)  # what the models see, one column a feature
+    # What the models see, one column a feature; column-major so that each feature is written contiguously.
+    matrix = np.empty((n, len(schema.features)), dtype=np.float32, order="F")
     for j, feature in enumerate(schema.features):
         fmap = mapping.features[feature.name]
         matrix[:, j] = _feature(batch.column(fmap.column), feature, fmap, mapping, source, reasons)
@@ -196,7 +197,7 @@ def prepare_chunk(
     model = primary or schema
     positions = [schema.names.index(name) for name in model.names]
     if positions == list(range(len(schema.features))):
-        inputs = kept
+        inputs = np.ascontiguousarray(kept)  # the scorer takes row-major input
     else:
         inputs = np.ascontiguousarray(kept[:, positions])
     return PreparedChunk(
@@ -241,9 +242,12 @@ def _feature(
         reasons["unknown_category"] |= ~missing & np.isnan(values)
     else:
         values, missing = _number(column, fmap, mapping, where)
-        values = values * fmap.multiply
+        if fmap.multiply != 1.0:
+            values = values * fmap.multiply
         reasons["out_of_range"] |= ~missing & ~np.isfinite(values)
-        if feature.type == "int":
+        # Whole numbers already when the column holds integers, with no unit conversion and no codes.
+        whole = pa.types.is_integer(column.type) and fmap.multiply == 1.0 and not fmap.codes
+        if feature.type == "int" and not whole:
             if fmap.multiply != 1.0:  # a unit conversion: round to the schema's whole unit
                 values = np.round(values)
             with np.errstate(invalid="ignore"):
@@ -261,7 +265,8 @@ def _feature(
         values = np.where(missing, fill, values)
     else:
         reasons["missing_feature"] |= missing
-    return np.nan_to_num(values, nan=0.0, posinf=0.0, neginf=0.0)
+    bad = ~np.isfinite(values)  # excluded records: any finite value will do, the models never see them
+    return np.where(bad, 0.0, values) if bad.any() else values
 
 
 def _category(column: pa.Array, feature: Feature, fmap: FeatureMap, mapping: Mapping) -> tuple[np.ndarray, np.ndarray]:
@@ -326,6 +331,8 @@ def _number(column: pa.Array, fmap: FeatureMap, mapping: Mapping, where: str) ->
         missing &= ~coded
     else:
         raise DataValidationError(f"{where}: holds {kind} values, not numbers")
-    values = np.where(coded, coded_values, values)
-    values[missing] = np.nan
+    if fmap.codes:
+        values = np.where(coded, coded_values, values)
+    if missing.any():  # values may be a read-only view of the column here: replace, never write in place
+        values = np.where(missing, np.nan, values)
     return values, missing

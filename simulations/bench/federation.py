@@ -13,14 +13,13 @@ Deployment (``BENCH_DEPLOY=1``): 10 sites on loopback over TLS, with :mod:`tests
 
 from __future__ import annotations
 
-import os
-import shutil
 import sys
 import tempfile
 import time
 from pathlib import Path
 from typing import Any
 
+from ..demo import simulate
 from .common import median, report, run_child, say
 from .site_path import prepare, write_files
 
@@ -107,34 +106,11 @@ def _validate_apps(n: int, work: Path, times: dict[str, float], outcomes: list[A
 
 
 def child(kind: str, n: int, work: Path) -> None:
-    import ray
-    from flwr.simulation import run_simulation
-
     times: dict[str, float] = {}
     outcomes: list[Any] = []
     server, client = _ping_apps(n, times) if kind == "ping" else _validate_apps(n, work, times, outcomes)
-    ray_tmp = tempfile.mkdtemp(prefix="msv-ray-", dir="/tmp")
     started = time.perf_counter()
-    try:
-        run_simulation(
-            server_app=server,
-            client_app=client,
-            num_supernodes=n,
-            backend_config={
-                "init_args": {
-                    "address": "local",
-                    "num_cpus": min(2, os.cpu_count() or 1),
-                    "include_dashboard": False,
-                    "_temp_dir": ray_tmp,
-                    "logging_level": "error",
-                },
-                "client_resources": {"num_cpus": 1, "num_gpus": 0.0},
-            },
-        )
-    finally:
-        if ray.is_initialized():
-            ray.shutdown()
-        shutil.rmtree(ray_tmp, ignore_errors=True)
+    simulate(server, client, n)
     total = time.perf_counter() - started
     released = sum(o.status == "released" for o in outcomes)
     if kind != "ping" and released != n:

@@ -8,7 +8,7 @@ request) and feeds every analysis; :func:`collect_counts` gathers the named coun
 
 from __future__ import annotations
 
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from typing import Any
 
 from federation.protocol import AnalysisSpec, Bundle, Schema, ValidationToolError
@@ -164,8 +164,12 @@ def tabulate(
     analyses: Sequence[LocalAnalysis],
     chunk_rows: int = DEFAULT_CHUNK_ROWS,
     compare: tuple[Bundle, Any] | None = None,
+    progress: Callable[[int], None] | None = None,
 ) -> None:
-    """Read ``source`` in chunks and feed every analysis; ``compare`` = (bundle, scorer) of a paired request."""
+    """Read ``source`` in chunks and feed every analysis; ``compare`` = (bundle, scorer) of a paired request.
+
+    ``progress``, when given, is called with the number of records in each chunk read (a count only).
+    """
     schema = combined_schema(bundle.schema, compare[0].schema if compare else None)
     ids = IdTracker() if mapping.id_column else None
     where = source.describe()
@@ -184,15 +188,19 @@ def tabulate(
         source, mapping.columns_needed(), chunk_rows, numeric_columns(mapping, schema), mapping.missing
     ):
         chunk = prepare_chunk(batch, schema, mapping, where, ids, primary=bundle.schema)
+        if progress is not None:
+            progress(batch.num_rows)
+        # Blocks of SCORE_BLOCK_ROWS analysed records in order; only a block that spans two chunks is copied
+        # (the others are views of their chunk).
+        if waiting and waiting + len(chunk) >= SCORE_BLOCK_ROWS:
+            head, chunk = chunk.split(SCORE_BLOCK_ROWS - waiting)
+            score(PreparedChunk.concat([*pending, head]))
+            pending, waiting = [], 0
+        while len(chunk) >= SCORE_BLOCK_ROWS:
+            block, chunk = chunk.split(SCORE_BLOCK_ROWS)
+            score(block)
         pending.append(chunk)
         waiting += len(chunk)
-        if waiting < SCORE_BLOCK_ROWS:
-            continue
-        rest = PreparedChunk.concat(pending)
-        while len(rest) >= SCORE_BLOCK_ROWS:
-            block, rest = rest.split(SCORE_BLOCK_ROWS)
-            score(block)
-        pending, waiting = [rest], len(rest)
     if pending:
         score(PreparedChunk.concat(pending))
 
