@@ -36,8 +36,12 @@ def _read(path: Path, what: str) -> bytes:
 
 def cmd_keys_new(args: argparse.Namespace) -> int:
     private, public = write_keypair(args.out, "coordinator")
+    kid = key_id(load_public_key(public))
+    if args.json:
+        print_json({"private_key": str(private), "public_key": str(public), "key_id": kid})
+        return 0
     print(f"wrote {private} (private, keep it secret) and {public} (give this to every site)")
-    print(f"key id: {key_id(load_public_key(public))}")
+    print(f"key id: {kid}")
     return 0
 
 
@@ -48,6 +52,9 @@ def cmd_bundle_pack(args: argparse.Namespace) -> int:
     thresholds = [args.threshold] if args.threshold is not None else None
     data = pack_model(model, model_format_for(args.model), schema, load_private_key(args.sign), thresholds, args.name)
     write_atomic(args.out, data)
+    if args.json:
+        print_json({"out": str(args.out), "sha256": load_bundle_hash(data)})
+        return 0
     print(f"wrote {args.out} (sha256 {load_bundle_hash(data)})")
     return 0
 
@@ -141,6 +148,18 @@ def cmd_request_new(args: argparse.Namespace) -> int:
     )
     write_atomic(args.out, document)
     request = Request.from_bytes(document, None, str(args.out))
+    if args.json:
+        print_json(
+            {
+                "out": str(args.out),
+                "study_id": request.study_id,
+                "request_id": request.request_id,
+                "bundle_sha256": request.bundle_sha256,
+                "analyses": [a.name for a in request.analyses],
+                "compare_bundle_sha256": request.compare_bundle_sha256 or None,
+            }
+        )
+        return 0
     print(f"wrote {args.out} (study {request.study_id}, request {request.request_id})")
     print(f"  analyses: {', '.join(a.name for a in request.analyses)}")
     if request.compare_bundle_sha256:
@@ -158,6 +177,17 @@ def _float_list(text: str, flag: str) -> list[float]:
 def cmd_enrol(args: argparse.Namespace) -> int:
     store = Store(args.store)
     kid = store.enrol(args.site_id, _read(args.key, "site public key"), str(args.key))
+    if args.json:
+        if args.node_key:  # the node-key lines go to stderr so that stdout stays one JSON document
+            import contextlib
+            import sys
+
+            from .deploy.commands import enrol_node_key
+
+            with contextlib.redirect_stdout(sys.stderr):
+                enrol_node_key(store, args.site_id, args.node_key)
+        print_json({"site_id": args.site_id, "key_id": kid, "node_key": str(args.node_key) if args.node_key else None})
+        return 0
     print(f"enrolled site {args.site_id} with release-signing key {kid}")
     if args.node_key:
         from .deploy.commands import enrol_node_key
@@ -170,6 +200,14 @@ def cmd_ingest(args: argparse.Namespace) -> int:
     store = Store(args.store)
     documents = [(_read(path, "release file"), str(path)) for path in args.releases]
     releases = store.ingest(documents)
+    if args.json:
+        print_json(
+            [
+                {"site_id": r.site_id, "study_id": r.study_id, "request_id": r.request_id, "file": source}
+                for r, (_, source) in zip(releases, documents, strict=True)
+            ]
+        )
+        return 0
     for release in releases:
         print(f"ingested release of site {release.site_id} for request {release.request_id}")
     return 0
@@ -250,36 +288,105 @@ def cmd_demo(args: argparse.Namespace) -> int:
     return run_demo(args.out, engine=args.engine, seed=args.seed)
 
 
+EPILOG = """\
+a study, offline (files carried by hand):
+  federation keys new --out coordinator/
+  federation bundle pack --model model.onnx --schema schema.toml --sign coordinator/coordinator.key --out model.bundle
+  federation request new --store study.db --study-id study-1 --bundle model.bundle \\
+      --sign coordinator/coordinator.key --out request.json
+  (each site: site-agent init / check / run, then hands back release.json and site.pub)
+  federation enrol --store study.db --site-id SITE --key SITE/site.pub
+  federation ingest --store study.db releases/*.json
+  federation analyze --store study.db
+  federation report --store study.db --out report.html
+
+online (Flower deployment engine): certs new, serve, enrol --node-key, run; see docs/deployment.md.
+guides: docs/coordinator.md, docs/site-it.md, docs/ethics-board.md
+
+exit codes:
+  0  done
+  1  a usage or input error (bad flag, missing or malformed file)
+  2  refused: a signature or hash does not verify, a site's policy or the coordinator's checks refused
+  3  partial: done, but some sites have not released (report, run)
+  4  online round not completed: the SuperLink is unreachable, the quorum was not reached, or the round was
+     cut short (continue with `federation run --resume`)
+every error is one line naming the file, field and rule broken; none carries a value from a record.
+"""
+
+
+def _examples(*lines: str) -> str:
+    return "example:\n" + "\n".join(f"  {line}" for line in lines)
+
+
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="federation",
         description="Coordinator tools: sign a frozen model, issue study requests, enrol sites, "
-        "ingest their signed releases and pool the results.",
+        "ingest their signed releases and pool the results. `federation COMMAND --help` explains each command.",
+        epilog=EPILOG,
+        formatter_class=argparse.RawDescriptionHelpFormatter,
     )
     sub = parser.add_subparsers(title="commands", metavar="COMMAND")
 
     keys = sub.add_parser("keys", help="coordinator signing keys").add_subparsers(metavar="ACTION")
-    p = keys.add_parser("new", help="make coordinator.key (private, mode 0600) and coordinator.pub")
+    p = keys.add_parser(
+        "new",
+        help="make coordinator.key (private, mode 0600) and coordinator.pub",
+        description="Make the coordinator's signing key pair. coordinator.key signs bundles and requests: keep it "
+        "secret. coordinator.pub goes to every site (`site-agent init --trust`).",
+        epilog=_examples("federation keys new --out coordinator/"),
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
     p.add_argument("--out", type=Path, required=True, help="folder to write the key pair into")
+    p.add_argument("--json", action="store_true", help="print the file paths and key id as JSON")
     p.set_defaults(handler=cmd_keys_new)
 
     bundle = sub.add_parser("bundle", help="pack, sign and inspect model bundles").add_subparsers(metavar="ACTION")
-    p = bundle.add_parser("pack", help="pack a frozen model and its input schema into one signed file")
+    p = bundle.add_parser(
+        "pack",
+        help="pack a frozen model and its input schema into one signed file",
+        description="Pack a frozen model (ONNX, or a JSON scorecard) with its input schema into one signed "
+        "bundle file. Sites verify the signature against the coordinator key they pinned before reading it.",
+        epilog=_examples(
+            "federation bundle pack --model model.onnx --schema schema.toml --sign coordinator/coordinator.key \\\n"
+            "    --name my-screen --out model.bundle"
+        ),
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
     p.add_argument("--model", type=Path, required=True, help="model file: .onnx, or .json scorecard")
     p.add_argument("--schema", type=Path, required=True, help="input schema (TOML, see docs/formats.md)")
     p.add_argument("--threshold", type=float, help="screen-positive when score >= this (default 0.5 for probabilities)")
     p.add_argument("--sign", type=Path, required=True, help="coordinator private key (coordinator.key)")
     p.add_argument("--name", default="model", help="a short name for the model shown to sites")
     p.add_argument("--out", type=Path, required=True, help="bundle file to write")
+    p.add_argument("--json", action="store_true", help="print the file written and its SHA-256 as JSON")
     p.set_defaults(handler=cmd_bundle_pack)
-    p = bundle.add_parser("show", help="show what a bundle holds")
+    p = bundle.add_parser(
+        "show",
+        help="show what a bundle holds",
+        description="Show a bundle's hash, signer, model kind, thresholds and the inputs the model expects. "
+        "With --trust the signature is verified (exit code 2 if it does not verify).",
+        epilog=_examples("federation bundle show model.bundle --trust coordinator.pub"),
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
     p.add_argument("bundle", type=Path)
     p.add_argument("--trust", type=Path, action="append", help="coordinator public key to verify the signature with")
     p.add_argument("--json", action="store_true", help="machine-readable output")
     p.set_defaults(handler=cmd_bundle_show)
 
     request = sub.add_parser("request", help="issue study requests").add_subparsers(metavar="ACTION")
-    p = request.add_parser("new", help="record and sign a request for the sites of a study")
+    p = request.add_parser(
+        "new",
+        help="record and sign a request for the sites of a study",
+        description="Record a study request in the store and write it, signed, to a file. Send the file and the "
+        "bundle to every site (offline), or put both in the study folder for `federation serve` (online).",
+        epilog=_examples(
+            "federation request new --store study.db --study-id study-1 --bundle model.bundle \\\n"
+            "    --sign coordinator/coordinator.key --out request.json",
+            "federation request new ... --analyses confusion,roc,subgroups --subgroup sex --subgroup age_months=24,36",
+        ),
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
     p.add_argument("--store", type=Path, required=True, help="study store (SQLite file; created if missing)")
     p.add_argument("--study-id", required=True, help="study identifier (letters, digits, . _ -)")
     p.add_argument("--bundle", type=Path, required=True, help="the signed model bundle the sites will run")
@@ -304,22 +411,47 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--compare", type=Path, metavar="OTHER.bundle", help="a second bundle for a paired comparison")
     p.add_argument("--request-id", help="request identifier (default: a random one)")
     p.add_argument("--out", type=Path, required=True, help="request file to write (send it to the sites)")
+    p.add_argument("--json", action="store_true", help="print the request's identifiers as JSON")
     p.set_defaults(handler=cmd_request_new)
 
-    p = sub.add_parser("enrol", help="enrol a site's release-signing public key")
-    p.add_argument("--store", type=Path, required=True)
-    p.add_argument("--site-id", required=True)
+    p = sub.add_parser(
+        "enrol",
+        help="enrol a site's release-signing public key",
+        description="Enrol a site: store its release-signing public key (site.pub, handed over out of band), so "
+        "that its releases verify at ingest. Online, --node-key also binds the site's SuperNode key.",
+        epilog=_examples("federation enrol --store study.db --site-id clinic-a --key clinic-a/site.pub"),
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
+    p.add_argument("--store", type=Path, required=True, help="study store (SQLite file)")
+    p.add_argument("--site-id", required=True, help="the site's identifier (as in its site.toml)")
     p.add_argument("--key", type=Path, required=True, help="the site's site.pub")
     p.add_argument("--node-key", type=Path, help="the site's node.pub: binds the site to its SuperNode (online)")
+    p.add_argument("--json", action="store_true", help="print the site and key id as JSON")
     p.set_defaults(handler=cmd_enrol)
 
-    p = sub.add_parser("ingest", help="verify and store signed releases (all or none)")
-    p.add_argument("--store", type=Path, required=True)
+    p = sub.add_parser(
+        "ingest",
+        help="verify and store signed releases (all or none)",
+        description="Verify each release file (site signature against the enrolled key, request and bundle "
+        "hashes, counts consistent) and store them all in one transaction; if one fails, none is stored and "
+        "the exit code is 2.",
+        epilog=_examples("federation ingest --store study.db releases/*.json"),
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
+    p.add_argument("--store", type=Path, required=True, help="study store (SQLite file)")
     p.add_argument("releases", type=Path, nargs="+", help="release files from sites")
+    p.add_argument("--json", action="store_true", help="print what was stored as JSON")
     p.set_defaults(handler=cmd_ingest)
 
-    p = sub.add_parser("analyze", help="per-site and pooled accuracy from the stored releases")
-    p.add_argument("--store", type=Path, required=True)
+    p = sub.add_parser(
+        "analyze",
+        help="per-site and pooled accuracy from the stored releases",
+        description="Per-site 2x2 tables, sensitivity and specificity with 95% intervals, and random-effects "
+        "pooled estimates with heterogeneity, from the releases in the store.",
+        epilog=_examples("federation analyze --store study.db", "federation analyze --store study.db --json > a.json"),
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
+    p.add_argument("--store", type=Path, required=True, help="study store (SQLite file)")
     p.add_argument("--study-id", help="which study (needed when the store holds several)")
     p.add_argument("--json", action="store_true", help="JSON on stdout")
     p.set_defaults(handler=cmd_analyze)
@@ -343,7 +475,14 @@ def build_parser() -> argparse.ArgumentParser:
 
     add_deploy_commands(sub)
 
-    p = sub.add_parser("demo", help="run the invented demo consortium end to end")
+    p = sub.add_parser(
+        "demo",
+        help="run the invented demo consortium end to end",
+        description="Generate an invented consortium of eight sites, run one study over it and write the table, "
+        "the store, every site folder and the report into --out. All data is invented.",
+        epilog=_examples("federation demo --out demo-output --engine offline"),
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
     p.add_argument("--out", type=Path, required=True, help="folder for the demo's data, sites, store and releases")
     p.add_argument(
         "--engine",

@@ -10,11 +10,11 @@ from pathlib import Path
 
 from federation.protocol import ValidationToolError
 from federation.protocol.cli_support import print_json, run_cli, write_atomic
+from federation.protocol.crashpoints import crash_point
+from federation.protocol.progress import records_progress
 
 from . import review
-from .approval import AwaitingApproval, record_sent
 from .config import init_site, load_site
-from .runner import run_request
 
 
 def _read(path: Path, what: str) -> bytes:
@@ -27,6 +27,18 @@ def _read(path: Path, what: str) -> bytes:
 def cmd_init(args: argparse.Namespace) -> int:
     root = init_site(args.out, args.site_id, args.trust)
     site = load_site(root)
+    if args.json:
+        print_json(
+            {
+                "site_id": site.site_id,
+                "site_dir": str(root),
+                "policy": str(root / "site.toml"),
+                "private_key": str(root / "site.key"),
+                "public_key": str(root / "site.pub"),
+                "ledger": str(root / "ledger.jsonl"),
+            }
+        )
+        return 0
     print(f"created site folder {root} for site {site.site_id}")
     print(f"  policy and settings: {root / 'site.toml'} (review it with your ethics board)")
     print(f"  release-signing key: {root / 'site.key'} (private) and {root / 'site.pub'} (give to the coordinator)")
@@ -35,22 +47,27 @@ def cmd_init(args: argparse.Namespace) -> int:
 
 
 def cmd_run(args: argparse.Namespace) -> int:
+    from .approval import AwaitingApproval, record_sent
     from .preview import source_from_args
+    from .runner import run_request  # pandas and scipy: imported here so `site-agent --help` starts fast
 
     site = load_site(args.site)
     try:
-        outcome = run_request(
-            site,
-            _read(args.request, "request file"),
-            _read(args.bundle, "bundle file"),
-            source_from_args(site, args.data, args.table, args.query),
-            args.mapping,
-            compare_bundle_bytes=_read(args.compare_bundle, "comparison bundle") if args.compare_bundle else None,
-        )
+        with records_progress() as progress:  # a bar on a terminal only; nothing when piped
+            outcome = run_request(
+                site,
+                _read(args.request, "request file"),
+                _read(args.bundle, "bundle file"),
+                source_from_args(site, args.data, args.table, args.query),
+                args.mapping,
+                compare_bundle_bytes=_read(args.compare_bundle, "comparison bundle") if args.compare_bundle else None,
+                progress=progress,
+            )
     except AwaitingApproval as held:
         return review.print_pending(held, args.site)
     release = outcome.release
     write_atomic(args.out, outcome.release_bytes)
+    crash_point("site:after-send")  # inert unless MSV_CRASH_AT says so (crash-safety tests)
     record_sent(site, outcome.release_bytes, "file", args.out)
     if args.json:
         print_json(json.loads(outcome.release_bytes))
@@ -80,14 +97,16 @@ def cmd_check(args: argparse.Namespace) -> int:
     from .runner import preview_request
 
     site = load_site(args.site)
-    preview = preview_request(
-        site,
-        _read(args.request, "request file"),
-        _read(args.bundle, "bundle file"),
-        source_from_args(site, args.data, args.table, args.query),
-        args.mapping,
-        compare_bundle_bytes=_read(args.compare_bundle, "comparison bundle") if args.compare_bundle else None,
-    )
+    with records_progress() as progress:
+        preview = preview_request(
+            site,
+            _read(args.request, "request file"),
+            _read(args.bundle, "bundle file"),
+            source_from_args(site, args.data, args.table, args.query),
+            args.mapping,
+            compare_bundle_bytes=_read(args.compare_bundle, "comparison bundle") if args.compare_bundle else None,
+            progress=progress,
+        )
     if args.json:
         print_json(check_report(preview))
     else:
@@ -104,6 +123,9 @@ def cmd_map_suggest(args: argparse.Namespace) -> int:
     if args.rows < 1:
         raise ValidationToolError("--rows: must be at least 1")
     notes = write_suggestion(source, schema, args.out, args.rows)
+    if args.json:
+        print_json({"out": str(args.out), "to_do": list(notes)})
+        return 0
     print(f"wrote {args.out}: a proposed mapping. Check every line marked CONFIRM before using it.")
     for note in notes:
         print(f"  to do: {note}")
@@ -129,9 +151,10 @@ def cmd_join(args: argparse.Namespace) -> int:
 
 
 def cmd_app_hash(args: argparse.Namespace) -> int:
-    from .launcher import build_app_bundle
+    from federation.protocol.app_bundle import build_app_bundle
 
-    content, digest = build_app_bundle()
+    bundle = build_app_bundle()
+    content, digest = bundle.content, bundle.sha256
     if args.out:
         write_atomic(args.out, content)
     allowed = load_site(args.site).allowed_fab_sha256 if args.site else None
@@ -145,24 +168,70 @@ def cmd_app_hash(args: argparse.Namespace) -> int:
     return 0
 
 
+EPILOG = """\
+answering a request offline (files carried by hand):
+  site-agent init --site-id SITE --trust coordinator.pub --out SITEDIR    # once; give SITEDIR/site.pub back
+  site-agent map suggest --data export.csv --bundle model.bundle --site SITEDIR --out mapping.toml
+  site-agent check --site SITEDIR --request request.json --bundle model.bundle --data export.csv \\
+      --mapping mapping.toml                                              # what would leave; nothing signed
+  site-agent run   --site SITEDIR --request request.json --bundle model.bundle --data export.csv \\
+      --mapping mapping.toml --out release.json                          # hand release.json back
+  site-agent ledger verify --site SITEDIR
+
+online: `site-agent join` (outbound TLS to the coordinator only); approval: review, approve, reject, release.
+guide: docs/site-it.md (install, keys, mapping, ports and paths); ethics board: docs/ethics-board.md
+
+exit codes: 0 done; 1 a usage or input error; 2 refused (a signature, the site's policy, a broken ledger);
+3 partial (a release held for approval: nothing was sent). Errors are one line naming the file, field and
+rule broken, and never hold a value from a record.
+"""
+
+
+def _examples(*lines: str) -> str:
+    return "example:\n" + "\n".join(f"  {line}" for line in lines)
+
+
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="site-agent",
         description="Site agent: scores this site's records with a coordinator's signed, frozen model and "
         "writes a signed release holding only counts that pass the site's disclosure policy. "
-        "Records never leave the site.",
+        "Records never leave the site. `site-agent COMMAND --help` explains each command.",
+        epilog=EPILOG,
+        formatter_class=argparse.RawDescriptionHelpFormatter,
     )
     sub = parser.add_subparsers(title="commands", metavar="COMMAND")
 
-    p = sub.add_parser("init", help="create a site folder: policy (site.toml), site keys, ledger")
+    p = sub.add_parser(
+        "init",
+        help="create a site folder: policy (site.toml), site keys, ledger",
+        description="Create the site folder: site.toml (the disclosure policy and settings; review it with your "
+        "ethics board), site.key (private, mode 0600; signs releases and the ledger), site.pub (give it to "
+        "the coordinator), the ledger, and a copy of each pinned coordinator key.",
+        epilog=_examples("site-agent init --site-id clinic-a --trust coordinator.pub --out /srv/validation/site"),
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
     p.add_argument("--site-id", required=True, help="this site's identifier, agreed with the coordinator")
     p.add_argument(
         "--trust", type=Path, action="append", required=True, help="coordinator public key to pin (repeat for several)"
     )
     p.add_argument("--out", type=Path, required=True, help="site folder to create")
+    p.add_argument("--json", action="store_true", help="print the paths created as JSON")
     p.set_defaults(handler=cmd_init)
 
-    p = sub.add_parser("run", help="answer one request offline and write the signed release file")
+    p = sub.add_parser(
+        "run",
+        help="answer one request offline and write the signed release file",
+        description="Verify the request and bundle against the pinned coordinator keys and the site policy, read "
+        "and score the local records, suppress small counts, record the release in the ledger and write it, "
+        "signed, to --out. Run `site-agent check` first to see what it would release. Exit codes: 0 written; "
+        "1 bad input; 2 refused (signature, policy); 3 held for approval (require_approval = true).",
+        epilog=_examples(
+            "site-agent run --site SITE --request request.json --bundle model.bundle \\\n"
+            "    --data export.csv --mapping mapping.toml --out release.json"
+        ),
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
     p.add_argument("--site", type=Path, required=True, help="site folder (made by `site-agent init`)")
     p.add_argument("--request", type=Path, required=True, help="request file from the coordinator")
     p.add_argument("--bundle", type=Path, required=True, help="model bundle from the coordinator")
@@ -171,7 +240,18 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--json", action="store_true", help="print the release JSON on stdout")
     p.set_defaults(handler=cmd_run)
 
-    p = sub.add_parser("check", help="show what a request would release, without signing or sending anything")
+    p = sub.add_parser(
+        "check",
+        help="show what a request would release, without signing or sending anything",
+        description="A dry run: everything `site-agent run` does except signing, writing the ledger and writing "
+        "a release. Shows the participant flow, the counts that would be released and what the policy "
+        "suppresses. Use it to test a mapping and to show the ethics board a release before it exists.",
+        epilog=_examples(
+            "site-agent check --site SITE --request request.json --bundle model.bundle \\\n"
+            "    --data export.csv --mapping mapping.toml"
+        ),
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
     p.add_argument("--site", type=Path, required=True, help="site folder (made by `site-agent init`)")
     p.add_argument("--request", type=Path, required=True, help="request file from the coordinator")
     p.add_argument("--bundle", type=Path, required=True, help="model bundle from the coordinator")
@@ -181,7 +261,17 @@ def build_parser() -> argparse.ArgumentParser:
 
     mapping = sub.add_parser("map", help="mapping files: local columns and codes -> the model's inputs")
     actions = mapping.add_subparsers(metavar="ACTION")
-    p = actions.add_parser("suggest", help="propose a mapping from the local columns, for a person to confirm")
+    p = actions.add_parser(
+        "suggest",
+        help="propose a mapping from the local columns, for a person to confirm",
+        description="Look at the local columns and codes and write a proposed mapping file (TOML) from them to "
+        "the model's inputs. Every guess is marked CONFIRM: read and correct it before use. Writes only the "
+        "mapping file, never overwrites one, and records nothing in the ledger.",
+        epilog=_examples(
+            "site-agent map suggest --data export.csv --bundle model.bundle --site SITE --out mapping.toml"
+        ),
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
     p.add_argument("--data", required=True, help="local records: a CSV or Parquet file, or a database URL")
     p.add_argument("--table", help="database table (with a database URL)")
     p.add_argument("--query", help="one read-only SELECT (with a database URL)")
@@ -190,9 +280,21 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--site", type=Path, help="site folder whose pinned keys verify --bundle")
     p.add_argument("--rows", type=int, default=5000, help="how many records to look at (default 5000)")
     p.add_argument("--out", type=Path, required=True, help="mapping file to write (never overwritten)")
+    p.add_argument("--json", action="store_true", help="print the file written and the to-do notes as JSON")
     p.set_defaults(handler=cmd_map_suggest)
 
-    p = sub.add_parser("join", help="join the coordinator's federation online (runs until stopped)")
+    p = sub.add_parser(
+        "join",
+        help="join the coordinator's federation online (runs until stopped)",
+        description="Start this site's Flower SuperNode and keep it connected to the coordinator's SuperLink "
+        "(outbound TLS only; no inbound port). Requests are answered exactly as `site-agent run` answers them, "
+        "using [data] in site.toml. Needs node.key from `site-agent init` and the site's hash listed in "
+        "[app] allowed_fab_sha256 (see `site-agent app hash`). Run it as a service; stop it with Ctrl-C.",
+        epilog=_examples(
+            "site-agent join --superlink coordinator.example.org:8000 --site SITE --root-certificates ca.crt"
+        ),
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
     p.add_argument("--superlink", required=True, help="the coordinator's SuperLink, HOST:PORT")
     p.add_argument("--site", type=Path, required=True, help="site folder (made by `site-agent init`)")
     p.add_argument("--root-certificates", type=Path, help="the coordinator's CA certificate (ca.crt)")
@@ -209,13 +311,21 @@ def build_parser() -> argparse.ArgumentParser:
     p.set_defaults(handler=cmd_app_hash)
 
     led = sub.add_parser("ledger", help="inspect and verify the site's ledger").add_subparsers(metavar="ACTION")
-    p = led.add_parser("verify", help="check the hash chain and signatures; names the first bad line")
-    p.add_argument("--site", type=Path, required=True)
+    p = led.add_parser(
+        "verify",
+        help="check the hash chain and signatures; names the first bad line",
+        description="Check that every ledger entry is signed by the site key and chained to the one before, and "
+        "that every release file in the site folder is in the ledger. Exit code 2 names the first bad line.",
+        epilog=_examples("site-agent ledger verify --site SITE --public-key /safe/copy/site.pub"),
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
+    p.add_argument("--site", type=Path, required=True, help="site folder")
     p.add_argument("--public-key", type=Path, help="check against this copy of the site key (default: site.pub)")
+    p.add_argument("--json", action="store_true", help="print the entry count, key id and last hash as JSON")
     p.set_defaults(handler=cmd_ledger_verify)
     p = led.add_parser("show", help="list ledger entries")
-    p.add_argument("--site", type=Path, required=True)
-    p.add_argument("--json", action="store_true")
+    p.add_argument("--site", type=Path, required=True, help="site folder")
+    p.add_argument("--json", action="store_true", help="every entry in full as JSON")
     p.set_defaults(handler=cmd_ledger_show)
 
     review.add_commands(sub)  # review, approve, reject, release

@@ -28,14 +28,16 @@ from collections.abc import Iterator
 from dataclasses import dataclass
 from datetime import UTC, datetime
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PrivateKey, Ed25519PublicKey
 
 from federation.protocol import ValidationToolError, canonical_bytes, key_id, sha256_hex
 from federation.protocol.keys import sign, verify
 
-from .audit import ReleaseFacts
+if TYPE_CHECKING:  # audit imports scipy; the site-agent's --help and ledger commands do not need it
+    from .audit import ReleaseFacts
+
 
 GENESIS = "0" * 64
 EVENTS = ("request_received", "refusal", "preview", "approval", "rejection", "release", "sent")
@@ -234,6 +236,8 @@ def answered_for_study(path: Path, study_id: str) -> list[dict[str, Any]]:
 def facts_for_study(path: Path, study_id: str) -> list[ReleaseFacts]:
     """What the study's recipient knows or may yet learn from this site: the audit facts of every release to
     the study, including releases awaiting approval (so that approving them later stays safe)."""
+    from .audit import ReleaseFacts
+
     facts = []
     for details in answered_for_study(path, study_id):
         raw = details.get("facts")

@@ -277,6 +277,17 @@ def cmd_ledger_verify(args: argparse.Namespace) -> int:
             "the end of the ledger, or the file was placed there by hand)"
         )
     head = ledger.head(site.ledger_path)
+    if getattr(args, "json", False):
+        print_json(
+            {
+                "ledger": str(site.ledger_path),
+                "entries": count,
+                "intact": True,
+                "site_key_id": key_id(public_key),
+                "last_entry_hash": head,
+            }
+        )
+        return 0
     print(f"{site.ledger_path}: {count} entries, chain and signatures intact (site key {key_id(public_key)})")
     print(f"  last entry hash {head} (note it down: a later verify can then tell if entries were cut off)")
     return 0

@@ -9,20 +9,24 @@ import argparse
 import json
 import sys
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 from federation.protocol import ValidationToolError
-from federation.store import Store
 
-from .certs import SERVER_DAYS, new_certificates
-from .fab import build_app_bundle
-from .nodes import parse_node_key
-from .rounds import PING, VALIDATE
-from .runs import RunOptions, exit_status, run_study
-from .superlink import LINK_DIR, LINK_FILE, LinkSettings, SuperLinkError, exec_superlink, prepare_serve, register_node
+from .certs import SERVER_DAYS
+
+if TYPE_CHECKING:
+    from federation.store import Store
+
+# Flower is imported inside the handlers (via fab, rounds, runs, superlink): building the parser for
+# `federation --help` must not pay for importing flwr.
 
 
 def enrol_node_key(store: Store, site_id: str, node_key_path: Path) -> None:
     """Bind a site's node key in the store; register it now if the study's SuperLink is up."""
+    from .nodes import parse_node_key
+    from .superlink import LINK_DIR, LINK_FILE, LinkSettings, SuperLinkError, register_node
+
     try:
         data = Path(node_key_path).read_bytes()
     except FileNotFoundError:
@@ -43,7 +47,13 @@ def enrol_node_key(store: Store, site_id: str, node_key_path: Path) -> None:
 
 
 def cmd_certs_new(args: argparse.Namespace) -> int:
+    from .certs import new_certificates
+
     paths = new_certificates(args.out, tuple(args.name or ()), args.days)
+    if args.json:
+        names = ("ca_certificate", "ca_key", "server_certificate", "server_key")
+        print(json.dumps({name: str(getattr(paths, name)) for name in names}, indent=2))
+        return 0
     print(f"wrote {paths.ca_certificate} (give this to every site: `site-agent join --root-certificates`)")
     print(f"      {paths.server_certificate} and {paths.server_key} (the SuperLink's; the key stays here)")
     print(f"      {paths.ca_key} (signs server certificates; keep it offline)")
@@ -51,6 +61,9 @@ def cmd_certs_new(args: argparse.Namespace) -> int:
 
 
 def cmd_serve(args: argparse.Namespace) -> int:
+    from .fab import build_app_bundle
+    from .superlink import exec_superlink, prepare_serve
+
     command, env = prepare_serve(args.study, args.certs, args.host, args.port, args.task_poll)
     bundle = build_app_bundle()
     print(f"starting the SuperLink for {args.study} on {args.host}:{args.port} (TLS, node authentication on)")
@@ -62,6 +75,13 @@ def cmd_serve(args: argparse.Namespace) -> int:
 
 
 def cmd_run(args: argparse.Namespace) -> int:
+    from dataclasses import replace
+
+    from federation.protocol.progress import SiteTable, interactive
+
+    from .rounds import PING, VALIDATE
+    from .runs import RunOptions, exit_status, run_study
+
     options = RunOptions(
         study=args.study,
         min_sites=args.min_sites,
@@ -70,7 +90,11 @@ def cmd_run(args: argparse.Namespace) -> int:
         kind=PING if args.ping else VALIDATE,
     )
     say = (lambda line: print(line, file=sys.stderr)) if args.json else print
-    outcome = run_study(options, say)
+    if interactive():  # a live table of site status on stderr; plain lines when piped or logged
+        with SiteTable(f"study {args.study}") as table:
+            outcome = run_study(replace(options, on_sites=table.update), table.say)
+    else:
+        outcome = run_study(options, say)
     if args.json:
         print(json.dumps(outcome.to_dict(), indent=2))
     else:
@@ -89,6 +113,7 @@ def add_deploy_commands(sub: argparse._SubParsersAction) -> None:
         help="host name or IP address sites dial (repeat; 127.0.0.1 and localhost are always included)",
     )
     p.add_argument("--days", type=int, default=SERVER_DAYS, help=f"server certificate lifetime (default {SERVER_DAYS})")
+    p.add_argument("--json", action="store_true", help="print the four file paths as JSON")
     p.set_defaults(handler=cmd_certs_new)
 
     p = sub.add_parser("serve", help="run the study's SuperLink (TLS, node authentication, no dependency installs)")
@@ -99,7 +124,18 @@ def add_deploy_commands(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--task-poll", type=float, help="seconds between the ServerApp runner's task polls (Flower: 1)")
     p.set_defaults(handler=cmd_serve)
 
-    p = sub.add_parser("run", help="send the study's request to every enrolled site online and record the outcome")
+    p = sub.add_parser(
+        "run",
+        help="send the study's request to every enrolled site online and record the outcome",
+        description="Send the study's request to every site with a bound node key through the running SuperLink "
+        "(`federation serve`), and follow the round: a live table of site status at a terminal, one line per "
+        "change otherwise. Exit codes: 0 every asked site released; 1 bad input; 3 quorum reached but some "
+        "sites did not release; 4 the SuperLink is unreachable, the quorum was not reached or the round was "
+        "cut short (continue with --resume; sites that released are not asked again).",
+        epilog="example:\n  federation run --study study/ --min-sites 3 --deadline 900\n"
+        "  federation run --study study/ --resume",
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
     p.add_argument("--study", type=Path, required=True, help="study folder served by `federation serve`")
     p.add_argument("--min-sites", type=int, help="quorum: sites that must release (default: every enrolled site)")
     p.add_argument("--deadline", type=float, default=600.0, help="seconds the round may take (default 600)")

@@ -44,6 +44,9 @@ class RunOptions:
     poll_s: float = 0.2
     link: LinkSettings | None = None
     link_grace_s: float = 5.0  # how long the SuperLink may stay silent before the round counts as cut short
+    # Called with every site's status on each poll (a live table at a terminal); when given, the per-site
+    # change lines are not said, since the table shows them.
+    on_sites: Callable[[dict[str, dict]], None] | None = None
 
 
 @dataclass
@@ -206,11 +209,14 @@ def _follow(store: Store, link: LinkSettings, outcome: RunOutcome, options: RunO
         time.sleep(options.poll_s)
         row = _round_row(store, outcome)
         sites = store.round_sites(outcome.round_id)
+        if options.on_sites is not None:
+            options.on_sites(sites)
         for site, info in sorted(sites.items()):
             seen = (info["status"], info["reason"])
             if shown.get(site) != seen:
                 shown[site] = seen
-                say(f"  {site}: {info['status']}" + (f" ({info['reason']})" if info["reason"] else ""))
+                if options.on_sites is None:
+                    say(f"  {site}: {info['status']}" + (f" ({info['reason']})" if info["reason"] else ""))
         outcome.sites, outcome.state, outcome.note = sites, row["state"], row["note"]
         if row["state"] not in LIVE_STATES:
             return
