@@ -54,6 +54,9 @@ allow_zero = true
 allowed_analyses = {analyses}
 # How many different requests of one study this site answers at most.
 max_requests_per_study = 20
+# How many different studies this site answers at most, in all. The differencing check works within one
+# study, so this caps how many separate scopes a coordinator can open by asking again under a new study id.
+max_studies = 20
 # Variables (schema features) a request may split results by in the subgroups analysis; a request naming
 # any other variable is refused.
 allowed_subgroups = ["age_months", "sex"]
@@ -99,6 +102,7 @@ class Policy:
     allow_zero: bool = True
     allowed_analyses: tuple[str, ...] = ANALYSES
     max_requests_per_study: int = 20
+    max_studies: int = 20
     require_approval: bool = False
     protection_width: int = 2
     min_band_width: tuple[tuple[str, float], ...] = ()  # (variable, narrowest band), sorted by variable
@@ -111,6 +115,7 @@ class Policy:
             "allow_zero": self.allow_zero,
             "allowed_analyses": list(self.allowed_analyses),
             "max_requests_per_study": self.max_requests_per_study,
+            "max_studies": self.max_studies,
             "require_approval": self.require_approval,
             "protection_width": self.protection_width,
             "min_band_width": dict(self.min_band_width),
@@ -247,6 +252,7 @@ def _policy(raw: Any, where: str) -> Policy:
         "allow_zero",
         "allowed_analyses",
         "max_requests_per_study",
+        "max_studies",
         "require_approval",
         "protection_width",
         "min_band_width",
@@ -267,6 +273,9 @@ def _policy(raw: Any, where: str) -> Policy:
     max_requests = raw.get("max_requests_per_study", 20)
     if isinstance(max_requests, bool) or not isinstance(max_requests, int) or max_requests < 1:
         raise DocumentError(f"{where}.max_requests_per_study: must be a whole number of at least 1")
+    max_studies = raw.get("max_studies", 20)
+    if isinstance(max_studies, bool) or not isinstance(max_studies, int) or max_studies < 1:
+        raise DocumentError(f"{where}.max_studies: must be a whole number of at least 1")
     require_approval = raw.get("require_approval", False)
     if not isinstance(require_approval, bool):
         raise DocumentError(f"{where}.require_approval: must be true or false")
@@ -287,6 +296,7 @@ def _policy(raw: Any, where: str) -> Policy:
         allow_zero=allow_zero,
         allowed_analyses=tuple(analyses),
         max_requests_per_study=max_requests,
+        max_studies=max_studies,
         require_approval=require_approval,
         protection_width=width,
         min_band_width=tuple(sorted((str(name), float(v)) for name, v in bands.items())),

@@ -217,14 +217,19 @@ def releases_for_study(path: Path, study_id: str) -> list[dict[str, Any]]:
     ]
 
 
-def answered_for_study(path: Path, study_id: str) -> list[dict[str, Any]]:
-    """Releases of the study that left or may leave: released, or held and not rejected (one per SHA-256)."""
+def answered_for_study(path: Path, study_id: str | None) -> list[dict[str, Any]]:
+    """Releases of the study that left or may leave: released, or held and not rejected (one per SHA-256).
+
+    ``study_id=None`` gives them for every study (the site-wide view the ``max_studies`` cap needs).
+    """
     entries = read_entries(path)
     rejected = {e["details"].get("release_sha256") for e in entries if e.get("event") == "rejection"}
     answered: dict[str, dict[str, Any]] = {}
     for entry in entries:
         details = entry.get("details", {})
-        if entry.get("event") not in ("release", "preview") or details.get("study_id") != study_id:
+        if entry.get("event") not in ("release", "preview"):
+            continue
+        if study_id is not None and details.get("study_id") != study_id:
             continue
         digest = details.get("release_sha256")
         if entry.get("event") == "preview" and digest in rejected:

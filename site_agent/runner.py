@@ -65,6 +65,10 @@ def check_request(site: Site, request_bytes: bytes, bundle_bytes: bytes) -> tupl
         raise PolicyViolation("request: this request id was already answered (a replay or duplicate)")
     if len(earlier) >= site.policy.max_requests_per_study:
         raise PolicyViolation("request: the site's maximum number of requests for this study is reached")
+    if not earlier:  # a new study: the audit starts a new scope, so the number of scopes is capped site-wide
+        studies = {r.get("study_id") for r in ledger.answered_for_study(site.ledger_path, None)}
+        if len(studies) >= site.policy.max_studies:
+            raise PolicyViolation("request: the site's maximum number of studies is reached (policy max_studies)")
     return request, bundle
 
 

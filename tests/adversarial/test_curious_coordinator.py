@@ -155,6 +155,20 @@ def test_a_new_study_id_starts_a_new_audit_scope(coordinator: Coordinator, tmp_p
     assert len(ledger.facts_for_study(site.ledger_path, "study-one")) == 1  # scopes do not see each other
 
 
+def test_new_study_ids_stop_at_the_site_wide_study_cap(coordinator: Coordinator, tmp_path: Path) -> None:
+    """max_studies bounds how many separate audit scopes a coordinator can open by renaming the study."""
+    site = make_site(coordinator, tmp_path, max_studies=2)
+    bundle = coordinator.demo.bundle_bytes
+    spec = AnalysisSpec("confusion", (0.5,))
+    run_request(site, coordinator.request(spec, study="study-one"), bundle)
+    run_request(site, coordinator.request(spec, study="study-two"), bundle)
+    run_request(site, coordinator.request(AnalysisSpec("confusion", (0.4,)), study="study-two"), bundle)  # same study
+    with pytest.raises(PolicyViolation, match="maximum number of studies"):
+        run_request(site, coordinator.request(spec, study="study-three"), bundle)
+    releases = [e for e in ledger.read_entries(site.ledger_path) if e["event"] == "release"]
+    assert len(releases) == 3 and ledger.read_entries(site.ledger_path)[-1]["event"] == "refusal"
+
+
 def test_require_approval_holds_every_release_until_a_person_decides(coordinator: Coordinator, tmp_path: Path) -> None:
     from site_agent.approval import AwaitingApproval
 
