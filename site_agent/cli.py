@@ -80,6 +80,14 @@ def cmd_run(args: argparse.Namespace) -> int:
     return 0
 
 
+def _add_request_arguments(p: argparse.ArgumentParser) -> None:
+    """What `run` and `check` both take: the site folder, the coordinator's request and bundle, the data."""
+    p.add_argument("--site", type=Path, required=True, help="site folder (made by `site-agent init`)")
+    p.add_argument("--request", type=Path, required=True, help="request file from the coordinator")
+    p.add_argument("--bundle", type=Path, required=True, help="model bundle from the coordinator")
+    _add_data_arguments(p)
+
+
 def _add_data_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument(
         "--data",
@@ -232,10 +240,7 @@ def build_parser() -> argparse.ArgumentParser:
         ),
         formatter_class=argparse.RawDescriptionHelpFormatter,
     )
-    p.add_argument("--site", type=Path, required=True, help="site folder (made by `site-agent init`)")
-    p.add_argument("--request", type=Path, required=True, help="request file from the coordinator")
-    p.add_argument("--bundle", type=Path, required=True, help="model bundle from the coordinator")
-    _add_data_arguments(p)
+    _add_request_arguments(p)
     p.add_argument("--out", type=Path, required=True, help="release file to write (hand it to the coordinator)")
     p.add_argument("--json", action="store_true", help="print the release JSON on stdout")
     p.set_defaults(handler=cmd_run)
@@ -252,10 +257,7 @@ def build_parser() -> argparse.ArgumentParser:
         ),
         formatter_class=argparse.RawDescriptionHelpFormatter,
     )
-    p.add_argument("--site", type=Path, required=True, help="site folder (made by `site-agent init`)")
-    p.add_argument("--request", type=Path, required=True, help="request file from the coordinator")
-    p.add_argument("--bundle", type=Path, required=True, help="model bundle from the coordinator")
-    _add_data_arguments(p)
+    _add_request_arguments(p)
     p.add_argument("--json", action="store_true", help="machine-readable output: the unsigned release and more")
     p.set_defaults(handler=cmd_check)
 
