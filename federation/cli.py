@@ -274,8 +274,10 @@ def cmd_report(args: argparse.Namespace) -> int:
     if args.json:
         print_json({"out": str(args.out), **report.to_dict()})
     else:
-        print(f"wrote {args.out} (study {report.study_id}: {len(report.sites)} site(s) released, "
-              f"{len(report.sites_pooled)} pooled)")
+        print(
+            f"wrote {args.out} (study {report.study_id}: {len(report.sites)} site(s) released, "
+            f"{len(report.sites_pooled)} pooled)"
+        )
         if missing:
             print(f"no release yet from {len(missing)} enrolled site(s): {', '.join(missing)}")
     return EXIT_PARTIAL if missing else EXIT_OK

@@ -110,6 +110,8 @@ def release_table(
         excluded=tuple(shown[f"flow.excluded.{r}"] for r in REASONS),
         min_cell_size=k,
         allow_zero=allow_zero,
+        excluded_names=REASONS,
+        replayable=True,  # only the flow and the 2x2, one release, no audit: the coordinator replays the rule
     )
 
 

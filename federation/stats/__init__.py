@@ -49,7 +49,7 @@ from federation.stats.proportions import (
 from federation.stats.results import Interval, PooledEstimate
 from federation.stats.serial import PoolingError, ResultRecord, SiteExclusion
 from federation.stats.suppression import SiteEvidence, site_evidence
-from federation.stats.tables import ReleasedTable
+from federation.stats.tables import RULES, ReleasedTable
 from federation.stats.univariate import (
     LogitProportion,
     expit,
@@ -60,6 +60,7 @@ from federation.stats.univariate import (
 )
 
 __all__ = [
+    "RULES",
     "BivariateFit",
     "HSROCParameters",
     "Interval",

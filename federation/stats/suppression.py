@@ -124,10 +124,13 @@ def _released_consistent(table: ReleasedTable, rules: _Rules) -> None:
         )
 
 
-def _analysed_candidates(table: ReleasedTable, rules: _Rules) -> list[int]:
+def _analysed_candidates(table: ReleasedTable, rules: _Rules, loose: bool = False) -> list[int]:
     """Values of the total analysed that the release and the read = analysed + excluded relation allow."""
     if table.analysed is not None:
         return [table.analysed]
+    if "analysed" in table.ranges and (loose or table.suppressed_by):
+        low, high = table.ranges["analysed"]
+        return list(range(low, high + 1))
     margins = None
     if table.positives is not None and table.negatives is not None:
         margins = table.positives + table.negatives
@@ -177,8 +180,174 @@ def _read_relation_ok(read: int, read_hidden: bool, analysed: int, known: int, h
     return False
 
 
+# --- the rule, replayed --------------------------------------------------------------------------------
+
+
+def _choice_key(name: str, value: int, is_total: bool) -> tuple[bool, bool, int, str]:
+    """The site's order for complementary suppression: a part before the total, a non-zero count before a
+    zero, then the smallest, then the name (site_agent/disclosure.py, the documented rule)."""
+    return (is_total, value == 0, value, name)
+
+
+def _replay(members: dict[str, int], relations: list[tuple[str, tuple[str, ...]]], unsafe: set[str]) -> set[str]:
+    """Primary then complementary suppression of a small system of relations, as the site applies it."""
+    hidden = set(unsafe)
+    changed = True
+    while changed:
+        changed = False
+        for total, parts in relations:
+            names = (total, *parts)
+            if sum(n in hidden for n in names) != 1:
+                continue
+            shown = [n for n in names if n not in hidden]
+            if not shown:
+                continue
+            hidden.add(min(shown, key=lambda n: _choice_key(n, members[n], n == total)))
+            changed = True
+    return hidden
+
+
+class _Admissible:
+    """Which values each withheld count may take: its feasible range and the rule that withheld it."""
+
+    def __init__(self, table: ReleasedTable, rules: _Rules, loose: bool = False) -> None:
+        self.table, self.rules, self.loose = table, rules, loose
+        self.by = table.suppressed_by
+
+    def ok(self, name: str, value: int) -> bool:
+        low, high = self.table.ranges.get(name, (0, None))
+        if value < low or (high is not None and value > high):
+            return False
+        rule = self.by.get(name)
+        if rule is None or self.loose:
+            return True
+        if rule == "minimum_cell_size":
+            return self.rules.primary(value)
+        return not self.rules.primary(value)  # complementary, audit, coarsened: the count was safe to show
+
+    def cell_values(self, name: str, other: str, margin: int) -> list[int]:
+        """Candidate values of a withheld cell whose partner in the margin is withheld too."""
+        low, high = self.table.ranges.get(name, (0, margin))
+        olow, ohigh = self.table.ranges.get(other, (0, margin))
+        low, high = max(low, margin - ohigh, 0), min(high, margin - olow, margin)
+        if low > high:
+            return []
+        if not self.by and not self.loose and name not in self.table.ranges and other not in self.table.ranges:
+            return [v for v in self.rules.candidates(margin) if low <= v <= high]
+        return list(range(low, high + 1))
+
+
+def _cells_given_margin(
+    table: ReleasedTable, admissible: _Admissible, names: tuple[str, str], margin: int, margin_hidden: bool
+) -> NDArray[np.int64]:
+    """Allowed values of the first cell (TP or FP) given its margin, under margin = first + second."""
+    first, second = (getattr(table, n) for n in names)
+    if first is not None:
+        values = [first]
+    elif second is not None:
+        values = [margin - second]
+    else:
+        values = admissible.cell_values(names[0], names[1], margin)
+    rules = admissible.rules
+    allowed = []
+    for v in values:
+        w = margin - v
+        if not (0 <= v <= margin) or (second is not None and second != w):
+            continue
+        if (first is None and not admissible.ok(names[0], v)) or (second is None and not admissible.ok(names[1], w)):
+            continue
+        if table.replayable and not admissible.loose:
+            members = {"margin": margin, f"c.{names[0]}": v, f"c.{names[1]}": w}
+            unsafe = {n for n, x in members.items() if rules.primary(x)}
+            if margin_hidden:
+                unsafe.add("margin")  # hidden by the flow above (its own value is checked there)
+            hidden = _replay(members, [("margin", (f"c.{names[0]}", f"c.{names[1]}"))], unsafe)
+            if (f"c.{names[0]}" in hidden) != (first is None) or (f"c.{names[1]}" in hidden) != (second is None):
+                continue
+        elif (
+            not admissible.by
+            and not admissible.loose
+            and not rules.split_ok(margin, margin_hidden, [(v, first is None), (w, second is None)])
+        ):
+            continue
+        allowed.append(v)
+    return np.array(allowed, dtype=np.int64)
+
+
+def _flow_replays(table: ReleasedTable, rules: _Rules, total: int, n1: int) -> bool:
+    """Whether some values of the withheld exclusion counts make the site's rule hide exactly what the flow
+    hides, given the total analysed and the split (used only when the release is replayable)."""
+    n0 = total - n1
+    shown_excluded = [v for v in table.excluded if v is not None]
+    hidden_index = [i for i, v in enumerate(table.excluded) if v is None]
+    names = table.excluded_names
+    rest = None if table.read is None else table.read - total - sum(shown_excluded)
+    if rest is not None and rest < 0:
+        return False
+    # Hidden exclusion counts in P are never compared (they are hidden from the start): only their number and
+    # sum matter. At most one hidden exclusion count lies outside P (the relation's complementary choice).
+    options: list[tuple[list[int], int | None, int]] = []  # (primary indices, outside index, outside value)
+    for outside in [None, *hidden_index]:
+        primary = [i for i in hidden_index if i != outside]
+        p_low, p_high = len(primary) * rules.low, len(primary) * (rules.k - 1)
+        if outside is None:
+            if rest is None or p_low <= rest <= p_high:
+                options.append((primary, None, 0))
+            continue
+        if rest is None:
+            continue  # a hidden read is itself primary, so every exclusion is below k
+        for value in range(max(0, rest - p_high), rest - p_low + 1):
+            if not rules.primary(value):
+                options.append((primary, outside, value))
+    parts = tuple(f"flow.excluded.{n}" for n in names)
+    relations = [
+        ("flow.read", ("flow.analysed", *parts)),
+        ("flow.analysed", ("flow.analysed_positive", "flow.analysed_negative")),
+    ]
+    expected = {
+        "flow.read": table.read is None,
+        "flow.analysed": table.analysed is None,
+        "flow.analysed_positive": table.positives is None,
+        "flow.analysed_negative": table.negatives is None,
+        **{part: v is None for part, v in zip(parts, table.excluded, strict=True)},
+    }
+    for _, outside, value in options:
+        members = {
+            "flow.read": table.read if table.read is not None else 0,
+            "flow.analysed": total,
+            "flow.analysed_positive": n1,
+            "flow.analysed_negative": n0,
+        }
+        unsafe = {n for n, v in members.items() if rules.primary(v)} | ({"flow.read"} if table.read is None else set())
+        for i, (part, v) in enumerate(zip(parts, table.excluded, strict=True)):
+            if v is not None:
+                members[part] = v
+            elif i == outside:
+                members[part] = value
+            else:
+                members[part] = rules.low  # a primary count: hidden from the start, never compared
+                unsafe.add(part)
+            if v is not None and rules.primary(v):
+                unsafe.add(part)
+        if table.read is None:  # a hidden read has no relation above it: it was primary
+            members["flow.read"] = total + sum(members[part] for part in parts)
+            if not rules.primary(members["flow.read"]):
+                continue
+        hidden = _replay(members, relations, unsafe)
+        if all((name in hidden) == want for name, want in expected.items()):
+            return True
+    return False
+
+
 def site_evidence(table: ReleasedTable) -> SiteEvidence:
     """The likelihood evidence of one released table (exact when complete, censored otherwise).
+
+    A withheld count may take the values that (a) lie in its feasible range (``table.ranges``), (b) the rule
+    that withheld it allows — 1..k−1 (0..k−1 when zeros are hidden) for the minimum cell size, 0 (where zeros
+    are shown) or at least k for a count withheld by complementary suppression, the audit or coarsening —
+    and (c) complete the released totals. When the release does not name the rule, (b) is inferred from the
+    relations; when the release is ``replayable`` the site's rule is replayed on each candidate table and only
+    tables that reproduce the release exactly are kept.
 
     Parameters
     ----------
@@ -217,24 +386,11 @@ def site_evidence(table: ReleasedTable) -> SiteEvidence:
         raise PoolingError(f"site {site!r}: suppressed cells but the release states no minimum cell size")
     rules = _Rules(table)
     _released_consistent(table, rules)
-    analysed_hidden = table.analysed is None
-    totals = _analysed_candidates(table, rules)
-    if not totals:
-        raise PoolingError(f"site {site!r}: no table is consistent with the release and its suppression rule")
-    blocks: list[tuple[float, int, NDArray[np.int64], int, NDArray[np.int64]]] = []
-    weight_total = 1.0 / len(totals)
-    for total in totals:
-        for n1 in _margin_candidates(table, total, rules):
-            n0 = total - n1
-            parts = [(n1, table.positives is None), (n0, table.negatives is None)]
-            if not rules.split_ok(total, analysed_hidden, parts):
-                continue
-            tps = _cell_candidates(tp, fn, n1, table.positives is None, rules)
-            fps = _cell_candidates(fp, tn, n0, table.negatives is None, rules)
-            if tps.size and fps.size:
-                blocks.append((weight_total / (total + 1), n1, tps, n0, fps))
-            if len(blocks) > _MAX_BLOCKS:
-                raise PoolingError(f"site {site!r}: the release leaves too many possible tables to enumerate")
+    blocks = _blocks(table, rules, _Admissible(table, rules))
+    if not blocks and not table.suppressed_by:
+        # The relations admit no table: something beyond the minimum cell size (the audit) withheld counts,
+        # so a withheld count is known only to lie in its feasible range.
+        blocks = _blocks(table, rules, _Admissible(table, rules, loose=True), loose=True)
     if not blocks:
         raise PoolingError(f"site {site!r}: no table is consistent with the release and its suppression rule")
     return SiteEvidence(
@@ -248,29 +404,48 @@ def site_evidence(table: ReleasedTable) -> SiteEvidence:
     )
 
 
-def _margin_candidates(table: ReleasedTable, total: int, rules: _Rules) -> list[int]:
+def _blocks(table: ReleasedTable, rules: _Rules, admissible: _Admissible, loose: bool = False) -> list[tuple]:
+    site = table.site_id
+    analysed_hidden = table.analysed is None
+    totals = [
+        n
+        for n in _analysed_candidates(table, rules, loose)
+        if table.analysed is not None or admissible.ok("analysed", n)
+    ]
+    blocks: list[tuple[float, int, NDArray[np.int64], int, NDArray[np.int64]]] = []
+    if not totals:
+        return blocks
+    weight_total = 1.0 / len(totals)
+    for total in totals:
+        for n1 in _margin_candidates(table, total, rules, admissible):
+            n0 = total - n1
+            if table.positives is None and not admissible.ok("positives", n1):
+                continue
+            if table.negatives is None and not admissible.ok("negatives", n0):
+                continue
+            if table.replayable and not loose:
+                if not _flow_replays(table, rules, total, n1):
+                    continue
+            elif not admissible.by and not loose:
+                parts = [(n1, table.positives is None), (n0, table.negatives is None)]
+                if not rules.split_ok(total, analysed_hidden, parts):
+                    continue
+            tps = _cells_given_margin(table, admissible, ("tp", "fn"), n1, table.positives is None)
+            fps = _cells_given_margin(table, admissible, ("fp", "tn"), n0, table.negatives is None)
+            if tps.size and fps.size:
+                blocks.append((weight_total / (total + 1), n1, tps, n0, fps))
+            if len(blocks) > _MAX_BLOCKS:
+                raise PoolingError(f"site {site!r}: the release leaves too many possible tables to enumerate")
+    return blocks
+
+
+def _margin_candidates(table: ReleasedTable, total: int, rules: _Rules, admissible: _Admissible) -> list[int]:
     if table.positives is not None:
         return [table.positives] if table.positives <= total else []
     if table.negatives is not None:
         return [total - table.negatives] if table.negatives <= total else []
+    if "positives" in table.ranges or "negatives" in table.ranges or admissible.by or admissible.loose:
+        low, high = table.ranges.get("positives", (0, total))
+        nlow, nhigh = table.ranges.get("negatives", (0, total))
+        return list(range(max(low, total - nhigh, 0), min(high, total - nlow, total) + 1))
     return rules.candidates(total)
-
-
-def _cell_candidates(
-    cell: int | None, other: int | None, margin: int, margin_hidden: bool, rules: _Rules
-) -> NDArray[np.int64]:
-    """Allowed values of ``cell`` (TP or FP) given its margin, under the relation margin = cell + other."""
-    if cell is not None:
-        values = [cell]
-    elif other is not None:
-        values = [margin - other]
-    else:
-        values = rules.candidates(margin)
-    allowed = [
-        v
-        for v in values
-        if 0 <= v <= margin
-        and (other is None or other == margin - v)
-        and rules.split_ok(margin, margin_hidden, [(v, cell is None), (margin - v, other is None)])
-    ]
-    return np.array(allowed, dtype=np.int64)

@@ -8,14 +8,18 @@ cells alone; the suppression-aware likelihood (:mod:`federation.stats.suppressio
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from collections.abc import Mapping
+from dataclasses import dataclass, field
 
 from federation.stats.proportions import _whole_number
 from federation.stats.serial import PoolingError
 
-__all__ = ["CELLS", "ReleasedTable"]
+__all__ = ["CELLS", "RANGE_NAMES", "RULES", "ReleasedTable"]
 
 CELLS = ("tp", "fp", "fn", "tn")
+RANGE_NAMES = (*CELLS, "positives", "negatives", "analysed")
+# The rule that withheld a count, as a release's ``suppressed_by`` map names it (docs/formats.md).
+RULES = ("minimum_cell_size", "complementary", "audit", "coarsened")
 
 
 def _count_or_none(value: object, site_id: str, name: str) -> int | None:
@@ -50,6 +54,18 @@ class ReleasedTable:
         suppression-aware likelihood.
     allow_zero : bool
         Whether the policy shows counts of 0 (if not, a suppressed cell may also be 0).
+    excluded_names : tuple of str
+        The exclusion reasons' count names, in the order of ``excluded`` (the site's rule breaks ties
+        between equal counts by name); default ``excluded[0]``, ``excluded[1]``...
+    ranges : mapping of str to (int, int)
+        For withheld counts (names in ``RANGE_NAMES``): the feasible range the recipient can compute from
+        everything the site sent (:mod:`federation.ranges`). Missing = nothing beyond the table bounds it.
+    suppressed_by : mapping of str to str
+        For withheld counts: the rule that withheld it (``RULES``). Empty when the release does not say:
+        the likelihood then infers it from the relations (primary or complementary suppression).
+    replayable : bool
+        The release holds only the flow and 2×2 tables, is the site's only release to the study, and no
+        count was withheld by the audit: the coordinator can replay the site's rule exactly.
     """
 
     site_id: str
@@ -64,6 +80,10 @@ class ReleasedTable:
     excluded: tuple[int | None, ...] = ()
     min_cell_size: int | None = None
     allow_zero: bool = True
+    excluded_names: tuple[str, ...] = ()
+    ranges: Mapping[str, tuple[int, int]] = field(default_factory=dict)
+    suppressed_by: Mapping[str, str] = field(default_factory=dict)
+    replayable: bool = False
 
     def __post_init__(self) -> None:
         if not isinstance(self.site_id, str) or not self.site_id:
@@ -80,6 +100,21 @@ class ReleasedTable:
             object.__setattr__(self, "min_cell_size", k)
         if not isinstance(self.allow_zero, bool):
             raise PoolingError(f"site {site!r}: allow_zero must be true or false")
+        names = tuple(self.excluded_names) or tuple(f"excluded[{i}]" for i in range(len(excluded)))
+        if len(names) != len(excluded):
+            raise PoolingError(f"site {site!r}: excluded_names must name every exclusion count")
+        object.__setattr__(self, "excluded_names", names)
+        ranges: dict[str, tuple[int, int]] = {}
+        for name, bounds in dict(self.ranges).items():
+            low, high = (_whole_number(v) for v in bounds) if len(bounds) == 2 else (None, None)
+            if name not in RANGE_NAMES or low is None or high is None or not 0 <= low <= high:
+                raise PoolingError(f"site {site!r}: range of {name!r} must be two whole numbers 0 <= low <= high")
+            ranges[name] = (low, high)
+        object.__setattr__(self, "ranges", ranges)
+        rules = dict(self.suppressed_by)
+        if any(name not in RANGE_NAMES or rule not in RULES for name, rule in rules.items()):
+            raise PoolingError(f"site {site!r}: suppressed_by names a count or rule this tool does not know")
+        object.__setattr__(self, "suppressed_by", rules)
 
     @classmethod
     def complete(cls, site_id: str, tp: int, fp: int, fn: int, tn: int) -> ReleasedTable:
