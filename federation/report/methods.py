@@ -161,7 +161,10 @@ def _measure_sentences(analysis: dict[str, Any]) -> list[str]:
             if not isinstance(value, dict) or not isinstance(value.get("pooled"), dict):
                 continue
             inner = value["pooled"]
-            interval = {"hksj": "Hartung–Knapp–Sidik–Jonkman", "wald": "Wald"}.get(str(inner.get("interval_method")))
+            interval = {
+                "hksj": "Hartung–Knapp–Sidik–Jonkman (variance factor truncated at 1, never narrower than Wald)",
+                "wald": "Wald",
+            }.get(str(inner.get("interval_method")))
             parts = [str(inner.get("method", "random effects"))]
             if interval:
                 parts.append(f"{interval} interval")
@@ -209,7 +212,13 @@ def methods_text(inputs: ReportInputs) -> tuple[str, list[str]]:
         else:
             text.append(" Heterogeneity is reported as τ² and I² on the log-odds scale")
             has_pi = isinstance(pooled.get("sensitivity"), dict) and "pi_low" in pooled["sensitivity"]
-            text.append(", with 95% prediction intervals for a new site." if has_pi else ".")
+            text.append(
+                ", with 95% prediction intervals for a new site (t on k − 2 degrees of freedom with the random-effects "
+                "standard error of the pooled mean; Higgins, Thompson & Spiegelhalter 2009), the one convention "
+                "used for every prediction interval in this report."
+                if has_pi
+                else "."
+            )
     text += _bivariate_sentences(pooled)
     text += _measure_sentences(analysis)
     corrected = pooled.get("continuity_corrected_sites") or []

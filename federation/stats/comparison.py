@@ -157,6 +157,7 @@ def meta_regression(
     method: Literal["REML", "DL"] = "REML",
     test: Literal["z", "knha"] = "z",
     level: float = 0.95,
+    knha_truncation: bool = True,
 ) -> MetaRegression:
     r"""Mixed-effects meta-regression with an intercept and the given moderators.
 
@@ -171,7 +172,9 @@ def meta_regression(
     method : {"REML", "DL"}, default "REML"
     test : {"z", "knha"}, default "z"
         ``"knha"``: Knapp–Hartung adjustment, :math:`\mathrm{Var}(\hat\beta) = s^2 (X^\top W X)^{-1}` with
-        :math:`s^2 = \sum w_i (y_i - x_i^\top\hat\beta)^2 / (k - p)` (not truncated, as metafor), t and F tests.
+        :math:`s^2 = \max\{1, \sum w_i (y_i - x_i^\top\hat\beta)^2 / (k - p)\}` (the ad hoc truncation of
+        Knapp & Hartung 2003, so the tests are never more liberal than ``"z"``'s variance; ``knha_truncation=False``
+        gives metafor's untruncated form), t and F tests.
     level : float, default 0.95
 
     Returns
@@ -218,7 +221,8 @@ def meta_regression(
     df = k - p
     if test == "knha":
         residual = y - x @ beta
-        cov = cov * float(np.sum(w * residual**2) / df)
+        factor = float(np.sum(w * residual**2) / df)
+        cov = cov * (max(1.0, factor) if knha_truncation else factor)
     se = np.sqrt(np.diag(cov))
     stat = beta / se
     alpha = 1 - level

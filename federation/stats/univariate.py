@@ -303,6 +303,7 @@ def random_effects(
     interval: Literal["wald", "hksj"] = "wald",
     level: float = 0.95,
     tau2_interval: bool = True,
+    hksj_truncation: bool = True,
 ) -> PooledEstimate:
     r"""Random-effects pooled estimate with heterogeneity statistics.
 
@@ -318,10 +319,14 @@ def random_effects(
     interval : {"wald", "hksj"}, default "wald"
         ``"wald"``: :math:`\hat\mu \pm z\,\mathrm{SE}`, :math:`\mathrm{SE} = (\sum w_i)^{-1/2}`.
         ``"hksj"``: Hartung–Knapp–Sidik–Jonkman, :math:`\hat\mu \pm t_{k-1}\,\mathrm{SE}_{HK}` with
-        :math:`\mathrm{SE}_{HK}^2 = \sum w_i (y_i - \hat\mu)^2 / \{(k-1)\sum w_i\}`, not truncated
-        (metafor's ``test="knha"``).
+        :math:`\mathrm{SE}_{HK}^2 = \max(1, q)/\sum w_i`, :math:`q = \sum w_i (y_i - \hat\mu)^2/(k-1)`:
+        the ad hoc variance correction of Knapp & Hartung (2003), so the interval is never narrower than
+        the Wald interval (Röver, Knapp & Friede 2015). ``hksj_truncation=False`` gives the untruncated
+        form (metafor's ``test="knha"``).
     level : float, default 0.95
         Confidence level for the estimate, :math:`\tau^2` and the prediction interval.
+    hksj_truncation : bool, default True
+        Apply the :math:`\max(1, q)` correction to the HKSJ variance (ignored for ``"wald"``).
     tau2_interval : bool, default True
         Compute the Q-profile interval for :math:`\tau^2` (two root-findings, most of the cost for large k);
         when False, ``tau2_ci_low`` and ``tau2_ci_high`` are ``None``.
@@ -338,8 +343,10 @@ def random_effects(
       within-study variance :math:`s^2 = (k-1)\sum w/((\sum w)^2 - \sum w^2)` (metafor's definition; for
       DL it equals the usual :math:`\max\{0, (Q-df)/Q\}`).
     - The :math:`\tau^2` interval is the Q-profile interval, which does not depend on ``method``.
-    - Prediction interval: :math:`\hat\mu \pm t_{k-2}\sqrt{\hat\tau^2 + \mathrm{SE}^2}` using the SE
-      reported with the interval; ``None`` when k < 3.
+    - Prediction interval (one convention across the package; Higgins, Thompson & Spiegelhalter 2009,
+      eq. 12): :math:`\hat\mu \pm t_{k-2}\sqrt{\hat\tau^2 + \mathrm{SE}_{RE}^2}` with the model-based
+      random-effects standard error :math:`\mathrm{SE}_{RE} = (\sum w_i)^{-1/2}`, whatever ``interval`` is;
+      ``None`` when k < 3.
 
     References
     ----------
@@ -351,6 +358,10 @@ def random_effects(
     heterogeneity in a meta-analysis. Stat Med 21:1539–1558. Hartung J, Knapp G (2001). Stat Med
     20:3875–3889; Sidik K, Jonkman JN (2002). Stat Med 21:3153–3159. Higgins JPT, Thompson SG,
     Spiegelhalter DJ (2009). A re-evaluation of random-effects meta-analysis. JRSS A 172:137–159.
+    Knapp G, Hartung J (2003). Improved tests for a random effects meta-regression with a single
+    covariate. Stat Med 22:2693–2710. Röver C, Knapp G, Friede T (2015). Hartung-Knapp-Sidik-Jonkman
+    approach and its modification for random-effects meta-analysis with few studies. BMC Med Res
+    Methodol 15:99.
     """
     y, v = _check_studies(estimates, variances)
     level = _check_level(level)
@@ -376,11 +387,16 @@ def random_effects(
     w = 1.0 / (v + tau2)
     estimate = _weighted_mean(y, w)
     alpha = 1.0 - level
+    se_random = math.sqrt(1.0 / w.sum())
     if interval == "wald":
-        se = math.sqrt(1.0 / w.sum())
+        se = se_random
         critical = float(-special.ndtri(alpha / 2))
     else:
-        se = math.sqrt(float(np.dot(w, (y - estimate) ** 2)) / (df * w.sum()))
+        factor = float(np.dot(w, (y - estimate) ** 2)) / df
+        if hksj_truncation and factor < 1.0:
+            factor = 1.0
+            notes.append("Hartung-Knapp variance factor below 1 set to 1: the interval is never narrower than Wald")
+        se = math.sqrt(factor) * se_random
         critical = float(special.stdtrit(df, 1 - alpha / 2))
 
     q = _generalised_q(y, v, 0.0)
@@ -393,7 +409,7 @@ def random_effects(
             notes.append("Q-profile interval for tau^2 lies at 0: the data are more homogeneous than expected")
 
     if k >= 3:
-        half_prediction = float(special.stdtrit(k - 2, 1 - alpha / 2)) * math.sqrt(tau2 + se**2)
+        half_prediction = float(special.stdtrit(k - 2, 1 - alpha / 2)) * math.sqrt(tau2 + se_random**2)
         pi_low, pi_high = estimate - half_prediction, estimate + half_prediction
     else:
         pi_low = pi_high = None

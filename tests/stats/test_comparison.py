@@ -61,6 +61,24 @@ def test_meta_regression_at_its_tau2_is_statsmodels_wls() -> None:
     assert knha.se == pytest.approx(tuple(scaled.bse), rel=1e-8)
     assert knha.p_values == pytest.approx(tuple(scaled.pvalues), rel=1e-7)
     assert knha.qm == pytest.approx(float(scaled.f_test("x1 = 0").fvalue), rel=1e-8)
+    assert scaled.scale > 1  # so the max(1, s^2) truncation does not bind here
+
+
+def test_knapp_hartung_meta_regression_is_truncated_at_the_z_variance() -> None:
+    # Knapp & Hartung (2003) ad hoc correction: Var(beta) = max(1, s^2) (X'WX)^-1. With residuals far smaller than
+    # their variances (s^2 < 1, statsmodels WLS scale), the truncated SEs are the fixed-scale WLS SEs.
+    y = np.array([0.10, 0.12, 0.15, 0.16, 0.20])
+    v = np.array([0.05, 0.04, 0.06, 0.05, 0.04])
+    moderator = np.array([1.0, 2.0, 3.0, 4.0, 5.0])
+    fit = meta_regression(y, v, moderator, method="DL", test="knha")
+    x = sm.add_constant(moderator)
+    w = 1 / (v + fit.tau2)
+    scaled = sm.WLS(y, x, weights=w).fit()
+    assert scaled.scale < 1
+    fixed = sm.WLS(y, x, weights=w).fit(cov_type="fixed scale")
+    assert fit.se == pytest.approx(tuple(fixed.bse), rel=1e-10)
+    raw = meta_regression(y, v, moderator, method="DL", test="knha", knha_truncation=False)
+    assert raw.se == pytest.approx(tuple(scaled.bse), rel=1e-10)
 
 
 def test_meta_regression_reml_solves_its_score_equation() -> None:

@@ -198,11 +198,45 @@ def test_paule_mandel_solves_its_estimating_equation() -> None:
 def test_prediction_interval_follows_higgins_thompson_spiegelhalter(
     interval: str,
 ) -> None:
-    # Higgins, Thompson & Spiegelhalter (2009) JRSS A 172:137, eq. 12: mu +/- t_{k-2} sqrt(tau^2 + SE^2).
-    result = random_effects(Y, V, method="REML", interval=interval)
-    half = stats.t.ppf(0.975, 11) * np.sqrt(result.tau2 + result.se**2)
-    assert result.pi_low == pytest.approx(result.estimate - half, rel=1e-12)
-    assert result.pi_high == pytest.approx(result.estimate + half, rel=1e-12)
+    # Higgins, Thompson & Spiegelhalter (2009) JRSS A 172:137, eq. 12: mu +/- t_{k-2} sqrt(tau^2 + SE^2), SE the
+    # random-effects (inverse-variance) SE of mu, which statsmodels combine_effects reports as sd_eff_w_re. One
+    # convention whatever the confidence interval method.
+    reference = combine_effects(Y, V, method_re="dl")
+    result = random_effects(Y, V, method="DL", interval=interval)
+    half = stats.t.ppf(0.975, 11) * np.sqrt(reference.tau2 + reference.sd_eff_w_re**2)
+    assert result.pi_low == pytest.approx(reference.mean_effect_re - half, rel=1e-12)
+    assert result.pi_high == pytest.approx(reference.mean_effect_re + half, rel=1e-12)
+
+
+# Six studies (invented) with DL tau^2 = 0.146 > 0 at which the Hartung-Knapp variance factor
+# q = sum w (y - mu)^2 / (k - 1) is below 1 (statsmodels: HKSJ SE 0.162 < Wald SE 0.202).
+NARROW_Y = np.array([-0.07, -0.7, -0.02, -0.47, 0.38, -0.03])
+NARROW_V = np.array([0.28, 0.2, 0.18, 0.03, 0.03, 0.07])
+
+
+def test_hksj_is_truncated_so_never_narrower_than_wald() -> None:
+    # Knapp & Hartung (2003) Stat Med 22:2693 ad hoc correction: Var = max(1, q) / sum w. Untruncated SE checked
+    # against statsmodels combine_effects (sd_eff_w_re_hksj); the truncated SE then equals the Wald SE.
+    reference = combine_effects(NARROW_Y, NARROW_V, method_re="dl")
+    assert reference.sd_eff_w_re_hksj < reference.sd_eff_w_re  # the case the truncation exists for
+    raw = random_effects(NARROW_Y, NARROW_V, method="DL", interval="hksj", hksj_truncation=False)
+    assert raw.se == pytest.approx(reference.sd_eff_w_re_hksj, rel=1e-12)
+    truncated = random_effects(NARROW_Y, NARROW_V, method="DL", interval="hksj")
+    wald = random_effects(NARROW_Y, NARROW_V, method="DL", interval="wald")
+    assert truncated.se == pytest.approx(reference.sd_eff_w_re, rel=1e-12)
+    half = stats.t.ppf(0.975, 5) * reference.sd_eff_w_re
+    assert (truncated.ci_low, truncated.ci_high) == pytest.approx(
+        (reference.mean_effect_re - half, reference.mean_effect_re + half), rel=1e-12
+    )
+    assert truncated.ci_high - truncated.ci_low > wald.ci_high - wald.ci_low
+    assert any("never narrower than Wald" in note for note in truncated.notes)
+
+
+def test_hksj_truncation_leaves_heterogeneous_data_alone() -> None:
+    # On dat.bcg q > 1, so the truncated and untruncated intervals agree (metafor's knha value is checked above).
+    truncated = random_effects(Y, V, method="REML", interval="hksj")
+    raw = random_effects(Y, V, method="REML", interval="hksj", hksj_truncation=False)
+    assert (truncated.ci_low, truncated.ci_high) == (raw.ci_low, raw.ci_high)
 
 
 def test_prediction_interval_undefined_for_two_studies() -> None:
