@@ -16,13 +16,14 @@ Pooled (``pooled``):
   contributing the probability of the tables its release allows (the release's ``min_cell_size``,
   ``allow_zero`` and flow margins; :mod:`federation.stats.suppression`).
 
-Further analyses, pooled where a release carries them: ``discrimination`` (AUC on the logit scale, pooled
-ROC from merged bands), ``calibration`` (O:E on the log scale, calibration intercept and slope),
-``paired`` (differences in sensitivity, specificity and AUC between two models), ``subgroups`` (per-level
-pooled logit sensitivity, specificity and AUC with a test of subgroup difference). Every pooled result
-names its method, the sites pooled and the sites not pooled with the reason. A result that cannot be
-estimated is ``{"status": "not estimated", "reason": ...}``, never a NaN. The ``margin`` and ``agreement``
-sections are per-site descriptions and are not pooled here (the report reads them from the releases).
+Further analyses, pooled where a release carries them: ``discrimination`` (AUC on the logit scale; a
+summary ROC curve from a multiple-threshold model of each site's own bands), ``calibration`` (O:E on the log
+scale, calibration intercept and slope), ``paired`` (differences in sensitivity, specificity and AUC between
+two models), ``subgroups`` (per-level pooled logit sensitivity, specificity and AUC with a test of subgroup
+difference). Every pooled result names its method, the sites pooled and the sites not pooled with the
+reason. A result that cannot be estimated is ``{"status": "not estimated", "reason": ...}``, never a NaN.
+The ``margin`` and ``agreement`` sections are per-site descriptions and are not pooled here (the report
+reads them from the releases).
 """
 
 from __future__ import annotations
@@ -42,13 +43,13 @@ from federation.stats import (
     diagnostic_odds_ratio,
     glmm_accuracy,
     likelihood_ratios,
+    multiple_threshold_roc,
     paired_difference,
     pool_auc,
     pool_auc_difference,
     pool_calibration_intercept,
     pool_calibration_slope,
     pool_observed_expected,
-    pooled_roc,
     predictive_values,
     random_effects,
     reitsma,
@@ -374,6 +375,8 @@ def _bands(site_id: str, roc: dict[str, Any]) -> SiteBands | None:
         tuple(edges),
         tuple(_count(b.get("positive")) for b in bands),
         tuple(_count(b.get("negative")) for b in bands),
+        _count(roc.get("positive")),
+        _count(roc.get("negative")),
     )
 
 
@@ -391,7 +394,11 @@ def _discrimination(tables: list[SiteTable]) -> dict[str, Any] | None:
         )
     }
     bands = [b for s, r in sites if (b := _bands(s, r)) is not None]
-    out["pooled_roc"] = _attempt(lambda: pooled_roc(bands)) if bands else _not_estimated("no site released bands")
+    # Never a curve from bands summed across sites (it keeps only the edges every site shares): a model in which
+    # each site keeps its own band edges and its own accuracy.
+    out["summary_roc"] = (
+        _attempt(lambda: multiple_threshold_roc(bands)) if bands else _not_estimated("no site released bands")
+    )
     return out
 
 

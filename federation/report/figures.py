@@ -244,7 +244,8 @@ def _site_result(inputs: ReportInputs, site: dict[str, Any], name: str) -> Any:
 
 # Exact places a pooled ROC curve may sit in `federation analyze --json`. Looked up by exact key, never by a
 # substring search: "roc" is inside "sroc", and an SROC curve (bivariate model) must not be drawn as a pooled ROC.
-POOLED_ROC_PATHS: tuple[tuple[str, ...], ...] = (("discrimination", "pooled_roc"), ("pooled_roc",), ("roc",))
+# Only a model-based summary curve is drawn (each site keeps its own band edges); never bands summed over sites.
+POOLED_ROC_PATHS: tuple[tuple[str, ...], ...] = (("discrimination", "summary_roc"),)
 
 
 def roc_figure(inputs: ReportInputs) -> str:
@@ -263,7 +264,7 @@ def roc_figure(inputs: ReportInputs) -> str:
         curve = points(value) or roc_from_bands(value)
         if curve:
             curve = sorted({(0.0, 0.0), *curve, (1.0, 1.0)})  # a pooled curve may list only interior points
-            label = "pooled (bands summed over sites)"
+            label = "summary ROC (multiple-threshold model)"
             series.append(RocSeries(label, [p[0] for p in curve], [p[1] for p in curve], pooled=True))
             rows += [[label, x, y] for x, y in curve]
             break
@@ -272,7 +273,9 @@ def roc_figure(inputs: ReportInputs) -> str:
     svg = roc_plot(series, "ROC curves by site and pooled", salt="roc")
     caption = (
         "<strong>ROC curves.</strong> Each site's curve joins the operating points at the edges of its "
-        "released score bands; the thick black curve is the pooled ROC from the analysis, where present."
+        "released score bands; the thick black curve is the summary ROC of the multiple-threshold random-effects "
+        "model, fitted to every site's points at its own band edges (Steinhauser et al. 2016), where it could be "
+        "fitted. It is not a curve of counts summed across sites."
     )
     return figure(svg, caption, "fig-roc", [csv_link("roc.csv", ["series", "fpr", "sensitivity"], rows)])
 

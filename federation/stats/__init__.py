@@ -3,7 +3,8 @@
 Single-site accuracy (:mod:`.proportions`), univariate pooling across sites (:mod:`.univariate`) and
 the JSON-safe result objects they return (:mod:`.results`); bivariate pooling of sensitivity and
 specificity (:mod:`.bivariate`, :mod:`.glmm`) with suppressed cells modelled (:mod:`.suppression`);
-discrimination and calibration (:mod:`.performance`); subgroups and paired comparisons (:mod:`.comparison`).
+discrimination and calibration (:mod:`.performance`); a summary ROC from each site's own score bands
+(:mod:`.multiple_threshold`); subgroups and paired comparisons (:mod:`.comparison`).
 """
 
 from federation.stats.bivariate import (
@@ -26,15 +27,19 @@ from federation.stats.comparison import (
     subgroup_analysis,
 )
 from federation.stats.glmm import binomial_glmm, glmm_accuracy, marginal_log_likelihood
+from federation.stats.multiple_threshold import (
+    MultipleThresholdRoc,
+    OperatingPoint,
+    SiteBands,
+    cumulative_points,
+    multiple_threshold_roc,
+)
 from federation.stats.performance import (
     PooledMeasure,
-    PooledRoc,
-    SiteBands,
     pool_auc,
     pool_calibration_intercept,
     pool_calibration_slope,
     pool_observed_expected,
-    pooled_roc,
 )
 from federation.stats.proportions import (
     LikelihoodRatios,
@@ -66,7 +71,8 @@ __all__ = [
     "Interval",
     "MetaRegression",
     "PooledMeasure",
-    "PooledRoc",
+    "MultipleThresholdRoc",
+    "OperatingPoint",
     "PoolingError",
     "Region",
     "ReleasedTable",
@@ -89,7 +95,8 @@ __all__ = [
     "pool_calibration_intercept",
     "pool_calibration_slope",
     "pool_observed_expected",
-    "pooled_roc",
+    "multiple_threshold_roc",
+    "cumulative_points",
     "reitsma",
     "site_evidence",
     "sroc_auc_grid",

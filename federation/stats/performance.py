@@ -1,4 +1,6 @@
-r"""Pooling discrimination and calibration across sites, and a pooled ROC curve from merged score bands.
+r"""Pooling discrimination and calibration across sites.
+
+A summary ROC curve from the sites' own score bands is in :mod:`federation.stats.multiple_threshold`.
 
 Each measure is pooled on the scale on which its between-site distribution is closest to normal
 (Snell et al. 2018): the c-statistic (AUC) on the logit scale, the observed:expected ratio on the log
@@ -23,8 +25,6 @@ from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from typing import Literal
 
-import numpy as np
-
 from federation.stats.proportions import _check_level
 from federation.stats.results import PooledEstimate
 from federation.stats.serial import PoolingError, ResultRecord, SiteExclusion
@@ -32,13 +32,10 @@ from federation.stats.univariate import random_effects
 
 __all__ = [
     "PooledMeasure",
-    "PooledRoc",
-    "SiteBands",
     "pool_auc",
     "pool_calibration_intercept",
     "pool_calibration_slope",
     "pool_observed_expected",
-    "pooled_roc",
 ]
 
 Method = Literal["DL", "REML", "PM"]
@@ -318,127 +315,3 @@ def pool_calibration_slope(
     Van Calster et al. (2016), J Clin Epidemiol 74:167. Snell et al. (2018), Stat Methods Med Res 27:3505.
     """
     return _pool_identity("calibration slope", site_ids, estimates, se, method, interval, level)
-
-
-# --- pooled ROC from merged bands --------------------------------------------------------------------
-
-
-@dataclass(frozen=True)
-class SiteBands:
-    """One site's score bands: band j is ``edges[j] <= score < edges[j + 1]`` (outer edges may be infinite)."""
-
-    site_id: str
-    edges: tuple[float, ...]
-    positives: tuple[int | None, ...]
-    negatives: tuple[int | None, ...]
-
-
-@dataclass(frozen=True)
-class PooledRoc(ResultRecord):
-    """An empirical ROC curve from per-band counts summed over sites on the band edges they share.
-
-    ``thresholds[i]`` is a shared edge; ``sensitivity[i]`` and ``false_positive_rate[i]`` are the pooled
-    proportions of participants with and without the condition scoring at or above it. The curve runs
-    from (0, 0) to (1, 1) through these points; ``auc`` is its trapezoidal area (equal to the
-    Mann–Whitney AUC of the pooled counts with ties within a band counted 1/2).
-    """
-
-    thresholds: tuple[float, ...]
-    sensitivity: tuple[float, ...]
-    false_positive_rate: tuple[float, ...]
-    auc: float
-    positives: int
-    negatives: int
-    edges_dropped: tuple[float, ...]
-    sites_pooled: tuple[str, ...]
-    sites_not_pooled: tuple[SiteExclusion, ...] = ()
-    method: str = (
-        "per-band counts summed across sites on the band edges every pooled site shares; a site's bands are "
-        "merged to those edges (a count summed over merged bands stays exact); edges some sites lack are dropped"
-    )
-
-    def summary(self) -> str:
-        lines = [
-            f"Pooled ROC from merged bands: {len(self.sites_pooled)} sites, {self.positives} with and "
-            f"{self.negatives} without the condition, AUC {self.auc:.3f}",
-        ]
-        lines += [
-            f"  score >= {t:g}: sensitivity {s:.3f}, false-positive rate {f:.3f}"
-            for t, s, f in zip(self.thresholds, self.sensitivity, self.false_positive_rate, strict=True)
-        ]
-        if self.edges_dropped:
-            lines.append(
-                "  edges not shared by every site (dropped): " + ", ".join(f"{e:g}" for e in self.edges_dropped)
-            )
-        lines.extend(f"  not pooled: {e.site_id} ({e.reason})" for e in self.sites_not_pooled)
-        return "\n".join(lines)
-
-
-def pooled_roc(sites: Sequence[SiteBands]) -> PooledRoc:
-    """Pooled ROC curve from merged score bands.
-
-    Parameters
-    ----------
-    sites : sequence of SiteBands
-        Per site, band edges and the counts of participants with and without the condition per band.
-
-    Returns
-    -------
-    PooledRoc
-
-    Notes
-    -----
-    Sites merge adjacent bands until every count is 0 or at least the minimum cell size, so their band
-    edges differ. Counts are additive, so any site's bands can be merged further without loss of
-    exactness; the pooled curve therefore uses the edges that every pooled site's banding contains
-    (the coarsest common refinement cannot be used: a site's band cannot be split). Misaligned edges
-    are dropped and listed in ``edges_dropped``. A site with a suppressed band count, or without
-    participants in one class, is not pooled (listed with its reason). The pooled curve is descriptive:
-    it weights sites by size and does not model between-site heterogeneity.
-    """
-    kept: list[SiteBands] = []
-    excluded: list[SiteExclusion] = []
-    for site in sites:
-        if len(site.edges) != len(site.positives) + 1 or len(site.positives) != len(site.negatives):
-            excluded.append(SiteExclusion(site.site_id, "band edges and counts do not match"))
-        elif any(c is None for c in (*site.positives, *site.negatives)):
-            excluded.append(SiteExclusion(site.site_id, "a band count is suppressed"))
-        elif sum(site.positives) == 0 or sum(site.negatives) == 0:  # type: ignore[arg-type]
-            excluded.append(SiteExclusion(site.site_id, "no participants with (or without) the condition"))
-        else:
-            kept.append(site)
-    if len(kept) < 1:
-        raise PoolingError("a pooled ROC curve needs at least 1 site with complete band counts")
-    interior = [set(e for e in s.edges[1:-1] if math.isfinite(e)) for s in kept]
-    common = sorted(set.intersection(*interior)) if interior else []
-    every = sorted(set.union(*interior)) if interior else []
-    dropped = tuple(e for e in every if e not in common)
-    positives = np.zeros(len(common) + 1)
-    negatives = np.zeros(len(common) + 1)
-    cuts = np.array(common)
-    for site in kept:
-        lows = np.array(site.edges[:-1], dtype=float)
-        # band j lies wholly in merged band searchsorted(common, low, 'right') because every common edge is an edge
-        index = np.searchsorted(cuts, lows, side="right")
-        np.add.at(positives, index, np.array(site.positives, dtype=float))
-        np.add.at(negatives, index, np.array(site.negatives, dtype=float))
-    total_pos, total_neg = positives.sum(), negatives.sum()
-    # At threshold common[i], participants scoring >= it are those in merged bands i+1, ...
-    above_pos = np.cumsum(positives[::-1])[::-1][1:]
-    above_neg = np.cumsum(negatives[::-1])[::-1][1:]
-    sens = above_pos / total_pos
-    fpr = above_neg / total_neg
-    x = np.concatenate([[1.0], fpr, [0.0]])
-    y = np.concatenate([[1.0], sens, [0.0]])
-    auc = float(np.sum((x[:-1] - x[1:]) * (y[:-1] + y[1:]) / 2))
-    return PooledRoc(
-        thresholds=tuple(float(c) for c in common),
-        sensitivity=tuple(float(s) for s in sens),
-        false_positive_rate=tuple(float(f) for f in fpr),
-        auc=auc,
-        positives=int(total_pos),
-        negatives=int(total_neg),
-        edges_dropped=dropped,
-        sites_pooled=tuple(s.site_id for s in kept),
-        sites_not_pooled=tuple(excluded),
-    )

@@ -183,7 +183,9 @@ def test_release_sections_are_pooled() -> None:
     ids = [t.site_id for t in tables]
     auc = pool_auc(ids, [s.auc for s in worked], [s.auc_se for s in worked])
     assert result["discrimination"]["pooled_auc"]["estimate"] == auc.estimate
-    assert result["discrimination"]["pooled_roc"]["thresholds"] == [0.2, 0.5, 0.8]
+    summary_roc = result["discrimination"]["summary_roc"]
+    assert [p["threshold"] for p in summary_roc["operating_points"]] == [0.2, 0.5, 0.8]
+    assert "pooled_roc" not in result["discrimination"]  # never a curve from bands summed across sites
     slope = pool_calibration_slope(ids, [s.slope for s in worked], [s.slope_se for s in worked])
     assert result["calibration"]["calibration_slope"]["estimate"] == slope.estimate
     assert result["calibration"]["observed_expected"]["scale"] == "log"

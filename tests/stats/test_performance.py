@@ -9,19 +9,15 @@ import math
 
 import numpy as np
 import pytest
-from sklearn.metrics import roc_auc_score
 from statsmodels.stats.meta_analysis import combine_effects
 
 from federation.stats import (
     PooledMeasure,
-    PooledRoc,
     PoolingError,
-    SiteBands,
     pool_auc,
     pool_calibration_intercept,
     pool_calibration_slope,
     pool_observed_expected,
-    pooled_roc,
     random_effects,
 )
 from tests.stats.prediction_example import sites
@@ -136,48 +132,3 @@ def test_fewer_than_two_usable_sites_raise() -> None:
         pool_calibration_slope(["a", "b"], [0.9, float("nan")], [0.1, 0.1])
 
 
-# --- pooled ROC from merged bands --------------------------------------------------------------------
-
-
-def _bands(site, edges: list[float]) -> SiteBands:
-    cuts = np.array(edges[1:-1])
-    band = np.searchsorted(cuts, site.risk, side="right")
-    k = len(edges) - 1
-    pos = np.bincount(band[site.outcome == 1], minlength=k)
-    neg = np.bincount(band[site.outcome == 0], minlength=k)
-    return SiteBands(site.site_id, tuple(edges), tuple(int(c) for c in pos), tuple(int(c) for c in neg))
-
-
-def test_pooled_roc_on_aligned_bands_equals_mann_whitney_of_banded_scores() -> None:
-    # Summing per-band counts and tracing the ROC gives the trapezoidal AUC, which equals the Mann-Whitney AUC
-    # (ties 1/2) of the pooled records scored by their band: scikit-learn's roc_auc_score.
-    edges = [-math.inf, 0.1, 0.3, 0.5, 0.7, 0.9, math.inf]
-    result = pooled_roc([_bands(s, edges) for s in SITES])
-    outcome = np.concatenate([s.outcome for s in SITES])
-    banded = np.concatenate([np.searchsorted(edges[1:-1], s.risk, side="right") for s in SITES])
-    assert result.auc == pytest.approx(roc_auc_score(outcome, banded), rel=1e-12)
-    assert result.thresholds == (0.1, 0.3, 0.5, 0.7, 0.9) and not result.edges_dropped
-    assert result.positives == int(outcome.sum())
-    assert result.sensitivity[2] == pytest.approx(
-        np.mean(np.concatenate([s.risk for s in SITES])[outcome == 1] >= 0.5), rel=1e-12
-    )
-
-
-def test_pooled_roc_uses_only_edges_every_site_shares() -> None:
-    # Site 1 merged its bands differently: the 0.3 and 0.7 edges are not in its banding, so they are dropped
-    # for everyone and the pooled curve is the one of the common coarsening.
-    fine = [-math.inf, 0.1, 0.3, 0.5, 0.7, 0.9, math.inf]
-    coarse = [-math.inf, 0.1, 0.5, 0.9, math.inf]
-    result = pooled_roc([_bands(SITES[0], coarse), *(_bands(s, fine) for s in SITES[1:])])
-    assert result.thresholds == (0.1, 0.5, 0.9) and result.edges_dropped == (0.3, 0.7)
-    reference = pooled_roc([_bands(s, coarse) for s in SITES])
-    assert result.auc == pytest.approx(reference.auc, rel=1e-12)
-    assert PooledRoc.from_dict(json.loads(json.dumps(result.to_dict(), allow_nan=False))) == result
-    assert "edges not shared by every site (dropped): 0.3, 0.7" in result.summary()
-
-
-def test_pooled_roc_leaves_out_a_site_with_a_suppressed_band() -> None:
-    edges = [-math.inf, 0.5, math.inf]
-    broken = SiteBands("broken", tuple(edges), (None, 12), (40, 11))
-    result = pooled_roc([_bands(SITES[0], edges), broken])
-    assert result.sites_not_pooled[0].reason == "a band count is suppressed"
