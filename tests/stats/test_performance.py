@@ -130,5 +130,3 @@ def test_unusable_sites_are_listed_and_fallbacks_named() -> None:
 def test_fewer_than_two_usable_sites_raise() -> None:
     with pytest.raises(PoolingError, match="at least 2 sites with usable values, got 1"):
         pool_calibration_slope(["a", "b"], [0.9, float("nan")], [0.1, 0.1])
-
-
