@@ -19,7 +19,7 @@ $(STAMP): pyproject.toml
 install: $(STAMP)
 
 demo: $(STAMP)
-	$(BIN)/federation demo --out $(DEMO_OUT)
+	$(BIN)/federation demo --out-dir $(DEMO_OUT)
 
 # The report tests open the HTML report in a real headless browser: Debian's chromium, installed when missing.
 browser:

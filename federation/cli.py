@@ -20,7 +20,7 @@ from federation.protocol import (
     write_keypair,
 )
 from federation.protocol.bundle import split_bundle
-from federation.protocol.cli_support import print_json, run_cli, write_atomic
+from federation.protocol.cli_support import ArgumentParser, option, print_json, run_cli, write_atomic
 
 from .modelpack import model_format_for, pack_model
 from .store import Store
@@ -35,7 +35,7 @@ def _read(path: Path, what: str) -> bytes:
 
 
 def cmd_keys_new(args: argparse.Namespace) -> int:
-    private, public = write_keypair(args.out, "coordinator")
+    private, public = write_keypair(args.out_dir, "coordinator")
     kid = key_id(load_public_key(public))
     if args.json:
         print_json({"private_key": str(private), "public_key": str(public), "key_id": kid})
@@ -130,9 +130,9 @@ def cmd_request_new(args: argparse.Namespace) -> int:
     specs = analysis_specs(
         [name.strip() for name in args.analyses.split(",") if name.strip()],
         thresholds,
-        tuple(_float_list(args.bands, "--bands")) if args.bands else (),
+        tuple(_float_list(args.roc_bands, "--roc-bands")) if args.roc_bands else (),
         tuple(_float_list(args.margin_bands, "--margin-bands")) if args.margin_bands else (),
-        tuple(_float_list(args.calibration_bins, "--calibration-bins")) if args.calibration_bins else (),
+        tuple(_float_list(args.calibration_bands, "--calibration-bands")) if args.calibration_bands else (),
         tuple(subgroups),
         sha256_hex(compare_bytes) if compare_bytes else "",
     )
@@ -287,12 +287,12 @@ def cmd_demo(args: argparse.Namespace) -> int:
     # The demo drives both sides of the invented consortium, so it lives in `simulations`.
     from simulations.demo import run_demo
 
-    return run_demo(args.out, engine=args.engine, seed=args.seed)
+    return run_demo(args.out_dir, engine=args.engine, seed=args.seed)
 
 
 EPILOG = """\
 a study, offline (files carried by hand):
-  federation keys new --out coordinator/
+  federation keys new --out-dir coordinator/
   federation bundle pack --model model.onnx --schema schema.toml --sign coordinator/coordinator.key --out model.bundle
   federation request new --store study.db --study-id study-1 --bundle model.bundle \\
       --sign coordinator/coordinator.key --out request.json
@@ -321,7 +321,7 @@ def _examples(*lines: str) -> str:
 
 
 def build_parser() -> argparse.ArgumentParser:
-    parser = argparse.ArgumentParser(
+    parser = ArgumentParser(
         prog="federation",
         description="Coordinator tools: sign a frozen model, issue study requests, enrol sites, "
         "ingest their signed releases and pool the results. `federation COMMAND --help` explains each command.",
@@ -336,10 +336,10 @@ def build_parser() -> argparse.ArgumentParser:
         help="make coordinator.key (private, mode 0600) and coordinator.pub",
         description="Make the coordinator's signing key pair. coordinator.key signs bundles and requests: keep it "
         "secret. coordinator.pub goes to every site (`site-agent init --trust`).",
-        epilog=_examples("federation keys new --out coordinator/"),
+        epilog=_examples("federation keys new --out-dir coordinator/"),
         formatter_class=argparse.RawDescriptionHelpFormatter,
     )
-    p.add_argument("--out", type=Path, required=True, help="folder to write the key pair into")
+    option(p, "--out-dir", "--out", dest="out_dir", type=Path, required=True, help="folder to write the key pair into")
     p.add_argument("--json", action="store_true", help="print the file paths and key id as JSON")
     p.set_defaults(handler=cmd_keys_new)
 
@@ -407,9 +407,21 @@ def build_parser() -> argparse.ArgumentParser:
         help="split results by a model input: a category (sex), or a number cut at edges (age_months=24,36); "
         "repeatable; sites refuse variables their policy does not allow",
     )
-    p.add_argument("--bands", help="comma-separated ROC score band edges (default: 0.05 steps for probabilities)")
+    option(
+        p,
+        "--roc-bands",
+        "--bands",
+        dest="roc_bands",
+        help="comma-separated score band edges for the ROC analysis (default: 0.05 steps for probabilities)",
+    )
     p.add_argument("--margin-bands", help="comma-separated distances from the threshold for the margin analysis")
-    p.add_argument("--calibration-bins", help="comma-separated predicted-risk bin edges (default: deciles)")
+    option(
+        p,
+        "--calibration-bands",
+        "--calibration-bins",
+        dest="calibration_bands",
+        help="comma-separated predicted-risk band edges for the calibration analysis (default: deciles)",
+    )
     p.add_argument("--compare", type=Path, metavar="OTHER.bundle", help="a second bundle for a paired comparison")
     p.add_argument("--request-id", help="request identifier (default: a random one)")
     p.add_argument("--out", type=Path, required=True, help="request file to write (send it to the sites)")
@@ -482,10 +494,18 @@ def build_parser() -> argparse.ArgumentParser:
         help="run the invented demo consortium end to end",
         description="Generate an invented consortium of eight sites, run one study over it and write the table, "
         "the store, every site folder and the report into --out. All data is invented.",
-        epilog=_examples("federation demo --out demo-output --engine offline"),
+        epilog=_examples("federation demo --out-dir demo-output --engine offline"),
         formatter_class=argparse.RawDescriptionHelpFormatter,
     )
-    p.add_argument("--out", type=Path, required=True, help="folder for the demo's data, sites, store and releases")
+    option(
+        p,
+        "--out-dir",
+        "--out",
+        dest="out_dir",
+        type=Path,
+        required=True,
+        help="folder for the demo's data, sites, store and releases",
+    )
     p.add_argument(
         "--engine",
         choices=("simulation", "inprocess", "offline"),

@@ -27,7 +27,7 @@ MESSAGE_TYPE = "query.validate"
 class SiteOutcome:
     node_id: int
     site_id: str
-    status: str  # released | pending (held for the site's approval) | refused | rejected | unreachable
+    status: str  # released | held (for the site's approval) | refused | rejected | unreachable
     reason: str = ""
 
 
@@ -92,8 +92,8 @@ def _record(store: Store, node: int, reply: Message) -> SiteOutcome:
     except KeyError:
         return SiteOutcome(node, "", "rejected", "reply holds no result")
     site_id = str(result.get("site_id", ""))
-    if result.get("status") == "pending":
-        return SiteOutcome(node, site_id, "pending", str(result.get("reason", ""))[:500])
+    if result.get("status") in ("held", "pending"):  # "pending": what older site agents send
+        return SiteOutcome(node, site_id, "held", str(result.get("reason", ""))[:500])
     if result.get("status") != "released":
         return SiteOutcome(node, site_id, "refused", str(result.get("reason", ""))[:500])
     release = result.get("release")

@@ -71,7 +71,7 @@ def analysis_specs(
     thresholds: tuple[float, ...] = (),
     bands: tuple[float, ...] = (),
     margin_bands: tuple[float, ...] = (),
-    calibration_bins: tuple[float, ...] = (),
+    calibration_bands: tuple[float, ...] = (),
     subgroups: tuple[SubgroupSpec, ...] = (),
     compare_sha256: str = "",
 ) -> tuple[AnalysisSpec, ...]:
@@ -95,8 +95,8 @@ def analysis_specs(
             raw["thresholds"] = list(thresholds)
         if name == "roc" and bands:
             raw["bands"] = list(bands)
-        if name == "calibration" and calibration_bins:
-            raw["bands"] = list(calibration_bins)
+        if name == "calibration" and calibration_bands:
+            raw["bands"] = list(calibration_bands)
         if name == "margin" and margin_bands:
             raw["bands"] = list(margin_bands)
         if name == "subgroups":

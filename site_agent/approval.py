@@ -1,18 +1,21 @@
 """Releases held for a person's approval (policy ``require_approval = true``).
 
-A held release is prepared and signed once; its exact bytes are written to ``SITEDIR/pending/ID.json``
+A held release is prepared and signed once; its exact bytes are written to ``SITEDIR/held/ID.json``
 (with what suppression did and the audit's result beside it in ``ID.review.json``) and recorded in full in
-the ledger (``preview``). Reviewing, approving and releasing all use those bytes: approving records their
+the ledger (event ``held``). Reviewing, approving and releasing all use those bytes: approving records their
 SHA-256, and a release leaves only if the bytes still have that SHA-256, so nothing is recomputed between
 what a person saw and what leaves. The state of each held release is read from the ledger alone:
 
-``pending``   prepared, no decision yet (nothing has left)
+``held``      prepared, no decision yet (nothing has left)
 ``approved``  a person approved it; the next ``site-agent run`` of the same request, the online agent's
               next answer to it, or ``site-agent release ID`` hands it over
 ``rejected``  a person rejected it; it never leaves
 ``released``  approved and handed over (recorded by a ``release`` entry)
 
 ``ID`` is the first 16 hex digits of the release's SHA-256.
+
+Ledgers and site folders written before these names were settled say ``preview`` (event), ``pending``
+(state), ``pending_id`` (field) and ``pending/`` (folder); they are read as ``held`` alike.
 """
 
 from __future__ import annotations
@@ -28,8 +31,10 @@ from federation.protocol.cli_support import EXIT_PARTIAL, write_atomic
 
 from . import ledger
 from .config import Site
+from .ledger import HELD_EVENTS
 
-PENDING_DIR = "pending"
+HELD_DIR = "held"
+OLD_HELD_DIR = "pending"  # folder name in site folders made before this version
 
 
 class AwaitingApproval(ValidationToolError):
@@ -37,15 +42,15 @@ class AwaitingApproval(ValidationToolError):
 
     exit_code = EXIT_PARTIAL
 
-    def __init__(self, pending_id: str, message: str) -> None:
+    def __init__(self, held_id: str, message: str) -> None:
         super().__init__(message)
-        self.pending_id = pending_id
+        self.held_id = held_id
 
 
 @dataclass(frozen=True)
 class Held:
-    pending_id: str
-    state: str  # pending | approved | rejected | released
+    held_id: str
+    state: str  # held | approved | rejected | released
     study_id: str
     request_id: str
     request_sha256: str
@@ -56,20 +61,26 @@ class Held:
     reason: str = ""
 
     def path(self, site: Site) -> Path:
-        return site.root / PENDING_DIR / f"{self.pending_id}.json"
+        path = site.root / HELD_DIR / f"{self.held_id}.json"
+        old = site.root / OLD_HELD_DIR / f"{self.held_id}.json"
+        return old if not path.exists() and old.exists() else path
+
+
+def _held_id(details: dict[str, Any]) -> Any:
+    return details.get("held_id", details.get("pending_id"))
 
 
 def hold(site: Site, request_sha256: str, release_bytes: bytes, facts: dict[str, Any], review: dict[str, Any]) -> Held:
     """Queue a signed release for approval: ledger first (fsynced), then the files people read."""
     release = Release.from_bytes(release_bytes, "release")
     digest = sha256_hex(release_bytes)
-    pending_id = digest[:16]
+    held_id = digest[:16]
     entry = ledger.append(
         site.ledger_path,
         site.private_key(),
-        "preview",
+        "held",
         {
-            "pending_id": pending_id,
+            "held_id": held_id,
             "study_id": release.study_id,
             "request_id": release.request_id,
             "request_sha256": request_sha256,
@@ -79,10 +90,10 @@ def hold(site: Site, request_sha256: str, release_bytes: bytes, facts: dict[str,
             "review": review,
         },
     )
-    folder = site.root / PENDING_DIR
-    write_atomic(folder / f"{pending_id}.json", release_bytes)
-    write_atomic(folder / f"{pending_id}.review.json", json.dumps(review, indent=2, sort_keys=True).encode() + b"\n")
-    return Held(pending_id, "pending", release.study_id, release.request_id, request_sha256, digest, entry.time)
+    folder = site.root / HELD_DIR
+    write_atomic(folder / f"{held_id}.json", release_bytes)
+    write_atomic(folder / f"{held_id}.review.json", json.dumps(review, indent=2, sort_keys=True).encode() + b"\n")
+    return Held(held_id, "held", release.study_id, release.request_id, request_sha256, digest, entry.time)
 
 
 def held_releases(site: Site) -> dict[str, Held]:
@@ -91,23 +102,23 @@ def held_releases(site: Site) -> dict[str, Held]:
     for entry in ledger.read_entries(site.ledger_path):
         details = entry.get("details", {})
         event = entry.get("event")
-        pending_id = details.get("pending_id")
-        if event == "preview":
-            held[pending_id] = Held(
-                pending_id,
-                "pending",
+        held_id = details.get("held_id", details.get("pending_id"))
+        if event in HELD_EVENTS:
+            held[held_id] = Held(
+                held_id,
+                "held",
                 details.get("study_id", ""),
                 details.get("request_id", ""),
                 details.get("request_sha256", ""),
                 details.get("release_sha256", ""),
                 entry.get("time", ""),
             )
-        elif pending_id in held and event in ("approval", "rejection", "release"):
-            old = held[pending_id]
+        elif held_id in held and event in ("approval", "rejection", "release"):
+            old = held[held_id]
             if event == "release":
-                held[pending_id] = _replace(old, state="released")
-            elif old.state == "pending":
-                held[pending_id] = _replace(
+                held[held_id] = _replace(old, state="released")
+            elif old.state == "held":
+                held[held_id] = _replace(
                     old,
                     state="approved" if event == "approval" else "rejected",
                     decided_by=str(details.get("by", "")),
@@ -127,14 +138,14 @@ def held_for_request(site: Site, request_sha256: str) -> Held | None:
     return matches[-1] if matches else None
 
 
-def find(site: Site, pending_id: str) -> Held:
+def find(site: Site, held_id: str) -> Held:
     held = held_releases(site)
-    if pending_id not in held:
-        matches = [h for key, h in held.items() if key.startswith(pending_id)] if len(pending_id) >= 6 else []
+    if held_id not in held:
+        matches = [h for key, h in held.items() if key.startswith(held_id)] if len(held_id) >= 6 else []
         if len(matches) != 1:
-            raise ValidationToolError(f"{pending_id}: no held release with this id (see `site-agent review`)")
+            raise ValidationToolError(f"{held_id}: no held release with this id (see `site-agent review`)")
         return matches[0]
-    return held[pending_id]
+    return held[held_id]
 
 
 def reviewed_bytes(site: Site, held: Held) -> bytes:
@@ -155,30 +166,30 @@ def reviewed_bytes(site: Site, held: Held) -> bytes:
 def _from_ledger(site: Site, held: Held) -> bytes:
     for entry in ledger.read_entries(site.ledger_path):
         details = entry.get("details", {})
-        if entry.get("event") == "preview" and details.get("pending_id") == held.pending_id:
+        if entry.get("event") in HELD_EVENTS and _held_id(details) == held.held_id:
             return str(details.get("release", "")).encode("utf-8")
-    raise ValidationToolError(f"{held.pending_id}: the ledger holds no prepared release with this id")
+    raise ValidationToolError(f"{held.held_id}: the ledger holds no prepared release with this id")
 
 
 def review_details(site: Site, held: Held) -> dict[str, Any]:
     """What suppression did and the audit's result, as recorded in the ledger when the release was prepared."""
     for entry in ledger.read_entries(site.ledger_path):
         details = entry.get("details", {})
-        if entry.get("event") == "preview" and details.get("pending_id") == held.pending_id:
+        if entry.get("event") in HELD_EVENTS and _held_id(details) == held.held_id:
             return details.get("review", {}) or {}
     return {}
 
 
-def _decide(site: Site, pending_id: str, event: str, by: str, reason: str = "") -> Held:
-    held = find(site, pending_id)
-    if held.state != "pending":
-        raise ValidationToolError(f"{held.pending_id}: already {held.state}; a decision is made once")
+def _decide(site: Site, held_id: str, event: str, by: str, reason: str = "") -> Held:
+    held = find(site, held_id)
+    if held.state != "held":
+        raise ValidationToolError(f"{held.held_id}: already {held.state}; a decision is made once")
     if not by.strip():
         raise ValidationToolError("--by: name the person who decides")
     reviewed_bytes(site, held)  # the decision is about exactly these bytes
     now = datetime.now(UTC).replace(microsecond=0).isoformat()
     details = {
-        "pending_id": held.pending_id,
+        "held_id": held.held_id,
         "study_id": held.study_id,
         "request_id": held.request_id,
         "release_sha256": held.release_sha256,
@@ -188,17 +199,17 @@ def _decide(site: Site, pending_id: str, event: str, by: str, reason: str = "") 
     if reason:
         details["reason"] = reason.strip()[:2000]
     ledger.append(site.ledger_path, site.private_key(), event, details)
-    return find(site, held.pending_id)
+    return find(site, held.held_id)
 
 
-def approve(site: Site, pending_id: str, by: str) -> Held:
-    return _decide(site, pending_id, "approval", by)
+def approve(site: Site, held_id: str, by: str) -> Held:
+    return _decide(site, held_id, "approval", by)
 
 
-def reject(site: Site, pending_id: str, reason: str, by: str) -> Held:
+def reject(site: Site, held_id: str, reason: str, by: str) -> Held:
     if not reason.strip():
         raise ValidationToolError("--reason: say why the release is rejected")
-    return _decide(site, pending_id, "rejection", by, reason)
+    return _decide(site, held_id, "rejection", by, reason)
 
 
 def hand_over(site: Site, held: Held) -> bytes:
@@ -206,26 +217,26 @@ def hand_over(site: Site, held: Held) -> bytes:
 
     Raises AwaitingApproval while no one has decided, and PolicyViolation once it was rejected.
     """
-    if held.state == "pending":
+    if held.state == "held":
         raise AwaitingApproval(
-            held.pending_id, f"release {held.pending_id} awaits approval by the site (nothing has been sent)"
+            held.held_id, f"release {held.held_id} is held for approval by the site (nothing has been sent)"
         )
     if held.state == "rejected":
-        raise PolicyViolation(f"release {held.pending_id}: the site's reviewer rejected it; it will not be sent")
+        raise PolicyViolation(f"release {held.held_id}: the site's reviewer rejected it; it will not be sent")
     data = reviewed_bytes(site, held)
     if held.state == "approved":
         release = Release.from_bytes(data, "release")
         facts = {}
         for entry in ledger.read_entries(site.ledger_path):
             details = entry.get("details", {})
-            if entry.get("event") == "preview" and details.get("pending_id") == held.pending_id:
+            if entry.get("event") in HELD_EVENTS and _held_id(details) == held.held_id:
                 facts = details.get("facts", {})
         ledger.append(
             site.ledger_path,
             site.private_key(),
             "release",
             {
-                "pending_id": held.pending_id,
+                "held_id": held.held_id,
                 "study_id": release.study_id,
                 "request_id": release.request_id,
                 "release_sha256": held.release_sha256,

@@ -594,7 +594,7 @@ class _Statement:
 class Audit:
     """The refinement of every definition released to a study: built once, evaluated per candidate release.
 
-    ``earlier`` are the facts of earlier releases (and of releases awaiting approval) to the same study;
+    ``earlier`` are the facts of earlier releases (and of releases held for approval) to the same study;
     ``current`` is the release being audited. :meth:`evaluate` takes the audited release's values (``None``
     = suppressed), so that more suppression can be tried without rebuilding the refinement.
     """

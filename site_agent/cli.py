@@ -9,7 +9,7 @@ from collections.abc import Sequence
 from pathlib import Path
 
 from federation.protocol import ValidationToolError
-from federation.protocol.cli_support import print_json, run_cli, write_atomic
+from federation.protocol.cli_support import ArgumentParser, option, print_json, run_cli, write_atomic
 from federation.protocol.crashpoints import crash_point
 from federation.protocol.progress import records_progress
 
@@ -25,7 +25,7 @@ def _read(path: Path, what: str) -> bytes:
 
 
 def cmd_init(args: argparse.Namespace) -> int:
-    root = init_site(args.out, args.site_id, args.trust)
+    root = init_site(args.site_dir, args.site_id, args.trust)
     site = load_site(root)
     if args.json:
         print_json(
@@ -51,7 +51,7 @@ def cmd_run(args: argparse.Namespace) -> int:
     from .preview import source_from_args
     from .runner import run_request  # pandas and scipy: imported here so `site-agent --help` starts fast
 
-    site = load_site(args.site)
+    site = load_site(args.site_dir)
     try:
         with records_progress() as progress:  # a bar on a terminal only; nothing when piped
             outcome = run_request(
@@ -60,11 +60,11 @@ def cmd_run(args: argparse.Namespace) -> int:
                 _read(args.bundle, "bundle file"),
                 source_from_args(site, args.data, args.table, args.query),
                 args.mapping,
-                compare_bundle_bytes=_read(args.compare_bundle, "comparison bundle") if args.compare_bundle else None,
+                compare_bundle_bytes=_read(args.compare, "comparison bundle") if args.compare else None,
                 progress=progress,
             )
     except AwaitingApproval as held:
-        return review.print_pending(held, args.site)
+        return review.print_held(held, args.site_dir)
     release = outcome.release
     write_atomic(args.out, outcome.release_bytes)
     crash_point("site:after-send")  # inert unless MSV_CRASH_AT says so (crash-safety tests)
@@ -82,7 +82,15 @@ def cmd_run(args: argparse.Namespace) -> int:
 
 def _add_request_arguments(p: argparse.ArgumentParser) -> None:
     """What `run` and `check` both take: the site folder, the coordinator's request and bundle, the data."""
-    p.add_argument("--site", type=Path, required=True, help="site folder (made by `site-agent init`)")
+    option(
+        p,
+        "--site-dir",
+        "--site",
+        dest="site_dir",
+        type=Path,
+        required=True,
+        help="site folder (made by `site-agent init`)",
+    )
     p.add_argument("--request", type=Path, required=True, help="request file from the coordinator")
     p.add_argument("--bundle", type=Path, required=True, help="model bundle from the coordinator")
     _add_data_arguments(p)
@@ -97,14 +105,22 @@ def _add_data_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--table", help="database table to read (with a database URL)")
     p.add_argument("--query", help="one read-only SELECT to read (with a database URL)")
     p.add_argument("--mapping", type=Path, help="mapping file (TOML); default: [data].mapping, else by name")
-    p.add_argument("--compare-bundle", type=Path, help="the second bundle of a paired request")
+    option(
+        p,
+        "--compare",
+        "--compare-bundle",
+        dest="compare",
+        type=Path,
+        metavar="OTHER.bundle",
+        help="the second bundle of a paired request (the coordinator's `request new --compare`)",
+    )
 
 
 def cmd_check(args: argparse.Namespace) -> int:
     from .preview import check_report, format_check, source_from_args
     from .runner import preview_request
 
-    site = load_site(args.site)
+    site = load_site(args.site_dir)
     with records_progress() as progress:
         preview = preview_request(
             site,
@@ -112,7 +128,7 @@ def cmd_check(args: argparse.Namespace) -> int:
             _read(args.bundle, "bundle file"),
             source_from_args(site, args.data, args.table, args.query),
             args.mapping,
-            compare_bundle_bytes=_read(args.compare_bundle, "comparison bundle") if args.compare_bundle else None,
+            compare_bundle_bytes=_read(args.compare, "comparison bundle") if args.compare else None,
             progress=progress,
         )
     if args.json:
@@ -125,7 +141,7 @@ def cmd_check(args: argparse.Namespace) -> int:
 def cmd_map_suggest(args: argparse.Namespace) -> int:
     from .preview import schema_for_suggest, source_from_args, write_suggestion
 
-    site = load_site(args.site) if args.site else None
+    site = load_site(args.site_dir) if args.site_dir else None
     schema = schema_for_suggest(site, args.bundle, args.schema)
     source = source_from_args(None, args.data, args.table, args.query)
     if args.rows < 1:
@@ -148,7 +164,7 @@ def cmd_join(args: argparse.Namespace) -> int:
     from .supernode import JoinSettings, run_join
 
     settings = JoinSettings(
-        site_dir=args.site,
+        site_dir=args.site_dir,
         superlink=args.superlink,
         root_certificates=args.root_certificates,
         runtime_port=args.runtime_port,
@@ -165,33 +181,34 @@ def cmd_app_hash(args: argparse.Namespace) -> int:
     content, digest = bundle.content, bundle.sha256
     if args.out:
         write_atomic(args.out, content)
-    allowed = load_site(args.site).allowed_fab_sha256 if args.site else None
+    allowed = load_site(args.site_dir).allowed_fab_sha256 if args.site_dir else None
     if args.json:
         print_json({"sha256": digest, "size": len(content), "allowed": None if allowed is None else digest in allowed})
         return 0
     print(digest)
     if allowed is not None:
         state = "listed" if digest in allowed else "NOT listed"
-        print(f"{state} in {args.site / 'site.toml'} [app] allowed_fab_sha256", file=sys.stderr)
+        print(f"{state} in {args.site_dir / 'site.toml'} [app] allowed_fab_sha256", file=sys.stderr)
     return 0
 
 
 EPILOG = """\
 answering a request offline (files carried by hand):
-  site-agent init --site-id SITE --trust coordinator.pub --out SITEDIR    # once; give SITEDIR/site.pub back
-  site-agent map suggest --data export.csv --bundle model.bundle --site SITEDIR --out mapping.toml
-  site-agent check --site SITEDIR --request request.json --bundle model.bundle --data export.csv \\
+  site-agent init --site-id SITE --trust coordinator.pub --site-dir SITEDIR    # once; give SITEDIR/site.pub back
+  site-agent map suggest --data export.csv --bundle model.bundle --site-dir SITEDIR --out mapping.toml
+  site-agent check --site-dir SITEDIR --request request.json --bundle model.bundle --data export.csv \\
       --mapping mapping.toml                                              # what would leave; nothing signed
-  site-agent run   --site SITEDIR --request request.json --bundle model.bundle --data export.csv \\
+  site-agent run   --site-dir SITEDIR --request request.json --bundle model.bundle --data export.csv \\
       --mapping mapping.toml --out release.json                          # hand release.json back
-  site-agent ledger verify --site SITEDIR
+  site-agent ledger verify --site-dir SITEDIR
 
 online: `site-agent join` (outbound TLS to the coordinator only); approval: review, approve, reject, release.
 guide: docs/site-it.md (install, keys, mapping, ports and paths); ethics board: docs/ethics-board.md
 
-exit codes: 0 done; 1 a usage or input error; 2 refused (a signature, the site's policy, a broken ledger);
-3 partial (a release held for approval: nothing was sent). Errors are one line naming the file, field and
-rule broken, and never hold a value from a record.
+exit codes: 0 done; 1 a usage or input error (a bad option too); 2 refused (a signature, the site's policy,
+a broken ledger); 3 partial (a release held for approval: nothing was sent); 4 `join` could not stay online
+(no restarts left). Errors are one line naming the file, field and rule broken, and never hold a value from
+a record.
 """
 
 
@@ -200,7 +217,7 @@ def _examples(*lines: str) -> str:
 
 
 def build_parser() -> argparse.ArgumentParser:
-    parser = argparse.ArgumentParser(
+    parser = ArgumentParser(
         prog="site-agent",
         description="Site agent: scores this site's records with a coordinator's signed, frozen model and "
         "writes a signed release holding only counts that pass the site's disclosure policy. "
@@ -216,14 +233,14 @@ def build_parser() -> argparse.ArgumentParser:
         description="Create the site folder: site.toml (the disclosure policy and settings; review it with your "
         "ethics board), site.key (private, mode 0600; signs releases and the ledger), site.pub (give it to "
         "the coordinator), the ledger, and a copy of each pinned coordinator key.",
-        epilog=_examples("site-agent init --site-id clinic-a --trust coordinator.pub --out /srv/validation/site"),
+        epilog=_examples("site-agent init --site-id clinic-a --trust coordinator.pub --site-dir /srv/validation/site"),
         formatter_class=argparse.RawDescriptionHelpFormatter,
     )
     p.add_argument("--site-id", required=True, help="this site's identifier, agreed with the coordinator")
     p.add_argument(
         "--trust", type=Path, action="append", required=True, help="coordinator public key to pin (repeat for several)"
     )
-    p.add_argument("--out", type=Path, required=True, help="site folder to create")
+    option(p, "--site-dir", "--out", dest="site_dir", type=Path, required=True, help="site folder to create")
     p.add_argument("--json", action="store_true", help="print the paths created as JSON")
     p.set_defaults(handler=cmd_init)
 
@@ -235,7 +252,7 @@ def build_parser() -> argparse.ArgumentParser:
         "signed, to --out. Run `site-agent check` first to see what it would release. Exit codes: 0 written; "
         "1 bad input; 2 refused (signature, policy); 3 held for approval (require_approval = true).",
         epilog=_examples(
-            "site-agent run --site SITE --request request.json --bundle model.bundle \\\n"
+            "site-agent run --site-dir SITE --request request.json --bundle model.bundle \\\n"
             "    --data export.csv --mapping mapping.toml --out release.json"
         ),
         formatter_class=argparse.RawDescriptionHelpFormatter,
@@ -252,7 +269,7 @@ def build_parser() -> argparse.ArgumentParser:
         "a release. Shows the participant flow, the counts that would be released and what the policy "
         "suppresses. Use it to test a mapping and to show the ethics board a release before it exists.",
         epilog=_examples(
-            "site-agent check --site SITE --request request.json --bundle model.bundle \\\n"
+            "site-agent check --site-dir SITE --request request.json --bundle model.bundle \\\n"
             "    --data export.csv --mapping mapping.toml"
         ),
         formatter_class=argparse.RawDescriptionHelpFormatter,
@@ -270,7 +287,7 @@ def build_parser() -> argparse.ArgumentParser:
         "the model's inputs. Every guess is marked CONFIRM: read and correct it before use. Writes only the "
         "mapping file, never overwrites one, and records nothing in the ledger.",
         epilog=_examples(
-            "site-agent map suggest --data export.csv --bundle model.bundle --site SITE --out mapping.toml"
+            "site-agent map suggest --data export.csv --bundle model.bundle --site-dir SITE --out mapping.toml"
         ),
         formatter_class=argparse.RawDescriptionHelpFormatter,
     )
@@ -278,8 +295,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--table", help="database table (with a database URL)")
     p.add_argument("--query", help="one read-only SELECT (with a database URL)")
     p.add_argument("--schema", type=Path, help="the model's input schema (TOML)")
-    p.add_argument("--bundle", type=Path, help="or the model bundle (its schema; verified with --site's keys)")
-    p.add_argument("--site", type=Path, help="site folder whose pinned keys verify --bundle")
+    p.add_argument("--bundle", type=Path, help="or the model bundle (its schema; verified with the keys pinned in --site-dir)")
+    option(p, "--site-dir", "--site", dest="site_dir", type=Path, help="site folder whose pinned keys verify --bundle")
     p.add_argument("--rows", type=int, default=5000, help="how many records to look at (default 5000)")
     p.add_argument("--out", type=Path, required=True, help="mapping file to write (never overwritten)")
     p.add_argument("--json", action="store_true", help="print the file written and the to-do notes as JSON")
@@ -293,21 +310,38 @@ def build_parser() -> argparse.ArgumentParser:
         "using [data] in site.toml. Needs node.key from `site-agent init` and the site's hash listed in "
         "[app] allowed_fab_sha256 (see `site-agent app hash`). Run it as a service; stop it with Ctrl-C.",
         epilog=_examples(
-            "site-agent join --superlink coordinator.example.org:8000 --site SITE --root-certificates ca.crt"
+            "site-agent join --superlink coordinator.example.org:8000 --site-dir SITE --root-certificates ca.crt"
         ),
         formatter_class=argparse.RawDescriptionHelpFormatter,
     )
     p.add_argument("--superlink", required=True, help="the coordinator's SuperLink, HOST:PORT")
-    p.add_argument("--site", type=Path, required=True, help="site folder (made by `site-agent init`)")
+    option(
+        p,
+        "--site-dir",
+        "--site",
+        dest="site_dir",
+        type=Path,
+        required=True,
+        help="site folder (made by `site-agent init`)",
+    )
     p.add_argument("--root-certificates", type=Path, help="the coordinator's CA certificate (ca.crt)")
     p.add_argument("--runtime-port", type=int, help="local port for the SuperNode's Runtime API (default: a free one)")
-    p.add_argument("--max-restarts", type=int, help="give up after this many SuperNode restarts (default: never)")
+    p.add_argument(
+        "--max-restarts", type=int, help="give up after this many SuperNode restarts, with exit code 4 (default: never)"
+    )
     p.add_argument("--task-poll", type=float, help="seconds between the app runner's task polls (Flower: 1)")
     p.set_defaults(handler=cmd_join)
 
     app = sub.add_parser("app", help="the app bundle this site runs online").add_subparsers(metavar="ACTION")
     p = app.add_parser("hash", help="build the app bundle from the installed agent and print its SHA-256")
-    p.add_argument("--site", type=Path, help="also say whether site.toml [app] allowed_fab_sha256 lists it")
+    option(
+        p,
+        "--site-dir",
+        "--site",
+        dest="site_dir",
+        type=Path,
+        help="also say whether site.toml [app] allowed_fab_sha256 lists it",
+    )
     p.add_argument("--out", type=Path, help="write the bundle (a zip holding only pyproject.toml) to review it")
     p.add_argument("--json", action="store_true")
     p.set_defaults(handler=cmd_app_hash)
@@ -318,15 +352,15 @@ def build_parser() -> argparse.ArgumentParser:
         help="check the hash chain and signatures; names the first bad line",
         description="Check that every ledger entry is signed by the site key and chained to the one before, and "
         "that every release file in the site folder is in the ledger. Exit code 2 names the first bad line.",
-        epilog=_examples("site-agent ledger verify --site SITE --public-key /safe/copy/site.pub"),
+        epilog=_examples("site-agent ledger verify --site-dir SITE --public-key /safe/copy/site.pub"),
         formatter_class=argparse.RawDescriptionHelpFormatter,
     )
-    p.add_argument("--site", type=Path, required=True, help="site folder")
+    option(p, "--site-dir", "--site", dest="site_dir", type=Path, required=True, help="site folder")
     p.add_argument("--public-key", type=Path, help="check against this copy of the site key (default: site.pub)")
     p.add_argument("--json", action="store_true", help="print the entry count, key id and last hash as JSON")
     p.set_defaults(handler=cmd_ledger_verify)
     p = led.add_parser("show", help="list ledger entries")
-    p.add_argument("--site", type=Path, required=True, help="site folder")
+    option(p, "--site-dir", "--site", dest="site_dir", type=Path, required=True, help="site folder")
     p.add_argument("--json", action="store_true", help="every entry in full as JSON")
     p.set_defaults(handler=cmd_ledger_show)
 

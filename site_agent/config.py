@@ -61,7 +61,7 @@ max_studies = 20
 # any other variable is refused.
 allowed_subgroups = ["age_months", "sex"]
 # Whether a person must approve each release before it leaves (`site-agent review`, then `approve` or
-# `reject`). While a release waits, nothing is sent and the coordinator is told it is pending.
+# `reject`). While a release waits, nothing is sent and the coordinator is told it is held.
 require_approval = false
 # Before anything leaves, the agent checks everything this site has released to the same study, taken
 # together: a hidden count must stay uncertain. This is how many different whole numbers must remain
@@ -179,6 +179,7 @@ def init_site(out: Path, site_id: str, trusted_keys: list[Path]) -> Path:
         raise ValidationToolError("--trust: name at least one coordinator public key")
     (out / "trusted").mkdir(parents=True, exist_ok=True)
     (out / "releases").mkdir(exist_ok=True)
+    (out / "held").mkdir(exist_ok=True)  # releases held for a person's approval
     pinned = []
     for path in trusted_keys:
         key = load_public_key(path)

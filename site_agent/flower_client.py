@@ -57,7 +57,7 @@ def answer(message: Message, context: Context, site_dirs: Sequence[Path] | None 
     try:
         outcome = run_request(site, request_bytes, bundle_bytes, compare_bundle_bytes=compare_bytes)
     except AwaitingApproval as exc:  # held at the site until a person approves it; nothing was sent
-        return _reply(message, {"status": "pending", "reason": str(exc), "site_id": site.site_id})
+        return _reply(message, {"status": "held", "reason": str(exc), "site_id": site.site_id})
     except ValidationToolError as exc:
         return _reply(message, {"status": "refused", "reason": str(exc), "site_id": site.site_id})
     except Exception as exc:  # recorded in the ledger by run_request; only the type travels

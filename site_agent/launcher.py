@@ -68,15 +68,17 @@ def _watch_parent() -> None:
 
 
 def main(argv: Sequence[str] | None = None) -> None:
-    """Entry point ``site-agent-clientapp --site SITEDIR [flwr-clientapp arguments ...]``."""
+    """Entry point ``site-agent-clientapp --site-dir SITEDIR [flwr-clientapp arguments ...]``."""
     parser = argparse.ArgumentParser(
         prog="site-agent-clientapp",
         description="Run one Flower ClientApp task if the app bundle's SHA-256 is in the site's allowlist. "
         "Started by the site's app runner in place of flwr-clientapp (see `site-agent join`).",
     )
-    parser.add_argument("--site", type=Path, required=True, help="site folder (its site.toml holds the allowlist)")
+    parser.add_argument(
+        "--site-dir", "--site", dest="site_dir", type=Path, required=True, help="site folder (its allowlist)"
+    )
     args, flower_args = parser.parse_known_args(argv)
-    site_dir = args.site.resolve()
+    site_dir = args.site_dir.resolve()
 
     # Import the modules, not the same-named functions the package re-exports.
     entry = importlib.import_module("flwr.supernode.cli.flwr_clientapp")

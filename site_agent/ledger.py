@@ -9,7 +9,8 @@ Events:
 
 ``request_received``  a request arrived (its SHA-256 and the bundle's)
 ``refusal``           the request was refused (the reason, as it was sent back)
-``preview``           a release was prepared and held for a person's approval (full text, audit facts, review)
+``held``              a release was prepared and held for a person's approval (full text, audit facts, review;
+                      ``preview`` in ledgers written before this name was settled, read alike)
 ``approval``          a person approved a held release (who, when, the SHA-256 they approved)
 ``rejection``         a person rejected a held release (who, when, why)
 ``release``           a release is about to leave (full text and the audit facts of what it shows and hides)
@@ -40,7 +41,8 @@ if TYPE_CHECKING:  # audit imports scipy; the site-agent's --help and ledger com
 
 
 GENESIS = "0" * 64
-EVENTS = ("request_received", "refusal", "preview", "approval", "rejection", "release", "sent")
+EVENTS = ("request_received", "refusal", "held", "approval", "rejection", "release", "sent")
+HELD_EVENTS = ("held", "preview")  # "preview": the same event in older ledgers
 _FIELDS = ("seq", "time", "event", "details", "prev")
 
 
@@ -192,7 +194,7 @@ def verify_ledger(path: Path, public_key: Ed25519PublicKey) -> int:
 def check_copies(path: Path, folder: Path) -> list[str]:
     """Release files in ``folder`` that the ledger does not record (entries removed from its end)."""
     recorded = {
-        e["details"].get("release_sha256") for e in read_entries(path) if e.get("event") in ("release", "preview")
+        e["details"].get("release_sha256") for e in read_entries(path) if e.get("event") in ("release", *HELD_EVENTS)
     }
     missing = []
     for copy in sorted(folder.glob("*.json")) if folder.is_dir() else []:
@@ -227,12 +229,12 @@ def answered_for_study(path: Path, study_id: str | None) -> list[dict[str, Any]]
     answered: dict[str, dict[str, Any]] = {}
     for entry in entries:
         details = entry.get("details", {})
-        if entry.get("event") not in ("release", "preview"):
+        if entry.get("event") not in ("release", *HELD_EVENTS):
             continue
         if study_id is not None and details.get("study_id") != study_id:
             continue
         digest = details.get("release_sha256")
-        if entry.get("event") == "preview" and digest in rejected:
+        if entry.get("event") in HELD_EVENTS and digest in rejected:
             continue
         answered.setdefault(digest, details)
     return list(answered.values())
@@ -240,7 +242,7 @@ def answered_for_study(path: Path, study_id: str | None) -> list[dict[str, Any]]
 
 def facts_for_study(path: Path, study_id: str) -> list[ReleaseFacts]:
     """What the study's recipient knows or may yet learn from this site: the audit facts of every release to
-    the study, including releases awaiting approval (so that approving them later stays safe)."""
+    the study, including releases held for approval (so that approving them later stays safe)."""
     from .audit import ReleaseFacts
 
     facts = []
@@ -276,19 +278,23 @@ def summary(entry: dict[str, Any]) -> str:
     for key in ("request_sha256", "bundle_sha256", "release_sha256"):
         if isinstance(short.get(key), str):
             short[key] = short[key][:12]
-    if event == "release" or event == "preview":
+    if event == "release" or event in HELD_EVENTS:
         study, request = details.get("study_id"), details.get("request_id")
         text = f"study {study} request {request} release {str(details.get('release_sha256', ''))[:12]}"
-        if event == "preview":
-            text += f" held for approval as {details.get('pending_id')}"
+        if event in HELD_EVENTS:
+            text += f" held for approval as {_held_id(details)}"
         return text
     if event == "approval":
-        return f"{details.get('pending_id')} approved by {details.get('by')}"
+        return f"{_held_id(details)} approved by {details.get('by')}"
     if event == "rejection":
-        return f"{details.get('pending_id')} rejected by {details.get('by')}: {details.get('reason')}"
+        return f"{_held_id(details)} rejected by {details.get('by')}: {details.get('reason')}"
     if event == "sent":
         where = details.get("path") or details.get("via")
         return f"release {str(details.get('release_sha256', ''))[:12]} handed over via {where}"
     if event == "refusal":
         return f"refused: {details.get('reason')}"
     return json.dumps(short, sort_keys=True)
+
+
+def _held_id(details: dict[str, Any]) -> Any:
+    return details.get("held_id", details.get("pending_id"))  # "pending_id" in older ledgers

@@ -1,6 +1,6 @@
 """What a site's reviewer sees and does: held releases, decisions, and the ledger for people.
 
-``site-agent review`` shows every release awaiting approval: exactly the text that would leave (and its
+``site-agent review`` shows every release held for approval: exactly the text that would leave (and its
 SHA-256), the participant flow, the results, which counts were suppressed and why, and the audit's result
 (the range of values the coordinator could still deduce for each hidden count, given everything the site
 has released to the study). ``--html`` writes the same as one self-contained page for an ethics board:
@@ -19,7 +19,7 @@ from pathlib import Path
 from typing import Any
 
 from federation.protocol import key_id, load_public_key
-from federation.protocol.cli_support import EXIT_PARTIAL, print_json, write_atomic
+from federation.protocol.cli_support import EXIT_PARTIAL, option, print_json, write_atomic
 
 from . import approval, ledger
 from .approval import Held
@@ -76,7 +76,7 @@ def describe(site: Site, held: Held) -> dict[str, Any]:
     document = json.loads(data)
     review = approval.review_details(site, held)
     return {
-        "id": held.pending_id,
+        "id": held.held_id,
         "state": held.state,
         "prepared_at": held.prepared_at,
         "decided_by": held.decided_by,
@@ -131,11 +131,11 @@ def render_text(view: dict[str, Any], site_dir: Path) -> str:
     out += ["", "Suppressed, and why (this part stays at the site)"]
     out += [f"  {name:<36} {why}" for name, why in view["suppressed"].items()] or ["  nothing suppressed"]
     out += ["", "Audit"] + [f"  {line}" for line in _audit_lines(view["audit"])]
-    if view["state"] == "pending":
+    if view["state"] == "held":
         out += [
             "",
-            f"Decide:  site-agent approve {view['id']} --site {site_dir} --by NAME",
-            f"         site-agent reject {view['id']} --site {site_dir} --reason TEXT --by NAME",
+            f"Decide:  site-agent approve {view['id']} --site-dir {site_dir} --by NAME",
+            f"         site-agent reject {view['id']} --site-dir {site_dir} --reason TEXT --by NAME",
         ]
     elif view["decided_by"]:
         note = f": {view['reason']}" if view["reason"] else ""
@@ -170,14 +170,14 @@ def render_html(views: list[dict[str, Any]], site: Site) -> str:
     """One self-contained page (inline style, no scripts, nothing fetched) for an ethics board."""
     now = datetime.now(UTC).replace(microsecond=0).isoformat()
     body = [
-        f"<h1>Releases awaiting approval at site {html.escape(site.site_id)}</h1>",
+        f"<h1>Releases held for approval at site {html.escape(site.site_id)}</h1>",
         f"<p>Prepared {html.escape(now)} from the site folder <code>{html.escape(str(site.root))}</code>. "
         "Each release below has been computed and signed but has <strong>not</strong> left the site. "
         "Approving a release approves exactly the text shown, identified by its SHA-256; nothing is "
         "recomputed afterwards. Counts shown as <em>hidden</em> are suppressed by the site's policy.</p>",
     ]
     if not views:
-        body.append("<p>No release awaits approval.</p>")
+        body.append("<p>No release is held for approval.</p>")
     for view in views:
         doc = view["document"]
         meta = [
@@ -205,15 +205,15 @@ def render_html(views: list[dict[str, Any]], site: Site) -> str:
             f'<p class="verdict">{html.escape(audit[0])}</p>',
             "<ul>" + "".join(f"<li>{html.escape(line)}</li>" for line in audit[1:]) + "</ul>",
             "<h3>How to decide</h3>",
-            f"<pre>site-agent approve {html.escape(view['id'])} --site {html.escape(str(site.root))} --by NAME\n"
-            f"site-agent reject {html.escape(view['id'])} --site {html.escape(str(site.root))} --reason TEXT "
+            f"<pre>site-agent approve {html.escape(view['id'])} --site-dir {html.escape(str(site.root))} --by NAME\n"
+            f"site-agent reject {html.escape(view['id'])} --site-dir {html.escape(str(site.root))} --reason TEXT "
             "--by NAME</pre>",
             "<h3>Exact text that would leave</h3>",
             f"<pre>{html.escape(view['text'])}</pre>",
         ]
     return (
         '<!DOCTYPE html>\n<html lang="en"><head><meta charset="utf-8">'
-        f"<title>Releases awaiting approval: {html.escape(site.site_id)}</title>"
+        f"<title>Releases held for approval: {html.escape(site.site_id)}</title>"
         f"<style>{_STYLE}</style></head><body>{''.join(body)}</body></html>\n"
     )
 
@@ -222,9 +222,9 @@ def render_html(views: list[dict[str, Any]], site: Site) -> str:
 
 
 def cmd_review(args: argparse.Namespace) -> int:
-    site = load_site(args.site)
+    site = load_site(args.site_dir)
     held = approval.held_releases(site).values()
-    chosen = [h for h in held if args.all or h.state == "pending"]
+    chosen = [h for h in held if args.all or h.state == "held"]
     views = [describe(site, h) for h in chosen]
     if args.html:
         write_atomic(args.html, render_html(views, site).encode("utf-8"))
@@ -234,40 +234,40 @@ def cmd_review(args: argparse.Namespace) -> int:
         print_json([{k: v for k, v in view.items() if k != "text"} for view in views])
         return 0
     if not views:
-        print("no release awaits approval" if not args.all else "no release has been held for approval")
+        print("no release is held for approval" if not args.all else "no release has been held for approval")
         return 0
-    print("\n\n".join(render_text(view, args.site) for view in views))
+    print("\n\n".join(render_text(view, args.site_dir) for view in views))
     return 0
 
 
 def cmd_approve(args: argparse.Namespace) -> int:
-    site = load_site(args.site)
+    site = load_site(args.site_dir)
     held = approval.approve(site, args.id, args.by)
-    print(f"release {held.pending_id} approved by {held.decided_by}; recorded in {site.ledger_path}")
+    print(f"release {held.held_id} approved by {held.decided_by}; recorded in {site.ledger_path}")
     print("it leaves when the request is answered again (`site-agent run` or the online agent), or with")
-    print(f"  site-agent release {held.pending_id} --site {args.site} --out FILE")
+    print(f"  site-agent release {held.held_id} --site-dir {args.site_dir} --out FILE")
     return 0
 
 
 def cmd_reject(args: argparse.Namespace) -> int:
-    site = load_site(args.site)
+    site = load_site(args.site_dir)
     held = approval.reject(site, args.id, args.reason, args.by or getpass.getuser())
-    print(f"release {held.pending_id} rejected by {held.decided_by}; it will not be sent")
+    print(f"release {held.held_id} rejected by {held.decided_by}; it will not be sent")
     return 0
 
 
 def cmd_release(args: argparse.Namespace) -> int:
-    site = load_site(args.site)
+    site = load_site(args.site_dir)
     held = approval.find(site, args.id)
     data = approval.hand_over(site, held)
     write_atomic(args.out, data)
     approval.record_sent(site, data, "file", args.out)
-    print(f"approved release {held.pending_id} written to {args.out} (SHA-256 {held.release_sha256})")
+    print(f"approved release {held.held_id} written to {args.out} (SHA-256 {held.release_sha256})")
     return 0
 
 
 def cmd_ledger_verify(args: argparse.Namespace) -> int:
-    site = load_site(args.site)
+    site = load_site(args.site_dir)
     public_key = load_public_key(args.public_key) if args.public_key else site.public_key()
     count = ledger.verify_ledger(site.ledger_path, public_key)
     missing = ledger.check_copies(site.ledger_path, site.releases_dir)
@@ -294,7 +294,7 @@ def cmd_ledger_verify(args: argparse.Namespace) -> int:
 
 
 def cmd_ledger_show(args: argparse.Namespace) -> int:
-    site = load_site(args.site)
+    site = load_site(args.site_dir)
     entries = ledger.read_entries(site.ledger_path)
     if args.json:
         print_json(entries)
@@ -312,8 +312,8 @@ def cmd_ledger_show(args: argparse.Namespace) -> int:
 
 def add_commands(sub: argparse._SubParsersAction) -> None:
     """Register review, approve, reject and release on the ``site-agent`` parser."""
-    p = sub.add_parser("review", help="show releases awaiting approval (exactly what would leave, and why)")
-    p.add_argument("--site", type=Path, required=True, help="site folder")
+    p = sub.add_parser("review", help="show releases held for approval (exactly what would leave, and why)")
+    option(p, "--site-dir", "--site", dest="site_dir", type=Path, required=True, help="site folder")
     p.add_argument("--html", type=Path, help="write one self-contained HTML page for an ethics board instead")
     p.add_argument("--all", action="store_true", help="also show releases already decided")
     p.add_argument("--json", action="store_true")
@@ -321,28 +321,28 @@ def add_commands(sub: argparse._SubParsersAction) -> None:
 
     p = sub.add_parser("approve", help="approve a held release (recorded in the ledger)")
     p.add_argument("id", help="held release id (from `site-agent review`)")
-    p.add_argument("--site", type=Path, required=True, help="site folder")
+    option(p, "--site-dir", "--site", dest="site_dir", type=Path, required=True, help="site folder")
     p.add_argument("--by", required=True, help="name of the person approving")
     p.set_defaults(handler=cmd_approve)
 
     p = sub.add_parser("reject", help="reject a held release; it will never be sent")
     p.add_argument("id", help="held release id (from `site-agent review`)")
-    p.add_argument("--site", type=Path, required=True, help="site folder")
+    option(p, "--site-dir", "--site", dest="site_dir", type=Path, required=True, help="site folder")
     p.add_argument("--reason", required=True, help="why (kept in the site's ledger; never sent)")
     p.add_argument("--by", default="", help="name of the person rejecting (default: your login name)")
     p.set_defaults(handler=cmd_reject)
 
     p = sub.add_parser("release", help="write an approved release to a file to hand to the coordinator")
     p.add_argument("id", help="held release id")
-    p.add_argument("--site", type=Path, required=True, help="site folder")
+    option(p, "--site-dir", "--site", dest="site_dir", type=Path, required=True, help="site folder")
     p.add_argument("--out", type=Path, required=True, help="release file to write")
     p.set_defaults(handler=cmd_release)
 
 
-def print_pending(error: approval.AwaitingApproval, site_dir: Path) -> int:
+def print_held(error: approval.AwaitingApproval, site_dir: Path) -> int:
     """What `site-agent run` says when a release is held (exit code 3)."""
-    print(f"release held for approval as {error.pending_id}; nothing has been sent")
-    print(f"  review it:  site-agent review --site {site_dir}   (or --html review.html for the ethics board)")
-    print(f"  decide:     site-agent approve {error.pending_id} --site {site_dir} --by NAME")
+    print(f"release held for approval as {error.held_id}; nothing has been sent")
+    print(f"  review it:  site-agent review --site-dir {site_dir}   (or --html review.html for the ethics board)")
+    print(f"  decide:     site-agent approve {error.held_id} --site-dir {site_dir} --by NAME")
     print("  then run the same request again (or `site-agent release ID --out FILE`) to write the release")
     return EXIT_PARTIAL

@@ -144,7 +144,7 @@ def run_request(
     if site.policy.require_approval:
         held = approval.hold(site, sha256_hex(request_bytes), release_bytes, facts, holder["protected"].review())
         raise AwaitingApproval(
-            held.pending_id, f"release {held.pending_id} awaits approval by the site (nothing has been sent)"
+            held.held_id, f"release {held.held_id} is held for approval by the site (nothing has been sent)"
         )
     ledger.append(
         site.ledger_path,

@@ -37,6 +37,7 @@ from cryptography.hazmat.primitives import serialization
 from cryptography.hazmat.primitives.asymmetric import ec
 
 from federation.protocol import ValidationToolError
+from federation.protocol.cli_support import EXIT_OFFLINE, EXIT_REFUSED
 
 from .config import load_site
 
@@ -146,7 +147,7 @@ class SiteNode:
             "#!/bin/sh\n"
             "# Written by `site-agent join`: the app runner starts this for every message; it runs an app\n"
             "# bundle only if its SHA-256 is listed in site.toml [app] allowed_fab_sha256.\n"
-            f'exec {command} --site {shlex.quote(str(self.site_dir))} "$@"\n'
+            f'exec {command} --site-dir {shlex.quote(str(self.site_dir))} "$@"\n'
         )
         script.chmod(0o755)
 
@@ -278,7 +279,7 @@ class SiteNode:
                         f"site {self.site.site_id}: SuperNode stopped (Flower exit code {code}: "
                         f"{DO_NOT_RESTART[code]}); not restarting"
                     )
-                    return 2
+                    return EXIT_REFUSED
                 if code == EXIT_CONNECTION:
                     why = (
                         "the SuperLink refused or lost this node (exit code 305: after a SuperLink restart, "
@@ -289,7 +290,7 @@ class SiteNode:
                     why = f"the SuperNode exited (Flower exit code {code})" if code else "the SuperNode exited"
                 if self.settings.max_restarts is not None and restarts >= self.settings.max_restarts:
                     self.say(f"site {self.site.site_id}: {why}; no restarts left")
-                    return 3
+                    return EXIT_OFFLINE  # 4: the node could not stay online (3 means a release is held)
                 if time.monotonic() - started_at > 60:
                     pause = self.settings.first_pause_s  # it ran fine for a while: start the back-off afresh
                 self.say(f"site {self.site.site_id}: {why}; restarting in {pause:.0f} s")

@@ -35,7 +35,8 @@ def ready(study, tmp_path):
     assert federation([*args, "--sign", str(study.coordinator_key), "--out", str(request)]) == 0
     site_dir = tmp_path / "site"
     assert (
-        site_agent(["init", "--site-id", "site-a", "--trust", str(study.coordinator_pub), "--out", str(site_dir)]) == 0
+        site_agent(["init", "--site-id", "site-a", "--trust", str(study.coordinator_pub), "--site-dir", str(site_dir)])
+        == 0
     )
     return store, request, site_dir
 
@@ -49,7 +50,7 @@ def one_error_line(capsys: pytest.CaptureFixture[str], prog: str) -> str:
 
 
 def run_site(study, request, site_dir, data, out, mapping=None, bundle=None) -> int:
-    args = ["run", "--site", str(site_dir), "--request", str(request), "--bundle", str(bundle or study.bundle_path)]
+    args = ["run", "--site-dir", str(site_dir), "--request", str(request), "--bundle", str(bundle or study.bundle_path)]
     args += ["--data", str(data), "--out", str(out)]
     if mapping:
         args += ["--mapping", str(mapping)]
@@ -72,7 +73,7 @@ def test_tampered_bundle_byte_is_refused(study, ready, tmp_path, capsys):
     assert not out.exists()
     events = ledger_events(site_dir)
     assert [e["event"] for e in events] == ["request_received", "refusal"]
-    assert site_agent(["ledger", "verify", "--site", str(site_dir)]) == 0
+    assert site_agent(["ledger", "verify", "--site-dir", str(site_dir)]) == 0
 
 
 def test_bundle_signed_by_unpinned_key_is_refused(study, ready, tmp_path, capsys):
@@ -109,7 +110,9 @@ def test_release_from_unenrolled_site_and_duplicate_ingest(study, tmp_path, caps
     # A site that was never enrolled signs a release: refused.
     stranger = tmp_path / "stranger"
     assert (
-        site_agent(["init", "--site-id", "stranger", "--trust", str(study.coordinator_pub), "--out", str(stranger)])
+        site_agent(
+            ["init", "--site-id", "stranger", "--trust", str(study.coordinator_pub), "--site-dir", str(stranger)]
+        )
         == 0
     )
     out = tmp_path / "stranger.json"
@@ -203,7 +206,10 @@ def test_mapping_maps_local_names_and_codes(study, ready, tmp_path):
     out_mapped, out_plain = tmp_path / "mapped.json", tmp_path / "plain.json"
     assert run_site(study, request, site_dir, data, out_mapped, mapping=mapping) == 0
     other = tmp_path / "site2"
-    assert site_agent(["init", "--site-id", "site-b", "--trust", str(study.coordinator_pub), "--out", str(other)]) == 0
+    assert (
+        site_agent(["init", "--site-id", "site-b", "--trust", str(study.coordinator_pub), "--site-dir", str(other)])
+        == 0
+    )
     assert run_site(study, request, other, study.site_csvs[0], out_plain) == 0
     mapped = json.loads(out_mapped.read_text())["results"]["confusion"]
     plain = json.loads(out_plain.read_text())["results"]["confusion"]

@@ -97,7 +97,7 @@ def test_ethics_board_guide(demo, tmp_path):
     release = json.loads((tmp_path / "release.json").read_text())
     assert release["policy"]["require_approval"] is True and release["site_id"] == "amberlow-referral"
     events = [json.loads(line)["event"] for line in (tmp_path / "site" / "ledger.jsonl").read_text().splitlines()]
-    assert events == ["request_received", "preview", "approval", "request_received", "release", "sent"]
+    assert events == ["request_received", "held", "approval", "request_received", "release", "sent"]
     verify = json.loads((tmp_path / "verify.json").read_text())
     assert verify["entries"] == 6 and verify["intact"] is True
     assert (tmp_path / "review.html").read_text().count(release["request_id"]) >= 1

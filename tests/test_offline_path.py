@@ -55,7 +55,7 @@ def offline_round(study: breast_cancer.Study, tmp: Path, min_cell_size: int) -> 
         site_dir = tmp / f"site{i}"
         assert (
             site_agent(
-                ["init", "--site-id", f"site-{i}", "--trust", str(study.coordinator_pub), "--out", str(site_dir)]
+                ["init", "--site-id", f"site-{i}", "--trust", str(study.coordinator_pub), "--site-dir", str(site_dir)]
             )
             == 0
         )
@@ -65,7 +65,7 @@ def offline_round(study: breast_cancer.Study, tmp: Path, min_cell_size: int) -> 
             site_agent(
                 [
                     "run",
-                    "--site",
+                    "--site-dir",
                     str(site_dir),
                     "--request",
                     str(tmp / "request.json"),
@@ -153,4 +153,4 @@ def test_ledger_holds_the_full_release_before_the_file(study, tmp_path):
     entries = [json.loads(line) for line in (tmp_path / "site0" / "ledger.jsonl").read_text().splitlines()]
     assert [e["event"] for e in entries] == ["request_received", "release", "sent"]
     assert entries[1]["details"]["release"] == (tmp_path / "release0.json").read_text()
-    assert site_agent(["ledger", "verify", "--site", str(tmp_path / "site0")]) == 0
+    assert site_agent(["ledger", "verify", "--site-dir", str(tmp_path / "site0")]) == 0

@@ -12,6 +12,7 @@ from pathlib import Path
 from typing import TYPE_CHECKING
 
 from federation.protocol import ValidationToolError
+from federation.protocol.cli_support import option
 
 from .certs import SERVER_DAYS
 
@@ -49,7 +50,7 @@ def enrol_node_key(store: Store, site_id: str, node_key_path: Path) -> None:
 def cmd_certs_new(args: argparse.Namespace) -> int:
     from .certs import new_certificates
 
-    paths = new_certificates(args.out, tuple(args.name or ()), args.days)
+    paths = new_certificates(args.out_dir, tuple(args.name or ()), args.days)
     if args.json:
         names = ("ca_certificate", "ca_key", "server_certificate", "server_key")
         print(json.dumps({name: str(getattr(paths, name)) for name in names}, indent=2))
@@ -64,9 +65,9 @@ def cmd_serve(args: argparse.Namespace) -> int:
     from .fab import build_app_bundle
     from .superlink import exec_superlink, prepare_serve
 
-    command, env = prepare_serve(args.study, args.certs, args.host, args.port, args.task_poll)
+    command, env = prepare_serve(args.study_dir, args.certs_dir, args.host, args.port, args.task_poll)
     bundle = build_app_bundle()
-    print(f"starting the SuperLink for {args.study} on {args.host}:{args.port} (TLS, node authentication on)")
+    print(f"starting the SuperLink for {args.study_dir} on {args.host}:{args.port} (TLS, node authentication on)")
     print(f"  app bundle sha256 {bundle.sha256} (sites list it in site.toml [app] allowed_fab_sha256)")
     print("  expose only /v1/fleet/ to sites; keep /v1/control/ and /v1/runtime/ on this host (docs/deployment.md)")
     sys.stdout.flush()
@@ -83,7 +84,7 @@ def cmd_run(args: argparse.Namespace) -> int:
     from .runs import RunOptions, exit_status, run_study
 
     options = RunOptions(
-        study=args.study,
+        study=args.study_dir,
         min_sites=args.min_sites,
         deadline_s=args.deadline,
         resume=args.resume,
@@ -91,7 +92,7 @@ def cmd_run(args: argparse.Namespace) -> int:
     )
     say = (lambda line: print(line, file=sys.stderr)) if args.json else print
     if interactive():  # a live table of site status on stderr; plain lines when piped or logged
-        with SiteTable(f"study {args.study}") as table:
+        with SiteTable(f"study {args.study_dir}") as table:
             outcome = run_study(replace(options, on_sites=table.update), table.say)
     else:
         outcome = run_study(options, say)
@@ -106,7 +107,9 @@ def cmd_run(args: argparse.Namespace) -> int:
 def add_deploy_commands(sub: argparse._SubParsersAction) -> None:
     certs = sub.add_parser("certs", help="TLS certificates for the SuperLink").add_subparsers(metavar="ACTION")
     p = certs.add_parser("new", help="make a private CA (ca.crt, ca.key) and a server certificate (server.pem/.key)")
-    p.add_argument("--out", type=Path, required=True, help="folder to write the four files into")
+    option(
+        p, "--out-dir", "--out", dest="out_dir", type=Path, required=True, help="folder to write the four files into"
+    )
     p.add_argument(
         "--name",
         action="append",
@@ -117,8 +120,23 @@ def add_deploy_commands(sub: argparse._SubParsersAction) -> None:
     p.set_defaults(handler=cmd_certs_new)
 
     p = sub.add_parser("serve", help="run the study's SuperLink (TLS, node authentication, no dependency installs)")
-    p.add_argument("--study", type=Path, required=True, help="study folder: study.db, request.json, model.bundle")
-    p.add_argument("--certs", type=Path, help="folder made by `federation certs new` (default: STUDY/certs)")
+    option(
+        p,
+        "--study-dir",
+        "--study",
+        dest="study_dir",
+        type=Path,
+        required=True,
+        help="study folder: study.db, request.json, model.bundle",
+    )
+    option(
+        p,
+        "--certs-dir",
+        "--certs",
+        dest="certs_dir",
+        type=Path,
+        help="folder made by `federation certs new` (default: STUDY_DIR/certs)",
+    )
     p.add_argument("--host", default="127.0.0.1", help="address to listen on (default 127.0.0.1; see the docs)")
     p.add_argument("--port", type=int, default=8000, help="port for all three Flower APIs (default 8000)")
     p.add_argument("--task-poll", type=float, help="seconds between the ServerApp runner's task polls (Flower: 1)")
@@ -132,11 +150,19 @@ def add_deploy_commands(sub: argparse._SubParsersAction) -> None:
         "change otherwise. Exit codes: 0 every asked site released; 1 bad input; 3 quorum reached but some "
         "sites did not release; 4 the SuperLink is unreachable, the quorum was not reached or the round was "
         "cut short (continue with --resume; sites that released are not asked again).",
-        epilog="example:\n  federation run --study study/ --min-sites 3 --deadline 900\n"
-        "  federation run --study study/ --resume",
+        epilog="example:\n  federation run --study-dir study/ --min-sites 3 --deadline 900\n"
+        "  federation run --study-dir study/ --resume",
         formatter_class=argparse.RawDescriptionHelpFormatter,
     )
-    p.add_argument("--study", type=Path, required=True, help="study folder served by `federation serve`")
+    option(
+        p,
+        "--study-dir",
+        "--study",
+        dest="study_dir",
+        type=Path,
+        required=True,
+        help="study folder served by `federation serve`",
+    )
     p.add_argument("--min-sites", type=int, help="quorum: sites that must release (default: every enrolled site)")
     p.add_argument("--deadline", type=float, default=600.0, help="seconds the round may take (default 600)")
     p.add_argument("--resume", action="store_true", help="continue the request: ask only sites that have not released")

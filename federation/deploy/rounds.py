@@ -8,7 +8,7 @@ request is a *target*. The round
    node key, never by the name a node gives itself), and sends again only when Flower reports the
    message undeliverable (node gone, message expired, ClientApp crashed) and the node is back;
 3. collects replies by message id and records each site in the store as it happens: ``released``
-   (the release was ingested), ``pending`` (held at the site for a person's approval; ``--resume`` asks
+   (the release was ingested), ``held`` (held at the site for a person's approval; ``--resume`` asks
    again), ``refused`` (the site's reason), ``rejected`` (the coordinator refused the release: wrong key,
    wrong site for this node, replay), or, at the deadline, ``unreachable``;
 4. never waits past the deadline.
@@ -38,8 +38,8 @@ from .nodes import fingerprint_of_reported
 VALIDATE = "validate"
 PING = "ping"  # a trivial query: measures Flower's own round floor on the same deployment
 MESSAGE_TYPES = {VALIDATE: "query.validate", PING: "query.ping"}
-# Final within a round; ``pending`` (held for a person's approval at the site) is asked again by --resume.
-FINAL = {"released", "refused", "rejected", "pending", "answered"}
+# Final within a round; ``held`` (held for a person's approval at the site) is asked again by --resume.
+FINAL = {"released", "refused", "rejected", "held", "answered"}
 RETRY_CODES = {ErrorCode.NODE_UNAVAILABLE, ErrorCode.MESSAGE_UNAVAILABLE, ErrorCode.CLIENT_APP_CRASHED}
 _CLIENTAPP_REASON = re.compile(r"^<class '[\w.]+'>:<'(.*)'>$", re.DOTALL)
 
@@ -238,8 +238,8 @@ class DeployedRound:
         except KeyError:
             self._set(target, "rejected", "the reply holds no result")
             return
-        if result.get("status") == "pending":
-            self._set(target, "pending", str(result.get("reason", ""))[:500] or "held for approval at the site")
+        if result.get("status") in ("held", "pending"):  # "pending": what older site agents send
+            self._set(target, "held", str(result.get("reason", ""))[:500] or "held for approval at the site")
             return
         if result.get("status") != "released":
             self._set(target, "refused", str(result.get("reason", ""))[:500] or "refused without a reason")

@@ -13,7 +13,7 @@ from contextlib import contextmanager
 from typing import Any
 
 # A site's round status that means it has answered one way or another (see federation/deploy/rounds.py).
-ANSWERED = frozenset({"released", "answered", "refused", "rejected", "unreachable", "pending"})
+ANSWERED = frozenset({"released", "answered", "refused", "rejected", "unreachable", "held"})
 
 
 def interactive() -> bool:

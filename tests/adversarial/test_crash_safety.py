@@ -51,7 +51,7 @@ def test_site_killed_during_a_release_recovers_without_a_second_disclosure(
     folder = Path(shutil.copytree(coordinator.demo.site_dirs[SITE], tmp_path / "site"))
     files = coordinator.demo.root / "coordinator"
     out = tmp_path / "release.json"
-    command = [str(BIN / "site-agent"), "run", "--site", str(folder), "--request", str(files / "request.json")]
+    command = [str(BIN / "site-agent"), "run", "--site-dir", str(folder), "--request", str(files / "request.json")]
     command += ["--bundle", str(files / "model.bundle"), "--out", str(out)]
 
     killed = run(command, crash_at=point)

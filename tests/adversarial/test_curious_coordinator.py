@@ -177,4 +177,4 @@ def test_require_approval_holds_every_release_until_a_person_decides(coordinator
         run_request(site, coordinator.request(study="watched"), coordinator.demo.bundle_bytes)
     assert not any(site.releases_dir.glob("*.json"))
     events = [e["event"] for e in ledger.read_entries(site.ledger_path)]
-    assert "release" not in events and "sent" not in events and events[-1] == "preview"
+    assert "release" not in events and "sent" not in events and events[-1] == "held"

@@ -234,7 +234,7 @@ def test_launcher_refuses_an_unlisted_app_bundle_before_flower_unpacks_it(
 import importlib, sys
 from site_agent import launcher
 try:
-    launcher.main(["--site", {str(site.root)!r}, "--no-such-flower-option"])
+    launcher.main(["--site-dir", {str(site.root)!r}, "--no-such-flower-option"])
 except SystemExit:
     pass
 runtime = importlib.import_module("flwr.supernode.runtime.run_clientapp")

@@ -49,11 +49,11 @@ def measure(out: Path, rounds: int, task_poll: str) -> dict:
         config.write_text(config.read_text().replace("allowed_fab_sha256 = []", f'allowed_fab_sha256 = ["{digest}"]'))
     fleet = Fleet(out)
     port = free_port()
-    result = fleet.run([str(BIN / "federation"), "certs", "new", "--out", str(coordinator / "certs")], 60)
+    result = fleet.run([str(BIN / "federation"), "certs", "new", "--out-dir", str(coordinator / "certs")], 60)
     assert result.returncode == 0, result.stderr
     times: dict[str, list[float]] = {"ping": [], "validate": []}
     try:
-        serve = [str(BIN / "federation"), "serve", "--study", str(coordinator), "--port", str(port)]
+        serve = [str(BIN / "federation"), "serve", "--study-dir", str(coordinator), "--port", str(port)]
         fleet.start("superlink", [*serve, "--task-poll", task_poll])
         wait_until(lambda: port_listening(port), 60, "the SuperLink")
         store = Store(study.store_path)
@@ -68,7 +68,7 @@ def measure(out: Path, rounds: int, task_poll: str) -> dict:
                     "join",
                     "--superlink",
                     f"127.0.0.1:{port}",
-                    "--site",
+                    "--site-dir",
                     str(folder),
                     "--root-certificates",
                     str(coordinator / "certs" / "ca.crt"),

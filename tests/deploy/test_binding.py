@@ -125,9 +125,9 @@ def test_run_command_errors_are_one_line(study: DemoStudy, tmp_path: Path) -> No
     with pytest.raises(ValidationToolError, match="--min-sites: must be from 1 to 1"):
         run_study(RunOptions(study=coordinator, min_sites=2))
     # Through the command line: one line on stderr and the error's exit code.
-    down = _federation("run", "--study", str(coordinator))  # nothing listens on that port
+    down = _federation("run", "--study-dir", str(coordinator))  # nothing listens on that port
     assert down.returncode == 4 and down.stderr.count("\n") == 1
     assert "did not answer" in down.stderr and "is `federation serve` running?" in down.stderr
-    serve = _federation("serve", "--study", str(coordinator), "--certs", str(tmp_path / "no-certs"))
+    serve = _federation("serve", "--study-dir", str(coordinator), "--certs-dir", str(tmp_path / "no-certs"))
     assert serve.returncode == 1 and serve.stderr.count("\n") == 1
     assert "ca.crt: not found (make the files with `federation certs new" in serve.stderr

@@ -73,7 +73,7 @@ class Deployment:
         return self.coordinator / "certs" / "ca.crt"
 
     def start_superlink(self) -> None:
-        argv = [str(BIN / "federation"), "serve", "--study", str(self.coordinator), "--port", str(self.port)]
+        argv = [str(BIN / "federation"), "serve", "--study-dir", str(self.coordinator), "--port", str(self.port)]
         process = self.fleet.start("superlink", [*argv, "--task-poll", TASK_POLL])
         wait_until(lambda: port_listening(self.port) or process.poll() is not None, 60, "the SuperLink's port")
         assert process.poll() is None, self.fleet.log("superlink")
@@ -84,7 +84,7 @@ class Deployment:
             "join",
             "--superlink",
             f"127.0.0.1:{self.port}",
-            "--site",
+            "--site-dir",
             str(self.sites[site]),
         ]
         return self.fleet.start(
@@ -102,7 +102,7 @@ class Deployment:
         return online
 
     def federation_run(self, *args: str, timeout_s: float = 240) -> tuple[int, dict]:
-        argv = [str(BIN / "federation"), "run", "--study", str(self.coordinator), "--json", *args]
+        argv = [str(BIN / "federation"), "run", "--study-dir", str(self.coordinator), "--json", *args]
         result = self.fleet.run(argv, timeout_s)
         assert result.stdout.strip(), result.stderr
         return result.returncode, json.loads(result.stdout)
@@ -143,7 +143,7 @@ def deployment(tmp_path_factory: pytest.TempPathFactory):  # noqa: ANN201
     digest = build_app_bundle().sha256
     for name in ALLOWING:
         _allow(sites[name], digest)
-    made = fleet.run([str(BIN / "federation"), "certs", "new", "--out", str(coordinator / "certs")], 60)
+    made = fleet.run([str(BIN / "federation"), "certs", "new", "--out-dir", str(coordinator / "certs")], 60)
     assert made.returncode == 0, made.stderr
     deployment = Deployment(root, study, coordinator, sites, reference, fleet, free_port(), digest)
     try:
@@ -297,7 +297,7 @@ def test_site_refuses_bundle_missing_from_its_allowlist(deployment: Deployment, 
 def test_site_killed_mid_round_is_unreachable_and_round_completes(deployment: Deployment, first_round) -> None:
     fleet, site_dir = deployment.fleet, deployment.sites[KILLED]
     request = deployment.new_request("tallowmere-online-2")
-    argv = [str(BIN / "federation"), "run", "--study", str(deployment.coordinator), "--json"]
+    argv = [str(BIN / "federation"), "run", "--study-dir", str(deployment.coordinator), "--json"]
     running = subprocess.Popen(
         [*argv, "--min-sites", "2", "--deadline", "18"], stdout=subprocess.PIPE, env=fleet.env, text=True
     )
@@ -306,7 +306,7 @@ def test_site_killed_mid_round_is_unreachable_and_round_completes(deployment: De
 
         def clientapp() -> int | None:
             for pid in processes_under(site_dir):
-                if f"--site {site_dir.resolve()}" in cmdline(pid) and "clientapp" in cmdline(pid):
+                if f"--site-dir {site_dir.resolve()}" in cmdline(pid) and "clientapp" in cmdline(pid):
                     return pid
             return None
 
@@ -347,7 +347,7 @@ def test_superlink_restart_then_resume_loses_and_duplicates_nothing(deployment: 
     fleet.stop(f"join-{KILLED}")  # absent when the round starts (already so if the previous test ran)
     request = deployment.new_request("tallowmere-online-3")
     request_id = json.loads(request)["request_id"]
-    argv = [str(BIN / "federation"), "run", "--study", str(deployment.coordinator), "--json"]
+    argv = [str(BIN / "federation"), "run", "--study-dir", str(deployment.coordinator), "--json"]
     first = subprocess.Popen(
         [*argv, "--min-sites", "3", "--deadline", "120"], stdout=subprocess.PIPE, env=fleet.env, text=True
     )

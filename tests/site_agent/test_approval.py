@@ -47,16 +47,17 @@ def held(study: breast_cancer.Study, tmp_path: Path, capsys):  # noqa: ANN001, A
     assert federation(args) == 0
     site_dir = tmp_path / "site"
     assert (
-        site_agent(["init", "--site-id", "site-0", "--trust", str(study.coordinator_pub), "--out", str(site_dir)]) == 0
+        site_agent(["init", "--site-id", "site-0", "--trust", str(study.coordinator_pub), "--site-dir", str(site_dir)])
+        == 0
     )
     require_approval(site_dir)
-    run = ["run", "--site", str(site_dir), "--request", str(request), "--bundle", str(study.bundle_path)]
+    run = ["run", "--site-dir", str(site_dir), "--request", str(request), "--bundle", str(study.bundle_path)]
     run += ["--data", str(study.site_csvs[0]), "--out", str(tmp_path / "release.json")]
     capsys.readouterr()
     assert site_agent(run) == 3  # partial: held, nothing written
     out = capsys.readouterr().out
-    pending_id = re.search(r"held for approval as ([0-9a-f]{16})", out).group(1)
-    return site_dir, run, pending_id
+    held_id = re.search(r"held for approval as ([0-9a-f]{16})", out).group(1)
+    return site_dir, run, held_id
 
 
 def events(site_dir: Path) -> list[str]:
@@ -64,34 +65,34 @@ def events(site_dir: Path) -> list[str]:
 
 
 def test_a_held_release_leaves_nothing_until_approved(held, tmp_path: Path, capsys) -> None:  # noqa: ANN001
-    site_dir, run, pending_id = held
+    site_dir, run, held_id = held
     assert not (tmp_path / "release.json").exists()
-    assert events(site_dir) == ["request_received", "preview"]
-    pending = site_dir / "pending" / f"{pending_id}.json"
-    assert sha256_hex(pending.read_bytes()).startswith(pending_id)
+    assert events(site_dir) == ["request_received", "held"]
+    held_file = site_dir / "held" / f"{held_id}.json"
+    assert sha256_hex(held_file.read_bytes()).startswith(held_id)
     # asking again before a decision: still held, no recomputation, still nothing written
     assert site_agent(run) == 3
     assert not (tmp_path / "release.json").exists()
-    assert events(site_dir) == ["request_received", "preview", "request_received"]
+    assert events(site_dir) == ["request_received", "held", "request_received"]
 
 
 def test_review_shows_exactly_what_would_leave_and_why(held, capsys) -> None:  # noqa: ANN001
-    site_dir, _, pending_id = held
+    site_dir, _, held_id = held
     capsys.readouterr()
-    assert site_agent(["review", "--site", str(site_dir)]) == 0
+    assert site_agent(["review", "--site-dir", str(site_dir)]) == 0
     out = capsys.readouterr().out
-    text = (site_dir / "pending" / f"{pending_id}.json").read_text()
+    text = (site_dir / "held" / f"{held_id}.json").read_text()
     assert text in out  # the exact text that would leave
-    assert f"Held release {pending_id} (pending" in out
+    assert f"Held release {held_id} (held" in out
     assert "Participant flow" in out and "Suppressed, and why" in out and "Audit" in out
     assert "passed: this release" in out
-    assert f"site-agent approve {pending_id}" in out
+    assert f"site-agent approve {held_id}" in out
 
 
 def test_the_html_review_page_is_self_contained(held, tmp_path: Path) -> None:  # noqa: ANN001
-    site_dir, _, pending_id = held
+    site_dir, _, held_id = held
     page = tmp_path / "review.html"
-    assert site_agent(["review", "--site", str(site_dir), "--html", str(page)]) == 0
+    assert site_agent(["review", "--site-dir", str(site_dir), "--html", str(page)]) == 0
     html_text = page.read_text()
 
     class Links(HTMLParser):
@@ -107,48 +108,48 @@ def test_the_html_review_page_is_self_contained(held, tmp_path: Path) -> None:  
     parser = Links()
     parser.feed(html_text)
     assert parser.found == []  # no scripts, no fetched styles, fonts or images
-    assert pending_id in html_text
-    released = json.loads((site_dir / "pending" / f"{pending_id}.json").read_text())
+    assert held_id in html_text
+    released = json.loads((site_dir / "held" / f"{held_id}.json").read_text())
     assert f"minimum cell size {released['policy']['min_cell_size']}" in html_text
 
 
 def test_approve_then_run_again_writes_the_reviewed_bytes(held, tmp_path: Path, capsys) -> None:  # noqa: ANN001
-    site_dir, run, pending_id = held
-    reviewed = (site_dir / "pending" / f"{pending_id}.json").read_bytes()
-    assert site_agent(["approve", pending_id, "--site", str(site_dir), "--by", "A. Reviewer"]) == 0
+    site_dir, run, held_id = held
+    reviewed = (site_dir / "held" / f"{held_id}.json").read_bytes()
+    assert site_agent(["approve", held_id, "--site-dir", str(site_dir), "--by", "A. Reviewer"]) == 0
     assert site_agent(run) == 0
     assert (tmp_path / "release.json").read_bytes() == reviewed
     assert events(site_dir)[-4:] == ["approval", "request_received", "release", "sent"]
     approval = [e for e in ledger.read_entries(site_dir / "ledger.jsonl") if e["event"] == "approval"][0]
     assert approval["details"]["by"] == "A. Reviewer"
     assert approval["details"]["release_sha256"] == sha256_hex(reviewed)
-    assert site_agent(["approve", pending_id, "--site", str(site_dir), "--by", "B"]) == 1  # decided once
-    assert site_agent(["ledger", "verify", "--site", str(site_dir)]) == 0
+    assert site_agent(["approve", held_id, "--site-dir", str(site_dir), "--by", "B"]) == 1  # decided once
+    assert site_agent(["ledger", "verify", "--site-dir", str(site_dir)]) == 0
     # the release command hands over the same bytes again, recorded as sent
     out = tmp_path / "again.json"
-    assert site_agent(["release", pending_id, "--site", str(site_dir), "--out", str(out)]) == 0
+    assert site_agent(["release", held_id, "--site-dir", str(site_dir), "--out", str(out)]) == 0
     assert out.read_bytes() == reviewed
 
 
 def test_a_rejected_release_never_leaves(held, tmp_path: Path, capsys) -> None:  # noqa: ANN001
-    site_dir, run, pending_id = held
-    assert site_agent(["reject", pending_id, "--site", str(site_dir), "--reason", "wait for the board"]) == 0
+    site_dir, run, held_id = held
+    assert site_agent(["reject", held_id, "--site-dir", str(site_dir), "--reason", "wait for the board"]) == 0
     capsys.readouterr()
     assert site_agent(run) == 2
     err = capsys.readouterr().err
     assert "rejected" in err and "wait for the board" not in err  # the reviewer's words stay at the site
     assert not (tmp_path / "release.json").exists()
     out = tmp_path / "x.json"
-    assert site_agent(["release", pending_id, "--site", str(site_dir), "--out", str(out)]) == 2
+    assert site_agent(["release", held_id, "--site-dir", str(site_dir), "--out", str(out)]) == 2
     assert not out.exists()
 
 
-def test_a_pending_file_changed_after_review_is_not_approved(held, capsys) -> None:  # noqa: ANN001
-    site_dir, _, pending_id = held
-    pending = site_dir / "pending" / f"{pending_id}.json"
-    pending.write_text(pending.read_text().replace('"min_cell_size": 10', '"min_cell_size": 11'))
+def test_a_held_file_changed_after_review_is_not_approved(held, capsys) -> None:  # noqa: ANN001
+    site_dir, _, held_id = held
+    held_file = site_dir / "held" / f"{held_id}.json"
+    held_file.write_text(held_file.read_text().replace('"min_cell_size": 10', '"min_cell_size": 11'))
     capsys.readouterr()
-    assert site_agent(["approve", pending_id, "--site", str(site_dir), "--by", "A. Reviewer"]) == 1
+    assert site_agent(["approve", held_id, "--site-dir", str(site_dir), "--by", "A. Reviewer"]) == 1
     assert "changed since it was prepared" in capsys.readouterr().err
 
 
@@ -156,16 +157,16 @@ def test_a_crash_between_recording_and_sending_is_visible(held, capsys) -> None:
     from site_agent import approval
     from site_agent.config import load_site
 
-    site_dir, _, pending_id = held
-    assert site_agent(["approve", pending_id, "--site", str(site_dir), "--by", "A. Reviewer"]) == 0
+    site_dir, _, held_id = held
+    assert site_agent(["approve", held_id, "--site-dir", str(site_dir), "--by", "A. Reviewer"]) == 0
     site = load_site(site_dir)
-    approval.hand_over(site, approval.find(site, pending_id))  # recorded; the process "dies" before handing over
+    approval.hand_over(site, approval.find(site, held_id))  # recorded; the process "dies" before handing over
     capsys.readouterr()
-    assert site_agent(["ledger", "show", "--site", str(site_dir)]) == 0
+    assert site_agent(["ledger", "show", "--site-dir", str(site_dir)]) == 0
     assert "has no 'sent' entry after it" in capsys.readouterr().out
 
 
-def test_the_online_agent_replies_pending_then_released_after_approval(tmp_path: Path) -> None:
+def test_the_online_agent_replies_held_then_released_after_approval(tmp_path: Path) -> None:
     study = prepare_study(tmp_path / "demo")
     study = replace(study, site_dirs=study.site_dirs[:2])
     require_approval(study.site_dirs[0])
@@ -173,14 +174,14 @@ def test_the_online_agent_replies_pending_then_released_after_approval(tmp_path:
     run_inprocess(make_server_app(round_config(study), outcomes.extend), make_client_app(), study.site_dirs)
     by_site = {o.site_id: o for o in outcomes}
     first, second = (d.name for d in study.site_dirs)
-    assert by_site[first].status == "pending" and "awaits approval" in by_site[first].reason
+    assert by_site[first].status == "held" and "held for approval" in by_site[first].reason
     assert by_site[second].status == "released"
     store = Store(study.store_path)
     assert {r.release.site_id for r in store.releases("tallowmere-validation-1")} == {second}
     store.close()
     assert events(study.site_dirs[1])[-2:] == ["release", "sent"]  # handed to Flower, recorded
-    pending_id = next((study.site_dirs[0] / "pending").glob("*.review.json")).name.split(".")[0]
-    assert site_agent(["approve", pending_id, "--site", str(study.site_dirs[0]), "--by", "A. Reviewer"]) == 0
+    held_id = next((study.site_dirs[0] / "held").glob("*.review.json")).name.split(".")[0]
+    assert site_agent(["approve", held_id, "--site-dir", str(study.site_dirs[0]), "--by", "A. Reviewer"]) == 0
     outcomes.clear()
     only_first = replace(study, site_dirs=study.site_dirs[:1])
     run_inprocess(make_server_app(round_config(only_first), outcomes.extend), make_client_app(), only_first.site_dirs)
@@ -188,4 +189,18 @@ def test_the_online_agent_replies_pending_then_released_after_approval(tmp_path:
     store = Store(study.store_path)
     stored = {r.release.site_id: r for r in store.releases("tallowmere-validation-1")}
     store.close()
-    assert stored[first].document == (study.site_dirs[0] / "pending" / f"{pending_id}.json").read_bytes()
+    assert stored[first].document == (study.site_dirs[0] / "held" / f"{held_id}.json").read_bytes()
+
+
+def test_review_into_a_closed_pipe_ends_quietly(held) -> None:  # noqa: ANN001
+    """`site-agent review | head`: the reader goes away first; no broken-pipe error, exit code 0."""
+    import subprocess
+    import sys
+
+    site_dir, _, _ = held
+    argv = [sys.executable, "-m", "site_agent.cli", "review", "--site-dir", str(site_dir)]
+    process = subprocess.Popen(argv, stdout=subprocess.PIPE, stderr=subprocess.PIPE)
+    process.stdout.close()  # closed before the command has started writing
+    stderr = process.stderr.read().decode()
+    assert process.wait(timeout=120) == 0
+    assert stderr == ""

@@ -42,7 +42,7 @@ def site(cancer: Cancer, tmp_path: Path) -> tuple[Path, Path, Path]:
 
 def check(site: tuple[Path, Path, Path], data: str, mapping: Path | None, *extra: str) -> list[str]:
     folder, request, bundle = site
-    args = ["check", "--site", str(folder), "--request", str(request), "--bundle", str(bundle), "--data", data]
+    args = ["check", "--site-dir", str(folder), "--request", str(request), "--bundle", str(bundle), "--data", data]
     return args + (["--mapping", str(mapping)] if mapping else []) + list(extra)
 
 
@@ -194,7 +194,7 @@ def test_negative_age_is_a_counted_exclusion(demo_site_data, tmp_path: Path, cap
     row = int(np.flatnonzero(valid.to_numpy())[0])
 
     def flow_of(path: Path) -> dict:
-        args = ["check", "--site", str(folder), "--request", str(tmp_path / "request.json")]
+        args = ["check", "--site-dir", str(folder), "--request", str(tmp_path / "request.json")]
         args += ["--bundle", str(tmp_path / "model.bundle"), "--data", str(path), "--mapping", str(mapping_path)]
         assert site_agent([*args, "--json"]) == 0
         return json.loads(capsys.readouterr().out)["flow"]

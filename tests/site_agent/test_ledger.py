@@ -103,7 +103,7 @@ def test_a_rewritten_chain_signed_by_another_key_is_named(site, tmp_path: Path) 
 
 def test_a_ledger_checked_against_another_key_fails_at_line_1(site, tmp_path: Path) -> None:  # noqa: ANN001
     _, other_pub = write_keypair(tmp_path / "other", "other")
-    code = site_agent(["ledger", "verify", "--site", str(site.root), "--public-key", str(other_pub)])
+    code = site_agent(["ledger", "verify", "--site-dir", str(site.root), "--public-key", str(other_pub)])
     assert code == 2
 
 
@@ -127,12 +127,12 @@ def test_entries_cut_from_the_end_are_caught_by_a_release_copy(site) -> None:  #
 
 
 def test_cli_verify_names_the_line_in_one_error_line(site, capsys) -> None:  # noqa: ANN001
-    assert site_agent(["ledger", "verify", "--site", str(site.root)]) == 0
+    assert site_agent(["ledger", "verify", "--site-dir", str(site.root)]) == 0
     assert "5 entries, chain and signatures intact" in capsys.readouterr().out
     content = lines(site)
     content[3] = content[3].replace('"event":"request_received"', '"event":"refusal"')
     write(site, content)
-    assert site_agent(["ledger", "verify", "--site", str(site.root)]) == 2
+    assert site_agent(["ledger", "verify", "--site-dir", str(site.root)]) == 2
     err = capsys.readouterr().err.strip().splitlines()
     assert len(err) == 1 and "line 4: entry was edited" in err[0]
 
@@ -143,7 +143,7 @@ def test_show_flags_a_release_that_was_not_handed_over(site, capsys) -> None:  #
     ledger.append(site.ledger_path, key, "sent", {"release_sha256": "a" * 64, "via": "file", "path": "/x.json"})
     ledger.append(site.ledger_path, key, "release", {"study_id": "s", "request_id": "r2", "release_sha256": "b" * 64})
     assert [e["details"]["request_id"] for e in ledger.unsent(site.ledger_path)] == ["r2"]
-    assert site_agent(["ledger", "show", "--site", str(site.root)]) == 0
+    assert site_agent(["ledger", "show", "--site-dir", str(site.root)]) == 0
     out = capsys.readouterr().out
     assert "release bbbbbbbbbbbb (entry 8) has no 'sent' entry" in out
     assert "aaaaaaaaaaaa (entry 6)" not in out

@@ -84,7 +84,7 @@ def new_request(paths: dict[str, Path], out: Path, *flags: str) -> int:
 
 def test_request_new_flags(coordinator: dict[str, Path], tmp_path: Path, capsys) -> None:
     out = tmp_path / "request.json"
-    flags = ["--analyses", "confusion,roc,margin", "--subgroup", "mean_radius=12,15", "--bands", "0.2,0.5,0.8"]
+    flags = ["--analyses", "confusion,roc,margin", "--subgroup", "mean_radius=12,15", "--roc-bands", "0.2,0.5,0.8"]
     flags += ["--thresholds", "0.4", "--margin-bands", "0.1,0.2", "--compare", str(coordinator["compare"])]
     assert new_request(coordinator, out, *flags) == 0
     request = Request.from_bytes(out.read_bytes(), None)
@@ -109,7 +109,7 @@ def test_site_refuses_a_subgroup_its_policy_does_not_allow(cancer: Cancer, tmp_p
     spec = AnalysisSpec("subgroups", subgroups=(SubgroupSpec("mean_radius", (12.0,)),))
     request.write_bytes(request_bytes(cancer, AnalysisSpec("confusion"), spec))
     (tmp_path / "model.bundle").write_bytes(cancer.bundle)
-    args = ["check", "--site", str(folder), "--request", str(request), "--bundle", str(tmp_path / "model.bundle")]
+    args = ["check", "--site-dir", str(folder), "--request", str(request), "--bundle", str(tmp_path / "model.bundle")]
     assert site_agent([*args, "--data", str(cancer.csv), "--mapping", str(cancer.mapping)]) == 2
     err = capsys.readouterr().err
     assert "subgroup variable 'mean_radius' is not allowed by this site's policy" in err
@@ -123,7 +123,7 @@ def test_check_shows_what_would_leave_and_records_nothing(cancer: Cancer, tmp_pa
     )
     (tmp_path / "model.bundle").write_bytes(cancer.bundle)
     ledger_before = (folder / "ledger.jsonl").read_bytes()
-    args = ["check", "--site", str(folder), "--request", str(request), "--bundle", str(tmp_path / "model.bundle")]
+    args = ["check", "--site-dir", str(folder), "--request", str(request), "--bundle", str(tmp_path / "model.bundle")]
     args += ["--data", str(cancer.csv), "--mapping", str(cancer.mapping)]
     assert site_agent(args) == 0
     text = capsys.readouterr().out

@@ -148,7 +148,7 @@ def test_site_toml_can_point_at_a_database(cancer: Cancer, tmp_path) -> None:
     assert load_site(site.root).source().describe() == f"sqlite:///{cancer.sqlite} table records"
     (tmp_path / "request.json").write_bytes(request_bytes(cancer, AnalysisSpec("confusion")))
     (tmp_path / "model.bundle").write_bytes(cancer.bundle)
-    args = ["run", "--site", str(site.root), "--request", str(tmp_path / "request.json")]
+    args = ["run", "--site-dir", str(site.root), "--request", str(tmp_path / "request.json")]
     args += ["--bundle", str(tmp_path / "model.bundle"), "--out", str(tmp_path / "release.json")]
     assert site_agent(args) == 0
     release = Release.from_bytes((tmp_path / "release.json").read_bytes())
