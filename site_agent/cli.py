@@ -295,7 +295,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--table", help="database table (with a database URL)")
     p.add_argument("--query", help="one read-only SELECT (with a database URL)")
     p.add_argument("--schema", type=Path, help="the model's input schema (TOML)")
-    p.add_argument("--bundle", type=Path, help="or the model bundle (its schema; verified with the keys pinned in --site-dir)")
+    p.add_argument("--bundle", type=Path, help="or the model bundle (verified with the keys pinned in --site-dir)")
     option(p, "--site-dir", "--site", dest="site_dir", type=Path, help="site folder whose pinned keys verify --bundle")
     p.add_argument("--rows", type=int, default=5000, help="how many records to look at (default 5000)")
     p.add_argument("--out", type=Path, required=True, help="mapping file to write (never overwritten)")
