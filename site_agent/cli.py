@@ -11,6 +11,7 @@ from pathlib import Path
 from federation.protocol import ValidationToolError
 from federation.protocol.cli_support import ArgumentParser, option, print_json, run_cli, write_atomic
 from federation.protocol.crashpoints import crash_point
+from federation.protocol.errors import REFUSAL_CATEGORIES
 from federation.protocol.progress import records_progress
 
 from . import review
@@ -65,7 +66,20 @@ def cmd_run(args: argparse.Namespace) -> int:
             )
     except AwaitingApproval as held:
         return review.print_held(held, args.site_dir)
+    except ValidationToolError as exc:
+        sent = getattr(exc, "refusal", None)
+        if sent in REFUSAL_CATEGORIES and sent != str(exc):  # the detail stays here; the category may travel
+            error = ValidationToolError(f"{exc} (tell the coordinator only: {sent})")
+            error.exit_code = exc.exit_code
+            raise error from None
+        raise
     release = outcome.release
+    if outcome.resent_at:
+        print(
+            f"site-agent: this request was answered before: the release recorded in the ledger at {outcome.resent_at} "
+            "is written again, unchanged; the data and mapping given now were not used",
+            file=sys.stderr,
+        )
     write_atomic(args.out, outcome.release_bytes)
     crash_point("site:after-send")  # inert unless MSV_CRASH_AT says so (crash-safety tests)
     record_sent(site, outcome.release_bytes, "file", args.out)

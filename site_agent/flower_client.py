@@ -1,7 +1,8 @@
 """Flower ClientApp: a thin adapter from a Flower message to :func:`site_agent.runner.run_request`.
 
 The message carries the request and the bundle as bytes; the reply carries the signed release as bytes,
-or a refusal reason (one of the agent's own messages, never a record value or a stack trace).
+or a refusal reason: one of the fixed categories of docs/formats.md ("Refusals"), with the agent's own
+message only where it cannot depend on a record; never a path, an exception's type or text, or a value.
 
 Which site folder a node serves: ``node_config["site-dir"]`` in deployment
 (``flower-supernode --node-config 'site-dir="/srv/site"'``); in simulation the factory maps each virtual
@@ -38,10 +39,8 @@ def answer(message: Message, context: Context, site_dirs: Sequence[Path] | None 
     """Answer one validation request; every outcome is a normal reply the coordinator can record."""
     try:
         site = load_site(_site_dir(context, site_dirs))
-    except ValidationToolError as exc:
-        return _reply(message, {"status": "refused", "reason": str(exc), "site_id": ""})
-    except Exception as exc:  # the folder cannot even be read: say what kind of failure, nothing more
-        return _reply(message, {"status": "refused", "reason": f"internal error ({type(exc).__name__})", "site_id": ""})
+    except Exception:  # the site folder cannot be read: the site's IT sees why when it runs the agent locally
+        return _reply(message, {"status": "refused", "reason": "internal error at the site", "site_id": ""})
     try:
         record = message.content.config_records["request"]
         request_bytes, bundle_bytes = record["request"], record["bundle"]
@@ -51,19 +50,17 @@ def answer(message: Message, context: Context, site_dirs: Sequence[Path] | None 
         if compare_bytes is not None and not isinstance(compare_bytes, bytes):
             raise ValidationToolError("message: the comparison bundle must be bytes")
     except (KeyError, TypeError):
-        return _reply(message, {"status": "refused", "reason": "message: no request in it", "site_id": site.site_id})
+        reason = "request not accepted: message: no request in it"
+        return _reply(message, {"status": "refused", "reason": reason, "site_id": site.site_id})
     except ValidationToolError as exc:
-        return _reply(message, {"status": "refused", "reason": str(exc), "site_id": site.site_id})
+        return _reply(message, {"status": "refused", "reason": f"request not accepted: {exc}", "site_id": site.site_id})
     try:
         outcome = run_request(site, request_bytes, bundle_bytes, compare_bundle_bytes=compare_bytes)
     except AwaitingApproval as exc:  # held at the site until a person approves it; nothing was sent
         return _reply(message, {"status": "held", "reason": str(exc), "site_id": site.site_id})
-    except ValidationToolError as exc:
-        return _reply(message, {"status": "refused", "reason": str(exc), "site_id": site.site_id})
-    except Exception as exc:  # recorded in the ledger by run_request; only the type travels
-        return _reply(
-            message, {"status": "refused", "reason": f"internal error ({type(exc).__name__})", "site_id": site.site_id}
-        )
+    except Exception as exc:  # recorded in the ledger by run_request, which sets the line that may travel
+        reason = getattr(exc, "refusal", "internal error at the site")
+        return _reply(message, {"status": "refused", "reason": reason, "site_id": site.site_id})
     reply = _reply(message, {"status": "released", "release": outcome.release_bytes, "site_id": site.site_id})
     record_sent(site, outcome.release_bytes, "flower")  # handed to the node for delivery
     return reply

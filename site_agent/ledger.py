@@ -8,7 +8,9 @@ it records is sent, so a crash between the two leaves an entry that says what wa
 Events:
 
 ``request_received``  a request arrived (its SHA-256 and the bundle's)
-``refusal``           the request was refused (the reason, as it was sent back)
+``refusal``           the request was refused: ``reason`` as it was sent back (a fixed category, see
+                      docs/formats.md), ``detail`` the site's own message, ``study_id``/``request_id`` once the
+                      request's signature verified (such a refusal counts against the policy's caps)
 ``held``              a release was prepared and held for a person's approval (full text, audit facts, review;
                       ``preview`` in ledgers written before this name was settled, read alike)
 ``approval``          a person approved a held release (who, when, the SHA-256 they approved)
@@ -238,6 +240,29 @@ def answered_for_study(path: Path, study_id: str | None) -> list[dict[str, Any]]
             continue
         answered.setdefault(digest, details)
     return list(answered.values())
+
+
+def counted_requests(path: Path, study_id: str | None) -> dict[str, dict[str, Any]]:
+    """Requests that count against the policy's caps, by request SHA-256 (or release SHA-256 where a ledger
+    entry names no request): answered (released, or held and not rejected) and refused after the request's
+    signature verified (except refusals by the caps themselves). ``study_id=None`` gives every study's.
+
+    A refusal counts like an answer because a refusal is an answer too: a model built to fail on some records
+    would otherwise ask the data yes/no questions for free.
+    """
+    counted: dict[str, dict[str, Any]] = {}
+    for details in answered_for_study(path, study_id):
+        counted.setdefault(str(details.get("request_sha256") or details.get("release_sha256")), details)
+    for entry in read_entries(path):
+        details = entry.get("details", {})
+        if entry.get("event") != "refusal" or not details.get("study_id"):
+            continue
+        if str(details.get("reason", "")).startswith("limit reached"):  # the cap itself answered: nothing to add
+            continue
+        if study_id is not None and details.get("study_id") != study_id:
+            continue
+        counted.setdefault(str(details.get("request_sha256")), details)
+    return counted
 
 
 def facts_for_study(path: Path, study_id: str) -> list[ReleaseFacts]:

@@ -16,6 +16,7 @@ from typing import Any
 
 from federation.protocol import (
     Bundle,
+    BundleError,
     ConfusionTable,
     PolicyViolation,
     Release,
@@ -27,6 +28,7 @@ from federation.protocol import (
 )
 from federation.protocol.cli_support import write_atomic
 from federation.protocol.crashpoints import crash_point
+from federation.protocol.errors import LimitReached, ModelNotApproved, ScoringError
 
 from . import approval, ledger
 from .analyses import Flow, build_analyses, collect_counts, combined_schema, tabulate
@@ -43,11 +45,60 @@ from .sources import SourceSpec
 class Outcome:
     release: Release
     release_bytes: bytes
+    resent_at: str = ""  # set when this is a release recorded earlier, handed over again (nothing recomputed)
+
+
+class InternalError(ValidationToolError):
+    """An unexpected failure inside the agent; only its type is named (its text could hold a value)."""
+
+    exit_code = 2
+
+
+def refusal_reason(exc: BaseException, phase: str) -> tuple[str, str]:
+    """(the line that travels to the coordinator, the line for the site's own terminal and ledger).
+
+    The travelling line starts with one of ``REFUSAL_CATEGORIES`` (federation/protocol/errors.py). Our own
+    message follows only when it was decided before any record was read (it then depends on the request,
+    the bundle and the policy alone) or by the disclosure audit (which names an analysis and a rule, never a
+    count). After records were read, a data or scoring failure travels as its category alone, the same
+    whatever the record. ``phase``: ``verify`` (request, bundle, policy), ``model`` (static checks of the
+    analyses and the model), ``setup`` (the mapping and the source), ``records`` (reading and scoring),
+    ``disclosure`` (suppression and the audit).
+    """
+    local = str(exc) if isinstance(exc, ValidationToolError) else f"internal error at the site ({type(exc).__name__})"
+    if not isinstance(exc, ValidationToolError):
+        return "internal error at the site", local
+    if isinstance(exc, ScoringError):
+        return "scoring failed", local
+    if isinstance(exc, LimitReached):
+        return f"limit reached: {exc}", local
+    if isinstance(exc, ModelNotApproved):
+        return "model not approved by the site: it has not approved this model bundle yet", local
+    if phase in ("verify", "model"):
+        if isinstance(exc, BundleError):
+            return f"bundle not accepted: {exc}", local
+        if isinstance(exc, PolicyViolation):
+            return f"request not accepted by the site's policy: {exc}", local
+        return f"request not accepted: {exc}", local
+    if phase == "disclosure" and isinstance(exc, PolicyViolation):
+        return f"release withheld by the site's disclosure control: {exc}", local
+    if phase in ("setup", "records"):
+        return "data could not be read", local
+    return "internal error at the site", local
 
 
 def check_request(site: Site, request_bytes: bytes, bundle_bytes: bytes) -> tuple[Request, Bundle]:
     """Verify signatures, the bundle hash and the site policy; raise on any refusal."""
     request = Request.from_bytes(request_bytes, site.trusted, "request")
+    return request, check_policy(site, request, request_bytes, bundle_bytes)
+
+
+def check_policy(site: Site, request: Request, request_bytes: bytes, bundle_bytes: bytes) -> Bundle:
+    """The bundle and everything the policy says about a verified request, before any record is read.
+
+    Every request that was verified and then refused counts against the caps like an answered one (one per
+    distinct request, by SHA-256): a model that fails on some records cannot ask yes/no questions for free.
+    """
     bundle = load_bundle(bundle_bytes, site.trusted, "bundle")
     if bundle.sha256 != request.bundle_sha256:
         raise PolicyViolation("bundle: its SHA-256 is not the one the request names")
@@ -60,16 +111,25 @@ def check_request(site: Site, request_bytes: bytes, bundle_bytes: bytes) -> tupl
                     f"request: subgroup variable {subgroup.variable!r} is not allowed by this site's policy "
                     "(allowed_subgroups)"
                 )
-    earlier = ledger.answered_for_study(site.ledger_path, request.study_id)  # released, or held and not rejected
-    if any(r.get("request_id") == request.request_id for r in earlier):
+    answered = ledger.answered_for_study(site.ledger_path, request.study_id)  # released, or held and not rejected
+    if any(r.get("request_id") == request.request_id for r in answered):
         raise PolicyViolation("request: this request id was already answered (a replay or duplicate)")
-    if len(earlier) >= site.policy.max_requests_per_study:
-        raise PolicyViolation("request: the site's maximum number of requests for this study is reached")
-    if not earlier:  # a new study: the audit starts a new scope, so the number of scopes is capped site-wide
-        studies = {r.get("study_id") for r in ledger.answered_for_study(site.ledger_path, None)}
-        if len(studies) >= site.policy.max_studies:
-            raise PolicyViolation("request: the site's maximum number of studies is reached (policy max_studies)")
-    return request, bundle
+    digest = sha256_hex(request_bytes)
+    counted = ledger.counted_requests(site.ledger_path, None)
+    if digest not in counted:  # the same bytes asked again (e.g. after the site fixed its mapping) count once
+        in_study = [c for c in counted.values() if c.get("study_id") == request.study_id]
+        if len(in_study) >= site.policy.max_requests_per_study:
+            raise LimitReached(
+                "request: the site's maximum number of requests for this study is reached (policy "
+                "max_requests_per_study; refused requests count too)"
+            )
+        studies = {c.get("study_id") for c in counted.values()}
+        if request.study_id not in studies and len(studies) >= site.policy.max_studies:
+            raise LimitReached(
+                "request: the site's maximum number of studies is reached (policy max_studies; refused requests "
+                "count too)"
+            )
+    return bundle
 
 
 def check_compare_bundle(site: Site, request: Request, compare_bundle_bytes: bytes | None) -> Bundle | None:
@@ -108,20 +168,20 @@ def run_request(
         "request_received",
         {"request_sha256": sha256_hex(request_bytes), "bundle_sha256": sha256_hex(bundle_bytes)},
     )
-    holder: dict[str, Any] = {}
+    holder: dict[str, Any] = {"phase": "verify"}
+    request: Request | None = None
     try:
+        request = Request.from_bytes(request_bytes, site.trusted, "request")
         held = approval.held_for_request(site, sha256_hex(request_bytes))
         if held is not None:  # asked before and held for approval: answer with exactly the reviewed bytes
-            Request.from_bytes(request_bytes, site.trusted, "request")
             data = approval.hand_over(site, held)
             return Outcome(Release.from_bytes(data, "release"), data)
         answered = recorded_release(site, sha256_hex(request_bytes))
         if answered is not None:  # the same bytes asked again (a lost reply): the recorded release, not a new one
-            Request.from_bytes(request_bytes, site.trusted, "request")
             copy = site.releases_dir / f"{answered.release.study_id}-{answered.release.request_id}.json"
             write_atomic(copy, answered.release_bytes)  # restores the site's copy if a crash came first
             return answered
-        request, bundle = check_request(site, request_bytes, bundle_bytes)
+        bundle = check_policy(site, request, request_bytes, bundle_bytes)
         compare = check_compare_bundle(site, request, compare_bundle_bytes)
         release, facts = _compute(
             site, request, bundle, data_path, mapping_path or site.mapping_path, chunk_rows, compare, holder, progress
@@ -129,16 +189,19 @@ def run_request(
     except AwaitingApproval:
         raise
     except Exception as exc:
-        # Only our own messages (which never hold record values) are recorded and may travel; anything
-        # unexpected is named by its type alone.
-        reason = str(exc) if isinstance(exc, ValidationToolError) else f"internal error ({type(exc).__name__})"
-        ledger.append(
-            site.ledger_path,
-            private_key,
-            "refusal",
-            {"request_sha256": sha256_hex(request_bytes), "reason": reason, "error": type(exc).__name__},
-        )
-        raise
+        # What travels is a fixed category (with our own message only where it cannot depend on a record);
+        # the site's ledger and terminal get our message, or an unexpected error's type alone.
+        sent, local = refusal_reason(exc, holder["phase"])
+        details = {"request_sha256": sha256_hex(request_bytes), "reason": sent, "error": type(exc).__name__}
+        if local != sent:
+            details["detail"] = local
+        if request is not None:  # a verified request: the refusal counts against the policy's caps
+            details.update(study_id=request.study_id, request_id=request.request_id)
+        ledger.append(site.ledger_path, private_key, "refusal", details)
+        if not isinstance(exc, ValidationToolError):
+            exc = InternalError(f"{local}; the request was refused and the refusal recorded in the ledger")
+        exc.refusal = sent  # type: ignore[attr-defined]  # read by the Flower adapter and the CLI
+        raise exc from None
     release_bytes = release.signed_bytes(private_key)
     signed = Release.from_bytes(release_bytes, "release")
     if site.policy.require_approval:
@@ -179,7 +242,7 @@ def recorded_release(site: Site, request_sha256: str) -> Outcome | None:
             data = details["release"].encode("utf-8")
             if sha256_hex(data) != details.get("release_sha256"):
                 raise PolicyViolation("ledger: the recorded release does not match its SHA-256 (run ledger verify)")
-            return Outcome(Release.from_bytes(data, "recorded release"), data)
+            return Outcome(Release.from_bytes(data, "recorded release"), data, str(entry.get("time", "")))
     return None
 
 
@@ -223,20 +286,29 @@ def _compute(
     holder: dict[str, Any] | None = None,
     progress: Callable[[int], None] | None = None,
 ) -> tuple[Release, dict[str, Any]]:
-    """Return the unsigned release and the audit facts (definitions of what it shows and hides)."""
-    source = data if isinstance(data, SourceSpec) else site.source(data)
+    """Return the unsigned release and the audit facts (definitions of what it shows and hides).
+
+    Everything that can refuse without reading a record comes first (the models' static checks, the
+    analyses, the mapping), so that such a refusal cannot depend on the data. ``holder["phase"]`` says how
+    far it got (see :func:`refusal_reason`).
+    """
+    holder = {} if holder is None else holder
+    holder["phase"] = "model"
     schema = combined_schema(bundle.schema, compare.schema if compare else None)
-    mapping = load_mapping(mapping_path, schema) if mapping_path else default_mapping(schema)
     scorer = make_scorer(bundle)
-    flow = Flow(exclusion_reasons(mapping))
-    analyses = build_analyses(request.analyses, bundle, compare)
     pair = (compare, make_scorer(compare)) if compare is not None else None
+    analyses = build_analyses(request.analyses, bundle, compare)
+    holder["phase"] = "setup"
+    source = data if isinstance(data, SourceSpec) else site.source(data)
+    mapping = load_mapping(mapping_path, schema) if mapping_path else default_mapping(schema)
+    flow = Flow(exclusion_reasons(mapping))
+    holder["phase"] = "records"
     tabulate(source, mapping, bundle, scorer, flow, analyses, chunk_rows, pair, progress)
+    holder["phase"] = "disclosure"
     counts = collect_counts(flow, analyses, site.policy)
     earlier = ledger.facts_for_study(site.ledger_path, request.study_id)
     protected = protect(counts, site.policy, earlier, bundle.sha256, request.request_id)
-    if holder is not None:
-        holder.update(counts=counts, protected=protected)
+    holder.update(counts=counts, protected=protected)
     results = {a.name: a.render(protected.released, protected.derived) for a in analyses}
     release = Release(
         study_id=request.study_id,

@@ -47,3 +47,36 @@ class IngestError(ValidationToolError):
     """The coordinator refuses a release (unknown site, unknown request, duplicate, mismatch)."""
 
     exit_code = 2
+
+
+class ScoringError(ValidationToolError):
+    """Scoring the site's records failed, or a score was not a finite number in the model's range.
+
+    Its message is fixed: which record failed, and how, could tell something about the records.
+    """
+
+    exit_code = 2
+
+
+class LimitReached(PolicyViolation):
+    """A cap of the site's policy (requests per study, studies) is reached."""
+
+
+class ModelNotApproved(PolicyViolation):
+    """The site's policy asks for its own approval of each model bundle, and this one has none yet."""
+
+
+# What travels to the coordinator when a site refuses a request: one of these, and, only for a refusal made
+# before any record was read (or by the disclosure audit, which names an analysis and a rule), our own
+# one-line message after a colon. See docs/formats.md, "Refusals".
+REFUSAL_CATEGORIES = (
+    "request not accepted",
+    "bundle not accepted",
+    "request not accepted by the site's policy",
+    "limit reached",
+    "model not approved by the site",
+    "data could not be read",
+    "scoring failed",
+    "release withheld by the site's disclosure control",
+    "internal error at the site",
+)

@@ -1,8 +1,15 @@
 """Running a frozen model: ONNX through onnxruntime, or a transparent JSON scorecard.
 
 Both take the model-input matrix (float32, one column per schema feature, categories as 0-based codes)
-and return one score per row. Only standard ONNX operator domains are accepted; no custom-op library is
-ever registered, and the session runs single-threaded with graph optimisation limited to the basics.
+and return one score per row. An ONNX graph passes the static check of :mod:`.model_check` (an operator
+allowlist that proves each record's score depends on that record alone) when the scorer is made, before any
+record is read; onnxruntime then runs only the part of the graph the score needs, single-threaded, with
+graph optimisation limited to the basics, no custom-op library, and its own log silenced (its messages can
+quote a tensor's values, which are a record's values).
+
+A failure while scoring, or a score that is not a finite number in the model's range ([0, 1] for a
+probability, the attainable range of a points scorecard), raises :class:`ScoringError` with one fixed message,
+whatever the record: what went wrong for which record never leaves this module.
 """
 
 from __future__ import annotations
@@ -15,68 +22,78 @@ from typing import Any, Protocol
 import numpy as np
 
 from .bundle import Bundle
-from .errors import BundleError
+from .errors import BundleError, ScoringError
+from .model_check import ALLOWED_DOMAINS, check_onnx
 from .schema import Schema
 
-ALLOWED_ONNX_DOMAINS = frozenset({"", "ai.onnx", "ai.onnx.ml"})
+ALLOWED_ONNX_DOMAINS = ALLOWED_DOMAINS
+SCORING_FAILED = (
+    "scoring failed: the model did not give every record a finite score in its range; the whole request is "
+    "refused (which record, and the runtime's message, are not shown: they can hold a record's values)"
+)
 
 
 class Scorer(Protocol):
+    low: float
+    high: float
+
     def score(self, inputs: np.ndarray) -> np.ndarray: ...
 
 
 def make_scorer(bundle: Bundle) -> Scorer:
+    """The bundle's model, checked statically (no record is read here)."""
     if bundle.manifest.model_format == "onnx":
         return OnnxScorer(bundle.model_bytes, len(bundle.schema.features))
     return Scorecard.from_json(bundle.model_bytes, bundle.schema)
 
 
+def checked_scores(scores: np.ndarray, rows: int, low: float, high: float) -> np.ndarray:
+    """``scores`` if it holds one finite number in [low, high] per row; else ScoringError (fixed message)."""
+    if scores.shape != (rows,) or not np.isfinite(scores).all() or (scores < low).any() or (scores > high).any():
+        raise ScoringError(SCORING_FAILED)
+    return scores
+
+
 class OnnxScorer:
     """Score with onnxruntime; the positive-class probability (column 1) is the score."""
 
+    low, high = 0.0, 1.0
+
     def __init__(self, model_bytes: bytes, n_features: int) -> None:
-        import onnx
         import onnxruntime
 
-        try:
-            model = onnx.load_model_from_string(model_bytes)
-        except Exception:  # onnx raises several types for malformed protobuf
-            raise BundleError("model part is not a readable ONNX model") from None
-        domains = {node.domain for node in model.graph.node}
-        domains |= {op.domain for op in model.opset_import}
-        unsupported = sorted(d for d in domains if d not in ALLOWED_ONNX_DOMAINS)
-        if unsupported:
-            raise BundleError(f"ONNX model uses unsupported operator domain {unsupported[0]!r}")
+        checked = check_onnx(model_bytes, n_features)  # BundleError before any record is read
+        self.operators = checked.operators
         options = onnxruntime.SessionOptions()
         options.intra_op_num_threads = 1
         options.inter_op_num_threads = 1
         options.graph_optimization_level = onnxruntime.GraphOptimizationLevel.ORT_ENABLE_BASIC
+        options.log_severity_level = 4  # fatal only: a kernel's error message can print a tensor's values
         try:
             self._session = onnxruntime.InferenceSession(
-                model_bytes, sess_options=options, providers=["CPUExecutionProvider"]
+                checked.model_bytes, sess_options=options, providers=["CPUExecutionProvider"]
             )
         except Exception:
             raise BundleError("onnxruntime cannot load the model (unsupported operator or graph)") from None
-        inputs = self._session.get_inputs()
-        if len(inputs) != 1:
-            raise BundleError("ONNX model must have exactly one input (float32 [N, n_features])")
-        self._input = inputs[0].name
-        width = inputs[0].shape[-1] if inputs[0].shape else None
-        if isinstance(width, int) and width != n_features:
-            raise BundleError(f"ONNX model expects {width} inputs but the schema has {n_features}")
-        outputs = [o.name for o in self._session.get_outputs()]
-        self._output = "probabilities" if "probabilities" in outputs else outputs[min(1, len(outputs) - 1)]
+        self._input = self._session.get_inputs()[0].name
+        self._output = checked.output
+        self._run_options = onnxruntime.RunOptions()
+        self._run_options.log_severity_level = 4
 
     def score(self, inputs: np.ndarray) -> np.ndarray:
-        if inputs.shape[0] == 0:
+        rows = inputs.shape[0]
+        if rows == 0:
             return np.zeros(0)
-        (out,) = self._session.run([self._output], {self._input: inputs.astype(np.float32, copy=False)})
-        if isinstance(out, list):  # ZipMap output: list of {label: prob}
-            out = np.array([[row.get(0, 0.0), row.get(1, 0.0)] for row in out])
-        out = np.asarray(out, dtype=np.float64)
-        if out.ndim != 2 or out.shape[1] < 2:
-            raise BundleError("ONNX model output is not a [N, 2] probability table")
-        return out[:, 1]
+        try:
+            (out,) = self._session.run(
+                [self._output], {self._input: inputs.astype(np.float32, copy=False)}, self._run_options
+            )
+            out = np.asarray(out, dtype=np.float64)
+        except Exception:  # onnxruntime's message may quote record values: it is dropped here, whole
+            raise ScoringError(SCORING_FAILED) from None
+        if out.shape != (rows, 2):
+            raise ScoringError(SCORING_FAILED)
+        return checked_scores(out[:, 1], rows, self.low, self.high)
 
 
 @dataclass(frozen=True)
@@ -87,6 +104,8 @@ class Scorecard:
     intercept: float
     lookups: tuple[dict[int, float] | None, ...]  # per feature: code/int value -> points
     weights: np.ndarray
+    low: float = -math.inf  # the attainable range of the score over the schema's domains
+    high: float = math.inf
 
     @classmethod
     def from_json(cls, data: bytes, schema: Schema) -> Scorecard:
@@ -118,17 +137,47 @@ class Scorecard:
         weight_vector = np.array(
             [_finite(weights.get(f.name, 0), f"scorecard.weights.{f.name}") for f in schema.features]
         )
-        return cls(kind, intercept, tuple(lookups), weight_vector)
+        low, high = _attainable(intercept, lookups, weight_vector, schema)
+        if kind == "logistic":
+            low, high = 0.0, 1.0
+        return cls(kind, intercept, tuple(lookups), weight_vector, low, high)
 
     def score(self, inputs: np.ndarray) -> np.ndarray:
         x = inputs.astype(np.float64, copy=False)
-        total = np.full(x.shape[0], self.intercept) + x @ self.weights
-        for column, table in enumerate(self.lookups):
-            if table is not None:
-                total += _points(x[:, column], table)
-        if self.kind == "logistic":
-            return 1.0 / (1.0 + np.exp(-total))
-        return total
+        with np.errstate(over="ignore", invalid="ignore"):
+            total = np.full(x.shape[0], self.intercept) + x @ self.weights
+            for column, table in enumerate(self.lookups):
+                if table is not None:
+                    total += _points(x[:, column], table)
+            if self.kind == "logistic":
+                total = 1.0 / (1.0 + np.exp(-total))
+        return checked_scores(total, x.shape[0], self.low, self.high)
+
+
+def _attainable(
+    intercept: float, lookups: list[dict[int, float] | None], weights: np.ndarray, schema: Schema
+) -> tuple[float, float]:
+    """Bounds of a points score over the schema's domains (a record outside them is excluded before scoring).
+
+    Per feature, weight x value ranges over the feature's [min, max] (its codes for a category, its
+    ``missing`` value included) and the points over the table's values and 0; the sum of the bounds contains
+    every attainable score. A feature with a weight and no bound leaves that side open.
+    """
+    low = high = intercept
+    for feature, table, weight in zip(schema.features, lookups, weights, strict=True):
+        if feature.categories:
+            lo_x, hi_x = 0.0, float(len(feature.categories) - 1)
+        else:
+            lo_x = -math.inf if feature.minimum is None else feature.minimum
+            hi_x = math.inf if feature.maximum is None else feature.maximum
+            if isinstance(feature.missing_value, (int, float)):
+                lo_x, hi_x = min(lo_x, feature.missing_value), max(hi_x, feature.missing_value)
+        if weight:
+            ends = [weight * lo_x, weight * hi_x]
+            low, high = low + min(ends), high + max(ends)
+        if table:
+            low, high = low + min(0.0, *table.values()), high + max(0.0, *table.values())
+    return low, high
 
 
 def _points(values: np.ndarray, table: dict[int, float]) -> np.ndarray:
