@@ -141,7 +141,8 @@ def test_oversized_request_is_refused_before_parsing(coordinator: Coordinator, t
     with pytest.raises(DocumentError, match="larger than 8 MiB"):
         run_request(site, huge, coordinator.demo.bundle_bytes)
     assert time.perf_counter() - start < 2.0
-    assert ledger.read_entries(site.ledger_path)[-1]["details"]["reason"] == "request not accepted: request: larger than 8 MiB"
+    reason = ledger.read_entries(site.ledger_path)[-1]["details"]["reason"]
+    assert reason == "request not accepted: request: larger than 8 MiB"
 
 
 @pytest.mark.parametrize("depth", [1_000, 100_000])

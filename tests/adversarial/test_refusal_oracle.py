@@ -141,7 +141,7 @@ class Attacker:
 
 def make_site(attacker: Attacker, root: Path, **policy: object) -> Path:
     site = root / "site"
-    assert site_agent(["init", "--site-id", "clinic-x", "--trust", str(attacker.pub), "--out", str(site)]) == 0
+    assert site_agent(["init", "--site-id", "clinic-x", "--trust", str(attacker.pub), "--site-dir", str(site)]) == 0
     text = (site / "site.toml").read_text()
     for name, value in policy.items():
         line = next(line for line in text.splitlines() if line.startswith(f"{name} ="))
@@ -153,7 +153,7 @@ def make_site(attacker: Attacker, root: Path, **policy: object) -> Path:
 def run(site: Path, request: Path, bundle: Path, data: Path, capsys: pytest.CaptureFixture) -> tuple[int, str]:
     out = site.parent / f"release-{uuid.uuid4().hex[:8]}.json"
     code = site_agent(
-        ["run", "--site", str(site), "--request", str(request), "--bundle", str(bundle), "--data", str(data)]
+        ["run", "--site-dir", str(site), "--request", str(request), "--bundle", str(bundle), "--data", str(data)]
         + ["--out", str(out)]
     )
     captured = capsys.readouterr()
