@@ -230,38 +230,62 @@ def _fmt(value: dict | None) -> str:
     return f"{value['estimate']:.3f} ({value['ci_low']:.3f}–{value['ci_high']:.3f})"
 
 
+WITHHELD_MARK = "·"
+WITHHELD_LEGEND = "· withheld by the site's disclosure control"
+NOT_DEFINED_LEGEND = "— not defined (no participant, or a count it needs was withheld)"
+
+
 def format_table(result: dict) -> str:
+    """The per-site accuracy table, its columns grouped by the reference standard as the report's flow boxes
+    are: with the condition (screen +, screen −), without the condition (screen +, screen −), then
+    sensitivity and specificity."""
     lines = [f"Study {result['study_id']}", ""]
+    counts = 10
+    group = f"{'':<24}{'with the condition':^{2 * counts}}  {'without the condition':^{2 * counts}}"
     header = (
-        f"{'site':<24}{'TP':>6}{'FP':>6}{'FN':>6}{'TN':>7}  {'sensitivity (95% CI)':<24}{'specificity (95% CI)':<24}"
+        f"{'site':<24}{'screen +':>{counts}}{'screen −':>{counts}}  {'screen +':>{counts}}{'screen −':>{counts}}"
+        f"  {'sensitivity (95% CI)':<24}{'specificity (95% CI)':<24}"
     )
-    lines += [header, "-" * len(header)]
+    lines += [group, header, "-" * len(header)]
+    shown_withheld = False
+    width = 24 + 4 * counts + 4
     for site in result["sites"]:
-        cells = "".join(
-            f"{('·' if site[c] is None else site[c]):>{6 if c != 'tn' else 7}}" for c in ("tp", "fp", "fn", "tn")
+        cells = []
+        for pair in (("tp", "fn"), ("fp", "tn")):
+            shown = "".join(f"{(WITHHELD_MARK if site[c] is None else site[c]):>{counts}}" for c in pair)
+            cells.append(shown)
+        shown_withheld = shown_withheld or any(site[c] is None for c in ("tp", "fn", "fp", "tn"))
+        lines.append(
+            f"{site['site_id']:<24}{'  '.join(cells)}  {_fmt(site['sensitivity']):<24}{_fmt(site['specificity']):<24}"
         )
-        lines.append(f"{site['site_id']:<24}{cells}  {_fmt(site['sensitivity']):<24}{_fmt(site['specificity']):<24}")
     pooled = result["pooled"]
     lines.append("-" * len(header))
-    lines.append(f"{'pooled (random effects)':<49}{_fmt(pooled['sensitivity']):<24}{_fmt(pooled['specificity']):<24}")
+    label = "pooled (random effects)"
+    lines.append(f"{label:<{width}}{_fmt(pooled['sensitivity']):<24}{_fmt(pooled['specificity']):<24}")
     aware = pooled.get("bivariate_glmm_suppression_aware") or {}
     if aware.get("sensitivity"):
-        label = f"suppression-aware ({len(aware.get('sites_pooled', []))} sites)"
-        lines.append(f"{label:<49}{_fmt(aware['sensitivity']):<24}{_fmt(aware['specificity']):<24}")
+        label = f"withheld cells kept in ({len(aware.get('sites_pooled', []))} sites)"
+        lines.append(f"{label:<{width}}{_fmt(aware['sensitivity']):<24}{_fmt(aware['specificity']):<24}")
     if pooled.get("sensitivity"):
         parts = [
-            f"tau² logit {name[:4]} {pooled[f'tau2_logit_{name}']:.3f}, I² {100 * pooled[f'i2_logit_{name}']:.1f}%"
+            f"tau² logit {name} {pooled[f'tau2_logit_{name}']:.3f}, I² {100 * pooled[f'i2_logit_{name}']:.1f}%"
             for name in ("sensitivity", "specificity")
         ]
-        lines.append("heterogeneity: " + "; ".join(parts))
+        lines.append("between-site variation: " + "; ".join(parts))
     else:
         lines.append(pooled.get("note", ""))
     for entry in pooled["sites_not_pooled"]:
         lines.append(f"not pooled: {entry['site_id']} ({entry['reason']})")
-    lines.append("· = suppressed by the site's minimum cell size")
+    legend = [WITHHELD_LEGEND] if shown_withheld else []
+    if any(site.get(m) is None for site in result["sites"] for m in ("sensitivity", "specificity")):
+        legend.append(NOT_DEFINED_LEGEND)
+    lines += legend
     if aware.get("sensitivity"):
-        lines.append("suppression-aware: exact binomial model in which a suppressed cell counts as lying in 1..k-1")
-    return "\n".join(lines)
+        lines.append(
+            "withheld cells kept in: a binomial model in which each withheld count lies somewhere in the range "
+            "the site's rules allow"
+        )
+    return "\n".join(line.rstrip() for line in lines)
 
 
 def cmd_report(args: argparse.Namespace) -> int:

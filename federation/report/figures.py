@@ -48,6 +48,7 @@ def humanise(path: tuple) -> str:
         "likelihood_ratio_positive": "positive likelihood ratio",
         "likelihood_ratio_negative": "negative likelihood ratio",
         "auc": "AUC",
+        "area_under_curve": "AUC of the summary ROC curve, over false-positive rates from 0 to 1",
         "citl": "calibration-in-the-large",
         "roc": "ROC",
         "auc_model": "AUC (this model)",
@@ -213,8 +214,9 @@ def interval_forest(
         f"<strong>{esc(title)}.</strong> Squares: each site's estimate with its 95% {interval}"
         + ("; area proportional to the participants behind it; grey: not in the pool. " if accuracy else ". ")
         + (
-            "Diamond: pooled estimate and its 95% confidence interval; red bar: 95% prediction interval for a new "
-            "site, where the analysis gives one."
+            "Black diamond: pooled estimate, its width the 95% confidence interval; the vermilion bar with end "
+            "ticks beneath it, labelled \u201c95% prediction interval\u201d: where a new site's value would be "
+            "expected to fall, where the analysis gives one."
             if summary
             else "No diamond: "
             + ("the analysis gives no pooled estimate (see the Summary for why)." if accuracy else f"{reason}.")

@@ -68,10 +68,10 @@ def _card(site: dict[str, Any]) -> str:
         f'<div class="box side">Excluded {total}{lines}</div><div class="arrow">↓</div>'
         f'<div class="box">Analysed (screen and reference standard)<br><b>{_count(flow.get("analysed"))}</b></div>'
         '<div class="split">'
-        f'<div><div class="arrow">↓</div><div class="box">Condition present<br><b>'
+        f'<div><div class="arrow">↓</div><div class="box">With the condition<br><b>'
         f"{_count(flow.get('analysed_positive'))}</b></div>"
         + leaf.format(a=_count(site.get("tp")), b=_count(site.get("fn")))
-        + f'</div><div><div class="arrow">↓</div><div class="box">Condition absent<br><b>'
+        + f'</div><div><div class="arrow">↓</div><div class="box">Without the condition<br><b>'
         f"{_count(flow.get('analysed_negative'))}</b></div>"
         + leaf.format(a=_count(site.get("fp")), b=_count(site.get("tn")))
         + "</div></div></div>"
@@ -82,14 +82,22 @@ def flow_rows(sites: list[dict[str, Any]]) -> tuple[list[str], list[list[Any]]]:
     """Header and raw rows (None = suppressed) of the flow table, one row per site."""
     reasons = _reasons(sites)
     header = ["site", "read", *(f"excluded: {_reason_label(r, short=True)}" for r in reasons), "analysed"]
-    header += ["with condition", "without condition", "TP", "FN", "FP", "TN", "threshold"]
+    header += [
+        "with the condition",
+        "with the condition: screen +",
+        "with the condition: screen −",
+        "without the condition",
+        "without the condition: screen +",
+        "without the condition: screen −",
+        "threshold",
+    ]
     rows = []
     for site in sites:
         flow = site.get("flow") or {}
         excluded = flow.get("excluded") or {}
         row = [site["site_id"], flow.get("read"), *(excluded.get(r) for r in reasons), flow.get("analysed")]
-        row += [flow.get("analysed_positive"), flow.get("analysed_negative"), site.get("tp"), site.get("fn")]
-        row += [site.get("fp"), site.get("tn"), site.get("threshold")]
+        row += [flow.get("analysed_positive"), site.get("tp"), site.get("fn")]
+        row += [flow.get("analysed_negative"), site.get("fp"), site.get("tn"), site.get("threshold")]
         rows.append(row)
     return header, rows
 

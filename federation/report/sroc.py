@@ -92,8 +92,10 @@ def sroc_figures(analysis: dict[str, Any], details: Callable[[tuple, dict[str, A
         rows += [["SROC curve", "", x, y, ""] for x, y in data.curve]
         caption = (
             f"<strong>Summary ROC, {esc(humanise(path[-1:]))}.</strong> {esc(str(value.get('method', '')))}. "
-            "Circles: sites with a fully released table (area proportional to participants); diamond: summary "
-            "point; dashed blue: 95% confidence region; dotted red: 95% prediction region; solid black: SROC curve "
+            "Open orange circles: sites with a fully released table (area proportional to participants); black "
+            "diamond: summary point; dashed blue line: 95% confidence region of the summary point; dotted vermilion "
+            "line: 95% prediction region, where a new site's pair would be expected to fall; solid black curve: "
+            "summary ROC curve "
             f"(<code>{esc('.'.join(map(str, path)))}</code> in the analysis JSON)."
         )
         parts.append(

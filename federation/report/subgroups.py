@@ -15,12 +15,22 @@ __all__ = ["subgroup_forests"]
 _BACK = {"logit": lambda v: 1 / (1 + math.exp(-v)), "log": math.exp, "identity": lambda v: v}
 
 
+def _between_sentence(between: dict[str, Any]) -> str:
+    """ "Difference between subgroups: F(1, 5) = 2.31, p = 0.19", or "" when the test is missing."""
+    statistic, p_value, df = number(between.get("statistic")), number(between.get("p")), between.get("df")
+    if statistic is None or p_value is None or not isinstance(df, list) or not df:
+        return ""
+    symbol = "F" if between.get("distribution") == "F" else "χ²"
+    degrees = ", ".join(str(d) for d in df)
+    return f"Difference between subgroups: {symbol}({degrees}) = {statistic:.2f}, p = {p_value:.2g}"
+
+
 def subgroup_forests(subgroups: Any) -> str:
     """One forest plot per subgroup variable and measure: the pooled estimate within each subgroup.
 
     Reads ``{variable: {measure: {"scale", "subgroups": [{"subgroup", "pooled": {estimate, ci_low, ci_high,
-    pi_low, pi_high}}], "difference": {"qm_pvalue"}}}}``; estimates on a logit or log scale are drawn back on the
-    proportion or ratio scale. Returns "" when nothing fits that shape.
+    pi_low, pi_high}}], "between_subgroups": {statistic, distribution, df, p}}}}``; estimates on a logit or log
+    scale are drawn back on the proportion or ratio scale. Returns "" when nothing fits that shape.
     """
     if not isinstance(subgroups, dict):
         return ""
@@ -61,9 +71,8 @@ def subgroup_forests(subgroups: Any) -> str:
                 csv_rows.append([label, est, low, high, sites])
             if not rows:
                 continue
-            difference = result.get("difference") if isinstance(result.get("difference"), dict) else {}
-            p_value = number(difference.get("qm_pvalue"))
-            test = f"test of subgroup difference p = {p_value:.3g}" if p_value is not None else ""
+            between = result.get("between_subgroups") if isinstance(result.get("between_subgroups"), dict) else {}
+            test = _between_sentence(between)
             name = humanise((str(measure),))
             title = f"{name[:1].upper()}{name[1:]} by {humanise((str(variable),))}"
             svg = forest_plot(
@@ -72,7 +81,7 @@ def subgroup_forests(subgroups: Any) -> str:
                 rows,
                 None,
                 salt=f"subgroup-{variable}-{measure}",
-                no_summary_reason=test or "no test of difference",
+                no_summary_reason=test or "Difference between subgroups: not estimable",
                 xlim=(0.0, 1.0) if percent else None,
                 percent=percent,
                 summary_label="Difference",

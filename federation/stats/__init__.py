@@ -18,7 +18,9 @@ from federation.stats.bivariate import (
     sroc_auc_grid,
 )
 from federation.stats.comparison import (
+    JointTest,
     MetaRegression,
+    ResidualHeterogeneity,
     SubgroupAnalysis,
     SubgroupEstimate,
     meta_regression,
@@ -69,7 +71,9 @@ __all__ = [
     "BivariateFit",
     "HSROCParameters",
     "Interval",
+    "JointTest",
     "MetaRegression",
+    "ResidualHeterogeneity",
     "PooledMeasure",
     "MultipleThresholdRoc",
     "OperatingPoint",

@@ -76,15 +76,13 @@ class HSROCParameters(ResultRecord):
 class SROCCurve(ResultRecord):
     """The HSROC summary ROC curve on a grid of false-positive rates, and its area.
 
-    ``auc`` integrates the curve over (0, 1) numerically; ``auc_grid`` is mada's grid rule (the
-    trapezoid sum over FPR = 0.01, ..., 0.99 divided by the number of grid points), kept so the value
-    can be compared with mada's printout.
+    ``area_under_curve`` is the area under the whole curve, over false-positive rates from 0 to 1,
+    integrated numerically (:func:`sroc_auc_grid` gives the coarser grid sum some published tables use).
     """
 
     false_positive_rate: tuple[float, ...]
     sensitivity: tuple[float, ...]
-    auc: float
-    auc_grid: float
+    area_under_curve: float
 
 
 @dataclass(frozen=True)
@@ -182,7 +180,9 @@ class BivariateFit(ResultRecord):
             f"correlation {rho}{fixed}",
         ]
         if self.sroc is not None:
-            lines.append(f"  SROC AUC {self.sroc.auc:.3f} (grid rule {self.sroc.auc_grid:.3f})")
+            lines.append(
+                f"  area under the SROC curve (false-positive rates 0 to 1) {self.sroc.area_under_curve:.3f}"
+            )
         lines.extend(f"  not pooled: {e.site_id} ({e.reason})" for e in self.sites_not_pooled)
         lines.extend(f"  note: {note}" for note in self.notes)
         return "\n".join(lines)
@@ -268,9 +268,7 @@ def sroc_auc_grid(sensitivity: ArrayLike) -> float:
 def _sroc(hsroc: HSROCParameters) -> SROCCurve:
     grid = np.array(SROC_GRID)
     sens = _sroc_sensitivity(hsroc, grid)
-    return SROCCurve(
-        tuple(float(x) for x in grid), tuple(float(x) for x in sens), _sroc_auc(hsroc), sroc_auc_grid(sens)
-    )
+    return SROCCurve(tuple(float(x) for x in grid), tuple(float(x) for x in sens), _sroc_auc(hsroc))
 
 
 def _sroc_auc(hsroc: HSROCParameters) -> float:

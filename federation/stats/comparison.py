@@ -1,9 +1,9 @@
 r"""Subgroups and comparisons: meta-regression, subgroup differences, and paired comparison of two models.
 
-- :func:`meta_regression`: mixed-effects meta-regression :math:`y_i = x_i^\top\beta + u_i + e_i`,
-  :math:`u_i \sim N(0, \tau^2)`, :math:`e_i \sim N(0, v_i)`, with REML (or DL) for :math:`\tau^2`, the
-  omnibus test of moderators :math:`Q_M` and the residual heterogeneity test :math:`Q_E` (metafor's
-  ``rma(yi, vi, mods = ...)``).
+- :func:`meta_regression`: meta-regression with a random site effect :math:`y_i = x_i^\top\beta + u_i + e_i`,
+  :math:`u_i \sim N(0, \tau^2)`, :math:`e_i \sim N(0, v_i)`, with REML (or DL) for :math:`\tau^2`, a joint
+  test that the moderators' coefficients are all zero and Cochran's Q of the residuals (checked against
+  the worked examples of Viechtbauer 2010).
 - :func:`subgroup_analysis`: a pooled estimate per subgroup, and the test of subgroup difference as a
   meta-regression on subgroup indicators (a common between-site variance).
 - :func:`paired_difference`: per site, the difference in sensitivity (or specificity) of two models read
@@ -50,28 +50,73 @@ _TOLERANCE = 1e-10
 _MAX_ITERATIONS = 1000
 
 
+HARTUNG_KNAPP = "hartung-knapp"
+WALD = "wald"
+_TEST_NAMES = {"z": WALD, "knha": HARTUNG_KNAPP, WALD: WALD, HARTUNG_KNAPP: HARTUNG_KNAPP}
+
+
+@dataclass(frozen=True)
+class JointTest(ResultRecord):
+    """A test that several coefficients are all zero (e.g. that the subgroups do not differ).
+
+    Attributes
+    ----------
+    statistic : float
+        The F statistic (Hartung–Knapp) or the chi-squared statistic (Wald).
+    distribution : str
+        ``"F"`` or ``"chi-squared"``: the reference distribution of ``statistic``.
+    df : tuple of int
+        Its degrees of freedom: (numerator, denominator) for F, one number for chi-squared.
+    p : float
+        The p-value.
+    """
+
+    statistic: float
+    distribution: str
+    df: tuple[int, ...]
+    p: float
+
+    def sentence(self, what: str) -> str:
+        """``what: F(1, 5) = 2.31, p = 0.19`` (the statistic with its degrees of freedom)."""
+        symbol = "F" if self.distribution == "F" else "χ²"
+        return f"{what}: {symbol}({', '.join(str(d) for d in self.df)}) = {self.statistic:.2f}, p = {self.p:.2g}"
+
+
+@dataclass(frozen=True)
+class ResidualHeterogeneity(ResultRecord):
+    """Cochran's Q of what the moderators leave unexplained, on ``df`` = k − p degrees of freedom."""
+
+    q: float
+    df: int
+    p: float
+
+    def sentence(self) -> str:
+        return f"Heterogeneity left unexplained: Q = {self.q:.2f} on {self.df} df, p = {self.p:.2g}"
+
+
 @dataclass(frozen=True)
 class MetaRegression(ResultRecord):
-    """A fitted mixed-effects meta-regression.
+    """A fitted meta-regression with a random site effect.
 
     Attributes
     ----------
     method : str
         ``"REML"`` or ``"DL"`` (estimator of the residual tau²).
     test : str
-        ``"z"`` (normal and chi-squared) or ``"knha"`` (Knapp–Hartung: t and F).
+        ``"wald"`` (normal and chi-squared) or ``"hartung-knapp"`` (Hartung–Knapp: t and F).
     names : tuple of str
         Coefficient names (the first is the intercept).
     coefficients, se, ci_low, ci_high, statistics, p_values : tuple of float
         Per coefficient.
     tau2 : float
         Residual between-study variance.
-    qm, qm_df, qm_pvalue : float, int, float
-        Omnibus test of every coefficient but the intercept (chi-squared, or F on (qm_df, k - p) with knha).
-    qe, qe_df, qe_pvalue : float, int, float
-        Test for residual heterogeneity.
+    moderators : JointTest
+        Test that every coefficient but the intercept is zero (chi-squared on m df, or F on (m, k − p) df
+        with Hartung–Knapp).
+    residual_heterogeneity : ResidualHeterogeneity
+        Cochran's Q of the residuals (weights 1/v) on k − p degrees of freedom.
     i2 : float
-        Residual I² (metafor's definition).
+        Residual I²: tau² / (tau² + the typical within-site variance).
     r2 : float or None
         Proportion of tau² accounted for, relative to the intercept-only model (``None`` if that tau² is 0).
     n_studies : int
@@ -88,30 +133,28 @@ class MetaRegression(ResultRecord):
     statistics: tuple[float, ...]
     p_values: tuple[float, ...]
     tau2: float
-    qm: float
-    qm_df: int
-    qm_pvalue: float
-    qe: float
-    qe_df: int
-    qe_pvalue: float
+    moderators: JointTest
+    residual_heterogeneity: ResidualHeterogeneity
     i2: float
     r2: float | None
     n_studies: int
     level: float = 0.95
 
     def summary(self) -> str:
-        kind = "F" if self.test == "knha" else "QM"
+        test = "Hartung–Knapp" if self.test == HARTUNG_KNAPP else "Wald"
+        explained = "not estimable: no between-site variance to explain" if self.r2 is None else f"{100 * self.r2:.0f}%"
         lines = [
-            f"Mixed-effects meta-regression ({self.method}, k = {self.n_studies}, test {self.test})",
-            f"  tau^2 {self.tau2:.4f}  I^2 {100 * self.i2:.2f}%  R^2 "
-            + ("undefined" if self.r2 is None else f"{100 * self.r2:.2f}%"),
-            f"  QE({self.qe_df}) = {self.qe:.4f}, p = {self.qe_pvalue:.4g}",
-            f"  {kind}({self.qm_df}) = {self.qm:.4f}, p = {self.qm_pvalue:.4g}",
+            f"Meta-regression over {self.n_studies} sites with a random site effect ({self.method} estimate of "
+            f"the between-site variance, {test} tests)",
+            f"  between-site variance left: tau² = {self.tau2:.4f} (I² {100 * self.i2:.0f}%); "
+            f"share of it the moderators explain: {explained}",
+            "  " + self.residual_heterogeneity.sentence(),
+            "  " + self.moderators.sentence("All moderators together"),
         ]
         for i, name in enumerate(self.names):
             lines.append(
                 f"  {name:<24} {self.coefficients[i]: .4f}  SE {self.se[i]:.4f}  "
-                f"({self.ci_low[i]:.4f}, {self.ci_high[i]:.4f})  p = {self.p_values[i]:.4g}"
+                f"({self.ci_low[i]:.4f} to {self.ci_high[i]:.4f})  p = {self.p_values[i]:.2g}"
             )
         return "\n".join(lines)
 
@@ -155,11 +198,11 @@ def meta_regression(
     moderators: ArrayLike,
     names: Sequence[str] | None = None,
     method: Literal["REML", "DL"] = "REML",
-    test: Literal["z", "knha"] = "z",
+    test: Literal["wald", "hartung-knapp", "z", "knha"] = "wald",
     level: float = 0.95,
     knha_truncation: bool = True,
 ) -> MetaRegression:
-    r"""Mixed-effects meta-regression with an intercept and the given moderators.
+    r"""Meta-regression with a random site effect, an intercept and the given moderators.
 
     Parameters
     ----------
@@ -170,11 +213,12 @@ def meta_regression(
     names : sequence of str, optional
         Names of the moderators (the intercept is ``"intercept"``).
     method : {"REML", "DL"}, default "REML"
-    test : {"z", "knha"}, default "z"
-        ``"knha"``: Knapp–Hartung adjustment, :math:`\mathrm{Var}(\hat\beta) = s^2 (X^\top W X)^{-1}` with
+    test : {"wald", "hartung-knapp"}, default "wald"
+        ``"wald"``: normal and chi-squared tests. ``"hartung-knapp"``: Hartung–Knapp adjustment,
+        :math:`\mathrm{Var}(\hat\beta) = s^2 (X^\top W X)^{-1}` with
         :math:`s^2 = \max\{1, \sum w_i (y_i - x_i^\top\hat\beta)^2 / (k - p)\}` (the ad hoc truncation of
-        Knapp & Hartung 2003, so the tests are never more liberal than ``"z"``'s variance; ``knha_truncation=False``
-        gives metafor's untruncated form), t and F tests.
+        Knapp & Hartung 2003, so the tests are never more liberal than the Wald variance; ``knha_truncation=False``
+        gives the untruncated form), t and F tests. ``"z"`` and ``"knha"`` are accepted as older spellings.
     level : float, default 0.95
 
     Returns
@@ -184,8 +228,9 @@ def meta_regression(
     Notes
     -----
     :math:`\hat\beta = (X^\top W X)^{-1} X^\top W y` with :math:`W = \mathrm{diag}\{1/(v_i + \hat\tau^2)\}`;
-    :math:`Q_M = \hat\beta_{(2)}^\top \mathrm{Var}(\hat\beta_{(2)})^{-1} \hat\beta_{(2)}` over the
-    non-intercept coefficients; :math:`Q_E = y^\top P_0 y` with the fixed-effects projection :math:`P_0`;
+    the joint test of the non-intercept coefficients uses
+    :math:`\hat\beta_{(2)}^\top \mathrm{Var}(\hat\beta_{(2)})^{-1} \hat\beta_{(2)}` (divided by their number
+    for F); the residual heterogeneity is :math:`Q = y^\top P_0 y` with the fixed-effects projection :math:`P_0`;
     residual :math:`I^2 = \hat\tau^2/(\hat\tau^2 + (k-p)/\mathrm{tr}\,P_0)`.
 
     References
@@ -204,8 +249,9 @@ def meta_regression(
     if np.any(v <= 0):
         raise PoolingError("variances must be positive")
     level = _check_level(level)
-    if method not in ("REML", "DL") or test not in ("z", "knha"):
-        raise PoolingError("method must be 'REML' or 'DL' and test 'z' or 'knha'")
+    if method not in ("REML", "DL") or test not in _TEST_NAMES:
+        raise PoolingError("method must be 'REML' or 'DL' and test 'wald' or 'hartung-knapp'")
+    test = _TEST_NAMES[test]  # type: ignore[assignment]
     x = np.column_stack([np.ones(y.size), mods])
     k, p = x.shape
     if k <= p:
@@ -219,29 +265,29 @@ def meta_regression(
     w = 1.0 / (v + tau2)
     beta, cov = _wls(y, x, w)
     df = k - p
-    if test == "knha":
+    if test == HARTUNG_KNAPP:
         residual = y - x @ beta
         factor = float(np.sum(w * residual**2) / df)
         cov = cov * (max(1.0, factor) if knha_truncation else factor)
     se = np.sqrt(np.diag(cov))
     stat = beta / se
     alpha = 1 - level
-    if test == "knha":
+    if test == HARTUNG_KNAPP:
         critical = float(stats.t.isf(alpha / 2, df))
         pvals = 2 * stats.t.sf(np.abs(stat), df)
     else:
         critical = float(stats.norm.isf(alpha / 2))
         pvals = 2 * stats.norm.sf(np.abs(stat))
     b2, c2 = beta[1:], cov[1:, 1:]
-    qm = float(b2 @ np.linalg.solve(c2, b2))
+    joint = float(b2 @ np.linalg.solve(c2, b2))
     m = p - 1
-    if test == "knha":
-        qm /= m
-        qm_p = float(stats.f.sf(qm, m, df))
+    if test == HARTUNG_KNAPP:
+        joint /= m
+        joint_p = float(stats.f.sf(joint, m, df))
     else:
-        qm_p = float(stats.chi2.sf(qm, m))
+        joint_p = float(stats.chi2.sf(joint, m))
     p0 = _projection(x, 1.0 / v)
-    qe = float(y @ p0 @ y)
+    q_residual = float(y @ p0 @ y)
     typical = df / float(np.trace(p0))
     tau2_intercept = (
         random_effects(y, v, method=method).tau2 if method in ("REML", "DL") else tau2  # same estimator, no mods
@@ -258,12 +304,13 @@ def meta_regression(
         statistics=tuple(float(s) for s in stat),
         p_values=tuple(float(pv) for pv in pvals),
         tau2=float(tau2),
-        qm=qm,
-        qm_df=m,
-        qm_pvalue=qm_p,
-        qe=qe,
-        qe_df=df,
-        qe_pvalue=float(stats.chi2.sf(qe, df)),
+        moderators=JointTest(
+            statistic=joint,
+            distribution="F" if test == HARTUNG_KNAPP else "chi-squared",
+            df=(m, df) if test == HARTUNG_KNAPP else (m,),
+            p=joint_p,
+        ),
+        residual_heterogeneity=ResidualHeterogeneity(q=q_residual, df=df, p=float(stats.chi2.sf(q_residual, df))),
         i2=float(tau2 / (tau2 + typical)),
         r2=r2,
         n_studies=k,
@@ -283,16 +330,21 @@ class SubgroupEstimate(ResultRecord):
 
 @dataclass(frozen=True)
 class SubgroupAnalysis(ResultRecord):
-    """Pooled estimates per subgroup and the test of subgroup difference.
+    """Pooled estimates per subgroup and the test of the difference between subgroups.
 
-    ``difference`` is the meta-regression on indicators of every subgroup but the first (``None`` when
-    fewer than two subgroups, or too few sites, allow the test; ``reason`` then says why).
+    ``between_subgroups`` tests whether the subgroups' pooled values differ, ``residual_heterogeneity`` is
+    what differences between sites leave within subgroups, and ``regression`` is the meta-regression on
+    indicators of every subgroup but the first that both come from (its coefficients are each subgroup's
+    difference from the first). All three are ``None`` when fewer than two subgroups, or too few sites,
+    allow the test; ``reason`` then says why.
     """
 
     measure: str
     scale: str
     subgroups: tuple[SubgroupEstimate, ...]
-    difference: MetaRegression | None
+    between_subgroups: JointTest | None
+    residual_heterogeneity: ResidualHeterogeneity | None
+    regression: MetaRegression | None
     reason: str | None
     sites_not_pooled: tuple[SiteExclusion, ...] = ()
 
@@ -307,14 +359,10 @@ class SubgroupAnalysis(ResultRecord):
                     f"({sub.pooled.ci_low:.4f} to {sub.pooled.ci_high:.4f}),"
                     f" k = {sub.pooled.n_studies}"
                 )
-        if self.difference is not None:
-            kind = "F" if self.difference.test == "knha" else "QM"
-            lines.append(
-                f"  test of subgroup difference: {kind}({self.difference.qm_df}) = {self.difference.qm:.4f}, "
-                f"p = {self.difference.qm_pvalue:.4g}"
-            )
+        if self.between_subgroups is not None:
+            lines.append("  " + self.between_subgroups.sentence("Difference between subgroups"))
         else:
-            lines.append(f"  no test of subgroup difference: {self.reason}")
+            lines.append(f"  Difference between subgroups: not estimable: {self.reason}")
         return "\n".join(lines)
 
 
@@ -343,7 +391,7 @@ def subgroup_analysis(
         Labels for the result.
     method : {"REML", "DL"}, default "REML"
     interval : {"wald", "hksj"}, default "hksj"
-        Per-subgroup intervals; with ``"hksj"`` the difference test is Knapp–Hartung's F test.
+        Per-subgroup intervals; with ``"hksj"`` the difference test is Hartung–Knapp's F test.
     level : float, default 0.95
 
     Returns
@@ -381,23 +429,32 @@ def subgroup_analysis(
             [estimates[i] for i in members], [variances[i] for i in members], method, interval, level
         )
         results.append(SubgroupEstimate(name, sites, pooled))
-    difference, reason = None, None
+    regression, reason = None, None
     if len(order) < 2:
         reason = "fewer than 2 subgroups with usable estimates"
     elif len(kept) <= len(order):
         reason = "too few sites for a meta-regression on the subgroup indicators"
     else:
         indicators = np.array([[1.0 if subgroups[i] == g else 0.0 for g in order[1:]] for i in kept])
-        difference = meta_regression(
+        regression = meta_regression(
             [estimates[i] for i in kept],
             [variances[i] for i in kept],
             indicators,
             names=[f"{g} vs {order[0]}" for g in order[1:]],
             method=method,
-            test="knha" if interval == "hksj" else "z",
+            test=HARTUNG_KNAPP if interval == "hksj" else WALD,
             level=level,
         )
-    return SubgroupAnalysis(measure, scale, tuple(results), difference, reason, tuple(excluded))
+    return SubgroupAnalysis(
+        measure,
+        scale,
+        tuple(results),
+        regression.moderators if regression else None,
+        regression.residual_heterogeneity if regression else None,
+        regression,
+        reason,
+        tuple(excluded),
+    )
 
 
 def _paired_row(both: object, first: object, second: object, neither: object) -> tuple[float, float, bool] | str:

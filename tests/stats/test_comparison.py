@@ -36,13 +36,14 @@ def test_meta_regression_matches_metafor_bcg_ablat() -> None:
     # memory): intercept 0.2515 (SE 0.2491), ablat -0.0291 (SE 0.0072), tau^2 0.0764, I^2 68.39%, R^2 75.62%,
     # QE(11) = 30.7331, QM(1) = 16.3571. metafor stops Fisher scoring when tau^2 changes by less than 1e-5
     # (its default threshold, from memory); ours runs to 1e-10 and lands 6e-5 lower, which moves QM in the
-    # third decimal: tau^2 and QM are compared within that convergence difference.
+    # third decimal: tau^2 and the joint test are compared within that convergence difference.
     fit = meta_regression(Y, V, ABLAT, names=["ablat"])
     assert abs(fit.coefficients[0] - 0.2515) <= HALF_4DP and abs(fit.coefficients[1] - -0.0291) <= HALF_4DP
     assert abs(fit.se[0] - 0.2491) <= HALF_4DP and abs(fit.se[1] - 0.0072) <= HALF_4DP
     assert abs(fit.tau2 - 0.0764) <= 1e-4
-    assert abs(fit.qe - 30.7331) <= HALF_4DP and fit.qe_df == 11
-    assert abs(fit.qm - 16.3571) <= 2e-3 and fit.qm_df == 1
+    residual, joint = fit.residual_heterogeneity, fit.moderators
+    assert abs(residual.q - 30.7331) <= HALF_4DP and residual.df == 11
+    assert abs(joint.statistic - 16.3571) <= 2e-3 and joint.df == (1,) and joint.distribution == "chi-squared"
     assert abs(100 * fit.i2 - 68.39) <= 0.01
     assert abs(100 * fit.r2 - 75.62) <= 0.02
 
@@ -56,28 +57,31 @@ def test_meta_regression_at_its_tau2_is_statsmodels_wls() -> None:
     fixed = sm.WLS(Y, x, weights=w).fit(cov_type="fixed scale")
     assert fit.coefficients == pytest.approx(tuple(fixed.params), rel=1e-10)
     assert fit.se == pytest.approx(tuple(fixed.bse), rel=1e-10)
-    knha = meta_regression(Y, V, ABLAT, names=["ablat"], test="knha")
+    knha = meta_regression(Y, V, ABLAT, names=["ablat"], test="hartung-knapp")
     scaled = sm.WLS(Y, x, weights=w).fit()
     assert knha.se == pytest.approx(tuple(scaled.bse), rel=1e-8)
     assert knha.p_values == pytest.approx(tuple(scaled.pvalues), rel=1e-7)
-    assert knha.qm == pytest.approx(float(scaled.f_test("x1 = 0").fvalue), rel=1e-8)
+    f_test = scaled.f_test("x1 = 0")
+    assert knha.moderators.statistic == pytest.approx(float(f_test.fvalue), rel=1e-8)
+    assert knha.moderators.df == (int(f_test.df_num), int(f_test.df_denom)) and knha.moderators.distribution == "F"
+    assert knha.test == "hartung-knapp"
     assert scaled.scale > 1  # so the max(1, s^2) truncation does not bind here
 
 
-def test_knapp_hartung_meta_regression_is_truncated_at_the_z_variance() -> None:
+def test_knapp_hartung_meta_regression_is_truncated_at_the_wald_variance() -> None:
     # Knapp & Hartung (2003) ad hoc correction: Var(beta) = max(1, s^2) (X'WX)^-1. With residuals far smaller than
     # their variances (s^2 < 1, statsmodels WLS scale), the truncated SEs are the fixed-scale WLS SEs.
     y = np.array([0.10, 0.12, 0.15, 0.16, 0.20])
     v = np.array([0.05, 0.04, 0.06, 0.05, 0.04])
     moderator = np.array([1.0, 2.0, 3.0, 4.0, 5.0])
-    fit = meta_regression(y, v, moderator, method="DL", test="knha")
+    fit = meta_regression(y, v, moderator, method="DL", test="hartung-knapp")
     x = sm.add_constant(moderator)
     w = 1 / (v + fit.tau2)
     scaled = sm.WLS(y, x, weights=w).fit()
     assert scaled.scale < 1
     fixed = sm.WLS(y, x, weights=w).fit(cov_type="fixed scale")
     assert fit.se == pytest.approx(tuple(fixed.bse), rel=1e-10)
-    raw = meta_regression(y, v, moderator, method="DL", test="knha", knha_truncation=False)
+    raw = meta_regression(y, v, moderator, method="DL", test="hartung-knapp", knha_truncation=False)
     assert raw.se == pytest.approx(tuple(scaled.bse), rel=1e-10)
 
 
@@ -100,17 +104,17 @@ def test_subgroup_analysis_pools_each_group_and_tests_the_difference() -> None:
     far = [i for i, g in enumerate(groups) if g == "far"]
     assert result.subgroups[0].subgroup == "far"
     assert result.subgroups[0].pooled == random_effects(Y[far], V[far], method="REML")
-    difference = result.difference
-    assert difference is not None and difference.test == "z" and difference.qm_df == 1
+    difference, between = result.regression, result.between_subgroups
+    assert difference is not None and difference.test == "wald" and between is not None and between.df == (1,)
     indicator = np.array([0.0 if g == "far" else 1.0 for g in groups])
     wls = sm.WLS(Y, sm.add_constant(indicator), weights=1 / (V + difference.tau2)).fit(cov_type="fixed scale")
     assert difference.coefficients[1] == pytest.approx(float(wls.params[1]), rel=1e-10)
-    assert difference.qm == pytest.approx(float(wls.params[1] / wls.bse[1]) ** 2, rel=1e-10)
-    assert difference.qm_pvalue == pytest.approx(stats.chi2.sf(difference.qm, 1), rel=1e-10)
-    assert difference.qm_pvalue < 0.05  # latitude matters (Colditz et al. 1994)
+    assert between.statistic == pytest.approx(float(wls.params[1] / wls.bse[1]) ** 2, rel=1e-10)
+    assert between.p == pytest.approx(stats.chi2.sf(between.statistic, 1), rel=1e-10)
+    assert between.p < 0.05  # latitude matters (Colditz et al. 1994)
     text = json.dumps(result.to_dict(), allow_nan=False)
     assert SubgroupAnalysis.from_dict(json.loads(text)) == result
-    assert "test of subgroup difference" in result.summary()
+    assert f"Difference between subgroups: χ²(1) = {between.statistic:.2f}, p = {between.p:.2g}" in result.summary()
 
 
 def test_subgroup_with_one_site_is_reported_not_pooled() -> None:
@@ -118,7 +122,7 @@ def test_subgroup_with_one_site_is_reported_not_pooled() -> None:
         ["a", "b", "c", "d"], [0.1, 0.3, 0.2, 0.9], [0.04, 0.05, 0.03, 0.05], ["x", "x", "x", "y"]
     )
     assert result.subgroups[1].pooled is None and result.subgroups[1].reason == "fewer than 2 sites"
-    assert result.difference is not None  # three sites in x, one in y: the indicator model still fits
+    assert result.between_subgroups is not None  # three sites in x, one in y: the indicator model still fits
 
 
 # --- paired comparisons ------------------------------------------------------------------------------
@@ -188,7 +192,7 @@ def test_bad_inputs_raise_clear_errors() -> None:
 
 
 def test_meta_regression_round_trips_through_json() -> None:
-    fit = meta_regression(Y, V, ABLAT, names=["ablat"], test="knha")
+    fit = meta_regression(Y, V, ABLAT, names=["ablat"], test="hartung-knapp")
     assert MetaRegression.from_dict(json.loads(json.dumps(fit.to_dict(), allow_nan=False))) == fit
     assert "ablat" in fit.summary() and BCG.shape == (13, 4)
-    assert math.isfinite(fit.qm_pvalue)
+    assert math.isfinite(fit.moderators.p)
