@@ -365,15 +365,26 @@ def build_parser() -> argparse.ArgumentParser:
         "verify",
         help="check the hash chain and signatures; names the first bad line",
         description="Check that every ledger entry is signed by the site key and chained to the one before, and "
-        "that every release file in the site folder is in the ledger. Exit code 2 names the first bad line.",
-        epilog=_examples("site-agent ledger verify --site-dir SITE --public-key /safe/copy/site.pub"),
+        "that every release file in the site folder is in the ledger. Exit code 2 names the first bad line. "
+        "With --expect-head, also that the ledger still holds the head hash noted earlier (a ledger cut short "
+        "keeps a valid chain).",
+        epilog=_examples(
+            "site-agent ledger verify --site-dir SITE --public-key /safe/copy/site.pub",
+            "site-agent ledger verify --site-dir SITE --expect-head 3f5c0a...   # the hash written down last time",
+        ),
         formatter_class=argparse.RawDescriptionHelpFormatter,
     )
     option(p, "--site-dir", "--site", dest="site_dir", type=Path, required=True, help="site folder")
     p.add_argument("--public-key", type=Path, help="check against this copy of the site key (default: site.pub)")
+    p.add_argument(
+        "--expect-head",
+        metavar="HASH",
+        help="a head hash noted earlier (from `ledger show` or `ledger verify`): exit code 2 if no entry has it, "
+        "i.e. entries were cut off the end since",
+    )
     p.add_argument("--json", action="store_true", help="print the entry count, key id and last hash as JSON")
     p.set_defaults(handler=cmd_ledger_verify)
-    p = led.add_parser("show", help="list ledger entries")
+    p = led.add_parser("show", help="list ledger entries and the head hash to write down")
     option(p, "--site-dir", "--site", dest="site_dir", type=Path, required=True, help="site folder")
     p.add_argument("--json", action="store_true", help="every entry in full as JSON")
     p.set_defaults(handler=cmd_ledger_show)

@@ -18,7 +18,7 @@ from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
 
-from federation.protocol import key_id, load_public_key
+from federation.protocol import ValidationToolError, key_id, load_public_key
 from federation.protocol.cli_support import EXIT_PARTIAL, option, print_json, write_atomic
 
 from . import approval, ledger
@@ -277,20 +277,48 @@ def cmd_ledger_verify(args: argparse.Namespace) -> int:
             "the end of the ledger, or the file was placed there by hand)"
         )
     head = ledger.head(site.ledger_path)
+    expected = getattr(args, "expect_head", None)
+    found_at = _find_noted_head(site, expected) if expected else None
     if getattr(args, "json", False):
-        print_json(
-            {
-                "ledger": str(site.ledger_path),
-                "entries": count,
-                "intact": True,
-                "site_key_id": key_id(public_key),
-                "last_entry_hash": head,
-            }
-        )
+        report: dict[str, Any] = {
+            "ledger": str(site.ledger_path),
+            "entries": count,
+            "intact": True,
+            "site_key_id": key_id(public_key),
+            "last_entry_hash": head,
+        }
+        if expected:
+            report["expected_head"] = {"hash": expected, "found_at_entry": found_at}
+        print_json(report)
         return 0
     print(f"{site.ledger_path}: {count} entries, chain and signatures intact (site key {key_id(public_key)})")
-    print(f"  last entry hash {head} (note it down: a later verify can then tell if entries were cut off)")
+    if expected:
+        later = count - int(found_at or 0)
+        added = "1 entry was" if later == 1 else f"{later} entries were"
+        print(f"  the head you noted ({expected[:16]}…) is entry {found_at}; {added} added since")
+    print(f"  head (last entry hash) {head}")
+    print("  write it down: `ledger verify --expect-head HASH` later tells whether entries were cut off")
     return 0
+
+
+_HEX = frozenset("0123456789abcdef")
+
+
+def _find_noted_head(site: Site, noted: str) -> int:
+    """The entry number whose hash is ``noted`` (the full hash, or its first 16 or more hex digits).
+
+    Raises LedgerError when no entry has it: the ledger was cut short (or rewritten) since it was noted.
+    """
+    wanted = noted.strip().lower()
+    if len(wanted) < 16 or len(wanted) > 64 or not set(wanted) <= _HEX:
+        raise ValidationToolError("--expect-head: give the head hash as printed (at least its first 16 hex digits)")
+    for entry in ledger.read_entries(site.ledger_path):
+        if str(entry.get("hash", "")).startswith(wanted):
+            return int(entry.get("seq", 0))
+    raise ledger.LedgerError(
+        f"{site.ledger_path}: no entry has the head hash {wanted[:16]}… noted earlier: entries were cut off the "
+        "end of the ledger (or it was replaced) since then"
+    )
 
 
 def cmd_ledger_show(args: argparse.Namespace) -> int:
@@ -307,6 +335,8 @@ def cmd_ledger_show(args: argparse.Namespace) -> int:
             f"note: release {digest} (entry {entry.get('seq')}) has no 'sent' entry after it: the agent stopped "
             "between recording and handing it over, so it may not have reached the coordinator"
         )
+    print(f"head (last entry hash): {ledger.head(site.ledger_path)}")
+    print("  write it down; `site-agent ledger verify --expect-head HASH` later tells whether entries were cut off")
     return 0
 
 

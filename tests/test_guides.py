@@ -103,3 +103,6 @@ def test_ethics_board_guide(demo, tmp_path):
     assert (tmp_path / "review.html").read_text().count(release["request_id"]) >= 1
     # the tampered copy failed, naming the ledger file and a line
     assert "tampered/ledger.jsonl" in result.stderr and "line 3" in result.stderr
+    # the copy cut short by one entry verifies as a chain, but not against the head hash noted before
+    assert "cut/ledger.jsonl: no entry has the head hash" in result.stderr
+    assert "entries were cut off the end" in result.stderr

@@ -7,6 +7,7 @@ Reference for the primitives: Ed25519 (RFC 8032) through the `cryptography` pack
 from __future__ import annotations
 
 import json
+import re
 from pathlib import Path
 
 import pytest
@@ -152,3 +153,23 @@ def test_show_flags_a_release_that_was_not_handed_over(site, capsys) -> None:  #
 def test_unknown_events_are_refused(site) -> None:  # noqa: ANN001
     with pytest.raises(ValueError):
         ledger.append(site.ledger_path, site.private_key(), "shipped", {})
+
+
+def test_a_noted_head_catches_entries_cut_from_the_end(site, capsys) -> None:  # noqa: ANN001
+    """A ledger cut short is still a valid chain; the head hash the board wrote down earlier says it was cut."""
+    assert site_agent(["ledger", "show", "--site-dir", str(site.root)]) == 0
+    shown = capsys.readouterr().out
+    noted = re.search(r"head \(last entry hash\): ([0-9a-f]{64})", shown).group(1)
+    assert noted == ledger.head(site.ledger_path)
+    ledger.append(site.ledger_path, site.private_key(), "refusal", {"reason": "a later entry"})
+    verify = ["ledger", "verify", "--site-dir", str(site.root), "--expect-head"]
+    assert site_agent([*verify, noted]) == 0  # grown since: fine
+    assert "is entry 5; 1 entry was added since" in capsys.readouterr().out
+    assert site_agent([*verify, noted[:16]]) == 0  # the first 16 hex digits are enough
+    write(site, lines(site)[:3])  # entries 4.. cut off: the chain that is left verifies on its own
+    assert site_agent(["ledger", "verify", "--site-dir", str(site.root)]) == 0
+    capsys.readouterr()
+    assert site_agent([*verify, noted]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "entries were cut off the end" in err[0]
+    assert site_agent([*verify, "not-a-hash"]) == 1
