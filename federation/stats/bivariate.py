@@ -180,9 +180,7 @@ class BivariateFit(ResultRecord):
             f"correlation {rho}{fixed}",
         ]
         if self.sroc is not None:
-            lines.append(
-                f"  area under the SROC curve (false-positive rates 0 to 1) {self.sroc.area_under_curve:.3f}"
-            )
+            lines.append(f"  area under the SROC curve (false-positive rates 0 to 1) {self.sroc.area_under_curve:.3f}")
         lines.extend(f"  not pooled: {e.site_id} ({e.reason})" for e in self.sites_not_pooled)
         lines.extend(f"  note: {note}" for note in self.notes)
         return "\n".join(lines)
