@@ -348,7 +348,8 @@ def build_parser() -> argparse.ArgumentParser:
     parser = ArgumentParser(
         prog="federation",
         description="Coordinator tools: sign a frozen model, issue study requests, enrol sites, "
-        "ingest their signed releases and pool the results. `federation COMMAND --help` explains each command.",
+        "ingest their signed releases and pool the results. It validates a model across sites; it never produces "
+        "a screening result or risk report for one person. `federation COMMAND --help` explains each command.",
         epilog=EPILOG,
         formatter_class=argparse.RawDescriptionHelpFormatter,
     )

@@ -171,6 +171,16 @@ def _from_ledger(site: Site, held: Held) -> bytes:
     raise ValidationToolError(f"{held.held_id}: the ledger holds no prepared release with this id")
 
 
+def held_facts(site: Site, held: Held) -> dict[str, Any]:
+    """The counts (with their definitions) behind a held release, as recorded in the ledger."""
+    for entry in ledger.read_entries(site.ledger_path):
+        details = entry.get("details", {})
+        if entry.get("event") in HELD_EVENTS and _held_id(details) == held.held_id:
+            facts = details.get("facts", {})
+            return facts if isinstance(facts, dict) else {}
+    return {}
+
+
 def review_details(site: Site, held: Held) -> dict[str, Any]:
     """What suppression did and the audit's result, as recorded in the ledger when the release was prepared."""
     for entry in ledger.read_entries(site.ledger_path):
@@ -202,8 +212,8 @@ def _decide(site: Site, held_id: str, event: str, by: str, reason: str = "") -> 
     return find(site, held.held_id)
 
 
-def approve(site: Site, held_id: str, by: str) -> Held:
-    return _decide(site, held_id, "approval", by)
+def approve(site: Site, held_id: str, by: str, reason: str = "") -> Held:
+    return _decide(site, held_id, "approval", by, reason)
 
 
 def reject(site: Site, held_id: str, reason: str, by: str) -> Held:

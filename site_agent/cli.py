@@ -235,7 +235,9 @@ def build_parser() -> argparse.ArgumentParser:
         prog="site-agent",
         description="Site agent: scores this site's records with a coordinator's signed, frozen model and "
         "writes a signed release holding only counts that pass the site's disclosure policy. "
-        "Records never leave the site. `site-agent COMMAND --help` explains each command.",
+        "Records never leave the site, and the agent keeps no per-person scores: it validates a model, it never "
+        "produces a screening result or risk report for one person. `site-agent COMMAND --help` explains each "
+        "command.",
         epilog=EPILOG,
         formatter_class=argparse.RawDescriptionHelpFormatter,
     )

@@ -21,52 +21,18 @@ from typing import Any
 from federation.protocol import ValidationToolError, key_id, load_public_key
 from federation.protocol.cli_support import EXIT_PARTIAL, option, print_json, write_atomic
 
-from . import approval, ledger
+from . import approval, ledger, plain
 from .approval import Held
 from .config import Site, load_site
 
-HIDDEN = "hidden"
-
-
-def _fmt(value: Any) -> str:
-    if value is None:
-        return HIDDEN
-    if isinstance(value, float):
-        return f"{value:.4g}"
-    if isinstance(value, (dict, list)):
-        return json.dumps(value, sort_keys=True)
-    return str(value)
-
-
-def _flow_rows(flow: dict[str, Any], prefix: str = "") -> list[tuple[str, str]]:
-    rows: list[tuple[str, str]] = []
-    for key, value in flow.items():
-        if key == "suppressed":
-            continue
-        if isinstance(value, dict):
-            rows.extend(_flow_rows(value, f"{prefix}{key}: "))
-        else:
-            rows.append((f"{prefix}{key}", _fmt(value)))
-    return rows
-
-
-def _result_rows(results: dict[str, Any]) -> list[tuple[str, str]]:
-    rows: list[tuple[str, str]] = []
-    for table in results.get("confusion", []):
-        cells = ", ".join(f"{c} {_fmt(v)}" for c, v in table.get("cells", {}).items())
-        rows.append((f"confusion at threshold {table.get('threshold')}", cells))
-    for name, value in results.items():
-        if name != "confusion":
-            rows.append((name, _fmt(value)))
-    return rows
-
 
 def _policy_line(policy: dict[str, Any]) -> str:
-    zeros = "zeros shown" if policy.get("allow_zero", True) else "zeros hidden"
-    approval_text = "approval required" if policy.get("require_approval") else "no approval required"
+    zeros = "a count of zero is shown" if policy.get("allow_zero", True) else "a count of zero is withheld too"
+    approval_text = "a person approves each release" if policy.get("require_approval") else "no approval step"
     return (
-        f"minimum cell size {policy.get('min_cell_size')}, {zeros}, protection width "
-        f"{policy.get('protection_width', 2)}, {approval_text} (policy SHA-256 {str(policy.get('policy_sha256'))[:16]})"
+        f"counts under {policy.get('min_cell_size')} are withheld (the minimum cell size); {zeros}; every withheld "
+        f"count must keep at least {policy.get('protection_width', 2)} possible values; {approval_text} "
+        f"(policy fingerprint {str(policy.get('policy_sha256'))[:16]})"
     )
 
 
@@ -75,6 +41,8 @@ def describe(site: Site, held: Held) -> dict[str, Any]:
     data = approval.reviewed_bytes(site, held)
     document = json.loads(data)
     review = approval.review_details(site, held)
+    facts = approval.held_facts(site, held)
+    results = document.get("results", {}) if isinstance(document.get("results"), dict) else {}
     return {
         "id": held.held_id,
         "state": held.state,
@@ -87,83 +55,192 @@ def describe(site: Site, held: Held) -> dict[str, Any]:
         "release_sha256": held.release_sha256,
         "document": document,
         "text": data.decode("utf-8"),
+        "model": review.get("model"),
         "suppressed": review.get("suppressed", {}),
         "audit": review.get("audit"),
+        "parts": plain.analysis_parts(facts, results),
+        "withheld": plain.withheld_sentences(facts, review),
+        "audit_sentence": plain.audit_sentence(review.get("audit")),
     }
 
 
-def _audit_lines(audit: dict[str, Any] | None) -> list[str]:
-    if not audit:
-        return ["no audit result recorded"]
-    earlier = audit.get("releases_considered", 1) - 1
-    scope = f"this release with {earlier} earlier release(s) to the study" if earlier else "this release"
-    verdict = "passed" if audit.get("ok") else "FAILED"
-    lines = [
-        f"{verdict}: {scope}; {audit.get('atoms')} regions, {audit.get('constraints')} linear facts, "
-        f"{audit.get('seconds')} s; every hidden count must keep at least {audit.get('protection_width')} "
-        "possible values"
-    ]
-    for interval in audit.get("intervals", []):
-        high = "no upper bound" if interval["high"] is None else interval["high"]
-        if interval.get("exact", True):
-            lines.append(f"{interval['name']}: the coordinator can only tell it lies in {interval['low']} .. {high}")
-        else:  # two feasible tables were found with these values: the true range is at least this wide
-            lines.append(f"{interval['name']}: the coordinator cannot narrow it below {interval['low']} .. {high}")
-    for finding in audit.get("findings", []):
-        lines.append(f"finding: {finding['text']}")
-    return lines
+STATE_WORDS = {
+    "held": "held: waiting for a decision; nothing has left the site",
+    "approved": "approved: it leaves when the request is answered again",
+    "rejected": "rejected: it will never leave the site",
+    "released": "approved and handed over to the coordinator",
+}
 
 
-def render_text(view: dict[str, Any], site_dir: Path) -> str:
-    doc = view["document"]
-    out = [
-        f"Held release {view['id']} ({view['state']}, prepared {view['prepared_at']})",
-        f"  study {view['study_id']}, request {view['request_id']}, site {doc.get('site_id')}",
-        f"  model bundle SHA-256 {doc.get('bundle_sha256')}",
-        f"  release SHA-256 {view['release_sha256']} (what is approved is exactly this text)",
-        f"  policy in force: {_policy_line(doc.get('policy', {}))}",
-        "",
-        "Participant flow (as it would leave)",
-    ]
-    out += [f"  {name:<36} {value}" for name, value in _flow_rows(doc.get("flow", {}))]
-    out += ["", "Results (as they would leave)"]
-    out += [f"  {name}: {value}" for name, value in _result_rows(doc.get("results", {}))]
-    out += ["", "Suppressed, and why (this part stays at the site)"]
-    out += [f"  {name:<36} {why}" for name, why in view["suppressed"].items()] or ["  nothing suppressed"]
-    out += ["", "Audit"] + [f"  {line}" for line in _audit_lines(view["audit"])]
+def _when(stamp: str) -> str:
+    """``2026-12-02T12:50:02.867830+00:00`` -> ``2026-12-02 12:50 UTC``."""
+    try:
+        moment = datetime.fromisoformat(stamp)
+    except (TypeError, ValueError):
+        return str(stamp or "")
+    return moment.astimezone(UTC).strftime("%Y-%m-%d %H:%M UTC")
+
+
+def _model_line(view: dict[str, Any]) -> str:
+    model = view.get("model") or {}
+    digest = str(view["document"].get("bundle_sha256", ""))
+    if not model:
+        return f"the model bundle with SHA-256 {digest}"
+    thresholds = ", ".join(_number_text(t) for t in model.get("thresholds", []))
+    return (
+        f"“{model.get('name')}” ({model.get('format')}, score: {model.get('score')}), screen + when the score is "
+        f"at or above {thresholds}; {len(model.get('inputs', []))} inputs; model bundle SHA-256 {digest}"
+    )
+
+
+def _number_text(value: Any) -> str:
+    return f"{value:g}" if isinstance(value, float) else str(value)
+
+
+def _decision_lines(view: dict[str, Any], site_dir: Path) -> list[str]:
     if view["state"] == "held":
+        return [
+            "Not decided yet. To decide:",
+            f"  site-agent approve {view['id']} --site-dir {site_dir} --by NAME",
+            f"  site-agent reject {view['id']} --site-dir {site_dir} --reason TEXT --by NAME",
+        ]
+    verb = "Rejected" if view["state"] == "rejected" else "Approved"
+    line = f"{verb} by {view['decided_by'] or 'an unnamed person'} on {_when(view['decided_at'])}"
+    line += f". Reason given: {view['reason']}" if view["reason"] else ". No reason was given."
+    if view["state"] == "released":
+        line += " It has been handed over to the coordinator."
+    return [line]
+
+
+def _meta_lines(view: dict[str, Any]) -> list[tuple[str, str]]:
+    doc = view["document"]
+    return [
+        ("state", STATE_WORDS.get(view["state"], view["state"])),
+        ("study and request", f"study {view['study_id']}, request {view['request_id']}"),
+        ("site", str(doc.get("site_id"))),
+        ("prepared", _when(view["prepared_at"])),
+        ("the model it comes from", _model_line(view)),
+        ("the site's rules", _policy_line(doc.get("policy", {}))),
+        ("what is approved", f"exactly the release text with SHA-256 {view['release_sha256']}"),
+    ]
+
+
+def _text_table(table: plain.Table, indent: str = "  ", caption: bool = False) -> list[str]:
+    widths = [max(len(row[i]) for row in [table.header, *table.rows]) for i in range(len(table.header))]
+    widths[0] = min(widths[0], 72)
+    out = [f"{indent}{table.caption if caption else table.explain}"]
+    for n, row in enumerate([table.header, *table.rows]):
+        cells = [row[0][: widths[0]].ljust(widths[0])] + [c.rjust(w) for c, w in zip(row[1:], widths[1:], strict=True)]
+        out.append(f"{indent}{'  '.join(cells).rstrip()}")
+        if n == 0:
+            out.append(f"{indent}{'-' * (sum(widths) + 2 * (len(widths) - 1))}")
+    return out
+
+
+def _text_part(part: plain.Part, depth: int = 0) -> list[str]:
+    indent = "  " * (depth + 1)
+    out = ["", f"{'  ' * depth}{part.title}"]
+    for table in part.tables:
+        out += _text_table(table, indent, caption=depth > 0)
+    out += [f"{indent}{sentence}" for sentence in part.sentences]
+    for child in part.children:
+        out += _text_part(child, depth + 1)
+    return out
+
+
+def render_text(view: dict[str, Any], site_dir: Path, exact: bool = False) -> str:
+    """The held release in plain words, for a terminal (``--exact`` adds the exact text that would leave)."""
+    out = [f"Release {view['id']}"]
+    out += [f"  {name + ':':<26}{value}" for name, value in _meta_lines(view)]
+    for part in view["parts"]:
+        out += _text_part(part)
+    out += ["", f"Withheld, and why ({len(view['withheld'])})"]
+    out += [f"  {line}" for line in _withheld_summary(view["withheld"])]
+    for group, items in _by_group(view["withheld"]).items():
+        out += [f"  {group}"] + [f"    - {item.text}" for item in items]
+    out += ["", "Disclosure audit", f"  {view['audit_sentence']}"]
+    for finding in (view["audit"] or {}).get("findings", []):
+        out.append(f"  - {finding.get('text')}")
+    out += ["", "Decision"] + [f"  {line}" for line in _decision_lines(view, site_dir)]
+    body = "\n".join(out)
+    terms = plain.glossary(body)
+    if terms:
+        out += ["", "Words and abbreviations used above"] + [f"  {term}: {meaning}" for term, meaning in terms]
+    if exact:
+        out += ["", "The exact text that would leave:", view["text"]]
+    else:
         out += [
             "",
-            f"Decide:  site-agent approve {view['id']} --site-dir {site_dir} --by NAME",
-            f"         site-agent reject {view['id']} --site-dir {site_dir} --reason TEXT --by NAME",
+            f"The exact text that would leave is held/{view['id']}.json; add --exact to print it here.",
         ]
-    elif view["decided_by"]:
-        note = f": {view['reason']}" if view["reason"] else ""
-        out += ["", f"Decided: {view['state']} by {view['decided_by']} at {view['decided_at']}{note}"]
-    out += ["", "Exact text that would leave:", view["text"]]
     return "\n".join(out)
 
 
 _STYLE = """
 body{font-family:system-ui,-apple-system,"Segoe UI",sans-serif;margin:2rem auto;max-width:60rem;color:#1d1d1f;
-line-height:1.4;padding:0 1rem}
-h1{font-size:1.5rem}h2{font-size:1.2rem;border-bottom:1px solid #bbb;margin-top:2.5rem}h3{font-size:1rem}
-table{border-collapse:collapse;margin:.5rem 0}td,th{border:1px solid #ccc;padding:.2rem .6rem;text-align:left;
-vertical-align:top}th{background:#f1f1f1}pre{background:#f6f6f6;border:1px solid #ddd;padding:.8rem;overflow-x:auto;
-font-size:.85rem}.hidden{font-style:italic;color:#555}.meta td:first-child{font-weight:600}
-.verdict{font-weight:700}
+line-height:1.45;padding:0 1rem}
+h1{font-size:1.5rem}h2{font-size:1.25rem;border-bottom:1px solid #bbb;margin-top:2.5rem}
+table{border-collapse:collapse;margin:.4rem 0 .8rem}td,th{border:1px solid #ccc;padding:.25rem .6rem;text-align:left;
+vertical-align:top}th{background:#f1f1f1}td.n{text-align:right;font-variant-numeric:tabular-nums}
+td.withheld{font-style:italic;color:#555}.meta td:first-child{font-weight:600;white-space:nowrap}
+details{margin:.5rem 0;border:1px solid #ddd;border-radius:4px;padding:.3rem .8rem}
+details>summary{cursor:pointer;font-weight:600;padding:.2rem 0}details details{border-color:#eee}
+pre{background:#f6f6f6;border:1px solid #ddd;padding:.8rem;overflow-x:auto;font-size:.85rem;white-space:pre-wrap}
+.explain{color:#444;margin:.2rem 0}.decision{background:#f6f8fb;border-left:4px solid #0072B2;padding:.5rem 1rem}
+dt{font-weight:600}dd{margin:0 0 .5rem 1rem}
 """
 
 
-def _table(rows: list[tuple[str, str]], header: tuple[str, str] | None = None, css: str = "") -> str:
-    parts = [f'<table class="{css}">' if css else "<table>"]
-    if header:
-        parts.append(f"<tr><th>{html.escape(header[0])}</th><th>{html.escape(header[1])}</th></tr>")
-    for name, value in rows:
-        klass = ' class="hidden"' if value == HIDDEN else ""
-        parts.append(f"<tr><td>{html.escape(name)}</td><td{klass}>{html.escape(value)}</td></tr>")
-    parts.append("</table>")
-    return "".join(parts)
+def _html_table(table: plain.Table, caption: bool = False) -> str:
+    head = "".join(f"<th>{html.escape(h)}</th>" for h in table.header)
+    rows = []
+    for row in table.rows:
+        cells = [f"<td>{html.escape(row[0])}</td>"]
+        for cell in row[1:]:
+            klass = "n withheld" if cell == plain.WITHHELD else "n"
+            cells.append(f'<td class="{klass}">{html.escape(cell)}</td>')
+        rows.append(f"<tr>{''.join(cells)}</tr>")
+    lead = (
+        f"<h4>{html.escape(table.caption)}</h4>" if caption else f'<p class="explain">{html.escape(table.explain)}</p>'
+    )
+    return f"{lead}<table><tr>{head}</tr>{''.join(rows)}</table>"
+
+
+def _html_part(part: plain.Part, open_: bool, depth: int = 0) -> str:
+    inner = "".join(_html_table(t, caption=depth > 0) for t in part.tables)
+    inner += "".join(f"<p>{html.escape(s)}</p>" for s in part.sentences)
+    inner += "".join(_html_part(child, False, depth + 1) for child in part.children)
+    return f"<details{' open' if open_ else ''}><summary>{html.escape(part.title)}</summary>{inner}</details>"
+
+
+def _html_view(view: dict[str, Any], site: Site) -> str:
+    meta = "".join(
+        f"<tr><td>{html.escape(name)}</td><td>{html.escape(value)}</td></tr>" for name, value in _meta_lines(view)
+    )
+    groups = _by_group(view["withheld"])
+    withheld = "".join(f"<p>{html.escape(line)}</p>" for line in _withheld_summary(view["withheld"])) + "".join(
+        f"<details{' open' if len(groups) == 1 else ''}><summary>{html.escape(group)} ({len(items)})</summary><ul>"
+        + "".join(f"<li>{html.escape(item.text)}</li>" for item in items)
+        + "</ul></details>"
+        for group, items in groups.items()
+    )
+    findings = "".join(f"<li>{html.escape(str(f.get('text')))}</li>" for f in (view["audit"] or {}).get("findings", []))
+    decision = _decision_lines(view, site.root)
+    decision_html = f"<p>{html.escape(decision[0])}</p>"
+    if len(decision) > 1:
+        decision_html += "<pre>" + html.escape("\n".join(line.strip() for line in decision[1:])) + "</pre>"
+    parts = "".join(_html_part(part, i < 2) for i, part in enumerate(view["parts"]))
+    return (
+        f'<section id="release-{html.escape(view["id"])}"><h2>Release {html.escape(view["id"])}</h2>'
+        f'<table class="meta">{meta}</table>'
+        f'<div class="decision"><strong>Decision.</strong> {decision_html}</div>'
+        f"<h3>What it holds, analysis by analysis</h3>{parts}"
+        f"<details open><summary>Withheld, and why ({len(view['withheld'])})</summary>{withheld}</details>"
+        f"<details open><summary>Disclosure audit</summary><p>{html.escape(view['audit_sentence'])}</p>"
+        f"{'<ul>' + findings + '</ul>' if findings else ''}</details>"
+        f"<details><summary>The exact text that would leave (SHA-256 {html.escape(view['release_sha256'][:16])}…)"
+        f"</summary><pre>{html.escape(view['text'])}</pre></details></section>"
+    )
 
 
 def render_html(views: list[dict[str, Any]], site: Site) -> str:
@@ -171,51 +248,65 @@ def render_html(views: list[dict[str, Any]], site: Site) -> str:
     now = datetime.now(UTC).replace(microsecond=0).isoformat()
     body = [
         f"<h1>Releases held for approval at site {html.escape(site.site_id)}</h1>",
-        f"<p>Prepared {html.escape(now)} from the site folder <code>{html.escape(str(site.root))}</code>. "
-        "Each release below has been computed and signed but has <strong>not</strong> left the site. "
-        "Approving a release approves exactly the text shown, identified by its SHA-256; nothing is "
-        "recomputed afterwards. Counts shown as <em>hidden</em> are suppressed by the site's policy.</p>",
+        f"<p>Prepared {html.escape(_when(now))}. Each release below has been computed and signed at the site "
+        "but has <strong>not</strong> left it. Approving a release approves exactly the text shown, identified by "
+        "its SHA-256 fingerprint; nothing is recomputed afterwards. Counts marked <em>withheld</em> are not "
+        "released, by one of the site's rules; each is listed with the rule that withheld it.</p>"
+        "<p>The tool validates a screening model across sites: it releases counts of participants, never a "
+        "result or a score for one person.</p>",
     ]
     if not views:
         body.append("<p>No release is held for approval.</p>")
-    for view in views:
-        doc = view["document"]
-        meta = [
-            ("held release id", view["id"]),
-            ("state", view["state"]),
-            ("prepared", view["prepared_at"]),
-            ("study", view["study_id"]),
-            ("request", view["request_id"]),
-            ("model bundle SHA-256", str(doc.get("bundle_sha256"))),
-            ("release SHA-256", view["release_sha256"]),
-            ("policy in force", _policy_line(doc.get("policy", {}))),
+    elif len(views) > 1:
+        links = "".join(
+            f'<li><a href="#release-{html.escape(v["id"])}">Release {html.escape(v["id"])}</a>: study '
+            f"{html.escape(v['study_id'])}, {html.escape(v['state'])}</li>"
+            for v in views
+        )
+        body.append(f"<nav><p>{len(views)} releases:</p><ul>{links}</ul></nav>")
+    body += [_html_view(view, site) for view in views]
+    text = " ".join(
+        [
+            *(v["audit_sentence"] for v in views),
+            *(w.text for v in views for w in v["withheld"]),
+            *(_parts_text(v) for v in views),
         ]
-        suppressed = list(view["suppressed"].items()) or [("nothing suppressed", "")]
-        audit = _audit_lines(view["audit"])
-        body += [
-            f"<h2>Release {html.escape(view['id'])}</h2>",
-            _table(meta, css="meta"),
-            "<h3>Participant flow (as it would leave)</h3>",
-            _table(_flow_rows(doc.get("flow", {})), ("count", "value")),
-            "<h3>Results (as they would leave)</h3>",
-            _table(_result_rows(doc.get("results", {})), ("result", "value")),
-            "<h3>Suppressed, and why (this part stays at the site)</h3>",
-            _table(suppressed, ("count", "reason")),
-            "<h3>Audit across every release to this study</h3>",
-            f'<p class="verdict">{html.escape(audit[0])}</p>',
-            "<ul>" + "".join(f"<li>{html.escape(line)}</li>" for line in audit[1:]) + "</ul>",
-            "<h3>How to decide</h3>",
-            f"<pre>site-agent approve {html.escape(view['id'])} --site-dir {html.escape(str(site.root))} --by NAME\n"
-            f"site-agent reject {html.escape(view['id'])} --site-dir {html.escape(str(site.root))} --reason TEXT "
-            "--by NAME</pre>",
-            "<h3>Exact text that would leave</h3>",
-            f"<pre>{html.escape(view['text'])}</pre>",
-        ]
+    )
+    terms = plain.glossary(text + " SHA-256 withheld")
+    if terms:
+        entries = "".join(f"<dt>{html.escape(t)}</dt><dd>{html.escape(m)}</dd>" for t, m in terms)
+        body.append(f'<h2 id="glossary">Words and abbreviations</h2><dl>{entries}</dl>')
     return (
         '<!DOCTYPE html>\n<html lang="en"><head><meta charset="utf-8">'
+        '<meta name="viewport" content="width=device-width, initial-scale=1">'
         f"<title>Releases held for approval: {html.escape(site.site_id)}</title>"
         f"<style>{_STYLE}</style></head><body>{''.join(body)}</body></html>\n"
     )
+
+
+def _by_group(items: list[plain.Withheld]) -> dict[str, list[plain.Withheld]]:
+    groups: dict[str, list[plain.Withheld]] = {}
+    for item in items:
+        groups.setdefault(item.group, []).append(item)
+    return groups
+
+
+def _withheld_summary(items: list[plain.Withheld]) -> list[str]:
+    """ "Nothing was withheld.", or how many counts each rule withheld, in one sentence."""
+    if not items:
+        return ["Nothing was withheld."]
+    rules: dict[str, int] = {}
+    for item in items:
+        rules[item.rule] = rules.get(item.rule, 0) + 1
+    parts = [f"{n} {rule}" for rule, n in rules.items()]
+    return [f"{len(items)} count{'s' if len(items) != 1 else ''} withheld: " + "; ".join(parts) + "."]
+
+
+def _parts_text(view: dict[str, Any]) -> str:
+    out: list[str] = []
+    for part in view["parts"]:
+        out += _text_part(part)
+    return "\n".join(out)
 
 
 # --- command handlers (registered by site_agent.cli) -------------------------------------------------------
@@ -231,18 +322,24 @@ def cmd_review(args: argparse.Namespace) -> int:
         print(f"wrote {args.html} ({len(views)} release(s); a self-contained page, open it in any browser)")
         return 0
     if args.json:
-        print_json([{k: v for k, v in view.items() if k != "text"} for view in views])
+        skip = ("text", "parts", "withheld")
+        print_json(
+            [
+                {**{k: v for k, v in view.items() if k not in skip}, "withheld": [w.__dict__ for w in view["withheld"]]}
+                for view in views
+            ]
+        )
         return 0
     if not views:
         print("no release is held for approval" if not args.all else "no release has been held for approval")
         return 0
-    print("\n\n".join(render_text(view, args.site_dir) for view in views))
+    print("\n\n".join(render_text(view, args.site_dir, args.exact) for view in views))
     return 0
 
 
 def cmd_approve(args: argparse.Namespace) -> int:
     site = load_site(args.site_dir)
-    held = approval.approve(site, args.id, args.by)
+    held = approval.approve(site, args.id, args.by, args.reason or "")
     print(f"release {held.held_id} approved by {held.decided_by}; recorded in {site.ledger_path}")
     print("it leaves when the request is answered again (`site-agent run` or the online agent), or with")
     print(f"  site-agent release {held.held_id} --site-dir {args.site_dir} --out FILE")
@@ -346,6 +443,7 @@ def add_commands(sub: argparse._SubParsersAction) -> None:
     option(p, "--site-dir", "--site", dest="site_dir", type=Path, required=True, help="site folder")
     p.add_argument("--html", type=Path, help="write one self-contained HTML page for an ethics board instead")
     p.add_argument("--all", action="store_true", help="also show releases already decided")
+    p.add_argument("--exact", action="store_true", help="also print the exact text that would leave")
     p.add_argument("--json", action="store_true")
     p.set_defaults(handler=cmd_review)
 
@@ -353,6 +451,7 @@ def add_commands(sub: argparse._SubParsersAction) -> None:
     p.add_argument("id", help="held release id (from `site-agent review`)")
     option(p, "--site-dir", "--site", dest="site_dir", type=Path, required=True, help="site folder")
     p.add_argument("--by", required=True, help="name of the person approving")
+    p.add_argument("--reason", help="why, in a sentence (kept in the site's ledger and shown on the review page)")
     p.set_defaults(handler=cmd_approve)
 
     p = sub.add_parser("reject", help="reject a held release; it will never be sent")

@@ -132,6 +132,20 @@ def check_policy(site: Site, request: Request, request_bytes: bytes, bundle_byte
     return bundle
 
 
+def model_facts(bundle: Bundle) -> dict[str, Any]:
+    """What a reviewer needs to know of the model a release came from (kept with a held release)."""
+    manifest = bundle.manifest
+    return {
+        "name": manifest.name,
+        "format": manifest.model_format,
+        "score": manifest.score_kind,
+        "thresholds": list(manifest.thresholds),
+        "created_at": manifest.created_at,
+        "bundle_sha256": bundle.sha256,
+        "inputs": [feature.name for feature in manifest.schema.features],
+    }
+
+
 def check_compare_bundle(site: Site, request: Request, compare_bundle_bytes: bytes | None) -> Bundle | None:
     """The second bundle of a paired request, verified like the first; None when the request has none."""
     expected = request.compare_bundle_sha256
@@ -140,7 +154,7 @@ def check_compare_bundle(site: Site, request: Request, compare_bundle_bytes: byt
             raise PolicyViolation("request: a comparison bundle was given, but the request names no paired analysis")
         return None
     if compare_bundle_bytes is None:
-        raise PolicyViolation("request: names a paired comparison; the comparison bundle is missing (--compare-bundle)")
+        raise PolicyViolation("request: names a paired comparison; the comparison bundle is missing (--compare)")
     compare = load_bundle(compare_bundle_bytes, site.trusted, "comparison bundle")
     if compare.sha256 != expected:
         raise PolicyViolation("comparison bundle: its SHA-256 is not the one the request names")
@@ -205,7 +219,8 @@ def run_request(
     release_bytes = release.signed_bytes(private_key)
     signed = Release.from_bytes(release_bytes, "release")
     if site.policy.require_approval:
-        held = approval.hold(site, sha256_hex(request_bytes), release_bytes, facts, holder["protected"].review())
+        review = {**holder["protected"].review(), "model": model_facts(bundle)}  # for the reviewer's page
+        held = approval.hold(site, sha256_hex(request_bytes), release_bytes, facts, review)
         raise AwaitingApproval(
             held.held_id, f"release {held.held_id} is held for approval by the site (nothing has been sent)"
         )

@@ -79,13 +79,13 @@ def test_a_held_release_leaves_nothing_until_approved(held, tmp_path: Path, caps
 def test_review_shows_exactly_what_would_leave_and_why(held, capsys) -> None:  # noqa: ANN001
     site_dir, _, held_id = held
     capsys.readouterr()
-    assert site_agent(["review", "--site-dir", str(site_dir)]) == 0
+    assert site_agent(["review", "--site-dir", str(site_dir), "--exact"]) == 0
     out = capsys.readouterr().out
     text = (site_dir / "held" / f"{held_id}.json").read_text()
     assert text in out  # the exact text that would leave
-    assert f"Held release {held_id} (held" in out
-    assert "Participant flow" in out and "Suppressed, and why" in out and "Audit" in out
-    assert "passed: this release" in out
+    assert f"Release {held_id}" in out and "held: waiting for a decision" in out
+    assert "Participant flow" in out and "Withheld, and why" in out and "Disclosure audit" in out
+    assert "Passed. The site checked this release" in out
     assert f"site-agent approve {held_id}" in out
 
 
@@ -110,7 +110,7 @@ def test_the_html_review_page_is_self_contained(held, tmp_path: Path) -> None:  
     assert parser.found == []  # no scripts, no fetched styles, fonts or images
     assert held_id in html_text
     released = json.loads((site_dir / "held" / f"{held_id}.json").read_text())
-    assert f"minimum cell size {released['policy']['min_cell_size']}" in html_text
+    assert f"counts under {released['policy']['min_cell_size']} are withheld (the minimum cell size)" in html_text
 
 
 def test_approve_then_run_again_writes_the_reviewed_bytes(held, tmp_path: Path, capsys) -> None:  # noqa: ANN001

@@ -1,0 +1,123 @@
+"""The review page a board member reads (site_agent.review, site_agent.plain), checked in headless Chromium.
+
+Data: scikit-learn's bundled breast-cancer records (Wolberg et al., UCI) as one site (tests/breast_cancer.py),
+with a full request (flow, screen result, score bands, calibration, subgroups) and a site policy strict enough
+that counts are withheld. Every check reads the page as rendered by a real browser.
+"""
+
+from __future__ import annotations
+
+import json
+import re
+from pathlib import Path
+
+import pytest
+
+from federation.cli import main as federation
+from site_agent.cli import main as site_agent
+from tests.report.dom import ARTIFACTS, parse, render
+
+from .. import breast_cancer
+
+# An internal count name: an analysis followed by "." or "[" (subgroups.x[1].roc.band[2].positive, flow.read).
+INTERNAL = re.compile(r"\b(flow|confusion|roc|calibration|margin|subgroups|agreement|paired)[.\[]")
+
+
+@pytest.fixture(scope="module")
+def held_full(tmp_path_factory: pytest.TempPathFactory) -> tuple[Path, str, Path]:
+    """A site that requires approval and withholds counts under 20, after one full request: (site, id, root)."""
+    root = tmp_path_factory.mktemp("review-page")
+    study = breast_cancer.build(root / "study")
+    request = root / "request.json"
+    args = ["request", "new", "--store", str(root / "study.db"), "--study-id", "bc-review"]
+    args += ["--bundle", str(study.bundle_path), "--sign", str(study.coordinator_key), "--out", str(request)]
+    args += ["--analyses", "confusion,roc,calibration,subgroups", "--subgroup", "mean_radius=14"]
+    assert federation(args) == 0
+    site_dir = root / "site"
+    assert (
+        site_agent(["init", "--site-id", "s0", "--trust", str(study.coordinator_pub), "--site-dir", str(site_dir)]) == 0
+    )
+    config = site_dir / "site.toml"
+    text = config.read_text().replace("require_approval = false", "require_approval = true")
+    text = re.sub(r"(?m)^min_cell_size = \d+", "min_cell_size = 20", text)
+    text = text.replace('allowed_subgroups = ["age_months", "sex"]', 'allowed_subgroups = ["mean_radius"]')
+    config.write_text(text)
+    run = ["run", "--site-dir", str(site_dir), "--request", str(request), "--bundle", str(study.bundle_path)]
+    run += ["--data", str(study.site_csvs[0]), "--out", str(root / "release.json")]
+    assert site_agent(run) == 3
+    held_id = next((site_dir / "held").glob("*.review.json")).name.split(".")[0]
+    return site_dir, held_id, root
+
+
+def _visible_text(html_file: Path, screenshot: Path) -> tuple[str, object]:
+    """The page's text as Chromium rendered it, without the exact release text (a <pre> inside <details>)."""
+    dom = parse(render(html_file, screenshot, height=3000))
+    full = parse(render(html_file))
+    for node in dom.iter():
+        node.children = [c for c in node.children if isinstance(c, str) or c.tag not in ("pre", "style", "title")]
+    return " ".join(dom.text().split()), full
+
+
+def test_the_review_page_reads_in_plain_words(held_full) -> None:  # noqa: ANN001
+    site_dir, held_id, root = held_full
+    page = root / "review.html"
+    assert site_agent(["review", "--site-dir", str(site_dir), "--html", str(page)]) == 0
+    text, dom = _visible_text(page, ARTIFACTS / "review-page.png")
+    review = json.loads((site_dir / "held" / f"{held_id}.review.json").read_text())
+    release = json.loads((site_dir / "held" / f"{held_id}.json").read_text())
+
+    assert not INTERNAL.search(text), INTERNAL.search(text).group(0)  # no internal count names
+    assert "regions" not in text and "linear facts" not in text
+    # one collapsible part per analysis, in plain words, with the reference-standard split as columns
+    summaries = [" ".join(s.text().split()) for s in dom.iter("summary")]
+    for title in (
+        "Participant flow",
+        "Screen result against the reference standard",
+        "Scores in bands",
+        "Predicted risk against what was observed",
+        "The same analyses within subgroups",
+    ):
+        assert any(s.startswith(title) for s in summaries), title
+    assert "with the condition" in text and "without the condition" in text
+    # every withheld count has one sentence naming its rule and, from the audit, what can still be told of it
+    suppressed = review["suppressed"]
+    assert suppressed, "the strict policy must withhold something here"
+    sentences = [" ".join(li.text().split()) for li in dom.iter("li")]
+    withheld = [s for s in sentences if "minimum cell size" in s or "withheld as well" in s or "audit" in s]
+    assert len(withheld) == len(suppressed)
+    for interval in review["audit"]["intervals"]:
+        high = "or more" if interval["high"] is None else f"to {interval['high']}"
+        assert re.search(rf"\b{interval['low']} {high}", text), interval
+    # the model the release came from, the decision still open, a glossary of what remains abbreviated
+    assert release["bundle_sha256"] in text and "“model”" in text
+    assert "Not decided yet" in text and f"site-agent approve {held_id}" in " ".join(dom.text().split())
+    glossary = " ".join(" ".join(d.text().split()) for d in dom.iter("dt"))
+    assert "AUC" in glossary and "SHA-256" in glossary
+    # the withheld cells of the screen-result table are marked, never shown as a number or a dash
+    for cell in dom.iter("td"):
+        if "withheld" in cell.classes():
+            assert cell.text().strip() == "withheld"
+
+
+def test_the_page_says_who_decided_and_why(held_full) -> None:  # noqa: ANN001
+    site_dir, held_id, root = held_full
+    why = "counts checked against the board's protocol"
+    assert site_agent(["approve", held_id, "--site-dir", str(site_dir), "--by", "A. Member", "--reason", why]) == 0
+    page = root / "decided.html"
+    assert site_agent(["review", "--site-dir", str(site_dir), "--all", "--html", str(page)]) == 0
+    text, _ = _visible_text(page, ARTIFACTS / "review-page-decided.png")
+    assert "Approved by A. Member on" in text and f"Reason given: {why}" in text
+
+
+def test_the_text_review_is_short_and_plain(held_full, capsys) -> None:  # noqa: ANN001
+    site_dir, held_id, _ = held_full
+    capsys.readouterr()
+    assert site_agent(["review", "--site-dir", str(site_dir), "--all"]) == 0
+    out = capsys.readouterr().out
+    assert not INTERNAL.search(out)
+    assert "Withheld, and why" in out and "Disclosure audit" in out and "with the condition" in out
+    assert len(out.splitlines()) < 400
+    exact = (site_dir / "held" / f"{held_id}.json").read_text()
+    assert exact not in out
+    assert site_agent(["review", "--site-dir", str(site_dir), "--all", "--exact"]) == 0
+    assert exact in capsys.readouterr().out
