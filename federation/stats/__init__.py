@@ -4,9 +4,14 @@ Single-site accuracy (:mod:`.proportions`), univariate pooling across sites (:mo
 the JSON-safe result objects they return (:mod:`.results`); bivariate pooling of sensitivity and
 specificity (:mod:`.bivariate`, :mod:`.glmm`) with suppressed cells modelled (:mod:`.suppression`);
 discrimination and calibration (:mod:`.performance`); a summary ROC from each site's own score bands
-(:mod:`.multiple_threshold`); subgroups and paired comparisons (:mod:`.comparison`).
+(:mod:`.multiple_threshold`); what a reviewer asks for: agreement and proportions pooled (:mod:`.agreement`),
+likelihood ratios from the bivariate model (:mod:`.summary_ratios`), bivariate meta-regression
+(:mod:`.bivariate_regression`), within-site subgroup contrasts (:mod:`.within_site`), Deeks' test
+(:mod:`.funnel`) and leave-one-site-out influence (:mod:`.influence`); subgroups and paired comparisons
+(:mod:`.comparison`).
 """
 
+from federation.stats.agreement import pool_kappa, pool_proportion
 from federation.stats.bivariate import (
     BivariateFit,
     HSROCParameters,
@@ -17,6 +22,7 @@ from federation.stats.bivariate import (
     reitsma,
     sroc_auc_grid,
 )
+from federation.stats.bivariate_regression import BivariateRegression, CovariateEffect, bivariate_meta_regression
 from federation.stats.comparison import (
     JointTest,
     MetaRegression,
@@ -28,7 +34,9 @@ from federation.stats.comparison import (
     pool_auc_difference,
     subgroup_analysis,
 )
+from federation.stats.funnel import FunnelAsymmetry, deeks_funnel_test
 from federation.stats.glmm import binomial_glmm, glmm_accuracy, marginal_log_likelihood
+from federation.stats.influence import LeaveOneOut, OmittedSite, leave_one_site_out
 from federation.stats.multiple_threshold import (
     MultipleThresholdRoc,
     OperatingPoint,
@@ -55,6 +63,7 @@ from federation.stats.proportions import (
 )
 from federation.stats.results import Interval, PooledEstimate
 from federation.stats.serial import PoolingError, ResultRecord, SiteExclusion
+from federation.stats.summary_ratios import SummaryRatios, summary_ratios
 from federation.stats.suppression import SiteEvidence, site_evidence
 from federation.stats.tables import RULES, ReleasedTable
 from federation.stats.univariate import (
@@ -65,8 +74,23 @@ from federation.stats.univariate import (
     logit_proportion,
     random_effects,
 )
+from federation.stats.within_site import WithinSiteContrast, within_site_contrasts
 
 __all__ = [
+    "BivariateRegression",
+    "CovariateEffect",
+    "FunnelAsymmetry",
+    "LeaveOneOut",
+    "OmittedSite",
+    "SummaryRatios",
+    "WithinSiteContrast",
+    "bivariate_meta_regression",
+    "deeks_funnel_test",
+    "leave_one_site_out",
+    "pool_kappa",
+    "pool_proportion",
+    "summary_ratios",
+    "within_site_contrasts",
     "RULES",
     "BivariateFit",
     "HSROCParameters",
