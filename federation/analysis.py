@@ -22,8 +22,9 @@ scale, calibration intercept and slope), ``paired`` (differences in sensitivity,
 two models), ``subgroups`` (per-level pooled logit sensitivity, specificity and AUC with a test of subgroup
 difference). Every pooled result names its method, the sites pooled and the sites not pooled with the
 reason. A result that cannot be estimated is ``{"status": "not estimated", "reason": ...}``, never a NaN.
-The ``margin`` and ``agreement`` sections are per-site descriptions and are not pooled here (the report
-reads them from the releases).
+Pooled agreement, margin-band error rates, likelihood ratios from the bivariate model, Deeks' test,
+leave-one-site-out influence, within-site subgroup contrasts and meta-regression on site covariates come
+from :mod:`federation.further_analysis` (keys listed there).
 """
 
 from __future__ import annotations
@@ -57,6 +58,7 @@ from federation.stats import (
     wilson,
 )
 
+from .further_analysis import further_results
 from .store import Store, StoredRelease
 
 CELLS = ("tp", "fp", "fn", "tn")
@@ -521,8 +523,17 @@ def _subgroups(tables: list[SiteTable]) -> dict[str, Any] | None:
     return out
 
 
-def analyze_tables(study_id: str, tables: list[SiteTable], prevalence: float | None = None) -> dict[str, Any]:
-    """Per-site and pooled results from each site's table and release sections (see the module docstring)."""
+def analyze_tables(
+    study_id: str,
+    tables: list[SiteTable],
+    prevalence: float | None = None,
+    covariates: dict[str, dict[str, float | str]] | None = None,
+) -> dict[str, Any]:
+    """Per-site and pooled results from each site's table and release sections (see the module docstring).
+
+    ``covariates`` (optional, per site id) are coordinator-supplied site covariates for the meta-regression
+    (:func:`federation.further_analysis.read_covariates`).
+    """
     if prevalence is not None and (
         isinstance(prevalence, bool) or not isinstance(prevalence, int | float) or not 0 <= prevalence <= 1
     ):
@@ -559,16 +570,24 @@ def analyze_tables(study_id: str, tables: list[SiteTable], prevalence: float | N
         if value is not None:
             result[key] = value
     result["pooled"] = pooled
+    # What a reviewer asks for beyond the headline (federation.further_analysis), kept apart from the above.
+    result.update(further_results(tables, pooled, covariates))
     return result
 
 
-def analyze(store: Store, study_id: str | None = None, prevalence: float | None = None) -> dict[str, Any]:
+def analyze(
+    store: Store,
+    study_id: str | None = None,
+    prevalence: float | None = None,
+    covariates: dict[str, dict[str, float | str]] | None = None,
+) -> dict[str, Any]:
     """Per-site and pooled results of a study, as ``federation analyze --json`` prints them.
 
-    ``prevalence`` (optional) is a pre-test probability at which every site's PPV and NPV are also given.
+    ``prevalence`` (optional) is a pre-test probability at which every site's PPV and NPV are also given;
+    ``covariates`` (optional) are coordinator-supplied site covariates for the meta-regression.
     """
     study = choose_study(store, study_id)
     releases = store.releases(study)
     if not releases:
         raise AnalysisError(f"{store.path}: study {study!r} has no ingested releases yet")
-    return analyze_tables(study, site_tables(releases), prevalence)
+    return analyze_tables(study, site_tables(releases), prevalence, covariates)

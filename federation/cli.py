@@ -215,12 +215,17 @@ def cmd_ingest(args: argparse.Namespace) -> int:
 
 def cmd_analyze(args: argparse.Namespace) -> int:
     from .analysis import analyze  # scipy: imported here so `federation --help` starts fast
+    from .further_analysis import read_covariates, summary_lines
 
-    result = analyze(Store(args.store), args.study_id)
+    covariates = read_covariates(args.covariates) if args.covariates else None
+    result = analyze(Store(args.store), args.study_id, covariates=covariates)
     if args.json:
         print_json(result)
     else:
         print(format_table(result))
+        further = summary_lines(result)
+        if further:
+            print("\n".join(["", *further]))
     return 0
 
 
@@ -291,9 +296,11 @@ def format_table(result: dict) -> str:
 def cmd_report(args: argparse.Namespace) -> int:
     from federation.protocol.cli_support import EXIT_OK, EXIT_PARTIAL
 
+    from .further_analysis import read_covariates
     from .report import write_report
 
-    report = write_report(args.store, args.out, args.study_id)
+    covariates = read_covariates(args.covariates) if args.covariates else None
+    report = write_report(args.store, args.out, args.study_id, covariates)
     missing = report.enrolled_without_release
     if args.json:
         print_json({"out": str(args.out), **report.to_dict()})
@@ -492,6 +499,13 @@ def build_parser() -> argparse.ArgumentParser:
     )
     p.add_argument("--store", type=Path, required=True, help="study store (SQLite file)")
     p.add_argument("--study-id", help="which study (needed when the store holds several)")
+    p.add_argument(
+        "--covariates",
+        type=Path,
+        metavar="FILE",
+        help="CSV of site covariates for the meta-regression: a site_id column and one column per covariate "
+        "(numbers, or categories such as the setting)",
+    )
     p.add_argument("--json", action="store_true", help="JSON on stdout")
     p.set_defaults(handler=cmd_analyze)
 
@@ -507,6 +521,13 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--store", type=Path, required=True, help="study store (SQLite file made by the other commands)")
     p.add_argument("--study-id", help="which study (needed when the store holds several)")
     p.add_argument("--out", type=Path, required=True, help="HTML file to write, e.g. report.html")
+    p.add_argument(
+        "--covariates",
+        type=Path,
+        metavar="FILE",
+        help="CSV of site covariates for the meta-regression: a site_id column and one column per covariate "
+        "(numbers, or categories such as the setting)",
+    )
     p.add_argument("--json", action="store_true", help="print what was written as JSON (sites, sections)")
     p.set_defaults(handler=cmd_report)
 

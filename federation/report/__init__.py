@@ -97,9 +97,14 @@ def _model_details(path: tuple, value: dict[str, Any]) -> str:
     return f"<details><summary>Model parameters and estimates: {esc(label)}</summary>{body}</details>"
 
 
-def build_report(store: Store, study_id: str | None = None) -> Report:
-    """Build the report for one study of ``store`` (see the module docstring for its sections)."""
-    inputs = gather(store, study_id)
+def build_report(
+    store: Store, study_id: str | None = None, covariates: dict[str, dict[str, float | str]] | None = None
+) -> Report:
+    """Build the report for one study of ``store`` (see the module docstring for its sections).
+
+    ``covariates`` (per site id) are coordinator-supplied site covariates for the meta-regression.
+    """
+    inputs = gather(store, study_id, covariates)
     analysis = inputs.analysis
     sections: list[tuple[str, str, str]] = [
         ("summary", "Summary", summary_section(inputs)),
@@ -138,14 +143,19 @@ def build_report(store: Store, study_id: str | None = None) -> Report:
     )
 
 
-def write_report(store_path: Path, out: Path, study_id: str | None = None) -> Report:
+def write_report(
+    store_path: Path,
+    out: Path,
+    study_id: str | None = None,
+    covariates: dict[str, dict[str, float | str]] | None = None,
+) -> Report:
     """Build the report from the store at ``store_path`` and write it atomically to ``out``."""
     if not Path(store_path).is_file():
         # Store() would create an empty database; a report of nothing helps no one.
         raise ValidationToolError(f"{store_path}: study store not found")
     store = Store(store_path)
     try:
-        report = build_report(store, study_id)
+        report = build_report(store, study_id, covariates)
     finally:
         store.close()
     write_atomic(out, report.html.encode("utf-8"))

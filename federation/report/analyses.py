@@ -12,6 +12,7 @@ import json
 from typing import Any
 
 from .figures import POOLED_ALIASES, calibration_figure, humanise, interval_forest, roc_figure
+from .further import FURTHER_SECTIONS, further_paragraph
 from .html import NULL_NOTE, cell_text, csv_link, esc, is_interval, table
 from .inputs import ReportInputs
 from .readers import get_path, interval_paths, se_paths
@@ -45,6 +46,7 @@ KNOWN = {
         "Two frozen models on the same participants: differences in sensitivity, specificity and AUC.",
     ),
 }
+KNOWN.update(FURTHER_SECTIONS)
 # Results the analysis files under another name than the analysis a request names.
 SECTION_ALIASES = {"roc": ("discrimination",)}
 SITE_CORE = {"site_id", "threshold", "tp", "fp", "fn", "tn", "suppressed", "sensitivity", "specificity", "flow"}
@@ -268,6 +270,7 @@ def _section(inputs: ReportInputs, name: str, requested: bool) -> str:
     analysis = inputs.analysis
     title, purpose = KNOWN.get(name, (humanise((name,)), "Results the analysis holds under this name."))
     parts = [f'<section id="analysis-{esc(name)}"><h2>{esc(title)}</h2><p>{esc(purpose)}</p>']
+    parts.append(further_paragraph(analysis, name))
     found = pooled_found = False
     if name == "roc":
         fig = roc_figure(inputs)

@@ -86,6 +86,11 @@ POOLED_ALIASES: dict[tuple, tuple] = {
     ("calibration", "citl"): ("calibration", "calibration_intercept"),
     ("calibration", "slope"): ("calibration", "calibration_slope"),
     ("calibration", "observed_expected_ratio"): ("calibration", "observed_expected"),
+    ("paired", "auc_difference"): ("paired", "auc_difference"),
+    **{
+        ("agreement", "tables", 0, "pairs", pair, "kappa"): ("agreement", pair, "kappa")
+        for pair in ("model_reference", "model_reference2", "reference_reference2")
+    },
 }
 
 

@@ -93,7 +93,9 @@ def _manifest(store: Store, sha256: str) -> dict[str, Any] | None:
     return value if isinstance(value, dict) else None
 
 
-def gather(store: Store, study_id: str | None = None) -> ReportInputs:
+def gather(
+    store: Store, study_id: str | None = None, covariates: dict[str, dict[str, float | str]] | None = None
+) -> ReportInputs:
     """Read the analysis, the releases (signatures checked again) and the requests of one study.
 
     Raises
@@ -104,7 +106,7 @@ def gather(store: Store, study_id: str | None = None) -> ReportInputs:
         A stored release no longer verifies against its site's enrolled key (exit code 2).
     """
     study = choose_study(store, study_id)
-    analysis = analyze(store, study)
+    analysis = analyze(store, study, covariates=covariates)
     rings = store.site_keys()
     records = []
     for stored in store.releases(study):

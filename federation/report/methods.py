@@ -72,6 +72,46 @@ REFERENCES: tuple[tuple[str, str], ...] = (
         "J R Stat Soc A 2009;172:137–159.",
     ),
     (
+        "knapp|hksj|hartung",
+        "Knapp G, Hartung J. Improved tests for a random effects meta-regression with a single covariate. "
+        "Stat Med 2003;22:2693–2710.",
+    ),
+    (
+        "steinhauser|multiple-threshold",
+        "Steinhauser S, Schumacher M, Rücker G. Modelling multiple thresholds in meta-analysis of diagnostic "
+        "test accuracy studies. BMC Med Res Methodol 2016;16:97.",
+    ),
+    (
+        "zwinderman",
+        "Zwinderman AH, Bossuyt PM. We should not pool diagnostic likelihood ratios in systematic reviews. "
+        "Stat Med 2008;27:687–697.",
+    ),
+    (
+        "deeks' funnel",
+        "Deeks JJ, Macaskill P, Irwig L. The performance of tests of publication bias and other sample size "
+        "effects in systematic reviews of diagnostic test accuracy was assessed. J Clin Epidemiol "
+        "2005;58:882–893.",
+    ),
+    (
+        "cohen's kappa",
+        "Sun S. Meta-analysis of Cohen's kappa. Health Serv Outcomes Res Methodol 2011;11:145–163.",
+    ),
+    (
+        "leave-one-site-out",
+        "Viechtbauer W, Cheung MWL. Outlier and influence diagnostics for meta-analysis. Res Synth Methods "
+        "2010;1:112–125.",
+    ),
+    (
+        "within sites",
+        "Fisher DJ, Carpenter JR, Morris TP, Freeman SC, Tierney JF. Meta-analytical methods to identify who "
+        "benefits most from treatments: daft, deluded, or deft approach? BMJ 2017;356:j573.",
+    ),
+    (
+        "meta-regression",
+        "van Houwelingen HC, Arends LR, Stijnen T. Advanced methods in meta-analysis: multivariate approach "
+        "and meta-regression. Stat Med 2002;21:589–624.",
+    ),
+    (
         "bivariate|reitsma",
         "Reitsma JB, Glas AS, Rutjes AWS, et al. Bivariate analysis of sensitivity and "
         "specificity produces informative summary measures in diagnostic reviews. J Clin "
@@ -176,6 +216,44 @@ def _measure_sentences(analysis: dict[str, Any]) -> list[str]:
     return out
 
 
+def _further_sentences(analysis: dict[str, Any]) -> list[str]:
+    """One sentence per further pooled method that was run (federation.further_analysis)."""
+    out = []
+    if isinstance((analysis.get("discrimination") or {}).get("summary_roc"), dict):
+        out.append(
+            " A summary ROC curve was fitted to every site's operating points at its own released band edges by a "
+            "multiple-threshold random-effects model (Steinhauser et al. 2016); band counts were never summed "
+            "across sites."
+        )
+    if analysis.get("agreement"):
+        out.append(
+            " Cohen's kappa (with the Fleiss, Cohen & Everitt standard error computed at each site) was pooled by "
+            "random effects (Sun 2011), and the share of participants on whom two ratings disagree on the logit scale."
+        )
+    if analysis.get("margin"):
+        out.append(" The error rate in each score-margin band was pooled on the logit scale, band by band.")
+    if analysis.get("likelihood_ratios"):
+        out.append(
+            " Likelihood ratios and the diagnostic odds ratio were derived from the bivariate summary point "
+            "(Zwinderman & Bossuyt 2008), not pooled site by site."
+        )
+    if analysis.get("small_site_effects"):
+        out.append(" Small-site effects were tested with Deeks' funnel plot asymmetry test (Deeks et al. 2005).")
+    if analysis.get("influence"):
+        out.append(" Influence was examined by refitting the bivariate model leaving out one site at a time.")
+    if analysis.get("subgroup_contrasts"):
+        out.append(
+            " Subgroup differences were estimated within each site and then pooled by random effects, so that "
+            "they are not confounded by differences between sites."
+        )
+    if analysis.get("meta_regression"):
+        out.append(
+            " Bivariate random-effects meta-regression examined one site covariate at a time (van Houwelingen "
+            "et al. 2002), with Wald tests; with few sites these are exploratory."
+        )
+    return out
+
+
 def methods_text(inputs: ReportInputs) -> tuple[str, list[str]]:
     """The Methods paragraph (HTML) and the references it cites."""
     analysis = inputs.analysis
@@ -221,6 +299,7 @@ def methods_text(inputs: ReportInputs) -> tuple[str, list[str]]:
             )
     text += _bivariate_sentences(pooled)
     text += _measure_sentences(analysis)
+    text += _further_sentences(analysis)
     corrected = pooled.get("continuity_corrected_sites") or []
     if corrected:
         text.append(f" For {len(corrected)} site(s) with a zero cell, 0.5 was added to every cell before pooling.")

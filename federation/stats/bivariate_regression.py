@@ -183,10 +183,13 @@ def bivariate_meta_regression(
 
     best = None
     spread = np.sqrt(np.maximum(np.var(y, axis=0), 0.05))
+    # Further starts only when the first does not converge (each fit costs a few hundred likelihood evaluations).
     for start in (np.array([spread[0], 0.0, spread[1]]), np.array([0.3, -0.1, 0.3]), np.array([1.0, 0.5, 1.0])):
-        found = optimize.minimize(objective, start, method="L-BFGS-B", options={"ftol": 1e-14, "gtol": 1e-9})
+        found = optimize.minimize(objective, start, method="L-BFGS-B", options={"ftol": 1e-12, "gtol": 1e-8})
         if best is None or found.fun < best.fun:
             best = found
+        if best.success:
+            break
     assert best is not None
     psi = _psi(best.x)
     beta, cov, _, _ = _gls(y, s, designs, psi)

@@ -322,9 +322,11 @@ def _fit(model: _Model) -> tuple[NDArray[np.float64], bool]:
 
     best = None
     for start in (np.array([0.5, 0.0, 0.5]), np.array([1.0, -0.5, 0.8]), np.array([0.2, 0.1, 0.2])):
-        found = optimize.minimize(objective, start, method="L-BFGS-B", options={"ftol": 1e-13, "gtol": 1e-9})
+        found = optimize.minimize(objective, start, method="L-BFGS-B", options={"ftol": 1e-12, "gtol": 1e-8})
         if best is None or found.fun < best.fun:
             best = found
+        if best.success:  # further starts only when the first does not converge
+            break
     assert best is not None
     return _psi(best.x), bool(best.success)
 

@@ -198,9 +198,7 @@ def test_leave_one_site_out_equals_refitting_without_the_site() -> None:
             refit.mean_logit_sensitivity - full.mean_logit_sensitivity, rel=1e-12
         )
         assert row.change_logit_specificity == pytest.approx(full.mean_logit_fpr - refit.mean_logit_fpr, rel=1e-12)
-    largest = max(
-        max(abs(r.change_logit_sensitivity), abs(r.change_logit_specificity)) for r in result.omitted
-    )
+    largest = max(max(abs(r.change_logit_sensitivity), abs(r.change_logit_specificity)) for r in result.omitted)
     assert result.largest_change_logit == pytest.approx(largest)
     assert LeaveOneOut.from_dict(json.loads(json.dumps(result.to_dict(), allow_nan=False))) == result
 
