@@ -476,9 +476,10 @@ def summary_lines(result: dict[str, Any]) -> list[str]:
         auc = _interval(discrimination.get("pooled_auc"))
         lines.append(f"AUC, site AUCs pooled on the logit scale: {auc or _why(discrimination.get('pooled_auc'))}")
         roc = discrimination.get("summary_roc") or {}
-        if _number(roc.get("auc")) is not None:
+        if _number(roc.get("area_under_curve")) is not None:
+            low, high = roc["area_under_curve_ci_low"], roc["area_under_curve_ci_high"]
             lines.append(
-                f"  {roc['auc_name']}: {roc['auc']:.3f} (95% CI {roc['auc_ci_low']:.3f} to {roc['auc_ci_high']:.3f})"
+                f"  {roc['area_under_curve_described']}: {roc['area_under_curve']:.3f} (95% CI {low:.3f} to {high:.3f})"
             )
         elif roc:
             lines.append(f"  summary ROC (multiple-threshold model): {_why(roc)}")

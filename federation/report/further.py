@@ -87,11 +87,13 @@ def _discrimination(analysis: dict[str, Any]) -> list[str]:
         )
     roc = found.get("summary_roc")
     if isinstance(roc, dict):
-        if _num(roc.get("auc")) is not None:
+        if _num(roc.get("area_under_curve")) is not None:
+            described = str(roc["area_under_curve_described"])
+            low, high = roc["area_under_curve_ci_low"], roc["area_under_curve_ci_high"]
             lines.append(
-                f"{str(roc['auc_name'])[:1].upper()}{str(roc['auc_name'])[1:]}: {roc['auc']:.3f} (95% CI "
-                f"{roc['auc_ci_low']:.3f} to {roc['auc_ci_high']:.3f}); {len(roc.get('sites_pooled', []))} sites, "
-                f"{roc.get('n_points')} operating points at their own band edges."
+                f"{described[:1].upper()}{described[1:]}: {roc['area_under_curve']:.3f} (95% CI {low:.3f} to "
+                f"{high:.3f}); {len(roc.get('sites_pooled', []))} sites, {roc.get('n_points')} operating points at "
+                "their own band edges."
             )
         else:
             lines.append("Summary ROC (multiple-threshold model): " + _why(roc))

@@ -101,13 +101,13 @@ class MultipleThresholdRoc(ResultRecord):
         ``None`` when a variance is 0.
     false_positive_rate, sensitivity : tuple of float
         The summary ROC curve on a grid of thresholds.
-    auc, auc_ci_low, auc_ci_high : float
+    area_under_curve, area_under_curve_ci_low, area_under_curve_ci_high : float
         Area under the summary ROC curve over false-positive rates 0 to 1 (Wald interval on the logit
         scale, delta method).
     observed_fpr_low, observed_fpr_high : float
         The range of false-positive rates the sites' own points span.
-    auc_name : str
-        What ``auc`` is, in words (with the range).
+    area_under_curve_described : str
+        What ``area_under_curve`` is, in words (with the range).
     operating_points : tuple of OperatingPoint
         Summary sensitivity and specificity at every band edge some site released.
     n_points : int
@@ -127,12 +127,12 @@ class MultipleThresholdRoc(ResultRecord):
     between_site_correlation: float | None
     false_positive_rate: tuple[float, ...]
     sensitivity: tuple[float, ...]
-    auc: float
-    auc_ci_low: float
-    auc_ci_high: float
+    area_under_curve: float
+    area_under_curve_ci_low: float
+    area_under_curve_ci_high: float
     observed_fpr_low: float
     observed_fpr_high: float
-    auc_name: str
+    area_under_curve_described: str
     operating_points: tuple[OperatingPoint, ...]
     n_points: int
     sites_pooled: tuple[str, ...]
@@ -144,7 +144,8 @@ class MultipleThresholdRoc(ResultRecord):
         pct = f"{100 * self.level:g}%"
         lines = [
             f"Summary ROC, multiple-threshold model ({len(self.sites_pooled)} sites, {self.n_points} points)",
-            f"  {self.auc_name}: {self.auc:.3f} ({pct} CI {self.auc_ci_low:.3f} to {self.auc_ci_high:.3f})",
+            f"  {self.area_under_curve_described}: {self.area_under_curve:.3f} ({pct} CI "
+            f"{self.area_under_curve_ci_low:.3f} to {self.area_under_curve_ci_high:.3f})",
         ]
         lines += [
             f"  score >= {p.threshold:g}: sensitivity {p.sensitivity:.3f}, specificity {p.specificity:.3f}"
@@ -482,12 +483,12 @@ def multiple_threshold_roc(
         between_site_correlation=rho,
         false_positive_rate=tuple(float(v) for v in fpr_curve[order]),
         sensitivity=tuple(float(v) for v in tpr_curve[order]),
-        auc=auc,
-        auc_ci_low=float(special.expit(special.logit(auc) - z * se)),
-        auc_ci_high=float(special.expit(special.logit(auc) + z * se)),
+        area_under_curve=auc,
+        area_under_curve_ci_low=float(special.expit(special.logit(auc) - z * se)),
+        area_under_curve_ci_high=float(special.expit(special.logit(auc) + z * se)),
         observed_fpr_low=low,
         observed_fpr_high=high,
-        auc_name=(
+        area_under_curve_described=(
             "area under the summary ROC curve of the multiple-threshold model, over false-positive rates 0 to 1 "
             f"(the sites' own points span false-positive rates {low:.2f} to {high:.2f}; outside that the curve "
             "is extrapolated)"

@@ -40,7 +40,7 @@ def test_further_sections_state_the_pooled_numbers(extended_store: Path, extende
     contrast = analysis["subgroup_contrasts"]["sex"]["sensitivity"][0]
     assert contrast["sentence"] in _text(page, "analysis-subgroup_contrasts")
     roc = _text(page, "analysis-roc")
-    auc = analysis["discrimination"]["summary_roc"]["auc"]
+    auc = analysis["discrimination"]["summary_roc"]["area_under_curve"]
     assert "over false-positive rates 0 to 1" in roc and f"{auc:.3f}" in roc
     assert "summary ROC (multiple-threshold model)" in page  # the curve's label in the ROC figure
     # Only one site has a second reference standard: its kappa is shown per site, the pool says why not.

@@ -123,14 +123,17 @@ def test_summary_auc_and_operating_points_on_breast_cancer_sites() -> None:
     # scikit-learn's AUC of all records pooled (what no site can send): 0.965. The model's curve is parametric
     # (straight in logit-logit space) and extrapolates past the sites' points (here 0.943, 95% CI 0.904-0.967).
     everyone = roc_auc_score(outcome, risk)
-    assert abs(fit.auc - everyone) < 0.03
-    assert fit.auc_ci_low < everyone < fit.auc_ci_high
-    assert fit.auc_ci_low < fit.auc < fit.auc_ci_high
+    assert abs(fit.area_under_curve - everyone) < 0.03
+    assert fit.area_under_curve_ci_low < everyone < fit.area_under_curve_ci_high
+    assert fit.area_under_curve_ci_low < fit.area_under_curve < fit.area_under_curve_ci_high
     assert 0.0 < fit.observed_fpr_low < fit.observed_fpr_high < 1.0
-    assert "over false-positive rates 0 to 1" in fit.auc_name and f"{fit.observed_fpr_high:.2f}" in fit.auc_name
+    assert (
+        "over false-positive rates 0 to 1" in fit.area_under_curve_described
+        and f"{fit.observed_fpr_high:.2f}" in fit.area_under_curve_described
+    )
     # Pooled per-site AUCs on the logit scale (the discrimination figure) agree with the summary curve's area.
     per_site = pool_auc([s.site_id for s in SITES], [s.auc for s in SITES], [s.auc_se for s in SITES])
-    assert abs(per_site.estimate - fit.auc) < 0.05
+    assert abs(per_site.estimate - fit.area_under_curve) < 0.05
     # At 0.5 (an edge of three sites) the summary operating point covers scikit-learn's sensitivity and
     # specificity of all records at that threshold.
     point = next(p for p in fit.operating_points if p.threshold == 0.5)
@@ -151,7 +154,7 @@ def test_a_withheld_band_keeps_the_edges_the_release_still_determines() -> None:
     fit = multiple_threshold_roc([withheld, *BANDS[1:]])
     complete = multiple_threshold_roc(BANDS)
     assert fit.n_points == complete.n_points - 1
-    assert abs(fit.auc - complete.auc) < 0.02
+    assert abs(fit.area_under_curve - complete.area_under_curve) < 0.02
     alone = SiteBands("lonely", (-math.inf, 0.5, math.inf), (None, 12), (40, 11))
     fit = multiple_threshold_roc([alone, *BANDS[1:]])
     assert [e.site_id for e in fit.sites_not_pooled] == ["lonely"]
