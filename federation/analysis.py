@@ -34,6 +34,8 @@ from collections.abc import Callable
 from dataclasses import dataclass, field
 from typing import Any
 
+from threadpoolctl import threadpool_limits
+
 from federation.protocol import Release, ValidationToolError
 from federation.ranges import primary_ranges
 from federation.stats import (
@@ -590,4 +592,7 @@ def analyze(
     releases = store.releases(study)
     if not releases:
         raise AnalysisError(f"{store.path}: study {study!r} has no ingested releases yet")
-    return analyze_tables(study, site_tables(releases), prevalence, covariates)
+    # Every matrix here is tiny: OpenBLAS threads cost far more than they give (about 8x slower fits on a busy
+    # 2-core machine), as in the site's disclosure audit.
+    with threadpool_limits(limits=1, user_api="blas"):
+        return analyze_tables(study, site_tables(releases), prevalence, covariates)
