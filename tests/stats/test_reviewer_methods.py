@@ -307,3 +307,33 @@ def test_bivariate_regression_refuses_too_few_sites() -> None:
     y, v = _pairs(_tables()[:3])
     with pytest.raises(PoolingError, match="needs at least 4 sites"):
         bivariate_meta_regression(y, v, np.array([0.0, 1.0, 2.0]), ["x"])
+
+
+# --- the bivariate SROC and the Rutter-Gatsonis HSROC model -------------------------------------------------------
+
+
+def test_sroc_follows_the_rutter_gatsonis_correspondence_on_breast_cancer_sites() -> None:
+    # Harbord et al. (2007) Biostatistics 8:239, Table 1 (from memory), written for logit FPR as in mada:
+    # mu_Se = (Theta + Lambda/2) e^(-beta/2), mu_FPR = (Theta - Lambda/2) e^(beta/2),
+    # var_Se = (s2_theta + s2_alpha/4) e^(-beta), var_FPR = (s2_theta + s2_alpha/4) e^(beta),
+    # cov = s2_theta - s2_alpha/4. The HSROC parameters must give back the bivariate fit they came from.
+    from scipy import integrate
+
+    fit = reitsma(_tables())
+    h = fit.hsroc
+    assert h is not None and fit.sroc is not None
+    b = h.shape_beta
+    assert (h.threshold_theta + h.accuracy_lambda / 2) * math.exp(-b / 2) == pytest.approx(
+        fit.mean_logit_sensitivity, rel=1e-10
+    )
+    assert (h.threshold_theta - h.accuracy_lambda / 2) * math.exp(b / 2) == pytest.approx(fit.mean_logit_fpr, rel=1e-10)
+    common = h.var_threshold + h.var_accuracy / 4
+    assert common * math.exp(-b) == pytest.approx(fit.tau2_logit_sensitivity, rel=1e-10)
+    assert common * math.exp(b) == pytest.approx(fit.tau2_logit_fpr, rel=1e-10)
+    covariance = fit.correlation * math.sqrt(fit.tau2_logit_sensitivity * fit.tau2_logit_fpr)
+    assert h.var_threshold - h.var_accuracy / 4 == pytest.approx(covariance, rel=1e-8)
+    # The SROC curve is the Rutter-Gatsonis curve at mean accuracy; its area over FPR 0 to 1 by scipy's quad.
+    curve = lambda fpr: special.expit(h.accuracy_lambda * math.exp(-b / 2) + math.exp(-b) * special.logit(fpr))  # noqa: E731
+    assert fit.sroc.sensitivity == pytest.approx([curve(x) for x in fit.sroc.false_positive_rate], rel=1e-12)
+    area, _ = integrate.quad(curve, 0, 1, epsabs=1e-12, limit=200)
+    assert fit.sroc.area_under_curve == pytest.approx(area, abs=1e-8)
