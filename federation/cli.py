@@ -215,7 +215,7 @@ def cmd_ingest(args: argparse.Namespace) -> int:
 
 def cmd_analyze(args: argparse.Namespace) -> int:
     from .analysis import analyze  # scipy: imported here so `federation --help` starts fast
-    from .further_analysis import read_covariates, summary_lines
+    from .further_analysis import read_covariates
 
     covariates = read_covariates(args.covariates) if args.covariates else None
     result = analyze(Store(args.store), args.study_id, covariates=covariates)
@@ -223,9 +223,6 @@ def cmd_analyze(args: argparse.Namespace) -> int:
         print_json(result)
     else:
         print(format_table(result))
-        further = summary_lines(result)
-        if further:
-            print("\n".join(["", *further]))
     return 0
 
 
@@ -290,6 +287,11 @@ def format_table(result: dict) -> str:
             "withheld cells kept in: a binomial model in which each withheld count lies somewhere in the range "
             "the site's rules allow"
         )
+    from .further_analysis import summary_lines  # the pooled results beyond the table (scipy: imported late)
+
+    further = summary_lines(result)
+    if further:
+        lines += ["", *further]
     return "\n".join(line.rstrip() for line in lines)
 
 

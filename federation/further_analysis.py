@@ -59,6 +59,11 @@ AGREEMENT_PAIRS = {
 }
 # Bivariate results in ``pooled`` to derive likelihood ratios from, the headline first.
 BIVARIATE_PREFERENCE = ("bivariate_glmm_suppression_aware", "bivariate_glmm", "bivariate")
+MODEL_WORDS = {
+    "bivariate_glmm_suppression_aware": "binomial model with withheld cells kept in",
+    "bivariate_glmm": "binomial model of complete tables",
+    "bivariate": "normal-approximation model of complete tables",
+}
 MAX_COVARIATES = 12
 
 
@@ -200,6 +205,7 @@ def _likelihood_ratios(pooled: dict[str, Any]) -> dict[str, Any] | None:
             continue
         result = _attempt(summary_ratios, mean, [[s1 * s1, c], [c, s2 * s2]])
         result["from_model"] = key
+        result["from_model_described"] = f"the bivariate {MODEL_WORDS.get(key, key)}"
         return result
     return None
 
@@ -490,7 +496,7 @@ def summary_lines(result: dict[str, Any]) -> list[str]:
     if isinstance(ratios, dict):
         if "diagnostic_odds_ratio" in ratios:
             lines.append(
-                f"From the bivariate summary point ({ratios.get('from_model')}): "
+                f"From the summary point of {ratios.get('from_model_described')}: "
                 f"LR+ {_interval(ratios['likelihood_ratio_positive'], 2)}, "
                 f"LR- {_interval(ratios['likelihood_ratio_negative'], 2)}, "
                 f"DOR {_interval(ratios['diagnostic_odds_ratio'], 1)}"
@@ -549,5 +555,6 @@ def summary_lines(result: dict[str, Any]) -> list[str]:
                 f"Meta-regression on {effect['name']} (k = {fit['n_sites']}): logit sensitivity "
                 f"{effect['logit_sensitivity']:+.2f}, logit specificity {effect['logit_specificity']:+.2f}; "
                 f"chi-squared({test['df']}) = {test['statistic']:.2f}, p = {test['p']:.3g}"
+                + (" (exploratory: few sites)" if fit.get("caution") else "")
             )
     return lines

@@ -151,7 +151,8 @@ def _ratios(analysis: dict[str, Any]) -> list[str]:
         f"Positive likelihood ratio {_interval(ratios['likelihood_ratio_positive'], 2)}.",
         f"Negative likelihood ratio {_interval(ratios['likelihood_ratio_negative'], 2)}.",
         f"Diagnostic odds ratio {_interval(ratios['diagnostic_odds_ratio'], 1)}.",
-        f"From the model {ratios.get('from_model')}; {ratios.get('method')}.",
+        f"From the summary point of {ratios.get('from_model_described', ratios.get('from_model'))}; "
+        f"{ratios.get('method')}.",
     ]
 
 
