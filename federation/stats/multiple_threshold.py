@@ -36,7 +36,7 @@ models for meta-analysis of diagnostic accuracy studies. Biostatistics 8:239–2
 from __future__ import annotations
 
 import math
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from typing import Literal
 
@@ -234,7 +234,7 @@ def _merged_counts(counts: tuple[int | None, ...], total: int | None) -> tuple[l
     return kept, merged
 
 
-def _points(site: SiteBands, transform) -> _SitePoints | str:  # type: ignore[no-untyped-def]
+def _points(site: SiteBands, transform: Callable[[NDArray[np.float64]], NDArray[np.float64]]) -> _SitePoints | str:
     if len(site.edges) != len(site.positives) + 1 or len(site.positives) != len(site.negatives):
         return "band edges and counts do not match"
     interior = np.array(site.edges[1:-1], dtype=float)
@@ -346,7 +346,7 @@ def _auc(beta: NDArray[np.float64]) -> float:
     return float(integrate.trapezoid(special.expit(intercept + slope * t) * x * (1 - x), t))
 
 
-def _gradient(function, beta: NDArray[np.float64]) -> NDArray[np.float64]:  # type: ignore[no-untyped-def]
+def _gradient(function: Callable[[NDArray[np.float64]], float], beta: NDArray[np.float64]) -> NDArray[np.float64]:
     out = np.zeros(beta.size)
     for j in range(beta.size):
         h = 1e-6 * max(1.0, abs(beta[j]))
@@ -419,8 +419,12 @@ def multiple_threshold_roc(
     if len(kept) < 2:
         raise PoolingError(f"a summary ROC needs at least 2 sites with banded counts, got {len(kept)}")
     x_all = np.concatenate([s.x for s in kept])
-    if np.ptp(x_all) == 0:
-        raise PoolingError("every site released the same single band edge: the slope in the threshold is not estimable")
+    for klass in (1, 0):
+        x_class = np.concatenate([s.x[s.klass == klass] for s in kept])
+        if x_class.size < 2 or np.ptp(x_class) == 0:
+            raise PoolingError(
+                "the sites' points lie at a single band edge: the slope in the threshold is not estimable"
+            )
     centre = float(np.mean(x_all))
     model = _Model(kept, centre, restricted=method == "REML")
     psi, converged = _fit(model)

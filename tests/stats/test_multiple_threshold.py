@@ -163,3 +163,10 @@ def test_a_withheld_band_keeps_the_edges_the_release_still_determines() -> None:
 def test_too_few_sites_raise() -> None:
     with pytest.raises(PoolingError, match="at least 2 sites"):
         multiple_threshold_roc(BANDS[:1])
+
+
+def test_a_single_shared_edge_is_not_estimable() -> None:
+    # Every site merged its bands down to one cut at 0.5: one threshold cannot give a slope (nor a curve).
+    sites = [_bands(s, (0.5,)) for s in SITES]
+    with pytest.raises(PoolingError, match="single band edge"):
+        multiple_threshold_roc(sites)
