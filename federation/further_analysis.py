@@ -43,6 +43,7 @@ from federation.stats import (
     pool_proportion,
     reitsma,
     summary_ratios,
+    within_site_auc_contrasts,
     within_site_contrasts,
 )
 
@@ -253,8 +254,9 @@ def _level_cells(level: dict[str, Any], threshold: float) -> dict[str, Any] | No
     return None
 
 
-def _subgroup_levels(tables: Sequence[SiteTable]) -> dict[str, list[tuple[str, str, dict[str, Any]]]]:
-    rows: dict[str, list[tuple[str, str, dict[str, Any]]]] = {}
+def _subgroup_levels(tables: Sequence[SiteTable]) -> dict[str, list[tuple[str, str, dict[str, Any], dict[str, Any]]]]:
+    """Per subgroup variable: (site, level, the level's 2x2 cells, the level's ROC section) rows."""
+    rows: dict[str, list[tuple[str, str, dict[str, Any], dict[str, Any]]]] = {}
     for table in tables:
         section = _section(table, "subgroups")
         if not isinstance(section, dict) or not isinstance(section.get("variables"), list):
@@ -265,8 +267,9 @@ def _subgroup_levels(tables: Sequence[SiteTable]) -> dict[str, list[tuple[str, s
             for level in variable["levels"]:
                 if isinstance(level, dict):
                     cells = _level_cells(level, table.threshold) or {}
+                    roc = level.get("roc") if isinstance(level.get("roc"), dict) else {}
                     rows.setdefault(str(variable.get("variable")), []).append(
-                        (table.site_id, str(level.get("level")), cells)
+                        (table.site_id, str(level.get("level")), cells, roc)
                     )
     return rows
 
@@ -279,7 +282,7 @@ def _subgroup_contrasts(tables: Sequence[SiteTable]) -> dict[str, Any] | None:
     for variable, entries in rows.items():
         result: dict[str, Any] = {}
         for measure, (events, others) in (("sensitivity", ("tp", "fn")), ("specificity", ("tn", "fp"))):
-            counts = [(_count(c.get(events)), _count(c.get(others))) for _, _, c in entries]
+            counts = [(_count(c.get(events)), _count(c.get(others))) for _, _, c, _ in entries]
             totals = [None if e is None or o is None else e + o for e, o in counts]
             try:
                 contrasts = within_site_contrasts(
@@ -293,6 +296,22 @@ def _subgroup_contrasts(tables: Sequence[SiteTable]) -> dict[str, Any] | None:
                 if contrasts
                 else _not_estimated("no level shares at least 2 sites with the reference level")
             )
+        auc = [_number(roc.get("auc")) for _, _, _, roc in entries]
+        if any(a is not None for a in auc):
+            try:
+                contrasts = within_site_auc_contrasts(
+                    [e[0] for e in entries],
+                    [e[1] for e in entries],
+                    auc,
+                    [_number(r.get("auc_se")) for *_, r in entries],
+                )
+                result["auc"] = (
+                    [c.to_dict() for c in contrasts]
+                    if contrasts
+                    else _not_estimated("no level shares at least 2 sites with the reference level")
+                )
+            except PoolingError as error:
+                result["auc"] = _not_estimated(str(error))
         out[variable] = result
     return out
 
@@ -361,10 +380,10 @@ def _release_covariates(tables: Sequence[SiteTable]) -> dict[str, dict[str, floa
         out[table.site_id] = values
     for variable, entries in _subgroup_levels(tables).items():
         by_site: dict[str, list[tuple[str, int | None]]] = {}
-        for site, level, cells in entries:
+        for site, level, cells, _ in entries:
             counts = [_count(cells.get(c)) for c in CELLS]
             by_site.setdefault(site, []).append((level, None if None in counts else sum(counts)))  # type: ignore[arg-type]
-        levels = list(dict.fromkeys(level for _, level, _ in entries))
+        levels = list(dict.fromkeys(level for _, level, _, _ in entries))
         for level in levels[1:]:
             for site, pairs in by_site.items():
                 totals = dict(pairs)

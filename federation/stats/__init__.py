@@ -74,7 +74,7 @@ from federation.stats.univariate import (
     logit_proportion,
     random_effects,
 )
-from federation.stats.within_site import WithinSiteContrast, within_site_contrasts
+from federation.stats.within_site import WithinSiteContrast, within_site_auc_contrasts, within_site_contrasts
 
 __all__ = [
     "BivariateRegression",
@@ -90,6 +90,7 @@ __all__ = [
     "pool_kappa",
     "pool_proportion",
     "summary_ratios",
+    "within_site_auc_contrasts",
     "within_site_contrasts",
     "RULES",
     "BivariateFit",

@@ -30,7 +30,7 @@ from scipy import stats
 from federation.stats.performance import PooledMeasure, _pool
 from federation.stats.serial import PoolingError, ResultRecord
 
-__all__ = ["WithinSiteContrast", "within_site_contrasts"]
+__all__ = ["WithinSiteContrast", "within_site_auc_contrasts", "within_site_contrasts"]
 
 
 @dataclass(frozen=True)
@@ -106,6 +106,66 @@ def within_site_contrasts(
         if x is None or total is None or total <= 0 or not 0 <= x <= total:
             continue
         usable.setdefault(name, {})[site] = _logit(int(x), int(total))
+    return _contrasts(site_ids, levels, usable, measure, reference, method, interval, level)
+
+
+def within_site_auc_contrasts(
+    site_ids: Sequence[str],
+    levels: Sequence[str],
+    auc: Sequence[float | None],
+    se: Sequence[float | None],
+    reference: str | None = None,
+    method: Literal["DL", "REML", "PM"] = "REML",
+    interval: Literal["wald", "hksj"] = "hksj",
+    level: float = 0.95,
+) -> tuple[WithinSiteContrast, ...]:
+    r"""Every level's AUC against the reference level's, the difference estimated inside each site and pooled.
+
+    Parameters
+    ----------
+    site_ids, levels : sequence of str
+        One entry per (site, level).
+    auc, se : sequence of float or None
+        Each level's AUC at the site and its (DeLong) standard error (``None``: not released).
+    reference, method, interval, level
+        As in :func:`within_site_contrasts`.
+
+    Returns
+    -------
+    tuple of WithinSiteContrast
+        ``pooled`` is the ratio of the AUCs' odds, :math:`\exp(\mathrm{logit}\,c_L - \mathrm{logit}\,c_R)`.
+
+    Notes
+    -----
+    On the logit scale (Debray et al. 2017): :math:`\mathrm{var}(\mathrm{logit}\,c) = \mathrm{SE}^2/\{c(1-c)\}^2`;
+    the levels hold different participants, so the variance of the difference is the sum.
+
+    References
+    ----------
+    Debray TPA, Damen JAAG, Snell KIE, et al. (2017). BMJ 356:i6460.
+    """
+    n = len(site_ids)
+    if not (len(levels) == len(auc) == len(se) == n):
+        raise PoolingError("site_ids, levels, auc and se must have the same length")
+    usable: dict[str, dict[str, tuple[float, float]]] = {}
+    for site, name, c, s in zip(site_ids, levels, auc, se, strict=True):
+        if c is None or s is None or not 0 < c < 1 or not s > 0 or not math.isfinite(s):
+            continue
+        usable.setdefault(name, {})[site] = (math.log(c / (1 - c)), (s / (c * (1 - c))) ** 2)
+    return _contrasts(site_ids, levels, usable, "AUC", reference, method, interval, level)
+
+
+def _contrasts(
+    site_ids: Sequence[str],
+    levels: Sequence[str],
+    usable: dict[str, dict[str, tuple[float, float]]],
+    measure: str,
+    reference: str | None,
+    method: Literal["DL", "REML", "PM"],
+    interval: Literal["wald", "hksj"],
+    level: float,
+) -> tuple[WithinSiteContrast, ...]:
+    """Pool, for each level against ``reference``, the within-site differences of (logit, variance) pairs."""
     order = list(dict.fromkeys(levels))
     if reference is None:
         present = [name for name in order if name in usable]
@@ -146,7 +206,7 @@ def within_site_contrasts(
             test = {"statistic": statistic, "distribution": "normal", "df": 0, "p": p}
             shown = f"z = {statistic:.2f}"
         sentence = (
-            f"{measure.capitalize()}, {name} vs {reference}, within {len(both)} sites: odds ratio "
+            f"{measure[:1].upper()}{measure[1:]}, {name} vs {reference}, within {len(both)} sites: odds ratio "
             f"{pooled.estimate:.2f} ({100 * level:g}% CI {pooled.ci_low:.2f} to {pooled.ci_high:.2f}); "
             f"difference between subgroups: {shown}, p = {p:.3g}"
         )

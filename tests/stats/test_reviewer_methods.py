@@ -31,6 +31,7 @@ from federation.stats import (
     pool_proportion,
     reitsma,
     summary_ratios,
+    within_site_auc_contrasts,
     within_site_contrasts,
 )
 from federation.stats.influence import LeaveOneOut
@@ -259,6 +260,50 @@ def test_within_site_contrast_uses_only_sites_with_both_levels() -> None:
     )
     assert contrast.pooled.sites_pooled == ("a", "b", "d") and contrast.reference == "x"
     assert contrast.between_subgroups["df"] == 2 and contrast.between_subgroups["distribution"] == "t"
+
+
+def test_within_site_auc_contrast_pools_logit_auc_differences_as_statsmodels() -> None:
+    # Per site and level: the AUC of the risk (scikit-learn's roc_auc_score) with DeLong's SE (placement values,
+    # tests/stats/prediction_example.delong); on the logit scale (Debray et al. 2017), the older-minus-younger
+    # differences pooled by DL with a Wald interval must equal statsmodels combine_effects.
+    from sklearn.metrics import roc_auc_score
+
+    from tests.stats.prediction_example import delong
+
+    data = load_breast_cancer()
+    x, y = data.data, 1 - data.target
+    order = np.random.default_rng(11).permutation(len(y))
+    dev, val = order[: int(0.4 * len(y))], order[int(0.4 * len(y)) :]
+    weak = [1, 4, 8]  # texture, smoothness, symmetry: a weaker model, so no level's AUC is exactly 1
+    model = LogisticRegression(max_iter=5000).fit(x[dev][:, weak], y[dev])
+    ids, levels, aucs, ses, differences, variances = [], [], [], [], [], []
+    for i, part in enumerate(np.array_split(val[np.argsort(x[val, 19], kind="stable")], 6)):
+        risk = model.predict_proba(x[part][:, weak])[:, 1]
+        group = np.random.default_rng(200 + i).integers(0, 2, part.size)
+        pairs = []
+        for level in (0, 1):
+            keep = group == level
+            auc, cov = delong(risk[keep], y[part][keep])
+            assert auc[0] == pytest.approx(roc_auc_score(y[part][keep], risk[keep]), rel=1e-12)
+            ids.append(f"site-{i + 1}")
+            levels.append(("younger", "older")[level])
+            aucs.append(float(auc[0]))
+            ses.append(float(math.sqrt(cov[0, 0])))
+            c, s = aucs[-1], ses[-1]
+            pairs.append((math.log(c / (1 - c)), (s / (c * (1 - c))) ** 2))
+        differences.append(pairs[1][0] - pairs[0][0])
+        variances.append(pairs[1][1] + pairs[0][1])
+    (contrast,) = within_site_auc_contrasts(ids, levels, aucs, ses, reference="younger", method="DL", interval="wald")
+    with np.errstate(invalid="ignore"):
+        reference = combine_effects(np.array(differences), np.array(variances), method_re="dl")
+    mean, interval = (
+        (reference.mean_effect_re, reference.conf_int(use_t=False)[1])
+        if reference.tau2 > 0
+        else (reference.mean_effect_fe, reference.conf_int(use_t=False)[0])
+    )
+    assert contrast.logit_difference == pytest.approx(mean, rel=1e-10)
+    assert (contrast.logit_difference_ci_low, contrast.logit_difference_ci_high) == pytest.approx(interval, rel=1e-10)
+    assert contrast.sentence.startswith("AUC, older vs younger, within 6 sites")
 
 
 # --- bivariate meta-regression -----------------------------------------------------------------------------------
