@@ -59,6 +59,7 @@ from federation.stats import (
     subgroup_analysis,
     wilson,
 )
+from federation.words import withheld_cells
 
 from .further_analysis import further_results
 from .store import Store, StoredRelease
@@ -233,7 +234,7 @@ def pool_accuracy(tables: list[SiteTable]) -> dict[str, Any]:
     for table in tables:
         hidden = _hidden(table)
         if hidden:
-            not_pooled.append({"site_id": table.site_id, "reason": "suppressed cells: " + ", ".join(hidden)})
+            not_pooled.append({"site_id": table.site_id, "reason": withheld_cells(hidden)})
             continue
         cells = {c: float(table.cells[c]) for c in CELLS}  # type: ignore[arg-type]
         if cells["tp"] + cells["fn"] == 0 or cells["fp"] + cells["tn"] == 0:
@@ -468,6 +469,20 @@ def _paired(tables: list[SiteTable]) -> dict[str, Any] | None:
     }
 
 
+def level_label(level: Any) -> str:
+    """A subgroup level as people read it: ``female``, ``under 24``, ``from 24 to under 36``, ``36 or more``."""
+    if not isinstance(level, dict):
+        return str(level)
+    low, high = level.get("low"), level.get("high")
+    if low is None and high is None:
+        return "all"
+    if low is None:
+        return f"under {high:g}"
+    if high is None:
+        return f"{low:g} or more"
+    return f"from {low:g} to under {high:g}"
+
+
 def _level_confusion(level: dict[str, Any], threshold: float) -> dict[str, Any] | None:
     tables = level.get("confusion")
     if not isinstance(tables, list):
@@ -491,7 +506,8 @@ def _subgroups(tables: list[SiteTable]) -> dict[str, Any] | None:
             name = str(variable.get("variable"))
             for level in variable["levels"]:
                 if isinstance(level, dict):
-                    rows.setdefault(name, []).append((table.site_id, str(level.get("level")), level, table.threshold))
+                    label = level_label(level.get("level"))
+                    rows.setdefault(name, []).append((table.site_id, label, level, table.threshold))
     if not rows:
         return None
     out: dict[str, Any] = {}

@@ -25,6 +25,7 @@ from federation.protocol.cli_support import ArgumentParser, option, print_json, 
 from .modelpack import model_format_for, pack_model
 from .store import Store
 from .study import analysis_specs, issue_request
+from .words import NOT_DEFINED_MARK, POOLED_MODELS, WITHHELD_LEGEND, WITHHELD_MARK
 
 
 def _read(path: Path, what: str) -> bytes:
@@ -232,11 +233,6 @@ def _fmt(value: dict | None) -> str:
     return f"{value['estimate']:.3f} ({value['ci_low']:.3f}–{value['ci_high']:.3f})"
 
 
-WITHHELD_MARK = "·"
-WITHHELD_LEGEND = "· withheld by the site's disclosure control"
-NOT_DEFINED_LEGEND = "— not defined (no participant, or a count it needs was withheld)"
-
-
 def format_table(result: dict) -> str:
     """The per-site accuracy table, its columns grouped by the reference standard as the report's flow boxes
     are: with the condition (screen +, screen −), without the condition (screen +, screen −), then
@@ -262,11 +258,13 @@ def format_table(result: dict) -> str:
         )
     pooled = result["pooled"]
     lines.append("-" * len(header))
-    label = "pooled (random effects)"
+    label = f"pooled: {POOLED_MODELS['pooled']}"
     lines.append(f"{label:<{width}}{_fmt(pooled['sensitivity']):<24}{_fmt(pooled['specificity']):<24}")
     aware = pooled.get("bivariate_glmm_suppression_aware") or {}
     if aware.get("sensitivity"):
-        label = f"withheld cells kept in ({len(aware.get('sites_pooled', []))} sites)"
+        label = (
+            f"pooled: {POOLED_MODELS['bivariate_glmm_suppression_aware']} ({len(aware.get('sites_pooled', []))} sites)"
+        )
         lines.append(f"{label:<{width}}{_fmt(aware['sensitivity']):<24}{_fmt(aware['specificity']):<24}")
     if pooled.get("sensitivity"):
         parts = [
@@ -280,11 +278,11 @@ def format_table(result: dict) -> str:
         lines.append(f"not pooled: {entry['site_id']} ({entry['reason']})")
     legend = [WITHHELD_LEGEND] if shown_withheld else []
     if any(site.get(m) is None for site in result["sites"] for m in ("sensitivity", "specificity")):
-        legend.append(NOT_DEFINED_LEGEND)
+        legend.append(f"{NOT_DEFINED_MARK} not defined from what the site released")
     lines += legend
     if aware.get("sensitivity"):
         lines.append(
-            "withheld cells kept in: a binomial model in which each withheld count lies somewhere in the range "
+            f"{POOLED_MODELS['bivariate_glmm_suppression_aware']}: each withheld count lies somewhere in the range "
             "the site's rules allow"
         )
     from .further_analysis import summary_lines  # the pooled results beyond the table (scipy: imported late)

@@ -13,6 +13,7 @@ from federation.protocol.cli_support import ArgumentParser, option, print_json, 
 from federation.protocol.crashpoints import crash_point
 from federation.protocol.errors import REFUSAL_CATEGORIES
 from federation.protocol.progress import records_progress
+from federation.words import CELLS, WITHHELD
 
 from . import review
 from .config import init_site, load_site
@@ -89,7 +90,7 @@ def cmd_run(args: argparse.Namespace) -> int:
     print(f"release for study {release.study_id}, request {release.request_id} written to {args.out}")
     print(f"  recorded in the ledger {site.ledger_path}")
     for table in release.confusion:
-        shown = ", ".join(f"{c}={'suppressed' if v is None else v}" for c, v in table.cells.items())
+        shown = "; ".join(f"{CELLS.get(c, c)} {WITHHELD if v is None else v}" for c, v in table.cells.items())
         print(f"  threshold {table.threshold}: {shown}")
     return 0
 
@@ -264,7 +265,7 @@ def build_parser() -> argparse.ArgumentParser:
         "run",
         help="answer one request offline and write the signed release file",
         description="Verify the request and bundle against the pinned coordinator keys and the site policy, read "
-        "and score the local records, suppress small counts, record the release in the ledger and write it, "
+        "and score the local records, withhold small counts, record the release in the ledger and write it, "
         "signed, to --out. Run `site-agent check` first to see what it would release. Exit codes: 0 written; "
         "1 bad input; 2 refused (signature, policy); 3 held for approval (require_approval = true).",
         epilog=_examples(
@@ -280,10 +281,10 @@ def build_parser() -> argparse.ArgumentParser:
 
     p = sub.add_parser(
         "check",
-        help="show what a request would release, without signing or sending anything",
-        description="A dry run: everything `site-agent run` does except signing, writing the ledger and writing "
+        help="preview what a request would release, without signing or sending anything",
+        description="A preview: everything `site-agent run` does except signing, writing the ledger and writing "
         "a release. Shows the participant flow, the counts that would be released and what the policy "
-        "suppresses. Use it to test a mapping and to show the ethics board a release before it exists.",
+        "withholds. Use it to test a mapping and to show the ethics board a release before it exists.",
         epilog=_examples(
             "site-agent check --site-dir SITE --request request.json --bundle model.bundle \\\n"
             "    --data export.csv --mapping mapping.toml"

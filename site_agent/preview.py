@@ -14,6 +14,7 @@ from typing import Any
 import pyarrow.compute as pc
 
 from federation.protocol import Schema, ValidationToolError, load_bundle
+from federation.words import CALIBRATION_INTERCEPT, CALIBRATION_SLOPE, CELLS, OBSERVED_EXPECTED, WITHHELD
 
 from .config import Site
 from .mapping import suggest_mapping
@@ -60,40 +61,44 @@ def format_check(preview: Preview) -> str:
     release = preview.release
     flow = release.flow
     lines = [
-        f"Check of study {release.study_id}, request {release.request_id}: nothing was signed, sent or recorded.",
+        f"Preview of study {release.study_id}, request {release.request_id}: nothing was signed, sent or recorded.",
         "",
         "Participant flow",
         f"  records read                {_show(flow.get('read'))}",
     ]
     for reason, value in flow.get("excluded", {}).items():
-        lines.append(f"  excluded: {reason:<17} {_show(value)}")
+        lines.append(f"  left out: {reason:<17} {_show(value)}")
     lines += [
         f"  analysed                    {_show(flow.get('analysed'))}",
-        f"    condition present         {_show(flow.get('analysed_positive'))}",
-        f"    condition absent          {_show(flow.get('analysed_negative'))}",
+        f"    with the condition        {_show(flow.get('analysed_positive'))}",
+        f"    without the condition     {_show(flow.get('analysed_negative'))}",
         "",
         "Results that would be released",
     ]
     for table in release.confusion:
-        cells = ", ".join(f"{c.upper()} {_show(v)}" for c, v in table.cells.items())
-        lines.append(f"  confusion at threshold {table.threshold:g}: {cells}")
+        lines.append(f"  screen result at threshold {table.threshold:g}:")
+        for cell in ("tp", "fn", "fp", "tn"):
+            lines.append(f"    {CELLS[cell]:<34} {_show(table.cells.get(cell))}")
     for name, result in release.extra.items():
         lines.append(f"  {name}: {_summary(name, result)}")
     hidden = sorted(preview.protected.suppressed)
-    lines += ["", f"Suppressed by the policy (minimum cell size {release.policy.get('min_cell_size')}): {len(hidden)}"]
+    lines += [
+        "",
+        f"Withheld by the site's rules (minimum cell size {release.policy.get('min_cell_size')}): {len(hidden)}",
+    ]
     for name in hidden[:40]:
         lines.append(f"  {name}")
     if len(hidden) > 40:
         lines.append(f"  ... and {len(hidden) - 40} more (see --json)")
     withheld = sorted(set(preview.counts.derived) - set(preview.protected.derived))
     if withheld:
-        lines.append(f"Statistics withheld because a count they rest on is suppressed: {', '.join(withheld[:10])}")
-    lines += ["", "The full release text: site-agent check ... --json"]
+        lines.append(f"Statistics withheld because a count they rest on is withheld: {', '.join(withheld[:10])}")
+    lines += ["", "The full release text: site-agent check ... --json; in plain words, once held: site-agent review"]
     return "\n".join(lines)
 
 
 def _show(value: Any) -> str:
-    return "suppressed" if value is None else str(value)
+    return WITHHELD if value is None else str(value)
 
 
 def _number(value: Any) -> str:
@@ -105,8 +110,8 @@ def _summary(name: str, result: Any) -> str:
         return f"{len(result['bands'])} score bands, AUC {_number(result['auc'])} (SE {_number(result['auc_se'])})"
     if name == "calibration":
         return (
-            f"{len(result['bins'])} risk bins, O/E {_number(result['observed_expected_ratio'])}, "
-            f"CITL {_number(result['citl'])}, slope {_number(result['slope'])}"
+            f"{len(result['bins'])} risk bands, {OBSERVED_EXPECTED} {_number(result['observed_expected_ratio'])}, "
+            f"{CALIBRATION_INTERCEPT} {_number(result['citl'])}, {CALIBRATION_SLOPE} {_number(result['slope'])}"
         )
     if name == "margin":
         return f"{len(result)} threshold(s), bands on each side of the threshold"
@@ -118,7 +123,7 @@ def _summary(name: str, result: Any) -> str:
     if name == "paired":
         return (
             f"AUC difference {_number(result['auc_difference'])} (SE {_number(result['auc_difference_se'])}), "
-            "paired 2x2 among diseased and non-diseased"
+            "screen results of both models among participants with and without the condition"
         )
     if name == "subgroups":
         return ", ".join(f"{v['variable']} ({len(v['levels'])} levels)" for v in result["variables"])

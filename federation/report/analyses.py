@@ -29,7 +29,7 @@ KNOWN = {
     "calibration": (
         "Calibration",
         "Whether predicted risks match observed risks (probability models only): "
-        "observed-to-expected ratio (O:E), calibration-in-the-large and slope.",
+        "O:E ratio (observed over expected), calibration intercept and calibration slope.",
     ),
     "subgroups": ("Subgroups", "Accuracy within subgroups the study named (for example age bands or sex)."),
     "margin": (

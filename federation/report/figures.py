@@ -5,6 +5,8 @@ from __future__ import annotations
 from statistics import NormalDist
 from typing import Any
 
+from federation.words import CALIBRATION_INTERCEPT, CALIBRATION_SLOPE, POOLED_MODELS, WITH_CONDITION, WITHOUT_CONDITION
+
 from .html import csv_link, esc, figure, fmt_number, fmt_percent, span
 from .inputs import ReportInputs
 from .plots import (
@@ -49,15 +51,25 @@ def humanise(path: tuple) -> str:
         "likelihood_ratio_negative": "negative likelihood ratio",
         "auc": "AUC",
         "area_under_curve": "AUC of the summary ROC curve, over false-positive rates from 0 to 1",
-        "citl": "calibration-in-the-large",
+        "citl": CALIBRATION_INTERCEPT,
+        "calibration_intercept": CALIBRATION_INTERCEPT,
+        "calibration_slope": CALIBRATION_SLOPE,
         "roc": "ROC",
         "auc_model": "AUC (this model)",
         "auc_compare": "AUC (comparison model)",
         "auc_difference": "AUC difference",
         "observed_expected_ratio": "O:E ratio",
-        "bivariate": "bivariate normal model (REML)",
-        "bivariate_glmm": "bivariate binomial GLMM",
-        "bivariate_glmm_suppression_aware": "bivariate binomial GLMM, suppressed cells kept in",
+        **{key: name for key, name in POOLED_MODELS.items() if key != "pooled"},
+        "analysed_positive": WITH_CONDITION,
+        "analysed_negative": WITHOUT_CONDITION,
+        "diseased": WITH_CONDITION,
+        "non_diseased": WITHOUT_CONDITION,
+        "events": WITH_CONDITION,
+        "non_events": WITHOUT_CONDITION,
+        "positive": WITH_CONDITION,
+        "negative": WITHOUT_CONDITION,
+        "called_positive": "screen +",
+        "called_negative": "screen −",
         "reference2": "second reference",
         "model_reference": "screen vs reference",
         "model_reference2": "screen vs second reference",
@@ -110,7 +122,7 @@ def _summary(entry: dict[str, Any] | None, percent: bool) -> ForestSummary | Non
         return None
     show = fmt_percent if percent else fmt_number
     return ForestSummary(
-        "Pooled (random effects)",
+        f"Pooled ({POOLED_MODELS['pooled']})",
         float(entry["estimate"]),
         float(entry["ci_low"]),
         float(entry["ci_high"]),
@@ -167,7 +179,7 @@ def interval_forest(
             x, n = site[counts[0]], site[counts[0]] + site[counts[1]]
         est, low, high = _site_interval(root, path, from_se)
         if est is None:
-            text = "suppressed" if site.get("suppressed") else "not available"
+            text = "withheld" if site.get("suppressed") else "not defined"
         elif low is None or high is None:
             text = f"{show(est)} (no interval)"
         else:

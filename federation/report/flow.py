@@ -40,7 +40,7 @@ def _reason_label(reason: str, short: bool = False) -> str:
 
 def _count(value: Any) -> str:
     if value is None:
-        return f'<span class="suppressed">{SUPPRESSED}</span>'
+        return f'<span class="suppressed" title="withheld by the site\'s disclosure control">{SUPPRESSED}</span>'
     return esc(fmt_number(value))
 
 
@@ -60,7 +60,7 @@ def _card(site: dict[str, Any]) -> str:
     if excluded and all(v is not None for v in excluded.values()):
         total = f"<b>{esc(fmt_number(sum(excluded.values())))}</b>"
     else:
-        total = "" if not excluded else "<b>some counts suppressed</b>"
+        total = "" if not excluded else "<b>some counts withheld</b>"
     leaf = '<div class="leaf"><div class="box">Screen +<br>{a}</div><div class="box">Screen −<br>{b}</div></div>'
     return (
         f'<div class="flow" data-site="{esc(site["site_id"])}"><h3>{esc(site["site_id"])}</h3>'
@@ -79,7 +79,7 @@ def _card(site: dict[str, Any]) -> str:
 
 
 def flow_rows(sites: list[dict[str, Any]]) -> tuple[list[str], list[list[Any]]]:
-    """Header and raw rows (None = suppressed) of the flow table, one row per site."""
+    """Header and raw rows (None = withheld) of the flow table, one row per site."""
     reasons = _reasons(sites)
     header = ["site", "read", *(f"excluded: {_reason_label(r, short=True)}" for r in reasons), "analysed"]
     header += [
@@ -107,12 +107,13 @@ def flow_section(analysis: dict[str, Any]) -> str:
     sites = analysis["sites"]
     header, rows = flow_rows(sites)
     html_rows = [[esc(row[0]), *(_count(v) for v in row[1:])] for row in rows]
-    csv_rows = [[("suppressed" if v is None else v) for v in row] for row in rows]
+    csv_rows = [[("withheld" if v is None else v) for v in row] for row in rows]
     return (
         '<section id="flow"><h2>Participant flow</h2>'
         "<p>For each site: how many records were read, how many were excluded and why, and how the analysed "
         "participants divide by the reference standard and by the screen result. Counts the site's disclosure "
-        "policy withheld are marked <em>suppressed</em>: such a count is small (below the site's minimum cell "
+        "policy withheld are marked · (withheld by the site's disclosure control): such a count is small (below "
+        "the site's minimum cell "
         "size) or would let a small count be worked out from the others.</p>"
         f'<div class="flow-grid">{"".join(_card(site) for site in sites)}</div>'
         + table(header, html_rows, "Participant flow by site")

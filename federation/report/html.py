@@ -16,6 +16,8 @@ from collections.abc import Iterable, Sequence
 from html import escape
 from typing import Any
 
+from federation.words import NOT_DEFINED_LEGEND, WITHHELD_LEGEND, WITHHELD_MARK
+
 __all__ = [
     "csv_link",
     "esc",
@@ -29,7 +31,7 @@ __all__ = [
     "traced",
 ]
 
-SUPPRESSED = "suppressed"
+SUPPRESSED = WITHHELD_MARK  # a withheld count in a table (legend: WITHHELD_LEGEND)
 
 
 def esc(value: object) -> str:
@@ -122,13 +124,14 @@ def json_link(filename: str, value: Any, label: str) -> str:
     )
 
 
-NULL_NOTE = "— withheld by the site's disclosure control, or not defined for these data."
+NULL_NOTE = f"{NOT_DEFINED_LEGEND}, or not released by the site."
+WITHHELD_NOTE = WITHHELD_LEGEND + "."
 
 
 def cell_text(value: object) -> str:
     """A table cell of analysis JSON: null is a dash (see ``NULL_NOTE``); intervals read estimate (low–high)."""
     if value is None:
-        return '<span class="suppressed" title="withheld or undefined">—</span>'
+        return '<span class="suppressed" title="not defined, or not released">—</span>'
     if is_interval(value):
         return esc(interval_text(value))  # type: ignore[arg-type]
     if isinstance(value, list) and all(not isinstance(v, (dict, list)) for v in value):

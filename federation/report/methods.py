@@ -12,6 +12,8 @@ import re
 from collections.abc import Iterator
 from typing import Any
 
+from federation.words import POOLED_MODELS
+
 from .html import esc
 from .inputs import ReportInputs
 
@@ -325,12 +327,13 @@ def methods_text(inputs: ReportInputs) -> tuple[str, list[str]]:
         ]
         if kept:
             handled += (
-                "; the suppression-aware binomial model kept them, counting each withheld cell as lying somewhere "
+                f"; the {POOLED_MODELS['bivariate_glmm_suppression_aware']} kept them, counting each withheld cell "
+                "as lying somewhere "
                 "between 1 and k − 1 (interval-censored) instead of dropping the site"
             )
         text.append(f" {handled}.")
     if flow_suppressed:
-        text.append(f" Some flow counts were withheld at {len(flow_suppressed)} site(s) and are shown as suppressed.")
+        text.append(f" Some flow counts were withheld at {len(flow_suppressed)} site(s) and are marked ·.")
     text.append(
         " No record left any site; the coordinator saw only the released counts and statistics listed in the "
         "provenance section, and every number in this report can be traced to them.</p>"

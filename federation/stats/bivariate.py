@@ -28,6 +28,7 @@ from federation.stats.results import Interval
 from federation.stats.serial import PoolingError, ResultRecord, SiteExclusion
 from federation.stats.tables import ReleasedTable
 from federation.stats.univariate import random_effects
+from federation.words import withheld_cells
 
 __all__ = [
     "BivariateFit",
@@ -639,7 +640,7 @@ def reitsma(
     excluded: list[SiteExclusion] = []
     for table in tables:
         if not table.is_complete:
-            excluded.append(SiteExclusion(table.site_id, "suppressed cells: " + ", ".join(table.suppressed)))
+            excluded.append(SiteExclusion(table.site_id, withheld_cells(table.suppressed)))
         elif table.tp + table.fn == 0:  # type: ignore[operator]
             excluded.append(SiteExclusion(table.site_id, "no participants with the condition"))
         elif table.fp + table.tn == 0:  # type: ignore[operator]

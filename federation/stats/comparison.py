@@ -460,7 +460,7 @@ def subgroup_analysis(
 def _paired_row(both: object, first: object, second: object, neither: object) -> tuple[float, float, bool] | str:
     cells = [_whole_number(c) if c is not None else None for c in (both, first, second, neither)]
     if any(c is None for c in cells):
-        return "a cell of the paired table is suppressed or missing"
+        return "a count of the paired table is withheld or missing"
     a, b, c, d = cells  # type: ignore[misc]
     if min(a, b, c, d) < 0:  # type: ignore[operator]
         return "a cell of the paired table is negative"

@@ -39,6 +39,7 @@ from federation.stats.proportions import _check_level
 from federation.stats.serial import PoolingError, SiteExclusion
 from federation.stats.suppression import SiteEvidence, site_evidence
 from federation.stats.tables import ReleasedTable
+from federation.words import withheld_cells
 
 __all__ = ["binomial_glmm", "glmm_accuracy", "marginal_log_likelihood"]
 
@@ -433,7 +434,7 @@ def glmm_accuracy(
     excluded: list[SiteExclusion] = []
     for table in tables:
         if not table.is_complete and suppressed == "drop":
-            excluded.append(SiteExclusion(table.site_id, "suppressed cells: " + ", ".join(table.suppressed)))
+            excluded.append(SiteExclusion(table.site_id, withheld_cells(table.suppressed)))
             continue
         try:
             ev = site_evidence(table)

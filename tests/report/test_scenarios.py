@@ -49,13 +49,13 @@ def test_one_site_explains_instead_of_a_diamond(one_site_store: Path, tmp_path: 
     assert [r["site"] for r in rows] == info["sites"]  # site rows only: no pooled row
 
 
-def test_suppressed_site_is_shown_as_suppressed(demo_store: Path, demo_report: Path) -> None:
+def test_withheld_site_is_shown_as_withheld(demo_store: Path, demo_report: Path) -> None:
     analysis = analyze_json(demo_store)
     suppressed = [s["site_id"] for s in analysis["sites"] if s["suppressed"]]
     assert suppressed == ["skarrow-specialist"]
     dom = parse(demo_report.read_text(encoding="utf-8"))
     card = next(n for n in dom.iter("div") if n.attrs.get("data-site") == "skarrow-specialist")
-    assert "suppressed" in card.text()
+    assert "withheld" in card.text() and "·" in card.text() and "suppressed" not in card.text()
     figure = dom.find_id("fig-forest-sensitivity")
     link = next(a for a in figure.iter("a") if a.attrs.get("download") == "forest-sensitivity.csv")
     rows = {r["site"]: r for r in _csv_from_link(link.attrs["href"])}

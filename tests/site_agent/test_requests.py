@@ -129,7 +129,7 @@ def test_check_shows_what_would_leave_and_records_nothing(cancer: Cancer, tmp_pa
     text = capsys.readouterr().out
     assert "nothing was signed, sent or recorded" in text
     assert "records read                569" in text
-    assert "Suppressed by the policy (minimum cell size 10)" in text
+    assert "Withheld by the site's rules (minimum cell size 10)" in text
     assert site_agent([*args, "--json"]) == 0
     report = json.loads(capsys.readouterr().out)
     assert report["signed"] is False and report["flow"]["read"] == 569

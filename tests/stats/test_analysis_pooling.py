@@ -12,6 +12,7 @@ import pytest
 
 from federation.analysis import SiteTable, analyze_tables
 from federation.stats import glmm_accuracy, pool_auc, pool_calibration_slope, reitsma
+from federation.words import withheld_cells
 from simulations.validate_stats import REASONS, release_table
 from tests.stats.prediction_example import sites
 from tests.stats.test_bivariate import AUDITC
@@ -65,7 +66,7 @@ def test_accuracy_pooling_keeps_foundation_keys_and_adds_bivariate_results() -> 
     json.dumps(result, allow_nan=False)  # no NaN or infinity anywhere
     assert FOUNDATION_SITE_KEYS <= set(result["sites"][0]) and FOUNDATION_POOLED_KEYS <= set(result["pooled"])
     pooled = result["pooled"]
-    assert pooled["sites_not_pooled"] == [{"site_id": "small-site", "reason": "suppressed cells: tp, fp, fn, tn"}]
+    assert pooled["sites_not_pooled"] == [{"site_id": "small-site", "reason": withheld_cells(("tp", "fp", "fn", "tn"))}]
     direct = reitsma([t.released_table() for t in tables])
     assert pooled["bivariate"]["mean_logit_sensitivity"] == direct.mean_logit_sensitivity
     assert pooled["bivariate"]["sroc"]["area_under_curve"] == direct.sroc.area_under_curve

@@ -20,6 +20,7 @@ from federation.stats import (
     reitsma,
     sroc_auc_grid,
 )
+from federation.words import withheld_cells
 
 # AuditC (R package mada, data(AuditC); Doebler 2020): 14 studies of a three-item alcohol screening
 # questionnaire. Counts as listed, in mada's row order, by a public test file that checks a re-implementation
@@ -204,7 +205,7 @@ def test_suppressed_and_empty_sites_are_listed_not_pooled() -> None:
     fit = reitsma(tables)
     reasons = {e.site_id: e.reason for e in fit.sites_not_pooled}
     assert reasons == {
-        "suppressed-site": "suppressed cells: tp, fp, fn, tn",
+        "suppressed-site": withheld_cells(("tp", "fp", "fn", "tn")),
         "no-condition": "no participants with the condition",
     }
     assert fit.n_sites == 5

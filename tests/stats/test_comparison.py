@@ -152,7 +152,7 @@ def test_paired_table_without_discordant_pairs_uses_the_named_fallback() -> None
     result = paired_difference(["a", "b", "c"], [30, 40, 25], [0, 5, 2], [0, 1, 4], [10, 12, 9])
     assert any("0.5 added to both discordant cells at a" in note for note in result.notes)
     suppressed = paired_difference(["a", "b", "c"], [30, 40, 25], [None, 5, 2], [3, 1, 4], [10, 12, 9])
-    assert suppressed.sites_not_pooled[0].reason == "a cell of the paired table is suppressed or missing"
+    assert suppressed.sites_not_pooled[0].reason == "a count of the paired table is withheld or missing"
 
 
 def test_auc_difference_uses_the_paired_delong_variance() -> None:
