@@ -313,7 +313,11 @@ def methods_text(inputs: ReportInputs) -> tuple[str, list[str]]:
             "otherwise be worked out from released totals."
         )
     if suppressed_sites:
-        dropped = [e["site_id"] for e in pooled.get("sites_not_pooled", []) if "suppress" in str(e.get("reason"))]
+        dropped = [
+            e["site_id"]
+            for e in pooled.get("sites_not_pooled", [])
+            if any(word in str(e.get("reason")) for word in ("withheld", "suppress"))
+        ]
         handled = (
             f"{len(dropped)} site(s) with a withheld cell in the four-cell table were left out of the univariate "
             "pooled estimate, which can bias the pool toward larger sites"
