@@ -571,9 +571,9 @@ def summary_lines(result: dict[str, Any]) -> list[str]:
         for effect in fit["effects"]:
             test = effect["covariate_test"]
             lines.append(
-                f"Meta-regression on {effect['name']} (k = {fit['n_sites']}): logit sensitivity "
+                f"Meta-regression on {effect['name']} over {fit['n_sites']} sites: logit sensitivity "
                 f"{effect['logit_sensitivity']:+.2f}, logit specificity {effect['logit_specificity']:+.2f}; "
-                f"chi-squared({test['df']}) = {test['statistic']:.2f}, p = {test['p']:.3g}"
+                f"joint test χ²({test['df']}) = {test['statistic']:.2f}, p = {test['p']:.2g}"
                 + (" (exploratory: few sites)" if fit.get("caution") else "")
             )
     return lines

@@ -173,7 +173,7 @@ def models_table(analysis: dict[str, Any]) -> str:
     return (
         "<p>The same releases pooled by each model the analysis ran (PI: 95% prediction interval for a new site). "
         "The bivariate models respect the correlation between sensitivity and specificity; the binomial model "
-        "needs no continuity correction, and its suppression-aware form keeps sites whose small cells were "
+        "needs no continuity correction, and its form with withheld cells kept in keeps sites whose small cells were "
         "withheld, which stops the pool leaning toward large sites.</p>"
         + table(header, rows, "Pooled estimates by model")
     )
