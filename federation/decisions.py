@@ -1,0 +1,266 @@
+"""After the study: pooled accuracy at each released threshold, the threshold a criterion picks, net benefit.
+
+Reads only what the sites already released: the 2×2 tables at the request's thresholds (``confusion``) or,
+when fewer than two thresholds were asked for, the 2×2 at each edge of the released ROC bands (the counts
+of the bands above an edge are the screen-positives at that edge). A site whose bands around an edge were
+withheld is left out at that edge. The statistics are in :mod:`federation.stats.threshold` and
+:mod:`federation.stats.net_benefit`; this module turns stored releases into their input and their results
+into JSON and tidy rows (for the report and ``federation export``).
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Sequence
+from typing import Any
+
+from federation.stats import PoolingError, ReleasedTable
+from federation.stats.net_benefit import decision_curve
+from federation.stats.threshold import CAUTION, choose_threshold, pool_by_threshold
+
+from .analysis import site_tables
+from .store import StoredRelease
+
+__all__ = ["DEFAULT_BOOTSTRAP", "decision_analysis", "decision_rows", "threshold_tables"]
+
+DEFAULT_BOOTSTRAP = 40
+MAX_THRESHOLDS = 25
+
+
+def _count(value: Any) -> int | None:
+    return value if isinstance(value, int) and not isinstance(value, bool) and value >= 0 else None
+
+
+def _edge(value: Any) -> float | None:
+    if isinstance(value, bool) or not isinstance(value, int | float) or not math.isfinite(value):
+        return None
+    return float(value)
+
+
+def _band_tables(releases: list[StoredRelease]) -> dict[float, list[ReleasedTable]]:
+    """2×2 tables at every interior edge of each site's released ROC bands."""
+    out: dict[float, list[ReleasedTable]] = {}
+    for table in site_tables(releases):
+        roc = table.extra.get("roc")
+        bands = roc.get("bands") if isinstance(roc, dict) else None
+        if not isinstance(bands, list) or not all(isinstance(b, dict) for b in bands):
+            continue
+        released = table.released_table()
+        lows = [_edge(b.get("low")) for b in bands]
+        positive = [_count(b.get("positive")) for b in bands]
+        negative = [_count(b.get("negative")) for b in bands]
+        for j, low in enumerate(lows):
+            if j == 0 or low is None:
+                continue
+            above = range(j, len(bands))
+            below = range(j)
+            parts = [positive[i] for i in above], [negative[i] for i in above]
+            rest = [positive[i] for i in below], [negative[i] for i in below]
+            if any(v is None for group in (*parts, *rest) for v in group):
+                continue  # a withheld band: the 2x2 at this edge is not known
+            tp, fp = sum(parts[0]), sum(parts[1])  # type: ignore[arg-type]
+            fn, tn = sum(rest[0]), sum(rest[1])  # type: ignore[arg-type]
+            if (released.positives is not None and released.positives != tp + fn) or (
+                released.negatives is not None and released.negatives != fp + tn
+            ):
+                continue
+            out.setdefault(low, []).append(ReleasedTable.complete(table.site_id, tp, fp, fn, tn))
+    return out
+
+
+def threshold_tables(releases: list[StoredRelease]) -> tuple[dict[float, list[ReleasedTable]], str]:
+    """Each released threshold's 2×2 tables (latest release per site), and where they came from.
+
+    Returns
+    -------
+    tables : dict of float to list of ReleasedTable
+        Withheld cells are ``None`` with the release's minimum cell size, so that the GLMM censors them.
+    source : str
+        ``"confusion"`` (the request's thresholds) or ``"roc_bands"`` (edges of the released ROC bands).
+    """
+    thresholds = sorted({t.threshold for stored in releases for t in stored.release.confusion})
+    tables: dict[float, list[ReleasedTable]] = {}
+    for threshold in thresholds:
+        rows = []
+        for table in site_tables(releases, threshold):
+            try:
+                rows.append(table.released_table())
+            except PoolingError:
+                continue
+        if rows:
+            tables[threshold] = rows
+    if len(tables) >= 2:
+        return tables, "confusion"
+    bands = _band_tables(releases)
+    if len(bands) >= 2:
+        return bands, "roc_bands"
+    return tables, "confusion"
+
+
+def _thin(tables: dict[float, list[ReleasedTable]]) -> dict[float, list[ReleasedTable]]:
+    """At most MAX_THRESHOLDS thresholds, evenly spread (a fine ROC banding would make the report slow)."""
+    keys = sorted(tables)
+    if len(keys) <= MAX_THRESHOLDS:
+        return tables
+    step = (len(keys) - 1) / (MAX_THRESHOLDS - 1)
+    chosen = sorted({keys[round(i * step)] for i in range(MAX_THRESHOLDS)})
+    return {k: tables[k] for k in chosen}
+
+
+def decision_analysis(
+    releases: list[StoredRelease],
+    score_kind: str | None,
+    target_sensitivity: float | None = None,
+    bootstrap: int = DEFAULT_BOOTSTRAP,
+    range_low: float = 0.01,
+    range_high: float = 0.99,
+    seed: int = 2026,
+) -> dict[str, Any]:
+    """Pooled accuracy by threshold, the threshold chosen (target sensitivity or Youden), and net benefit.
+
+    Parameters
+    ----------
+    releases : list of StoredRelease
+        One study's stored releases.
+    score_kind : {"probability", "points"} or None
+        From the bundle manifest; net benefit needs a predicted risk.
+    target_sensitivity : float, optional
+        Choose the highest threshold whose pooled sensitivity reaches it; without it, maximise Youden's index.
+    bootstrap : int, default 40
+        Bootstrap resamples of sites for the threshold's interval.
+    range_low, range_high : float
+        The coordinator's range of threshold probabilities for the decision curve.
+    seed : int
+
+    Returns
+    -------
+    dict
+        ``source``, ``thresholds`` (one pooled result per threshold), ``choice``, ``net_benefit`` and
+        ``caution``; a part that cannot be computed is ``{"status": "not estimable: <reason>"}``.
+    """
+    tables, source = threshold_tables(releases)
+    tables = _thin(tables)
+    out: dict[str, Any] = {"source": source, "caution": CAUTION}
+    if len(tables) < 2:
+        reason = "not estimable: the sites released 2x2 tables at fewer than 2 thresholds (ask for --thresholds)"
+        out.update({"thresholds": [], "choice": {"status": reason}, "net_benefit": {"status": reason}})
+        return out
+    pooled = pool_by_threshold(tables)
+    out["thresholds"] = [p.to_dict() for p in pooled]
+    criterion = "target_sensitivity" if target_sensitivity is not None else "youden"
+    try:
+        choice = choose_threshold(tables, criterion, target_sensitivity, pooled=pooled, bootstrap=bootstrap, seed=seed)
+        out["choice"] = choice.to_dict()
+    except PoolingError as error:
+        out["choice"] = {"status": f"not estimable: {error}"}
+    if score_kind != "probability":
+        out["net_benefit"] = {
+            "status": "not estimable: net benefit needs the model's score to be a predicted risk, so that a "
+            "threshold is a threshold probability; this model's score is " + (score_kind or "of unknown kind")
+        }
+    else:
+        try:
+            out["net_benefit"] = decision_curve(tables, range_low, range_high).to_dict()
+        except PoolingError as error:
+            out["net_benefit"] = {"status": f"not estimable: {error}"}
+    return out
+
+
+def _interval(value: Any, prefix: str) -> dict[str, Any]:
+    value = value if isinstance(value, dict) else {}
+    return {
+        prefix: value.get("estimate"),
+        f"{prefix}_ci_low": value.get("ci_low"),
+        f"{prefix}_ci_high": value.get("ci_high"),
+    }
+
+
+def _pooled(value: Any, prefix: str) -> dict[str, Any]:
+    value = value if isinstance(value, dict) else {}
+    return {
+        prefix: value.get("estimate"),
+        f"{prefix}_ci_low": value.get("ci_low"),
+        f"{prefix}_ci_high": value.get("ci_high"),
+        f"{prefix}_pi_low": value.get("pi_low"),
+        f"{prefix}_pi_high": value.get("pi_high"),
+        f"{prefix}_tau2": value.get("tau2"),
+    }
+
+
+def decision_rows(result: dict[str, Any]) -> dict[str, list[dict[str, Any]]]:
+    """Tidy rows (one observation per row, flat columns) of :func:`decision_analysis`'s result.
+
+    Returns
+    -------
+    dict
+        ``threshold_accuracy`` (one row per threshold), ``threshold_choice`` (one row),
+        ``net_benefit_sites`` (one row per site and threshold probability) and ``net_benefit_pooled`` (one
+        row per threshold probability).
+    """
+    accuracy = []
+    for entry in result.get("thresholds", []):
+        row: dict[str, Any] = {"threshold": entry.get("threshold"), "status": entry.get("status")}
+        for measure in ("sensitivity", "specificity"):
+            row |= _interval(entry.get(measure), measure)
+            prediction = entry.get(f"{measure}_prediction") or {}
+            row[f"{measure}_pi_low"] = prediction.get("ci_low")
+            row[f"{measure}_pi_high"] = prediction.get("ci_high")
+            row[f"tau_logit_{measure}"] = entry.get(f"tau_logit_{measure}")
+        row["sites_pooled"] = len(entry.get("sites_pooled", []))
+        row["sites_not_pooled"] = len(entry.get("sites_not_pooled", []))
+        accuracy.append(row)
+    choice = result.get("choice", {})
+    choice_row = {
+        "criterion": choice.get("criterion"),
+        "target": choice.get("target"),
+        "status": choice.get("status"),
+        "threshold": choice.get("threshold"),
+        "threshold_ci_low": choice.get("ci_low"),
+        "threshold_ci_high": choice.get("ci_high"),
+        **_interval(choice.get("sensitivity"), "sensitivity"),
+        **_interval(choice.get("specificity"), "specificity"),
+        "bootstrap_replicates": choice.get("replicates"),
+    }
+    sites, pooled = [], []
+    for point in result.get("net_benefit", {}).get("points", []) if isinstance(result.get("net_benefit"), dict) else []:
+        pt = point.get("threshold_probability")
+        for site in point.get("sites", []):
+            sites.append(
+                {
+                    "threshold_probability": pt,
+                    "site_id": site.get("site_id"),
+                    "net_benefit_model": site.get("model"),
+                    "net_benefit_model_se": site.get("model_se"),
+                    "net_benefit_screen_all": site.get("screen_all"),
+                    "net_benefit_screen_none": 0.0,
+                    "advantage_over_screen_all": site.get("advantage_over_all"),
+                    "prevalence": site.get("prevalence"),
+                    "analysed": site.get("analysed"),
+                }
+            )
+        pooled.append(
+            {
+                "threshold_probability": pt,
+                "status": point.get("status"),
+                **_pooled(point.get("model"), "net_benefit_model"),
+                **_pooled(point.get("screen_all"), "net_benefit_screen_all"),
+                **_pooled(point.get("advantage_over_all"), "advantage_over_screen_all"),
+                "net_benefit_screen_none": 0.0,
+                "sites_not_pooled": len(point.get("sites_not_pooled", [])),
+            }
+        )
+    return {
+        "threshold_accuracy": accuracy,
+        "threshold_choice": [choice_row],
+        "net_benefit_sites": sites,
+        "net_benefit_pooled": pooled,
+    }
+
+
+def score_kind_of(manifests: Sequence[dict[str, Any] | None]) -> str | None:
+    """The score kind of the first bundle manifest that states one."""
+    for manifest in manifests:
+        score = manifest.get("score") if isinstance(manifest, dict) else None
+        if isinstance(score, dict) and isinstance(score.get("kind"), str):
+            return score["kind"]
+    return None
