@@ -227,6 +227,22 @@ def cmd_analyze(args: argparse.Namespace) -> int:
     return 0
 
 
+def cmd_plan(args: argparse.Namespace) -> int:
+    from .plan import format_plan, plot_plan, run_plan  # scipy and matplotlib: imported when planning
+
+    result = run_plan(args)
+    if args.plot:
+        plot_plan(result, args.plot)
+        result["plot"] = str(args.plot)
+    if args.json:
+        print_json(result)
+    else:
+        print(format_plan(result))
+        if args.plot:
+            print(f"wrote {args.plot}")
+    return 0
+
+
 def _fmt(value: dict | None) -> str:
     if not value:
         return "—"
@@ -530,6 +546,53 @@ def build_parser() -> argparse.ArgumentParser:
     )
     p.add_argument("--json", action="store_true", help="print what was written as JSON (sites, sections)")
     p.set_defaults(handler=cmd_report)
+
+    p = sub.add_parser(
+        "plan",
+        help="before the study: expected interval widths and how many sites it takes, by simulation",
+        description="Simulate consortia from what you expect (sensitivity, specificity, prevalence range, "
+        "between-site SD on the logit scale, site sizes, minimum cell size), withhold each simulated table as a "
+        "site's minimum-cell-size rule would, pool it with the headline model (exact binomial GLMM, withheld "
+        "cells censored) and report the median width of the pooled and prediction intervals and the share of "
+        "sites whose tables come back partly withheld. With --target-width, search for the fewest sites of "
+        "--participants each whose pooled interval is no wider than that. Each simulated consortium takes "
+        "about 0.1-1 s; the search runs several plans.",
+        epilog=_examples(
+            "federation plan --sensitivity 0.85 --specificity 0.8 --prevalence 0.05:0.3 --tau-sensitivity 0.5 "
+            "--tau-specificity 0.5 --sites 8 --participants 300",
+            "federation plan ... --target-width 0.1 --plot plan.svg --json > plan.json",
+        ),
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
+    p.add_argument("--sensitivity", type=float, required=True, help="expected sensitivity (0-1)")
+    p.add_argument("--specificity", type=float, required=True, help="expected specificity (0-1)")
+    p.add_argument(
+        "--prevalence", required=True, help="expected prevalence, or a range LOW:HIGH across sites (e.g. 0.05:0.3)"
+    )
+    p.add_argument("--tau-sensitivity", type=float, default=0.5, help="between-site SD of logit sensitivity (0.5)")
+    p.add_argument("--tau-specificity", type=float, default=0.5, help="between-site SD of logit specificity (0.5)")
+    p.add_argument(
+        "--correlation", type=float, default=0.0, help="between-site correlation of logit sensitivity and specificity"
+    )
+    p.add_argument("--site-sizes", help="participants expected at each site, e.g. 150,300,800")
+    p.add_argument("--sites", type=int, help="number of sites (with --participants)")
+    p.add_argument("--participants", type=int, help="participants per site")
+    p.add_argument("--min-cell-size", type=int, default=10, help="the sites' minimum cell size (10)")
+    p.add_argument("--zeros-withheld", action="store_true", help="the sites withhold counts of 0 as well")
+    p.add_argument("--level", type=float, default=0.95, help="confidence level (0.95)")
+    p.add_argument("--target-width", type=float, help="widest acceptable pooled interval (full width, e.g. 0.1)")
+    p.add_argument(
+        "--measure",
+        choices=("sensitivity", "specificity", "both"),
+        default="both",
+        help="which interval must meet --target-width (both)",
+    )
+    p.add_argument("--max-sites", type=int, default=100, help="largest number of sites the search tries (100)")
+    p.add_argument("--simulations", type=int, default=20, help="simulated consortia per plan (20)")
+    p.add_argument("--seed", type=int, default=2026, help="random seed; the same seed gives the same plan")
+    p.add_argument("--plot", type=Path, help="write the plan's figure to this file (.svg or .png)")
+    p.add_argument("--json", action="store_true", help="JSON on stdout")
+    p.set_defaults(handler=cmd_plan)
 
     from .deploy.commands import add_deploy_commands
 

@@ -566,6 +566,7 @@ def sites_needed(
     seed: int | None = 2026,
     max_sites: int = 100,
     points: int = 5,
+    known: Sequence[PlanResult] = (),
 ) -> SitesNeeded:
     """The fewest sites of ``participants`` each whose pooled interval is no wider than ``target_width``.
 
@@ -589,6 +590,8 @@ def sites_needed(
         As in :func:`plan_consortium`.
     max_sites : int, default 100
         Largest number of sites tried.
+    known : sequence of PlanResult, optional
+        Plans already simulated with the same scenario, participants, simulations, seed and points (reused).
 
     Returns
     -------
@@ -607,6 +610,9 @@ def sites_needed(
     if isinstance(max_sites, bool) or not isinstance(max_sites, int) or not 2 <= max_sites <= 500:
         raise PoolingError("max_sites must be a whole number between 2 and 500")
     tried: dict[int, PlanResult] = {}
+    for result in known:
+        if result.scenario == scenario.with_sites(result.scenario.n_sites, participants):
+            tried[result.scenario.n_sites] = result
 
     def plan(k: int) -> PlanResult:
         if k not in tried:
