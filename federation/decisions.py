@@ -19,12 +19,11 @@ from federation.stats.net_benefit import decision_curve
 from federation.stats.threshold import CAUTION, choose_threshold, pool_by_threshold
 
 from .analysis import site_tables
-from .store import StoredRelease
 
 __all__ = ["DEFAULT_BOOTSTRAP", "decision_analysis", "decision_rows", "threshold_tables"]
 
 DEFAULT_BOOTSTRAP = 40
-MAX_THRESHOLDS = 25
+MAX_THRESHOLDS = 8
 
 
 def _count(value: Any) -> int | None:
@@ -37,10 +36,10 @@ def _edge(value: Any) -> float | None:
     return float(value)
 
 
-def _band_tables(releases: list[StoredRelease]) -> dict[float, list[ReleasedTable]]:
+def _band_tables(releases: Sequence[Any]) -> dict[float, list[ReleasedTable]]:
     """2×2 tables at every interior edge of each site's released ROC bands."""
     out: dict[float, list[ReleasedTable]] = {}
-    for table in site_tables(releases):
+    for table in site_tables(list(releases)):
         roc = table.extra.get("roc")
         bands = roc.get("bands") if isinstance(roc, dict) else None
         if not isinstance(bands, list) or not all(isinstance(b, dict) for b in bands):
@@ -68,8 +67,13 @@ def _band_tables(releases: list[StoredRelease]) -> dict[float, list[ReleasedTabl
     return out
 
 
-def threshold_tables(releases: list[StoredRelease]) -> tuple[dict[float, list[ReleasedTable]], str]:
+def threshold_tables(releases: Sequence[Any]) -> tuple[dict[float, list[ReleasedTable]], str]:
     """Each released threshold's 2×2 tables (latest release per site), and where they came from.
+
+    Parameters
+    ----------
+    releases : sequence of StoredRelease (or anything with a ``release`` attribute)
+        One study's stored releases.
 
     Returns
     -------
@@ -82,7 +86,7 @@ def threshold_tables(releases: list[StoredRelease]) -> tuple[dict[float, list[Re
     tables: dict[float, list[ReleasedTable]] = {}
     for threshold in thresholds:
         rows = []
-        for table in site_tables(releases, threshold):
+        for table in site_tables(list(releases), threshold):
             try:
                 rows.append(table.released_table())
             except PoolingError:
@@ -98,23 +102,27 @@ def threshold_tables(releases: list[StoredRelease]) -> tuple[dict[float, list[Re
 
 
 def _thin(tables: dict[float, list[ReleasedTable]]) -> dict[float, list[ReleasedTable]]:
-    """At most MAX_THRESHOLDS thresholds, evenly spread (a fine ROC banding would make the report slow)."""
-    keys = sorted(tables)
-    if len(keys) <= MAX_THRESHOLDS:
-        return tables
-    step = (len(keys) - 1) / (MAX_THRESHOLDS - 1)
-    chosen = sorted({keys[round(i * step)] for i in range(MAX_THRESHOLDS)})
-    return {k: tables[k] for k in chosen}
+    """Thresholds at which at least 2 sites released a table; at most MAX_THRESHOLDS, those with most sites.
+
+    Each site merges its ROC bands on its own, so an edge may be one site's alone; each threshold also costs a
+    GLMM fit, so fine bands are cut to the thresholds most sites share.
+    """
+    shared = {k: v for k, v in tables.items() if len(v) >= 2}
+    if len(shared) <= MAX_THRESHOLDS:
+        return shared
+    ranked = sorted(shared, key=lambda k: (-len(shared[k]), k))[:MAX_THRESHOLDS]
+    return {k: shared[k] for k in sorted(ranked)}
 
 
 def decision_analysis(
-    releases: list[StoredRelease],
+    releases: Sequence[Any],
     score_kind: str | None,
     target_sensitivity: float | None = None,
     bootstrap: int = DEFAULT_BOOTSTRAP,
     range_low: float = 0.01,
     range_high: float = 0.99,
     seed: int = 2026,
+    points: int = 5,
 ) -> dict[str, Any]:
     """Pooled accuracy by threshold, the threshold chosen (target sensitivity or Youden), and net benefit.
 
@@ -131,6 +139,8 @@ def decision_analysis(
     range_low, range_high : float
         The coordinator's range of threshold probabilities for the decision curve.
     seed : int
+    points : int, default 5
+        Gauss–Hermite points per dimension of the GLMM fits (5 keeps the report quick).
 
     Returns
     -------
@@ -139,17 +149,23 @@ def decision_analysis(
         ``caution``; a part that cannot be computed is ``{"status": "not estimable: <reason>"}``.
     """
     tables, source = threshold_tables(releases)
+    released = len(tables)
     tables = _thin(tables)
-    out: dict[str, Any] = {"source": source, "caution": CAUTION}
+    out: dict[str, Any] = {"source": source, "caution": CAUTION, "thresholds_released": released}
     if len(tables) < 2:
-        reason = "not estimable: the sites released 2x2 tables at fewer than 2 thresholds (ask for --thresholds)"
+        reason = (
+            "not estimable: fewer than 2 thresholds at which at least 2 sites released a 2x2 table "
+            "(ask for several with --thresholds)"
+        )
         out.update({"thresholds": [], "choice": {"status": reason}, "net_benefit": {"status": reason}})
         return out
-    pooled = pool_by_threshold(tables)
+    pooled = pool_by_threshold(tables, points=points)
     out["thresholds"] = [p.to_dict() for p in pooled]
     criterion = "target_sensitivity" if target_sensitivity is not None else "youden"
     try:
-        choice = choose_threshold(tables, criterion, target_sensitivity, pooled=pooled, bootstrap=bootstrap, seed=seed)
+        choice = choose_threshold(
+            tables, criterion, target_sensitivity, pooled=pooled, bootstrap=bootstrap, seed=seed, points=points
+        )
         out["choice"] = choice.to_dict()
     except PoolingError as error:
         out["choice"] = {"status": f"not estimable: {error}"}

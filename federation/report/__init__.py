@@ -17,6 +17,7 @@ from federation.protocol.cli_support import write_atomic
 from federation.store import Store
 
 from .analyses import analysis_sections, render_json
+from .decisions import decision_section
 from .figures import accuracy_forests, humanise
 from .flow import flow_section
 from .html import esc, json_link, page, table
@@ -118,6 +119,9 @@ def build_report(
             sroc = '<section id="sroc"><h2>Summary ROC (bivariate model)</h2></section>'
         sections.append(("sroc", "Summary ROC", sroc.replace("</section>", unfitted + "</section>")))
     sections += analysis_sections(inputs)
+    decisions = decision_section(inputs)
+    if decisions:
+        sections.append(("threshold-choice", "Choosing a threshold, and net benefit", decisions))
     sections += [
         ("methods", "Methods", methods_section(inputs)),
         ("cautions", "Cautions", cautions_section()),

@@ -90,8 +90,8 @@ def plan_figure(
 ) -> Figure:
     """Width of the pooled confidence intervals against the number of sites, with the target width."""
     with rc_context(_RC):
-        figure = _figure(6.4, 3.6)
-        axes = figure.add_axes((0.1, 0.22, 0.62, 0.66))
+        figure = _figure(7.2, 3.6)
+        axes = figure.add_axes((0.11, 0.22, 0.55, 0.66))
         axes.xaxis.set_major_locator(MaxNLocator(integer=True))
         pct = f"{100 * level:g}%"
         _series(axes, sensitivity, f"sensitivity, {pct} CI", OKABE_ITO["blue"], "o", -0.08)
@@ -104,7 +104,7 @@ def plan_figure(
         axes.set_title(title)
         axes.legend(loc="upper left", bbox_to_anchor=(1.02, 1.0))
         figure.text(
-            0.1, 0.02, "markers: median of the simulated consortia; bars: 10th to 90th percentile", fontsize=7.5
+            0.11, 0.015, "markers: median of the simulated consortia; bars: 10th to 90th percentile", fontsize=7.5
         )
     return figure
 
@@ -119,8 +119,8 @@ def threshold_figure(
 ) -> Figure:
     """Pooled sensitivity and specificity against the threshold, with the chosen threshold and its interval."""
     with rc_context(_RC):
-        figure = _figure(6.4, 3.6)
-        axes = figure.add_axes((0.1, 0.15, 0.62, 0.72))
+        figure = _figure(7.2, 3.6)
+        axes = figure.add_axes((0.11, 0.2, 0.55, 0.68))
         for points, label, colour, marker, style in (
             (sensitivity, "pooled sensitivity", OKABE_ITO["blue"], "o", "-"),
             (specificity, "pooled specificity", OKABE_ITO["orange"], "s", "--"),
@@ -134,9 +134,9 @@ def threshold_figure(
                 [p.x for p in with_ci], [p.low for p in with_ci], [p.high for p in with_ci], color=colour, alpha=0.15
             )
         if chosen_low is not None and chosen_high is not None:
-            axes.axvspan(chosen_low, chosen_high, color=GREY, alpha=0.15, label="threshold interval (bootstrap)")
+            axes.axvspan(chosen_low, chosen_high, color=GREY, alpha=0.15, label="bootstrap interval")
         if chosen is not None:
-            axes.axvline(chosen, color=OKABE_ITO["black"], lw=1, ls=":", label=f"chosen threshold {chosen:g}")
+            axes.axvline(chosen, color=OKABE_ITO["black"], lw=1, ls=":", label=f"chosen: {chosen:g}")
         axes.set_xlabel("threshold (screen-positive when score ≥ threshold)")
         axes.set_ylim(0, 1)
         axes.set_title(title)
@@ -149,8 +149,8 @@ def decision_curve_figure(
 ) -> Figure:
     """Pooled net benefit of screening by the model, of assessing everyone, and of no one (0)."""
     with rc_context(_RC):
-        figure = _figure(6.4, 3.6)
-        axes = figure.add_axes((0.1, 0.15, 0.62, 0.72))
+        figure = _figure(7.2, 3.6)
+        axes = figure.add_axes((0.11, 0.2, 0.55, 0.68))
         for points, label, colour, marker, style in (
             (model, "screen by the model", OKABE_ITO["blue"], "o", "-"),
             (screen_all, "assess everyone", OKABE_ITO["vermillion"], "^", "--"),
@@ -179,5 +179,5 @@ def decision_curve_figure(
         axes.set_title(title)
         axes.legend(loc="upper left", bbox_to_anchor=(1.02, 1.0))
         band = "prediction interval" if prediction else "confidence interval"
-        figure.text(0.1, 0.02, f"shaded: {band} of the pooled net benefit", fontsize=7.5)
+        figure.text(0.11, 0.015, f"shaded: {band} of the pooled net benefit", fontsize=7.5)
     return figure

@@ -1,0 +1,108 @@
+"""The report's threshold-choice and net-benefit section on a real study store (the demo consortium answering a
+request for the 2×2 at four thresholds through the real site path): the cautions are there, and every site's
+net benefit in the section's data equals TP/n − FP/n × pt/(1 − pt) computed directly from the released
+tables (Vickers & Elkin 2006, from memory)."""
+
+from __future__ import annotations
+
+import base64
+import csv
+import io
+import json
+import re
+import uuid
+from datetime import UTC, datetime
+from pathlib import Path
+
+import pytest
+
+from federation.decisions import decision_analysis, decision_rows, threshold_tables
+from federation.protocol import AnalysisSpec, Request, load_private_key
+from federation.store import Store
+from simulations.demo import prepare_study
+from site_agent.config import load_site
+from site_agent.runner import run_request
+from tests.report.studies import federation
+
+THRESHOLDS = (0.2, 0.35, 0.5, 0.65)
+
+
+@pytest.fixture(scope="module")
+def thresholds_store(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    root = tmp_path_factory.mktemp("thresholds") / "study"
+    study = prepare_study(root, study_id="thresholds-1")
+    bundle_sha256 = json.loads(study.request_bytes)["bundle_sha256"]
+    issued = datetime.now(UTC).replace(microsecond=0).isoformat()
+    request = Request("thresholds-1", uuid.uuid4().hex, bundle_sha256, (AnalysisSpec("confusion", THRESHOLDS),), issued)
+    document = request.signed_bytes(load_private_key(root / "coordinator" / "coordinator.key"))
+    store = Store(study.store_path)
+    store.add_request(Request.from_bytes(document, None, "request"), document)
+    releases = []
+    for site_dir in study.site_dirs:
+        site = load_site(site_dir)
+        releases.append((run_request(site, document, study.bundle_bytes).release_bytes, site.site_id))
+    store.ingest(releases)
+    store.close()
+    return study.store_path
+
+
+def _csv_from_link(html: str, filename: str) -> list[dict[str, str]]:
+    match = re.search(rf'download="{re.escape(filename)}" href="data:text/csv;charset=utf-8;base64,([^"]+)"', html)
+    assert match, filename
+    return list(csv.DictReader(io.StringIO(base64.b64decode(match.group(1)).decode("utf-8"))))
+
+
+def test_report_has_the_section_with_its_cautions_and_direct_net_benefit(
+    thresholds_store: Path, tmp_path: Path
+) -> None:
+    out = tmp_path / "report.html"
+    result = federation("report", "--store", str(thresholds_store), "--out", str(out))
+    assert result.returncode in (0, 3), result.stderr
+    html = out.read_text()
+    section = html[html.index('<section id="threshold-choice">') :]
+    section = section[: section.index("</section>")]
+    assert "policy decision" in section and "clinicians" in section and "optimistic" in section
+    assert "does not make it" in section
+    for threshold in THRESHOLDS:
+        assert f'<th scope="row">{threshold:g}</th>' in section
+    rows = _csv_from_link(html, "thresholds-1-net-benefit-sites.csv")
+    store = Store(thresholds_store)
+    try:
+        releases = store.releases("thresholds-1")
+    finally:
+        store.close()
+    checked = 0
+    for release in (stored.release for stored in releases):
+        for table in release.confusion:
+            cells = table.cells
+            if cells["tp"] is None or cells["fp"] is None:
+                continue
+            n = release.flow["analysed"]
+            pt = table.threshold
+            expected = cells["tp"] / n - cells["fp"] / n * pt / (1 - pt)
+            row = next(r for r in rows if r["site_id"] == release.site_id and float(r["threshold_probability"]) == pt)
+            assert float(row["net_benefit_model"]) == pytest.approx(expected, abs=1e-12)
+            prevalence = release.flow["analysed_positive"] / n
+            assert float(row["net_benefit_screen_all"]) == pytest.approx(prevalence - (1 - prevalence) * pt / (1 - pt))
+            checked += 1
+    assert checked >= 3 * len(THRESHOLDS)
+
+
+def test_tidy_rows_follow_the_analysis(thresholds_store: Path) -> None:
+    store = Store(thresholds_store)
+    try:
+        releases = store.releases("thresholds-1")
+    finally:
+        store.close()
+    tables, source = threshold_tables(releases)
+    assert source == "confusion" and sorted(tables) == list(THRESHOLDS)
+    result = decision_analysis(releases, "probability", bootstrap=4)
+    rows = decision_rows(result)
+    assert [r["threshold"] for r in rows["threshold_accuracy"]] == list(THRESHOLDS)
+    sensitivities = [r["sensitivity"] for r in rows["threshold_accuracy"] if r["sensitivity"] is not None]
+    assert sensitivities == sorted(sensitivities, reverse=True)
+    assert rows["threshold_choice"][0]["criterion"] == "youden"
+    assert rows["threshold_choice"][0]["threshold"] in THRESHOLDS
+    assert {r["threshold_probability"] for r in rows["net_benefit_pooled"]} == set(THRESHOLDS)
+    points = decision_analysis(releases, "points", bootstrap=0)["net_benefit"]
+    assert points["status"].startswith("not estimable: net benefit needs the model's score to be a predicted risk")
