@@ -14,6 +14,8 @@ import math
 from collections.abc import Sequence
 from typing import Any
 
+from threadpoolctl import threadpool_limits
+
 from federation.stats import PoolingError, ReleasedTable
 from federation.stats.net_benefit import decision_curve
 from federation.stats.threshold import CAUTION, choose_threshold, pool_by_threshold
@@ -148,6 +150,21 @@ def decision_analysis(
         ``source``, ``thresholds`` (one pooled result per threshold), ``choice``, ``net_benefit`` and
         ``caution``; a part that cannot be computed is ``{"status": "not estimable: <reason>"}``.
     """
+    # Many small fits: one BLAS thread is several times faster than many on a busy machine.
+    with threadpool_limits(limits=1, user_api="blas"):
+        return _analysis(releases, score_kind, target_sensitivity, bootstrap, range_low, range_high, seed, points)
+
+
+def _analysis(
+    releases: Sequence[Any],
+    score_kind: str | None,
+    target_sensitivity: float | None,
+    bootstrap: int,
+    range_low: float,
+    range_high: float,
+    seed: int,
+    points: int,
+) -> dict[str, Any]:
     tables, source = threshold_tables(releases)
     released = len(tables)
     tables = _thin(tables)

@@ -37,6 +37,7 @@ from dataclasses import dataclass
 
 import numpy as np
 from scipy import special, stats
+from threadpoolctl import threadpool_limits
 
 from federation.stats.glmm import glmm_accuracy
 from federation.stats.proportions import _check_level, wilson
@@ -439,7 +440,8 @@ def plan_consortium(
             not_pooled_sites += int(se_width is None or sp_width is None)
             continue
         try:
-            with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
+            # Tiny matrices: one BLAS thread is several times faster than many on a busy machine.
+            with np.errstate(invalid="ignore", divide="ignore", over="ignore"), threadpool_limits(1, "blas"):
                 fit = glmm_accuracy(tables, suppressed="censor", points=points, level=scenario.level)
         except ValueError as error:  # PoolingError, or an estimate the model could not make finite
             reason = str(error) if isinstance(error, PoolingError) else "the model gave no finite interval"
