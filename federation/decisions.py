@@ -22,7 +22,7 @@ from federation.stats.threshold import CAUTION, choose_threshold, pool_by_thresh
 
 from .analysis import site_tables
 
-__all__ = ["DEFAULT_BOOTSTRAP", "decision_analysis", "decision_rows", "threshold_tables"]
+__all__ = ["DECISION_TABLES", "DEFAULT_BOOTSTRAP", "decision_analysis", "decision_rows", "threshold_tables"]
 
 DEFAULT_BOOTSTRAP = 40
 MAX_THRESHOLDS = 8
@@ -297,3 +297,87 @@ def score_kind_of(manifests: Sequence[dict[str, Any] | None]) -> str | None:
         if isinstance(score, dict) and isinstance(score.get("kind"), str):
             return score["kind"]
     return None
+
+
+_INTERVAL = "95% confidence interval"
+# Each tidy table of decision_rows: (title, ((column, meaning), ...)), for an export's codebook.
+DECISION_TABLES: dict[str, tuple[str, tuple[tuple[str, str], ...]]] = {
+    "threshold_accuracy": (
+        "Pooled sensitivity and specificity at each released threshold (exact binomial GLMM per threshold)",
+        (
+            ("threshold", "score threshold (screen-positive when score >= threshold)"),
+            ("status", "estimated, or not estimable with the reason"),
+            *(
+                item
+                for measure in ("sensitivity", "specificity")
+                for item in (
+                    (measure, f"pooled {measure}"),
+                    (f"{measure}_ci_low", f"{_INTERVAL}, lower end"),
+                    (f"{measure}_ci_high", f"{_INTERVAL}, upper end"),
+                    (f"{measure}_pi_low", "95% prediction interval for a new site, lower end"),
+                    (f"{measure}_pi_high", "95% prediction interval for a new site, upper end"),
+                    (f"tau_logit_{measure}", f"between-site SD of logit {measure}"),
+                )
+            ),
+            ("sites_pooled", "sites pooled at this threshold"),
+            ("sites_not_pooled", "sites that released a table here but could not be pooled"),
+        ),
+    ),
+    "threshold_choice": (
+        "The threshold the criterion picks, with a bootstrap interval over sites (optimistic for these sites)",
+        (
+            ("criterion", "youden (highest pooled sensitivity + specificity - 1) or target_sensitivity"),
+            ("target", "target pooled sensitivity (target_sensitivity only)"),
+            ("status", "estimated, or not estimable with the reason"),
+            ("threshold", "the chosen released threshold"),
+            ("threshold_ci_low", "95% bootstrap percentile interval of the chosen threshold, lower end"),
+            ("threshold_ci_high", "95% bootstrap percentile interval of the chosen threshold, upper end"),
+            ("sensitivity", "pooled sensitivity at the chosen threshold"),
+            ("sensitivity_ci_low", f"{_INTERVAL}, lower end"),
+            ("sensitivity_ci_high", f"{_INTERVAL}, upper end"),
+            ("specificity", "pooled specificity at the chosen threshold"),
+            ("specificity_ci_low", f"{_INTERVAL}, lower end"),
+            ("specificity_ci_high", f"{_INTERVAL}, upper end"),
+            ("bootstrap_replicates", "bootstrap resamples of sites"),
+        ),
+    ),
+    "net_benefit_sites": (
+        "Net benefit per site at each released threshold probability (predicted-risk models only)",
+        (
+            ("threshold_probability", "threshold probability pt (= the released score threshold)"),
+            ("site_id", "site"),
+            ("net_benefit_model", "TP/n - FP/n x pt/(1 - pt); NA when a count it needs was withheld"),
+            ("net_benefit_model_se", "its standard error (multinomial)"),
+            ("net_benefit_screen_all", "assessing everyone: prevalence - (1 - prevalence) x pt/(1 - pt)"),
+            ("net_benefit_screen_none", "assessing no one: 0"),
+            ("advantage_over_screen_all", "model minus assessing everyone"),
+            ("prevalence", "share of analysed participants with the condition"),
+            ("analysed", "participants analysed"),
+        ),
+    ),
+    "net_benefit_pooled": (
+        "Net benefit pooled across sites (REML random effects, Hartung-Knapp interval, prediction interval)",
+        (
+            ("threshold_probability", "threshold probability pt"),
+            ("status", "estimated, or not estimable with the reason"),
+            *(
+                item
+                for prefix, what in (
+                    ("net_benefit_model", "screening by the model"),
+                    ("net_benefit_screen_all", "assessing everyone"),
+                    ("advantage_over_screen_all", "the model's advantage over assessing everyone"),
+                )
+                for item in (
+                    (prefix, f"pooled net benefit of {what}"),
+                    (f"{prefix}_ci_low", f"{_INTERVAL}, lower end"),
+                    (f"{prefix}_ci_high", f"{_INTERVAL}, upper end"),
+                    (f"{prefix}_pi_low", "95% prediction interval for a new site, lower end"),
+                    (f"{prefix}_pi_high", "95% prediction interval for a new site, upper end"),
+                    (f"{prefix}_tau2", "between-site variance"),
+                )
+            ),
+            ("net_benefit_screen_none", "assessing no one: 0"),
+            ("sites_not_pooled", "sites whose counts needed for net benefit were withheld"),
+        ),
+    ),
+}

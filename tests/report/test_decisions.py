@@ -16,7 +16,7 @@ from pathlib import Path
 
 import pytest
 
-from federation.decisions import decision_analysis, decision_rows, threshold_tables
+from federation.decisions import DECISION_TABLES, decision_analysis, decision_rows, threshold_tables
 from federation.protocol import AnalysisSpec, Request, load_private_key
 from federation.store import Store
 from simulations.demo import prepare_study
@@ -104,5 +104,7 @@ def test_tidy_rows_follow_the_analysis(thresholds_store: Path) -> None:
     assert rows["threshold_choice"][0]["criterion"] == "youden"
     assert rows["threshold_choice"][0]["threshold"] in THRESHOLDS
     assert {r["threshold_probability"] for r in rows["net_benefit_pooled"]} == set(THRESHOLDS)
+    for name, table in rows.items():  # every column named in the codebook, in file order
+        assert list(table[0]) == [column for column, _ in DECISION_TABLES[name][1]]
     points = decision_analysis(releases, "points", bootstrap=0)["net_benefit"]
     assert points["status"].startswith("not estimable: net benefit needs the model's score to be a predicted risk")
