@@ -5,6 +5,7 @@ from __future__ import annotations
 import argparse
 from collections.abc import Sequence
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 from federation.protocol import (
     BundleError,
@@ -25,6 +26,9 @@ from federation.protocol.cli_support import ArgumentParser, option, print_json, 
 from .modelpack import model_format_for, pack_model
 from .store import Store
 from .study import analysis_specs, issue_request
+
+if TYPE_CHECKING:  # imported late at run time: scipy makes `federation --help` slow
+    from .decisions import DecisionSettings
 from .words import NOT_DEFINED_MARK, POOLED_MODELS, WITHHELD_LEGEND, WITHHELD_MARK
 
 
@@ -309,6 +313,32 @@ def format_table(result: dict) -> str:
     return "\n".join(line.rstrip() for line in lines)
 
 
+def _decision_settings(args: argparse.Namespace) -> DecisionSettings:
+    from .decisions import DecisionSettings, parse_probability_range
+
+    low, high = parse_probability_range(args.threshold_probabilities)
+    return DecisionSettings(args.target_sensitivity, low, high, args.bootstrap)
+
+
+def add_decision_options(p: argparse.ArgumentParser) -> None:
+    """Options of the threshold-choice and net-benefit results (report, export)."""
+    p.add_argument(
+        "--target-sensitivity",
+        type=float,
+        help="choose the highest released threshold whose pooled sensitivity reaches this (default: the "
+        "threshold with the highest pooled Youden's index)",
+    )
+    p.add_argument(
+        "--threshold-probabilities",
+        default="0.01:0.99",
+        metavar="LOW:HIGH",
+        help="range of threshold probabilities for net benefit (decision curve), e.g. 0.05:0.3 (0.01:0.99)",
+    )
+    p.add_argument(
+        "--bootstrap", type=int, default=20, help="bootstrap resamples of sites for the chosen threshold's interval"
+    )
+
+
 def cmd_report(args: argparse.Namespace) -> int:
     from federation.protocol.cli_support import EXIT_OK, EXIT_PARTIAL
 
@@ -316,7 +346,7 @@ def cmd_report(args: argparse.Namespace) -> int:
     from .report import write_report
 
     covariates = read_covariates(args.covariates) if args.covariates else None
-    report = write_report(args.store, args.out, args.study_id, covariates)
+    report = write_report(args.store, args.out, args.study_id, covariates, _decision_settings(args))
     missing = report.enrolled_without_release
     if args.json:
         print_json({"out": str(args.out), **report.to_dict()})
@@ -544,6 +574,7 @@ def build_parser() -> argparse.ArgumentParser:
         help="CSV of site covariates for the meta-regression: a site_id column and one column per covariate "
         "(numbers, or categories such as the setting)",
     )
+    add_decision_options(p)
     p.add_argument("--json", action="store_true", help="print what was written as JSON (sites, sections)")
     p.set_defaults(handler=cmd_report)
 

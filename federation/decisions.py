@@ -12,19 +12,65 @@ from __future__ import annotations
 
 import math
 from collections.abc import Sequence
+from dataclasses import dataclass
 from typing import Any
 
 from threadpoolctl import threadpool_limits
 
+from federation.protocol import ValidationToolError
 from federation.stats import PoolingError, ReleasedTable
 from federation.stats.net_benefit import decision_curve
 from federation.stats.threshold import CAUTION, choose_threshold, pool_by_threshold
 
 from .analysis import site_tables
 
-__all__ = ["DECISION_TABLES", "DEFAULT_BOOTSTRAP", "decision_analysis", "decision_rows", "threshold_tables"]
+__all__ = [
+    "DECISION_TABLES",
+    "DEFAULT_BOOTSTRAP",
+    "DecisionSettings",
+    "decision_analysis",
+    "decision_rows",
+    "parse_probability_range",
+    "threshold_tables",
+]
 
 DEFAULT_BOOTSTRAP = 40
+
+
+@dataclass(frozen=True)
+class DecisionSettings:
+    """What the coordinator states for threshold choice and net benefit (``federation report``/``export``).
+
+    ``target_sensitivity``: choose the highest threshold whose pooled sensitivity reaches it (None: maximise
+    Youden's index); ``range_low``/``range_high``: threshold probabilities of the decision curve;
+    ``bootstrap``: resamples of sites for the threshold's interval.
+    """
+
+    target_sensitivity: float | None = None
+    range_low: float = 0.01
+    range_high: float = 0.99
+    bootstrap: int = 20
+
+    def __post_init__(self) -> None:
+        target = self.target_sensitivity
+        if target is not None and not 0 < target < 1:
+            raise ValidationToolError("--target-sensitivity: must lie strictly between 0 and 1")
+        if not 0 < self.range_low <= self.range_high < 1:
+            raise ValidationToolError("--threshold-probabilities: give LOW:HIGH with 0 < LOW <= HIGH < 1")
+        if not 0 <= self.bootstrap <= 2000:
+            raise ValidationToolError("--bootstrap: must be a whole number between 0 and 2000")
+
+
+def parse_probability_range(text: str) -> tuple[float, float]:
+    """``LOW:HIGH`` as two numbers (checked by :class:`DecisionSettings`)."""
+    parts = text.split(":")
+    try:
+        low, high = (float(p) for p in parts)
+    except ValueError:
+        raise ValidationToolError(f"--threshold-probabilities: {text!r} is not a range LOW:HIGH") from None
+    return low, high
+
+
 MAX_THRESHOLDS = 8
 
 

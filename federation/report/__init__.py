@@ -12,6 +12,7 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
+from federation.decisions import DecisionSettings
 from federation.protocol import ValidationToolError
 from federation.protocol.cli_support import write_atomic
 from federation.store import Store
@@ -99,11 +100,15 @@ def _model_details(path: tuple, value: dict[str, Any]) -> str:
 
 
 def build_report(
-    store: Store, study_id: str | None = None, covariates: dict[str, dict[str, float | str]] | None = None
+    store: Store,
+    study_id: str | None = None,
+    covariates: dict[str, dict[str, float | str]] | None = None,
+    decisions: DecisionSettings | None = None,
 ) -> Report:
     """Build the report for one study of ``store`` (see the module docstring for its sections).
 
-    ``covariates`` (per site id) are coordinator-supplied site covariates for the meta-regression.
+    ``covariates`` (per site id) are coordinator-supplied site covariates for the meta-regression;
+    ``decisions`` the coordinator's target sensitivity and range of threshold probabilities.
     """
     inputs = gather(store, study_id, covariates)
     analysis = inputs.analysis
@@ -119,9 +124,9 @@ def build_report(
             sroc = '<section id="sroc"><h2>Summary ROC (bivariate model)</h2></section>'
         sections.append(("sroc", "Summary ROC", sroc.replace("</section>", unfitted + "</section>")))
     sections += analysis_sections(inputs)
-    decisions = decision_section(inputs)
-    if decisions:
-        sections.append(("threshold-choice", "Choosing a threshold, and net benefit", decisions))
+    choice = decision_section(inputs, decisions)
+    if choice:
+        sections.append(("threshold-choice", "Choosing a threshold, and net benefit", choice))
     sections += [
         ("methods", "Methods", methods_section(inputs)),
         ("cautions", "Cautions", cautions_section()),
@@ -152,6 +157,7 @@ def write_report(
     out: Path,
     study_id: str | None = None,
     covariates: dict[str, dict[str, float | str]] | None = None,
+    decisions: DecisionSettings | None = None,
 ) -> Report:
     """Build the report from the store at ``store_path`` and write it atomically to ``out``."""
     if not Path(store_path).is_file():
@@ -159,7 +165,7 @@ def write_report(
         raise ValidationToolError(f"{store_path}: study store not found")
     store = Store(store_path)
     try:
-        report = build_report(store, study_id, covariates)
+        report = build_report(store, study_id, covariates, decisions)
     finally:
         store.close()
     write_atomic(out, report.html.encode("utf-8"))

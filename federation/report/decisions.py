@@ -11,15 +11,13 @@ from __future__ import annotations
 
 from typing import Any
 
-from federation.decisions import decision_analysis, decision_rows
+from federation.decisions import DecisionSettings, decision_analysis, decision_rows
 
 from .decision_plots import CurvePoint, decision_curve_figure, svg, threshold_figure
 from .html import csv_link, esc, figure, fmt_percent, table
 from .inputs import ReportInputs
 
-__all__ = ["REPORT_BOOTSTRAP", "decision_section"]
-
-REPORT_BOOTSTRAP = 20
+__all__ = ["decision_section"]
 POLICY = (
     "Setting the screening threshold is a policy decision for the programme, made with clinicians and weighing "
     "missed cases against unnecessary assessments. This section informs that decision; the tool does not make it."
@@ -213,9 +211,17 @@ def _pi(value: Any) -> str:
     return esc(f"{value['pi_low']:.3f}–{value['pi_high']:.3f}")
 
 
-def decision_section(inputs: ReportInputs) -> str | None:
-    """The section's HTML, or None when the sites released no 2×2 at all."""
-    result = decision_analysis(list(inputs.releases), inputs.score_kind, bootstrap=REPORT_BOOTSTRAP)
+def decision_section(inputs: ReportInputs, settings: DecisionSettings | None = None) -> str | None:
+    """The section's HTML (with the coordinator's ``settings``), or None when the sites released no 2×2 at all."""
+    settings = settings or DecisionSettings()
+    result = decision_analysis(
+        list(inputs.releases),
+        inputs.score_kind,
+        target_sensitivity=settings.target_sensitivity,
+        bootstrap=settings.bootstrap,
+        range_low=settings.range_low,
+        range_high=settings.range_high,
+    )
     rows = decision_rows(result)
     study = inputs.study_id
     head = (

@@ -108,3 +108,22 @@ def test_tidy_rows_follow_the_analysis(thresholds_store: Path) -> None:
         assert list(table[0]) == [column for column, _ in DECISION_TABLES[name][1]]
     points = decision_analysis(releases, "points", bootstrap=0)["net_benefit"]
     assert points["status"].startswith("not estimable: net benefit needs the model's score to be a predicted risk")
+
+
+def test_report_takes_the_coordinators_target_and_range(thresholds_store: Path, tmp_path: Path) -> None:
+    out = tmp_path / "report.html"
+    result = federation(
+        "report", "--store", str(thresholds_store), "--out", str(out), "--target-sensitivity", "0.6",
+        "--threshold-probabilities", "0.3:0.6", "--bootstrap", "3",
+    )  # fmt: skip
+    assert result.returncode in (0, 3), result.stderr
+    html = out.read_text()
+    assert "the highest threshold whose pooled sensitivity reaches 0.6" in html
+    rows = _csv_from_link(html, "thresholds-1-net-benefit-pooled.csv")
+    assert sorted(float(r["threshold_probability"]) for r in rows) == [0.35, 0.5]
+    choice = _csv_from_link(html, "thresholds-1-threshold-choice.csv")[0]
+    assert choice["criterion"] == "target_sensitivity" and float(choice["sensitivity"]) >= 0.6
+    bad = federation(
+        "report", "--store", str(thresholds_store), "--out", str(out), "--threshold-probabilities", "0.6:0.2"
+    )
+    assert bad.returncode == 1 and len(bad.stderr.strip().splitlines()) == 1 and "LOW:HIGH" in bad.stderr
