@@ -54,8 +54,8 @@ allow_zero = true
 allowed_analyses = {analyses}
 # How many different requests of one study this site answers at most.
 max_requests_per_study = 20
-# How many different studies this site answers at most, in all. The differencing check works within one
-# study, so this caps how many separate scopes a coordinator can open by asking again under a new study id.
+# How many different studies this site answers at most, in all (a rate limit: the differencing check
+# already takes every release this site ever made, to every study, together).
 max_studies = 20
 # Variables (schema features) a request may split results by in the subgroups analysis; a request naming
 # any other variable is refused.
@@ -63,7 +63,7 @@ allowed_subgroups = ["age_months", "sex"]
 # Whether a person must approve each release before it leaves (`site-agent review`, then `approve` or
 # `reject`). While a release waits, nothing is sent and the coordinator is told it is held.
 require_approval = false
-# Before anything leaves, the agent checks everything this site has released to the same study, taken
+# Before anything leaves, the agent checks everything this site has released, to every study, taken
 # together: a hidden count must stay uncertain. This is how many different whole numbers must remain
 # possible for it (2 = it can never be worked out exactly; larger is stricter; 1 switches the check off).
 protection_width = 2

@@ -1,17 +1,24 @@
-"""Disclosure control of one release: minimum cell size, secondary suppression, and the audit across releases.
+"""Disclosure control of one release: minimum cell size, secondary suppression, the audit across releases,
+and cutting back other analyses so that the primary table survives.
 
 1. **Primary suppression** hides every count in 1..k−1, and 0 when the policy does not allow zeros.
 2. **Secondary suppression** hides more counts so that no hidden count can be recomputed from an additive
    relation whose other members are shown (a total and its parts: records read = analysed + excluded;
-   analysed = positives + negatives; positives = TP + FN; ...). Each time it takes the smallest shown
-   member of the relation — a part before the total, a non-zero count before a zero — so that the fewest
-   and smallest counts are lost. Flow counts are counts like any other and follow the same rule.
-3. **The audit** (:mod:`site_agent.audit`) then checks this release together with every earlier release to
-   the same study; where a hidden count (or a small region found by differencing) could be worked out, it
-   suppresses more counts of this release, smallest first, and checks again. If that cannot help (the
-   exposure lies in earlier releases alone, or the rounds run out), the release is refused with a
+   analysed = positives + negatives; positives = TP + FN; ...). Each time it takes a shown member by a
+   fixed rule that never looks at a value (a count not yet public, a part before the total, then the order
+   of names), so that which count it took tells a recipient who knows the rule nothing.
+3. **The audit** (:mod:`site_agent.audit`) then checks this release together with every earlier release of
+   the site, to every study; where a hidden count (or a small region found by differencing) could be
+   worked out, it suppresses more counts of this release (other analyses before the primary table, in the
+   fixed order :data:`CUT_ORDER`, then by name) and checks again. What each rule tells (a count withheld
+   for the minimum cell size lies in 1..k−1) is a fact the audit takes into account.
+4. **The primary table comes first.** When cells of the primary table (the flow and the 2×2 table at the
+   bundle's threshold) would be withheld beyond what the table alone needs, other analyses are cut back
+   (withheld in full, subgroups variable by variable, in the order of :data:`CUT_ORDER`) until they are not;
+   the release's ``cut_back`` list says which and why, in words. If even the primary table alone cannot be
+   protected (the exposure lies in earlier releases), the release is refused with a
    :class:`PolicyViolation` that names the analysis to drop or coarsen, never a count.
-4. Derived statistics are released only when every count they rest on is released.
+5. Derived statistics are released only when every count they rest on is released.
 
 Released counts are never changed: a count is either released exactly or replaced by ``None``.
 
@@ -30,6 +37,7 @@ from federation.protocol import PolicyViolation
 
 from .audit import SCORED, STATUS, Audit, AuditResult, Finding, ReleaseFacts, normalise
 from .counts import CountSet, Relation
+from .withheld import rule_of
 
 MAX_AUDIT_ROUNDS = 40
 # Variables every analysis may condition on; any other variable is a subgroup (schema feature).
@@ -55,6 +63,9 @@ def _secondary(
 ) -> None:
     """Hide more counts until no relation has exactly one hidden member (in place).
 
+    The choice depends on the pattern of hidden counts only, never on a value: a count not yet public first,
+    a part before the total, then the fixed order of names. A value-dependent rule (e.g. "the smallest shown
+    part") would tell a recipient who knows the rule that the hidden part is smaller than the shown ones.
     ``public`` are counts whose value an earlier release already showed: hiding them protects nothing, so
     they are chosen only when nothing else is left.
     """
@@ -68,8 +79,7 @@ def _secondary(
             shown = [m for m in relation.members if m not in suppressed]
             if not shown:
                 continue
-            # Prefer a count not yet public, a part over the total, a non-zero count over a zero, then the smallest.
-            choice = min(shown, key=lambda m: (m in public, m == relation.total, counts[m] == 0, counts[m], m))
+            choice = min(shown, key=lambda m: (m in public, m == relation.total, m))
             suppressed.add(choice)
             reasons[choice] = f"secondary: otherwise {hidden[0]} could be recomputed from {relation.total} = " + (
                 " + ".join(relation.parts)
@@ -102,7 +112,8 @@ class Protected:
     """What disclosure control lets through: counts (None = suppressed) and derived statistics.
 
     ``reasons`` says why each count was suppressed and ``audit`` holds the audit's result; both are for the
-    site's own review and ledger and never travel (they tell which hidden counts are the small ones).
+    site's own review and ledger and never travel. ``rules`` (the rule of each withheld count) and
+    ``cut_back`` (analyses cut back for the primary table, in words) do travel.
     """
 
     released: dict[str, int | None]
@@ -111,14 +122,32 @@ class Protected:
     reasons: dict[str, str] = field(default_factory=dict)
     audit: AuditResult | None = None
     bundle: str = ""
+    cut_back: tuple[dict[str, str], ...] = ()
+    min_cell_size: int = 0
+    allow_zero: bool = True
+    domains: Mapping[str, Any] = field(default_factory=dict)
+
+    @property
+    def rules(self) -> dict[str, str]:
+        """The rule that withheld each count (``minimum_cell_size``, ``complementary``, ``audit``, ``coarsened``)."""
+        return {name: rule_of(self.reasons.get(name, "audit")) for name in sorted(self.suppressed)}
 
     def facts(self, counts: CountSet) -> dict[str, Any]:
         """What the recipient learns, for later audits: every count's definition with its value where it was
-        released, and the relations between counts. Stored in the ledger with the release."""
+        released (and the rule that withheld it where it was not), the relations between counts and the
+        policy the release states. Stored in the ledger with the release."""
+        rules = self.rules
         return {
             "bundle": self.bundle,
+            "policy": {"min_cell_size": self.min_cell_size, "allow_zero": self.allow_zero},
+            "domains": {name: dict(raw) for name, raw in sorted(self.domains.items())},
             "counts": [
-                {**counts.definitions[name].to_dict(), "value": self.released[name]} for name in sorted(counts.values)
+                {
+                    **counts.definitions[name].to_dict(),
+                    "value": self.released[name],
+                    **({"rule": rules[name]} if name in rules else {}),
+                }
+                for name in sorted(counts.values)
             ],
             "relations": [{"total": r.total, "parts": list(r.parts)} for r in counts.relations],
         }
@@ -127,6 +156,7 @@ class Protected:
         """What suppression did and why, and the audit's result (for the site's reviewer)."""
         return {
             "suppressed": {name: self.reasons.get(name, "suppressed") for name in sorted(self.suppressed)},
+            "cut_back": [dict(c) for c in self.cut_back],
             "audit": self.audit.to_dict() if self.audit is not None else None,
         }
 
@@ -156,53 +186,148 @@ def check_definitions(counts: CountSet, policy: Any) -> None:
                 )
 
 
+# Which parts of a release are cut back first when something must be withheld beyond the minimum cell size
+# (issue: the primary table comes first). Earlier in this list = cut back first; the order does not look at
+# any value, so the choice tells a recipient nothing about the data.
+CUT_ORDER = ("subgroups", "margin", "agreement", "paired", "calibration", "roc", "confusion")
+CUT_RULE = (
+    "otherwise the site's disclosure control would have withheld cells of the primary 2x2 table "
+    "(minimum cell size and differencing across every release of the site)"
+)
+
+
+def unit_of(name: str, primary: frozenset[str]) -> str | None:
+    """The part of a release a count belongs to for cutting back: ``subgroups.VAR``, an analysis, or None for
+    the primary table (the flow and the 2x2 at the primary threshold)."""
+    if name in primary or name.startswith("flow."):
+        return None
+    if name.startswith("subgroups."):
+        variable = re.match(r"subgroups\.([A-Za-z0-9_]+)", name)
+        return f"subgroups.{variable.group(1)}" if variable else "subgroups"
+    return analysis_of(name)
+
+
+def _cut_rank(unit: str) -> tuple[int, str]:
+    base = unit.split(".", 1)[0]
+    return (CUT_ORDER.index(base) if base in CUT_ORDER else -1, unit)
+
+
+class _Refused(Exception):
+    def __init__(self, findings: Sequence[Finding]) -> None:
+        self.findings = list(findings)
+
+
 def protect(
     counts: CountSet,
     policy: Any,
     earlier: Sequence[ReleaseFacts] = (),
     bundle: str = "",
     label: str = "this release",
+    primary: frozenset[str] | None = None,
+    domains: Mapping[str, Any] | None = None,
 ) -> Protected:
-    """Apply the site policy to one release's counts, auditing it against ``earlier`` releases to the study.
+    """Apply the site policy to one release's counts, auditing it against ``earlier`` releases of the site.
 
     ``policy`` needs ``min_cell_size`` and ``allow_zero``; ``protection_width`` (default 2) sets the audit;
-    ``min_band_width`` and ``allowed_subgroups`` are enforced when present.
+    ``min_band_width`` and ``allowed_subgroups`` are enforced when present. ``primary`` names the counts of
+    the primary table (default: the flow and ``confusion[0]``): when more than the minimum cell size must be
+    withheld, other analyses are cut back first (:data:`CUT_ORDER`), and primary cells are withheld only
+    when nothing else protects them. ``domains`` maps each schema feature to its schema entry (``type``,
+    ``min``, ``max``, ``categories``): the recipient knows them, and so does the audit.
     """
     check_definitions(counts, policy)
     k, allow_zero = policy.min_cell_size, policy.allow_zero
     width = int(getattr(policy, "protection_width", 2))
-    values = counts.values
     for relation in counts.relations:
         for name in relation.members:
-            if name not in values:
+            if name not in counts.values:
                 raise KeyError(f"relation names unknown count {name!r}")
+    if primary is None:
+        primary = frozenset(n for n in counts.values if n.startswith(("flow.", "confusion[0].")))
+    domains = dict(domains or {})
+    current = ReleaseFacts(label, counts.definitions, {}, counts.relations, bundle, {}, k, allow_zero, domains)
+    audit = Audit(earlier, current)
+    context = (counts, k, allow_zero, width, audit, _already_public(counts, earlier, bundle), bundle, domains)
+    units = sorted({u for n in counts.values if (u := unit_of(n, primary)) is not None}, key=_cut_rank)
+
+    def attempt(dropped: Sequence[str]) -> tuple[Protected | None, list[Finding]]:
+        try:
+            return _protect_once(context, primary, frozenset(dropped)), []
+        except _Refused as refused:
+            return None, refused.findings
+
+    def excess(result: Protected | None, floor: frozenset[str]) -> int:
+        return 10**6 if result is None else len((result.suppressed & primary) - floor)
+
+    result, findings = attempt(())
+    if result is not None and all(result.reasons[n].startswith("primary") for n in result.suppressed & primary):
+        return result
+    baseline, base_findings = attempt(units)
+    if baseline is None:
+        raise _refusal(base_findings or findings, earlier)
+    floor = baseline.suppressed & primary
+    if excess(result, floor) == 0:
+        return result  # type: ignore[return-value]
+    dropped: list[str] = []
+    for unit in units:  # keep each cut that helps, in the fixed order
+        trial, _ = attempt([*dropped, unit])
+        if excess(trial, floor) < excess(result, floor):
+            dropped.append(unit)
+            result = trial
+            if excess(result, floor) == 0:
+                return result  # type: ignore[return-value]
+    for unit in units:  # then cut the rest in order until the primary table is whole
+        if unit in dropped:
+            continue
+        dropped.append(unit)
+        trial, _ = attempt(dropped)
+        if excess(trial, floor) == 0:
+            return trial  # type: ignore[return-value]
+    return baseline
+
+
+def _protect_once(context: tuple, primary: frozenset[str], dropped: frozenset[str]) -> Protected:
+    """One pass: cut back ``dropped`` parts, primary and secondary suppression, then the audit rounds."""
+    counts, k, allow_zero, width, audit, public, bundle, domains = context
+    values = counts.values
     reasons: dict[str, str] = {}
     suppressed: set[str] = set()
+    twins = _same_definition(counts, bundle)
     for name, value in values.items():
-        if is_unsafe(value, k, allow_zero):
+        # a count of a cut part that another, kept part shows under the same definition stays: it is shown anyway
+        if unit_of(name, primary) in dropped and all(unit_of(t, primary) in dropped for t in twins[name]):
+            suppressed.add(name)
+            reasons[name] = "coarsened: cut back so that the primary table survives"
+        elif is_unsafe(value, k, allow_zero):
             suppressed.add(name)
             reasons[name] = (
                 "primary: zero, and this policy does not show zeros"
                 if value == 0
                 else (f"primary: fewer than {k} records")
             )
-    public = _already_public(counts, earlier, bundle)
-    twins = _same_definition(counts, bundle)
     # counts with the same definition (e.g. a class total that two analyses report) share one fate
     relations = [*counts.relations, *(Relation(g[0], (n,)) for g in set(twins.values()) for n in g[1:])]
     _secondary(values, relations, suppressed, reasons, public)
 
-    audit = Audit(earlier, ReleaseFacts(label, counts.definitions, {}, counts.relations, bundle))
     result: AuditResult | None = None
     for _ in range(MAX_AUDIT_ROUNDS):
         current = {name: (None if name in suppressed else value) for name, value in values.items()}
-        result = audit.evaluate(current, k, allow_zero, width)
+        rules = {name: rule_of(reasons.get(name, "audit")) for name in suppressed}
+        result = audit.evaluate(current, k, allow_zero, width, current_rules=rules)
         if result.ok:
             break
         added: set[str] = set()
         stuck: list[Finding] = []
         for finding in result.findings:
-            open_candidates = [c for c in finding.candidates if c not in suppressed]
+            # other parts before the primary table, in the fixed cut order, then by name: never by value
+            open_candidates = sorted(
+                (c for c in finding.candidates if c not in suppressed),
+                key=lambda c: (
+                    any(unit_of(t, primary) is None for t in twins.get(c, (c,))),  # shares the primary's fate
+                    _cut_rank(unit_of(c, primary) or ""),
+                    c,
+                ),
+            )
             if not open_candidates:
                 stuck.append(finding)
                 continue
@@ -214,16 +339,27 @@ def protect(
                     added.add(name)
                     reasons[name] = f"audit: otherwise {finding.describe()}"
         if stuck or not added:
-            raise _refusal(stuck or result.findings, earlier)
+            raise _Refused(stuck or result.findings)
         suppressed |= added
         _secondary(values, relations, suppressed, reasons, public)
     else:
-        raise _refusal(result.findings if result else [], earlier)
+        raise _Refused(result.findings if result else [])
 
     released = {name: (None if name in suppressed else value) for name, value in values.items()}
     hidden = frozenset(suppressed)
     derived = {name: value for name, (value, rests_on) in counts.derived.items() if not (rests_on & hidden)}
-    return Protected(released, hidden, derived, reasons, result, bundle)
+    cut = tuple(
+        {"analysis": unit, "action": _action(unit), "rule": CUT_RULE} for unit in sorted(dropped, key=_cut_rank)
+    )
+    return Protected(released, hidden, derived, reasons, result, bundle, cut, k, allow_zero, domains)
+
+
+def _action(unit: str) -> str:
+    if unit.startswith("subgroups."):
+        return f"withheld the subgroups by {unit.split('.', 1)[1]}"
+    if unit == "confusion":
+        return "withheld the 2x2 tables at the other thresholds"
+    return "withheld in full"
 
 
 def _already_public(counts: CountSet, earlier: Sequence[ReleaseFacts], bundle: str) -> frozenset[str]:
@@ -250,7 +386,9 @@ def _refusal(findings: Sequence[Finding], earlier: Sequence[ReleaseFacts]) -> Po
     )
     which = ", ".join(repr(a) for a in analyses) or "the requested analyses"
     scope = (
-        f"combined with {len(earlier)} earlier release(s) to this study, this request" if earlier else "this request"
+        f"combined with {len(earlier)} earlier release(s) of this site (to any study), this request"
+        if earlier
+        else "this request"
     )
     return PolicyViolation(
         f"release withheld by the site's disclosure audit: {scope} would let a count the site's policy hides be "

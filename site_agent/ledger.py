@@ -265,9 +265,15 @@ def counted_requests(path: Path, study_id: str | None) -> dict[str, dict[str, An
     return counted
 
 
-def facts_for_study(path: Path, study_id: str) -> list[ReleaseFacts]:
-    """What the study's recipient knows or may yet learn from this site: the audit facts of every release to
-    the study, including releases held for approval (so that approving them later stays safe)."""
+def facts_for_site(path: Path) -> list[ReleaseFacts]:
+    """What any recipient knows or may yet learn from this site: the audit facts of every release the site
+    made, to every study (recipients of different studies may be the same party), including releases
+    awaiting approval (so that approving them later stays safe)."""
+    return facts_for_study(path, None)
+
+
+def facts_for_study(path: Path, study_id: str | None) -> list[ReleaseFacts]:
+    """The audit facts of every release to one study (``None``: to every study, as :func:`facts_for_site`)."""
     from .audit import ReleaseFacts
 
     facts = []

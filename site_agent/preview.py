@@ -49,6 +49,8 @@ def check_report(preview: Preview) -> dict[str, Any]:
         "release_unsigned": body,
         "flow": body["flow"],
         "suppressed": sorted(preview.protected.suppressed),
+        "suppressed_by": preview.protected.rules,
+        "cut_back": [dict(c) for c in preview.protected.cut_back],
         "counts": len(preview.counts.values),
         "derived_withheld": sorted(set(preview.counts.derived) - set(preview.protected.derived)),
         "signed": False,
@@ -81,13 +83,16 @@ def format_check(preview: Preview) -> str:
             lines.append(f"    {CELLS[cell]:<34} {_show(table.cells.get(cell))}")
     for name, result in release.extra.items():
         lines.append(f"  {name}: {_summary(name, result)}")
+    for cut in preview.protected.cut_back:
+        lines.append(f"Cut back: {cut['analysis']}: {cut['action']}, {cut['rule']}")
     hidden = sorted(preview.protected.suppressed)
+    rules = preview.protected.rules
     lines += [
         "",
         f"Withheld by the site's rules (minimum cell size {release.policy.get('min_cell_size')}): {len(hidden)}",
     ]
     for name in hidden[:40]:
-        lines.append(f"  {name}")
+        lines.append(f"  {name} ({rules.get(name, 'audit').replace('_', ' ')})")
     if len(hidden) > 40:
         lines.append(f"  ... and {len(hidden) - 40} more (see --json)")
     withheld = sorted(set(preview.counts.derived) - set(preview.protected.derived))

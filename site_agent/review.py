@@ -3,7 +3,7 @@
 ``site-agent review`` shows every release held for approval: exactly the text that would leave (and its
 SHA-256), the participant flow, the results, which counts were suppressed and why, and the audit's result
 (the range of values the coordinator could still deduce for each hidden count, given everything the site
-has released to the study). ``--html`` writes the same as one self-contained page for an ethics board:
+has released, to any study). ``--html`` writes the same as one self-contained page for an ethics board:
 no scripts, no fonts or styles fetched from anywhere. ``approve`` / ``reject`` record a decision in the
 ledger; ``release`` writes an approved release to a file.
 """
@@ -154,6 +154,8 @@ def render_text(view: dict[str, Any], site_dir: Path, exact: bool = False) -> st
     out += [f"  {name + ':':<26}{value}" for name, value in _meta_lines(view)]
     for part in view["parts"]:
         out += _text_part(part)
+    for cut in view["document"].get("cut_back", []):
+        out.append(f"  Cut back: {cut['analysis']}: {cut['action']}, {cut['rule']}")
     out += ["", f"Withheld, and why ({len(view['withheld'])})"]
     out += [f"  {line}" for line in _withheld_summary(view["withheld"])]
     for group, items in _by_group(view["withheld"]).items():

@@ -39,6 +39,7 @@ from .data import DEFAULT_CHUNK_ROWS, exclusion_reasons
 from .disclosure import Protected, protect
 from .mapping import default_mapping, load_mapping
 from .sources import SourceSpec
+from .withheld import annotate
 
 
 @dataclass(frozen=True)
@@ -321,10 +322,15 @@ def _compute(
     tabulate(source, mapping, bundle, scorer, flow, analyses, chunk_rows, pair, progress)
     holder["phase"] = "disclosure"
     counts = collect_counts(flow, analyses, site.policy)
-    earlier = ledger.facts_for_study(site.ledger_path, request.study_id)
-    protected = protect(counts, site.policy, earlier, bundle.sha256, request.request_id)
+    # the audit's scope is the site: every release it made, to any study (max_studies is only a rate limit)
+    earlier = ledger.facts_for_site(site.ledger_path)
+    primary = primary_counts(counts, analyses, bundle)
+    domains = {f.name: f.to_dict() for f in schema.features}
+    protected = protect(counts, site.policy, earlier, bundle.sha256, request.request_id, primary, domains)
     holder.update(counts=counts, protected=protected)
     results = {a.name: a.render(protected.released, protected.derived) for a in analyses}
+    flow_part = flow.render(protected.released, protected.derived)
+    annotate(flow_part, results, protected.rules)
     release = Release(
         study_id=request.study_id,
         request_id=request.request_id,
@@ -332,8 +338,20 @@ def _compute(
         site_id=site.site_id,
         created_at=datetime.now(UTC).replace(microsecond=0).isoformat(),
         policy=site.policy.release_statement(),
-        flow=flow.render(protected.released, protected.derived),
+        flow=flow_part,
         confusion=tuple(ConfusionTable.from_dict(t, "release.results.confusion") for t in results.pop("confusion", [])),
         extra=results,
+        cut_back=protected.cut_back,
     )
     return release, protected.facts(counts)
+
+
+def primary_counts(counts: CountSet, analyses: list[Any], bundle: Bundle) -> frozenset[str]:
+    """The primary table's counts: the participant flow and the 2x2 table at the bundle's threshold."""
+    names = {n for n in counts.values if n.startswith("flow.")}
+    threshold = bundle.manifest.thresholds[0]
+    for analysis in analyses:
+        if analysis.name == "confusion" and threshold in analysis.thresholds:
+            i = analysis.thresholds.index(threshold)
+            names |= {f"confusion[{i}].{c}" for c in ("tp", "fp", "fn", "tn")}
+    return frozenset(names)

@@ -257,14 +257,24 @@ class Request:
         )
 
 
+# The rule that withheld a count (release ``suppressed_by`` maps; see docs/formats.md).
+WITHHELD_RULES = ("minimum_cell_size", "complementary", "audit", "coarsened")
+
+
 @dataclass(frozen=True)
 class ConfusionTable:
     threshold: float
     cells: dict[str, int | None]  # tp, fp, fn, tn; None = suppressed
     suppressed: tuple[str, ...] = ()
+    suppressed_by: dict[str, str] = field(default_factory=dict)  # withheld cell -> rule (WITHHELD_RULES)
 
     def to_dict(self) -> dict[str, Any]:
-        return {"threshold": self.threshold, "cells": dict(self.cells), "suppressed": list(self.suppressed)}
+        return {
+            "threshold": self.threshold,
+            "cells": dict(self.cells),
+            "suppressed": list(self.suppressed),
+            "suppressed_by": dict(self.suppressed_by),
+        }
 
     @classmethod
     def from_dict(cls, raw: Any, where: str) -> ConfusionTable:
@@ -282,7 +292,14 @@ class ConfusionTable:
             raise DocumentError(f"{where}.suppressed: must list cell names")
         if set(suppressed) != {c for c in CELLS if cells[c] is None} or len(suppressed) != len(set(suppressed)):
             raise DocumentError(f"{where}.suppressed: must list exactly the cells that are null")
-        return cls(float(threshold), cells, tuple(c for c in CELLS if c in suppressed))
+        by = raw.get("suppressed_by", {})
+        if (
+            not isinstance(by, dict)
+            or not set(by) <= set(suppressed)
+            or not all(v in WITHHELD_RULES for v in by.values())
+        ):
+            raise DocumentError(f"{where}.suppressed_by: must map withheld cells to one of {', '.join(WITHHELD_RULES)}")
+        return cls(float(threshold), cells, tuple(c for c in CELLS if c in suppressed), dict(by))
 
 
 @dataclass(frozen=True)
@@ -298,8 +315,17 @@ class Release:
     site_key_id: str = ""
     signature: str = ""
     extra: dict[str, Any] = field(default_factory=dict)
+    # analyses the site's disclosure control cut back so that the primary table survives, each
+    # {"analysis", "action", "rule"} in words (never a count); absent from the JSON when empty
+    cut_back: tuple[dict[str, str], ...] = ()
 
     def body(self) -> dict[str, Any]:
+        out = self._body()
+        if self.cut_back:
+            out["cut_back"] = [dict(c) for c in self.cut_back]
+        return out
+
+    def _body(self) -> dict[str, Any]:
         return {
             "kind": "release",
             "version": VERSION,
@@ -349,10 +375,24 @@ class Release:
             site_key_id=_identifier(doc, "site_key_id", source, _KEY_ID),
             signature=_get(doc, "signature", str, source),
             extra={k: v for k, v in results.items() if k != "confusion"},
+            cut_back=_cut_back(doc.get("cut_back", []), f"{source}.cut_back"),
         )
 
     def verify(self, trusted: KeyRing, source: str = "release") -> None:
         trusted.verify(self.site_key_id, canonical_bytes(self.body()), self.signature, source)
+
+
+def _cut_back(raw: Any, where: str) -> tuple[dict[str, str], ...]:
+    if not isinstance(raw, list) or len(raw) > 100:
+        raise DocumentError(f"{where}: must be a list of at most 100 objects")
+    out = []
+    for i, item in enumerate(raw):
+        if not isinstance(item, dict) or set(item) != {"analysis", "action", "rule"}:
+            raise DocumentError(f"{where}[{i}]: must be an object with analysis, action and rule")
+        if not all(isinstance(v, str) and len(v) <= 400 for v in item.values()):
+            raise DocumentError(f"{where}[{i}]: analysis, action and rule must be short texts")
+        out.append(dict(item))
+    return tuple(out)
 
 
 def _check_flow(flow: dict[str, Any], where: str) -> None:

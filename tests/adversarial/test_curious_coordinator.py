@@ -139,10 +139,10 @@ def test_same_study_under_new_request_ids_stops_at_max_requests(coordinator: Coo
         run_request(site, coordinator.request(AnalysisSpec("confusion", (0.4,)), study="again"), bundle)
 
 
-def test_a_new_study_id_starts_a_new_audit_scope(coordinator: Coordinator, tmp_path: Path) -> None:
-    """Residual risk, stated in docs/threat-model.md: the request cap and the differencing audit are per
-    study, so the same question under a NEW study id is answered again. Each release still obeys the
-    cell-size rule on its own; only require_approval (a person reading every release) closes this."""
+def test_a_new_study_id_is_audited_with_every_earlier_release(coordinator: Coordinator, tmp_path: Path) -> None:
+    """The request cap is per study, so the same question under a NEW study id is answered again; the audit
+    takes every release of the site together, so the answer is the same one (nothing new can be
+    differenced; tests/adversarial/test_recipient_knowledge.py plays a differencing pair across studies)."""
     site = make_site(coordinator, tmp_path, max_requests_per_study=1)
     bundle = coordinator.demo.bundle_bytes
     spec = AnalysisSpec("confusion", (0.5,))
@@ -152,7 +152,8 @@ def test_a_new_study_id_starts_a_new_audit_scope(coordinator: Coordinator, tmp_p
     second = run_request(site, coordinator.request(spec, study="study-two"), bundle)
     assert Release.from_bytes(second.release_bytes).confusion == Release.from_bytes(first.release_bytes).confusion
     assert ledger.facts_for_study(site.ledger_path, "study-two")[0] is not None
-    assert len(ledger.facts_for_study(site.ledger_path, "study-one")) == 1  # scopes do not see each other
+    assert len(ledger.facts_for_study(site.ledger_path, "study-one")) == 1
+    assert len(ledger.facts_for_site(site.ledger_path)) == 2  # the audit's scope: every study
 
 
 def test_new_study_ids_stop_at_the_site_wide_study_cap(coordinator: Coordinator, tmp_path: Path) -> None:

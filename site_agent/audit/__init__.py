@@ -1,0 +1,81 @@
+"""Audit by linear programming: what could a recipient of every release to a study work out?
+
+The recipient of a study's releases knows, for every count it was sent, the count's definition (a box: a
+conjunction of conditions over record variables) and, where it was not suppressed, its value; it also knows
+the additive relations between counts (records read = analysed + excluded, ...). Everything it can infer about
+the site's records follows from these linear facts and from counts being non-negative whole numbers.
+
+**Model.** The *atoms* are the common refinement of every box the site released (to every study: recipients of
+different studies may be the same party): the largest regions of
+record space that no released definition splits (two points of record space lie in the same atom when exactly
+the same boxes contain them). The unknowns are the atom counts ``x >= 0``; each released count says that the
+sum of its atoms equals its value, and each relation says that two sums are equal. Structural knowledge that
+every recipient has is added explicitly: only analysed records have a score, and an analysed record's outcome
+is ``"0"`` or ``"1"``. Excluded records therefore have no score or outcome split.
+
+**What is checked.**
+
+1. Every suppressed count, of this release and of every earlier release of the site: its feasible interval
+   ``[min, max]`` (two linear programs, HiGHS through :func:`scipy.optimize.linprog`) must hold at least
+   ``protection_width`` whole numbers (default 2: it can never be worked out exactly).
+2. Differencing: every atom, and every difference ``F \\ G`` of two nested boxes (``G`` inside ``F``), must
+   not be exactly determined with a value the policy would suppress (1..k−1, and 0 when zeros may not be
+   shown). A region is exactly determined when its indicator vector lies in the row space of the equality
+   system after the atoms that are zero in every feasible table are fixed (found with one LP per block);
+   this is exact for the real relaxation and costs one SVD per block instead of one LP per region.
+
+**Integrality.** The true interval of a count over whole-number tables can only be narrower than the LP
+relaxation's. We round the LP bounds inward (``ceil(min)``, ``floor(max)``), and where it is cheap (a
+suppressed count whose rounded interval holds fewer than ``protection_width + 2`` values) we solve the two
+integer programs exactly with :func:`scipy.optimize.milp` under a time limit, keeping the LP bound if the
+limit is hit. Differencing (check 2) is decided on the relaxation: a region the relaxation cannot pin down
+may, in rare non-unimodular systems (three or more cross-classified variables), still be pinned down over
+whole numbers; this is a known limit of the method (Hundepool et al. 2012, §4.3).
+
+References
+----------
+Hundepool A, Domingo-Ferrer J, Franconi L, et al. *Statistical Disclosure Control*. Wiley, 2012, ch. 4
+(tabular data: sensitivity rules, feasibility intervals, secondary suppression, linked tables).
+Fischetti M, Salazar-González JJ. Solving the cell suppression problem on tabular statistical data
+protected by lower and upper protection levels. *Management Science* 2001;47(7):1008–1027 (the LP audit).
+"""
+
+from __future__ import annotations
+
+from .check import Audit
+from .facts import (
+    ANALYSED,
+    MAX_ATOMS,
+    MILP_MAX_ATOMS,
+    OTHER,
+    OUTCOME,
+    OUTCOME_VALUES,
+    SCORED,
+    STATUS,
+    AuditError,
+    AuditResult,
+    Finding,
+    Interval,
+    ReleaseFacts,
+)
+from .refinement import Box, normalise, refine
+
+__all__ = [
+    "ANALYSED",
+    "MAX_ATOMS",
+    "MILP_MAX_ATOMS",
+    "OTHER",
+    "OUTCOME",
+    "OUTCOME_VALUES",
+    "SCORED",
+    "STATUS",
+    "Audit",
+    "AuditError",
+    "AuditResult",
+    "Box",
+    "Finding",
+    "Interval",
+    "ReleaseFacts",
+    "normalise",
+    "refine",
+]

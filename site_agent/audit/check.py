@@ -1,0 +1,424 @@
+"""The audit itself: the refinement of every definition the site released, evaluated per candidate release
+(see :mod:`site_agent.audit`)."""
+
+from __future__ import annotations
+
+import math
+import time
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+from scipy import sparse
+from threadpoolctl import threadpool_limits
+
+from .facts import _TOL, MILP_MAX_ATOMS, AuditError, AuditResult, Finding, Interval, ReleaseFacts
+from .refinement import Box, Domain, _bits, _whole_numbers, normalise, refine
+from .system import _build_system, _implicit_zeros, _Pool, _System
+
+# --- the audit --------------------------------------------------------------------------------------------
+
+
+@dataclass
+class _Statement:
+    release: int
+    name: str
+    box: int | None  # index into the boxes; None = an empty definition
+
+
+class Audit:
+    """The refinement of every definition released to a study: built once, evaluated per candidate release.
+
+    ``earlier`` are the facts of earlier releases (and of releases awaiting approval) of the site, to any study;
+    ``current`` is the release being audited. :meth:`evaluate` takes the audited release's values (``None``
+    = suppressed), so that more suppression can be tried without rebuilding the refinement.
+    """
+
+    def __init__(self, earlier: Sequence[ReleaseFacts], current: ReleaseFacts) -> None:
+        started = time.perf_counter()
+        self.releases = [*earlier, current]
+        self.domains: dict[str, Domain] = {}
+        for release in self.releases:
+            for name, raw in release.domains.items():
+                domain = Domain.from_dict(raw)
+                self.domains[name] = self.domains[name].meet(domain) if name in self.domains else domain
+        self.current = len(self.releases) - 1
+        box_index: dict[Box, int] = {}
+        self.statements: list[_Statement] = []
+        self.by_name: list[dict[str, _Statement]] = []
+        for r, release in enumerate(self.releases):
+            names: dict[str, _Statement] = {}
+            for name, definition in release.definitions.items():
+                box = normalise(definition.where, release.bundle, self.domains)
+                index = None if box is None else box_index.setdefault(box, len(box_index))
+                statement = _Statement(r, name, index)
+                self.statements.append(statement)
+                names[name] = statement
+            self.by_name.append(names)
+        self.boxes = list(box_index)
+        atom_masks = refine(self.boxes, self.domains)
+        n_boxes, n_atoms = len(self.boxes), len(atom_masks)
+        members = [_bits(mask, n_boxes) for mask in atom_masks]
+        rows = np.concatenate(members) if members else np.zeros(0, int)
+        cols = np.repeat(np.arange(n_atoms), [len(m) for m in members]) if members else np.zeros(0, int)
+        # incidence[box, atom] = 1 when the atom lies in the box
+        self.incidence = sparse.csr_matrix((np.ones(len(rows)), (rows, cols)), shape=(n_boxes, n_atoms))
+        indptr, indices = self.incidence.indptr, self.incidence.indices
+        self.box_index = [indices[indptr[j] : indptr[j + 1]] for j in range(n_boxes)]  # atoms of each box
+        self.box_atoms = [frozenset(index.tolist()) for index in self.box_index]
+        self.relation_rows = self._relation_rows()
+        self.structural_zero = self._structural_zeros()
+        self._pool = _Pool()
+        self.build_seconds = time.perf_counter() - started
+
+    def _relation_rows(self) -> sparse.csr_matrix:
+        """Each relation ``total = sum(parts)`` as a homogeneous row over the atoms (duplicates dropped)."""
+        n_atoms = self.incidence.shape[1]
+        unique: dict[tuple, sparse.csr_matrix] = {}
+        for r, release in enumerate(self.releases):
+            for relation in release.relations:
+                members = [self.by_name[r].get(n) for n in relation.members]
+                if any(m is None for m in members):
+                    continue
+                vector = np.zeros(n_atoms)
+                for position, member in enumerate(members):
+                    if member is not None and member.box is not None:
+                        vector[self.box_index[member.box]] += 1.0 if position == 0 else -1.0
+                nonzero = np.flatnonzero(vector)
+                if len(nonzero):
+                    key = (tuple(nonzero), tuple(vector[nonzero]))
+                    unique.setdefault(key, sparse.csr_matrix(vector))
+        if not unique:
+            return sparse.csr_matrix((0, n_atoms))
+        return sparse.vstack(list(unique.values())).tocsr()
+
+    def _structural_zeros(self) -> np.ndarray:
+        """Atoms empty in every table that satisfies the relations alone: known to everyone, never a finding."""
+        n = self.incidence.shape[1]
+        if self.relation_rows.shape[0] == 0 or n == 0:
+            return np.zeros(n, bool)
+        return _implicit_zeros(self.relation_rows, np.zeros(self.relation_rows.shape[0]), homogeneous=True)
+
+    def _value(self, statement: _Statement, current_values: Mapping[str, int | None]) -> int | None:
+        if statement.release == self.current:
+            return current_values.get(statement.name)
+        return self.releases[statement.release].values.get(statement.name)
+
+    def _known(self, current_values: Mapping[str, int | None]) -> tuple[dict[int, int], dict[int, int]]:
+        """Value of every box some release showed, and the first release that showed it."""
+        known: dict[int, int] = {}
+        first: dict[int, int] = {}
+        for statement in self.statements:
+            value = self._value(statement, current_values)
+            if value is None:
+                continue
+            if statement.box is None:
+                if value != 0:
+                    raise AuditError(f"count {statement.name!r} has an empty definition but a value other than 0")
+                continue
+            if statement.box in known and known[statement.box] != value:
+                raise AuditError(
+                    f"count {statement.name!r} differs from the same count in release "
+                    f"{self.releases[first[statement.box]].label}: the records changed since an earlier release of "
+                    "this site, and the audit cannot protect differences between two versions of the data; "
+                    "answer from the data extract earlier releases used (see docs/threat-model.md, data versions)"
+                )
+            known[statement.box] = int(value)
+            first[statement.box] = min(first.get(statement.box, statement.release), statement.release)
+        return known, first
+
+    def evaluate(
+        self,
+        current_values: Mapping[str, int | None],
+        min_cell_size: int,
+        allow_zero: bool,
+        protection_width: int = 2,
+        exact: bool = True,
+        current_rules: Mapping[str, str] | None = None,
+    ) -> AuditResult:
+        """Check every suppressed count and every differencing region; see the module docstring.
+
+        ``current_rules`` names the rule that withheld each count of the audited release; what the rules tell
+        (a ``minimum_cell_size`` count lies in 1..k−1) is a fact, as it is for every earlier release.
+        """
+        # One BLAS thread: the factorisations are small, and threads fighting for two busy cores made them
+        # hundreds of times slower.
+        with threadpool_limits(limits=1, user_api="blas"):
+            return self._evaluate(
+                current_values, min_cell_size, allow_zero, protection_width, exact, current_rules or {}
+            )
+
+    def _bound_rows(
+        self, current_values: Mapping[str, int | None], current_rules: Mapping[str, str], known: dict[int, int]
+    ) -> tuple[sparse.csr_matrix, np.ndarray, np.ndarray]:
+        """The rules' facts as rows ``low <= count <= high`` over the atoms, one per withheld box."""
+        bounds: dict[int, tuple[float, float]] = {}
+        for r, release in enumerate(self.releases):
+            facts = release.bounds(current_rules if r == self.current else None)
+            for name, (low, high) in facts.items():
+                statement = self.by_name[r].get(name)
+                if statement is None or statement.box is None or statement.box in known:
+                    continue
+                if r == self.current and current_values.get(name) is not None:
+                    continue
+                old = bounds.get(statement.box, (0.0, math.inf))
+                bounds[statement.box] = (max(old[0], low), min(old[1], high))
+        boxes = sorted(bounds)
+        n_atoms = self.incidence.shape[1]
+        if not boxes:
+            return sparse.csr_matrix((0, n_atoms)), np.zeros(0), np.zeros(0)
+        rows = self.incidence[boxes]
+        return rows, np.array([bounds[j][0] for j in boxes]), np.array([bounds[j][1] for j in boxes])
+
+    def _evaluate(
+        self,
+        current_values: Mapping[str, int | None],
+        min_cell_size: int,
+        allow_zero: bool,
+        protection_width: int,
+        exact: bool,
+        current_rules: Mapping[str, str],
+    ) -> AuditResult:
+        started = time.perf_counter()
+        n_atoms = self.incidence.shape[1]
+        known, first = self._known(current_values)
+        # boxes known only from the audited release: the only ones suppression can still take back
+        self._suppressible = {box for box, r in first.items() if r == self.current}
+
+        def unsafe(value: int) -> bool:
+            return (0 < value < min_cell_size) or (value == 0 and not allow_zero)
+
+        known_boxes = sorted(known)
+        data_rows = self.incidence[known_boxes] if known_boxes else sparse.csr_matrix((0, n_atoms))
+        a = sparse.vstack([data_rows, self.relation_rows]).tocsr()
+        b = np.concatenate([np.array([known[j] for j in known_boxes], float), np.zeros(self.relation_rows.shape[0])])
+        row_box: list[int | None] = [*known_boxes, *([None] * self.relation_rows.shape[0])]
+        zero = self.structural_zero.copy()
+        released_zero = np.zeros(n_atoms, bool)
+        for box, value in known.items():
+            if value == 0:
+                released_zero[self.box_index[box]] = True
+        g, g_low, g_high = self._bound_rows(current_values, current_rules, known)
+        system = _build_system(a, b, row_box, zero | released_zero, g, g_low, g_high)
+
+        findings: list[Finding] = []
+        seen_regions: set[frozenset[int]] = set()
+        intervals: dict[str, Interval] = {}
+
+        self._pool.valid_for(known)
+        targets = self._targets(current_values, first)
+        vectors = {box: self._vector(box) for box in targets}
+        batch = system.residuals(np.stack(list(vectors.values()))) if vectors else np.zeros(0)
+        residuals = dict(zip(vectors, batch.tolist(), strict=True))
+
+        # Exact disclosures first (linear algebra only): a suppressed count pinned down, and differencing
+        # (atoms, and differences of nested boxes, pinned down to a value the policy would hide). If any is
+        # found, more suppression is needed anyway, so the LPs for the remaining counts wait for the next round.
+        if protection_width >= 2:
+            for box, (release, names) in targets.items():
+                if residuals[box] < _TOL:
+                    seen_regions.add(self.box_atoms[box])
+                    vector = vectors[box]
+                    candidates = self._candidates(system.combination(vector), system, vector)
+                    findings.append(Finding("suppressed", self.releases[release].label, tuple(names), candidates))
+            self._atoms_pinned(system, unsafe, released_zero, findings, seen_regions)
+            self._nested_pinned(system, unsafe, findings, seen_regions)
+        if findings:
+            targets = {}
+
+        # 1. suppressed counts: the interval must hold at least `protection_width` whole numbers
+        open_targets = [v for box, v in vectors.items() if residuals[box] >= _TOL and not system.unbounded(v)]
+        if len(open_targets) >= 6 and len(self._pool.points) < 2:
+            rounds = 1 if len(open_targets) < 20 else 3
+            self._pool.add(system.spread_points(np.stack(open_targets), rounds))
+        for box, (release, names) in targets.items():
+            vector, residual = vectors[box], residuals[box]
+            duals: dict[int, float] | None = None
+            exact_interval = True
+            small = system.atoms_in_blocks(vector) <= MILP_MAX_ATOMS
+            if residual < _TOL:
+                low = high = system.value(vector)
+            else:
+                seen = (
+                    self._pool.range(vector, system.block_atoms(vector))
+                    if not system.unbounded(vector)
+                    else (0.0, math.inf)
+                )
+                margin = 2 if (exact and small) else 0  # leave room for the integer programs where they run
+                if seen is not None and _whole_numbers(*seen) >= protection_width + margin:
+                    low, high = seen  # an inner bound is enough: the count is at least this uncertain
+                    exact_interval = False
+                else:
+                    low, high, duals, points = system.lp_interval(vector)
+                    self._pool.add(points)
+            lo_int = max(0, math.ceil(low - 1e-6))
+            hi_int = None if math.isinf(high) else math.floor(high + 1e-6)
+            if exact and small and exact_interval and hi_int is not None and residual >= _TOL:
+                if hi_int - lo_int + 1 < protection_width + 2:
+                    lo_int, hi_int = system.milp_interval(vector, lo_int, hi_int)
+            interval = Interval(names[0], lo_int, hi_int, exact_interval)
+            if release == self.current:
+                intervals.update({name: Interval(name, lo_int, hi_int, exact_interval) for name in names})
+            if interval.values < protection_width and self.box_atoms[box] not in seen_regions:
+                seen_regions.add(self.box_atoms[box])
+                weights = duals if duals else system.combination(vector)
+                findings.append(
+                    Finding(
+                        "suppressed",
+                        self.releases[release].label,
+                        tuple(names),
+                        self._candidates(weights, system, vector),
+                    )
+                )
+
+        return AuditResult(
+            ok=not findings,
+            intervals=intervals,
+            findings=findings,
+            atoms=int((~self.structural_zero).sum()),
+            constraints=int(a.shape[0]),
+            releases=len(self.releases),
+            seconds=time.perf_counter() - started + self.build_seconds,
+            protection_width=protection_width,
+            unrepairable=any(not f.candidates for f in findings),
+        )
+
+    def _vector(self, box: int) -> np.ndarray:
+        vector = np.zeros(self.incidence.shape[1])
+        vector[self.box_index[box]] = 1.0
+        return vector
+
+    def _targets(self, current_values: Mapping[str, int | None], first: dict[int, int]) -> dict[int, tuple[int, list]]:
+        """Suppressed boxes that must stay uncertain: those hidden by a release before any earlier release showed
+        them (hiding a count an earlier release made public protects nothing, so it is not a target)."""
+        targets: dict[int, tuple[int, list[str]]] = {}
+        for statement in self.statements:
+            if statement.box is None or self._value(statement, current_values) is not None:
+                continue
+            if statement.box in first and first[statement.box] < statement.release:
+                continue
+            release, names = targets.setdefault(statement.box, (statement.release, []))
+            if statement.release == release:
+                names.append(statement.name)
+        return targets
+
+    def _atoms_pinned(
+        self,
+        system: _System,
+        unsafe: Any,
+        released_zero: np.ndarray,
+        findings: list[Finding],
+        seen: set[frozenset[int]],
+    ) -> None:
+        determined = system.zero.copy()
+        for block in system.blocks:
+            if block.basis.shape[1]:
+                determined[block.atoms] = np.einsum("ij,ij->i", block.basis, block.basis) > 1 - 1e-6
+        for atom in np.flatnonzero(determined & ~self.structural_zero & ~released_zero):
+            value = 0 if system.zero[atom] else int(round(system.solution[atom]))
+            region = frozenset([int(atom)])
+            if not unsafe(value) or region in seen:
+                continue
+            seen.add(region)
+            vector = np.zeros(self.incidence.shape[1])
+            vector[atom] = 1.0
+            weights = system.combination(vector)
+            findings.append(
+                Finding(
+                    "difference",
+                    self.releases[self.current].label,
+                    self._names_overlapping(vector),
+                    self._candidates(weights, system, vector),
+                )
+            )
+
+    def _nested_pinned(self, system: _System, unsafe: Any, findings: list[Finding], seen: set[frozenset[int]]) -> None:
+        """Nested boxes G inside F whose difference F \\ G is pinned down to a value the policy would hide.
+
+        F \\ G is pinned down exactly when F and G have the same residual (distance from the row space), so
+        boxes are grouped by residual (sorted on a random projection, then compared) and, inside a group,
+        sorted by value so that only pairs whose difference could be small are compared.
+        """
+        n_boxes, n_atoms = self.incidence.shape
+        if n_boxes < 2:
+            return
+        live = np.flatnonzero(~system.zero)
+        rng = np.random.default_rng(0)
+        # key = residual . g for a random g, computed without forming the residual matrix
+        key = np.zeros(n_boxes)
+        for block in system.blocks:
+            g = rng.standard_normal(len(block.atoms))
+            sub = self.incidence[:, block.atoms]
+            key += sub @ g - (sub @ block.basis) @ (block.basis.T @ g)
+        free_atoms = np.flatnonzero(system.free)
+        if len(free_atoms):
+            key += self.incidence[:, free_atoms] @ rng.standard_normal(len(free_atoms))
+        values = self.incidence @ system.solution
+        live_mask = np.zeros(n_atoms, bool)
+        live_mask[live] = True
+        cache: dict[int, frozenset[int]] = {}
+
+        def region_of(box: int) -> frozenset[int]:
+            if box not in cache:
+                index = self.box_index[box]
+                cache[box] = frozenset(index[live_mask[index]].tolist())
+            return cache[box]
+
+        order = np.argsort(key, kind="stable")
+        start = 0
+        while start < n_boxes:
+            stop = start + 1
+            while stop < n_boxes and abs(key[order[stop]] - key[order[stop - 1]]) < 1e-7:
+                stop += 1
+            group = sorted((int(j) for j in order[start:stop]), key=lambda j: values[j])
+            start = stop
+            for gi, g in enumerate(group):
+                for f in group[gi + 1 :]:
+                    difference = int(round(values[f] - values[g]))
+                    if difference > 0 and not unsafe(difference):
+                        break  # sorted by value: every later difference is at least as large
+                    if not unsafe(difference) or not region_of(g) < region_of(f):
+                        continue
+                    region = region_of(f) - region_of(g)
+                    if region in seen:
+                        continue
+                    vector = self._vector(f) - self._vector(g)
+                    if system.residual(vector) > 1e-6:
+                        continue
+                    seen.add(region)
+                    findings.append(
+                        Finding(
+                            "difference",
+                            self.releases[self.current].label,
+                            (self._box_label(f), self._box_label(g)),
+                            self._candidates(system.combination(vector), system, vector),
+                        )
+                    )
+
+    def _box_label(self, box: int) -> str:
+        for statement in self.statements:
+            if statement.box == box:
+                return f"{statement.name} (release {self.releases[statement.release].label})"
+        return "?"
+
+    def _names_overlapping(self, vector: np.ndarray) -> tuple[str, ...]:
+        overlap = self.incidence @ vector
+        boxes = set(np.flatnonzero(overlap > 0.5).tolist())
+        names = sorted(s.name for s in self.statements if s.release == self.current and s.box in boxes)
+        return tuple(names[:6])
+
+    def _candidates(self, weights: dict[int, float], system: _System, vector: np.ndarray) -> tuple[str, ...]:
+        """Counts of the audited release whose suppression could break the finding, smallest value first.
+
+        From the rows of a combination of released counts that yields the region (or the binding rows of the
+        LP); if none is suppressible, the audited release's counts that overlap the region.
+        """
+        # every row of the combination (the caller picks among them by the analyses' fixed priority)
+        boxes = {system.row_box[r] for r, w in weights.items() if system.row_box[r] in self._suppressible and w > 1e-9}
+        if not boxes:
+            overlap = self.incidence @ vector
+            boxes = {int(j) for j in np.flatnonzero(np.abs(overlap) > 0.5) if int(j) in self._suppressible}
+        # by name, never by value: the choice must tell a recipient who knows this rule nothing about values
+        # (the caller reorders by the analyses' priority, which does not look at values either)
+        return tuple(sorted(s.name for s in self.statements if s.release == self.current and s.box in boxes))

@@ -1,0 +1,137 @@
+"""What the audit works on: the facts of each release, and what it finds (see :mod:`site_agent.audit`)."""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass, field
+from typing import Any
+
+from federation.protocol import PolicyViolation
+
+from ..counts import CountDef, Relation
+
+STATUS = "status"
+ANALYSED = "analysed"
+OUTCOME = "outcome"
+OUTCOME_VALUES = ("0", "1")
+SCORED = ("score", "score.compare")  # variables only analysed records have
+OTHER = "\x00other"  # the categorical cell for every value no definition names (never shown)
+MAX_ATOMS = 200_000
+MILP_MAX_ATOMS = 60  # integer programs run where a count's blocks are this small (cheap); else inward rounding
+_TOL = 1e-7
+
+
+class AuditError(PolicyViolation):
+    """The audit cannot model the facts (they contradict each other, or are too many)."""
+
+
+@dataclass(frozen=True)
+class ReleaseFacts:
+    """What one release told (or, for the release being audited, would tell) the study's recipient.
+
+    ``values[name]`` is ``None`` for a suppressed count. ``bundle`` qualifies the score variables, so that two
+    releases scored with different models are not mistaken for the same variable.
+    """
+
+    label: str
+    definitions: Mapping[str, CountDef]
+    values: Mapping[str, int | None]
+    relations: Sequence[Relation] = ()
+    bundle: str = ""
+    rules: Mapping[str, str] = field(default_factory=dict)  # withheld count -> rule (site_agent.withheld)
+    min_cell_size: int = 0  # the policy the release states (0: unknown, no facts from the rules)
+    allow_zero: bool = True
+    domains: Mapping[str, Mapping[str, Any]] = field(default_factory=dict)  # feature -> schema entry
+
+    @classmethod
+    def from_dict(cls, label: str, raw: Any, bundle: str = "") -> ReleaseFacts:
+        """Read the ``facts`` of a ledger entry (a dict with ``counts`` and ``relations``, or a bare list)."""
+        counts = raw.get("counts", []) if isinstance(raw, dict) else raw
+        relations = raw.get("relations", []) if isinstance(raw, dict) else []
+        definitions = {c["name"]: CountDef.from_dict(c) for c in counts}
+        values = {c["name"]: c.get("value") for c in counts}
+        rules = {c["name"]: str(c["rule"]) for c in counts if c.get("value") is None and c.get("rule")}
+        rels = tuple(Relation(r["total"], tuple(r["parts"])) for r in relations)
+        policy = raw.get("policy", {}) if isinstance(raw, dict) else {}
+        return cls(
+            label,
+            definitions,
+            values,
+            rels,
+            raw.get("bundle", bundle) if isinstance(raw, dict) else bundle,
+            rules,
+            int(policy.get("min_cell_size", 0) or 0),
+            bool(policy.get("allow_zero", True)),
+            dict(raw.get("domains", {})) if isinstance(raw, dict) else {},
+        )
+
+    def bounds(self, rules: Mapping[str, str] | None = None) -> dict[str, tuple[int, int]]:
+        """What the rules tell about withheld counts: ``minimum_cell_size`` means 1..k−1 (0..k−1 when zeros
+        are hidden); the other rules tell nothing about the value (their choice does not look at values)."""
+        k = self.min_cell_size
+        if k < 1:
+            return {}
+        low = 1 if self.allow_zero else 0
+        chosen = self.rules if rules is None else rules
+        return {n: (low, k - 1) for n, r in chosen.items() if r == "minimum_cell_size"}
+
+
+@dataclass(frozen=True)
+class Interval:
+    """Feasible whole-number interval of one suppressed count, as the recipient could compute it."""
+
+    name: str
+    low: int
+    high: int | None  # None = unbounded above
+    exact: bool = True  # False: the true interval is at least this wide (certified by two feasible tables)
+
+    @property
+    def values(self) -> float:
+        return math.inf if self.high is None else max(0, self.high - self.low + 1)
+
+    def to_dict(self) -> dict[str, Any]:
+        return {"name": self.name, "low": self.low, "high": self.high, "exact": self.exact}
+
+
+@dataclass(frozen=True)
+class Finding:
+    """One way the releases, taken together, would break the policy (described without any count value)."""
+
+    kind: str  # "suppressed" (a suppressed count pinned down) or "difference" (a small region worked out)
+    release: str  # label of the release whose count or region is exposed
+    names: tuple[str, ...]  # the counts involved (the site's own view; never sent)
+    candidates: tuple[str, ...]  # counts of the audited release whose suppression could break it, best first
+
+    def describe(self) -> str:
+        if self.kind == "suppressed":
+            return f"suppressed count {self.names[0]} (release {self.release}) could be worked out"
+        return f"a small count could be worked out by differencing {' and '.join(self.names)}"
+
+
+@dataclass
+class AuditResult:
+    ok: bool
+    intervals: dict[str, Interval]  # suppressed counts of the audited release
+    findings: list[Finding]
+    atoms: int
+    constraints: int
+    releases: int
+    seconds: float
+    protection_width: int
+    unrepairable: bool = False
+
+    def to_dict(self) -> dict[str, Any]:
+        return {
+            "ok": self.ok,
+            "protection_width": self.protection_width,
+            "releases_considered": self.releases,
+            "atoms": self.atoms,
+            "constraints": self.constraints,
+            "seconds": round(self.seconds, 3),
+            "intervals": [i.to_dict() for i in sorted(self.intervals.values(), key=lambda i: i.name)],
+            "findings": [
+                {"kind": f.kind, "release": f.release, "names": list(f.names), "text": f.describe()}
+                for f in self.findings
+            ],
+        }

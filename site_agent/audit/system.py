@@ -1,0 +1,352 @@
+"""The linear system of one evaluation: blocks, LP and MILP intervals, feasible points (see
+:mod:`site_agent.audit`)."""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import numpy as np
+from scipy import sparse
+from scipy.linalg import qr
+from scipy.optimize import Bounds, LinearConstraint, linprog, milp
+from scipy.sparse.csgraph import connected_components
+
+from .facts import AuditError
+
+# --- the equality system of one evaluation ----------------------------------------------------------------
+
+
+@dataclass
+class _Block:
+    """One independent part of the system: rows and atoms that share no row with the rest."""
+
+    atoms: np.ndarray  # global atom indices
+    rows: np.ndarray  # global row indices
+    a: sparse.csr_matrix  # rows x atoms of this block
+    b: np.ndarray
+    basis: np.ndarray  # orthonormal basis of the row space (atoms x rank)
+    left: np.ndarray  # U_r / s: maps basis coordinates to a min-norm combination of rows
+    solution: np.ndarray  # one solution of a x = b (min-norm)
+    independent: np.ndarray  # positions (in ``rows``) of linearly independent rows: all the LPs need
+    g: sparse.csr_matrix | None = None  # bound facts over this block's atoms: low <= g x <= high
+    g_low: np.ndarray | None = None
+    g_high: np.ndarray | None = None
+
+    def inequalities(self) -> tuple[sparse.csr_matrix | None, np.ndarray | None]:
+        """The bound facts as ``A_ub x <= b_ub`` (None when the block has none)."""
+        if self.g is None or self.g.shape[0] == 0:
+            return None, None
+        return sparse.vstack([self.g, -self.g]).tocsr(), np.concatenate([self.g_high, -self.g_low])
+
+
+@dataclass
+class _System:
+    """``a x = b, x >= 0`` over the atoms, split into blocks; what one evaluation needs."""
+
+    a: sparse.csr_matrix
+    b: np.ndarray
+    row_box: list[int | None]  # the box a row states (None for a relation)
+    zero: np.ndarray  # atoms empty in every feasible table
+    free: np.ndarray  # atoms in no row (nothing bounds them above)
+    blocks: list[_Block]
+    atom_block: np.ndarray  # block index of each atom (-1 = zero or free)
+    solution: np.ndarray
+
+    def blocks_of(self, vector: np.ndarray) -> list[_Block]:
+        used = np.unique(self.atom_block[(vector != 0) & (self.atom_block >= 0)])
+        return [self.blocks[i] for i in used]
+
+    def unbounded(self, vector: np.ndarray) -> bool:
+        return bool(np.any(vector[self.free] != 0))
+
+    def residual(self, vector: np.ndarray) -> float:
+        """Distance of ``vector`` from the row space; 0 means its value is the same in every feasible table
+        (exact for the LP relaxation, because zero atoms are fixed and every other atom can be positive)."""
+        if self.unbounded(vector):
+            return math.inf
+        total = 0.0
+        for block in self.blocks_of(vector):
+            v = vector[block.atoms]
+            total += float(v @ v - np.sum((block.basis.T @ v) ** 2))
+        return math.sqrt(max(total, 0.0))
+
+    def residuals(self, vectors: np.ndarray) -> np.ndarray:
+        """:meth:`residual` of many vectors (rows) at once."""
+        if len(vectors) == 0:
+            return np.zeros(0)
+        squared = np.zeros(len(vectors))
+        for block in self.blocks:
+            sub = vectors[:, block.atoms]
+            squared += np.einsum("ij,ij->i", sub, sub) - np.sum((sub @ block.basis) ** 2, axis=1)
+        out = np.sqrt(np.maximum(squared, 0.0))
+        out[np.any(vectors[:, self.free] != 0, axis=1)] = math.inf
+        return out
+
+    def value(self, vector: np.ndarray) -> float:
+        return float(vector @ self.solution)
+
+    def combination(self, vector: np.ndarray) -> dict[int, float]:
+        """Rows (with weights) of a min-norm combination of the system that comes closest to ``vector``."""
+        weights: dict[int, float] = {}
+        for block in self.blocks_of(vector):
+            coefficients = block.left @ (block.basis.T @ vector[block.atoms])
+            for row, weight in zip(block.rows, coefficients, strict=True):
+                if abs(weight) > 1e-8:
+                    weights[int(row)] = weights.get(int(row), 0.0) + abs(float(weight))
+        return weights
+
+    def block_atoms(self, vector: np.ndarray) -> np.ndarray:
+        """Every atom of the blocks the vector touches (and the vector's own atoms)."""
+        blocks = self.blocks_of(vector)
+        own = np.flatnonzero(vector != 0)
+        return np.concatenate([own, *(b.atoms for b in blocks)]) if blocks else own
+
+    def atoms_in_blocks(self, vector: np.ndarray) -> int:
+        return sum(len(block.atoms) for block in self.blocks_of(vector))
+
+    def spread_points(self, targets: np.ndarray, rounds: int = 3) -> list[tuple[np.ndarray, np.ndarray]]:
+        """Feasible tables that push many counts to their extremes at once: the optima of the sum of all
+        counts and of random signed sums (a few LPs instead of two per count)."""
+        rng = np.random.default_rng(len(targets))
+        points = []
+        signs = [np.ones(len(targets))] + [rng.choice([-1.0, 1.0], len(targets)) for _ in range(rounds)]
+        for sign in signs:
+            direction = sign @ targets
+            for orientation in (1.0, -1.0):
+                point = self.solution.copy()
+                mask = np.zeros(len(point), bool)
+                for block in self.blocks_of(direction):
+                    result = _solve(orientation * direction[block.atoms], block)
+                    if result is not None:
+                        point[block.atoms] = result[1]
+                        mask[block.atoms] = True
+                points.append((point, mask | self.zero))
+        return points
+
+    def lp_interval(
+        self, vector: np.ndarray
+    ) -> tuple[float, float, dict[int, float], list[tuple[np.ndarray, np.ndarray]]]:
+        """Min and max of the vector's count over the LP relaxation (HiGHS dual simplex), the binding rows'
+        duals, and the optimal tables (feasible points for :class:`_Pool`)."""
+        low = high = 0.0
+        duals: dict[int, float] = {}
+        points = []
+        for sign in (1.0, -1.0):
+            point = self.solution.copy()
+            mask = self.zero.copy()
+            for block in self.blocks_of(vector):
+                result = _solve(sign * vector[block.atoms], block)
+                if result is None:  # unbounded: only a maximum can be
+                    high = math.inf
+                    continue
+                value, x, marginals = result
+                point[block.atoms] = x
+                mask[block.atoms] = True
+                if sign > 0:
+                    low += value
+                else:
+                    high -= value
+                for row, dual in zip(block.rows[block.independent], marginals, strict=False):
+                    if abs(dual) > 1e-9:
+                        duals[int(row)] = duals.get(int(row), 0.0) + abs(float(dual))
+            points.append((point, mask))
+        if self.unbounded(vector):
+            high = math.inf
+        return low, high, duals, points
+
+    def milp_interval(self, vector: np.ndarray, low: int, high: int) -> tuple[int, int]:
+        """Whole-number min and max (HiGHS branch and bound, 1 s per program); the LP bounds if time runs out."""
+        if self.unbounded(vector):
+            return low, high
+        int_low = int_high = 0
+        for block in self.blocks_of(vector):
+            c = vector[block.atoms]
+            found = []
+            for sign in (1.0, -1.0):
+                a, b = block.a[block.independent], block.b[block.independent]
+                constraints = [LinearConstraint(a, b, b)] if len(b) else []
+                if block.g is not None and block.g.shape[0]:
+                    constraints.append(LinearConstraint(block.g, block.g_low, block.g_high))
+                result = milp(
+                    sign * c,
+                    constraints=constraints,
+                    integrality=np.ones(len(c)),
+                    bounds=Bounds(0, np.inf),
+                    options={"time_limit": 1.0},
+                )
+                if result.status != 0 or result.fun is None:
+                    return low, high
+                found.append(sign * float(result.fun))
+            int_low += round(found[0])
+            int_high += round(found[1])
+        return max(low, int_low), min(high, int_high)
+
+
+def _solve(c: np.ndarray, block: _Block) -> tuple[float, np.ndarray, np.ndarray] | None:
+    """Minimise ``c . x`` over the block (independent rows only); None when unbounded below."""
+    a, b = block.a[block.independent], block.b[block.independent]
+    a_ub, b_ub = block.inequalities()
+    if len(b) == 0:
+        a = b = None
+    result = linprog(
+        c, A_ub=a_ub, b_ub=b_ub, A_eq=a, b_eq=b, bounds=(0, None), method="highs-ds", options={"presolve": False}
+    )
+    if result.status == 3:
+        return None
+    if result.status != 0:
+        raise AuditError("the audit's linear program did not solve; the release is withheld")
+    marginals = np.asarray(result.eqlin.marginals) if a is not None else np.zeros(0)
+    return float(result.fun), np.asarray(result.x), marginals
+
+
+class _Pool:
+    """Feasible tables found so far (LP optima). A count's LP interval contains its value in each of them, so
+    two tables whose values lie far enough apart certify a count without solving its two LPs. Removing
+    released counts (more suppression) only enlarges the feasible set, so the tables stay valid while the
+    released counts are a subset of those they were found for."""
+
+    def __init__(self) -> None:
+        self.known: dict[int, int] = {}
+        self.points: list[np.ndarray] = []
+        self.masks: list[np.ndarray] = []  # atoms on which each point is a feasible table (its solved blocks)
+
+    def valid_for(self, known: dict[int, int]) -> None:
+        if not all(self.known.get(box) == value for box, value in known.items()):
+            self.known, self.points, self.masks = dict(known), [], []
+        else:
+            self.known = dict(known)
+
+    def add(self, points: list[tuple[np.ndarray, np.ndarray]]) -> None:
+        for point, mask in points:
+            self.points.append(point)
+            self.masks.append(mask)
+
+    def range(self, vector: np.ndarray, needed: np.ndarray) -> tuple[float, float] | None:
+        """Range of the vector over the points feasible on every atom of ``needed`` (its blocks' atoms)."""
+        usable = [p for p, m in zip(self.points, self.masks, strict=True) if m[needed].all()]
+        if len(usable) < 2:
+            return None
+        values = np.stack(usable) @ vector
+        return float(values.min()), float(values.max())
+
+
+def _build_system(
+    a: sparse.csr_matrix,
+    b: np.ndarray,
+    row_box: list[int | None],
+    zero: np.ndarray,
+    g: sparse.csr_matrix | None = None,
+    g_low: np.ndarray | None = None,
+    g_high: np.ndarray | None = None,
+) -> _System:
+    """Split ``a x = b`` (with the bound facts ``g_low <= g x <= g_high``) into independent blocks, fix each
+    block's implicit zeros and factorise its equalities (SVD)."""
+    n_atoms = a.shape[1]
+    zero = zero.copy()
+    keep = np.flatnonzero(~zero)
+    a_live = a[:, keep].tocsr()
+    a_live.eliminate_zeros()
+    nonempty = np.diff(a_live.indptr) > 0
+    if np.any(np.abs(b[~nonempty]) > 0.5):
+        raise AuditError("the released counts contradict each other (no table is consistent with them)")
+    row_ids = np.flatnonzero(nonempty)
+    a_live = a_live[row_ids]
+    all_rows, all_live = row_ids, a_live
+    if len(row_ids):
+        # Keep a linearly independent set of rows, preferring sparse ones (pivoted QR on rows scaled by
+        # 1/nnz): a dense total implied by its parts (records read, analysed) is dropped, which splits the
+        # system into smaller blocks and spares HiGHS the redundant rows. Dropped rows are checked below.
+        scale = 1.0 / np.diff(a_live.indptr)
+        _, r_factor, pivots = qr((a_live.T @ sparse.diags(scale)).toarray(), mode="economic", pivoting=True)
+        diagonal = np.abs(np.diag(r_factor))
+        rank = int(np.sum(diagonal > diagonal[0] * 1e-9)) if len(diagonal) else 0
+        chosen = np.sort(pivots[:rank])
+        row_ids, a_live = row_ids[chosen], a_live[chosen]
+    if g is None:
+        g = sparse.csr_matrix((0, n_atoms))
+        g_low = g_high = np.zeros(0)
+    g_live = g[:, keep].tocsr()
+    m, q = len(row_ids), g_live.shape[0]
+    blocks: list[_Block] = []
+    in_rows = np.zeros(n_atoms, bool)
+    if m or q:
+        both = sparse.vstack([a_live, g_live]).tocsr()
+        in_rows[keep[np.unique(both.indices)]] = True
+        graph = sparse.bmat([[None, both], [both.T, None]]).tocsr()
+        _, labels = connected_components(graph, directed=False)
+        row_labels, g_labels, atom_labels = labels[:m], labels[m : m + q], labels[m + q :]
+        for label in np.unique(labels[: m + q]):
+            r_local = np.flatnonzero(row_labels == label)
+            q_local = np.flatnonzero(g_labels == label)
+            c_local = np.flatnonzero(atom_labels == label)
+            if len(c_local) == 0:
+                continue
+            sub = a_live[r_local][:, c_local].tocsr()
+            rhs = b[row_ids[r_local]]
+            basis, left, solution = _factorise(sub.toarray(), rhs)
+            # A strictly positive solution is an interior point: then no atom is forced to zero and the LP
+            # that finds such atoms can be skipped.
+            if len(r_local) and np.min(solution, initial=1.0) <= 1e-9:
+                implicit = _implicit_zeros(sub, rhs)
+                if implicit.any():
+                    zero[keep[c_local[implicit]]] = True
+                    c_local = c_local[~implicit]
+                    sub = sub[:, ~implicit].tocsr()
+                    if len(c_local) == 0:
+                        continue
+                    basis, left, solution = _factorise(sub.toarray(), rhs)
+            dense = sub.toarray()
+            rank = basis.shape[1]
+            independent = np.arange(len(r_local))
+            if rank < len(r_local):  # fixing implicit zeros can make rows dependent again
+                _, _, pivots = qr(dense.T, mode="economic", pivoting=True)
+                independent = np.sort(pivots[:rank])
+            block = _Block(keep[c_local], row_ids[r_local], sub, rhs, basis, left, solution, independent)
+            if len(q_local):
+                block.g = g_live[q_local][:, c_local].tocsr()
+                block.g_low, block.g_high = g_low[q_local], g_high[q_local]
+            blocks.append(block)
+    free = ~zero & ~in_rows
+    atom_block = np.full(n_atoms, -1)
+    solution = np.zeros(n_atoms)
+    for i, block in enumerate(blocks):
+        atom_block[block.atoms] = i
+        solution[block.atoms] = block.solution
+    if len(all_rows) and np.max(np.abs(all_live @ solution[keep] - b[all_rows])) > 1e-6 * (1 + np.max(np.abs(b))):
+        raise AuditError("the released counts contradict each other (no table is consistent with them)")
+    return _System(a, b, row_box, zero, free, blocks, atom_block, solution)
+
+
+def _factorise(dense: np.ndarray, rhs: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Row-space basis, the map to min-norm row combinations, and the min-norm solution (one SVD)."""
+    if dense.shape[0] == 0:
+        return np.zeros((dense.shape[1], 0)), np.zeros((0, 0)), np.zeros(dense.shape[1])
+    u, s, vt = np.linalg.svd(dense, full_matrices=False)
+    rank = int(np.sum(s > max(dense.shape) * np.finfo(float).eps * max(s[0], 1.0) * 10)) if len(s) else 0
+    basis = vt[:rank].T
+    left = u[:, :rank] / s[:rank]
+    return basis, left, basis @ (left.T @ rhs)
+
+
+def _implicit_zeros(a: sparse.csr_matrix, b: np.ndarray, homogeneous: bool = False) -> np.ndarray:
+    """Atoms that are zero in every non-negative solution of ``a x = b`` (one LP).
+
+    Maximise the number of atoms that can be made positive: ``a x = b t``, ``t >= 1``, ``0 <= z <= 1``,
+    ``z <= x``. Scaling by ``t`` lets every atom that can be positive reach 1 at once, so at the optimum
+    ``z = 0`` exactly for the atoms that are empty in every feasible table (Freund, Roundy & Todd 1985).
+    """
+    m, n = a.shape
+    if n == 0:
+        return np.zeros(0, bool)
+    eye = sparse.identity(n, format="csr")
+    a_eq = sparse.hstack([a, sparse.csr_matrix((m, n)), sparse.csr_matrix(-b.reshape(-1, 1))]).tocsr()
+    a_ub = sparse.hstack([-eye, eye, sparse.csr_matrix((n, 1))]).tocsr()
+    c = np.concatenate([np.zeros(n), -np.ones(n), [0.0]])
+    bounds = [(0, None)] * n + [(0, 1)] * n + [(0, 0) if homogeneous else (1, None)]
+    result = linprog(c, A_ub=a_ub, b_ub=np.zeros(n), A_eq=a_eq, b_eq=np.zeros(m), bounds=bounds, method="highs")
+    if result.status == 2:
+        raise AuditError("the released counts contradict each other (no table is consistent with them)")
+    if result.status != 0:
+        raise AuditError("the audit's linear program did not solve; the release is withheld")
+    return result.x[n : 2 * n] < 0.5

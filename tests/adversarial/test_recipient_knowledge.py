@@ -1,0 +1,109 @@
+"""Each thing a recipient knows (docs/threat-model.md, "What the recipient knows"), played through the real
+command lines against records of our own making: the small group (three children aged 24-29 months, all with
+the condition) must never be worked out. The recipient's interval is recomputed independently by
+tests/adversarial/world.py (its own enumeration of record types and integer programs, scipy.optimize.milp)."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+
+from .world import World, oracle_interval, records
+
+SMALL = [(25, "f", 1, 1), (27, "m", 2, 1), (28, "f", 0, 1)]  # three children aged 24-29 months, all positive
+
+
+def neutral(world: World) -> None:
+    # A model that reads only the item: its score says nothing about age.
+    card = {"kind": "points", "points": {"item": {"2": 1, "3": 1}}}
+    world.scorecard("neutral", card, 1, lambda a, s, i: float(i >= 2))
+
+
+def in_small_band(cell: tuple) -> bool:
+    return 24 <= cell[0] < 30 and cell[3] == 1
+
+
+def test_age_bands_asked_in_two_studies_do_not_give_the_small_band(tmp_path: Path) -> None:
+    """Item 1: the audit's scope is the site. Age bands 0/24/48 in one study and 0/30/48 in another would
+    give the 24-29 count by subtraction; the second release must withhold enough (or be refused)."""
+    world = World(tmp_path, records(small=SMALL))
+    neutral(world)
+    first = world.ask("neutral", "study-one", "--analyses", "confusion,subgroups", "--subgroup", "age_months=24,48")
+    assert first is not None
+    world.ask("neutral", "study-two", "--analyses", "confusion,subgroups", "--subgroup", "age_months=30,48")
+    low, high = oracle_interval(world, in_small_band)
+    assert high - low >= 1, (low, high)  # at least two values remain possible
+
+
+def _suppressed_lists(node: object, path: str = "") -> list[tuple[str, dict]]:
+    if isinstance(node, dict):
+        found = [(path, node)] if "suppressed" in node and isinstance(node["suppressed"], list) else []
+        return found + [x for k, v in node.items() for x in _suppressed_lists(v, f"{path}.{k}")]
+    if isinstance(node, list):
+        return [x for i, v in enumerate(node) for x in _suppressed_lists(v, f"{path}[{i}]")]
+    return []
+
+
+def test_every_withheld_count_names_its_rule(tmp_path: Path) -> None:
+    """Item 4: the release's suppressed_by maps name the rule of every withheld count; the small group's
+    cells are withheld for the minimum cell size and the release says so."""
+    world = World(tmp_path, records(small=SMALL))
+    neutral(world)
+    release = world.ask("neutral", "s", "--analyses", "confusion,subgroups", "--subgroup", "age_months=24,30")
+    assert release is not None
+    parts = _suppressed_lists({"flow": release["flow"], "results": release["results"]})
+    assert parts
+    for path, part in parts:
+        assert set(part["suppressed_by"]) == set(part["suppressed"]), path
+        assert set(part["suppressed_by"].values()) <= {"minimum_cell_size", "complementary", "audit", "coarsened"}
+    level = release["results"]["subgroups"]["variables"][0]["levels"][1]  # 24-29 months: three, all positive
+    assert level["level"] == {"low": 24.0, "high": 30.0}
+    assert level["analysed_positive"] is None and level["suppressed_by"]["analysed_positive"] == "minimum_cell_size"
+
+
+def test_a_band_outside_the_schema_range_is_known_to_be_empty(tmp_path: Path) -> None:
+    """Item 3: ages are whole months from 0, so a band below 0 (or between two whole months) holds nobody,
+    and the recipient knows it. Bands at 0/24/30: the 24-29 group is withheld, and the fixed complementary
+    rule withholds the first level too; if that level is the empty one, the total minus the shown levels is
+    the small count unless the audit knows the band is empty."""
+    world = World(tmp_path, records(small=SMALL))
+    neutral(world)
+    release = world.ask("neutral", "one", "--analyses", "confusion,subgroups", "--subgroup", "age_months=0,24,30")
+    assert release is not None
+    levels = release["results"]["subgroups"]["variables"][0]["levels"]
+    assert levels[2]["level"] == {"low": 24.0, "high": 30.0} and levels[2]["analysed_positive"] is None
+    low, high = oracle_interval(world, in_small_band)
+    assert high - low >= 1, (low, high)
+
+
+def test_a_study_asking_for_everything_keeps_the_primary_table(tmp_path: Path) -> None:
+    """Issue 13, item 1: every analysis, a second reference that is often blank and a paired comparison, at a
+    site of 400 participants. The primary 2x2 table and the flow stay whole; what had to give is cut back
+    in words (no count), and the hidden small group still cannot be worked out."""
+    data = records(small=SMALL)
+    rng = np.random.default_rng(5)
+    second = [("" if rng.random() < 0.4 else str(o if rng.random() < 0.85 else 1 - o)) for *_, o in data]
+    world = World(tmp_path, data, reference2=second)
+    world.scorecard(
+        "short",
+        {"kind": "logistic", "intercept": -1.0, "weights": {"item": 0.8, "age_months": 0.002}},
+        0.5,
+        lambda a, s, i: 1 / (1 + np.exp(-(-1.0 + 0.8 * i + 0.002 * a))),
+    )
+    world.scorecard("long", {"kind": "points", "points": {"item": {"1": 1, "2": 2, "3": 3}}}, 2, lambda a, s, i: i)
+    everything = "confusion,roc,calibration,margin,agreement,subgroups,paired"
+    release = world.ask(
+        "short", "full", "--analyses", everything, "--subgroup", "age_months=12,24,30,48", "--subgroup", "sex",
+        compare="long",
+    )
+    assert release is not None
+    primary = release["results"]["confusion"][0]
+    assert primary["threshold"] == 0.5 and primary["suppressed"] == [], primary
+    assert release["flow"]["suppressed"] == []
+    for cut in release.get("cut_back", []):
+        assert set(cut) == {"analysis", "action", "rule"}
+        assert not any(ch.isdigit() for ch in cut["rule"].replace("2x2", "") + cut["action"])  # words, no count
+    print(release.get("cut_back"))
+    low, high = oracle_interval(world, in_small_band)
+    assert high - low >= 1, (low, high)

@@ -1,0 +1,224 @@
+"""A small world of our own making for playing disclosure attacks through the real command lines.
+
+A coordinator (keys, bundles, requests made with ``federation``), one site (``site-agent init`` and ``run``)
+and a few hundred invented records: ``age_months`` (whole months 0..95), ``sex`` (f/m), ``item`` (0..3) and
+the reference standard. ``oracle_interval`` is the recipient: from the release files alone (what it was
+sent) and the models it packed, it enumerates every record type the schema allows, scores each with its
+own copy of the scorecard, and solves two integer programs (scipy.optimize.milp) for the smallest and largest
+number of records of a target region consistent with everything released. It shares no code with the
+site's audit.
+"""
+
+from __future__ import annotations
+
+import itertools
+import json
+import math
+import re
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+from scipy.optimize import Bounds, LinearConstraint, milp
+
+from federation.cli import main as federation
+from site_agent.cli import main as site_agent
+
+SCHEMA = """\
+[[features]]
+name = "age_months"
+type = "int"
+min = 0
+max = 95
+
+[[features]]
+name = "sex"
+type = "category"
+categories = ["f", "m"]
+
+[[features]]
+name = "item"
+type = "int"
+min = 0
+max = 3
+"""
+AGES = range(0, 96)
+SEXES = ("f", "m")
+ITEMS = range(0, 4)
+
+Record = tuple[int, str, int, int]  # age_months, sex, item, outcome
+Score = Callable[[int, str, int], float]
+
+
+def records(seed: int = 3, n: int = 400, small: Sequence[Record] = ()) -> list[Record]:
+    """``n`` invented records spread over every age except 24..29 months, plus the ``small`` group."""
+    rng = np.random.default_rng(seed)
+    ages = [a for a in AGES if not 24 <= a < 30]
+    out = [
+        (int(rng.choice(ages)), str(rng.choice(SEXES)), int(rng.integers(0, 4)), int(rng.random() < 0.3))
+        for _ in range(n)
+    ]
+    return out + list(small)
+
+
+@dataclass
+class World:
+    root: Path
+    data: list[Record]
+    k: int = 10
+    allow_zero: bool = True
+    reference2: list[str] | None = None  # a second reference standard per record ("1", "0" or "" = blank)
+    bundles: dict[str, tuple[Path, Score, float]] = field(default_factory=dict)
+    releases: list[dict[str, Any]] = field(default_factory=list)
+    refused: list[str] = field(default_factory=list)
+
+    def __post_init__(self) -> None:
+        self.root.mkdir(parents=True, exist_ok=True)
+        assert federation(["keys", "new", "--out", str(self.root / "coordinator")]) == 0
+        (self.root / "schema.toml").write_text(SCHEMA)
+        self.site = self.root / "site"
+        pub = str(self.root / "coordinator" / "coordinator.pub")
+        assert site_agent(["init", "--site-id", "site-a", "--trust", pub, "--out", str(self.site)]) == 0
+        config = self.site / "site.toml"
+        text = re.sub(r"min_cell_size = \d+", f"min_cell_size = {self.k}", config.read_text())
+        text = text.replace("allow_zero = true", f"allow_zero = {str(self.allow_zero).lower()}")
+        config.write_text(text)
+        lines = ["age_months,sex,item,outcome", *(f"{a},{s},{i},{o}" for a, s, i, o in self.data)]
+        self.mapping: Path | None = None
+        if self.reference2 is not None:
+            lines = [f"{line},{r}" for line, r in zip(lines, ["ref2", *self.reference2], strict=True)]
+            self.mapping = self.root / "mapping.toml"
+            self.mapping.write_text('[reference2]\ncolumn = "ref2"\npositive = ["1"]\nnegative = ["0"]\n')
+        (self.root / "records.csv").write_text("\n".join(lines) + "\n")
+
+    def scorecard(self, name: str, card: dict[str, Any], threshold: float, score: Score) -> Path:
+        """Pack a scorecard; ``score`` is the recipient's own copy of the same function."""
+        model = self.root / f"{name}.json"
+        model.write_text(json.dumps({"format": "scorecard", **card}))
+        out = self.root / f"{name}.bundle"
+        key = str(self.root / "coordinator" / "coordinator.key")
+        args = ["bundle", "pack", "--model", str(model), "--schema", str(self.root / "schema.toml")]
+        assert federation([*args, "--threshold", str(threshold), "--sign", key, "--name", name, "--out", str(out)]) == 0
+        self.bundles[name] = (out, score, threshold)
+        return out
+
+    def ask(self, bundle: str, study: str, *options: str, compare: str | None = None) -> dict[str, Any] | None:
+        """Issue a request with ``federation request new`` and answer it with ``site-agent run``; the release
+        (parsed) or None when the site refused (exit 2)."""
+        path, _, _ = self.bundles[bundle]
+        n = len(self.releases) + len(self.refused)
+        request = self.root / f"request-{n}.json"
+        key = str(self.root / "coordinator" / "coordinator.key")
+        store = str(self.root / "study.db")
+        new = ["request", "new", "--store", store, "--study-id", study, "--bundle", str(path), "--sign", key]
+        if compare is not None:
+            new += ["--compare", str(self.bundles[compare][0])]
+        assert federation([*new, *options, "--out", str(request)]) == 0
+        out = self.root / f"release-{n}.json"
+        args = ["run", "--site", str(self.site), "--request", str(request), "--bundle", str(path)]
+        if compare is not None:
+            args += ["--compare-bundle", str(self.bundles[compare][0])]
+        if self.mapping is not None:
+            args += ["--mapping", str(self.mapping)]
+        code = site_agent([*args, "--data", str(self.root / "records.csv"), "--out", str(out)])
+        if code == 2:
+            self.refused.append(request.name)
+            return None
+        assert code == 0
+        release = json.loads(out.read_text())
+        release["_bundle"] = bundle
+        self.releases.append(release)
+        return release
+
+
+# --- the recipient -----------------------------------------------------------------------------------------
+
+
+def _cells() -> list[tuple[int, str, int, int]]:
+    return [(a, s, i, o) for a, s, i in itertools.product(AGES, SEXES, ITEMS) for o in (0, 1)]
+
+
+def _in_band(value: float, band: dict[str, Any] | None) -> bool:
+    if band is None:
+        return True
+    low, high = band.get("low"), band.get("high")
+    return (low is None or value >= low) and (high is None or value < high)
+
+
+def facts_of(release: dict[str, Any], score: Score, k: int, allow_zero: bool) -> list[tuple[Callable, int | tuple]]:
+    """(membership test over record types, value or (low, high) from the withheld rule) for every count the
+    release shows or withholds, read from the release file alone."""
+    facts: list[tuple[Callable, Any]] = []
+    low_small = 1 if allow_zero else 0
+
+    def add(test: Callable, value: int | None, rule: str | None) -> None:
+        if value is not None:
+            facts.append((test, value))
+        elif rule == "minimum_cell_size":
+            facts.append((test, (low_small, k - 1)))
+
+    flow = release["flow"]
+    by = flow.get("suppressed_by", {})
+    add(lambda c: True, flow["analysed"], by.get("analysed"))
+    add(lambda c: c[3] == 1, flow["analysed_positive"], by.get("analysed_positive"))
+    add(lambda c: c[3] == 0, flow["analysed_negative"], by.get("analysed_negative"))
+
+    def confusion(tables: list[dict[str, Any]], where: Callable) -> None:
+        for table in tables:
+            t, by = table["threshold"], table.get("suppressed_by", {})
+            sides = {"tp": (1, True), "fp": (0, True), "fn": (1, False), "tn": (0, False)}
+            for cell, (outcome, above) in sides.items():
+
+                def test(c: tuple, o: int = outcome, up: bool = above, t: float = t) -> bool:
+                    return where(c) and c[3] == o and (score(c[0], c[1], c[2]) >= t) == up
+
+                add(test, table["cells"][cell], by.get(cell))
+
+    results = release["results"]
+    confusion(results.get("confusion", []), lambda c: True)
+    for variable in results.get("subgroups", {}).get("variables", []):
+        name = variable["variable"]
+        for level in variable["levels"]:
+            label = level["level"]
+
+            def inside(c: tuple, label: Any = label, name: str = name) -> bool:
+                if name == "sex":
+                    return c[1] == label
+                return _in_band(c[0] if name == "age_months" else c[2], label)
+
+            by = level.get("suppressed_by", {})
+            add(lambda c, f=inside: f(c) and c[3] == 1, level["analysed_positive"], by.get("analysed_positive"))
+            add(lambda c, f=inside: f(c) and c[3] == 0, level["analysed_negative"], by.get("analysed_negative"))
+            confusion(level.get("confusion", []), inside)
+    roc = results.get("roc")
+    if roc:
+        by = roc.get("suppressed_by", {})
+        for j, band in enumerate(roc["bands"]):
+            for klass, outcome in (("positive", 1), ("negative", 0)):
+                test = lambda c, b=band, o=outcome: c[3] == o and _in_band(score(c[0], c[1], c[2]), b)  # noqa: E731
+                add(test, band[klass], by.get(f"band[{j}].{klass}"))
+    return facts
+
+
+def oracle_interval(world: World, region: Callable[[tuple], bool]) -> tuple[int, int]:
+    """Whole-number min and max of the number of records in ``region`` over every table of record types
+    consistent with every release the world's site made (HiGHS branch and bound, scipy.optimize.milp)."""
+    cells = _cells()
+    rows, lows, highs = [], [], []
+    for release in world.releases:
+        _, score, _ = world.bundles[release["_bundle"]]
+        for test, value in facts_of(release, score, world.k, world.allow_zero):
+            rows.append([1.0 if test(c) else 0.0 for c in cells])
+            low, high = (value, value) if isinstance(value, int) else value
+            lows.append(low)
+            highs.append(high)
+    target = np.array([1.0 if region(c) else 0.0 for c in cells])
+    constraint = LinearConstraint(np.array(rows), np.array(lows, float), np.array(highs, float))
+    found = []
+    for sign in (1.0, -1.0):
+        result = milp(sign * target, constraints=constraint, integrality=np.ones(len(cells)), bounds=Bounds(0, np.inf))
+        assert result.status == 0, "the releases must be consistent with some table"
+        found.append(sign * result.fun)
+    return math.ceil(found[0] - 1e-6), math.floor(found[1] + 1e-6)

@@ -1,0 +1,119 @@
+"""What the suppression rules tell a recipient who knows them (issue: the suppression algorithm itself).
+
+A count withheld for the minimum cell size lies in 1..k-1 when zeros are shown (0..k-1 when they are not);
+the release says so in its ``suppressed_by`` map, and the audit must treat it as a fact. The secondary rule's
+choice must not depend on values. Checked by brute force over every whole-number table of the test's own
+small record space (independent of site_agent.audit).
+"""
+
+from __future__ import annotations
+
+from types import SimpleNamespace
+
+import numpy as np
+
+from site_agent.counts import Condition, CountSet
+from site_agent.disclosure import protect, suppress
+from site_agent.withheld import annotate, rule_of
+
+
+def policy(k: int = 10, allow_zero: bool = True) -> SimpleNamespace:
+    return SimpleNamespace(min_cell_size=k, allow_zero=allow_zero, protection_width=2)
+
+
+def chain(x: int, u: int, v: int, w: int) -> CountSet:
+    """Four cells of one variable ``z`` and three overlapping pairs: A = X + U, B = U + V, C = V + W."""
+    out = CountSet()
+    for name, value in (("x", x), ("u", u), ("v", v), ("w", w)):
+        out.add(f"t.{name}", value, Condition("z", (name,)))
+    for total, parts in (("a", "xu"), ("b", "uv"), ("c", "vw")):
+        out.add(f"t.{total}", sum({"x": x, "u": u, "v": v, "w": w}[p] for p in parts), Condition("z", tuple(parts)))
+        out.relate(f"t.{total}", *(f"t.{p}" for p in parts))
+    return out
+
+
+def brute_force(counts: CountSet, released: dict[str, int | None], rules: dict[str, str], k: int) -> set[int]:
+    """Every value of X consistent with what was released and what the rules tell (zeros shown): all
+    whole-number tables with cells 0..39, enumerated at once (numpy)."""
+    grid = dict(zip("xuvw", np.meshgrid(*[np.arange(40)] * 4, indexing="ij"), strict=True))
+    ok = np.ones(grid["x"].shape, bool)
+    for name, definition in counts.definitions.items():
+        value = sum(grid[c] for c in definition.where[0].values)
+        shown = released[name]
+        if shown is not None:
+            ok &= value == shown
+        elif rules.get(name) == "minimum_cell_size":
+            ok &= (value >= 1) & (value <= k - 1)
+    return set(np.unique(grid["x"][ok]).tolist())
+
+
+def test_a_cell_withheld_for_the_minimum_cell_size_is_at_least_one() -> None:
+    # X = 1 is small. A = 10, B = 19, C = 10 shown would bound X to 0..1; knowing X >= 1 (the rule) pins it.
+    counts = chain(1, 9, 10, 0)
+    protected = protect(counts, policy())
+    rules = protected.rules
+    assert rules["t.x"] == "minimum_cell_size"
+    possible = brute_force(counts, protected.released, rules, 10)
+    assert 1 in possible and len(possible) >= 2  # X is still uncertain to the recipient
+    # Without the fact, releasing A, B and C (everything else withheld) would have looked safe (X in 0..1):
+    naive = {n: (None if n in ("t.x", "t.u", "t.v", "t.w") else v) for n, v in counts.values.items()}
+    assert brute_force(counts, naive, {}, 10) == {0, 1}
+    assert brute_force(counts, naive, {"t.x": "minimum_cell_size"}, 10) == {1}
+
+
+def test_the_secondary_choice_does_not_depend_on_values() -> None:
+    # The same pattern of small cells with different values elsewhere: the same counts are withheld.
+    patterns = set()
+    for fn, tn in ((12, 40), (400, 11), (15, 15)):
+        counts = {"p": 3 + fn, "tp": 3, "fn": fn, "n": 20 + tn, "fp": 20, "tn": tn}
+        relations = [
+            SimpleNamespace(total="p", parts=("tp", "fn"), members=("p", "tp", "fn")),
+            SimpleNamespace(total="n", parts=("fp", "tn"), members=("n", "fp", "tn")),
+        ]
+        _, hidden = suppress(counts, relations, 10)
+        patterns.add(hidden)
+    assert patterns == {frozenset({"tp", "fn"})}
+
+
+def test_every_suppressed_list_gets_its_rules() -> None:
+    flow = {"read": 40, "analysed": None, "suppressed": ["analysed"]}
+    results = {
+        "confusion": [{"threshold": 0.5, "cells": {"tp": None}, "suppressed": ["tp", "fn"]}],
+        "roc": {"suppressed": ["band[0].positive"]},
+        "subgroups": {
+            "variables": [
+                {
+                    "variable": "sex",
+                    "levels": [
+                        {
+                            "level": "f",
+                            "analysed_positive": None,
+                            "analysed_negative": 30,
+                            "confusion": [{"threshold": 0.5, "suppressed": ["tp"]}],
+                        }
+                    ],
+                }
+            ]
+        },
+    }
+    rules = {
+        "flow.analysed": "complementary",
+        "confusion[0].tp": "minimum_cell_size",
+        "confusion[0].fn": "complementary",
+        "roc.band[0].positive": "audit",
+        "subgroups.sex[0].analysed_positive": "coarsened",
+        "subgroups.sex[0].confusion[0].tp": "minimum_cell_size",
+    }
+    annotate(flow, results, rules)
+    assert flow["suppressed_by"] == {"analysed": "complementary"}
+    assert results["confusion"][0]["suppressed_by"] == {"tp": "minimum_cell_size", "fn": "complementary"}
+    assert results["roc"]["suppressed_by"] == {"band[0].positive": "audit"}
+    level = results["subgroups"]["variables"][0]["levels"][0]
+    assert level["suppressed_by"] == {"analysed_positive": "coarsened"}
+    assert level["confusion"][0]["suppressed_by"] == {"tp": "minimum_cell_size"}
+    assert [rule_of(r) for r in ("primary: fewer", "secondary: x", "audit: y", "coarsened: z")] == [
+        "minimum_cell_size",
+        "complementary",
+        "audit",
+        "coarsened",
+    ]
