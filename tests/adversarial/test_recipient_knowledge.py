@@ -94,7 +94,14 @@ def test_a_study_asking_for_everything_keeps_the_primary_table(tmp_path: Path) -
     world.scorecard("long", {"kind": "points", "points": {"item": {"1": 1, "2": 2, "3": 3}}}, 2, lambda a, s, i: i)
     everything = "confusion,roc,calibration,margin,agreement,subgroups,paired"
     release = world.ask(
-        "short", "full", "--analyses", everything, "--subgroup", "age_months=12,24,30,48", "--subgroup", "sex",
+        "short",
+        "full",
+        "--analyses",
+        everything,
+        "--subgroup",
+        "age_months=12,24,30,48",
+        "--subgroup",
+        "sex",
         compare="long",
     )
     assert release is not None
