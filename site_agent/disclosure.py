@@ -13,8 +13,9 @@ and cutting back other analyses so that the primary table survives.
    fixed order :data:`CUT_ORDER`, then by name) and checks again. What each rule tells (a count withheld
    for the minimum cell size lies in 1..k−1) is a fact the audit takes into account.
 4. **The primary table comes first.** When cells of the primary table (the flow and the 2×2 table at the
-   bundle's threshold) would be withheld beyond what the table alone needs, other analyses are cut back
-   (withheld in full, subgroups variable by variable, in the order of :data:`CUT_ORDER`) until they are not;
+   bundle's threshold) would be withheld beyond what the table alone needs, the analyses whose counts the
+   audit found exposed at the primary table's cost are cut back (withheld in full, subgroups variable by
+   variable, listed in the order of :data:`CUT_ORDER`), then, if needed, every other analysis;
    the release's ``cut_back`` list says which and why, in words. If even the primary table alone cannot be
    protected (the exposure lies in earlier releases), the release is refused with a
    :class:`PolicyViolation` that names the analysis to drop or coarsen, never a count.
@@ -126,6 +127,7 @@ class Protected:
     min_cell_size: int = 0
     allow_zero: bool = True
     domains: Mapping[str, Any] = field(default_factory=dict)
+    culprits: frozenset[str] = frozenset()  # parts whose exposure cost primary cells (site side only)
 
     @property
     def rules(self) -> dict[str, str]:
@@ -213,8 +215,9 @@ def _cut_rank(unit: str) -> tuple[int, str]:
 
 
 class _Refused(Exception):
-    def __init__(self, findings: Sequence[Finding]) -> None:
+    def __init__(self, findings: Sequence[Finding], culprits: set[str]) -> None:
         self.findings = list(findings)
+        self.culprits = culprits
 
 
 def protect(
@@ -250,40 +253,43 @@ def protect(
     context = (counts, k, allow_zero, width, audit, _already_public(counts, earlier, bundle), bundle, domains)
     units = sorted({u for n in counts.values if (u := unit_of(n, primary)) is not None}, key=_cut_rank)
 
-    def attempt(dropped: Sequence[str]) -> tuple[Protected | None, list[Finding]]:
+    def attempt(dropped: Sequence[str]) -> tuple[Protected | None, list[Finding], set[str]]:
         try:
-            return _protect_once(context, primary, frozenset(dropped)), []
+            result = _protect_once(context, primary, frozenset(dropped))
+            return result, [], set(result.culprits)
         except _Refused as refused:
-            return None, refused.findings
+            return None, refused.findings, refused.culprits
 
-    def excess(result: Protected | None, floor: frozenset[str]) -> int:
+    floor = _primary_floor(counts, primary, k, allow_zero)
+
+    def excess(result: Protected | None) -> int:
         return 10**6 if result is None else len((result.suppressed & primary) - floor)
 
-    result, findings = attempt(())
-    if result is not None and all(result.reasons[n].startswith("primary") for n in result.suppressed & primary):
-        return result
-    baseline, base_findings = attempt(units)
-    if baseline is None:
-        raise _refusal(base_findings or findings, earlier)
-    floor = baseline.suppressed & primary
-    if excess(result, floor) == 0:
-        return result  # type: ignore[return-value]
+    result, findings, culprits = attempt(())
+    best, best_findings = result, findings
     dropped: list[str] = []
-    for unit in units:  # keep each cut that helps, in the fixed order
-        trial, _ = attempt([*dropped, unit])
-        if excess(trial, floor) < excess(result, floor):
-            dropped.append(unit)
-            result = trial
-            if excess(result, floor) == 0:
-                return result  # type: ignore[return-value]
-    for unit in units:  # then cut the rest in order until the primary table is whole
-        if unit in dropped:
-            continue
-        dropped.append(unit)
-        trial, _ = attempt(dropped)
-        if excess(trial, floor) == 0:
-            return trial  # type: ignore[return-value]
-    return baseline
+    # Cut back the parts whose counts the audit found exposed at the primary table's cost, in the fixed order,
+    # until the primary table keeps every cell its own relations allow; at worst, every other part.
+    while excess(best) > 0:
+        new = sorted(culprits - set(dropped), key=_cut_rank) or [u for u in units if u not in dropped]
+        if not new:
+            break
+        dropped += new
+        result, findings, culprits = attempt(dropped)
+        if excess(result) < excess(best):
+            best, best_findings = result, findings
+    if best is None:
+        raise _refusal(best_findings, earlier)
+    return best
+
+
+def _primary_floor(counts: CountSet, primary: frozenset[str], k: int, allow_zero: bool) -> frozenset[str]:
+    """The primary cells withheld by the primary table alone: its small cells and their complements."""
+    values = {n: v for n, v in counts.values.items() if n in primary}
+    relations = [r for r in counts.relations if all(m in primary for m in r.members)]
+    suppressed = {n for n, v in values.items() if is_unsafe(v, k, allow_zero)}
+    _secondary(values, relations, suppressed, {})
+    return frozenset(suppressed)
 
 
 def _protect_once(context: tuple, primary: frozenset[str], dropped: frozenset[str]) -> Protected:
@@ -310,6 +316,7 @@ def _protect_once(context: tuple, primary: frozenset[str], dropped: frozenset[st
     _secondary(values, relations, suppressed, reasons, public)
 
     result: AuditResult | None = None
+    culprits: set[str] = set()
     for _ in range(MAX_AUDIT_ROUNDS):
         current = {name: (None if name in suppressed else value) for name, value in values.items()}
         rules = {name: rule_of(reasons.get(name, "audit")) for name in suppressed}
@@ -334,16 +341,23 @@ def _protect_once(context: tuple, primary: frozenset[str], dropped: frozenset[st
             if any(c in added for c in open_candidates):
                 continue  # another finding of this round already hides one of them: check again first
             choice = open_candidates[0]
+            if any(unit_of(t, primary) is None for t in twins.get(choice, (choice,))):
+                # the primary table pays: the parts this finding involves are the ones to cut back
+                names = [t for n in finding.names for t in twins.get(n.split(" (release", 1)[0], (n,))]
+                exposed = {u for n in names if (u := unit_of(n.split(" (release", 1)[0], primary))}
+                if not exposed:  # a primary count itself exposed: the parts that could have covered it
+                    exposed = {u for n in finding.candidates if (u := unit_of(n, primary)) is not None}
+                culprits |= exposed - dropped
             for name in twins.get(choice, (choice,)):
                 if name not in suppressed:
                     added.add(name)
                     reasons[name] = f"audit: otherwise {finding.describe()}"
         if stuck or not added:
-            raise _Refused(stuck or result.findings)
+            raise _Refused(stuck or result.findings, culprits | _units_of(stuck or result.findings, primary))
         suppressed |= added
         _secondary(values, relations, suppressed, reasons, public)
     else:
-        raise _Refused(result.findings if result else [])
+        raise _Refused(result.findings if result else [], culprits)
 
     released = {name: (None if name in suppressed else value) for name, value in values.items()}
     hidden = frozenset(suppressed)
@@ -351,7 +365,14 @@ def _protect_once(context: tuple, primary: frozenset[str], dropped: frozenset[st
     cut = tuple(
         {"analysis": unit, "action": _action(unit), "rule": CUT_RULE} for unit in sorted(dropped, key=_cut_rank)
     )
-    return Protected(released, hidden, derived, reasons, result, bundle, cut, k, allow_zero, domains)
+    return Protected(
+        released, hidden, derived, reasons, result, bundle, cut, k, allow_zero, domains, frozenset(culprits)
+    )
+
+
+def _units_of(findings: Sequence[Finding], primary: frozenset[str]) -> set[str]:
+    names = [n.split(" (release", 1)[0] for f in findings for n in (*f.names, *f.candidates)]
+    return {u for n in names if (u := unit_of(n, primary)) is not None}
 
 
 def _action(unit: str) -> str:

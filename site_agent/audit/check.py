@@ -181,6 +181,7 @@ class Audit:
         current_rules: Mapping[str, str],
     ) -> AuditResult:
         started = time.perf_counter()
+        self._k = min_cell_size
         n_atoms = self.incidence.shape[1]
         known, first = self._known(current_values)
         # boxes known only from the audited release: the only ones suppression can still take back
@@ -371,13 +372,18 @@ class Audit:
             stop = start + 1
             while stop < n_boxes and abs(key[order[stop]] - key[order[stop - 1]]) < 1e-7:
                 stop += 1
+            if stop - start < 2:
+                start = stop
+                continue
             group = sorted((int(j) for j in order[start:stop]), key=lambda j: values[j])
             start = stop
+            sorted_values = values[group]
             for gi, g in enumerate(group):
-                for f in group[gi + 1 :]:
+                # sorted by value: only the later boxes whose difference is small (0 too, when zeros are hidden)
+                first = gi + 1 if unsafe(0) else int(np.searchsorted(sorted_values, sorted_values[gi] + 0.5))
+                last = int(np.searchsorted(sorted_values, sorted_values[gi] + self._k - 0.5))
+                for f in group[max(first, gi + 1) : last]:
                     difference = int(round(values[f] - values[g]))
-                    if difference > 0 and not unsafe(difference):
-                        break  # sorted by value: every later difference is at least as large
                     if not unsafe(difference) or not region_of(g) < region_of(f):
                         continue
                     region = region_of(f) - region_of(g)

@@ -210,10 +210,11 @@ class _Pool:
         self.known: dict[int, int] = {}
         self.points: list[np.ndarray] = []
         self.masks: list[np.ndarray] = []  # atoms on which each point is a feasible table (its solved blocks)
+        self._stacked: tuple[np.ndarray, np.ndarray] | None = None
 
     def valid_for(self, known: dict[int, int]) -> None:
         if not all(self.known.get(box) == value for box, value in known.items()):
-            self.known, self.points, self.masks = dict(known), [], []
+            self.known, self.points, self.masks, self._stacked = dict(known), [], [], None
         else:
             self.known = dict(known)
 
@@ -221,13 +222,19 @@ class _Pool:
         for point, mask in points:
             self.points.append(point)
             self.masks.append(mask)
+        self._stacked: tuple[np.ndarray, np.ndarray] | None = None
 
     def range(self, vector: np.ndarray, needed: np.ndarray) -> tuple[float, float] | None:
         """Range of the vector over the points feasible on every atom of ``needed`` (its blocks' atoms)."""
-        usable = [p for p, m in zip(self.points, self.masks, strict=True) if m[needed].all()]
-        if len(usable) < 2:
+        if len(self.points) < 2:
             return None
-        values = np.stack(usable) @ vector
+        if getattr(self, "_stacked", None) is None or len(self._stacked[0]) != len(self.points):
+            self._stacked = (np.stack(self.points), np.stack(self.masks))
+        points, masks = self._stacked
+        usable = masks[:, needed].all(axis=1)
+        if usable.sum() < 2:
+            return None
+        values = points[usable] @ vector
         return float(values.min()), float(values.max())
 
 
