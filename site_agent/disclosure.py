@@ -61,15 +61,19 @@ def _secondary(
     suppressed: set[str],
     reasons: dict[str, str],
     public: frozenset[str] = frozenset(),
+    keep: frozenset[str] = frozenset(),
 ) -> None:
     """Hide more counts until no relation has exactly one hidden member (in place).
 
-    The choice depends on the pattern of hidden counts only, never on a value: a count not yet public first,
-    a part before the total, then the fixed order of names. A value-dependent rule (e.g. "the smallest shown
-    part") would tell a recipient who knows the rule that the hidden part is smaller than the shown ones.
+    The choice depends on the pattern of hidden counts and the structure only, never on a value: a count not
+    yet public first, then one that matters least to the primary table ``keep`` (:func:`keep_rank`), a part
+    before the total, a count that is no relation's total (a leaf, whose loss carries no further) before one
+    that is, then the fixed order of names. A value-dependent rule (e.g. "the smallest shown part") would tell a
+    recipient who knows the rule that the hidden part is smaller than the shown ones.
     ``public`` are counts whose value an earlier release already showed: hiding them protects nothing, so
     they are chosen only when nothing else is left.
     """
+    totals = {relation.total for relation in relations}
     changed = True
     while changed:
         changed = False
@@ -80,12 +84,20 @@ def _secondary(
             shown = [m for m in relation.members if m not in suppressed]
             if not shown:
                 continue
-            choice = min(shown, key=lambda m: (m in public, m == relation.total, m))
+            choice = min(shown, key=lambda m: (m in public, keep_rank(m, keep), m == relation.total, m in totals, m))
             suppressed.add(choice)
             reasons[choice] = f"secondary: otherwise {hidden[0]} could be recomputed from {relation.total} = " + (
                 " + ".join(relation.parts)
             )
             changed = True
+
+
+def keep_rank(name: str, primary: frozenset[str]) -> int:
+    """How much a count matters to the primary table: 2 for its cells and the analysed totals, 1 for the
+    records read and the exclusions, 0 for every other analysis (hidden first)."""
+    if name not in primary:
+        return 0
+    return 1 if name == "flow.read" or name.startswith("flow.excluded.") else 2
 
 
 def suppress(
@@ -261,9 +273,10 @@ def protect(
             return None, refused.findings, refused.culprits
 
     floor = _primary_floor(counts, primary, k, allow_zero)
+    core = frozenset(n for n in primary if keep_rank(n, primary) == 2)  # the 2x2 cells and the analysed totals
 
     def excess(result: Protected | None) -> int:
-        return 10**6 if result is None else len((result.suppressed & primary) - floor)
+        return 10**6 if result is None else len((result.suppressed & core) - floor)
 
     result, findings, culprits = attempt(())
     best, best_findings = result, findings
@@ -288,7 +301,7 @@ def _primary_floor(counts: CountSet, primary: frozenset[str], k: int, allow_zero
     values = {n: v for n, v in counts.values.items() if n in primary}
     relations = [r for r in counts.relations if all(m in primary for m in r.members)]
     suppressed = {n for n, v in values.items() if is_unsafe(v, k, allow_zero)}
-    _secondary(values, relations, suppressed, {})
+    _secondary(values, relations, suppressed, {}, keep=primary)
     return frozenset(suppressed)
 
 
@@ -313,7 +326,7 @@ def _protect_once(context: tuple, primary: frozenset[str], dropped: frozenset[st
             )
     # counts with the same definition (e.g. a class total that two analyses report) share one fate
     relations = [*counts.relations, *(Relation(g[0], (n,)) for g in set(twins.values()) for n in g[1:])]
-    _secondary(values, relations, suppressed, reasons, public)
+    _secondary(values, relations, suppressed, reasons, public, primary)
 
     result: AuditResult | None = None
     culprits: set[str] = set()
@@ -330,7 +343,7 @@ def _protect_once(context: tuple, primary: frozenset[str], dropped: frozenset[st
             open_candidates = sorted(
                 (c for c in finding.candidates if c not in suppressed),
                 key=lambda c: (
-                    any(unit_of(t, primary) is None for t in twins.get(c, (c,))),  # shares the primary's fate
+                    max(keep_rank(t, primary) for t in twins.get(c, (c,))),  # shares the primary's fate
                     _cut_rank(unit_of(c, primary) or ""),
                     c,
                 ),
@@ -341,7 +354,7 @@ def _protect_once(context: tuple, primary: frozenset[str], dropped: frozenset[st
             if any(c in added for c in open_candidates):
                 continue  # another finding of this round already hides one of them: check again first
             choice = open_candidates[0]
-            if any(unit_of(t, primary) is None for t in twins.get(choice, (choice,))):
+            if max(keep_rank(t, primary) for t in twins.get(choice, (choice,))) == 2:
                 # the primary table pays: the parts this finding involves are the ones to cut back
                 names = [t for n in finding.names for t in twins.get(n.split(" (release", 1)[0], (n,))]
                 exposed = {u for n in names if (u := unit_of(n.split(" (release", 1)[0], primary))}
@@ -355,7 +368,7 @@ def _protect_once(context: tuple, primary: frozenset[str], dropped: frozenset[st
         if stuck or not added:
             raise _Refused(stuck or result.findings, culprits | _units_of(stuck or result.findings, primary))
         suppressed |= added
-        _secondary(values, relations, suppressed, reasons, public)
+        _secondary(values, relations, suppressed, reasons, public, primary)
     else:
         raise _Refused(result.findings if result else [], culprits)
 

@@ -11,13 +11,16 @@ from typing import Any
 
 import numpy as np
 from scipy import sparse
-from threadpoolctl import threadpool_limits
+from threadpoolctl import ThreadpoolController
 
 from .facts import _TOL, MILP_MAX_ATOMS, AuditError, AuditResult, Finding, Interval, ReleaseFacts
 from .refinement import Box, Domain, _bits, _whole_numbers, normalise, refine
 from .system import _build_system, _implicit_zeros, _Pool, _System
 
 # --- the audit --------------------------------------------------------------------------------------------
+
+
+_CONTROLLER: ThreadpoolController | None = None
 
 
 @dataclass
@@ -144,7 +147,10 @@ class Audit:
         """
         # One BLAS thread: the factorisations are small, and threads fighting for two busy cores made them
         # hundreds of times slower.
-        with threadpool_limits(limits=1, user_api="blas"):
+        global _CONTROLLER
+        if _CONTROLLER is None:  # scanning the loaded libraries costs more than a small audit: once per process
+            _CONTROLLER = ThreadpoolController()
+        with _CONTROLLER.limit(limits=1, user_api="blas"):
             return self._evaluate(
                 current_values, min_cell_size, allow_zero, protection_width, exact, current_rules or {}
             )
