@@ -37,6 +37,7 @@ from typing import Any
 from federation.protocol import PolicyViolation
 
 from .audit import SCORED, STATUS, Audit, AuditResult, Finding, ReleaseFacts, normalise
+from .audit.tree import tree_audit
 from .counts import CountSet, Relation
 from .withheld import rule_of
 
@@ -261,8 +262,15 @@ def protect(
         primary = frozenset(n for n in counts.values if n.startswith(("flow.", "confusion[0].")))
     domains = dict(domains or {})
     current = ReleaseFacts(label, counts.definitions, {}, counts.relations, bundle, {}, k, allow_zero, domains)
-    audit = Audit(earlier, current)
-    context = (counts, k, allow_zero, width, audit, _already_public(counts, earlier, bundle), bundle, domains)
+    built: list[Audit] = []
+
+    def audit() -> Audit:  # built on first need: the fast path of a lone tree-shaped release needs none
+        if not built:
+            built.append(Audit(earlier, current))
+        return built[0]
+
+    lone = not earlier
+    context = (counts, k, allow_zero, width, audit, _already_public(counts, earlier, bundle), bundle, domains, lone)
     units = sorted({u for n in counts.values if (u := unit_of(n, primary)) is not None}, key=_cut_rank)
 
     def attempt(dropped: Sequence[str]) -> tuple[Protected | None, list[Finding], set[str]]:
@@ -307,7 +315,7 @@ def _primary_floor(counts: CountSet, primary: frozenset[str], k: int, allow_zero
 
 def _protect_once(context: tuple, primary: frozenset[str], dropped: frozenset[str]) -> Protected:
     """One pass: cut back ``dropped`` parts, primary and secondary suppression, then the audit rounds."""
-    counts, k, allow_zero, width, audit, public, bundle, domains = context
+    counts, k, allow_zero, width, audit, public, bundle, domains, lone = context
     values = counts.values
     reasons: dict[str, str] = {}
     suppressed: set[str] = set()
@@ -333,7 +341,15 @@ def _protect_once(context: tuple, primary: frozenset[str], dropped: frozenset[st
     for _ in range(MAX_AUDIT_ROUNDS):
         current = {name: (None if name in suppressed else value) for name, value in values.items()}
         rules = {name: rule_of(reasons.get(name, "audit")) for name in suppressed}
-        result = audit.evaluate(current, k, allow_zero, width, current_rules=rules)
+        fast = None
+        if lone and width >= 1:
+            low = 1 if allow_zero else 0
+            bounds = {n: (low, k - 1) for n, r in rules.items() if r == "minimum_cell_size"}
+            fast = tree_audit(counts.definitions, current, bounds, k, allow_zero, width)
+        if fast is not None:
+            result = fast
+            break
+        result = audit().evaluate(current, k, allow_zero, width, current_rules=rules)
         if result.ok:
             break
         added: set[str] = set()
