@@ -192,7 +192,9 @@ def _paired(b: _Builder, section: Any) -> None:
 def _inner(b: _Builder, results: Mapping[str, Any], level: dict[str, Any]) -> None:
     _confusion(b, results.get("confusion"), level)
     _banded(b, results.get("roc"), "roc", "bands", ("positive", "negative"), level)
-    _banded(b, results.get("calibration"), "calibration", "bins", ("events", "non_events"), level)
+    calibration = results.get("calibration")
+    rows = "bins" if isinstance(calibration, dict) and "bins" in calibration else "bands"  # "bins": older releases
+    _banded(b, calibration, "calibration", rows, ("events", "non_events"), level)
     _margin(b, results.get("margin"), level)
 
 

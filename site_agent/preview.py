@@ -114,8 +114,9 @@ def _summary(name: str, result: Any) -> str:
     if name == "roc":
         return f"{len(result['bands'])} score bands, AUC {_number(result['auc'])} (SE {_number(result['auc_se'])})"
     if name == "calibration":
+        bands = result.get("bands", result.get("bins", []))
         return (
-            f"{len(result['bins'])} risk bands, {OBSERVED_EXPECTED} {_number(result['observed_expected_ratio'])}, "
+            f"{len(bands)} risk bands, {OBSERVED_EXPECTED} {_number(result['observed_expected_ratio'])}, "
             f"{CALIBRATION_INTERCEPT} {_number(result['citl'])}, {CALIBRATION_SLOPE} {_number(result['slope'])}"
         )
     if name == "margin":

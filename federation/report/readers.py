@@ -160,7 +160,14 @@ def calibration_bins(value: Any) -> list[Bin] | None:
     """
     bins = value
     if isinstance(value, dict):
-        bins = next((v for k, v in value.items() if "bin" in str(k).lower() and isinstance(v, list)), None)
+        bins = next(
+            (
+                v
+                for k, v in value.items()
+                if (str(k).lower() == "bands" or "bin" in str(k).lower()) and isinstance(v, list)
+            ),
+            None,
+        )
     if not isinstance(bins, list) or not bins or not all(isinstance(b, dict) for b in bins):
         return None
     out: list[Bin] = []

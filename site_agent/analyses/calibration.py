@@ -176,16 +176,16 @@ class Calibration:
                     "events": events,
                     "non_events": non_events,
                     "sum_predicted_risk": derived.get(f"calibration.bin[{j}].expected"),
-                    "merged_bins": [band.first, band.last],
+                    "merged_bands": [band.first, band.last],
                 }
             )
         names = [f"calibration.bin[{j}].{c}" for j in range(len(self.bins)) for c in ("events", "non_events")]
         names += ["calibration.events", "calibration.non_events"]
         return {
             "edges": list(self.edges),
-            "rule": "bin = low <= predicted risk < high (null = unbounded); adjacent bins merged until each count "
+            "rule": "band = low <= predicted risk < high (null = unbounded); adjacent bands merged until each count "
             "is 0 or >= k",
-            "bins": bins,
+            "bands": bins,
             "observed": released.get("calibration.events"),
             "non_events": released.get("calibration.non_events"),
             "expected": derived.get("calibration.expected"),
