@@ -13,7 +13,7 @@ from typing import Any
 
 from .figures import POOLED_ALIASES, calibration_figure, humanise, interval_forest, roc_figure
 from .further import FURTHER_SECTIONS, further_paragraph
-from .html import NULL_NOTE, cell_text, csv_link, esc, is_interval, table
+from .html import NULL_NOTE, WITHHELD_NOTE, cell_text, csv_link, esc, is_interval, table, withheld_cell
 from .inputs import ReportInputs
 from .readers import get_path, interval_paths, se_paths
 from .subgroups import subgroup_forests
@@ -97,6 +97,19 @@ def _csv_value(value: Any) -> Any:
 LONG_LIST = 6
 
 
+def _withheld_names(record: Any) -> set[str]:
+    """The names a release object lists as withheld (its ``suppressed`` list), flattened names included."""
+    if not isinstance(record, dict):
+        return set()
+    names: set[str] = set()
+    for key, value in record.items():
+        if key == "suppressed" and isinstance(value, list):
+            names |= {str(v) for v in value}
+        elif isinstance(value, dict) and isinstance(value.get("suppressed"), list):
+            names |= {f"{key}.{v}" for v in value["suppressed"]} | {str(v) for v in value["suppressed"]}
+    return names
+
+
 def _list_summary(name: str, value: list[Any]) -> str:
     if name.split(".")[-1] == "suppressed":
         return f'<span class="suppressed">{len(value)} withheld</span>' if value else "none"
@@ -121,19 +134,26 @@ def _records_table(records: list[dict[str, Any]], caption: str, filename: str) -
                 common.append(name)
     shown = [h for h in header if h not in common]
 
-    def cell(name: str, value: Any) -> str:
+    withheld_in = [_withheld_names(record) for record in records]
+
+    def cell(name: str, value: Any, withheld: set[str] = frozenset()) -> str:  # type: ignore[assignment]
         if isinstance(value, list) and (len(value) > LONG_LIST or name.split(".")[-1] == "suppressed"):
             return _list_summary(name, value)
+        if value is None and (name in withheld or name.split(".")[-1] in withheld):
+            return withheld_cell()
         return cell_text(value)
 
-    rows = [[cell(c, cols.get(c)) for c in shown] for cols in flat]
+    rows = [[cell(c, cols.get(c), withheld_in[i]) for c in shown] for i, cols in enumerate(flat)]
     raw = [[_csv_value(cols.get(c)) for c in header] for cols in flat]
     note = ""
     if common:
         items = "; ".join(f"{esc(humanise((c,)))}: {cell(c, flat[0][c])}" for c in common)
         note = f'<p class="common"><em>Same in every row</em> — {items}</p>'
-    legend = (
-        f'<p class="legend">{esc(NULL_NOTE)}</p>' if any(cols.get(c) is None for cols in flat for c in shown) else ""
+    nulls = [(i, c) for i, cols in enumerate(flat) for c in shown if cols.get(c) is None]
+    marked = any(c in withheld_in[i] or c.split(".")[-1] in withheld_in[i] for i, c in nulls)
+    undefined = any(not (c in withheld_in[i] or c.split(".")[-1] in withheld_in[i]) for i, c in nulls)
+    legend = (f'<p class="legend">{esc(WITHHELD_NOTE)}</p>' if marked else "") + (
+        f'<p class="legend">{esc(NULL_NOTE)}</p>' if undefined else ""
     )
     return (
         note
@@ -156,9 +176,15 @@ def render_json(value: Any, caption: str, slug: str, depth: int = 0) -> str:
         )
         out = []
         if scalars:
-            rows = [[esc(humanise((k,))), cell_text(v)] for k, v in scalars.items()]
+            withheld = _withheld_names(value)
+            rows = [
+                [esc(humanise((k,))), withheld_cell() if v is None and k in withheld else cell_text(v)]
+                for k, v in scalars.items()
+            ]
             out.append(table(["quantity", "value"], rows, caption))
-            if any(v is None for v in scalars.values()):
+            if any(v is None and k in withheld for k, v in scalars.items()):
+                out.append(f'<p class="legend">{esc(WITHHELD_NOTE)}</p>')
+            if any(v is None and k not in withheld for k, v in scalars.items()):
                 out.append(f'<p class="legend">{esc(NULL_NOTE)}</p>')
         for key, inner in value.items():
             if key in scalars:

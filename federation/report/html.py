@@ -16,7 +16,7 @@ from collections.abc import Iterable, Sequence
 from html import escape
 from typing import Any
 
-from federation.words import NOT_DEFINED_LEGEND, WITHHELD_LEGEND, WITHHELD_MARK
+from federation.words import WITHHELD_LEGEND, WITHHELD_MARK
 
 __all__ = [
     "csv_link",
@@ -124,14 +124,19 @@ def json_link(filename: str, value: Any, label: str) -> str:
     )
 
 
-NULL_NOTE = f"{NOT_DEFINED_LEGEND}, or not released by the site."
+NULL_NOTE = "— not defined from what the sites released."
 WITHHELD_NOTE = WITHHELD_LEGEND + "."
+
+
+def withheld_cell() -> str:
+    """A count the site withheld (see ``WITHHELD_NOTE``)."""
+    return f'<span class="suppressed" title="withheld by the site\'s disclosure control">{WITHHELD_MARK}</span>'
 
 
 def cell_text(value: object) -> str:
     """A table cell of analysis JSON: null is a dash (see ``NULL_NOTE``); intervals read estimate (low–high)."""
     if value is None:
-        return '<span class="suppressed" title="not defined, or not released">—</span>'
+        return '<span class="suppressed" title="not defined from what the sites released">—</span>'
     if is_interval(value):
         return esc(interval_text(value))  # type: ignore[arg-type]
     if isinstance(value, list) and all(not isinstance(v, (dict, list)) for v in value):
