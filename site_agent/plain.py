@@ -355,7 +355,10 @@ def _rule_words(reason: str, describe: dict[str, str]) -> str:
     if rule == "audit":
         return f"withheld after the disclosure audit: {detail}"
     if rule == "coarsened":
-        return f"the analysis was cut back to protect the main table: {detail}"
+        return (
+            "withheld because this part of the analysis was cut back, so that the main screen-result table could "
+            "be released"
+        )
     return reason
 
 
@@ -417,6 +420,34 @@ TABLE_NAMES = {
     "agreement": "second-reference table",
     "paired": "two-model table",
 }
+
+
+def finding_sentences(facts: dict[str, Any], audit: dict[str, Any] | None) -> list[str]:
+    """The audit's findings, with any count names in them replaced by what the counts count."""
+    counts = {c["name"]: c for c in facts.get("counts", []) if isinstance(c, dict) and "name" in c}
+    describe = {name: _described(name, count) for name, count in counts.items()}
+    out = []
+    for finding in (audit or {}).get("findings", []) or []:
+        text = str(finding.get("text", "")) if isinstance(finding, dict) else str(finding)
+        for name in sorted(describe, key=len, reverse=True):
+            if name in text:
+                text = text.replace(name, f"“{describe[name]}”")
+        out.append(text)
+    return out
+
+
+def cut_back_sentences(review: dict[str, Any]) -> list[str]:
+    """One sentence per analysis the site cut back so that its main table could be released."""
+    out = []
+    for cut in review.get("cut_back") or []:
+        if not isinstance(cut, dict):
+            continue
+        analysis = str(cut.get("analysis", ""))
+        title = ANALYSIS_TITLES.get(analysis_of(analysis), analysis.replace("_", " "))
+        action = str(cut.get("action", "cut back"))
+        rule = str(cut.get("rule", ""))
+        out.append(f"{title}: {action}" + (f" ({rule})." if rule else "."))
+    return out
 
 
 def audit_sentence(audit: dict[str, Any] | None) -> str:

@@ -61,6 +61,8 @@ def describe(site: Site, held: Held) -> dict[str, Any]:
         "parts": plain.analysis_parts(facts, results),
         "withheld": plain.withheld_sentences(facts, review),
         "audit_sentence": plain.audit_sentence(review.get("audit")),
+        "cut_back": plain.cut_back_sentences(review),
+        "findings": plain.finding_sentences(facts, review.get("audit")),
     }
 
 
@@ -160,9 +162,11 @@ def render_text(view: dict[str, Any], site_dir: Path, exact: bool = False) -> st
     out += [f"  {line}" for line in _withheld_summary(view["withheld"])]
     for group, items in _by_group(view["withheld"]).items():
         out += [f"  {group}"] + [f"    - {item.text}" for item in items]
+    if view["cut_back"]:
+        out += ["", "Cut back so that the main table could be released"] + [f"  - {s}" for s in view["cut_back"]]
     out += ["", "Disclosure audit", f"  {view['audit_sentence']}"]
-    for finding in (view["audit"] or {}).get("findings", []):
-        out.append(f"  - {finding.get('text')}")
+    for finding in view["findings"]:
+        out.append(f"  - {finding}")
     out += ["", "Decision"] + [f"  {line}" for line in _decision_lines(view, site_dir)]
     body = "\n".join(out)
     terms = plain.glossary(body)
@@ -226,7 +230,7 @@ def _html_view(view: dict[str, Any], site: Site) -> str:
         + "</ul></details>"
         for group, items in groups.items()
     )
-    findings = "".join(f"<li>{html.escape(str(f.get('text')))}</li>" for f in (view["audit"] or {}).get("findings", []))
+    findings = "".join(f"<li>{html.escape(f)}</li>" for f in view["findings"])
     decision = _decision_lines(view, site.root)
     decision_html = f"<p>{html.escape(decision[0])}</p>"
     if len(decision) > 1:
@@ -238,7 +242,14 @@ def _html_view(view: dict[str, Any], site: Site) -> str:
         f'<div class="decision"><strong>Decision.</strong> {decision_html}</div>'
         f"<h3>What it holds, analysis by analysis</h3>{parts}"
         f"<details open><summary>Withheld, and why ({len(view['withheld'])})</summary>{withheld}</details>"
-        f"<details open><summary>Disclosure audit</summary><p>{html.escape(view['audit_sentence'])}</p>"
+        + (
+            "<details open><summary>Cut back so that the main table could be released</summary><ul>"
+            + "".join(f"<li>{html.escape(s)}</li>" for s in view["cut_back"])
+            + "</ul></details>"
+            if view["cut_back"]
+            else ""
+        )
+        + f"<details open><summary>Disclosure audit</summary><p>{html.escape(view['audit_sentence'])}</p>"
         f"{'<ul>' + findings + '</ul>' if findings else ''}</details>"
         f"<details><summary>The exact text that would leave (SHA-256 {html.escape(view['release_sha256'][:16])}…)"
         f"</summary><pre>{html.escape(view['text'])}</pre></details></section>"
