@@ -43,11 +43,28 @@ _KEY_ID = re.compile(r"^[0-9a-f]{16}$")
 _VARIABLE = re.compile(r"^[A-Za-z_][A-Za-z0-9_]{0,63}$")
 
 
+class _NotFinite(ValueError):
+    pass
+
+
+def _no_constant(name: str) -> float:
+    raise _NotFinite(name)
+
+
+def _finite_float(text: str) -> float:
+    value = float(text)
+    if not math.isfinite(value):  # 1e400 parses as infinity
+        raise _NotFinite(text)
+    return value
+
+
 def parse_json(data: bytes, source: str) -> dict[str, Any]:
     if len(data) > MAX_DOCUMENT_BYTES:
         raise DocumentError(f"{source}: larger than {MAX_DOCUMENT_BYTES // (1024 * 1024)} MiB")
     try:
-        doc = json.loads(data)
+        doc = json.loads(data, parse_constant=_no_constant, parse_float=_finite_float)
+    except _NotFinite:
+        raise DocumentError(f"{source}: a number is not finite (NaN and infinities are not JSON numbers)") from None
     except (json.JSONDecodeError, UnicodeDecodeError):
         raise DocumentError(f"{source}: not a JSON document") from None
     except RecursionError:

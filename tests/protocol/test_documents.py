@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import json
+import re
 
 import pytest
 
@@ -71,6 +72,17 @@ def test_deeply_nested_or_huge_documents_are_refused():
         Request.from_bytes(b"[" * 100_000 + b"]" * 100_000, None)
     with pytest.raises(DocumentError, match="larger than"):
         Release.from_bytes(b" " * (9 * 1024 * 1024), "release")
+
+
+@pytest.mark.parametrize("number", [b"NaN", b"Infinity", b"-Infinity", b"1e400"])
+def test_a_number_that_is_not_finite_is_refused_on_parse(key, number):
+    # RFC 8259 section 6: NaN and infinities are not JSON numbers; Python's json module reads them anyway, and
+    # reads 1e400 as infinity. A release carrying one could not be hashed or stored (found by hypothesis).
+    release = Release("s", "r", "b" * 64, "site", "t", {"min_cell_size": 10}, {"read": 5}, ())
+    text = re.sub(rb'"read": *5', b'"read": ' + number, release.signed_bytes(key))
+    assert number in text
+    with pytest.raises(DocumentError, match="release: a number is not finite"):
+        Release.from_bytes(text, "release")
 
 
 def test_release_counts_must_be_counts(key):
