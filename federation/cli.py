@@ -335,7 +335,10 @@ def add_decision_options(p: argparse.ArgumentParser) -> None:
         help="range of threshold probabilities for net benefit (decision curve), e.g. 0.05:0.3 (0.01:0.99)",
     )
     p.add_argument(
-        "--bootstrap", type=int, default=20, help="bootstrap resamples of sites for the chosen threshold's interval"
+        "--bootstrap",
+        type=int,
+        default=10,
+        help="bootstrap resamples of sites for the chosen threshold's interval (10: a quick look; 200+ for the record)",
     )
 
 

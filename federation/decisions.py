@@ -15,10 +15,11 @@ from collections.abc import Sequence
 from dataclasses import dataclass
 from typing import Any
 
+import numpy as np
 from threadpoolctl import threadpool_limits
 
 from federation.protocol import ValidationToolError
-from federation.stats import PoolingError, ReleasedTable
+from federation.stats import PoolingError, ReleasedTable, SiteEvidence
 from federation.stats.net_benefit import decision_curve
 from federation.stats.threshold import CAUTION, choose_threshold, pool_by_threshold
 
@@ -49,7 +50,7 @@ class DecisionSettings:
     target_sensitivity: float | None = None
     range_low: float = 0.01
     range_high: float = 0.99
-    bootstrap: int = 20
+    bootstrap: int = 10
 
     def __post_init__(self) -> None:
         target = self.target_sensitivity
@@ -84,38 +85,62 @@ def _edge(value: Any) -> float | None:
     return float(value)
 
 
-def _band_tables(releases: Sequence[Any]) -> dict[float, list[ReleasedTable]]:
-    """2×2 tables at every interior edge of each site's released ROC bands."""
-    out: dict[float, list[ReleasedTable]] = {}
+def _band_tables(releases: Sequence[Any]) -> dict[float, list[ReleasedTable | SiteEvidence]]:
+    """The 2×2 at every edge any site's released ROC bands have, for every site.
+
+    At one of the site's own edges the 2×2 is exact (the bands above the edge are screen-positive); at an edge
+    inside one of its merged bands, only bounds are known — TP lies between the positives above the band and
+    those plus the band's — and the site contributes that interval to the likelihood. A site with a withheld
+    band count is left out.
+    """
+    sites = []
+    edges: set[float] = set()
     for table in site_tables(list(releases)):
         roc = table.extra.get("roc")
-        bands = roc.get("bands") if isinstance(roc, dict) else None
-        if not isinstance(bands, list) or not all(isinstance(b, dict) for b in bands):
+        raw = roc.get("bands") if isinstance(roc, dict) else None
+        if not isinstance(raw, list) or not raw or not all(isinstance(b, dict) for b in raw):
             continue
+        bands = [
+            (_edge(b.get("low")), _edge(b.get("high")), _count(b.get("positive")), _count(b.get("negative")))
+            for b in raw
+        ]
+        if any(b[2] is None or b[3] is None for b in bands):
+            continue  # a withheld band count
         released = table.released_table()
-        lows = [_edge(b.get("low")) for b in bands]
-        positive = [_count(b.get("positive")) for b in bands]
-        negative = [_count(b.get("negative")) for b in bands]
-        for j, low in enumerate(lows):
-            if j == 0 or low is None:
+        positives, negatives = sum(b[2] for b in bands), sum(b[3] for b in bands)  # type: ignore[misc]
+        if (released.positives is not None and released.positives != positives) or (
+            released.negatives is not None and released.negatives != negatives
+        ):
+            continue
+        sites.append((table.site_id, bands, positives, negatives))
+        edges.update(low for low, *_ in bands[1:] if low is not None)
+    out: dict[float, list[ReleasedTable | SiteEvidence]] = {}
+    for site_id, bands, positives, negatives in sites:
+        for edge in sorted(edges):
+            above = [b for b in bands if b[0] is not None and b[0] >= edge]
+            tp, fp = sum(b[2] for b in above), sum(b[3] for b in above)
+            inside = [b for b in bands if (b[0] is None or b[0] < edge) and (b[1] is None or b[1] > edge)]
+            extra_tp, extra_fp = (inside[0][2], inside[0][3]) if inside else (0, 0)
+            if extra_tp == 0 and extra_fp == 0:
+                out.setdefault(edge, []).append(
+                    ReleasedTable.complete(site_id, tp, fp, positives - tp, negatives - fp)  # type: ignore[operator]
+                )
                 continue
-            above = range(j, len(bands))
-            below = range(j)
-            parts = [positive[i] for i in above], [negative[i] for i in above]
-            rest = [positive[i] for i in below], [negative[i] for i in below]
-            if any(v is None for group in (*parts, *rest) for v in group):
-                continue  # a withheld band: the 2x2 at this edge is not known
-            tp, fp = sum(parts[0]), sum(parts[1])  # type: ignore[arg-type]
-            fn, tn = sum(rest[0]), sum(rest[1])  # type: ignore[arg-type]
-            if (released.positives is not None and released.positives != tp + fn) or (
-                released.negatives is not None and released.negatives != fp + tn
-            ):
-                continue
-            out.setdefault(low, []).append(ReleasedTable.complete(table.site_id, tp, fp, fn, tn))
+            out.setdefault(edge, []).append(
+                SiteEvidence(
+                    site_id,
+                    np.ones(1),
+                    np.array([positives], dtype=np.int64),
+                    np.array([negatives], dtype=np.int64),
+                    (np.arange(tp, tp + extra_tp + 1, dtype=np.int64),),
+                    (np.arange(fp, fp + extra_fp + 1, dtype=np.int64),),
+                    censored=True,
+                )
+            )
     return out
 
 
-def threshold_tables(releases: Sequence[Any]) -> tuple[dict[float, list[ReleasedTable]], str]:
+def threshold_tables(releases: Sequence[Any]) -> tuple[dict[float, list[Any]], str]:
     """Each released threshold's 2×2 tables (latest release per site), and where they came from.
 
     Parameters
@@ -125,8 +150,9 @@ def threshold_tables(releases: Sequence[Any]) -> tuple[dict[float, list[Released
 
     Returns
     -------
-    tables : dict of float to list of ReleasedTable
-        Withheld cells are ``None`` with the release's minimum cell size, so that the GLMM censors them.
+    tables : dict of float to list of ReleasedTable or SiteEvidence
+        Withheld cells are ``None`` with the release's minimum cell size, so that the GLMM censors them; a
+        threshold inside a site's merged ROC band is that site's interval evidence.
     source : str
         ``"confusion"`` (the request's thresholds) or ``"roc_bands"`` (edges of the released ROC bands).
     """
@@ -149,16 +175,17 @@ def threshold_tables(releases: Sequence[Any]) -> tuple[dict[float, list[Released
     return tables, "confusion"
 
 
-def _thin(tables: dict[float, list[ReleasedTable]]) -> dict[float, list[ReleasedTable]]:
-    """Thresholds at which at least 2 sites released a table; at most MAX_THRESHOLDS, those with most sites.
+def _thin(tables: dict[float, list[Any]]) -> dict[float, list[Any]]:
+    """Thresholds with a table from at least 2 sites; at most MAX_THRESHOLDS, those most sites know exactly.
 
-    Each site merges its ROC bands on its own, so an edge may be one site's alone; each threshold also costs a
-    GLMM fit, so fine bands are cut to the thresholds most sites share.
+    Each site merges its ROC bands on its own, so an edge may be exact at one site and inside a band at
+    another; each threshold also costs a GLMM fit, so fine bands are cut to the edges most sites share.
     """
     shared = {k: v for k, v in tables.items() if len(v) >= 2}
     if len(shared) <= MAX_THRESHOLDS:
         return shared
-    ranked = sorted(shared, key=lambda k: (-len(shared[k]), k))[:MAX_THRESHOLDS]
+    exact = {k: sum(isinstance(t, ReleasedTable) for t in v) for k, v in shared.items()}
+    ranked = sorted(shared, key=lambda k: (-exact[k], -len(shared[k]), k))[:MAX_THRESHOLDS]
     return {k: shared[k] for k in sorted(ranked)}
 
 
@@ -239,7 +266,8 @@ def _analysis(
         }
     else:
         try:
-            out["net_benefit"] = decision_curve(tables, range_low, range_high).to_dict()
+            exact = {k: [t for t in v if isinstance(t, ReleasedTable)] for k, v in tables.items()}
+            out["net_benefit"] = decision_curve(exact, range_low, range_high).to_dict()
         except PoolingError as error:
             out["net_benefit"] = {"status": f"not estimable: {error}"}
     return out

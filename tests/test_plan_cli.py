@@ -4,6 +4,8 @@ number of sites with its figure, and bad input as one line with exit code 1."""
 from __future__ import annotations
 
 import json
+import re
+import shlex
 from pathlib import Path
 
 import pytest
@@ -60,3 +62,12 @@ def test_bad_input_is_one_line(extra: list[str], message: str, capsys: pytest.Ca
     assert main(["plan", "--sensitivity", "0.8", "--specificity", "0.9", *extra]) == 1
     err = capsys.readouterr().err.strip().splitlines()
     assert len(err) == 1 and message in err[0] and "Traceback" not in err[0]
+
+
+def test_the_coordinator_guides_plan_command_runs(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    text = (Path(__file__).resolve().parents[1] / "docs" / "coordinator.md").read_text()
+    command = re.search(r"```sh\n\$F (plan .*?)```", text, re.S).group(1).replace("\\\n", " ")
+    argv = [a.replace("$W", str(tmp_path)) for a in shlex.split(command)]
+    assert main([*argv, "--simulations", "2", "--max-sites", "12"]) == 0
+    assert "Sites of 400 participants" in capsys.readouterr().out
+    assert (tmp_path / "plan.svg").read_text().startswith("<svg")

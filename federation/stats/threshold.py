@@ -140,7 +140,7 @@ class ThresholdAccuracy(ResultRecord):
         )
 
 
-def _check_thresholds(tables_by_threshold: Mapping[float, Sequence[ReleasedTable]]) -> list[float]:
+def _check_thresholds(tables_by_threshold: Mapping[float, Sequence[ReleasedTable | SiteEvidence]]) -> list[float]:
     if not tables_by_threshold:
         raise PoolingError("no thresholds: the sites released no 2x2 tables")
     thresholds = []
@@ -160,7 +160,7 @@ def _known(table: ReleasedTable, cell: str, other: str, margin: int | None) -> i
 
 
 def ordered_evidence(
-    tables_by_threshold: Mapping[float, Sequence[ReleasedTable]],
+    tables_by_threshold: Mapping[float, Sequence[ReleasedTable | SiteEvidence]],
 ) -> tuple[dict[float, list[SiteEvidence]], dict[float, list[SiteExclusion]]]:
     """Each threshold's likelihood evidence, with withheld cells bounded by the site's other thresholds.
 
@@ -170,6 +170,9 @@ def ordered_evidence(
     the site's other thresholds usually tell which. Allowed values outside the bounds are removed from the
     evidence of :func:`federation.stats.suppression.site_evidence` (if nothing would be left, the release is
     inconsistent across thresholds and the evidence is kept as the rule alone gives it).
+
+    An entry that is already :class:`~federation.stats.suppression.SiteEvidence` (for example the 2×2 at a
+    threshold inside one of a site's ROC bands, known only to lie between the band's edges) is used as it is.
 
     Returns
     -------
@@ -181,16 +184,19 @@ def ordered_evidence(
     known: dict[str, list[tuple[float, int | None, int | None]]] = {}
     for threshold in thresholds:
         for table in tables_by_threshold[threshold]:
-            positives = table.positives if table.positives is not None else None
-            negatives = table.negatives if table.negatives is not None else None
+            if isinstance(table, SiteEvidence):
+                continue
             known.setdefault(table.site_id, []).append(
-                (threshold, _known(table, "tp", "fn", positives), _known(table, "fp", "tn", negatives))
+                (threshold, _known(table, "tp", "fn", table.positives), _known(table, "fp", "tn", table.negatives))
             )
     evidence: dict[float, list[SiteEvidence]] = {}
     excluded: dict[float, list[SiteExclusion]] = {}
     for threshold in thresholds:
         evidence[threshold], excluded[threshold] = [], []
         for table in tables_by_threshold[threshold]:
+            if isinstance(table, SiteEvidence):  # already evidence (e.g. a threshold inside a site's ROC band)
+                evidence[threshold].append(table)
+                continue
             try:
                 ev = site_evidence(table)
             except PoolingError as error:
@@ -200,7 +206,7 @@ def ordered_evidence(
                 excluded[threshold].append(SiteExclusion(table.site_id, "no participants analysed"))
                 continue
             if ev.censored:
-                ev = _bounded(ev, threshold, known[table.site_id])
+                ev = _bounded(ev, threshold, known.get(table.site_id, []))
             evidence[threshold].append(ev)
     return evidence, excluded
 
@@ -228,7 +234,7 @@ def _bounded(ev: SiteEvidence, threshold: float, known: Sequence[tuple[float, in
 
 
 def pool_by_threshold(
-    tables_by_threshold: Mapping[float, Sequence[ReleasedTable]], level: float = 0.95, points: int = 7
+    tables_by_threshold: Mapping[float, Sequence[ReleasedTable | SiteEvidence]], level: float = 0.95, points: int = 7
 ) -> tuple[ThresholdAccuracy, ...]:
     """Pooled sensitivity and specificity with heterogeneity at each threshold (bivariate GLMM per threshold).
 
@@ -256,18 +262,37 @@ def pool_by_threshold(
     evidence, excluded = ordered_evidence(tables_by_threshold)
     results = []
     for threshold in sorted(evidence):
-        if len(evidence[threshold]) < 2:
-            reason = f"the binomial GLMM needs at least 2 usable sites, got {len(evidence[threshold])}"
+        given = {id(t) for t in tables_by_threshold[threshold] if isinstance(t, SiteEvidence)}
+        attempts = [(evidence[threshold], list(excluded[threshold]), ())]
+        if given:  # if the interval evidence defeats the model, fit the sites known exactly
+            exact = [ev for ev in evidence[threshold] if id(ev) not in given]
+            left_out = [
+                SiteExclusion(ev.site_id, "only bounds known here (inside a merged band)")
+                for ev in evidence[threshold]
+                if id(ev) in given
+            ]
+            attempts.append(
+                (
+                    exact,
+                    [*excluded[threshold], *left_out],
+                    ("fitted without the sites known only within bounds at this threshold",),
+                )
+            )
+        reason = ""
+        for sites, left, notes in attempts:
+            if len(sites) < 2:
+                reason = f"the binomial GLMM needs at least 2 usable sites, got {len(sites)}"
+                continue
+            try:
+                with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
+                    fit = binomial_glmm(sites, points=points, level=level, excluded=left, notes=notes)
+            except ValueError as error:  # PoolingError, or no finite estimate
+                reason = str(error) if isinstance(error, PoolingError) else "the model gave no finite estimate"
+                continue
+            results.append(ThresholdAccuracy.from_fit(threshold, fit))
+            break
+        else:
             results.append(ThresholdAccuracy.not_estimable(threshold, reason, excluded[threshold]))
-            continue
-        try:
-            with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
-                fit = binomial_glmm(evidence[threshold], points=points, level=level, excluded=excluded[threshold])
-        except ValueError as error:  # PoolingError, or no finite estimate
-            reason = str(error) if isinstance(error, PoolingError) else "the model gave no finite estimate"
-            results.append(ThresholdAccuracy.not_estimable(threshold, reason, excluded[threshold]))
-            continue
-        results.append(ThresholdAccuracy.from_fit(threshold, fit))
     return tuple(results)
 
 
@@ -421,7 +446,7 @@ def _search(
 
 
 def choose_threshold(
-    tables_by_threshold: Mapping[float, Sequence[ReleasedTable]],
+    tables_by_threshold: Mapping[float, Sequence[ReleasedTable | SiteEvidence]],
     criterion: str = "target_sensitivity",
     target: float | None = None,
     pooled: Sequence[ThresholdAccuracy] | None = None,

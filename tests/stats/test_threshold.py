@@ -13,7 +13,7 @@ from sklearn.metrics import recall_score
 from sklearn.pipeline import make_pipeline
 from sklearn.preprocessing import StandardScaler
 
-from federation.stats import PoolingError, ReleasedTable
+from federation.stats import PoolingError, ReleasedTable, SiteEvidence
 from federation.stats.planning import withhold_table
 from federation.stats.threshold import CAUTION, ThresholdChoice, choose_threshold, pool_by_threshold
 
@@ -134,3 +134,26 @@ def test_bad_criterion_is_refused() -> None:
         choose_threshold(_tables(), "accuracy")
     with pytest.raises(PoolingError, match="target sensitivity"):
         choose_threshold(_tables(), "target_sensitivity", None)
+
+
+def test_interval_evidence_inside_a_band_keeps_the_site(pooled) -> None:
+    # A site whose ROC bands merged across 0.5 knows only that TP(0.5) lies between TP(0.65) and TP(0.35) (and FP
+    # likewise): given as interval evidence, the site stays in the pool and the estimate moves little.
+    tables = _tables()
+    site = tables[0.5][0]
+    upper, lower = tables[0.35][0], tables[0.65][0]
+    interval = SiteEvidence(
+        site.site_id,
+        np.ones(1),
+        np.array([site.positives]),
+        np.array([site.negatives]),
+        (np.arange(lower.tp, upper.tp + 1),),
+        (np.arange(lower.fp, upper.fp + 1),),
+        censored=True,
+    )
+    mixed = {0.5: [interval, *tables[0.5][1:]], 0.8: tables[0.8]}
+    result = pool_by_threshold(mixed)[0]
+    full = {r.threshold: r for r in pooled}[0.5]
+    assert result.estimated and len(result.sites_pooled) == N_SITES
+    assert result.sensitivity.estimate == pytest.approx(full.sensitivity.estimate, abs=0.02)
+    assert result.specificity.estimate == pytest.approx(full.specificity.estimate, abs=0.02)
