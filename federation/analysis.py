@@ -62,6 +62,7 @@ from federation.stats import (
 from federation.words import withheld_cells
 
 from .further_analysis import further_results
+from .labels import level_label
 from .store import Store, StoredRelease
 
 CELLS = ("tp", "fp", "fn", "tn")
@@ -469,20 +470,6 @@ def _paired(tables: list[SiteTable]) -> dict[str, Any] | None:
     }
 
 
-def level_label(level: Any) -> str:
-    """A subgroup level as people read it: ``female``, ``under 24``, ``from 24 to under 36``, ``36 or more``."""
-    if not isinstance(level, dict):
-        return str(level)
-    low, high = level.get("low"), level.get("high")
-    if low is None and high is None:
-        return "all"
-    if low is None:
-        return f"under {high:g}"
-    if high is None:
-        return f"{low:g} or more"
-    return f"from {low:g} to under {high:g}"
-
-
 def _level_confusion(level: dict[str, Any], threshold: float) -> dict[str, Any] | None:
     tables = level.get("confusion")
     if not isinstance(tables, list):
@@ -494,8 +481,8 @@ def _level_confusion(level: dict[str, Any], threshold: float) -> dict[str, Any] 
     return None
 
 
-def _subgroups(tables: list[SiteTable]) -> dict[str, Any] | None:
-    rows: dict[str, list[tuple[str, str, dict[str, Any], float]]] = {}
+def _subgroups(tables: list[SiteTable], integer_variables: frozenset[str] = frozenset()) -> dict[str, Any] | None:
+    rows: dict[str, list[tuple[str, str, dict[str, Any], float, int]]] = {}
     for table in tables:
         section = _section(table, "subgroups")
         if section is None or not isinstance(section.get("variables"), list):
@@ -504,20 +491,22 @@ def _subgroups(tables: list[SiteTable]) -> dict[str, Any] | None:
             if not isinstance(variable, dict) or not isinstance(variable.get("levels"), list):
                 continue
             name = str(variable.get("variable"))
-            for level in variable["levels"]:
+            for position, level in enumerate(variable["levels"]):
                 if isinstance(level, dict):
-                    label = level_label(level.get("level"))
-                    rows.setdefault(name, []).append((table.site_id, label, level, table.threshold))
+                    label = level_label(name, level.get("level"), name in integer_variables)
+                    rows.setdefault(name, []).append((table.site_id, label, level, table.threshold, position))
     if not rows:
         return None
     out: dict[str, Any] = {}
-    for variable, entries in rows.items():
+    for variable, unordered in rows.items():
+        # levels in the order the request cut them (youngest band first), whichever site has an estimate first
+        entries = sorted(unordered, key=lambda e: e[4])
         ids = [e[0] for e in entries]
         levels = [e[1] for e in entries]
         result: dict[str, Any] = {}
         for measure, (events, others) in (("sensitivity", ("tp", "fn")), ("specificity", ("tn", "fp"))):
             estimates, variances = [], []
-            for _, _, level, threshold in entries:
+            for _, _, level, threshold, _ in entries:
                 cells = _level_confusion(level, threshold) or {}
                 y, v = _logit_pair(_count(cells.get(events)), _count(cells.get(others)))
                 estimates.append(y)
@@ -526,7 +515,7 @@ def _subgroups(tables: list[SiteTable]) -> dict[str, Any] | None:
                 subgroup_analysis, ids, estimates, variances, levels, measure=f"logit {measure}", scale="logit"
             )
         auc_y, auc_v = [], []
-        for _, _, level, _ in entries:
+        for _, _, level, _, _ in entries:
             roc = level.get("roc") if isinstance(level.get("roc"), dict) else {}
             c, s = _number(roc.get("auc")), _number(roc.get("auc_se"))
             if c is None or s is None or not 0 < c < 1:
@@ -546,11 +535,13 @@ def analyze_tables(
     tables: list[SiteTable],
     prevalence: float | None = None,
     covariates: dict[str, dict[str, float | str]] | None = None,
+    integer_variables: frozenset[str] = frozenset(),
 ) -> dict[str, Any]:
     """Per-site and pooled results from each site's table and release sections (see the module docstring).
 
     ``covariates`` (optional, per site id) are coordinator-supplied site covariates for the meta-regression
-    (:func:`federation.further_analysis.read_covariates`).
+    (:func:`federation.further_analysis.read_covariates`). ``integer_variables``: model inputs that take whole
+    numbers, so that their subgroup bands are labelled by their first and last values ("36-47 months").
     """
     if prevalence is not None and (
         isinstance(prevalence, bool) or not isinstance(prevalence, int | float) or not 0 <= prevalence <= 1
@@ -582,14 +573,14 @@ def analyze_tables(
         ("discrimination", _discrimination),
         ("calibration", _calibration),
         ("paired", _paired),
-        ("subgroups", _subgroups),
+        ("subgroups", lambda t: _subgroups(t, integer_variables)),
     ):
         value = build(tables)
         if value is not None:
             result[key] = value
     result["pooled"] = pooled
     # What a reviewer asks for beyond the headline (federation.further_analysis), kept apart from the above.
-    result.update(further_results(tables, pooled, covariates))
+    result.update(further_results(tables, pooled, covariates, integer_variables))
     return result
 
 
@@ -611,4 +602,15 @@ def analyze(
     # Every matrix here is tiny: OpenBLAS threads cost far more than they give (about 8x slower fits on a busy
     # 2-core machine), as in the site's disclosure audit.
     with threadpool_limits(limits=1, user_api="blas"):
-        return analyze_tables(study, site_tables(releases), prevalence, covariates)
+        return analyze_tables(study, site_tables(releases), prevalence, covariates, store.integer_features(study))
+
+
+def release_sections(store: Store, study_id: str) -> dict[str, dict[str, Any]]:
+    """Each site's further release sections (``roc``, ``calibration``, ``margin``, ...) from its latest release."""
+    return {table.site_id: dict(table.extra) for table in site_tables(store.releases(study_id))}
+
+
+def enrolled_without_release(store: Store, study_id: str) -> list[str]:
+    """Sites enrolled in the store that have sent no release for ``study_id``."""
+    answered = {stored.release.site_id for stored in store.releases(study_id)}
+    return [site for site in store.sites() if site not in answered]

@@ -29,7 +29,6 @@ from .study import analysis_specs, issue_request
 
 if TYPE_CHECKING:  # imported late at run time: scipy makes `federation --help` slow
     from .decisions import DecisionSettings
-from .words import NOT_DEFINED_MARK, POOLED_MODELS, WITHHELD_LEGEND, WITHHELD_MARK
 
 
 def _read(path: Path, what: str) -> bytes:
@@ -219,16 +218,29 @@ def cmd_ingest(args: argparse.Namespace) -> int:
 
 
 def cmd_analyze(args: argparse.Namespace) -> int:
-    from .analysis import analyze  # scipy: imported here so `federation --help` starts fast
-    from .further_analysis import read_covariates
+    import sys
 
+    from federation.protocol.cli_support import EXIT_OK, EXIT_PARTIAL
+
+    from .analysis import analyze, enrolled_without_release, release_sections  # scipy: imported here
+    from .further_analysis import read_covariates
+    from .summary import format_summary
+
+    store = Store(args.store)
     covariates = read_covariates(args.covariates) if args.covariates else None
-    result = analyze(Store(args.store), args.study_id, covariates=covariates)
+    result = analyze(store, args.study_id, covariates=covariates)
+    missing = enrolled_without_release(store, result["study_id"])
     if args.json:
         print_json(result)
     else:
-        print(format_table(result))
-    return 0
+        print(format_summary(result, release_sections(store, result["study_id"])))
+    if missing:
+        # stderr under --json, so that stdout stays one JSON document
+        print(
+            f"no release yet from {len(missing)} enrolled site(s): {', '.join(missing)}",
+            file=sys.stderr if args.json else sys.stdout,
+        )
+    return EXIT_PARTIAL if missing else EXIT_OK
 
 
 def cmd_plan(args: argparse.Namespace) -> int:
@@ -247,70 +259,11 @@ def cmd_plan(args: argparse.Namespace) -> int:
     return 0
 
 
-def _fmt(value: dict | None) -> str:
-    if not value:
-        return "—"
-    return f"{value['estimate']:.3f} ({value['ci_low']:.3f}–{value['ci_high']:.3f})"
-
-
 def format_table(result: dict) -> str:
-    """The per-site accuracy table, its columns grouped by the reference standard as the report's flow boxes
-    are: with the condition (screen +, screen −), without the condition (screen +, screen −), then
-    sensitivity and specificity."""
-    lines = [f"Study {result['study_id']}", ""]
-    counts = 10
-    group = f"{'':<24}{'with the condition':^{2 * counts}}  {'without the condition':^{2 * counts}}"
-    header = (
-        f"{'site':<24}{'screen +':>{counts}}{'screen −':>{counts}}  {'screen +':>{counts}}{'screen −':>{counts}}"
-        f"  {'sensitivity (95% CI)':<24}{'specificity (95% CI)':<24}"
-    )
-    lines += [group, header, "-" * len(header)]
-    shown_withheld = False
-    width = 24 + 4 * counts + 4
-    for site in result["sites"]:
-        cells = []
-        for pair in (("tp", "fn"), ("fp", "tn")):
-            shown = "".join(f"{(WITHHELD_MARK if site[c] is None else site[c]):>{counts}}" for c in pair)
-            cells.append(shown)
-        shown_withheld = shown_withheld or any(site[c] is None for c in ("tp", "fn", "fp", "tn"))
-        lines.append(
-            f"{site['site_id']:<24}{'  '.join(cells)}  {_fmt(site['sensitivity']):<24}{_fmt(site['specificity']):<24}"
-        )
-    pooled = result["pooled"]
-    lines.append("-" * len(header))
-    label = f"pooled: {POOLED_MODELS['pooled']}"
-    lines.append(f"{label:<{width}}{_fmt(pooled['sensitivity']):<24}{_fmt(pooled['specificity']):<24}")
-    aware = pooled.get("bivariate_glmm_suppression_aware") or {}
-    if aware.get("sensitivity"):
-        label = (
-            f"pooled: {POOLED_MODELS['bivariate_glmm_suppression_aware']} ({len(aware.get('sites_pooled', []))} sites)"
-        )
-        lines.append(f"{label:<{width}}{_fmt(aware['sensitivity']):<24}{_fmt(aware['specificity']):<24}")
-    if pooled.get("sensitivity"):
-        parts = [
-            f"tau² logit {name} {pooled[f'tau2_logit_{name}']:.3f}, I² {100 * pooled[f'i2_logit_{name}']:.1f}%"
-            for name in ("sensitivity", "specificity")
-        ]
-        lines.append("between-site variation: " + "; ".join(parts))
-    else:
-        lines.append(pooled.get("note", ""))
-    for entry in pooled["sites_not_pooled"]:
-        lines.append(f"not pooled: {entry['site_id']} ({entry['reason']})")
-    legend = [WITHHELD_LEGEND] if shown_withheld else []
-    if any(site.get(m) is None for site in result["sites"] for m in ("sensitivity", "specificity")):
-        legend.append(f"{NOT_DEFINED_MARK} not defined from what the site released")
-    lines += legend
-    if aware.get("sensitivity"):
-        lines.append(
-            f"{POOLED_MODELS['bivariate_glmm_suppression_aware']}: each withheld count lies somewhere in the range "
-            "the site's rules allow"
-        )
-    from .further_analysis import summary_lines  # the pooled results beyond the table (scipy: imported late)
+    """The primary table (kept here for callers of the first version; see federation.summary)."""
+    from .summary import format_table as primary_table
 
-    further = summary_lines(result)
-    if further:
-        lines += ["", *further]
-    return "\n".join(line.rstrip() for line in lines)
+    return primary_table(result)
 
 
 def _decision_settings(args: argparse.Namespace) -> DecisionSettings:
@@ -363,6 +316,30 @@ def cmd_report(args: argparse.Namespace) -> int:
     return EXIT_PARTIAL if missing else EXIT_OK
 
 
+def cmd_export(args: argparse.Namespace) -> int:
+    import sys
+
+    from federation.protocol.cli_support import EXIT_OK, EXIT_PARTIAL
+
+    from .export import export_study  # scipy: imported here so `federation --help` starts fast
+
+    if not Path(args.store).is_file():
+        raise ValidationToolError(f"{args.store}: study store not found")
+    result = export_study(Store(args.store), args.out_dir, args.study_id)
+    missing = result.enrolled_without_release
+    if args.json:
+        print_json(result.to_dict())
+    else:
+        print(f"wrote {len(result.files)} files to {result.out_dir} (study {result.study_id}):")
+        print("  " + ", ".join(result.files))
+    if missing:
+        print(
+            f"no release yet from {len(missing)} enrolled site(s): {', '.join(missing)}",
+            file=sys.stderr if args.json else sys.stdout,
+        )
+    return EXIT_PARTIAL if missing else EXIT_OK
+
+
 def cmd_demo(args: argparse.Namespace) -> int:
     # The demo drives both sides of the invented consortium, so it lives in `simulations`.
     from simulations.demo import run_demo
@@ -381,6 +358,7 @@ a study, offline (files carried by hand):
   federation ingest --store study.db releases/*.json
   federation analyze --store study.db
   federation report --store study.db --out report.html
+  federation export --store study.db --out-dir results/
 
 online (Flower deployment engine): certs new, serve, enrol --node-key, run; see docs/deployment.md.
 guides: docs/coordinator.md, docs/site-it.md, docs/ethics-board.md
@@ -389,7 +367,7 @@ exit codes:
   0  done
   1  a usage or input error (bad flag, missing or malformed file)
   2  refused: a signature or hash does not verify, a site's policy or the coordinator's checks refused
-  3  partial: done, but some sites have not released (report, run)
+  3  partial: done, but some sites have not released (analyze, report, export, run)
   4  online round not completed: the SuperLink is unreachable, the quorum was not reached, or the round was
      cut short (continue with `federation run --resume`)
 every error is one line naming the file, field and rule broken; none carries a value from a record.
@@ -540,9 +518,13 @@ def build_parser() -> argparse.ArgumentParser:
 
     p = sub.add_parser(
         "analyze",
-        help="per-site and pooled accuracy from the stored releases",
-        description="Per-site 2x2 tables, sensitivity and specificity with 95% intervals, and random-effects "
-        "pooled estimates with heterogeneity, from the releases in the store.",
+        help="per-site and pooled results from the stored releases",
+        description="Every result of the study, in the order a validation paper reports them: per-site 2x2 "
+        "tables with the participant flow, sensitivity and specificity with 95% intervals and random-effects "
+        "pooled estimates; then, where the study asked for them, discrimination (ROC), calibration, subgroups, "
+        "accuracy by score margin, agreement with a second reference standard and the paired comparison. "
+        "A count a site withheld is shown as '·'. Exit codes: 0 done; 1 bad input; 3 done, but some enrolled "
+        "sites have sent no release for this study (they are named).",
         epilog=_examples("federation analyze --store study.db", "federation analyze --store study.db --json > a.json"),
         formatter_class=argparse.RawDescriptionHelpFormatter,
     )
@@ -627,6 +609,27 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--plot", type=Path, help="write the plan's figure to this file (.svg or .png)")
     p.add_argument("--json", action="store_true", help="JSON on stdout")
     p.set_defaults(handler=cmd_plan)
+
+    p = sub.add_parser(
+        "export",
+        help="write the study's results as tidy CSV tables plus the JSON, for a statistics package or a paper",
+        description="Write one CSV per result (participant flow, 2x2 tables and accuracy, ROC bands, "
+        "discrimination, calibration, subgroups, margin bands, agreement, paired comparison, every pooled "
+        "estimate), one row per site and analysis level, pooled results in rows whose site_id is 'pooled'; "
+        "codebook.csv says what every column means; analysis.json and releases.json hold the full analysis and "
+        "the signed releases. A count a site withheld is NA. Exit codes: 0 written; 1 bad input; 3 written, "
+        "but some enrolled sites have sent no release for this study.",
+        epilog=_examples(
+            "federation export --store study.db --out-dir results/",
+            "python -c \"import pandas as pd; print(pd.read_csv('results/accuracy.csv'))\"",
+        ),
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
+    p.add_argument("--store", type=Path, required=True, help="study store (SQLite file)")
+    p.add_argument("--study-id", help="which study (needed when the store holds several)")
+    p.add_argument("--out-dir", type=Path, required=True, help="folder to write the tables into (created if missing)")
+    p.add_argument("--json", action="store_true", help="print the files written as JSON")
+    p.set_defaults(handler=cmd_export)
 
     from .deploy.commands import add_deploy_commands
 

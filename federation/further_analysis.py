@@ -32,6 +32,7 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 from threadpoolctl import threadpool_limits
 
+from federation.labels import level_label
 from federation.protocol import ValidationToolError
 from federation.stats import (
     PoolingError,
@@ -254,7 +255,9 @@ def _level_cells(level: dict[str, Any], threshold: float) -> dict[str, Any] | No
     return None
 
 
-def _subgroup_levels(tables: Sequence[SiteTable]) -> dict[str, list[tuple[str, str, dict[str, Any], dict[str, Any]]]]:
+def _subgroup_levels(
+    tables: Sequence[SiteTable], integer_variables: frozenset[str] = frozenset()
+) -> dict[str, list[tuple[str, str, dict[str, Any], dict[str, Any]]]]:
     """Per subgroup variable: (site, level, the level's 2x2 cells, the level's ROC section) rows."""
     rows: dict[str, list[tuple[str, str, dict[str, Any], dict[str, Any]]]] = {}
     for table in tables:
@@ -268,14 +271,16 @@ def _subgroup_levels(tables: Sequence[SiteTable]) -> dict[str, list[tuple[str, s
                 if isinstance(level, dict):
                     cells = _level_cells(level, table.threshold) or {}
                     roc = level.get("roc") if isinstance(level.get("roc"), dict) else {}
-                    rows.setdefault(str(variable.get("variable")), []).append(
-                        (table.site_id, str(level.get("level")), cells, roc)
-                    )
+                    name = str(variable.get("variable"))
+                    label = level_label(name, level.get("level"), name in integer_variables)
+                    rows.setdefault(name, []).append((table.site_id, label, cells, roc))
     return rows
 
 
-def _subgroup_contrasts(tables: Sequence[SiteTable]) -> dict[str, Any] | None:
-    rows = _subgroup_levels(tables)
+def _subgroup_contrasts(
+    tables: Sequence[SiteTable], integer_variables: frozenset[str] = frozenset()
+) -> dict[str, Any] | None:
+    rows = _subgroup_levels(tables, integer_variables)
     if not rows:
         return None
     out: dict[str, Any] = {}
@@ -461,8 +466,11 @@ def further_results(
     tables: Sequence[SiteTable],
     pooled: dict[str, Any],
     covariates: dict[str, dict[str, float | str]] | None = None,
+    integer_variables: frozenset[str] = frozenset(),
 ) -> dict[str, Any]:
-    """The results listed in the module docstring, keyed as in ``federation analyze --json``."""
+    """The results listed in the module docstring, keyed as in ``federation analyze --json``.
+
+    ``integer_variables``: model inputs that take whole numbers (subgroup bands read "36-47 months")."""
     out: dict[str, Any] = {}
     # Tiny matrices and many small fits: one BLAS thread is several times faster than many on a busy machine.
     with threadpool_limits(limits=1, user_api="blas"):
@@ -472,7 +480,7 @@ def further_results(
             ("likelihood_ratios", _likelihood_ratios(pooled)),
             ("small_site_effects", _small_site_effects(tables)),
             ("influence", _influence(tables)),
-            ("subgroup_contrasts", _subgroup_contrasts(tables)),
+            ("subgroup_contrasts", _subgroup_contrasts(tables, integer_variables)),
             ("meta_regression", _meta_regression(tables, covariates)),
         ):
             if value is not None:

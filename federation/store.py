@@ -5,6 +5,7 @@ Every write happens in one transaction, so a refused or failed ingest leaves the
 
 from __future__ import annotations
 
+import json
 import sqlite3
 from collections.abc import Iterator
 from contextlib import contextmanager
@@ -119,6 +120,21 @@ class Store:
     def add_bundle(self, sha256: str, name: str, manifest_json: str) -> None:
         with self.transaction() as db:
             db.execute("INSERT OR IGNORE INTO bundles VALUES (?, ?, ?, ?)", (sha256, name, manifest_json, _now()))
+
+    def integer_features(self, study_id: str) -> frozenset[str]:
+        """Names of the ``int`` inputs in the schemas of the bundles the study's requests name."""
+        rows = self._db.execute(
+            "SELECT b.manifest FROM bundles b JOIN requests r ON r.bundle_sha256 = b.sha256 WHERE r.study_id = ?",
+            (study_id,),
+        ).fetchall()
+        names: set[str] = set()
+        for (text,) in rows:
+            try:
+                features = json.loads(text).get("schema", {}).get("features", [])
+            except (ValueError, AttributeError):
+                continue
+            names.update(f["name"] for f in features if isinstance(f, dict) and f.get("type") == "int")
+        return frozenset(names)
 
     def add_request(self, request: Request, document: bytes) -> None:
         with self.transaction() as db:

@@ -18,6 +18,21 @@ accuracy differs between subgroups. Sites differ in
 - a few percent of records with unanswered items, and (at the larger sites) a handful of records that
   break the schema: an answer of 7, an age of 400 months, a sex code nobody mapped, a missing outcome.
 
+What a validation of a short screen against its full-length instrument also has (all invented):
+
+- the full-length instrument: ten further items (``item_11`` .. ``item_20``) that every site records
+  alongside the ten of the short form, and its own scoring rule, a points scorecard (one point per answer
+  level over all twenty items, screen-positive at :data:`LONG_THRESHOLD` points), which the demo packs as a
+  second bundle for the paired comparison;
+- a second reference standard at three sites: a second diagnostic instrument whose verdict sometimes
+  disagrees with the first (more often for mild cases) and is sometimes blank (not administered);
+- a second rater's verdict on a sample at two other sites (about a quarter of the records, blank for the
+  rest): inter-rater agreement of the reference standard. Each site maps whichever it has as its
+  ``[reference2]``;
+- the condition's subtype (``early_onset`` or ``late_onset``, more severe cases more often early), blank
+  for children without the condition. It is in the model's schema (scored as ``none`` when blank) only so
+  that a study can split results by it: the frozen model gives it a weight of exactly zero.
+
 One small site (``skarrow-specialist``, 32 records) is drawn so that, under the demo model at threshold
 0.5, every cell of its 2x2 table lies between 1 and 9: it must trigger suppression at minimum cell size 10.
 
@@ -40,18 +55,31 @@ import pandas as pd
 from sklearn.linear_model import LogisticRegression
 
 ITEMS: tuple[str, ...] = tuple(f"item_{j:02d}" for j in range(1, 11))
-FEATURES: tuple[str, ...] = (*ITEMS, "age_months", "sex")
+LONG_ITEMS: tuple[str, ...] = tuple(f"item_{j:02d}" for j in range(1, 21))  # the full-length instrument
+SUBTYPES: tuple[str, ...] = ("none", "early_onset", "late_onset")
+MODEL_FEATURES: tuple[str, ...] = (*ITEMS, "age_months", "sex")  # what the screening model was fitted on
+FEATURES: tuple[str, ...] = (*MODEL_FEATURES, "subtype")  # the schema: subtype enters with weight zero
 SEX_CATEGORIES: tuple[str, ...] = ("female", "male")
+LONG_THRESHOLD = 15  # the full-length instrument's cut-off, in points (invented)
 OUTCOME = "outcome"
 THRESHOLD = 0.5
 MIN_CELL_SIZE = 10
 AGE_DECIMALS = 10  # years written with this many decimals: years * 12 is within 1e-9 of whole months
 
-SCHEMA_TOML = (
+# The twelve screening inputs alone (for a model fitted on them, as the benchmarks do).
+MODEL_SCHEMA_TOML = (
     "# Input schema of the invented demo screening model, in model input order.\n"
     + "".join(f'\n[[features]]\nname = "{item}"\ntype = "int"\nmin = 0\nmax = 3\nrequired = true\n' for item in ITEMS)
     + '\n[[features]]\nname = "age_months"\ntype = "int"\nmin = 0\nmax = 240\nrequired = true\n'
     + '\n[[features]]\nname = "sex"\ntype = "category"\ncategories = ["female", "male"]\nrequired = true\n'
+)
+SCHEMA_TOML = (
+    MODEL_SCHEMA_TOML
+    + '\n[[features]]\nname = "subtype"\ntype = "category"\ncategories = ["none", "early_onset", "late_onset"]\n'
+    + 'required = false\nmissing = "none"\n'
+)
+LONG_SCHEMA_TOML = "# Input schema of the invented full-length instrument's scoring rule.\n" + "".join(
+    f'\n[[features]]\nname = "{item}"\ntype = "int"\nmin = 0\nmax = 3\nrequired = true\n' for item in LONG_ITEMS
 )
 
 # Item response model (latent logistic, cut into answers 0-3). Items differ in how well they separate.
@@ -60,6 +88,9 @@ _DISCRIMINATION = np.array([2.0, 1.8, 1.6, 1.4, 1.2, 1.1, 0.9, 0.8, 0.6, 0.4])
 _AGE_EFFECT = np.array([0.0, 0.0, -0.5, 0.0, 0.0, 0.2, -0.4, 0.0, 0.3, 0.0])
 _SEX_EFFECT = np.array([0.0, -0.3, 0.0, 0.0, 0.5, 0.0, 0.0, 0.3, 0.0, 0.0])  # shift for boys
 _CUTPOINTS = np.array([0.8, 2.2, 3.6])
+# The full-length instrument's further items (item_11 .. item_20): a little more discriminating on the whole.
+_LONG_DISCRIMINATION = np.array([1.9, 1.7, 1.5, 1.5, 1.3, 1.2, 1.0, 0.9, 0.8, 0.6])
+_LONG_AGE_EFFECT = np.array([0.0, -0.3, 0.0, 0.2, 0.0, 0.0, -0.2, 0.0, 0.0, 0.0])
 _MALE_SHARE = {0: 0.5, 1: 0.65}  # the condition is more common in boys
 
 
@@ -79,6 +110,10 @@ class LocalCoding:
     missing: tuple[str, ...]  # local spellings of a missing value; the first is the one written
     record_prefix: str
     outcome_first: bool = False  # column order of the export
+    subtype_column: str = "subtype"
+    subtype_codes: tuple[tuple[str, str], ...] = (("E", "early_onset"), ("L", "late_onset"))
+    second_instrument_column: str | None = None  # a second reference standard (another instrument)
+    second_rater_column: str | None = None  # a second rater's verdict on a sample
 
 
 @dataclass(frozen=True)
@@ -101,8 +136,10 @@ class SiteFiles:
     site_id: str
     setting: str
     data_path: Path
-    mapping_path: Path
+    mapping_path: Path  # the screening model's inputs
     n_records: int
+    full_mapping_path: Path | None = None  # also the full-length instrument's items and the second reference
+    second_reference: str | None = None  # "instrument", "rater" or None
 
 
 @dataclass(frozen=True)
@@ -111,10 +148,13 @@ class Consortium:
     schema_path: Path
     development_path: Path
     sites: tuple[SiteFiles, ...]
+    long_schema_path: Path | None = None
+    long_scorecard_path: Path | None = None
 
 
 def _numbered(prefix: str, width: int = 0) -> tuple[str, ...]:
-    return tuple(f"{prefix}{j:0{width}d}" for j in range(1, 11))
+    """The site's names of all twenty items (the short form's ten first)."""
+    return tuple(f"{prefix}{j:0{width}d}" for j in range(1, 21))
 
 
 SITES: tuple[SiteSpec, ...] = (
@@ -139,6 +179,8 @@ SITES: tuple[SiteSpec, ...] = (
             "no",
             ("",),
             "NV",
+            subtype_column="dx_subtype",
+            second_rater_column="dx_second_rater",
         ),
     ),
     SiteSpec(
@@ -162,6 +204,7 @@ SITES: tuple[SiteSpec, ...] = (
             "0",
             ("", "NA"),
             "QB",
+            subtype_codes=(("1", "early_onset"), ("2", "late_onset")),
         ),
     ),
     SiteSpec(
@@ -185,6 +228,9 @@ SITES: tuple[SiteSpec, ...] = (
             "control",
             (".", ""),
             "TB",
+            subtype_column="subtype_onset",
+            subtype_codes=(("early", "early_onset"), ("late", "late_onset")),
+            second_instrument_column="case_status_b",
             outcome_first=True,
         ),
     ),
@@ -198,7 +244,7 @@ SITES: tuple[SiteSpec, ...] = (
         0.0,
         0.03,
         LocalCoding(
-            ITEMS,
+            LONG_ITEMS,
             "AGE",
             False,
             "SEX",
@@ -209,6 +255,9 @@ SITES: tuple[SiteSpec, ...] = (
             "negative",
             ("",),
             "OM",
+            subtype_column="SUBTYPE",
+            subtype_codes=(("EO", "early_onset"), ("LO", "late_onset")),
+            second_rater_column="ref_standard_rater_b",
         ),
     ),
     SiteSpec(
@@ -232,6 +281,8 @@ SITES: tuple[SiteSpec, ...] = (
             "N",
             ("-99", ""),
             "VC",
+            subtype_column="child_subtype",
+            subtype_codes=(("early", "early_onset"), ("late", "late_onset")),
         ),
     ),
     SiteSpec(
@@ -255,6 +306,9 @@ SITES: tuple[SiteSpec, ...] = (
             "FALSE",
             ("NA", ""),
             "BH",
+            subtype_column="subtype_code",
+            subtype_codes=(("1", "early_onset"), ("2", "late_onset")),
+            second_instrument_column="dx_confirmed_alt",
             outcome_first=True,
         ),
     ),
@@ -279,6 +333,8 @@ SITES: tuple[SiteSpec, ...] = (
             "absent",
             ("",),
             "SK",
+            subtype_column="final_dx_subtype",
+            subtype_codes=(("e", "early_onset"), ("l", "late_onset")),
         ),
     ),
     SiteSpec(
@@ -302,6 +358,9 @@ SITES: tuple[SiteSpec, ...] = (
             "unaffected",
             ("", "NA", "."),
             "AL",
+            subtype_column="subtype_group",
+            subtype_codes=(("A", "early_onset"), ("B", "late_onset")),
+            second_instrument_column="status_second",
         ),
     ),
 )
@@ -316,8 +375,14 @@ def generate_cohort(
     age_range: tuple[int, int] = (18, 72),
     severity: float = 1.0,
     control_shift: float = 0.0,
+    extra: np.random.Generator | None = None,
 ) -> pd.DataFrame:
     """Draw a cohort in schema terms: items, ``age_months``, ``sex`` (text) and ``outcome`` (1/0).
+
+    With ``extra`` (a second generator, so that the short form's draws do not change) the cohort also gets
+    the full-length instrument's further items ``item_11`` .. ``item_20``, ``subtype`` (``none`` without
+    the condition), and two further verdicts on every child, ``reference2_instrument`` (another diagnostic
+    instrument) and ``reference2_rater`` (a second rater using the same one), 1/0; sites keep only some.
 
     Parameters
     ----------
@@ -344,29 +409,71 @@ def generate_cohort(
     frame["age_months"] = age
     frame["sex"] = np.where(male, "male", "female")
     frame[OUTCOME] = outcome
+    if extra is None:
+        return frame
+    severe = outcome * case_severity
+    latent_long = (
+        _LONG_DISCRIMINATION[None, :] * severe[:, None]
+        + _LONG_AGE_EFFECT[None, :] * ((age - 45) / 15)[:, None]
+        + control_shift * (1 - outcome)[:, None]
+        + extra.logistic(0.0, 1.0, size=(n_records, len(LONG_ITEMS) - len(ITEMS)))
+    )
+    long_answers = (latent_long[:, :, None] > _CUTPOINTS[None, None, :]).sum(axis=2)
+    for j, item in enumerate(LONG_ITEMS[len(ITEMS) :]):
+        frame[item] = long_answers[:, j]
+    early = extra.random(n_records) < 1.0 / (1.0 + np.exp(-3.0 * (case_severity - 1.0)))
+    frame["subtype"] = np.where(outcome == 1, np.where(early, "early_onset", "late_onset"), "none")
+    # Another instrument misses milder cases more often and calls some children with other difficulties.
+    miss = extra.random(n_records) < np.clip(0.25 - 0.15 * case_severity, 0.03, 0.25)
+    false_call = extra.random(n_records) < 0.04 + 0.08 * min(control_shift, 1.0)
+    frame["reference2_instrument"] = np.where(outcome == 1, (~miss).astype(int), false_call.astype(int))
+    rater_flip = extra.random(n_records) < np.where(outcome == 1, 0.07, 0.03)
+    frame["reference2_rater"] = np.where(rater_flip, 1 - outcome, outcome)
     return frame
 
 
 def model_inputs(frame: pd.DataFrame) -> np.ndarray:
-    """The model-input matrix of a schema-terms frame: float32, schema order, sex as its category code."""
-    columns = [frame[name].to_numpy(dtype=np.float64) for name in FEATURES[:-1]]
+    """The model-input matrix of a schema-terms frame: float32, schema order, categories as their codes.
+
+    A frame without ``subtype`` gets ``none`` (code 0): the model gives subtype a weight of zero.
+    """
+    columns = [frame[name].to_numpy(dtype=np.float64) for name in MODEL_FEATURES[:-1]]
     sex_code = frame["sex"].map({name: code for code, name in enumerate(SEX_CATEGORIES)})
     if sex_code.isna().any():
         raise ValueError(f"sex must be one of {', '.join(SEX_CATEGORIES)}")
     columns.append(sex_code.to_numpy(dtype=np.float64))
+    subtype = frame["subtype"] if "subtype" in frame else pd.Series("none", index=frame.index)
+    subtype_code = subtype.map({name: code for code, name in enumerate(SUBTYPES)})
+    if subtype_code.isna().any():
+        raise ValueError(f"subtype must be one of {', '.join(SUBTYPES)}")
+    columns.append(subtype_code.to_numpy(dtype=np.float64))
     return np.column_stack(columns).astype(np.float32)
 
 
 def _fit_model(frame: pd.DataFrame) -> LogisticRegression:
-    model = LogisticRegression(max_iter=10_000)  # lbfgs: deterministic
-    model.fit(model_inputs(frame), frame[OUTCOME].to_numpy(dtype=int))
+    """Fit on the twelve screening inputs, then add ``subtype`` as a thirteenth input with weight zero."""
+    fitted = LogisticRegression(max_iter=10_000)  # lbfgs: deterministic
+    fitted.fit(model_inputs(frame)[:, : len(MODEL_FEATURES)], frame[OUTCOME].to_numpy(dtype=int))
+    model = LogisticRegression(max_iter=10_000)
+    model.classes_ = fitted.classes_
+    model.coef_ = np.hstack([fitted.coef_, np.zeros((1, 1))])
+    model.intercept_ = fitted.intercept_.copy()
+    model.n_features_in_ = len(FEATURES)
+    model.n_iter_ = fitted.n_iter_
     return model
 
 
 def train_demo_model(development_csv: Path) -> LogisticRegression:
-    """Fit the demo screening model on the development cohort (the 12 schema features, in order)."""
+    """Fit the demo screening model on the development cohort (the schema's 13 inputs, subtype at weight 0)."""
     frame = pd.read_csv(development_csv, dtype={"sex": str})
     return _fit_model(frame)
+
+
+def long_scorecard() -> bytes:
+    """The full-length instrument's scoring rule as a points scorecard (docs/formats.md): one point per
+    answer level over all twenty items; screen-positive at :data:`LONG_THRESHOLD` points or more."""
+    points = {item: {str(level): level for level in range(4)} for item in LONG_ITEMS}
+    return json.dumps({"format": "scorecard", "kind": "points", "intercept": 0, "points": points}).encode()
 
 
 def _format_years(months: int) -> str:
@@ -384,11 +491,42 @@ def _localise(frame: pd.DataFrame, coding: LocalCoding) -> pd.DataFrame:
         coding.age_column: ages.map(_format_years) if coding.age_in_years else ages.astype(str),
         coding.sex_column: frame["sex"].map(to_local_sex),
     }
-    for item, column in zip(ITEMS, coding.item_columns, strict=True):
+    items = LONG_ITEMS if LONG_ITEMS[-1] in frame else ITEMS
+    for item, column in zip(items, coding.item_columns, strict=False):
         columns[column] = frame[item].astype(str)
-    order = ["record_id", coding.age_column, coding.sex_column, *coding.item_columns]
+    order = ["record_id", coding.age_column, coding.sex_column, *coding.item_columns[: len(items)]]
+    if "subtype" in frame:
+        to_local_subtype = {schema: local for local, schema in coding.subtype_codes} | {"none": coding.missing[0]}
+        columns[coding.subtype_column] = frame["subtype"].map(to_local_subtype)
+        order.append(coding.subtype_column)
+    verdict = {1: coding.positive, 0: coding.negative}
+    for column, source in (
+        (coding.second_instrument_column, "reference2_instrument"),
+        (coding.second_rater_column, "reference2_rater"),
+    ):
+        if column is not None and source in frame:
+            columns[column] = frame[source].map(verdict)
+            order.append(column)
     order.insert(1 if coding.outcome_first else len(order), coding.outcome_column)
     return pd.DataFrame({name: columns[name].reset_index(drop=True) for name in order})
+
+
+def _blank_extras(local: pd.DataFrame, spec: SiteSpec, rng: np.random.Generator) -> np.ndarray:
+    """What the full-length instrument and the second verdicts lack: a few unanswered further items, the
+    second instrument not administered to some children, the second rater seeing only a sample. Returns
+    the mask of records with every further item answered."""
+    coding = spec.local
+    n = len(local)
+    complete = np.ones(n, dtype=bool)
+    long_columns = list(coding.item_columns[len(ITEMS) :])
+    for row in np.flatnonzero(rng.random(n) < spec.missing_rate / 3):
+        local.loc[row, long_columns[int(rng.integers(len(long_columns)))]] = coding.missing[0]
+        complete[row] = False
+    if coding.second_instrument_column is not None:
+        local.loc[rng.random(n) < 0.15, coding.second_instrument_column] = coding.missing[0]
+    if coding.second_rater_column is not None:
+        local.loc[rng.random(n) >= 0.25, coding.second_rater_column] = coding.missing[0]
+    return complete
 
 
 def _add_problems(local: pd.DataFrame, spec: SiteSpec, rng: np.random.Generator) -> np.ndarray:
@@ -400,7 +538,7 @@ def _add_problems(local: pd.DataFrame, spec: SiteSpec, rng: np.random.Generator)
     with_missing[rng.choice(n, size=max(1, round(spec.missing_rate * n)), replace=False)] = True
     for row in np.flatnonzero(with_missing):
         how_many = 1 if rng.random() < 0.7 else 2
-        for column in rng.choice(coding.item_columns, size=how_many, replace=False):
+        for column in rng.choice(coding.item_columns[: len(ITEMS)], size=how_many, replace=False):
             local.loc[row, column] = coding.missing[0]
     valid &= ~with_missing
     if spec.site_id == SMALL_SITE_ID:
@@ -432,9 +570,14 @@ def _two_by_two(model: LogisticRegression, frame: pd.DataFrame) -> tuple[np.ndar
     return cells, score
 
 
-def _site_data(spec: SiteSpec, rng: np.random.Generator, model: LogisticRegression) -> pd.DataFrame:
+def _site_data(
+    spec: SiteSpec, rng: np.random.Generator, model: LogisticRegression, extra: np.random.Generator | None = None
+) -> pd.DataFrame:
     """The site's export. The small site is redrawn until its 2x2 cells all lie in [1, MIN_CELL_SIZE - 1]
-    and no score sits within 1e-3 of the threshold (so float32 scoring elsewhere gives the same table)."""
+    and no score sits within 1e-3 of the threshold (so float32 scoring elsewhere gives the same table).
+
+    ``extra`` draws what the full-length instrument and the second verdicts add (see generate_cohort), so the
+    short form's records are the same with or without them."""
     for _ in range(1000):
         frame = generate_cohort(
             rng,
@@ -443,9 +586,12 @@ def _site_data(spec: SiteSpec, rng: np.random.Generator, model: LogisticRegressi
             age_range=spec.age_range,
             severity=spec.severity,
             control_shift=spec.control_shift,
+            extra=extra,
         )
         local = _localise(frame, spec.local)
         valid = _add_problems(local, spec, rng)
+        if extra is not None:
+            valid &= _blank_extras(local, spec, extra)
         if spec.site_id != SMALL_SITE_ID:
             return local
         cells, score = _two_by_two(model, frame[valid])
@@ -458,8 +604,11 @@ def _toml_string(text: str) -> str:
     return json.dumps(text)  # a JSON string of ASCII text is a valid TOML basic string
 
 
-def mapping_toml(spec: SiteSpec) -> str:
-    """The site's mapping file (docs/formats.md): local names and codes -> schema names and categories."""
+def mapping_toml(spec: SiteSpec, full: bool = False) -> str:
+    """The site's mapping file (docs/formats.md): local names and codes -> schema names and categories.
+
+    ``full``: also the full-length instrument's further items and the site's second reference standard, for
+    a request with the paired comparison (a mapping may name only features of the models it runs)."""
     coding = spec.local
     lines = [
         f"# Mapping for {spec.site_id} (invented demo site): local columns and codes -> schema.",
@@ -470,7 +619,7 @@ def mapping_toml(spec: SiteSpec) -> str:
         f"positive = [{_toml_string(coding.positive)}]",
         f"negative = [{_toml_string(coding.negative)}]",
     ]
-    for item, column in zip(ITEMS, coding.item_columns, strict=True):
+    for item, column in zip(ITEMS, coding.item_columns, strict=False):
         if column != item:
             lines += ["", f"[features.{item}]", f"column = {_toml_string(column)}"]
     if coding.age_column != "age_months" or coding.age_in_years:
@@ -479,31 +628,65 @@ def mapping_toml(spec: SiteSpec) -> str:
             lines.append("multiply = 12")
     codes = ", ".join(f"{_toml_string(local)} = {_toml_string(schema)}" for local, schema in coding.sex_codes)
     lines += ["", "[features.sex]", f"column = {_toml_string(coding.sex_column)}", f"codes = {{ {codes} }}"]
+    codes = ", ".join(f"{_toml_string(local)} = {_toml_string(schema)}" for local, schema in coding.subtype_codes)
+    lines += ["", "[features.subtype]", f"column = {_toml_string(coding.subtype_column)}", f"codes = {{ {codes} }}"]
+    if not full:
+        return "\n".join(lines) + "\n"
+    lines += ["", "# The full-length instrument's further items (its scoring rule is the paired comparison's model)."]
+    for item, column in zip(LONG_ITEMS[len(ITEMS) :], coding.item_columns[len(ITEMS) :], strict=True):
+        if column != item:
+            lines += ["", f"[features.{item}]", f"column = {_toml_string(column)}"]
+    second = coding.second_instrument_column or coding.second_rater_column
+    if second is not None:
+        what = "a second diagnostic instrument" if coding.second_instrument_column else "a second rater, on a sample"
+        lines += [
+            "",
+            f"[reference2]  # {what}",
+            f"column = {_toml_string(second)}",
+            f"positive = [{_toml_string(coding.positive)}]",
+            f"negative = [{_toml_string(coding.negative)}]",
+        ]
     return "\n".join(lines) + "\n"
 
 
 def write_consortium(out_dir: Path, seed: int = 2026) -> Consortium:
     """Write the schema, the development cohort and every site's data and mapping file under ``out_dir``.
 
-    Layout: ``schema.toml``, ``development.csv`` (3000 records, schema names, ``outcome`` 1/0, no missing
-    values, prevalence 30%), and ``sites/<site_id>/data.csv`` and ``sites/<site_id>/mapping.toml``.
+    Layout: ``schema.toml``, ``development.csv`` (3000 records, schema names and the further items,
+    ``outcome`` 1/0, no missing values, prevalence 30%), ``long-schema.toml`` and ``long-scorecard.json`` (the
+    full-length instrument's scoring rule), and per site ``sites/<site_id>/data.csv``, ``mapping.toml`` (the
+    screening model's inputs) and ``mapping-full.toml`` (also the further items and the second reference).
     """
     out_dir = Path(out_dir)
     out_dir.mkdir(parents=True, exist_ok=True)
     schema_path = out_dir / "schema.toml"
     schema_path.write_text(SCHEMA_TOML, encoding="utf-8")
-    development = generate_cohort(np.random.default_rng([seed, 0]), 3000, 0.30)
+    development = generate_cohort(
+        np.random.default_rng([seed, 0]), 3000, 0.30, extra=np.random.default_rng([seed, 0, 1])
+    )
+    development = development[[*LONG_ITEMS, "age_months", "sex", "subtype", OUTCOME]]
     development_path = out_dir / "development.csv"
     development.to_csv(development_path, index=False, lineterminator="\n")
+    long_schema_path = out_dir / "long-schema.toml"
+    long_schema_path.write_text(LONG_SCHEMA_TOML, encoding="utf-8")
+    long_scorecard_path = out_dir / "long-scorecard.json"
+    long_scorecard_path.write_bytes(long_scorecard())
     model = train_demo_model(development_path)
     sites = []
     for index, spec in enumerate(SITES, start=1):
-        local = _site_data(spec, np.random.default_rng([seed, index]), model)
+        local = _site_data(spec, np.random.default_rng([seed, index]), model, np.random.default_rng([seed, index, 1]))
         site_dir = out_dir / "sites" / spec.site_id
         site_dir.mkdir(parents=True, exist_ok=True)
         data_path = site_dir / "data.csv"
         local.to_csv(data_path, index=False, lineterminator="\n")
         mapping_path = site_dir / "mapping.toml"
         mapping_path.write_text(mapping_toml(spec), encoding="utf-8")
-        sites.append(SiteFiles(spec.site_id, spec.setting, data_path, mapping_path, len(local)))
-    return Consortium(out_dir, schema_path, development_path, tuple(sites))
+        full_mapping_path = site_dir / "mapping-full.toml"
+        full_mapping_path.write_text(mapping_toml(spec, full=True), encoding="utf-8")
+        second = (
+            "instrument" if spec.local.second_instrument_column else "rater" if spec.local.second_rater_column else None
+        )
+        sites.append(
+            SiteFiles(spec.site_id, spec.setting, data_path, mapping_path, len(local), full_mapping_path, second)
+        )
+    return Consortium(out_dir, schema_path, development_path, tuple(sites), long_schema_path, long_scorecard_path)

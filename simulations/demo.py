@@ -1,13 +1,20 @@
-"""The demo: the invented consortium's whole study, from a signed model to the pooled table.
+"""The demo: the invented consortium's whole study, from a signed model to the pooled results.
 
 Steps (each the same code the command lines run):
 1. generate the invented consortium (simulations.consortium);
-2. coordinator: make keys, train and freeze the demo model, pack and sign it, issue a request;
-3. each site: `site-agent init` (policy, keys, pinned coordinator key) and point [data] at its records;
-   the coordinator enrols every site's release-signing key;
+2. coordinator: make keys, train and freeze the demo model, pack and sign it and the full-length
+   instrument's scoring rule (a points scorecard), issue a request;
+3. each site: `site-agent init` (policy, keys, pinned coordinator key), allow the subtype split, and point
+   [data] at its records; the coordinator enrols every site's release-signing key;
 4. run the request at every site over the chosen engine: Flower's simulation engine (default),
    the Flower apps in-process, or the offline path (release files handed over);
-5. analyse the store and print the per-site and pooled table.
+5. analyse the store, print every result in the order a validation paper reports them
+   (:func:`simulations.summary.format_summary`), write the report and the tidy CSV export.
+
+The full request (``request="full"``, what `make demo` runs) asks for the 2×2 table at the model's threshold
+with the participant flow, ROC bands, calibration, subgroups by age band and by subtype, low-score margin
+bands, agreement with the second reference standard, and the paired comparison with the full-length
+instrument. ``request="primary"`` asks for the 2×2 table only (what many tests use: it is quick).
 """
 
 from __future__ import annotations
@@ -21,22 +28,40 @@ import time
 from dataclasses import dataclass
 from pathlib import Path
 
-from federation.analysis import analyze
-from federation.cli import format_table
+from federation.analysis import analyze, enrolled_without_release, release_sections
+from federation.export import export_study
 from federation.flower_server import RoundConfig, SiteOutcome, make_server_app
-from federation.modelpack import bundle_from_sklearn, onnx_from_sklearn
-from federation.protocol import Schema, load_private_key, write_keypair
+from federation.modelpack import bundle_from_sklearn, onnx_from_sklearn, pack_model
+from federation.protocol import AnalysisSpec, Schema, load_private_key, sha256_hex, write_keypair
 from federation.protocol.cli_support import write_atomic
+from federation.protocol.documents import SubgroupSpec
 from federation.store import Store
 from federation.study import issue_request
+from federation.summary import format_summary
 from site_agent.approval import record_sent
 from site_agent.config import init_site, load_site
 from site_agent.flower_client import make_client_app
 from site_agent.runner import run_request
 
-from .consortium import Consortium, train_demo_model, write_consortium
+from .consortium import LONG_THRESHOLD, Consortium, train_demo_model, write_consortium
 
 STUDY_ID = "tallowmere-validation-1"
+AGE_EDGES = (36, 48)  # age bands in months: under 36, 36-47, 48 and over
+MARGIN_DISTANCES = (0.05, 0.1, 0.2)  # distances from the threshold of the low-margin bands
+SUBGROUP_VARIABLES = ("age_months", "sex", "subtype")  # what every demo site's policy allows
+
+
+def full_request_specs(compare_sha256: str) -> tuple[AnalysisSpec, ...]:
+    """Every analysis a validation paper reports, in the order it reports them."""
+    return (
+        AnalysisSpec("confusion"),
+        AnalysisSpec("roc"),
+        AnalysisSpec("calibration"),
+        AnalysisSpec("subgroups", subgroups=(SubgroupSpec("age_months", AGE_EDGES), SubgroupSpec("subtype"))),
+        AnalysisSpec("margin", bands=MARGIN_DISTANCES),
+        AnalysisSpec("agreement"),
+        AnalysisSpec("paired", compare_bundle_sha256=compare_sha256),
+    )
 
 
 @dataclass(frozen=True)
@@ -47,6 +72,7 @@ class DemoStudy:
     bundle_bytes: bytes
     request_bytes: bytes
     site_dirs: tuple[Path, ...]
+    compare_bundle_bytes: bytes | None = None  # the full-length instrument's rule (a full request)
 
 
 def set_site_data(site_dir: Path, data_path: Path, mapping_path: Path) -> None:
@@ -58,7 +84,24 @@ def set_site_data(site_dir: Path, data_path: Path, mapping_path: Path) -> None:
     config.write_text(text)
 
 
-def prepare_study(root: Path, seed: int = 2026, study_id: str = STUDY_ID) -> DemoStudy:
+def allow_subgroups(site_dir: Path, variables: tuple[str, ...]) -> None:
+    """Let requests split results by ``variables`` (the site's ethics board edits allowed_subgroups)."""
+    config = site_dir / "site.toml"
+    listed = ", ".join(f'"{v}"' for v in variables)
+    config.write_text(
+        config.read_text().replace('allowed_subgroups = ["age_months", "sex"]', f"allowed_subgroups = [{listed}]")
+    )
+
+
+def prepare_study(root: Path, seed: int = 2026, study_id: str = STUDY_ID, request: str = "primary") -> DemoStudy:
+    """The consortium, the coordinator's keys, bundles and request, and every site's folder, under ``root``.
+
+    ``request``: ``"primary"`` (the 2×2 table and the flow) or ``"full"`` (every analysis; see the module
+    docstring). The full request also packs the full-length instrument's scoring rule as a second bundle
+    (``coordinator/compare.bundle``) and points each site at its ``mapping-full.toml``.
+    """
+    if request not in ("primary", "full"):
+        raise ValueError("request must be 'primary' or 'full'")
     if root.exists():
         shutil.rmtree(root)
     consortium = write_consortium(root / "consortium", seed)
@@ -73,16 +116,36 @@ def prepare_study(root: Path, seed: int = 2026, study_id: str = STUDY_ID) -> Dem
     write_atomic(coordinator / "model.bundle", bundle_bytes)
     store_path = coordinator / "study.db"
     store = Store(store_path)
-    request_bytes = issue_request(store, study_id, bundle_bytes, private_key)
+    compare_bytes = None
+    specs = None
+    if request == "full":
+        assert consortium.long_schema_path is not None and consortium.long_scorecard_path is not None
+        long_schema = Schema.from_toml(consortium.long_schema_path.read_text(), str(consortium.long_schema_path))
+        compare_bytes = pack_model(
+            consortium.long_scorecard_path.read_bytes(),
+            "scorecard",
+            long_schema,
+            private_key,
+            [float(LONG_THRESHOLD)],
+            "tallowmere-full-instrument",
+        )
+        write_atomic(coordinator / "compare.bundle", compare_bytes)
+        specs = full_request_specs(sha256_hex(compare_bytes))
+    request_bytes = issue_request(
+        store, study_id, bundle_bytes, private_key, analyses=specs, compare_bundle_bytes=compare_bytes
+    )
     write_atomic(coordinator / "request.json", request_bytes)
     site_dirs = []
     for site in consortium.sites:
         site_dir = init_site(root / "site-folders" / site.site_id, site.site_id, [public_path])
-        set_site_data(site_dir, site.data_path, site.mapping_path)
+        mapping = site.full_mapping_path if request == "full" and site.full_mapping_path else site.mapping_path
+        set_site_data(site_dir, site.data_path, mapping)
+        if request == "full":
+            allow_subgroups(site_dir, SUBGROUP_VARIABLES)
         store.enrol(site.site_id, (site_dir / "site.pub").read_bytes(), str(site_dir / "site.pub"))
         site_dirs.append(site_dir)
     store.close()
-    return DemoStudy(root, consortium, store_path, bundle_bytes, request_bytes, tuple(site_dirs))
+    return DemoStudy(root, consortium, store_path, bundle_bytes, request_bytes, tuple(site_dirs), compare_bytes)
 
 
 def run_offline(study: DemoStudy) -> list[SiteOutcome]:
@@ -90,7 +153,9 @@ def run_offline(study: DemoStudy) -> list[SiteOutcome]:
     outcomes, files = [], []
     for index, site_dir in enumerate(study.site_dirs):
         site = load_site(site_dir)
-        result = run_request(site, study.request_bytes, study.bundle_bytes)
+        result = run_request(
+            site, study.request_bytes, study.bundle_bytes, compare_bundle_bytes=study.compare_bundle_bytes
+        )
         path = study.root / "releases" / f"{site.site_id}.json"
         write_atomic(path, result.release_bytes)
         record_sent(site, result.release_bytes, "file", path)
@@ -107,6 +172,7 @@ def round_config(study: DemoStudy) -> RoundConfig:
         store_path=study.store_path,
         request_bytes=study.request_bytes,
         bundle_bytes=study.bundle_bytes,
+        compare_bundle_bytes=study.compare_bundle_bytes,
         min_sites=len(study.site_dirs),
         wait_for_sites_s=120.0,
         deadline_s=600.0,
@@ -164,18 +230,25 @@ def run_flower_simulation(study: DemoStudy) -> list[SiteOutcome]:
 ENGINES = {"simulation": run_flower_simulation, "inprocess": run_flower_inprocess, "offline": run_offline}
 
 
-def run_demo(out: Path, engine: str = "simulation", seed: int = 2026) -> int:
+def run_demo(out: Path, engine: str = "simulation", seed: int = 2026, request: str = "full") -> int:
+    """The whole demo; returns 0 when every site released, 3 when some did not (as `federation report`)."""
     started = time.monotonic()
     print(f"Preparing the invented demo consortium in {out} ...", flush=True)
-    study = prepare_study(Path(out), seed)
+    study = prepare_study(Path(out), seed, request=request)
     print(f"Running study {STUDY_ID} at {len(study.site_dirs)} sites over the {engine} engine ...", flush=True)
     outcomes = ENGINES[engine](study)
     for outcome in outcomes:
         note = f" ({outcome.reason})" if outcome.reason else ""
         print(f"  {outcome.site_id or f'node {outcome.node_id}'}: {outcome.status}{note}")
-    result = analyze(Store(study.store_path), STUDY_ID)
+    store = Store(study.store_path)
+    result = analyze(store, STUDY_ID)
     print()
-    print(format_table(result))
+    print(format_summary(result, release_sections(store, STUDY_ID)))
+    missing = enrolled_without_release(store, STUDY_ID)
+    if missing:
+        print(f"no release yet from {len(missing)} enrolled site(s): {', '.join(missing)}")
+    export = export_study(store, study.root / "results", STUDY_ID, result)
+    store.close()
     print()
     print(f"store:    {study.store_path}")
     print(f"request:  {study.root / 'coordinator' / 'request.json'}")
@@ -185,11 +258,12 @@ def run_demo(out: Path, engine: str = "simulation", seed: int = 2026) -> int:
     report_path = study.root / "report.html"
     write_report(study.store_path, report_path, STUDY_ID)
     print(f"report:   {report_path} (open it in any browser; it fetches nothing)")
+    print(f"results:  {export.out_dir} (tidy CSV, one row per site and level, NA = withheld; codebook.csv)")
     print(f"finished in {time.monotonic() - started:.1f} s")
     print("Screening is not diagnosis; these figures do not replace clinical judgement, local regulation")
     print("or ethics approval. All data in this demo is invented.")
     released = sum(o.status == "released" for o in outcomes)
-    return 0 if released == len(study.site_dirs) else 3
+    return 0 if released == len(study.site_dirs) and not missing else 3
 
 
 if __name__ == "__main__":

@@ -434,7 +434,8 @@ def section_names(inputs: ReportInputs) -> list[str]:
     for key in analysis:
         if key not in TOP_CORE and "bivariate" not in key and key not in aliases:
             names.setdefault(key, None)
-    return list(names)
+    # The order a validation paper reports them in (as `federation analyze` prints them), then the rest.
+    return [name for name in KNOWN if name in names] + [name for name in names if name not in KNOWN]
 
 
 def analysis_sections(inputs: ReportInputs) -> list[tuple[str, str, str]]:

@@ -16,6 +16,7 @@ from collections.abc import Iterable, Sequence
 from html import escape
 from typing import Any
 
+from federation.labels import number_text
 from federation.words import WITHHELD_LEGEND, WITHHELD_MARK
 
 __all__ = [
@@ -142,7 +143,8 @@ def cell_text(value: object) -> str:
     if isinstance(value, list) and all(not isinstance(v, (dict, list)) for v in value):
         if len(value) > 6 and not all(isinstance(v, str) for v in value):
             return esc(f"{len(value)} values")
-        return esc(", ".join(fmt_number(v) for v in value))
+        # a list of numbers is a request's edges or thresholds: shown as the coordinator wrote them
+        return esc(", ".join(number_text(v) if isinstance(v, float) else fmt_number(v) for v in value))
     if isinstance(value, (dict, list)):
         return f"<code>{esc(json.dumps(value, sort_keys=True)[:300])}</code>"
     return esc(fmt_number(value))

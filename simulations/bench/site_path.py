@@ -82,14 +82,14 @@ def prepare(out: Path) -> Path:
     from federation.protocol import AnalysisSpec, Schema, load_private_key, write_keypair
     from federation.store import Store
     from federation.study import issue_request
-    from simulations.consortium import SCHEMA_TOML
+    from simulations.consortium import MODEL_SCHEMA_TOML
 
     out.mkdir(parents=True, exist_ok=True)
     if (out / "request.json").exists():
         return out
     private_path, _ = write_keypair(out / "coordinator", "coordinator")
     key = load_private_key(private_path)
-    schema = Schema.from_toml(SCHEMA_TOML, "schema")
+    schema = Schema.from_toml(MODEL_SCHEMA_TOML, "schema")
     sample = generate(np.random.default_rng(1), 20_000)
     x = np.column_stack([sample[f] == "male" if f == "sex" else sample[f] for f in FEATURES]).astype(np.float32)
     model = LogisticRegression(max_iter=10_000).fit(x, sample["outcome"])

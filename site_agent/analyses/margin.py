@@ -27,10 +27,16 @@ from .histogram import band_table
 DEFAULT_PROBABILITY_DISTANCES = (0.05, 0.1, 0.2)
 
 
+def written(value: float) -> float:
+    """``value`` without binary floating-point noise (0.5 - 0.1 is 0.4, not 0.39999999999999997): the edges
+    and distances a release shows are the numbers the coordinator wrote, to 12 significant digits."""
+    return float(f"{value:.12g}")
+
+
 def margin_edges(threshold: float, distances: tuple[float, ...]) -> tuple[float, ...]:
     """Score edges of the margin bands around ``threshold`` (the same floats wherever they are needed)."""
-    below = [threshold - d for d in reversed(distances)]
-    return (*below, threshold, *(threshold + d for d in distances))
+    below = [written(threshold - d) for d in reversed(distances)]
+    return (*below, threshold, *(written(threshold + d) for d in distances))
 
 
 class Margin:
@@ -121,8 +127,8 @@ class Margin:
                         {
                             "score_low": band.low,
                             "score_high": band.high,
-                            "distance_from": None if near is None else abs(near - threshold),
-                            "distance_to": None if far is None else abs(far - threshold),
+                            "distance_from": None if near is None else written(abs(near - threshold)),
+                            "distance_to": None if far is None else written(abs(far - threshold)),
                             "correct": positive if side == "above" else negative,
                             "wrong": negative if side == "above" else positive,
                         }

@@ -56,7 +56,8 @@ def analyze_json(store: Path, study_id: str | None = None) -> dict[str, Any]:
     """What `federation analyze --json` prints for ``store`` (run once per store: the stores do not change)."""
     args = ["analyze", "--store", str(store), "--json"] + (["--study-id", study_id] if study_id else [])
     result = federation(*args)
-    assert result.returncode == 0, result.stderr
+    # 3: done, but some enrolled sites sent nothing (named on stderr under --json)
+    assert result.returncode == (3 if "no release yet from" in result.stderr else 0), result.stderr
     return json.loads(result.stdout)
 
 

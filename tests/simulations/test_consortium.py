@@ -14,7 +14,10 @@ from sklearn.metrics import roc_auc_score
 from simulations.consortium import (
     FEATURES,
     ITEMS,
+    LONG_ITEMS,
+    LONG_THRESHOLD,
     MIN_CELL_SIZE,
+    MODEL_FEATURES,
     SITES,
     SMALL_SITE_ID,
     THRESHOLD,
@@ -49,6 +52,10 @@ def _to_schema_terms(site: SiteFiles) -> pd.DataFrame:
     for name in FEATURES:
         spec = mapping.get("features", {}).get(name, {})
         text = local[spec.get("column", name)]
+        if name == "subtype":  # optional in the schema: a blank is scored as "none"
+            frame[name] = text.map(spec.get("codes", {})).where(~text.isin(missing), "none")
+            valid &= frame[name].notna()
+            continue
         valid &= ~text.isin(missing)
         if name == "sex":
             frame[name] = text.map(spec.get("codes", {}))
@@ -95,19 +102,24 @@ def test_layout_and_record_counts(consortium: Consortium) -> None:
         assert site.data_path == consortium.root / "sites" / site.site_id / "data.csv"
         assert len(pd.read_csv(site.data_path, dtype=str)) == site.n_records == SPECS[site.site_id].n_records
     development = pd.read_csv(consortium.development_path)
-    assert list(development.columns) == [*FEATURES, "outcome"]
+    assert list(development.columns) == [*LONG_ITEMS, "age_months", "sex", "subtype", "outcome"]
     assert len(development) == 3000 and not development.isna().any().any()
     low, high = _binomial_interval(3000, 0.30)
     assert low <= development["outcome"].sum() <= high
 
 
-def test_schema_lists_the_twelve_features_in_order(consortium: Consortium) -> None:
+def test_schema_lists_the_thirteen_features_in_order(consortium: Consortium) -> None:
     schema = tomllib.loads(consortium.schema_path.read_text(encoding="utf-8"))
     features = schema["features"]
     assert [f["name"] for f in features] == list(FEATURES)
     assert all((f["type"], f["min"], f["max"]) == ("int", 0, 3) for f in features[:10])
     assert (features[10]["type"], features[10]["min"], features[10]["max"]) == ("int", 0, 240)
     assert features[11]["categories"] == ["female", "male"]
+    assert features[12]["categories"] == ["none", "early_onset", "late_onset"]
+    assert (features[12]["required"], features[12]["missing"]) == (False, "none")
+    assert consortium.long_schema_path is not None
+    long_schema = tomllib.loads(consortium.long_schema_path.read_text(encoding="utf-8"))
+    assert [f["name"] for f in long_schema["features"]] == list(LONG_ITEMS)
 
 
 def test_prevalence_per_site_within_binomial_interval(consortium: Consortium) -> None:
@@ -181,8 +193,59 @@ def test_year_sites_round_trip_to_whole_months(consortium: Consortium) -> None:
 def test_development_model_discriminates_on_a_fresh_cohort(consortium: Consortium) -> None:
     model = train_demo_model(consortium.development_path)
     assert model.coef_.shape == (1, len(FEATURES))
+    assert model.coef_[0, len(MODEL_FEATURES)] == 0.0  # subtype is in the schema only to split results by
     fresh = generate_cohort(np.random.default_rng(12345), 3000, 0.30)
     scores = model.predict_proba(model_inputs(fresh))[:, 1]
     assert roc_auc_score(fresh["outcome"], scores) > 0.75
     again = train_demo_model(consortium.development_path)
     assert np.array_equal(model.coef_, again.coef_)
+
+
+def test_full_length_instrument_beats_the_short_form_on_a_fresh_cohort(consortium: Consortium) -> None:
+    """The long form's points rule (sum of all twenty answers >= LONG_THRESHOLD) discriminates better than the
+    short model, as a full-length instrument should; AUCs by scikit-learn's roc_auc_score."""
+    model = train_demo_model(consortium.development_path)
+    fresh = generate_cohort(np.random.default_rng(99), 3000, 0.30, extra=np.random.default_rng(100))
+    long_points = fresh[list(LONG_ITEMS)].sum(axis=1)
+    short_auc = roc_auc_score(fresh["outcome"], model.predict_proba(model_inputs(fresh))[:, 1])
+    long_auc = roc_auc_score(fresh["outcome"], long_points)
+    assert 0.02 < long_auc - short_auc < 0.1, (short_auc, long_auc)
+    called = long_points >= LONG_THRESHOLD
+    truth = fresh["outcome"] == 1
+    assert 0.7 < called[truth].mean() < 0.95 and 0.9 < (~called[~truth]).mean() < 0.99
+
+
+def test_second_references_and_subtype_as_each_site_writes_them(consortium: Consortium) -> None:
+    """Three sites carry a second instrument (blank for some), two a second rater on about a quarter of the
+    records; each full mapping names it as [reference2] with the site's own codes; the subtype is coded only
+    for participants with the condition."""
+    kinds = {}
+    for site in consortium.sites:
+        assert site.full_mapping_path is not None
+        full = tomllib.loads(site.full_mapping_path.read_text())
+        short = _read_mapping(site)
+        assert "reference2" not in short and "item_11" not in short.get("features", {})
+        local = pd.read_csv(site.data_path, dtype=str, keep_default_na=False)
+        for item in LONG_ITEMS:
+            assert full.get("features", {}).get(item, {}).get("column", item) in local.columns
+        subtype = local[short["features"]["subtype"]["column"]]
+        outcome = local[short["outcome"]["column"]]
+        coded = subtype.isin(short["features"]["subtype"]["codes"])
+        assert not coded[outcome.isin(short["outcome"]["negative"])].any(), site.site_id
+        assert coded[outcome.isin(short["outcome"]["positive"])].mean() == 1.0, site.site_id
+        kinds[site.site_id] = site.second_reference
+        if site.second_reference is None:
+            assert "reference2" not in full
+            continue
+        column = local[full["reference2"]["column"]]
+        assert full["reference2"]["positive"] == short["outcome"]["positive"]
+        known = column.isin(full["reference2"]["positive"] + full["reference2"]["negative"])
+        share = known.mean()
+        if site.second_reference == "rater":
+            assert 0.18 < share < 0.32, (site.site_id, share)
+        else:
+            assert 0.78 < share < 0.92, (site.site_id, share)
+        both = known & outcome.isin(short["outcome"]["positive"] + short["outcome"]["negative"])
+        same = (column[both].isin(full["reference2"]["positive"])) == (outcome[both].isin(short["outcome"]["positive"]))
+        assert 0.8 < same.mean() < 0.99, (site.site_id, same.mean())  # they mostly agree, not always
+    assert sorted(k for k in kinds.values() if k) == ["instrument"] * 3 + ["rater"] * 2

@@ -364,6 +364,7 @@ def test_overlapping_age_band_requests_end_to_end(tmp_path) -> None:  # noqa: AN
     frame = pd.DataFrame({item: rng.integers(0, 4, len(ages)) for item in ITEMS})
     frame["age_months"] = ages
     frame["sex"] = rng.choice(["female", "male"], len(ages))
+    frame["subtype"] = ""  # optional in the demo schema (scored as "none")
     frame["outcome"] = outcome
     data = tmp_path / "records.csv"
     frame[[*FEATURES, "outcome"]].to_csv(data, index=False)
