@@ -120,8 +120,9 @@ def _primary_extras(result: dict) -> list[str]:
     ratios = result.get("likelihood_ratios")
     if isinstance(ratios, dict):
         if "diagnostic_odds_ratio" in ratios:
+            model = POOLED_MODELS.get(str(ratios.get("from_model")), ratios.get("from_model"))
             lines.append(
-                f"from the bivariate summary point ({ratios.get('from_model')}): "
+                f"from the bivariate summary point ({model}): "
                 f"LR+ {_fmt(ratios.get('likelihood_ratio_positive'), 2)}, "
                 f"LR− {_fmt(ratios.get('likelihood_ratio_negative'), 2)}, "
                 f"DOR {_fmt(ratios.get('diagnostic_odds_ratio'), 1)}"
