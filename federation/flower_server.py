@@ -71,10 +71,12 @@ def run_round(grid: Grid, config: RoundConfig) -> list[SiteOutcome]:
     store = Store(config.store_path)
     try:
         while pending and time.monotonic() - start < config.deadline_s:
+            arrived = []
             for reply in grid.pull_messages(list(pending)):
                 node = pending.pop(reply.metadata.reply_to_message_id, None)
                 if node is not None:
-                    outcomes[node] = _record(store, node, reply)
+                    arrived.append((node, reply))
+            outcomes.update(_record_all(store, arrived))  # what one poll brought is stored in one transaction
             if pending:
                 time.sleep(config.poll_s)
     finally:
@@ -84,7 +86,27 @@ def run_round(grid: Grid, config: RoundConfig) -> list[SiteOutcome]:
     return [outcomes[node] for node in node_ids]
 
 
-def _record(store: Store, node: int, reply: Message) -> SiteOutcome:
+def _record_all(store: Store, arrived: list[tuple[int, Message]]) -> dict[int, SiteOutcome]:
+    """Classify the replies one poll brought; store their releases together (each checked on its own)."""
+    outcomes: dict[int, SiteOutcome] = {}
+    releases: list[tuple[int, str, bytes]] = []
+    for node, reply in arrived:
+        outcome = _record(node, reply)
+        if isinstance(outcome, SiteOutcome):
+            outcomes[node] = outcome
+        else:
+            releases.append((node, *outcome))
+    stored = store.ingest_each([(release, f"release from node {node}") for node, _, release in releases])
+    for (node, site_id, _), result in zip(releases, stored, strict=True):
+        if isinstance(result, ValidationToolError):
+            outcomes[node] = SiteOutcome(node, site_id, "rejected", str(result))
+        else:
+            outcomes[node] = SiteOutcome(node, site_id, "released")
+    return outcomes
+
+
+def _record(node: int, reply: Message) -> SiteOutcome | tuple[str, bytes]:
+    """The outcome a reply settles by itself, or (site id, release bytes) still to be stored."""
     if reply.has_error():
         return SiteOutcome(node, "", "unreachable", f"Flower error code {reply.error.code}")
     try:
@@ -99,11 +121,7 @@ def _record(store: Store, node: int, reply: Message) -> SiteOutcome:
     release = result.get("release")
     if not isinstance(release, bytes):
         return SiteOutcome(node, site_id, "rejected", "reply holds no release")
-    try:
-        store.ingest([(release, f"release from node {node}")])
-    except ValidationToolError as exc:
-        return SiteOutcome(node, site_id, "rejected", str(exc))
-    return SiteOutcome(node, site_id, "released")
+    return site_id, release
 
 
 def make_server_app(config: RoundConfig, on_done: Callable[[list[SiteOutcome]], None] | None = None) -> ServerApp:

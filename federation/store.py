@@ -171,6 +171,14 @@ class Store:
             rings[site_id] = KeyRing({key_id(key): key})
         return rings
 
+    def site_key(self, site_id: str) -> KeyRing | None:
+        """The enrolled key of one site (checking a release parses this one key, not every site's)."""
+        row = self._db.execute("SELECT public_key FROM sites WHERE site_id = ?", (site_id,)).fetchone()
+        if row is None:
+            return None
+        key = parse_public_key(row[0], f"store key of {site_id}")
+        return KeyRing({key_id(key): key})
+
     def sites(self) -> list[str]:
         return [r[0] for r in self._db.execute("SELECT site_id FROM sites ORDER BY site_id")]
 
@@ -178,7 +186,7 @@ class Store:
     def check_release(self, data: bytes, source: str) -> Release:
         """Everything ingest checks, without writing: structure, site key, request, bundle, duplicates."""
         release = Release.from_bytes(data, source)
-        ring = self.site_keys().get(release.site_id)
+        ring = self.site_key(release.site_id)
         if ring is None:
             raise IngestError(f"{source}: site {release.site_id!r} is not enrolled in this store")
         try:
@@ -225,6 +233,37 @@ class Store:
                 crash_point("coordinator:mid-ingest")  # inert unless MSV_CRASH_AT says so (crash-safety tests)
         return [release for release, _ in checked]
 
+    def ingest_each(self, documents: list[tuple[bytes, str]]) -> list[Release | ValidationToolError]:
+        """Check each document on its own and store every one that passes in one transaction (one disk sync).
+
+        The result holds, in order, the stored release or the reason it was refused. What a round collects
+        in one poll is stored this way: one site's bad release does not hold back the others.
+        """
+        seen: set[tuple[str, str]] = set()
+        results: list[Release | ValidationToolError] = []
+        accepted: list[tuple[Release, bytes]] = []
+        for data, source in documents:
+            try:
+                release = self.check_release(data, source)
+            except ValidationToolError as exc:
+                results.append(exc)
+                continue
+            pair = (release.request_id, release.site_id)
+            if pair in seen:
+                results.append(IngestError(f"{source}: the same site answers the same request twice in this batch"))
+                continue
+            seen.add(pair)
+            accepted.append((release, data))
+            results.append(release)
+        if accepted:
+            with self.transaction() as db:
+                for release, data in accepted:
+                    db.execute(
+                        "INSERT INTO releases VALUES (?, ?, ?, ?, ?, ?)",
+                        (sha256_hex(data), release.request_id, release.study_id, release.site_id, data, _now()),
+                    )
+        return results
+
     def releases(self, study_id: str) -> list[StoredRelease]:
         rows = self._db.execute(
             "SELECT document FROM releases WHERE study_id = ? ORDER BY site_id, ingested_at", (study_id,)
@@ -234,6 +273,13 @@ class Store:
     def answered(self, request_id: str) -> set[str]:
         rows = self._db.execute("SELECT site_id FROM releases WHERE request_id = ?", (request_id,))
         return {r[0] for r in rows}
+
+    def stored_releases_of(self, site_id: str) -> list[tuple[str, str]]:
+        """(release SHA-256, when it was stored) of every release from a site: what acknowledgements name."""
+        rows = self._db.execute(
+            "SELECT release_sha256, ingested_at FROM releases WHERE site_id = ? ORDER BY ingested_at, rowid", (site_id,)
+        )
+        return [(digest, when) for digest, when in rows]
 
     # --- node keys (online sites): node key <-> site id <-> release-signing key ------------------------
     def bind_node_key(self, site_id: str, node_key_sha256: str, node_public_key_pem: bytes, source: str) -> None:

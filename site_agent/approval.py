@@ -259,8 +259,14 @@ def hand_over(site: Site, held: Held) -> bytes:
 
 
 def record_sent(site: Site, release_bytes: bytes, via: str, path: Path | None = None) -> None:
-    """Ledger entry after a release was handed over (``via`` = ``file`` or ``flower``)."""
+    """Ledger entry after a release was handed over (``via`` = ``file`` or ``flower``).
+
+    Online (``flower``) the release is handed to the site's own node for delivery: the entry says so, and an
+    ``acknowledged`` entry follows once the coordinator's store is known to hold it.
+    """
     details: dict[str, Any] = {"release_sha256": sha256_hex(release_bytes), "via": via}
+    if via == "flower":
+        details["note"] = "handed to the local node (SuperNode) for delivery; not yet acknowledged by the coordinator"
     if path is not None:
         details["path"] = str(path)
     ledger.append(site.ledger_path, site.private_key(), "sent", details)

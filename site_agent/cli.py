@@ -38,13 +38,19 @@ def cmd_init(args: argparse.Namespace) -> int:
                 "private_key": str(root / "site.key"),
                 "public_key": str(root / "site.pub"),
                 "ledger": str(root / "ledger.jsonl"),
+                "node_private_key": str(root / "node.key"),
+                "node_public_key": str(root / "node.pub"),
+                "hand_over": [str(root / "site.pub"), str(root / "node.pub")],
             }
         )
         return 0
     print(f"created site folder {root} for site {site.site_id}")
     print(f"  policy and settings: {root / 'site.toml'} (review it with your ethics board)")
-    print(f"  release-signing key: {root / 'site.key'} (private) and {root / 'site.pub'} (give to the coordinator)")
+    print(f"  release-signing key: {root / 'site.key'} (private) and {root / 'site.pub'} (public)")
+    print(f"  node key (online):   {root / 'node.key'} (private) and {root / 'node.pub'} (public)")
     print(f"  ledger:              {root / 'ledger.jsonl'}")
+    print(f"hand over to the coordinator: {root / 'site.pub'} (every study) and {root / 'node.pub'} (online rounds)")
+    print("  the private keys site.key and node.key never leave this folder")
     return 0
 
 

@@ -1,8 +1,19 @@
 """Flower ClientApp: a thin adapter from a Flower message to :func:`site_agent.runner.run_request`.
 
-The message carries the request and the bundle as bytes; the reply carries the signed release as bytes,
-or a refusal reason: one of the fixed categories of docs/formats.md ("Refusals"), with the agent's own
-message only where it cannot depend on a record; never a path, an exception's type or text, or a value.
+Two message types:
+
+``query.validate``  the request and the bundle as bytes; the reply carries the signed release as bytes, or a
+                    refusal reason: one of the fixed categories of docs/formats.md ("Refusals"), with the
+                    agent's own message only where it cannot depend on a record; never a path, an
+                    exception's type or text, or a value.
+``query.ping``      a readiness check (:mod:`site_agent.readiness`): site folder, policy, keys, ledger, app
+                    allowlist and data source, without reading a record; the reply is a fixed set of fields
+                    whose reason never holds a path of the site's file system.
+
+Either message may carry the coordinator's **acknowledgements**: the SHA-256 of every release from this site
+that its store holds. Each one that names a release this site handed to its node and that the ledger does
+not yet record as acknowledged is written to the ledger (``acknowledged``), so the ledger tells a release
+handed to the local node (``sent``) from one the coordinator stored.
 
 Which site folder a node serves: ``node_config["site-dir"]`` in deployment
 (``flower-supernode --node-config 'site-dir="/srv/site"'``); in simulation the factory maps each virtual
@@ -11,6 +22,8 @@ node's ``partition-id`` to a site folder.
 
 from __future__ import annotations
 
+import os
+import sys
 from collections.abc import Sequence
 from pathlib import Path
 
@@ -19,12 +32,14 @@ from flwr.clientapp import ClientApp
 
 from federation.protocol import ValidationToolError
 
-from .approval import AwaitingApproval, record_sent
-from .config import load_site
-from .runner import run_request
+from .config import Site, load_site
+from .readiness import check_readiness, shareable
 
 ACTION = "validate"
+PING = "ping"
 MESSAGE_TYPE = f"query.{ACTION}"
+PING_MESSAGE_TYPE = f"query.{PING}"
+ACKNOWLEDGEMENTS = "acknowledgements"  # the record holding the coordinator's acknowledgements
 
 
 def _site_dir(context: Context, site_dirs: Sequence[Path] | None) -> Path:
@@ -35,12 +50,73 @@ def _site_dir(context: Context, site_dirs: Sequence[Path] | None) -> Path:
     raise ValidationToolError("this node has no site folder (set node config site-dir)")
 
 
+def record_acknowledgements(site: Site, message: Message) -> int:
+    """Write the coordinator's acknowledgements of this site's releases to the ledger; return how many are new.
+
+    An acknowledgement counts only for a release this site's ledger records as handed over; one naming any
+    other release is ignored (and said on the app runner's log), so nothing the coordinator sends can make
+    the ledger claim a delivery the site never made.
+    """
+    from . import ledger
+
+    record = message.content.config_records.get(ACKNOWLEDGEMENTS)
+    if record is None:
+        return 0
+    digests, stored = record.get("release_sha256", []), record.get("stored_at", [])
+    if not isinstance(digests, list) or not isinstance(stored, list) or len(digests) != len(stored):
+        print("acknowledgements: malformed record ignored", file=sys.stderr)
+        return 0
+    entries = ledger.read_entries(site.ledger_path)
+    released = {
+        e["details"].get("release_sha256"): e["details"]
+        for e in entries
+        if e.get("event") == "release" and isinstance(e.get("details"), dict)
+    }
+    handed = {e["details"].get("release_sha256") for e in entries if e.get("event") == "sent"}
+    done = {e["details"].get("release_sha256") for e in entries if e.get("event") == "acknowledged"}
+    new = 0
+    for digest, when in zip(digests, stored, strict=True):
+        if not isinstance(digest, str) or digest in done:
+            continue
+        if digest not in handed or digest not in released:
+            print(
+                f"acknowledgements: release {str(digest)[:12]} is not one this site handed over; ignored",
+                file=sys.stderr,
+            )
+            continue
+        details = released[digest]
+        ledger.append(
+            site.ledger_path,
+            site.private_key(),
+            "acknowledged",
+            {
+                "release_sha256": digest,
+                "study_id": details.get("study_id", ""),
+                "request_id": details.get("request_id", ""),
+                "stored_at": str(when)[:40],
+                "via": "flower",
+                "note": "the coordinator's store holds this release (acknowledged on a later message)",
+            },
+        )
+        done.add(digest)
+        new += 1
+    return new
+
+
+def _acknowledge(site: Site, message: Message) -> None:
+    try:
+        record_acknowledgements(site, message)
+    except Exception as exc:  # never let bookkeeping of an earlier release stop the answer to this message
+        print(f"acknowledgements: not recorded ({type(exc).__name__})", file=sys.stderr)
+
+
 def answer(message: Message, context: Context, site_dirs: Sequence[Path] | None = None) -> Message:
     """Answer one validation request; every outcome is a normal reply the coordinator can record."""
     try:
         site = load_site(_site_dir(context, site_dirs))
     except Exception:  # the site folder cannot be read: the site's IT sees why when it runs the agent locally
         return _reply(message, {"status": "refused", "reason": "internal error at the site", "site_id": ""})
+    _acknowledge(site, message)
     try:
         record = message.content.config_records["request"]
         request_bytes, bundle_bytes = record["request"], record["bundle"]
@@ -54,16 +130,36 @@ def answer(message: Message, context: Context, site_dirs: Sequence[Path] | None 
         return _reply(message, {"status": "refused", "reason": reason, "site_id": site.site_id})
     except ValidationToolError as exc:
         return _reply(message, {"status": "refused", "reason": f"request not accepted: {exc}", "site_id": site.site_id})
+    from .approval import AwaitingApproval, record_sent
+    from .runner import run_request  # pandas, pyarrow and scipy: only a validation message needs them
+
     try:
         outcome = run_request(site, request_bytes, bundle_bytes, compare_bundle_bytes=compare_bytes)
     except AwaitingApproval as exc:  # held at the site until a person approves it; nothing was sent
         return _reply(message, {"status": "held", "reason": str(exc), "site_id": site.site_id})
     except Exception as exc:  # recorded in the ledger by run_request, which sets the line that may travel
-        reason = getattr(exc, "refusal", "internal error at the site")
+        reason = shareable(getattr(exc, "refusal", "internal error at the site"), site.root)
         return _reply(message, {"status": "refused", "reason": reason, "site_id": site.site_id})
     reply = _reply(message, {"status": "released", "release": outcome.release_bytes, "site_id": site.site_id})
-    record_sent(site, outcome.release_bytes, "flower")  # handed to the node for delivery
+    record_sent(site, outcome.release_bytes, "flower")  # handed to the local node; acknowledged on a later message
     return reply
+
+
+def readiness(message: Message, context: Context, site_dirs: Sequence[Path] | None = None) -> Message:
+    """Answer a readiness check (``federation run --ping``) with a fixed set of fields; no record is read."""
+    from .launcher import CHECKED_BUNDLE_ENV
+
+    try:
+        root: Path | None = _site_dir(context, site_dirs)
+    except ValidationToolError:
+        root = None
+    result = check_readiness(root, os.environ.get(CHECKED_BUNDLE_ENV))
+    if result.site_id and root is not None:
+        try:
+            _acknowledge(load_site(root), message)
+        except ValidationToolError:
+            pass
+    return _reply(message, result.fields())
 
 
 def _reply(message: Message, fields: dict) -> Message:
@@ -76,6 +172,10 @@ def make_client_app(site_dirs: Sequence[Path] | None = None) -> ClientApp:
     @client.query(ACTION)
     def validate(message: Message, context: Context) -> Message:
         return answer(message, context, site_dirs)
+
+    @client.query(PING)
+    def ping(message: Message, context: Context) -> Message:
+        return readiness(message, context, site_dirs)
 
     return client
 

@@ -36,6 +36,9 @@ from federation.protocol import PolicyViolation
 from . import ledger
 from .config import load_site
 
+# Set in this process once the launcher has verified the bundle: the ClientApp's readiness check reports it.
+CHECKED_BUNDLE_ENV = "SITE_AGENT_APP_BUNDLE_SHA256"
+
 
 class AppBundleRefused(PolicyViolation):
     """The coordinator's app bundle is not one this site listed in ``[app] allowed_fab_sha256``."""
@@ -88,7 +91,7 @@ def main(argv: Sequence[str] | None = None) -> None:
 
     def install_checked(fab_file: Path | bytes, *more: object, **options: object) -> Path:
         content = fab_file.read_bytes() if isinstance(fab_file, Path) else fab_file
-        check_app_bundle(site_dir, content)
+        os.environ[CHECKED_BUNDLE_ENV] = check_app_bundle(site_dir, content)
         return flower_install(content, *more, **options)
 
     runtime.install_from_fab = install_checked

@@ -16,7 +16,10 @@ Events:
 ``approval``          a person approved a held release (who, when, the SHA-256 they approved)
 ``rejection``         a person rejected a held release (who, when, why)
 ``release``           a release is about to leave (full text and the audit facts of what it shows and hides)
-``sent``              the release was handed over (``via``: ``file`` with its path, or ``flower``)
+``sent``              the release was handed over (``via``: ``file`` with its path, or ``flower``: handed to
+                      the local node (SuperNode) for delivery, which does not yet say it arrived)
+``acknowledged``      the coordinator's store holds the release (online: its acknowledgement, by the release's
+                      SHA-256, arrived with a later message and names a release this ledger records as sent)
 
 A ``release`` without a later ``sent`` for the same SHA-256 means the agent stopped between recording and
 handing over (a crash or an interrupted command): the release may or may not have reached the coordinator.
@@ -43,7 +46,7 @@ if TYPE_CHECKING:  # audit imports scipy; the site-agent's --help and ledger com
 
 
 GENESIS = "0" * 64
-EVENTS = ("request_received", "refusal", "held", "approval", "rejection", "release", "sent")
+EVENTS = ("request_received", "refusal", "held", "approval", "rejection", "release", "sent", "acknowledged")
 HELD_EVENTS = ("held", "preview")  # "preview": the same event in older ledgers
 _FIELDS = ("seq", "time", "event", "details", "prev")
 
@@ -320,8 +323,15 @@ def summary(entry: dict[str, Any]) -> str:
     if event == "rejection":
         return f"{_held_id(details)} rejected by {details.get('by')}: {details.get('reason')}"
     if event == "sent":
+        if details.get("via") == "flower":
+            return f"release {str(details.get('release_sha256', ''))[:12]} handed to the local node for delivery"
         where = details.get("path") or details.get("via")
         return f"release {str(details.get('release_sha256', ''))[:12]} handed over via {where}"
+    if event == "acknowledged":
+        return (
+            f"release {str(details.get('release_sha256', ''))[:12]} stored by the coordinator "
+            f"(acknowledged; stored at {details.get('stored_at')})"
+        )
     if event == "refusal":
         return f"refused: {details.get('reason')}"
     return json.dumps(short, sort_keys=True)

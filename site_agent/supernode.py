@@ -14,8 +14,11 @@
   Flower's exit code 305 after a SuperLink restart, with a growing pause between attempts.
 
 Flower reports its reason for exiting as ``Exit Code: NNN`` in its log (the process status is just 1),
-so the supervisor reads the SuperNode's log to tell a configuration error (stop) from a lost
-connection (restart).
+and the cause only in the lines after it, so the supervisor reads the SuperNode's log as it is written:
+it says each connection retry as it happens, says when the node is connected, and, when the SuperNode
+exits, says the cause in one line (:func:`diagnose`): a certificate problem stops ``join`` (retrying cannot
+fix it); a node key the SuperLink does not accept (not registered yet, or still held by the node's earlier
+connection after a SuperLink restart) restarts it with a growing pause.
 """
 
 from __future__ import annotations
@@ -51,6 +54,9 @@ EXIT_TLS_REQUIRED = 303
 EXIT_CONNECTION = 305
 DO_NOT_RESTART = {EXIT_NODE_KEY_INVALID: "the node key cannot be read", EXIT_TLS_REQUIRED: "TLS is required"}
 _EXIT_CODE = re.compile(r"Exit Code: (\d+)")
+_RETRY = re.compile(r"Connection attempt failed, retrying in ([\d.]+) seconds")
+_CONNECTED = re.compile(r"SuperNode ID: (\d+)")
+_ACTIVATION_FAILED = "[code: 2004]"  # Flower's FLEET_NODE_ACTIVATION_FAILED, as the SuperNode logs it
 
 QUIET_FLOWER = {"FLWR_TELEMETRY_ENABLED": "0", "FLWR_DISABLE_UPDATE_CHECK": "1"}
 
@@ -77,6 +83,18 @@ def write_node_key(site_dir: Path) -> tuple[Path, Path]:
     return private_path, public_path
 
 
+def _node_key_fingerprint(path: Path) -> str:
+    """SHA-256 of the node key's DER form: the fingerprint `federation enrol` prints (never the key itself)."""
+    import hashlib
+
+    try:
+        key = serialization.load_ssh_public_key(path.read_bytes().strip())
+    except (OSError, ValueError):
+        return ""
+    der = key.public_bytes(serialization.Encoding.DER, serialization.PublicFormat.SubjectPublicKeyInfo)
+    return hashlib.sha256(der).hexdigest()
+
+
 def _die_with_parent() -> None:  # pragma: no cover - runs in the child between fork and exec
     """Linux: have the kernel send SIGTERM to this child when the supervisor dies, even by SIGKILL."""
     if sys.platform.startswith("linux"):
@@ -96,6 +114,74 @@ def flower_exit_code(log_text: str) -> int | None:
     """The last ``Exit Code: NNN`` Flower wrote, if any."""
     found = _EXIT_CODE.findall(log_text)
     return int(found[-1]) if found else None
+
+
+@dataclass(frozen=True)
+class ExitCause:
+    """Why the SuperNode exited, for one line at the terminal; ``stop``: restarting cannot help."""
+
+    code: int | None
+    cause: str
+    stop: bool
+
+
+def diagnose(
+    log_text: str, superlink: str, root_certificates: Path | None, connected_before: bool, node_key_sha256: str = ""
+) -> ExitCause:
+    """Read the cause of a SuperNode exit from the log it wrote since it started.
+
+    Flower 1.42 exits with code 305 for every connection failure and writes the cause after the code: a TLS
+    verification error (``CERTIFICATE_VERIFY_FAILED``), or the SuperLink refusing to activate the node
+    (``[code: 2004]``, both for a key it does not know and for a node whose earlier connection it still
+    holds, e.g. just after a SuperLink restart).
+    """
+    code = flower_exit_code(log_text)
+    tail = log_text.split("Exit Code:", 1)[-1] if code is not None else log_text
+    key = f" (node key sha256 {node_key_sha256[:16]})" if node_key_sha256 else ""
+    if code in DO_NOT_RESTART:
+        return ExitCause(code, f"{DO_NOT_RESTART[code]} (Flower exit code {code})", True)
+    if "CERTIFICATE_VERIFY_FAILED" in tail:
+        if "mismatch" in tail.lower():
+            return ExitCause(
+                code,
+                f"TLS: the SuperLink's certificate does not name {superlink.rsplit(':', 1)[0]}; dial a name it lists, "
+                "or ask the coordinator to re-issue it with `federation certs new --name`",
+                True,
+            )
+        if root_certificates is None:
+            return ExitCause(
+                code,
+                "TLS: no root certificate was given and the system's trust store does not know the SuperLink's "
+                "CA; pass --root-certificates with the coordinator's ca.crt",
+                True,
+            )
+        return ExitCause(
+            code,
+            f"TLS: the SuperLink's certificate is not signed by the CA in {root_certificates} (a certificate from "
+            "another CA); ask the coordinator for the ca.crt of this study",
+            True,
+        )
+    if "SSL" in tail and "handshake" in log_text.lower():
+        return ExitCause(code, "TLS: the handshake with the SuperLink failed (is it a TLS endpoint?)", True)
+    if _ACTIVATION_FAILED in tail:
+        if connected_before:
+            return ExitCause(
+                code,
+                "the SuperLink could not activate this node again: it still holds the node's earlier connection "
+                "(after a SuperLink restart it lets go within about a minute)",
+                False,
+            )
+        return ExitCause(
+            code,
+            f"the SuperLink does not accept this node key{key}: not registered yet (ask the coordinator to run "
+            "`federation enrol --node-key` with this site's node.pub), or still held by an earlier connection",
+            False,
+        )
+    if code == EXIT_CONNECTION:
+        return ExitCause(code, f"lost the connection to the SuperLink at {superlink} (Flower exit code 305)", False)
+    if code is not None:
+        return ExitCause(code, f"the SuperNode exited (Flower exit code {code})", False)
+    return ExitCause(None, "the SuperNode exited without saying why (see runtime/supernode.log)", False)
 
 
 @dataclass
@@ -132,7 +218,13 @@ class SiteNode:
         self.app_runner: subprocess.Popen[bytes] | None = None
         self.starts = 0
         self.last_exit_code: int | None = None
+        self.last_cause: ExitCause | None = None
+        self.connected_once = False  # this node was activated at least once since `join` started
         self._stopping = threading.Event()
+        self._log_offset = 0
+        self._read_offset = 0
+        self._retries = 0
+        self.node_key_sha256 = _node_key_fingerprint(self.site_dir / NODE_PUBLIC_KEY)
 
     # --- files the processes use --------------------------------------------------------------------
     def _prepare_runtime(self) -> None:
@@ -197,7 +289,8 @@ class SiteNode:
         port = self.settings.runtime_port or free_port()
         env = self._environment()
         log = open(self.runtime / "supernode.log", "ab")  # noqa: SIM115 - handed to the child
-        self._log_offset = log.tell()
+        self._log_offset = self._read_offset = log.tell()
+        self._retries = 0
         self.supernode = subprocess.Popen(
             self.supernode_command(port),
             stdout=log,
@@ -242,13 +335,42 @@ class SiteNode:
                 process.kill()
                 process.wait(timeout=grace_s)
 
-    def _exit_reason(self) -> int | None:
+    def _since_start(self) -> str:
         try:
             with open(self.runtime / "supernode.log", "rb") as handle:
                 handle.seek(self._log_offset)
-                return flower_exit_code(handle.read().decode("utf-8", errors="replace"))
+                return handle.read().decode("utf-8", errors="replace")
         except OSError:
-            return None
+            return ""
+
+    def _exit_reason(self) -> int | None:
+        return flower_exit_code(self._since_start())
+
+    def _follow_log(self) -> None:
+        """Say what the SuperNode's log says as it happens: connection retries, and when the node is connected."""
+        try:
+            with open(self.runtime / "supernode.log", "rb") as handle:
+                handle.seek(self._read_offset)
+                data = handle.read()
+        except OSError:
+            return
+        end = data.rfind(b"\n")
+        if end < 0:
+            return
+        self._read_offset += end + 1
+        for line in data[: end + 1].decode("utf-8", errors="replace").splitlines():
+            retry = _RETRY.search(line)
+            if retry:
+                self._retries += 1
+                self.say(
+                    f"site {self.site.site_id}: cannot reach the SuperLink at {self.settings.superlink} "
+                    f"(attempt {self._retries}); Flower retries in {float(retry.group(1)):.1f} s"
+                )
+                continue
+            connected = _CONNECTED.search(line)
+            if connected:
+                self.connected_once = True
+                self.say(f"site {self.site.site_id}: connected to the SuperLink as node {connected.group(1)}")
 
     # --- supervision ----------------------------------------------------------------------------------
     def stop(self) -> None:
@@ -268,32 +390,30 @@ class SiteNode:
                     f"app runner pid {self.app_runner.pid if self.app_runner else '-'}"
                 )
                 while self.supernode.poll() is None and not self._stopping.is_set():
+                    self._follow_log()
                     self._stopping.wait(0.2)
+                self._follow_log()
                 if self._stopping.is_set():
                     break
                 self._stop_processes()
-                code = self._exit_reason()
-                self.last_exit_code = code
-                if code in DO_NOT_RESTART:
-                    self.say(
-                        f"site {self.site.site_id}: SuperNode stopped (Flower exit code {code}: "
-                        f"{DO_NOT_RESTART[code]}); not restarting"
-                    )
+                cause = diagnose(
+                    self._since_start(),
+                    self.settings.superlink,
+                    self.settings.root_certificates,
+                    self.connected_once,
+                    self.node_key_sha256,
+                )
+                self.last_exit_code, self.last_cause = cause.code, cause
+                if cause.stop:
+                    self.say(f"site {self.site.site_id}: {cause.cause}; not retrying (fix this, then join again)")
                     return EXIT_REFUSED
-                if code == EXIT_CONNECTION:
-                    why = (
-                        "the SuperLink refused or lost this node (exit code 305: after a SuperLink restart, "
-                        "or the node key is not registered: ask the coordinator to run "
-                        "`federation enrol --node-key`)"
-                    )
-                else:
-                    why = f"the SuperNode exited (Flower exit code {code})" if code else "the SuperNode exited"
+                why = cause.cause
                 if self.settings.max_restarts is not None and restarts >= self.settings.max_restarts:
                     self.say(f"site {self.site.site_id}: {why}; no restarts left")
                     return EXIT_OFFLINE  # 4: the node could not stay online (3 means a release is held)
                 if time.monotonic() - started_at > 60:
                     pause = self.settings.first_pause_s  # it ran fine for a while: start the back-off afresh
-                self.say(f"site {self.site.site_id}: {why}; restarting in {pause:.0f} s")
+                self.say(f"site {self.site.site_id}: {why}; retry {restarts + 1} in {pause:.0f} s")
                 restarts += 1
                 if self._stopping.wait(pause):
                     break

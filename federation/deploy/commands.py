@@ -98,6 +98,12 @@ def cmd_run(args: argparse.Namespace) -> int:
         outcome = run_study(options, say)
     if args.json:
         print(json.dumps(outcome.to_dict(), indent=2))
+    elif options.kind == PING:
+        asked = len(outcome.sites)
+        print(f"readiness check {outcome.round_id[:8] or '-'}: {outcome.state}; {outcome.ready} of {asked} sites ready")
+        for site, info in sorted(outcome.sites.items()):
+            if info["status"] != "ready":
+                print(f"  {site}: {info['status']}" + (f" ({info['reason']})" if info["reason"] else ""))
     else:
         summary = f"{outcome.state}; {outcome.released} sites released ({outcome.note})"
         print(f"round {outcome.round_id[:8] or '-'}: {summary}")
@@ -166,6 +172,11 @@ def add_deploy_commands(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--min-sites", type=int, help="quorum: sites that must release (default: every enrolled site)")
     p.add_argument("--deadline", type=float, default=600.0, help="seconds the round may take (default 600)")
     p.add_argument("--resume", action="store_true", help="continue the request: ask only sites that have not released")
-    p.add_argument("--ping", action="store_true", help="send a trivial query instead (measures Flower's round floor)")
+    p.add_argument(
+        "--ping",
+        action="store_true",
+        help="readiness check instead: each site checks its folder, policy, keys, ledger, app allowlist and data "
+        "source without reading a record; nothing is released (exit 0 all ready, 3 some not)",
+    )
     p.add_argument("--json", action="store_true", help="print the outcome as JSON on stdout")
     p.set_defaults(handler=cmd_run)

@@ -10,8 +10,17 @@ request is a *target*. The round
 3. collects replies by message id and records each site in the store as it happens: ``released``
    (the release was ingested), ``held`` (held at the site for a person's approval; ``--resume`` asks
    again), ``refused`` (the site's reason), ``rejected`` (the coordinator refused the release: wrong key,
-   wrong site for this node, replay), or, at the deadline, ``unreachable``;
+   wrong site for this node, replay), or, at the deadline, ``unreachable`` (never connected, or no reply)
+   or ``not asked`` (connected, but the round ended before it was asked: no quorum);
 4. never waits past the deadline.
+
+A readiness check (``federation run --ping``, kind ``ping``) goes the same way with a ``query.ping``
+message; each site is recorded ``ready``, or ``failed`` with the category of the first failed check (an
+error reply, such as the site's launcher refusing an app bundle it has not listed, is a failure, never an
+answer). A readiness check stores no release and never counts as one.
+
+Every message to a site carries the coordinator's acknowledgements: the SHA-256 of every release from that
+site the store holds, which the site writes to its ledger (``acknowledged``) the next time it is asked.
 
 Because every outcome is written when it happens, a round cut short (SuperLink stopped, run stopped)
 leaves an exact record; ``federation run --resume`` starts a new round for the same request that asks
@@ -35,11 +44,21 @@ from federation.store import Store
 
 from .nodes import fingerprint_of_reported
 
+ACKNOWLEDGEMENTS = "acknowledgements"  # the record site_agent.flower_client reads
+
 VALIDATE = "validate"
 PING = "ping"  # a trivial query: measures Flower's own round floor on the same deployment
 MESSAGE_TYPES = {VALIDATE: "query.validate", PING: "query.ping"}
 # Final within a round; ``held`` (held for a person's approval at the site) is asked again by --resume.
-FINAL = {"released", "refused", "rejected", "held", "answered"}
+FINAL = {"released", "refused", "rejected", "held", "ready", "failed"}
+NOT_ASKED = "not asked"
+# Flower's error replies to a readiness check, by the category a person on call looks at first.
+_PING_ERRORS = {
+    int(ErrorCode.CLIENT_APP_RAISED_EXCEPTION): "app runner",
+    int(ErrorCode.INVALID_FAB): "app allowlist",
+    int(ErrorCode.LOAD_CLIENT_APP_EXCEPTION): "app start",
+}
+_CLIENTAPP_CLASS = re.compile(r"^<class '([\w.]+)'>")
 RETRY_CODES = {ErrorCode.NODE_UNAVAILABLE, ErrorCode.MESSAGE_UNAVAILABLE, ErrorCode.CLIENT_APP_CRASHED}
 _CLIENTAPP_REASON = re.compile(r"^<class '[\w.]+'>:<'(.*)'>$", re.DOTALL)
 
@@ -75,6 +94,7 @@ class _Target:
     status: str = "waiting"
     node_id: int | None = None
     retry: bool = False
+    seen_online: bool = False
 
 
 @dataclass
@@ -138,7 +158,8 @@ class DeployedRound:
         return online
 
     def _released_total(self) -> int:
-        return self.released_before + sum(t.status in ("released", "answered") for t in self.targets.values())
+        done = "ready" if self.settings.kind == PING else "released"
+        return self.released_before + sum(t.status == done for t in self.targets.values())
 
     # --- the round --------------------------------------------------------------------------------------
     def run(self) -> RoundResult:
@@ -153,6 +174,8 @@ class DeployedRound:
         self.store.set_round(settings.round_id, "waiting", f"waiting for {settings.min_sites} sites")
         while True:
             online = self._online()
+            for target in self.targets.values():
+                target.seen_online = target.seen_online or target.fingerprint in online
             connected = sum(t.fingerprint in online for t in self.targets.values())
             if self.released_before + connected >= settings.min_sites or not self.targets:
                 break
@@ -180,11 +203,12 @@ class DeployedRound:
             if target.status == "sent" or (target.status == "unreachable" and not target.retry):
                 continue
             target.node_id = online[target.fingerprint]
+            target.seen_online = True
             batch.append(target)
         if not batch:
             return
         ttl = max(1.0, end - time.monotonic())
-        messages = [Message(self._content(), dst_node_id=t.node_id, message_type=self._type(), ttl=ttl) for t in batch]
+        messages = [Message(self._content(t), dst_node_id=t.node_id, message_type=self._type(), ttl=ttl) for t in batch]
         for target, message_id in zip(batch, self.grid.push_messages(messages), strict=True):
             if not message_id:
                 self._set(target, "unreachable", "message could not be queued at the SuperLink")
@@ -194,13 +218,21 @@ class DeployedRound:
             self.by_message[message_id] = target
             self._set(target, "sent", f"sent to node {target.node_id}", sent=True)
 
-    def _content(self) -> RecordDict:
+    def _content(self, target: _Target) -> RecordDict:
+        records: dict[str, ConfigRecord] = {}
         if self.settings.kind == PING:
-            return RecordDict({"ping": ConfigRecord({"round": self.settings.round_id})})
-        fields = {"request": self.request_bytes, "bundle": self.bundle_bytes}
-        if self.compare_bundle_bytes is not None:
-            fields["compare_bundle"] = self.compare_bundle_bytes
-        return RecordDict({"request": ConfigRecord(fields)})
+            records["ping"] = ConfigRecord({"round": self.settings.round_id})
+        else:
+            fields = {"request": self.request_bytes, "bundle": self.bundle_bytes}
+            if self.compare_bundle_bytes is not None:
+                fields["compare_bundle"] = self.compare_bundle_bytes
+            records["request"] = ConfigRecord(fields)
+        stored = self.store.stored_releases_of(target.site_id)
+        if stored:
+            records[ACKNOWLEDGEMENTS] = ConfigRecord(
+                {"release_sha256": [d for d, _ in stored], "stored_at": [w for _, w in stored]}
+            )
+        return RecordDict(records)
 
     def _type(self) -> str:
         return MESSAGE_TYPES[self.settings.kind]
@@ -208,16 +240,28 @@ class DeployedRound:
     def _collect(self) -> None:
         if not self.by_message:
             return
+        to_store: list[tuple[_Target, bytes]] = []
         for reply in self.grid.pull_messages(list(self.by_message)):
             target = self.by_message.pop(reply.metadata.reply_to_message_id, None)
             if target is not None:
-                self._classify(target, reply)
-
-    def _classify(self, target: _Target, reply: Message) -> None:
-        if self.settings.kind == PING:
-            # The floor round: any answer from the node's ClientApp process counts, error or not.
-            self._set(target, "answered")
+                release = self._classify(target, reply)
+                if release is not None:
+                    to_store.append((target, release))
+        if not to_store:
             return
+        # What one poll brought is stored in one transaction (one disk sync), each release checked on its own.
+        documents = [(r, f"release from node {t.node_id} (site {t.site_id})") for t, r in to_store]
+        for (target, _), result in zip(to_store, self.store.ingest_each(documents), strict=True):
+            if isinstance(result, ValidationToolError):
+                self._set(target, "rejected", str(result))
+            else:
+                self._set(target, "released")
+
+    def _classify(self, target: _Target, reply: Message) -> bytes | None:
+        """Record what a reply settles by itself; return a release that passed the node binding, to store."""
+        if self.settings.kind == PING:
+            self._classify_readiness(target, reply)
+            return None
         if reply.has_error():
             code, reason = int(reply.error.code), clientapp_reason(str(reply.error.reason))
             if code in RETRY_CODES:
@@ -232,36 +276,59 @@ class DeployedRound:
             else:
                 target.retry = True
                 self._set(target, "unreachable", f"Flower error code {code}")
-            return
+            return None
         try:
             result = reply.content.config_records["result"]
         except KeyError:
             self._set(target, "rejected", "the reply holds no result")
-            return
+            return None
         if result.get("status") in ("held", "pending"):  # "pending": what older site agents send
             self._set(target, "held", str(result.get("reason", ""))[:500] or "held for approval at the site")
-            return
+            return None
         if result.get("status") != "released":
             self._set(target, "refused", str(result.get("reason", ""))[:500] or "refused without a reason")
-            return
+            return None
         release = result.get("release")
         if not isinstance(release, bytes):
             self._set(target, "rejected", "the reply holds no release")
-            return
+            return None
         problem = check_release_binding(release, target.site_id, int(target.node_id or 0))
         if problem:
             self._set(target, "rejected", problem)
+            return None
+        return release
+
+    def _classify_readiness(self, target: _Target, reply: Message) -> None:
+        """``ready``, or ``failed`` with the category of what failed; Flower's delivery errors are retried."""
+        if reply.has_error():
+            code, raw = int(reply.error.code), str(reply.error.reason)
+            if code in RETRY_CODES:
+                target.retry = True
+                self._set(target, "unreachable", f"Flower error code {code}; will retry while the deadline allows")
+                return
+            found = _CLIENTAPP_CLASS.match(raw.strip())
+            category = _PING_ERRORS.get(code, "app runner")
+            if found and found.group(1).rsplit(".", 1)[-1] == "AppBundleRefused":
+                category = "app allowlist"
+            reason = clientapp_reason(raw) or f"Flower error code {code}"
+            self._set(target, "failed", f"{category}: {reason}"[:500])
             return
-        try:
-            self.store.ingest([(release, f"release from node {target.node_id} (site {target.site_id})")])
-        except ValidationToolError as exc:
-            self._set(target, "rejected", str(exc))
+        result = reply.content.config_records.get("result")
+        if result is None or result.get("kind") != "readiness":
+            self._set(target, "failed", "app runner: the reply holds no readiness result (an older site agent?)")
             return
-        self._set(target, "released")
+        if result.get("status") == "ready":
+            self._set(target, "ready", "checked: " + ", ".join(str(c) for c in result.get("checks", [])))
+            return
+        reason = str(result.get("reason", "")) or f"{result.get('category', 'site')}: not ready"
+        self._set(target, "failed", reason[:500])
 
     def _finish(self, note: str) -> RoundResult:
         for target in self.targets.values():
             if target.status in FINAL:
+                continue
+            if target.status == "waiting" and target.seen_online:
+                self._set(target, NOT_ASKED, "connected, but the round ended before it was asked")
                 continue
             reason = (
                 "no reply before the deadline"
@@ -272,9 +339,12 @@ class DeployedRound:
             )
             self._set(target, "unreachable", reason)
         total = self._released_total()
-        state = "complete" if total >= self.settings.min_sites else "no-quorum"
+        # A readiness check is complete when enough sites answered it, ready or not (exit 3 says some are not).
+        reached = sum(t.status in FINAL for t in self.targets.values()) if self.settings.kind == PING else total
+        state = "complete" if reached >= self.settings.min_sites else "no-quorum"
         if not note:
-            note = f"{total} released of {self.released_before + len(self.targets)} bound sites"
+            verb = "ready" if self.settings.kind == PING else "released"
+            note = f"{total} {verb} of {self.released_before + len(self.targets)} bound sites"
         self.store.set_round(self.settings.round_id, state, note)
         return RoundResult(state, total, {t.site_id: t.status for t in self.targets.values()})
 

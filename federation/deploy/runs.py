@@ -25,6 +25,9 @@ from .rounds import PING, VALIDATE
 from .superlink import LinkSettings, SuperLinkError, register_node, registered_nodes, run_status, stop_run, submit_run
 
 LIVE_STATES = {"submitted", "waiting", "running"}
+# How a round is stored: a readiness check is never a release round (``--resume`` and the one-round-per-request
+# rule look at validation rounds only).
+STORED_KIND = {VALIDATE: VALIDATE, PING: "readiness"}
 START_ALLOWANCE_S = 120.0  # how long the SuperLink may take to start the ServerApp before we give up
 
 
@@ -60,19 +63,31 @@ class RunOutcome:
     released_before: int = 0
     wall_s: float = 0.0
 
+    kind: str = VALIDATE
+
     @property
     def released(self) -> int:
-        return self.released_before + sum(s["status"] in ("released", "answered") for s in self.sites.values())
+        """Sites that released (a readiness check releases nothing: 0)."""
+        if self.kind == PING:
+            return 0
+        return self.released_before + sum(s["status"] == "released" for s in self.sites.values())
+
+    @property
+    def ready(self) -> int:
+        """Sites a readiness check found ready (0 for a validation round)."""
+        return sum(s["status"] == "ready" for s in self.sites.values()) if self.kind == PING else 0
 
     def to_dict(self) -> dict:
         return {
             "round_id": self.round_id,
+            "kind": STORED_KIND[self.kind],
             "run_id": self.run_id,
             "request_id": self.request_id,
             "state": self.state,
             "note": self.note,
             "released_before": self.released_before,
             "released": self.released,
+            **({"ready": self.ready} if self.kind == PING else {}),
             "wall_s": round(self.wall_s, 3),
             "sites": self.sites,
         }
@@ -109,8 +124,10 @@ def _close_earlier_rounds(store: Store, link: LinkSettings, request_id: str, say
 
 def _mark_cut_short(store: Store, round_id: str, state: str, note: str) -> None:
     for site, row in store.round_sites(round_id).items():
-        if row["status"] in ("waiting", "sent"):
+        if row["status"] == "sent":
             store.set_round_site(round_id, site, "unreachable", f"round {state}: {note}")
+        elif row["status"] == "waiting":
+            store.set_round_site(round_id, site, "not asked", f"round {state} before it was asked: {note}")
     store.set_round(round_id, state, note)
 
 
@@ -163,7 +180,7 @@ def run_study(options: RunOptions, say: Callable[[str], None] = print) -> RunOut
         _sync_registrations(store, link, say)
         bundle = build_app_bundle()
         round_id = uuid.uuid4().hex
-        store.start_round(round_id, request.request_id, options.kind, min_sites, options.deadline_s)
+        store.start_round(round_id, request.request_id, STORED_KIND[options.kind], min_sites, options.deadline_s)
         run_config: dict[str, str | int | float | bool] = {
             "study-dir": str(study),
             "round-id": round_id,
@@ -172,18 +189,26 @@ def run_study(options: RunOptions, say: Callable[[str], None] = print) -> RunOut
             "deadline-s": float(options.deadline_s),
             "poll-s": float(options.poll_s),
         }
-        say(
-            f"round {round_id[:8]}: request {request.request_id} to {len(targets)} sites "
-            f"({len(released)} released earlier), quorum {min_sites}, deadline {options.deadline_s:g} s, "
-            f"app bundle sha256 {bundle.sha256}"
-        )
+        if options.kind == PING:
+            say(
+                f"readiness check {round_id[:8]}: {len(targets)} sites, deadline {options.deadline_s:g} s, "
+                f"app bundle sha256 {bundle.sha256} (nothing is computed or released)"
+            )
+        else:
+            say(
+                f"round {round_id[:8]}: request {request.request_id} to {len(targets)} sites "
+                f"({len(released)} released earlier), quorum {min_sites}, deadline {options.deadline_s:g} s, "
+                f"app bundle sha256 {bundle.sha256}"
+            )
         try:
             run_id = submit_run(link, bundle, run_config)
         except SuperLinkError:
             _mark_cut_short(store, round_id, "interrupted", "the SuperLink did not accept the run")
             raise
         store.set_round(round_id, None, None, run_id=run_id)  # the ServerApp may already have moved on
-        outcome = RunOutcome(round_id, run_id, request.request_id, "submitted", "", {}, len(released))
+        outcome = RunOutcome(
+            round_id, run_id, request.request_id, "submitted", "", {}, len(released), kind=options.kind
+        )
         try:
             _follow(store, link, outcome, options, say)
         except KeyboardInterrupt:
@@ -260,9 +285,11 @@ def _cut_short(store: Store, link: LinkSettings, outcome: RunOutcome, why: str, 
 
 
 def exit_status(outcome: RunOutcome) -> int:
-    """0: every asked site released; 3: quorum reached without some sites; RoundError otherwise."""
+    """0: every asked site released (or, for a readiness check, is ready); 3: quorum reached without some sites;
+    RoundError otherwise."""
     if outcome.state == "complete":
-        missing = [s for s, info in outcome.sites.items() if info["status"] not in ("released", "answered")]
+        done = "ready" if outcome.kind == PING else "released"
+        missing = [s for s, info in outcome.sites.items() if info["status"] != done]
         return 3 if missing else 0
     raise RoundError(
         f"round {outcome.round_id[:8]} {outcome.state}: {outcome.note}; continue with `federation run --resume`"

@@ -5,7 +5,9 @@ submission and node registration (no login in the open-source SuperLink), and ``
 ServerApp process. Only ``/v1/fleet/`` should be reachable by sites (docs/deployment.md).
 
 ``federation serve`` writes ``STUDY/superlink/superlink.toml`` (address and CA certificate) for the other
-commands, then replaces itself with ``flower-superlink``, so the process a service manager (or a test)
+commands, then replaces itself with the SuperLink (:mod:`federation.deploy.link_process`: Flower's
+``flower-superlink`` in the same process, which also registers the study's enrolled node keys once it
+listens and names node keys by fingerprint in its log), so the process a service manager (or a test)
 starts and stops is the SuperLink itself.
 """
 
@@ -83,9 +85,14 @@ def flower_environment(flwr_home: Path, task_poll_s: float | None = None) -> dic
 
 
 def serve_command(study: Path, certs: CertificatePaths, host: str, port: int) -> list[str]:
-    """The ``flower-superlink`` command for a study (state database under the study folder)."""
+    """The SuperLink command for a study (state database under the study folder)."""
     return [
-        str(Path(sys.executable).parent / "flower-superlink"),
+        sys.executable,
+        "-m",
+        "federation.deploy.link_process",
+        "--study",
+        str(Path(study).resolve()),
+        "--",
         "--ssl-ca-certfile",
         str(certs.ca_certificate.resolve()),
         "--ssl-certfile",

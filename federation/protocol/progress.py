@@ -13,7 +13,7 @@ from contextlib import contextmanager
 from typing import Any
 
 # A site's round status that means it has answered one way or another (see federation/deploy/rounds.py).
-ANSWERED = frozenset({"released", "answered", "refused", "rejected", "unreachable", "held"})
+ANSWERED = frozenset({"released", "ready", "failed", "refused", "rejected", "unreachable", "held", "not asked"})
 
 
 def interactive() -> bool:
@@ -97,7 +97,13 @@ class SiteTable:
         table.add_column("reason", overflow="fold", max_width=70)
         for name, info in sorted(self._sites.items()):
             status = str(info.get("status", ""))
-            style = {"released": "bold", "answered": "bold", "refused": "reverse", "unreachable": "dim"}.get(status, "")
+            style = {
+                "released": "bold",
+                "ready": "bold",
+                "refused": "reverse",
+                "failed": "reverse",
+                "unreachable": "dim",
+            }.get(status, "")
             table.add_row(name, Text(status, style=style), str(info.get("reason") or ""))
         answered = sum(str(info.get("status")) in ANSWERED for info in self._sites.values())
         total = max(len(self._sites), 1)

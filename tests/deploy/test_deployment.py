@@ -241,11 +241,12 @@ def first_round(deployment: Deployment) -> tuple[int, dict]:
 
 def test_superlink_runs_with_tls_node_auth_and_no_dependency_installs(deployment: Deployment) -> None:
     pid = deployment.fleet.procs["superlink"].pid
-    argv = cmdline(pid)  # `federation serve` replaced itself with flower-superlink
-    assert "flower-superlink" in argv
+    argv = cmdline(pid)  # `federation serve` replaced itself with the SuperLink (Flower's, in our process)
+    assert "-m federation.deploy.link_process --study" in argv
     for flag in ("--enable-supernode-auth", "--disable-runtime-dependency-installation", "--ssl-ca-certfile"):
         assert flag in argv
     assert f"--database {deployment.coordinator.resolve() / 'superlink' / 'state.db'}" in argv
+    assert "--host 127.0.0.1" in argv  # loopback unless the coordinator chooses otherwise
     environ = Path(f"/proc/{pid}/environ").read_bytes().split(b"\0")
     assert b"FLWR_TELEMETRY_ENABLED=0" in environ and b"FLWR_DISABLE_UPDATE_CHECK=1" in environ
     # TLS, checked with Python's ssl module: our CA verifies the server; the system trust store does not.
@@ -286,12 +287,41 @@ def test_site_refuses_bundle_missing_from_its_allowlist(deployment: Deployment, 
     assert f"app bundle sha256 {deployment.fab_sha256} is not in this site's allowlist" in refusal["reason"]
     site = load_site(deployment.sites[REFUSING])
     entries = ledger.read_entries(site.ledger_path)
-    assert [e["event"] for e in entries] == ["refusal"]
+    assert [e["event"] for e in entries][:1] == ["refusal"]
     assert entries[0]["details"]["app_bundle_sha256"] == deployment.fab_sha256
-    assert ledger.verify_ledger(site.ledger_path, site.public_key()) == 1
+    assert ledger.verify_ledger(site.ledger_path, site.public_key()) == len(entries)
     assert not list(site.releases_dir.iterdir())
     # Nothing of the bundle was installed at the refusing site.
     assert not list((deployment.sites[REFUSING] / "runtime" / "flwr-home").glob("apps/*"))
+
+
+def test_readiness_check_fails_the_refusing_site_and_acknowledges_earlier_releases(
+    deployment: Deployment, first_round: tuple[int, dict]
+) -> None:
+    code, outcome = deployment.federation_run("--ping", "--deadline", "90")
+    assert outcome["kind"] == "readiness" and outcome["state"] == "complete"
+    assert code == 3  # complete, but one site is not ready
+    assert outcome["released"] == 0 and outcome["ready"] == len(ALLOWING)
+    statuses = {site: info["status"] for site, info in outcome["sites"].items()}
+    assert statuses == {**dict.fromkeys(ALLOWING, "ready"), REFUSING: "failed"}
+    # The launcher's refusal is an error reply: a failure with its category, never "answered".
+    assert outcome["sites"][REFUSING]["reason"].startswith(f"app allowlist: site {REFUSING}: app bundle sha256 ")
+    assert "ledger, app allowlist, data source" in outcome["sites"][ALLOWING[0]]["reason"]
+    store = Store(deployment.coordinator / "study.db")
+    try:
+        kinds = [r["kind"] for r in store.rounds(json.loads(deployment.study.request_bytes)["request_id"])]
+        stored = {site: store.stored_releases_of(site) for site in ALLOWING}
+    finally:
+        store.close()
+    assert kinds == ["validate", "readiness"]  # stored as a readiness check, not as a release round
+    for site in ALLOWING:  # the first round's releases, acknowledged in the ledger on this next message
+        entries = ledger.read_entries(deployment.sites[site] / "ledger.jsonl")
+        events = [e["event"] for e in entries]
+        assert events == ["request_received", "release", "sent", "acknowledged"], site
+        assert entries[2]["details"]["note"].startswith("handed to the local node")
+        assert [(entries[3]["details"]["release_sha256"], entries[3]["details"]["stored_at"])] == stored[site]
+    refusals = ledger.read_entries(deployment.sites[REFUSING] / "ledger.jsonl")
+    assert [e["event"] for e in refusals] == ["refusal", "refusal"]  # the launcher refused the check's bundle too
 
 
 def test_site_killed_mid_round_is_unreachable_and_round_completes(deployment: Deployment, first_round) -> None:
@@ -426,13 +456,64 @@ def test_unregistered_node_key_is_refused_and_supervisor_restarts_after_305(depl
     assert joined.wait(timeout=60) == 3
     fleet.procs.pop("join-newcomer-clinic")
     assert "Exit Code: 305" in (newcomer / "runtime" / "supernode.log").read_text()
-    assert "refused or lost this node" in fleet.log("join-newcomer-clinic")
+    said = fleet.log("join-newcomer-clinic")
+    fingerprint = parse_node_key((newcomer / "node.pub").read_bytes(), "node.pub").fingerprint
+    assert f"the SuperLink does not accept this node key (node key sha256 {fingerprint[:16]}): not registered" in said
+    assert "no restarts left" in said
     assert "newcomer-clinic" not in deployment.online()
 
     # The same site, supervised without a restart limit, gets in once the coordinator registers its key.
     deployment.join("newcomer-clinic")
-    wait_until(lambda: "restarting in" in fleet.log("join-newcomer-clinic"), 60, "the supervisor to see exit 305")
+    wait_until(lambda: "retry 1 in" in fleet.log("join-newcomer-clinic"), 60, "the supervisor to see exit 305")
     enrolled = deployment.enrol("newcomer-clinic", newcomer)
     assert "registered with the SuperLink as node" in enrolled.stdout
     wait_until(lambda: "newcomer-clinic" in deployment.online(), 60, "the newcomer's node online")
     assert fleet.procs["join-newcomer-clinic"].poll() is None
+    wait_until(lambda: "connected to the SuperLink as node" in fleet.log("join-newcomer-clinic"), 30, "the join line")
+    # Neither the site's terminal nor the SuperLink's log holds the node's full public key.
+    pem_body = parse_node_key((newcomer / "node.pub").read_bytes(), "node.pub").pem.decode().splitlines()[1]
+    assert pem_body not in fleet.log("join-newcomer-clinic")
+    assert pem_body not in fleet.log("superlink")
+    assert fingerprint[:16] in fleet.log("superlink")  # the refused attempts, named by fingerprint
+
+
+@pytest.mark.parametrize("trust", ["another-ca", "none"])
+def test_join_stops_on_certificate_failures_and_says_why_in_one_line(deployment: Deployment, trust: str) -> None:
+    folder = deployment.root / f"tls-{trust}"  # a site folder of its own: never enrolled, fails before that matters
+    init_site(folder, f"tls-{trust}", [deployment.coordinator / "coordinator.pub"])
+    other = deployment.root / "other-ca"
+    if not (other / "ca.crt").exists():
+        made = deployment.fleet.run([str(BIN / "federation"), "certs", "new", "--out", str(other)], 60)
+        assert made.returncode == 0, made.stderr
+    argv = [str(BIN / "site-agent"), "join", "--superlink", f"127.0.0.1:{deployment.port}"]
+    argv += ["--site", str(folder), "--runtime-port", str(free_port())]
+    if trust == "another-ca":
+        argv += ["--root-certificates", str(other / "ca.crt")]
+    name = f"join-{trust}"
+    joined = deployment.fleet.start(name, argv)
+    assert joined.wait(timeout=90) == 2  # stopped, not retried: retrying cannot fix a certificate
+    deployment.fleet.procs.pop(name)
+    lines = [line for line in deployment.fleet.log(name).splitlines() if "TLS:" in line]
+    assert len(lines) == 1 and lines[0].endswith("; not retrying (fix this, then join again)")
+    if trust == "another-ca":
+        assert f"not signed by the CA in {other / 'ca.crt'} (a certificate from another CA)" in lines[0]
+    else:
+        assert "no root certificate was given" in lines[0] and "--root-certificates" in lines[0]
+    assert "SuperNode started" in deployment.fleet.log(name) and "retry" not in deployment.fleet.log(name)
+
+
+def test_superlink_start_registers_node_keys_enrolled_while_it_was_down(deployment: Deployment) -> None:
+    fleet = deployment.fleet
+    fleet.stop("superlink")
+    late = init_site(deployment.root / "late", "late-clinic", [deployment.coordinator / "coordinator.pub"])
+    enrolled = deployment.enrol("late-clinic", late)  # enrolled first: the SuperLink is not running
+    assert "not registered yet" in enrolled.stdout
+    fingerprint = parse_node_key((late / "node.pub").read_bytes(), "node.pub").fingerprint
+    deployment.start_superlink()
+    link = LinkSettings(f"127.0.0.1:{deployment.port}", deployment.ca)
+    wait_until(lambda: fingerprint in registered_nodes(link), 60, "the SuperLink to register the enrolled key")
+    assert f"registered the node key of site late-clinic (sha256 {fingerprint[:16]})" in fleet.log("superlink")
+    deployment.sites["late-clinic"] = late
+    deployment.join("late-clinic")  # no `federation run` in between: the site gets in at once
+    wait_until(lambda: "late-clinic" in deployment.online(), 60, "the late site's node online")
+    assert "retry" not in fleet.log("join-late-clinic")

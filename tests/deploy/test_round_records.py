@@ -1,0 +1,211 @@
+"""What an online round records, driven in-process: the real ServerApp round, ClientApp, store and ledgers.
+
+Only the transport is replaced (:class:`simulations.inprocess.LoopbackGrid`, Flower's own Message types and
+ClientApp routing); the SuperLink, SuperNodes and the launcher's error replies are exercised with real
+processes in ``test_deployment.py``. The reference for "ready" is outside the round: each site folder is
+also checked by the offline command path (``site-agent check``-style ``load_site`` + file system).
+"""
+
+from __future__ import annotations
+
+import json
+import re
+import uuid
+from dataclasses import dataclass
+from pathlib import Path
+
+import pytest
+from flwr.app import Context, RecordDict
+
+from federation.deploy.nodes import parse_node_key
+from federation.deploy.rounds import RoundSettings, run_deployed_round
+from federation.store import Store
+from simulations.demo import DemoStudy, prepare_study
+from simulations.inprocess import SERVER_NODE_ID, LoopbackGrid, _identity
+from site_agent import ledger
+from site_agent.config import load_site
+from site_agent.flower_client import make_client_app
+from site_agent.readiness import CHECKS, check_readiness, shareable
+
+SITES = 3
+
+
+@dataclass(frozen=True)
+class _NodeInfo:  # what Grid.get_nodes() reports and the round reads: node id and PEM public key
+    node_id: int
+    public_key: bytes
+
+
+class KeyedGrid(LoopbackGrid):
+    """The loopback grid, with each node reporting the node key of the site folder it serves."""
+
+    def __init__(self, site_dirs: list[Path], online: set[int] | None = None) -> None:
+        super().__init__(make_client_app(), [{"site-dir": str(d)} for d in site_dirs])
+        self._keys = {i + 1: parse_node_key((d / "node.pub").read_bytes(), d.name).pem for i, d in enumerate(site_dirs)}
+        self._up = set(self._keys) if online is None else online
+
+    def get_nodes(self) -> list[_NodeInfo]:
+        return [_NodeInfo(n, self._keys[n]) for n in sorted(self._up)]
+
+
+@pytest.fixture
+def study(tmp_path: Path) -> DemoStudy:
+    study = prepare_study(tmp_path / "study")
+    store = Store(study.store_path)
+    try:
+        for folder in study.site_dirs[:SITES]:
+            key = parse_node_key((folder / "node.pub").read_bytes(), "node.pub")
+            store.bind_node_key(folder.name, key.fingerprint, key.pem, "node.pub")
+    finally:
+        store.close()
+    return study
+
+
+def _round(study: DemoStudy, kind: str, grid: KeyedGrid, min_sites: int = SITES, deadline_s: float = 20.0) -> dict:
+    round_id = uuid.uuid4().hex
+    store = Store(study.store_path)
+    request_id = json.loads(study.request_bytes)["request_id"]
+    stored_kind = "readiness" if kind == "ping" else kind
+    store.start_round(round_id, request_id, stored_kind, min_sites, deadline_s)
+    store.close()
+    settings = RoundSettings(study.store_path.parent, round_id, kind, min_sites, deadline_s, poll_s=0.05)
+    context = Context(run_id=1, node_id=SERVER_NODE_ID, node_config={}, state=RecordDict(), run_config={})
+    del context  # the round reads only its settings
+    with _identity(1, SERVER_NODE_ID, 1):
+        run_deployed_round(grid, settings)
+    store = Store(study.store_path)
+    try:
+        return store.round_sites(round_id)
+    finally:
+        store.close()
+
+
+def _events(folder: Path) -> list[str]:
+    return [e["event"] for e in ledger.read_entries(folder / "ledger.jsonl")]
+
+
+def test_readiness_check_names_the_failed_category_and_releases_nothing(study: DemoStudy) -> None:
+    folders = list(study.site_dirs[:SITES])
+    broken = folders[2]
+    config = broken / "site.toml"
+    data_line = re.search(r"^path = \"(.*?)\"", config.read_text(), re.M)
+    assert data_line is not None
+    missing = Path(data_line.group(1)).with_name("moved-away.csv")
+    config.write_text(config.read_text().replace(data_line.group(1), str(missing)))
+
+    sites = _round(study, "ping", KeyedGrid(folders))
+    assert {s: sites[s]["status"] for s in sites} == {
+        folders[0].name: "ready",
+        folders[1].name: "ready",
+        broken.name: "failed",
+    }
+    assert sites[folders[0].name]["reason"] == "checked: " + ", ".join(CHECKS)
+    assert sites[broken.name]["reason"] == "data source: [a path at the site]: data file not found"
+    assert str(missing.parent) not in json.dumps(sites)  # no path of the site's file system reached the store
+    store = Store(study.store_path)
+    try:
+        assert store.releases(json.loads(study.request_bytes)["study_id"]) == []  # a readiness check releases nothing
+        rounds = store.rounds(json.loads(study.request_bytes)["request_id"])
+    finally:
+        store.close()
+    assert [r["kind"] for r in rounds] == ["readiness"]
+    assert rounds[0]["state"] == "complete" and rounds[0]["note"] == "2 ready of 3 bound sites"
+    for folder in folders:  # nothing was read, computed or recorded at the sites
+        assert _events(folder) == []
+
+
+def test_readiness_categories_follow_the_checks_in_order(study: DemoStudy, tmp_path: Path) -> None:
+    folder = study.site_dirs[0]
+    assert check_readiness(folder, None).status == "ready"
+    assert check_readiness(tmp_path / "nowhere", None).category == "site folder"
+    listed = check_readiness(folder, "ab" * 32)  # a launcher-checked hash the site does not list
+    assert (listed.category, listed.passed) == ("app allowlist", ["site folder", "policy", "keys", "ledger"])
+    (folder / "ledger.jsonl").write_bytes(b'{"seq": 1')  # a ledger cut off mid-entry
+    cut = check_readiness(folder, None)
+    assert cut.category == "ledger" and "SITEDIR/ledger.jsonl: the last entry is incomplete" in cut.reason
+    (folder / "ledger.jsonl").write_bytes(b"")
+    (folder / "site.pub").write_bytes((study.site_dirs[1] / "site.pub").read_bytes())  # another site's key
+    assert check_readiness(folder, None).category == "keys"
+
+
+def test_shareable_reasons_hold_no_paths() -> None:
+    site = Path("/srv/sites/north")
+    assert shareable("/srv/sites/north/site.toml: not valid TOML", site) == "SITEDIR/site.toml: not valid TOML"
+    assert shareable("/data/exports/cohort-2024.csv: data file not found", site) == (
+        "[a path at the site]: data file not found"
+    )
+    assert shareable("sqlite:////var/db/records.db: cannot connect", site) == "[a path at the site]: cannot connect"
+    assert shareable("3/4 sites and/or a ratio", site) == "3/4 sites and/or a ratio"
+
+
+def test_release_is_sent_then_acknowledged_on_the_next_message(study: DemoStudy) -> None:
+    folders = list(study.site_dirs[:SITES])
+    sites = _round(study, "validate", KeyedGrid(folders))
+    assert {s["status"] for s in sites.values()} == {"released"}
+    for folder in folders:
+        entries = ledger.read_entries(folder / "ledger.jsonl")
+        assert [e["event"] for e in entries] == ["request_received", "release", "sent"]
+        assert entries[-1]["details"]["via"] == "flower"
+        assert entries[-1]["details"]["note"].startswith("handed to the local node (SuperNode) for delivery")
+
+    _round(study, "ping", KeyedGrid(folders))  # the next message carries the coordinator's acknowledgements
+    store = Store(study.store_path)
+    try:
+        stored = {folder.name: store.stored_releases_of(folder.name) for folder in folders}
+    finally:
+        store.close()
+    for folder in folders:
+        entries = ledger.read_entries(folder / "ledger.jsonl")
+        assert [e["event"] for e in entries] == ["request_received", "release", "sent", "acknowledged"]
+        ((digest, stored_at),) = stored[folder.name]
+        ack = entries[-1]["details"]
+        assert ack["release_sha256"] == digest == entries[1]["details"]["release_sha256"]
+        assert ack["stored_at"] == stored_at and ack["request_id"] == json.loads(study.request_bytes)["request_id"]
+        site = load_site(folder)
+        assert ledger.verify_ledger(site.ledger_path, site.public_key()) == 4
+
+    _round(study, "ping", KeyedGrid(folders))  # acknowledged once: the same acknowledgement again adds nothing
+    assert all(_events(folder).count("acknowledged") == 1 for folder in folders)
+
+
+def test_acknowledgement_of_a_release_the_site_never_sent_is_ignored(study: DemoStudy) -> None:
+    folders = list(study.site_dirs[:SITES])
+    _round(study, "validate", KeyedGrid(folders[:1]), min_sites=1, deadline_s=5)
+    store = Store(study.store_path)
+    try:  # the coordinator's store claims a release from site 2 that site 2 never made
+        digest, _ = store.stored_releases_of(folders[0].name)[0]
+        store._db.execute("UPDATE releases SET site_id = ? WHERE release_sha256 = ?", (folders[1].name, digest))
+        store._db.commit()
+    finally:
+        store.close()
+    _round(study, "ping", KeyedGrid(folders))
+    assert "acknowledged" not in _events(folders[1])
+
+
+def test_sites_connected_but_never_asked_are_not_called_unconnected(study: DemoStudy) -> None:
+    folders = list(study.site_dirs[:SITES])
+    # Two of three nodes online, a quorum of three: nobody is asked before the deadline.
+    sites = _round(study, "validate", KeyedGrid(folders, online={1, 2}), min_sites=3, deadline_s=1.0)
+    assert sites[folders[0].name]["status"] == "not asked"
+    assert sites[folders[0].name]["reason"] == "connected, but the round ended before it was asked"
+    assert sites[folders[2].name] == {
+        **sites[folders[2].name],
+        "status": "unreachable",
+        "reason": "did not connect before the deadline",
+    }
+    assert all(_events(folder) == [] for folder in folders)
+
+
+def test_refusal_sent_to_the_coordinator_holds_no_site_path(study: DemoStudy) -> None:
+    folders = list(study.site_dirs[:SITES])
+    config = folders[0] / "site.toml"
+    data_line = re.search(r"^path = \"(.*?)\"", config.read_text(), re.M)
+    assert data_line is not None
+    config.write_text(config.read_text().replace(data_line.group(1), data_line.group(1) + ".gone"))
+    sites = _round(study, "validate", KeyedGrid(folders))
+    refused = sites[folders[0].name]
+    assert refused["status"] == "refused"
+    assert refused["reason"] == "[a path at the site]: data file not found"
+    # The site's own ledger keeps the full reason for its IT staff.
+    refusal = ledger.read_entries(folders[0] / "ledger.jsonl")[-1]
+    assert refusal["event"] == "refusal" and refusal["details"]["reason"].startswith(data_line.group(1))
