@@ -63,11 +63,37 @@ def check_app_bundle(site_dir: Path, content: bytes) -> str:
     raise AppBundleRefused(reason)
 
 
-def _watch_parent() -> None:
-    """Exit when the app runner that started this process is gone (it is re-parented on Linux)."""
-    from flwr.supercore.app_utils import start_parent_process_monitor
+def _parent_pid(flower_args: Sequence[str]) -> int:
+    """The app runner's pid as it passed it (``--parent-pid``), else our parent now."""
+    for index, value in enumerate(flower_args):
+        if value == "--parent-pid" and index + 1 < len(flower_args) and flower_args[index + 1].isdigit():
+            return int(flower_args[index + 1])
+        if value.startswith("--parent-pid=") and value.split("=", 1)[1].isdigit():
+            return int(value.split("=", 1)[1])
+    return os.getppid()
 
-    start_parent_process_monitor(os.getppid())
+
+def _watch_parent(parent: int, grace_s: float = 3.0) -> None:
+    """Exit when the app runner that started this process is gone (it is re-parented on Linux).
+
+    ``parent`` is the pid the app runner passed (``--parent-pid``): a runner that died while this process was
+    still starting is noticed at once. First as Flower does (SIGINT, so the ClientApp can stop cleanly); if
+    the process is still there after ``grace_s`` (seen: a ClientApp whose runner died mid-task then waits
+    forever at exit), it is ended outright. Ledger entries are single appended lines, fsynced before anything
+    they record is sent, so ending here leaves the ledger consistent.
+    """
+    import signal
+    import threading
+    import time
+
+    def watch() -> None:
+        while os.getppid() == parent:
+            time.sleep(0.2)
+        signal.raise_signal(signal.SIGINT)
+        time.sleep(grace_s)
+        os._exit(70)  # the app runner is gone: nobody is left to take this ClientApp's answer
+
+    threading.Thread(target=watch, daemon=True, name="parent-watch").start()
 
 
 def main(argv: Sequence[str] | None = None) -> None:
@@ -95,7 +121,7 @@ def main(argv: Sequence[str] | None = None) -> None:
         return flower_install(content, *more, **options)
 
     runtime.install_from_fab = install_checked
-    _watch_parent()
+    _watch_parent(_parent_pid(flower_args))  # the runner may have gone while this process started
     sys.argv = ["flwr-clientapp", *flower_args]
     entry.flwr_clientapp()
 

@@ -47,6 +47,7 @@ from .config import load_site
 NODE_KEY = "node.key"
 NODE_PUBLIC_KEY = "node.pub"
 RUNTIME_DIR = "runtime"
+RUNTIME_SECRET = "runtime.secret"  # the shared secret the app runner signs its Runtime API calls with
 
 # Flower exit codes (flwr.supercore.exit.ExitCode) the supervisor acts on.
 EXIT_NODE_KEY_INVALID = 302
@@ -230,6 +231,12 @@ class SiteNode:
     def _prepare_runtime(self) -> None:
         (self.runtime / "bin").mkdir(parents=True, exist_ok=True)
         (self.runtime / "flwr-home").mkdir(exist_ok=True)
+        self.runtime.chmod(0o700)  # the secret, logs and Flower's working files are for the agent's user only
+        secret = self.runtime / RUNTIME_SECRET
+        if not secret.is_file() or secret.stat().st_size < 32:
+            fd = os.open(secret, os.O_WRONLY | os.O_CREAT | os.O_TRUNC, 0o600)
+            with os.fdopen(fd, "wb") as handle:
+                handle.write(os.urandom(32))
         launcher = self.settings.bin_dir / "site-agent-clientapp"
         command = (
             shlex.quote(str(launcher)) if launcher.exists() else f"{shlex.quote(sys.executable)} -m site_agent.launcher"
@@ -267,6 +274,8 @@ class SiteNode:
             str(runtime_port),
             "--node-config",
             f'site-dir="{self.site_dir}"',
+            "--superexec-auth-secret-file",
+            str(self.runtime / RUNTIME_SECRET),
         ]
         if self.settings.root_certificates is not None:
             command += ["--root-certificates", str(Path(self.settings.root_certificates).resolve())]
@@ -280,6 +289,8 @@ class SiteNode:
             f"127.0.0.1:{runtime_port}",
             "--parent-pid",
             str(supernode_pid),
+            "--superexec-auth-secret-file",
+            str(self.runtime / RUNTIME_SECRET),
         ]
 
     # --- one start ----------------------------------------------------------------------------------

@@ -324,12 +324,34 @@ def test_readiness_check_fails_the_refusing_site_and_acknowledges_earlier_releas
     assert [e["event"] for e in refusals] == ["refusal", "refusal"]  # the launcher refused the check's bundle too
 
 
+def test_runtime_port_is_loopback_only_and_refuses_calls_without_the_runtime_secret(
+    deployment: Deployment, first_round: tuple[int, dict]
+) -> None:
+    import httpx
+    from flwr.proto.runtime_pb2 import AcquireTaskRequest
+    from flwr.supercore.runtime.runtime_http_client import RuntimeHttpClient
+
+    folder = deployment.sites[ALLOWING[0]]
+    secret = folder / "runtime" / "runtime.secret"
+    assert secret.stat().st_mode & 0o777 == 0o600 and (folder / "runtime").stat().st_mode & 0o777 == 0o700
+    port = max(runtime_ports([folder]))  # the live node's port (the log holds every start's)
+    listening = [line.split() for line in Path("/proc/net/tcp").read_text().splitlines()[1:]]
+    local = {entry[1] for entry in listening if entry[3] == "0A"}  # state 0A: LISTEN
+    assert f"0100007F:{port:04X}" in local  # 127.0.0.1 only
+    assert f"00000000:{port:04X}" not in local  # not every interface
+    # Another local process without the site's runtime secret cannot take the node's tasks (Flower's own client).
+    client = RuntimeHttpClient(f"http://127.0.0.1:{port}")
+    with pytest.raises(httpx.HTTPStatusError) as refused:
+        client.AcquireTask(AcquireTaskRequest(supported_task_types=["clientapp"]))
+    assert refused.value.response.status_code in (401, 403)
+
+
 def test_site_killed_mid_round_is_unreachable_and_round_completes(deployment: Deployment, first_round) -> None:
     fleet, site_dir = deployment.fleet, deployment.sites[KILLED]
     request = deployment.new_request("tallowmere-online-2")
     argv = [str(BIN / "federation"), "run", "--study-dir", str(deployment.coordinator), "--json"]
     running = subprocess.Popen(
-        [*argv, "--min-sites", "2", "--deadline", "18"], stdout=subprocess.PIPE, env=fleet.env, text=True
+        [*argv, "--min-sites", "2", "--deadline", "45"], stdout=subprocess.PIPE, env=fleet.env, text=True
     )
     try:
         join_pid = fleet.procs[f"join-{KILLED}"].pid
@@ -347,7 +369,11 @@ def test_site_killed_mid_round_is_unreachable_and_round_completes(deployment: De
             os.kill(pid, signal.SIGKILL)
         fleet.procs.pop(f"join-{KILLED}").wait(timeout=10)
         # The app runner and the ClientApp it was running do not outlive their node.
-        wait_until(lambda: gone(runner) and gone(app_pid), 15, "the app runner and ClientApp to exit")
+        try:
+            wait_until(lambda: gone(runner) and gone(app_pid), 15, "the app runner and ClientApp to exit")
+        except AssertionError:
+            os.kill(app_pid, signal.SIGUSR1)
+            raise
         stdout, _ = running.communicate(timeout=120)
     finally:
         if running.poll() is None:
@@ -499,7 +525,7 @@ def test_join_stops_on_certificate_failures_and_says_why_in_one_line(deployment:
         assert f"not signed by the CA in {other / 'ca.crt'} (a certificate from another CA)" in lines[0]
     else:
         assert "no root certificate was given" in lines[0] and "--root-certificates" in lines[0]
-    assert "SuperNode started" in deployment.fleet.log(name) and "retry" not in deployment.fleet.log(name)
+    assert "SuperNode started" in deployment.fleet.log(name) and "retry 1 in" not in deployment.fleet.log(name)
 
 
 def test_superlink_start_registers_node_keys_enrolled_while_it_was_down(deployment: Deployment) -> None:
