@@ -205,7 +205,8 @@ def test_refusal_sent_to_the_coordinator_holds_no_site_path(study: DemoStudy) ->
     sites = _round(study, "validate", KeyedGrid(folders))
     refused = sites[folders[0].name]
     assert refused["status"] == "refused"
-    assert refused["reason"] == "[a path at the site]: data file not found"
-    # The site's own ledger keeps the full reason for its IT staff.
+    assert refused["reason"] == "data could not be read"  # a fixed category (docs/formats.md, "Refusals")
+    assert "/" not in refused["reason"]
+    # The site's own ledger keeps the full message, path included, for its IT staff.
     refusal = ledger.read_entries(folders[0] / "ledger.jsonl")[-1]
-    assert refusal["event"] == "refusal" and refusal["details"]["reason"].startswith(data_line.group(1))
+    assert refusal["event"] == "refusal" and refusal["details"]["detail"].startswith(data_line.group(1))
