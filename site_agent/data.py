@@ -17,7 +17,6 @@ from collections import Counter
 from dataclasses import dataclass, field, replace
 
 import numpy as np
-import pandas as pd
 import pyarrow as pa
 import pyarrow.compute as pc
 
@@ -122,6 +121,8 @@ class IdTracker:
 
     def repeats(self, column: pa.Array, missing: frozenset[str]) -> np.ndarray:
         """True for each record whose id was already seen in an earlier record; missing ids never repeat."""
+        import pandas as pd  # only for its hash of text; a ClientApp whose schema has no id column skips the import
+
         text = arrow_text(column)
         present = _present(text, missing)
         keys = np.asarray(

@@ -108,6 +108,9 @@ def main(argv: Sequence[str] | None = None) -> None:
     )
     args, flower_args = parser.parse_known_args(argv)
     site_dir = args.site_dir.resolve()
+    # Watch the app runner before importing Flower (seconds on a busy host): a runner that died while this
+    # process started is noticed at once, and this process does not outlive its node.
+    _watch_parent(_parent_pid(flower_args))
 
     # Import the modules, not the same-named functions the package re-exports.
     entry = importlib.import_module("flwr.supernode.cli.flwr_clientapp")
@@ -121,7 +124,6 @@ def main(argv: Sequence[str] | None = None) -> None:
         return flower_install(content, *more, **options)
 
     runtime.install_from_fab = install_checked
-    _watch_parent(_parent_pid(flower_args))  # the runner may have gone while this process started
     sys.argv = ["flwr-clientapp", *flower_args]
     entry.flwr_clientapp()
 

@@ -1,14 +1,14 @@
 """Federation: a validation round over Flower against a trivial-query round on the same engine (the floor).
 
-Simulation engine: 20, 100 and 200 virtual sites, each with a site folder of its own (keys, policy, ledger)
+Simulation engine: 20, 100, 200 and 500 virtual sites, each with a site folder of its own (keys, policy, ledger)
 reading a tiny file (200 generated records), so the cost measured is the engine's and the protocol's, not
 the data's. The *floor* is the same engine, the same number of virtual nodes and the same polling, but a
 ClientApp that answers a trivial query at once. Each round runs in a fresh interpreter with its own Ray
 instance; the time reported is the round inside the ServerApp (engine start-up excluded) and the whole
 ``run_simulation`` call (start-up included).
 
-Deployment (``BENCH_DEPLOY=1``): 10 sites on loopback over TLS, with :mod:`tests.deploy.measure_round`
-(``federation run --ping`` as the floor).
+Deployment (``BENCH_DEPLOY=1``): 3 and 10 sites on loopback over TLS, with :mod:`tests.deploy.measure_round`
+(a readiness check, ``federation run --ping``, of the same sites as the floor).
 """
 
 from __future__ import annotations
@@ -146,21 +146,28 @@ def run_simulation_engine(work: Path, sizes: tuple[int, ...], repeats: int = 1) 
     return rows
 
 
-def run_deployment(work: Path, rounds: int = 3) -> dict[str, Any]:
+def run_deployment(work: Path, sizes: tuple[int, ...] = (3, 10), rounds: int = 3) -> list[dict[str, Any]]:
     from tests.deploy.measure_round import measure
 
-    out = Path(tempfile.mkdtemp(prefix="deploy-", dir=work))
-    result = measure(out, rounds, "0.2")
-    row = {
-        "engine": "deployment (TLS, loopback)",
-        "sites": result["sites"],
-        "floor_round_s": result["median_floor_s"],
-        "validation_round_s": result["median_validation_s"],
-        "ratio": result["ratio"],
-        "repeats": rounds,
-    }
-    say(f"federation: {row['sites']} sites deployed  {row['ratio']:.2f}x the floor")
-    return row
+    rows = []
+    for n in sizes:
+        out = Path(tempfile.mkdtemp(prefix=f"deploy-{n}-", dir=work))
+        result = measure(out, rounds, "0.2", n)
+        row = {
+            "engine": "deployment (TLS, loopback)",
+            "sites": result["sites"],
+            "floor_round_s": result["median_floor_s"],
+            "validation_round_s": result["median_validation_s"],
+            "ratio": result["ratio"],
+            "superlink_peak_rss_mib": result["superlink_peak_rss_mib"],
+            "repeats": rounds,
+        }
+        say(
+            f"federation: {row['sites']:>4} sites deployed  {row['validation_round_s']:.1f} s / readiness check "
+            f"{row['floor_round_s']:.1f} s = {row['ratio']:.2f}x"
+        )
+        rows.append(row)
+    return rows
 
 
 if __name__ == "__main__":

@@ -1,11 +1,12 @@
-"""Measure once: a validation round against Flower's own floor, 10 sites on loopback, same deployment.
+"""Measure once: a validation round against a readiness check of the same sites, on loopback.
 
 Not collected by pytest (a measurement, not a check). Run with
-``.venv/bin/python -m tests.deploy.measure_round [--rounds N] [--out DIR]``. It starts a TLS SuperLink and
-10 authenticated SuperNodes (the invented consortium's 8 sites plus 2 more reading two sites' data under
-new site ids), then alternates a trivial query round (``federation run --ping``: every node starts its
-ClientApp process and answers, nothing is computed) and a validation round (a fresh request each time),
-and prints the wall time of each and the ratio of medians. Every process is stopped by PID at the end.
+``.venv/bin/python -m tests.deploy.measure_round [--sites N] [--rounds N] [--out DIR]``. It starts a TLS
+SuperLink and N authenticated SuperNodes (the invented consortium's first N of 8 sites, plus sites reading
+two sites' data under new site ids beyond 8), then alternates a readiness check (``federation run --ping``:
+every node starts its ClientApp process, checks its folder, keys and data source without reading a record,
+and answers) and a validation round (a fresh request each time), and prints the wall time of each, the
+ratio of medians and the SuperLink's peak memory. Every process is stopped by PID at the end.
 """
 
 from __future__ import annotations
@@ -31,12 +32,25 @@ from .harness import BIN, Fleet, free_port, port_listening, processes_under, wai
 EXTRA_SITES = (("northvale-annex", "northvale-community"), ("quillbrook-annex", "quillbrook-community"))
 
 
-def measure(out: Path, rounds: int, task_poll: str) -> dict:
+def _peak_rss_mib(pids: list[int]) -> float:
+    """Sum of the peak resident memory (VmHWM) of the given processes, in MiB."""
+    total = 0.0
+    for pid in pids:
+        try:
+            for line in Path(f"/proc/{pid}/status").read_text().splitlines():
+                if line.startswith("VmHWM:"):
+                    total += int(line.split()[1]) / 1024
+        except OSError:
+            continue
+    return round(total, 1)
+
+
+def measure(out: Path, rounds: int, task_poll: str, n_sites: int = 10) -> dict:
     study = prepare_study(out / "study")
     coordinator = study.root / "coordinator"
-    sites = {d.name: d for d in study.site_dirs}
+    sites = {d.name: d for d in study.site_dirs[:n_sites]}
     store = Store(study.store_path)
-    for new_id, like in EXTRA_SITES:
+    for new_id, like in EXTRA_SITES[: max(0, n_sites - len(sites))]:
         folder = init_site(study.root / "site-folders" / new_id, new_id, [coordinator / "coordinator.pub"])
         source = next(s for s in study.consortium.sites if s.site_id == like)
         set_site_data(folder, source.data_path, source.mapping_path)
@@ -78,11 +92,11 @@ def measure(out: Path, rounds: int, task_poll: str) -> dict:
             )
         options = RunOptions(study=coordinator, deadline_s=300)
         first = run_study(RunOptions(study=coordinator, deadline_s=300, kind="ping"), lambda line: None)
-        assert first.state == "complete", first.to_dict()  # warm-up: every node connected and answering
+        assert first.state == "complete" and first.ready == len(sites), first.to_dict()  # warm-up: all ready
         key = load_private_key(coordinator / "coordinator.key")
         for index in range(rounds):
             ping = run_study(RunOptions(study=coordinator, deadline_s=300, kind="ping"), lambda line: None)
-            assert ping.state == "complete", ping.to_dict()
+            assert ping.state == "complete" and ping.ready == len(sites), ping.to_dict()
             times["ping"].append(ping.wall_s)
             store = Store(study.store_path)
             document = issue_request(store, f"measure-{index}", study.bundle_bytes, key)
@@ -92,12 +106,15 @@ def measure(out: Path, rounds: int, task_poll: str) -> dict:
             assert validate.state == "complete" and validate.released == len(sites), validate.to_dict()
             times["validate"].append(validate.wall_s)
             print(f"round {index + 1}: floor {ping.wall_s:.2f} s, validation {validate.wall_s:.2f} s", flush=True)
+        link_pid = fleet.procs["superlink"].pid
+        superlink_rss = _peak_rss_mib([link_pid])
     finally:
         fleet.stop_all()
         wait_until(lambda: not processes_under(out), 30, "every process to exit")
     floor, validation = statistics.median(times["ping"]), statistics.median(times["validate"])
     return {
         "sites": len(sites),
+        "superlink_peak_rss_mib": superlink_rss,
         "rounds": rounds,
         "task_poll_s": float(task_poll),
         "floor_s": times["ping"],
@@ -111,11 +128,12 @@ def measure(out: Path, rounds: int, task_poll: str) -> dict:
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--rounds", type=int, default=3)
+    parser.add_argument("--sites", type=int, default=10, help="how many sites (8 consortium sites, then copies)")
     parser.add_argument("--task-poll", default="0.2", help="app runners' task polling in seconds (Flower: 1)")
     parser.add_argument("--out", type=Path, help="working folder (default: a new temporary folder)")
     args = parser.parse_args()
     out = args.out or Path(tempfile.mkdtemp(prefix="msv-measure-"))
-    print(json.dumps(measure(out, args.rounds, args.task_poll), indent=2))
+    print(json.dumps(measure(out, args.rounds, args.task_poll, args.sites), indent=2))
 
 
 if __name__ == "__main__":

@@ -369,11 +369,7 @@ def test_site_killed_mid_round_is_unreachable_and_round_completes(deployment: De
             os.kill(pid, signal.SIGKILL)
         fleet.procs.pop(f"join-{KILLED}").wait(timeout=10)
         # The app runner and the ClientApp it was running do not outlive their node.
-        try:
-            wait_until(lambda: gone(runner) and gone(app_pid), 15, "the app runner and ClientApp to exit")
-        except AssertionError:
-            os.kill(app_pid, signal.SIGUSR1)
-            raise
+        wait_until(lambda: gone(runner) and gone(app_pid), 15, "the app runner and ClientApp to exit")
         stdout, _ = running.communicate(timeout=120)
     finally:
         if running.poll() is None:
