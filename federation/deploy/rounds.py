@@ -52,6 +52,7 @@ MESSAGE_TYPES = {VALIDATE: "query.validate", PING: "query.ping"}
 # Final within a round; ``held`` (held for a person's approval at the site) is asked again by --resume.
 FINAL = {"released", "refused", "rejected", "held", "ready", "failed"}
 NOT_ASKED = "not asked"
+CONNECTED_WAITING = "connected, waiting for the quorum"
 # Flower's error replies to a readiness check, by the category a person on call looks at first.
 _PING_ERRORS = {
     int(ErrorCode.CLIENT_APP_RAISED_EXCEPTION): "app runner",
@@ -175,7 +176,9 @@ class DeployedRound:
         while True:
             online = self._online()
             for target in self.targets.values():
-                target.seen_online = target.seen_online or target.fingerprint in online
+                if not target.seen_online and target.fingerprint in online:
+                    target.seen_online = True  # stored, so a round cut short can tell "not asked" from absent
+                    self._set(target, "waiting", CONNECTED_WAITING)
             connected = sum(t.fingerprint in online for t in self.targets.values())
             if self.released_before + connected >= settings.min_sites or not self.targets:
                 break

@@ -21,7 +21,7 @@ from federation.protocol import Request, ValidationToolError
 from federation.store import Store
 
 from .fab import build_app_bundle
-from .rounds import PING, VALIDATE
+from .rounds import CONNECTED_WAITING, NOT_ASKED, PING, VALIDATE
 from .superlink import LinkSettings, SuperLinkError, register_node, registered_nodes, run_status, stop_run, submit_run
 
 LIVE_STATES = {"submitted", "waiting", "running"}
@@ -126,8 +126,10 @@ def _mark_cut_short(store: Store, round_id: str, state: str, note: str) -> None:
     for site, row in store.round_sites(round_id).items():
         if row["status"] == "sent":
             store.set_round_site(round_id, site, "unreachable", f"round {state}: {note}")
+        elif row["status"] == "waiting" and row["reason"] == CONNECTED_WAITING:
+            store.set_round_site(round_id, site, NOT_ASKED, f"connected, but the round was {state} before it was asked")
         elif row["status"] == "waiting":
-            store.set_round_site(round_id, site, "not asked", f"round {state} before it was asked: {note}")
+            store.set_round_site(round_id, site, "unreachable", f"did not connect before the round was {state}")
     store.set_round(round_id, state, note)
 
 
