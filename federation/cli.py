@@ -325,7 +325,7 @@ def cmd_export(args: argparse.Namespace) -> int:
 
     if not Path(args.store).is_file():
         raise ValidationToolError(f"{args.store}: study store not found")
-    result = export_study(Store(args.store), args.out_dir, args.study_id)
+    result = export_study(Store(args.store), args.out_dir, args.study_id, decisions=_decision_settings(args))
     missing = result.enrolled_without_release
     if args.json:
         print_json(result.to_dict())
@@ -615,7 +615,9 @@ def build_parser() -> argparse.ArgumentParser:
         help="write the study's results as tidy CSV tables plus the JSON, for a statistics package or a paper",
         description="Write one CSV per result (participant flow, 2x2 tables and accuracy, ROC bands, "
         "discrimination, calibration, subgroups, margin bands, agreement, paired comparison, every pooled "
-        "estimate), one row per site and analysis level, pooled results in rows whose site_id is 'pooled'; "
+        "estimate; when the sites released several thresholds, pooled accuracy by threshold, the threshold "
+        "chosen and net benefit), one row per site and analysis level, pooled results in rows whose site_id is "
+        "'pooled'; "
         "codebook.csv says what every column means; analysis.json and releases.json hold the full analysis and "
         "the signed releases. A count a site withheld is NA. Exit codes: 0 written; 1 bad input; 3 written, "
         "but some enrolled sites have sent no release for this study.",
@@ -628,6 +630,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--store", type=Path, required=True, help="study store (SQLite file)")
     p.add_argument("--study-id", help="which study (needed when the store holds several)")
     p.add_argument("--out-dir", type=Path, required=True, help="folder to write the tables into (created if missing)")
+    add_decision_options(p)
     p.add_argument("--json", action="store_true", help="print the files written as JSON")
     p.set_defaults(handler=cmd_export)
 

@@ -136,6 +136,19 @@ class Store:
             names.update(f["name"] for f in features if isinstance(f, dict) and f.get("type") == "int")
         return frozenset(names)
 
+    def score_kind(self, study_id: str) -> str | None:
+        """The score kind (``probability`` or ``points``) of the bundle the study's first request names."""
+        row = self._db.execute(
+            "SELECT b.manifest FROM bundles b JOIN requests r ON r.bundle_sha256 = b.sha256 WHERE r.study_id = ? "
+            "ORDER BY r.issued_at LIMIT 1",
+            (study_id,),
+        ).fetchone()
+        try:
+            kind = json.loads(row[0]).get("score", {}).get("kind") if row else None
+        except (ValueError, AttributeError):
+            return None
+        return kind if isinstance(kind, str) else None
+
     def add_request(self, request: Request, document: bytes) -> None:
         with self.transaction() as db:
             db.execute(

@@ -127,3 +127,37 @@ def test_report_takes_the_coordinators_target_and_range(thresholds_store: Path, 
         "report", "--store", str(thresholds_store), "--out", str(out), "--threshold-probabilities", "0.6:0.2"
     )
     assert bad.returncode == 1 and len(bad.stderr.strip().splitlines()) == 1 and "LOW:HIGH" in bad.stderr
+
+
+def test_export_writes_the_decision_tables(thresholds_store: Path, tmp_path: Path) -> None:
+    import pandas as pd
+
+    out = tmp_path / "results"
+    result = federation("export", "--store", str(thresholds_store), "--out-dir", str(out), "--bootstrap", "3")
+    assert result.returncode in (0, 3), result.stderr
+    accuracy = pd.read_csv(out / "threshold_accuracy.csv")
+    assert accuracy["threshold"].tolist() == list(THRESHOLDS)
+    assert (accuracy["sensitivity_ci_low"] <= accuracy["sensitivity"]).all()
+    choice = pd.read_csv(out / "threshold_choice.csv")
+    assert choice.loc[0, "criterion"] == "youden" and choice.loc[0, "threshold"] in THRESHOLDS
+    sites = pd.read_csv(out / "net_benefit_sites.csv")
+    store = Store(thresholds_store)
+    try:
+        releases = store.releases("thresholds-1")
+    finally:
+        store.close()
+    for release in (stored.release for stored in releases):
+        n = release.flow["analysed"]
+        for table in release.confusion:
+            row = sites[(sites["site_id"] == release.site_id) & (sites["threshold_probability"] == table.threshold)]
+            cells, pt = table.cells, table.threshold
+            if cells["tp"] is None or cells["fp"] is None:
+                assert row["net_benefit_model"].isna().all()  # withheld: NA, never a number
+                continue
+            # Net benefit = TP/n - FP/n * pt/(1 - pt) (Vickers & Elkin 2006, from memory), from the release itself.
+            expected = cells["tp"] / n - cells["fp"] / n * pt / (1 - pt)
+            assert row["net_benefit_model"].iloc[0] == pytest.approx(expected, abs=1e-12)
+    codebook = pd.read_csv(out / "codebook.csv")
+    for name in DECISION_TABLES:
+        assert f"{name}.csv" in set(codebook["file"])
+    assert json.loads((out / "decisions.json").read_text())["caution"].startswith("A threshold chosen")
