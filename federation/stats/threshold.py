@@ -403,9 +403,11 @@ def _search(
 
     def accuracy(i: int) -> tuple[float, float] | None:
         if i not in cache:
-            resampled = [evidence[thresholds[i]][s] for s in sample if s in evidence[thresholds[i]]]
-            cache[i] = None
             fit = fits[i]
+            # The sites the full-data fit pooled (a threshold refitted without interval evidence stays so).
+            pooled = set(fit.sites_pooled) if fit is not None else set()
+            resampled = [evidence[thresholds[i]][s] for s in sample if s in evidence[thresholds[i]] and s in pooled]
+            cache[i] = None
             if len(resampled) >= 2 and fit is not None and fit.estimated:
                 try:
                     with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
