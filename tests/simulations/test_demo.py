@@ -172,8 +172,8 @@ def test_released_tables_are_those_the_model_gives_and_pool_as_statsmodels_does(
     assert SMALL_SITE_ID in aware["sites_pooled"] and len(aware["sites_pooled"]) == len(sites)
 
 
-@pytest.mark.xfail(reason="until the audit withholds other analyses before the primary 2x2 (issue 13 item 1)")
 def test_every_site_but_the_small_one_releases_and_pools_its_whole_primary_table(demo) -> None:
+    """The primary 2x2 survives the full request: the audit cuts back the other analyses first."""
     root, _, _ = demo
     expected = _expected(root)
     analysis = json.loads((root / "results" / "analysis.json").read_text())
@@ -190,7 +190,9 @@ def test_every_site_but_the_small_one_releases_and_pools_its_whole_primary_table
         for r in releases
         if r["results"]["agreement"].get("available")
     ]
-    assert sum(k is not None for k in kappas) >= 3
+    # most pair tables are cut back (a blank second verdict leaves small strata beside the released 2x2); at
+    # least one site's kappa survives, and the test above checks it against scikit-learn
+    assert sum(k is not None for k in kappas) >= 1
 
 
 def test_paired_comparison_and_agreement_match_scikit_learn(demo) -> None:
