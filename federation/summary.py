@@ -328,7 +328,7 @@ def _margin_pooled(pooled: Any) -> list[str]:
     bands = pooled.get("bands") if isinstance(pooled, dict) else None
     for band in bands if isinstance(bands, list) else []:
         if isinstance(band, dict):
-            line = _pooled_line(f"pooled error rate, {band.get('band')}", band.get("error_rate"))
+            line = _pooled_line(f"pooled {band.get('band')}", band.get("error_rate"))
             if line:
                 lines.append(line)
     if isinstance(pooled, dict) and not bands and pooled.get("reason"):
@@ -385,7 +385,7 @@ def _meta_regression_lines(regression: dict) -> list[str]:
                 f"  {effect.get('name')} (k = {fit.get('n_sites')}): logit sensitivity "
                 f"{_num(effect.get('logit_sensitivity'), 2)}, logit specificity "
                 f"{_num(effect.get('logit_specificity'), 2)}; χ²({test.get('df')}) = {_num(test.get('statistic'), 2)}, "
-                f"p = {_num(test.get('p'), 3)}"
+                + (f"p = {test['p']:.2g}" if _finite(test.get("p")) else "p —")
             )
     return lines
 
