@@ -143,6 +143,13 @@ def _accuracy_part(result: dict[str, Any], rows: dict[str, list[dict[str, Any]]]
     return html
 
 
+def _point(value: dict[str, Any] | None) -> tuple[float | None, float | None, float | None]:
+    """A pooled value's estimate and interval, or three Nones when it was not estimated."""
+    if not value:
+        return None, None, None
+    return value.get("estimate"), value.get("ci_low"), value.get("ci_high")
+
+
 def _net_benefit_part(result: dict[str, Any], rows: dict[str, list[dict[str, Any]]], study: str) -> str:
     curve = result.get("net_benefit", {})
     html = (
@@ -162,10 +169,10 @@ def _net_benefit_part(result: dict[str, Any], rows: dict[str, list[dict[str, Any
         pt = point["threshold_probability"]
         model, everyone, advantage = point.get("model"), point.get("screen_all"), point.get("advantage_over_all")
         model_points.append(
-            CurvePoint(pt, *(None if not model else (model["estimate"], model["ci_low"], model["ci_high"])))
+            CurvePoint(pt, *_point(model))
         )
         all_points.append(
-            CurvePoint(pt, *(None if not everyone else (everyone["estimate"], everyone["ci_low"], everyone["ci_high"])))
+            CurvePoint(pt, *_point(everyone))
         )
         body.append(
             [
