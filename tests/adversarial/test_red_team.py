@@ -1,0 +1,78 @@
+"""Attacks of issue 12 tried from outside, as a curious coordinator holding the coordinator's signing key: the
+real command lines (``federation bundle pack``, ``federation request new``, ``site-agent run`` with the
+default policy of ``site-agent init``) on records of our own making, with three children aged 24-29 months,
+all with the condition. The recipient's interval for that count is recomputed independently by
+tests/adversarial/world.py (its own enumeration of record types and integer programs, scipy.optimize.milp,
+from the release files alone) and must keep at least ``protection_width`` = 2 whole numbers possible.
+
+The recipient here uses every released *count*; it does not use the derived statistics (AUC, its standard
+error, the expected total), which are not linear in the counts. Attacks through those are not defended yet
+and are not played here (see docs/threat-model.md, residual risk R2).
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+from .world import World, oracle_interval, records
+
+SMALL = [(25, "f", 1, 1), (27, "m", 2, 1), (28, "f", 0, 1)]  # three children aged 24-29 months, all positive
+
+
+def in_small_band(cell: tuple) -> bool:
+    return 24 <= cell[0] < 30 and cell[3] == 1
+
+
+def age_score(world: World, name: str, threshold: float) -> None:
+    """A points scorecard whose score *is* the age in months (the recipient knows the model)."""
+    world.scorecard(name, {"kind": "points", "weights": {"age_months": 1}}, threshold, lambda a, s, i: float(a))
+
+
+def test_bands_between_whole_months_are_known_empty_across_studies(tmp_path: Path) -> None:
+    """Issue 12 item 3: ages are whole months, so a band 23.2-23.5 holds nobody. Study one asks for age bands
+    at 23.2/30, study two at 23.2/23.5/30 (the band 23.5-30 is the same records as 23.2-30). The release
+    shows the empty band's zeros; the small band stays withheld and cannot be worked out."""
+    world = World(tmp_path, records(small=SMALL))
+    card = {"kind": "points", "points": {"item": {"2": 1, "3": 1}}}  # reads only the item, not the age
+    world.scorecard("neutral", card, 1, lambda a, s, i: float(i >= 2))
+    first = world.ask("neutral", "one", "--analyses", "confusion,subgroups", "--subgroup", "age_months=23.2,30")
+    second = world.ask("neutral", "two", "--analyses", "confusion,subgroups", "--subgroup", "age_months=23.2,23.5,30")
+    assert first is not None and second is not None
+    levels = second["results"]["subgroups"]["variables"][0]["levels"]
+    assert levels[1]["level"] == {"low": 23.2, "high": 23.5}
+    assert (levels[1]["analysed_positive"], levels[1]["analysed_negative"]) == (0, 0)  # empty, and shown so
+    assert levels[2]["analysed_positive"] is None  # 23.5-30: the three children, withheld
+    low, high = oracle_interval(world, in_small_band)
+    assert high - low >= 1, (low, high)
+
+
+def test_score_bands_shifted_across_two_studies_on_a_score_that_is_the_age(tmp_path: Path) -> None:
+    """Issue 12 items 1 and 2: one bundle whose score is the age; ROC score bands 0/24/48/96 in one study and
+    0/30/48/96 in another would give the 24-29 band with the condition by subtraction. The second release
+    withholds enough."""
+    world = World(tmp_path, records(small=SMALL))
+    age_score(world, "age", 48)
+    first = world.ask("age", "one", "--analyses", "confusion,roc", "--roc-bands", "0,24,48,96")
+    second = world.ask("age", "two", "--analyses", "confusion,roc", "--roc-bands", "0,30,48,96")
+    assert first is not None and second is not None
+    assert first["results"]["roc"]["bands"][1]["positive"] is not None  # 0-24 is shown in the first study
+    assert second["results"]["roc"]["bands"][1]["positive"] is None  # so 0-30 is withheld in the second
+    low, high = oracle_interval(world, in_small_band)
+    assert high - low >= 1, (low, high)
+
+
+def test_a_paired_comparison_of_two_age_scores_shows_no_small_pair_cell(tmp_path: Path) -> None:
+    """Issue 12 item 2, two bundles in one study: the model calls "age 24 or more" positive, the comparison
+    "age 30 or more"; the paired 2x2 table's discordant cell with the condition is exactly the small group.
+    The site cuts the paired table back (in words, no count) and the primary table stays whole."""
+    world = World(tmp_path, records(small=SMALL))
+    age_score(world, "age24", 24)
+    age_score(world, "age30", 30)
+    release = world.ask("age24", "one", "--analyses", "confusion,paired", compare="age30")
+    assert release is not None
+    paired = release["results"]["paired"]
+    assert paired["diseased"]["model1_compare0"] is None
+    assert release["results"]["confusion"][0]["suppressed"] == []
+    assert [cut["analysis"] for cut in release.get("cut_back", [])] == ["paired"]
+    low, high = oracle_interval(world, in_small_band)
+    assert high - low >= 1, (low, high)
