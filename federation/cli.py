@@ -580,33 +580,48 @@ def build_parser() -> argparse.ArgumentParser:
         ),
         formatter_class=argparse.RawDescriptionHelpFormatter,
     )
-    p.add_argument("--sensitivity", type=float, required=True, help="expected sensitivity (0-1)")
-    p.add_argument("--specificity", type=float, required=True, help="expected specificity (0-1)")
+    p.add_argument("--sensitivity", type=float, metavar="P", required=True, help="expected sensitivity (0-1)")
+    p.add_argument("--specificity", type=float, metavar="P", required=True, help="expected specificity (0-1)")
     p.add_argument(
-        "--prevalence", required=True, help="expected prevalence, or a range LOW:HIGH across sites (e.g. 0.05:0.3)"
+        "--prevalence",
+        required=True,
+        metavar="P|LOW:HIGH",
+        help="expected prevalence, or a range LOW:HIGH across sites (e.g. 0.05:0.3)",
     )
-    p.add_argument("--tau-sensitivity", type=float, default=0.5, help="between-site SD of logit sensitivity (0.5)")
-    p.add_argument("--tau-specificity", type=float, default=0.5, help="between-site SD of logit specificity (0.5)")
     p.add_argument(
-        "--correlation", type=float, default=0.0, help="between-site correlation of logit sensitivity and specificity"
+        "--tau-sensitivity", type=float, metavar="SD", default=0.5, help="between-site SD of logit sensitivity (0.5)"
     )
-    p.add_argument("--site-sizes", help="participants expected at each site, e.g. 150,300,800")
-    p.add_argument("--sites", type=int, help="number of sites (with --participants)")
-    p.add_argument("--participants", type=int, help="participants per site")
-    p.add_argument("--min-cell-size", type=int, default=10, help="the sites' minimum cell size (10)")
+    p.add_argument(
+        "--tau-specificity", type=float, metavar="SD", default=0.5, help="between-site SD of logit specificity (0.5)"
+    )
+    p.add_argument(
+        "--correlation",
+        type=float,
+        metavar="R",
+        default=0.0,
+        help="between-site correlation of logit sensitivity and specificity",
+    )
+    p.add_argument("--site-sizes", metavar="N,N,...", help="participants expected at each site, e.g. 150,300,800")
+    p.add_argument("--sites", type=int, metavar="K", help="number of sites (with --participants)")
+    p.add_argument("--participants", type=int, metavar="N", help="participants per site")
+    p.add_argument("--min-cell-size", type=int, metavar="K", default=10, help="the sites' minimum cell size (10)")
     p.add_argument("--zeros-withheld", action="store_true", help="the sites withhold counts of 0 as well")
-    p.add_argument("--level", type=float, default=0.95, help="confidence level (0.95)")
-    p.add_argument("--target-width", type=float, help="widest acceptable pooled interval (full width, e.g. 0.1)")
+    p.add_argument("--level", type=float, metavar="L", default=0.95, help="confidence level (0.95)")
+    p.add_argument(
+        "--target-width", type=float, metavar="W", help="widest acceptable pooled interval (full width, e.g. 0.1)"
+    )
     p.add_argument(
         "--measure",
         choices=("sensitivity", "specificity", "both"),
         default="both",
         help="which interval must meet --target-width (both)",
     )
-    p.add_argument("--max-sites", type=int, default=100, help="largest number of sites the search tries (100)")
-    p.add_argument("--simulations", type=int, default=20, help="simulated consortia per plan (20)")
-    p.add_argument("--seed", type=int, default=2026, help="random seed; the same seed gives the same plan")
-    p.add_argument("--plot", type=Path, help="write the plan's figure to this file (.svg or .png)")
+    p.add_argument(
+        "--max-sites", type=int, metavar="K", default=100, help="largest number of sites the search tries (100)"
+    )
+    p.add_argument("--simulations", type=int, metavar="N", default=20, help="simulated consortia per plan (20)")
+    p.add_argument("--seed", type=int, metavar="N", default=2026, help="random seed; the same seed gives the same plan")
+    p.add_argument("--plot", type=Path, metavar="FILE", help="write the plan's figure to this file (.svg or .png)")
     p.add_argument("--json", action="store_true", help="JSON on stdout")
     p.set_defaults(handler=cmd_plan)
 
