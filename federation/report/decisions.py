@@ -168,12 +168,8 @@ def _net_benefit_part(result: dict[str, Any], rows: dict[str, list[dict[str, Any
     for point in curve["points"]:
         pt = point["threshold_probability"]
         model, everyone, advantage = point.get("model"), point.get("screen_all"), point.get("advantage_over_all")
-        model_points.append(
-            CurvePoint(pt, *_point(model))
-        )
-        all_points.append(
-            CurvePoint(pt, *_point(everyone))
-        )
+        model_points.append(CurvePoint(pt, *_point(model)))
+        all_points.append(CurvePoint(pt, *_point(everyone)))
         body.append(
             [
                 esc(f"{pt:g}"),

@@ -161,3 +161,21 @@ def test_export_writes_the_decision_tables(thresholds_store: Path, tmp_path: Pat
     for name in DECISION_TABLES:
         assert f"{name}.csv" in set(codebook["file"])
     assert json.loads((out / "decisions.json").read_text())["caution"].startswith("A threshold chosen")
+
+
+def test_a_threshold_probability_without_a_pooled_value_is_shown_as_not_defined() -> None:
+    # At a threshold where fewer than two sites released TP and FP the pooled net benefit is None: the table
+    # says "—" and the curve skips the point (no exception, no number made up).
+    from federation.report.decisions import _net_benefit_part
+
+    point = {
+        "threshold_probability": 0.2,
+        "sites": [{"site_id": "a"}],
+        "model": None,
+        "screen_all": None,
+        "advantage_over_all": None,
+        "sites_not_pooled": [{"site_id": "a", "reason": "counts needed for net benefit withheld"}],
+    }
+    empty = {"threshold_accuracy": [], "threshold_choice": [], "net_benefit_sites": [], "net_benefit_pooled": []}
+    html = _net_benefit_part({"net_benefit": {"points": [point]}}, empty, "s")
+    assert '<th scope="row">0.2</th><td class=n>—</td>' in html
