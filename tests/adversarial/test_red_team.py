@@ -76,3 +76,53 @@ def test_a_paired_comparison_of_two_age_scores_shows_no_small_pair_cell(tmp_path
     assert [cut["analysis"] for cut in release.get("cut_back", [])] == ["paired"]
     low, high = oracle_interval(world, in_small_band)
     assert high - low >= 1, (low, high)
+
+
+def test_thresholds_either_side_of_the_small_band_on_a_score_that_is_the_age(tmp_path: Path) -> None:
+    """Issue 12 items 2 and 4: one request, one bundle whose score is the age, thresholds 24 and 30: tp(24) −
+    tp(30) is the small group. The second table withholds its cells (with the rule named), and the pattern of
+    what is withheld, zeros shown, does not give the count."""
+    world = World(tmp_path, records(small=SMALL))
+    age_score(world, "age", 24)
+    release = world.ask("age", "one", "--analyses", "confusion", "--thresholds", "24,30")
+    assert release is not None
+    first, second = release["results"]["confusion"]
+    assert first["suppressed"] == [] and first["cells"]["tp"] > 0
+    assert second["cells"]["tp"] is None and set(second["suppressed_by"]) == {"tp", "fn"}
+    low, high = oracle_interval(world, in_small_band)
+    assert high - low >= 1, (low, high)
+
+
+def test_bundles_whose_schemas_cut_the_age_range_differently_are_not_differenced(tmp_path: Path) -> None:
+    """Issue 12 items 1 and 3 through the flow: a bundle whose schema allows ages from 24 months and another
+    from 30 months would give the 24-29 count as the difference of their ``out_of_range`` exclusions. The
+    second study is refused (the audit sees the analysed count of the same definition change), so the
+    recipient holds only the first release: 24-29 is one part of the 304 analysed, anywhere in 0..98 with the
+    condition (checked by a linear program over the three regions the release names, scipy.optimize.linprog)."""
+    from scipy.optimize import linprog
+
+    from federation.cli import main as federation
+
+    world = World(tmp_path, records(small=SMALL))
+    key = str(tmp_path / "coordinator" / "coordinator.key")
+    for name, low in (("from24", 24), ("from30", 30)):
+        schema = tmp_path / f"{name}.toml"
+        schema.write_text((tmp_path / "schema.toml").read_text().replace("min = 0\nmax = 95", f"min = {low}\nmax = 95"))
+        model = tmp_path / f"{name}.json"
+        model.write_text('{"format": "scorecard", "kind": "points", "points": {"item": {"2": 1, "3": 1}}}')
+        out = tmp_path / f"{name}.bundle"
+        args = ["bundle", "pack", "--model", str(model), "--schema", str(schema), "--threshold", "1"]
+        assert federation([*args, "--sign", key, "--name", name, "--out", str(out)]) == 0
+        world.bundles[name] = (out, lambda a, s, i: float(i >= 2), 1.0)
+    first = world.ask("from24", "one", "--analyses", "confusion")
+    assert first is not None
+    flow = first["flow"]
+    assert flow["excluded"]["out_of_range"] == sum(1 for a, *_ in world.data if a < 24)
+    assert world.ask("from30", "two", "--analyses", "confusion") is None  # refused
+    # Regions: [age < 24], [24-29, with], [24-29, without], [30+, with], [30+, without].
+    rows = [[1, 0, 0, 0, 0], [0, 1, 0, 1, 0], [0, 0, 1, 0, 1], [1, 1, 1, 1, 1]]
+    values = [flow["excluded"]["out_of_range"], flow["analysed_positive"], flow["analysed_negative"], flow["read"]]
+    target = [0, 1, 0, 0, 0]
+    low = linprog(target, A_eq=rows, b_eq=values, method="highs").fun
+    high = -linprog([-x for x in target], A_eq=rows, b_eq=values, method="highs").fun
+    assert (round(low), round(high)) == (0, flow["analysed_positive"])
