@@ -37,6 +37,7 @@ from typing import Any
 from threadpoolctl import threadpool_limits
 
 from federation.protocol import Release, ValidationToolError
+from federation.protocol.words import withheld_cells
 from federation.ranges import primary_ranges
 from federation.stats import (
     RULES,
@@ -59,7 +60,6 @@ from federation.stats import (
     subgroup_analysis,
     wilson,
 )
-from federation.words import withheld_cells
 
 from .further_analysis import further_results
 from .labels import level_label

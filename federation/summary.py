@@ -24,7 +24,7 @@ import math
 from collections.abc import Mapping
 from typing import Any
 
-from .words import NOT_DEFINED_MARK, POOLED_MODELS, WITHHELD_LEGEND, WITHHELD_MARK
+from .protocol.words import NOT_DEFINED_MARK, POOLED_MODELS, WITHHELD_LEGEND, WITHHELD_MARK
 
 __all__ = ["SECTION_ORDER", "format_summary", "format_table"]
 

@@ -13,7 +13,7 @@ from federation.protocol.cli_support import ArgumentParser, option, print_json, 
 from federation.protocol.crashpoints import crash_point
 from federation.protocol.errors import REFUSAL_CATEGORIES
 from federation.protocol.progress import records_progress
-from federation.words import CELLS, WITHHELD
+from federation.protocol.words import CELLS, WITHHELD
 
 from . import review
 from .config import init_site, load_site

@@ -14,7 +14,7 @@ from typing import Any
 import pyarrow.compute as pc
 
 from federation.protocol import Schema, ValidationToolError, load_bundle
-from federation.words import CALIBRATION_INTERCEPT, CALIBRATION_SLOPE, CELLS, OBSERVED_EXPECTED, WITHHELD
+from federation.protocol.words import CALIBRATION_INTERCEPT, CALIBRATION_SLOPE, CELLS, OBSERVED_EXPECTED, WITHHELD
 
 from .config import Site
 from .mapping import suggest_mapping

@@ -5,7 +5,13 @@ from __future__ import annotations
 from statistics import NormalDist
 from typing import Any
 
-from federation.words import CALIBRATION_INTERCEPT, CALIBRATION_SLOPE, POOLED_MODELS, WITH_CONDITION, WITHOUT_CONDITION
+from federation.protocol.words import (
+    CALIBRATION_INTERCEPT,
+    CALIBRATION_SLOPE,
+    POOLED_MODELS,
+    WITH_CONDITION,
+    WITHOUT_CONDITION,
+)
 
 from .html import csv_link, esc, figure, fmt_number, fmt_percent, span
 from .inputs import ReportInputs

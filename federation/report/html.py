@@ -17,7 +17,7 @@ from html import escape
 from typing import Any
 
 from federation.labels import number_text
-from federation.words import WITHHELD_LEGEND, WITHHELD_MARK
+from federation.protocol.words import WITHHELD_LEGEND, WITHHELD_MARK
 
 __all__ = [
     "csv_link",

@@ -12,7 +12,7 @@ import re
 from collections.abc import Iterator
 from typing import Any
 
-from federation.words import POOLED_MODELS
+from federation.protocol.words import POOLED_MODELS
 
 from .html import esc
 from .inputs import ReportInputs

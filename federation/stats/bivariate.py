@@ -23,12 +23,12 @@ import numpy as np
 from numpy.typing import ArrayLike, NDArray
 from scipy import integrate, optimize, special, stats
 
+from federation.protocol.words import withheld_cells
 from federation.stats.proportions import _check_level
 from federation.stats.results import Interval
 from federation.stats.serial import PoolingError, ResultRecord, SiteExclusion
 from federation.stats.tables import ReleasedTable
 from federation.stats.univariate import random_effects
-from federation.words import withheld_cells
 
 __all__ = [
     "BivariateFit",

@@ -34,12 +34,12 @@ import numpy as np
 from numpy.typing import NDArray
 from scipy import optimize, special
 
+from federation.protocol.words import withheld_cells
 from federation.stats.bivariate import BivariateFit, reitsma, summarise_bivariate
 from federation.stats.proportions import _check_level
 from federation.stats.serial import PoolingError, SiteExclusion
 from federation.stats.suppression import SiteEvidence, site_evidence
 from federation.stats.tables import ReleasedTable
-from federation.words import withheld_cells
 
 __all__ = ["binomial_glmm", "glmm_accuracy", "marginal_log_likelihood"]
 

@@ -110,6 +110,15 @@ def test_regression_release_with_nan_threshold_is_refused() -> None:
         Release.from_bytes(json.dumps(doc).encode())
 
 
+def test_regression_release_with_infinity_in_its_policy_is_refused() -> None:
+    """A hypothesis finding: Infinity in an unchecked field (policy.allow_zero) broke the release id's canonical
+    JSON with a ValueError; NaN and Infinity are refused wherever they stand, as no signed document holds them."""
+    doc = json.loads(seeds("release")[0])
+    doc["policy"]["allow_zero"] = float("inf")
+    with pytest.raises(DocumentError, match="not finite"):
+        Release.from_bytes(json.dumps(doc).encode())
+
+
 def test_regression_request_with_deep_nesting_inside_a_field() -> None:
     doc = json.loads(seeds("request")[0])
     text = json.dumps(doc).replace('"issued_at": ', '"issued_at": ' + "[" * 50_000 + "]" * 50_000 + ', "x": ', 1)

@@ -11,8 +11,8 @@ import numpy as np
 import pytest
 
 from federation.analysis import SiteTable, analyze_tables
+from federation.protocol.words import withheld_cells
 from federation.stats import glmm_accuracy, pool_auc, pool_calibration_slope, reitsma
-from federation.words import withheld_cells
 from simulations.validate_stats import REASONS, release_table
 from tests.stats.prediction_example import sites
 from tests.stats.test_bivariate import AUDITC

@@ -10,6 +10,7 @@ import numpy as np
 import pytest
 from scipy import special, stats
 
+from federation.protocol.words import withheld_cells
 from federation.stats import (
     BivariateFit,
     PoolingError,
@@ -20,7 +21,6 @@ from federation.stats import (
     reitsma,
     sroc_auc_grid,
 )
-from federation.words import withheld_cells
 
 # AuditC (R package mada, data(AuditC); Doebler 2020): 14 studies of a three-item alcohol screening
 # questionnaire. Counts as listed, in mada's row order, by a public test file that checks a re-implementation
