@@ -25,8 +25,8 @@ What a validation of a short screen against its full-length instrument also has 
   level over all twenty items, screen-positive at :data:`LONG_THRESHOLD` points), which the demo packs as a
   second bundle for the paired comparison;
 - a second reference standard at three sites: a second diagnostic instrument whose verdict sometimes
-  disagrees with the first (more often for mild cases) and is sometimes blank (not administered);
-- a second rater's verdict on a sample at two other sites (about a quarter of the records, blank for the
+  disagrees with the first (more often for mild cases) and is blank for about a quarter (not administered);
+- a second rater's verdict on a sample at two other sites (about half of the records, blank for the
   rest): inter-rater agreement of the reference standard. Each site maps whichever it has as its
   ``[reference2]``;
 - the condition's subtype (``early_onset`` or ``late_onset``, more severe cases more often early), blank
@@ -424,10 +424,10 @@ def generate_cohort(
     early = extra.random(n_records) < 1.0 / (1.0 + np.exp(-3.0 * (case_severity - 1.0)))
     frame["subtype"] = np.where(outcome == 1, np.where(early, "early_onset", "late_onset"), "none")
     # Another instrument misses milder cases more often and calls some children with other difficulties.
-    miss = extra.random(n_records) < np.clip(0.25 - 0.15 * case_severity, 0.03, 0.25)
+    miss = extra.random(n_records) < np.clip(0.35 - 0.2 * case_severity, 0.05, 0.35)
     false_call = extra.random(n_records) < 0.04 + 0.08 * min(control_shift, 1.0)
     frame["reference2_instrument"] = np.where(outcome == 1, (~miss).astype(int), false_call.astype(int))
-    rater_flip = extra.random(n_records) < np.where(outcome == 1, 0.07, 0.03)
+    rater_flip = extra.random(n_records) < np.where(outcome == 1, 0.15, 0.03)
     frame["reference2_rater"] = np.where(rater_flip, 1 - outcome, outcome)
     return frame
 
@@ -523,9 +523,9 @@ def _blank_extras(local: pd.DataFrame, spec: SiteSpec, rng: np.random.Generator)
         local.loc[row, long_columns[int(rng.integers(len(long_columns)))]] = coding.missing[0]
         complete[row] = False
     if coding.second_instrument_column is not None:
-        local.loc[rng.random(n) < 0.15, coding.second_instrument_column] = coding.missing[0]
+        local.loc[rng.random(n) < 0.25, coding.second_instrument_column] = coding.missing[0]
     if coding.second_rater_column is not None:
-        local.loc[rng.random(n) >= 0.25, coding.second_rater_column] = coding.missing[0]
+        local.loc[rng.random(n) >= 0.5, coding.second_rater_column] = coding.missing[0]
     return complete
 
 

@@ -216,7 +216,7 @@ def test_full_length_instrument_beats_the_short_form_on_a_fresh_cohort(consortiu
 
 
 def test_second_references_and_subtype_as_each_site_writes_them(consortium: Consortium) -> None:
-    """Three sites carry a second instrument (blank for some), two a second rater on about a quarter of the
+    """Three sites carry a second instrument (blank for about a quarter), two a second rater on about half the
     records; each full mapping names it as [reference2] with the site's own codes; the subtype is coded only
     for participants with the condition."""
     kinds = {}
@@ -242,9 +242,9 @@ def test_second_references_and_subtype_as_each_site_writes_them(consortium: Cons
         known = column.isin(full["reference2"]["positive"] + full["reference2"]["negative"])
         share = known.mean()
         if site.second_reference == "rater":
-            assert 0.18 < share < 0.32, (site.site_id, share)
+            assert 0.4 < share < 0.6, (site.site_id, share)
         else:
-            assert 0.78 < share < 0.92, (site.site_id, share)
+            assert 0.68 < share < 0.82, (site.site_id, share)
         both = known & outcome.isin(short["outcome"]["positive"] + short["outcome"]["negative"])
         same = (column[both].isin(full["reference2"]["positive"])) == (outcome[both].isin(short["outcome"]["positive"]))
         assert 0.8 < same.mean() < 0.99, (site.site_id, same.mean())  # they mostly agree, not always
