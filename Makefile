@@ -41,8 +41,8 @@ validate-stats: $(STAMP)
 	$(BIN)/python -m simulations.validate_stats --consortia 1000
 
 # Benchmarks (not part of `make test`): every cost as a ratio to a baseline measured in the same run; prints a
-# table, writes bench/results.json. BENCH_QUICK=1: 1M/3M records, 20/100 sites; BENCH_DEPLOY=1: also 10 sites
-# over a loopback TLS deployment.
+# table, writes bench/results.json. BENCH_QUICK=1: 1M/3M records, 20/100 sites; BENCH_DEPLOY=1: also 3 and 10
+# sites over a loopback TLS deployment (a validation round against a readiness check of the same sites).
 bench: $(STAMP)
 	$(BIN)/python -m simulations.bench $(if $(BENCH_QUICK),--quick) $(if $(BENCH_DEPLOY),--deploy)
 
