@@ -331,7 +331,10 @@ def build_parser() -> argparse.ArgumentParser:
         description="Start this site's Flower SuperNode and keep it connected to the coordinator's SuperLink "
         "(outbound TLS only; no inbound port). Requests are answered exactly as `site-agent run` answers them, "
         "using [data] in site.toml. Needs node.key from `site-agent init` and the site's hash listed in "
-        "[app] allowed_fab_sha256 (see `site-agent app hash`). Run it as a service; stop it with Ctrl-C.",
+        "[app] allowed_fab_sha256 (see `site-agent app hash`). Run it as a service, as a dedicated user on a host "
+        "with no other local users; stop it with Ctrl-C. It prints each connection retry as it happens and, when "
+        "the SuperNode stops, the cause in one line: a certificate from another CA or no root certificate stops "
+        "it (exit 2); a node key the SuperLink does not accept yet is retried with a growing pause.",
         epilog=_examples(
             "site-agent join --superlink coordinator.example.org:8000 --site-dir SITE --root-certificates ca.crt"
         ),
