@@ -41,6 +41,7 @@ from federation.summary import format_summary
 from site_agent.approval import record_sent
 from site_agent.config import init_site, load_site
 from site_agent.flower_client import make_client_app
+from site_agent.models import approve_bundle
 from site_agent.runner import run_request
 
 from .consortium import LONG_THRESHOLD, Consortium, train_demo_model, write_consortium
@@ -142,6 +143,9 @@ def prepare_study(root: Path, seed: int = 2026, study_id: str = STUDY_ID, reques
         set_site_data(site_dir, site.data_path, mapping)
         if request == "full":
             allow_subgroups(site_dir, SUBGROUP_VARIABLES)
+        approve_bundle(site_dir, bundle_bytes, "site IT (demo)")  # `site-agent model approve`, after review
+        if compare_bytes is not None:
+            approve_bundle(site_dir, compare_bytes, "site IT (demo)")
         store.enrol(site.site_id, (site_dir / "site.pub").read_bytes(), str(site_dir / "site.pub"))
         site_dirs.append(site_dir)
     store.close()

@@ -15,7 +15,7 @@ from federation.protocol.errors import REFUSAL_CATEGORIES
 from federation.protocol.progress import records_progress
 from federation.protocol.words import CELLS, WITHHELD
 
-from . import review
+from . import models, review
 from .config import init_site, load_site
 
 
@@ -217,6 +217,8 @@ EPILOG = """\
 answering a request offline (files carried by hand):
   site-agent init --site-id SITE --trust coordinator.pub --site-dir SITEDIR    # once; give SITEDIR/site.pub back
   site-agent map suggest --data export.csv --bundle model.bundle --site-dir SITEDIR --out mapping.toml
+  site-agent model review model.bundle --site-dir SITEDIR                # inputs, kind, weights, signer
+  site-agent model approve model.bundle --site-dir SITEDIR --by NAME     # once per model bundle
   site-agent check --site-dir SITEDIR --request request.json --bundle model.bundle --data export.csv \\
       --mapping mapping.toml                                              # what would leave; nothing signed
   site-agent run   --site-dir SITEDIR --request request.json --bundle model.bundle --data export.csv \\
@@ -227,9 +229,9 @@ online: `site-agent join` (outbound TLS to the coordinator only); approval: revi
 guide: docs/site-it.md (install, keys, mapping, ports and paths); ethics board: docs/ethics-board.md
 
 exit codes: 0 done; 1 a usage or input error (a bad option too); 2 refused (a signature, the site's policy,
-a broken ledger); 3 partial (a release held for approval: nothing was sent); 4 `join` could not stay online
-(no restarts left). Errors are one line naming the file, field and rule broken, and never hold a value from
-a record.
+a model not approved, a broken ledger); 3 partial (a release held for approval: nothing was sent); 4 `join`
+could not stay online (no restarts left). Errors are one line naming the file, field and rule broken, and
+never hold a value from a record.
 """
 
 
@@ -402,6 +404,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.set_defaults(handler=cmd_ledger_show)
 
     review.add_commands(sub)  # review, approve, reject, release
+    models.add_commands(sub)  # model review, approve, reject
     return parser
 
 

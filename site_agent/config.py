@@ -63,6 +63,11 @@ allowed_subgroups = ["age_months", "sex"]
 # Whether a person must approve each release before it leaves (`site-agent review`, then `approve` or
 # `reject`). While a release waits, nothing is sent and the coordinator is told it is held.
 require_approval = false
+# Whether the site must approve each new model bundle (by its SHA-256) before the agent runs it on any record
+# (`site-agent model review`, then `model approve` or `model reject`). A coordinator can sign any model; with
+# this on, a person at the site sees what each model is (its inputs, its kind, a scorecard's weights) first,
+# as the ethics board approves a protocol. Recommended: true.
+require_model_approval = true
 # Before anything leaves, the agent checks everything this site has released, to every study, taken
 # together: a hidden count must stay uncertain. This is how many different whole numbers must remain
 # possible for it (2 = it can never be worked out exactly; larger is stricter; 1 switches the check off).
@@ -104,6 +109,7 @@ class Policy:
     max_requests_per_study: int = 20
     max_studies: int = 20
     require_approval: bool = False
+    require_model_approval: bool = False  # absent from an older site.toml: off (`site-agent init` writes true)
     protection_width: int = 2
     min_band_width: tuple[tuple[str, float], ...] = ()  # (variable, narrowest band), sorted by variable
     trusted_coordinator_keys: tuple[str, ...] = ()  # key ids of [trust].coordinator_keys, sorted
@@ -117,6 +123,7 @@ class Policy:
             "max_requests_per_study": self.max_requests_per_study,
             "max_studies": self.max_studies,
             "require_approval": self.require_approval,
+            "require_model_approval": self.require_model_approval,
             "protection_width": self.protection_width,
             "min_band_width": dict(self.min_band_width),
             "trusted_coordinator_keys": list(self.trusted_coordinator_keys),
@@ -255,6 +262,7 @@ def _policy(raw: Any, where: str) -> Policy:
         "max_requests_per_study",
         "max_studies",
         "require_approval",
+        "require_model_approval",
         "protection_width",
         "min_band_width",
         "allowed_subgroups",
@@ -280,6 +288,9 @@ def _policy(raw: Any, where: str) -> Policy:
     require_approval = raw.get("require_approval", False)
     if not isinstance(require_approval, bool):
         raise DocumentError(f"{where}.require_approval: must be true or false")
+    require_model_approval = raw.get("require_model_approval", False)
+    if not isinstance(require_model_approval, bool):
+        raise DocumentError(f"{where}.require_model_approval: must be true or false")
     width = raw.get("protection_width", 2)
     if isinstance(width, bool) or not isinstance(width, int) or not 1 <= width <= 1000:
         raise DocumentError(f"{where}.protection_width: must be a whole number from 1 to 1000")
@@ -299,6 +310,7 @@ def _policy(raw: Any, where: str) -> Policy:
         max_requests_per_study=max_requests,
         max_studies=max_studies,
         require_approval=require_approval,
+        require_model_approval=require_model_approval,
         protection_width=width,
         min_band_width=tuple(sorted((str(name), float(v)) for name, v in bands.items())),
     )

@@ -16,6 +16,8 @@ Events:
 ``approval``          a person approved a held release (who, when, the SHA-256 they approved)
 ``rejection``         a person rejected a held release (who, when, why)
 ``release``           a release is about to leave (full text and the audit facts of what it shows and hides)
+``model_approval``    a person approved a model bundle (``bundle_sha256``, ``name``, ``signer``, ``by``)
+``model_rejection``   a person rejected a model bundle (as above, with ``reason``)
 ``sent``              the release was handed over (``via``: ``file`` with its path, or ``flower``: handed to
                       the local node (SuperNode) for delivery, which does not yet say it arrived)
 ``acknowledged``      the coordinator's store holds the release (online: its acknowledgement, by the release's
@@ -46,7 +48,18 @@ if TYPE_CHECKING:  # audit imports scipy; the site-agent's --help and ledger com
 
 
 GENESIS = "0" * 64
-EVENTS = ("request_received", "refusal", "held", "approval", "rejection", "release", "sent", "acknowledged")
+EVENTS = (
+    "request_received",
+    "refusal",
+    "model_approval",
+    "model_rejection",
+    "held",
+    "approval",
+    "rejection",
+    "release",
+    "sent",
+    "acknowledged",
+)
 HELD_EVENTS = ("held", "preview")  # "preview": the same event in older ledgers
 _FIELDS = ("seq", "time", "event", "details", "prev")
 
@@ -334,6 +347,10 @@ def summary(entry: dict[str, Any]) -> str:
         )
     if event == "refusal":
         return f"refused: {details.get('reason')}"
+    if event in ("model_approval", "model_rejection"):
+        verb = "approved" if event == "model_approval" else "rejected"
+        model = str(details.get("bundle_sha256", ""))[:16]
+        return f"model {model} ({details.get('name')}) {verb} by {details.get('by')}"
     return json.dumps(short, sort_keys=True)
 
 

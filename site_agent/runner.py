@@ -30,7 +30,7 @@ from federation.protocol.cli_support import write_atomic
 from federation.protocol.crashpoints import crash_point
 from federation.protocol.errors import LimitReached, ModelNotApproved, ScoringError
 
-from . import approval, ledger
+from . import approval, ledger, models
 from .analyses import Flow, build_analyses, collect_counts, combined_schema, tabulate
 from .approval import AwaitingApproval
 from .config import Site
@@ -130,6 +130,7 @@ def check_policy(site: Site, request: Request, request_bytes: bytes, bundle_byte
                 "request: the site's maximum number of studies is reached (policy max_studies; refused requests "
                 "count too)"
             )
+    models.require_approved(site, bundle, bundle_bytes)
     return bundle
 
 
@@ -159,6 +160,7 @@ def check_compare_bundle(site: Site, request: Request, compare_bundle_bytes: byt
     compare = load_bundle(compare_bundle_bytes, site.trusted, "comparison bundle")
     if compare.sha256 != expected:
         raise PolicyViolation("comparison bundle: its SHA-256 is not the one the request names")
+    models.require_approved(site, compare, compare_bundle_bytes, "comparison bundle")
     return compare
 
 

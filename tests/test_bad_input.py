@@ -38,6 +38,7 @@ def ready(study, tmp_path):
         site_agent(["init", "--site-id", "site-a", "--trust", str(study.coordinator_pub), "--site-dir", str(site_dir)])
         == 0
     )
+    assert site_agent(["model", "approve", str(study.bundle_path), "--site-dir", str(site_dir), "--by", "site IT"]) == 0
     return store, request, site_dir
 
 
@@ -115,6 +116,7 @@ def test_release_from_unenrolled_site_and_duplicate_ingest(study, tmp_path, caps
         )
         == 0
     )
+    assert site_agent(["model", "approve", str(study.bundle_path), "--site-dir", str(stranger), "--by", "site IT"]) == 0
     out = tmp_path / "stranger.json"
     assert run_site(study, tmp_path / "request.json", stranger, study.site_csvs[0], out) == 0
     capsys.readouterr()
@@ -210,6 +212,7 @@ def test_mapping_maps_local_names_and_codes(study, ready, tmp_path):
         site_agent(["init", "--site-id", "site-b", "--trust", str(study.coordinator_pub), "--site-dir", str(other)])
         == 0
     )
+    assert site_agent(["model", "approve", str(study.bundle_path), "--site-dir", str(other), "--by", "site IT"]) == 0
     assert run_site(study, request, other, study.site_csvs[0], out_plain) == 0
     mapped = json.loads(out_mapped.read_text())["results"]["confusion"]
     plain = json.loads(out_plain.read_text())["results"]["confusion"]

@@ -97,12 +97,12 @@ def test_ethics_board_guide(demo, tmp_path):
     release = json.loads((tmp_path / "release.json").read_text())
     assert release["policy"]["require_approval"] is True and release["site_id"] == "amberlow-referral"
     events = [json.loads(line)["event"] for line in (tmp_path / "site" / "ledger.jsonl").read_text().splitlines()]
-    assert events == ["request_received", "held", "approval", "request_received", "release", "sent"]
+    assert events == ["model_approval", "request_received", "held", "approval", "request_received", "release", "sent"]
     verify = json.loads((tmp_path / "verify.json").read_text())
-    assert verify["entries"] == 6 and verify["intact"] is True
+    assert verify["entries"] == 7 and verify["intact"] is True
     assert (tmp_path / "review.html").read_text().count(release["request_id"]) >= 1
     # the tampered copy failed, naming the ledger file and a line
-    assert "tampered/ledger.jsonl" in result.stderr and "line 3" in result.stderr
+    assert "tampered/ledger.jsonl" in result.stderr and "line 4" in result.stderr
     # the copy cut short by one entry verifies as a chain, but not against the head hash noted before
     assert "cut/ledger.jsonl: no entry has the head hash" in result.stderr
     assert "entries were cut off the end" in result.stderr

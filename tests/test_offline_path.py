@@ -59,6 +59,8 @@ def offline_round(study: breast_cancer.Study, tmp: Path, min_cell_size: int) -> 
             )
             == 0
         )
+        approve = ["model", "approve", str(study.bundle_path), "--site-dir", str(site_dir), "--by", "site IT"]
+        assert site_agent(approve) == 0
         set_policy(site_dir, min_cell_size)
         out = tmp / f"release{i}.json"
         assert (

@@ -48,6 +48,10 @@ def _sites(work: Path, n: int) -> tuple[Path, bytes, bytes, list[Path]]:
         store.enrol(site_id, (folder / "site.pub").read_bytes(), "site.pub")
         dirs.append(folder)
     bundle = (base / "model.bundle").read_bytes()
+    from site_agent.models import approve_bundle
+
+    for folder in dirs:
+        approve_bundle(folder, bundle, "bench")
     key = load_private_key(base / "coordinator" / "coordinator.key")
     request = issue_request(store, f"bench-{n}-{time.time_ns()}", bundle, key)
     store.close()

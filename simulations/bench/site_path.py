@@ -119,8 +119,11 @@ def child_site(work: Path, data: Path, label: str) -> None:
     imports = time.perf_counter() - started
     folder = work / "sites" / f"{label}-{time.time_ns()}"
     init_site(folder, "bench-site", [work / "coordinator" / "coordinator.pub"])
-    site = load_site(folder)
     request, bundle = (work / "request.json").read_bytes(), (work / "model.bundle").read_bytes()
+    from site_agent.models import approve_bundle
+
+    approve_bundle(folder, bundle, "bench")
+    site = load_site(folder)
     started, cpu = time.perf_counter(), time.process_time()
     outcome = run_request(site, request, bundle, data)
     wall, cpu = time.perf_counter() - started, time.process_time() - cpu

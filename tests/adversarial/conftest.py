@@ -57,7 +57,11 @@ def coordinator(tmp_path_factory: pytest.TempPathFactory) -> Coordinator:
 
 
 def make_site(coordinator: Coordinator, root: Path, site: int = SITE, **policy: object) -> Site:
-    """A fresh site folder on one demo site's records, pinning the coordinator key, with these policy settings."""
+    """A fresh site folder on one demo site's records, pinning the coordinator key, with these policy settings.
+
+    Model approval is off unless asked for: the attacks here assume the worst, a site that runs whatever
+    model the coordinator signs (test_model_approval.py shows the approval itself)."""
+    policy = {"require_model_approval": False, **policy}
     files = coordinator.demo.consortium.sites[site]
     folder = init_site(root / f"site-{uuid.uuid4().hex[:8]}", files.site_id, [coordinator.pub])
     set_site_data(folder, files.data_path, files.mapping_path)

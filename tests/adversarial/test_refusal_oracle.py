@@ -168,7 +168,8 @@ def test_a_model_failing_on_a_small_group_gets_one_fixed_reason_and_every_probe_
     tmp_path: Path, capsys: pytest.CaptureFixture
 ) -> None:
     attacker = Attacker(tmp_path)
-    site = make_site(attacker, tmp_path, max_requests_per_study=3, max_studies=2)
+    # The worst case: a site that turned model approval off, so that only the caps bound the probing.
+    site = make_site(attacker, tmp_path, max_requests_per_study=3, max_studies=2, require_model_approval=False)
     without = records(tmp_path / "without.csv", with_infants=False)
     with_group = records(tmp_path / "with.csv", with_infants=True)
 
@@ -226,7 +227,7 @@ def test_the_refusal_reads_the_same_whichever_records_trigger_it(tmp_path: Path,
     for seed in (1, 2):
         root = tmp_path / f"run{seed}"
         root.mkdir()
-        site = make_site(attacker, root)
+        site = make_site(attacker, root, require_model_approval=False)
         data = records(root / "data.csv", with_infants=True, seed=seed)
         model = attacker.bundle("nan", 6.0 + seed)  # a different threshold, different records below it
         code, err = run(site, attacker.request(model, "probe"), model, data, capsys)

@@ -26,6 +26,7 @@ from federation.store import Store
 from federation.study import issue_request
 from simulations.demo import prepare_study, set_site_data
 from site_agent.config import init_site
+from site_agent.models import approve_bundle
 
 from .harness import BIN, Fleet, free_port, port_listening, processes_under, wait_until
 
@@ -54,6 +55,7 @@ def measure(out: Path, rounds: int, task_poll: str, n_sites: int = 10) -> dict:
         folder = init_site(study.root / "site-folders" / new_id, new_id, [coordinator / "coordinator.pub"])
         source = next(s for s in study.consortium.sites if s.site_id == like)
         set_site_data(folder, source.data_path, source.mapping_path)
+        approve_bundle(folder, study.bundle_bytes, "site IT")
         store.enrol(new_id, (folder / "site.pub").read_bytes(), "site.pub")
         sites[new_id] = folder
     store.close()

@@ -152,7 +152,9 @@ def postgres(cancer: Cancer) -> PostgresServer:
 
 
 def make_site(root: Path, coordinator_pub: Path, min_cell_size: int = 1, **policy: object) -> Site:
-    """A site folder pinning the coordinator key, with the given policy settings."""
+    """A site folder pinning the coordinator key, with the given policy settings (model approval off unless
+    asked for: these tests pack their own models; test_model_approval.py plays the approval)."""
+    policy = {"require_model_approval": False, **policy}
     folder = init_site(root / f"site-{uuid.uuid4().hex[:8]}", "site-a", [coordinator_pub])
     text = (folder / "site.toml").read_text()
     text = text.replace("min_cell_size = 10", f"min_cell_size = {min_cell_size}")

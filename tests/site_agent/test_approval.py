@@ -50,6 +50,7 @@ def held(study: breast_cancer.Study, tmp_path: Path, capsys):  # noqa: ANN001, A
         site_agent(["init", "--site-id", "site-0", "--trust", str(study.coordinator_pub), "--site-dir", str(site_dir)])
         == 0
     )
+    assert site_agent(["model", "approve", str(study.bundle_path), "--site-dir", str(site_dir), "--by", "site IT"]) == 0
     require_approval(site_dir)
     run = ["run", "--site-dir", str(site_dir), "--request", str(request), "--bundle", str(study.bundle_path)]
     run += ["--data", str(study.site_csvs[0]), "--out", str(tmp_path / "release.json")]

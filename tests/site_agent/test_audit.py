@@ -368,7 +368,11 @@ def test_overlapping_age_band_requests_end_to_end(tmp_path) -> None:  # noqa: AN
     frame["outcome"] = outcome
     data = tmp_path / "records.csv"
     frame[[*FEATURES, "outcome"]].to_csv(data, index=False)
-    site = load_site(init_site(tmp_path / "site", "site-x", [demo.root / "coordinator" / "coordinator.pub"]))
+    folder = init_site(tmp_path / "site", "site-x", [demo.root / "coordinator" / "coordinator.pub"])
+    from site_agent.models import approve_bundle
+
+    approve_bundle(folder, demo.bundle_bytes, "site IT")
+    site = load_site(folder)
 
     store = Store(demo.store_path)
     requests = []
