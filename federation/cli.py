@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import argparse
+import sys
 from collections.abc import Sequence
 from pathlib import Path
 from typing import TYPE_CHECKING
@@ -25,7 +26,7 @@ from federation.protocol.cli_support import ArgumentParser, option, print_json, 
 
 from .modelpack import model_format_for, pack_model
 from .store import Store
-from .study import analysis_specs, issue_request
+from .study import analysis_specs, costly_analyses, issue_request
 
 if TYPE_CHECKING:  # imported late at run time: scipy makes `federation --help` slow
     from .decisions import DecisionSettings
@@ -140,6 +141,8 @@ def cmd_request_new(args: argparse.Namespace) -> int:
         tuple(subgroups),
         sha256_hex(compare_bytes) if compare_bytes else "",
     )
+    for line in costly_analyses(specs):  # not blocking: the coordinator may still ask
+        print(f"federation: warning: {line}", file=sys.stderr)
     document = issue_request(
         Store(args.store),
         args.study_id,
@@ -440,7 +443,10 @@ def build_parser() -> argparse.ArgumentParser:
         "new",
         help="record and sign a request for the sites of a study",
         description="Record a study request in the store and write it, signed, to a file. Send the file and the "
-        "bundle to every site (offline), or put both in the study folder for `federation serve` (online).",
+        "bundle to every site (offline), or put both in the study folder for `federation serve` (online). "
+        "Warns on stderr, one line each, when an analysis is known to be costly for the sites' disclosure "
+        "control (agreement, paired, fine or many bands, many thresholds, many subgroup levels); the request "
+        "is written anyway.",
         epilog=_examples(
             "federation request new --store study.db --study-id study-1 --bundle model.bundle \\\n"
             "    --sign coordinator/coordinator.key --out request.json",

@@ -107,3 +107,59 @@ def analysis_specs(
                 raw["thresholds"] = list(thresholds[:1])
         specs.append(AnalysisSpec.from_dict(raw, f"--analyses {name}"))
     return tuple(specs)
+
+
+# What makes an analysis costly for the sites' disclosure control (docs/coordinator.md, "Costly analyses").
+MANY_BANDS = 20  # more score band edges than the default 0.05 steps
+NARROW_BAND = 0.05  # narrower probability bands than the default steps
+MANY_THRESHOLDS = 5
+MANY_LEVELS = 6
+
+
+def costly_analyses(specs: tuple[AnalysisSpec, ...]) -> list[str]:
+    """One line per requested analysis that is known to cost the sites' disclosure control dearly.
+
+    Not a refusal: the coordinator may still ask. Each line names the analysis and why it is costly, so that
+    a cut-back or withheld result at the sites comes as no surprise. Costly are: a second reference standard
+    (agreement), which splits every record by a variable that is sometimes blank at a site; a paired
+    comparison, whose second table overlaps the primary one record by record; fine or many score bands;
+    many thresholds; subgroups with many levels.
+    """
+    lines = []
+    for spec in specs:
+        if spec.name == "agreement":
+            lines.append(
+                "agreement: a second reference standard with missing values at a site splits every record three "
+                "ways; small cells follow and the sites' audit may withhold the agreement table and, to protect it, "
+                "cells of the primary table"
+            )
+        if spec.name == "paired":
+            lines.append(
+                "paired: the second model's table overlaps the primary table record by record; the sites' audit "
+                "may cut the paired comparison back to protect it"
+            )
+        if spec.bands and spec.name in ("roc", "calibration", "margin"):
+            gaps = [b - a for a, b in zip(spec.bands, spec.bands[1:], strict=False)]
+            narrow = min(gaps) if gaps else None
+            probability_like = all(0.0 <= b <= 1.0 for b in spec.bands)
+            if len(spec.bands) > MANY_BANDS or (probability_like and narrow is not None and narrow < NARROW_BAND):
+                flag = {"roc": "--roc-bands", "calibration": "--calibration-bands", "margin": "--margin-bands"}
+                lines.append(
+                    f"{spec.name} ({flag[spec.name]}): {len(spec.bands)} band edges"
+                    + (f", the narrowest {narrow:g} wide" if narrow is not None else "")
+                    + "; sites merge fine bands until every count is safe, and fine bands make the audit withhold "
+                    "more (other analyses included)"
+                )
+        if spec.name in ("confusion", "margin", "agreement") and len(spec.thresholds) > MANY_THRESHOLDS:
+            lines.append(
+                f"{spec.name} (--thresholds): {len(spec.thresholds)} thresholds; close thresholds differ by few "
+                "records, and the sites' audit withholds such differences"
+            )
+        for subgroup in spec.subgroups:
+            levels = len(subgroup.edges) + 1 if subgroup.edges else 0
+            if levels > MANY_LEVELS:
+                lines.append(
+                    f"subgroups ({subgroup.variable}): {levels} levels; every analysis is repeated within each level, "
+                    "and small levels are withheld"
+                )
+    return lines

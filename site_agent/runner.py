@@ -18,6 +18,7 @@ from federation.protocol import (
     Bundle,
     BundleError,
     ConfusionTable,
+    DataValidationError,
     PolicyViolation,
     Release,
     Request,
@@ -37,7 +38,7 @@ from .config import Site
 from .counts import CountSet
 from .data import DEFAULT_CHUNK_ROWS, exclusion_reasons
 from .disclosure import Protected, protect
-from .mapping import default_mapping, load_mapping
+from .mapping import Mapping, default_mapping, load_mapping
 from .sources import SourceSpec
 from .withheld import annotate
 
@@ -247,6 +248,38 @@ def run_request(
     return Outcome(signed, release_bytes)
 
 
+# The mapping rule behind each exclusion reason (docs/formats.md, "Mapping file"), for a person to fix.
+EXCLUSION_RULES = {
+    "missing_outcome": "[outcome]: the reference-standard column is empty, or its value is listed under `missing`",
+    "missing_feature": "[features.*]: a required input's column is empty, or its value is listed under `missing`",
+    "out_of_range": "[features.*]: a value lies outside the schema's min..max or is not a whole number where the "
+    "schema asks for one (check the column, its unit and its `codes`)",
+    "unknown_category": "[features.*] codes: a value is not mapped to one of the schema's categories",
+    "duplicate_id": "[id]: records repeat an earlier record's id (is it the right column?)",
+}
+
+
+def check_something_analysed(flow: Flow, mapping: Mapping, min_cell_size: int) -> None:
+    """Refuse, before anything is signed, a run in which (almost) no record was analysed.
+
+    Fewer analysed records than the minimum cell size means the release could show nothing but withheld
+    counts: nearly always a mapping that excludes everyone. The message names the mapping rule behind the
+    most frequent exclusion reason; it holds no count and no value.
+    """
+    analysed = flow.positive + flow.negative
+    if analysed >= min_cell_size:
+        return
+    reason = max(flow.reasons, key=lambda r: flow.excluded[r]) if any(flow.excluded.values()) else None
+    where = mapping.source
+    if reason is None:
+        raise DataValidationError(f"{where}: no record was read; nothing to analyse (check the data source)")
+    raise DataValidationError(
+        f"{where}: fewer records were analysed than the minimum cell size, so nothing could be released; most were "
+        f"excluded as {reason}, by the rule {EXCLUSION_RULES.get(reason, reason)}. Fix the mapping and run "
+        "`site-agent check` again (nothing was signed)"
+    )
+
+
 def recorded_release(site: Site, request_sha256: str) -> Outcome | None:
     """The release this site already recorded for exactly these request bytes, or None.
 
@@ -284,6 +317,12 @@ def preview_request(
     progress: Callable[[int], None] | None = None,
 ) -> Preview:
     """Everything ``run_request`` computes, without signing, sending or writing to the ledger."""
+    answered = recorded_release(site, sha256_hex(request_bytes))
+    if answered is not None:
+        raise PolicyViolation(
+            f"request: already answered (the release recorded in the ledger at {answered.resent_at}); `site-agent "
+            "run` would hand over that same release again, and this data and mapping would not be used"
+        )
     request, bundle = check_request(site, request_bytes, bundle_bytes)
     compare = check_compare_bundle(site, request, compare_bundle_bytes)
     holder: dict[str, Any] = {}
@@ -322,6 +361,7 @@ def _compute(
     flow = Flow(exclusion_reasons(mapping))
     holder["phase"] = "records"
     tabulate(source, mapping, bundle, scorer, flow, analyses, chunk_rows, pair, progress)
+    check_something_analysed(flow, mapping, site.policy.min_cell_size)
     holder["phase"] = "disclosure"
     counts = collect_counts(flow, analyses, site.policy)
     # the audit's scope is the site: every release it made, to any study (max_studies is only a rate limit)

@@ -231,9 +231,13 @@ def test_second_answer_to_the_same_request_is_refused_by_the_site(study, ready, 
     # Other data on the second run: if anything were recomputed, the release would differ.
     assert run_site(study, request, site_dir, study.site_csvs[1], tmp_path / "r2.json") == 0
     assert (tmp_path / "r2.json").read_bytes() == (tmp_path / "r1.json").read_bytes()
+    said = capsys.readouterr().err
+    assert "this request was answered before" in said and "the data and mapping given now were not used" in said
     events = [e["event"] for e in ledger_events(site_dir)]
-    assert events == ["request_received", "release", "sent", "request_received", "sent"]
-    capsys.readouterr()
+    assert events == ["model_approval", "request_received", "release", "sent", "request_received", "sent"]
+    check = ["check", "--site-dir", str(site_dir), "--request", str(request), "--bundle", str(study.bundle_path)]
+    assert site_agent([*check, "--data", str(study.site_csvs[1])]) == 2
+    assert "already answered" in one_error_line(capsys, "site-agent")
     parsed = Request.from_bytes(request.read_bytes(), None)
     key = load_private_key(study.coordinator_key)
     changed = replace(parsed, issued_at="2000-01-01T00:00:00+00:00").signed_bytes(key)
@@ -242,3 +246,34 @@ def test_second_answer_to_the_same_request_is_refused_by_the_site(study, ready, 
     assert run_site(study, other, site_dir, study.site_csvs[0], tmp_path / "r3.json") == 2
     assert "already answered" in one_error_line(capsys, "site-agent")
     assert not (tmp_path / "r3.json").exists()
+
+
+def test_a_mapping_that_excludes_everyone_is_refused_before_signing(study, ready, tmp_path, capsys):
+    """Issue: a release in which nothing was analysed. `check` and `run` both stop before anything is signed
+    and name the mapping rule that excluded everyone, never a count or a value."""
+    _, request, site_dir = ready
+    frame = pd.read_csv(study.site_csvs[0])
+    frame["outcome"] = ""  # the reference standard exported empty: every record lacks it
+    data = tmp_path / "blank-outcome.csv"
+    frame.to_csv(data, index=False)
+    check = ["check", "--site-dir", str(site_dir), "--request", str(request), "--bundle", str(study.bundle_path)]
+    assert site_agent([*check, "--data", str(data)]) == 1
+    line = one_error_line(capsys, "site-agent")
+    assert "excluded as missing_outcome, by the rule [outcome]: the reference-standard column is empty" in line
+    assert "nothing could be released" in line
+    assert run_site(study, request, site_dir, data, tmp_path / "release.json") == 1
+    line = one_error_line(capsys, "site-agent")
+    assert "[outcome]" in line and line.endswith("(tell the coordinator only: data could not be read)")
+    assert not (tmp_path / "release.json").exists()
+    last = ledger_events(site_dir)[-1]
+    assert last["event"] == "refusal" and last["details"]["reason"] == "data could not be read"
+    assert [e["event"] for e in ledger_events(site_dir)].count("release") == 0
+
+    # A sign flipped in the export (every value below the schema's min): the same stop, naming the range rule.
+    frame = pd.read_csv(study.site_csvs[0])
+    frame["mean_radius"] = -frame["mean_radius"]  # below the schema's min = 0 for every record
+    frame.to_csv(data, index=False)
+    assert site_agent([*check, "--data", str(data)]) == 1
+    assert "excluded as out_of_range, by the rule [features.*]: a value lies outside" in one_error_line(
+        capsys, "site-agent"
+    )
