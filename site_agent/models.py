@@ -49,18 +49,37 @@ def state(site: Site, bundle_sha256: str) -> str:
     return decisions(site).get(bundle_sha256, {}).get("state", "not reviewed")
 
 
+def keep(site: Site, bundle: Bundle, bundle_bytes: bytes) -> None:
+    """Keep a verified bundle in ``SITEDIR/models/`` (once), so that a person can review what ran."""
+    path = site.root / MODELS_DIR / f"{bundle.sha256[:16]}.bundle"
+    if not path.exists():
+        write_atomic(path, bundle_bytes)
+
+
+def kept_view(site: Site, bundle_sha256: str) -> dict[str, Any] | None:
+    """The review of a kept bundle, or None when the site has no copy."""
+    path = site.root / MODELS_DIR / f"{bundle_sha256[:16]}.bundle"
+    if not path.exists():
+        return None
+    try:
+        return describe(site, load_bundle(path.read_bytes(), site.trusted, str(path)))
+    except ValidationToolError:
+        return None
+
+
 def require_approved(site: Site, bundle: Bundle, bundle_bytes: bytes, what: str = "bundle") -> None:
     """Raise ModelNotApproved unless the policy asks for nothing or the site approved this bundle.
 
-    The bundle is kept in ``SITEDIR/models/`` so that the online agent's bundles can be reviewed too.
+    Every verified bundle is kept in ``SITEDIR/models/``, so that the online agent's bundles can be reviewed
+    too and a held release's review shows the model that computed it.
     """
+    keep(site, bundle, bundle_bytes)
     if not site.policy.require_model_approval:
         return
     current = state(site, bundle.sha256)
     if current == "approved":
         return
     short = bundle.sha256[:16]
-    write_atomic(site.root / MODELS_DIR / f"{short}.bundle", bundle_bytes)
     if current == "rejected":
         raise ModelNotApproved(f"{what}: model {short} was rejected by this site; it will not be run")
     raise ModelNotApproved(

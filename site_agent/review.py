@@ -21,7 +21,7 @@ from typing import Any
 from federation.protocol import ValidationToolError, key_id, load_public_key
 from federation.protocol.cli_support import EXIT_PARTIAL, option, print_json, write_atomic
 
-from . import approval, ledger, plain
+from . import approval, ledger, models, plain
 from .approval import Held
 from .config import Site, load_site
 
@@ -56,6 +56,7 @@ def describe(site: Site, held: Held) -> dict[str, Any]:
         "document": document,
         "text": data.decode("utf-8"),
         "model": review.get("model"),
+        "model_review": models.kept_view(site, str(document.get("bundle_sha256", ""))),
         "suppressed": review.get("suppressed", {}),
         "audit": review.get("audit"),
         "parts": plain.analysis_parts(facts, results),
@@ -167,6 +168,9 @@ def render_text(view: dict[str, Any], site_dir: Path, exact: bool = False) -> st
     out += ["", "Disclosure audit", f"  {view['audit_sentence']}"]
     for finding in view["findings"]:
         out.append(f"  - {finding}")
+    if view.get("model_review"):
+        out += ["", "What the model is (site-agent model review)"]
+        out += [f"  {line}" for line in models.render_text(view["model_review"]).splitlines()]
     out += ["", "Decision"] + [f"  {line}" for line in _decision_lines(view, site_dir)]
     body = "\n".join(out)
     terms = plain.glossary(body)
@@ -247,6 +251,12 @@ def _html_view(view: dict[str, Any], site: Site) -> str:
             + "".join(f"<li>{html.escape(s)}</li>" for s in view["cut_back"])
             + "</ul></details>"
             if view["cut_back"]
+            else ""
+        )
+        + (
+            f"<details><summary>What the model is</summary><pre>{html.escape(models.render_text(view['model_review']))}"
+            "</pre></details>"
+            if view.get("model_review")
             else ""
         )
         + f"<details open><summary>Disclosure audit</summary><p>{html.escape(view['audit_sentence'])}</p>"

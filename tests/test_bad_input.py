@@ -73,7 +73,7 @@ def test_tampered_bundle_byte_is_refused(study, ready, tmp_path, capsys):
     assert "signature does not verify" in one_error_line(capsys, "site-agent")
     assert not out.exists()
     events = ledger_events(site_dir)
-    assert [e["event"] for e in events] == ["request_received", "refusal"]
+    assert [e["event"] for e in events] == ["model_approval", "request_received", "refusal"]
     assert site_agent(["ledger", "verify", "--site-dir", str(site_dir)]) == 0
 
 

@@ -45,7 +45,7 @@ def test_inprocess_round_matches_offline(tmp_path, offline_reference):
     assert tables(study.store_path) == offline_reference
     for site_dir in study.site_dirs:  # each site recorded what it sent
         events = [json.loads(line)["event"] for line in (site_dir / "ledger.jsonl").read_text().splitlines()]
-        assert events == ["request_received", "release", "sent"]
+        assert events == ["model_approval", "request_received", "release", "sent"]
 
 
 def test_inprocess_round_records_refusals_and_silent_sites(tmp_path):

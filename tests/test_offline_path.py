@@ -153,6 +153,6 @@ def test_default_policy_suppresses_small_cells_and_keeps_the_rest_exact(study, t
 def test_ledger_holds_the_full_release_before_the_file(study, tmp_path):
     offline_round(study, tmp_path, min_cell_size=10)
     entries = [json.loads(line) for line in (tmp_path / "site0" / "ledger.jsonl").read_text().splitlines()]
-    assert [e["event"] for e in entries] == ["request_received", "release", "sent"]
-    assert entries[1]["details"]["release"] == (tmp_path / "release0.json").read_text()
+    assert [e["event"] for e in entries] == ["model_approval", "request_received", "release", "sent"]
+    assert entries[2]["details"]["release"] == (tmp_path / "release0.json").read_text()
     assert site_agent(["ledger", "verify", "--site-dir", str(tmp_path / "site0")]) == 0

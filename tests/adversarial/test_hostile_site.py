@@ -210,7 +210,7 @@ def test_a_site_answering_after_the_deadline_is_not_ingested_and_can_hand_the_sa
     assert store.releases("tallowmere-validation-1") == []
     site = load_site(folder)
     events = [e["event"] for e in ledger.read_entries(site.ledger_path)]
-    assert events == ["request_received", "release", "sent"]  # the site did answer, late
+    assert events == ["model_approval", "request_received", "release", "sent"]  # the site did answer, late
     # The coordinator asks again (the same request): the site hands over the recorded release, computes nothing.
     again = run_request(site, coordinator.demo.request_bytes, coordinator.demo.bundle_bytes)
     recorded = ledger.releases_for_study(site.ledger_path, "tallowmere-validation-1")

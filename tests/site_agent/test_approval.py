@@ -68,13 +68,13 @@ def events(site_dir: Path) -> list[str]:
 def test_a_held_release_leaves_nothing_until_approved(held, tmp_path: Path, capsys) -> None:  # noqa: ANN001
     site_dir, run, held_id = held
     assert not (tmp_path / "release.json").exists()
-    assert events(site_dir) == ["request_received", "held"]
+    assert events(site_dir) == ["model_approval", "request_received", "held"]
     held_file = site_dir / "held" / f"{held_id}.json"
     assert sha256_hex(held_file.read_bytes()).startswith(held_id)
     # asking again before a decision: still held, no recomputation, still nothing written
     assert site_agent(run) == 3
     assert not (tmp_path / "release.json").exists()
-    assert events(site_dir) == ["request_received", "held", "request_received"]
+    assert events(site_dir) == ["model_approval", "request_received", "held", "request_received"]
 
 
 def test_review_shows_exactly_what_would_leave_and_why(held, capsys) -> None:  # noqa: ANN001

@@ -136,3 +136,19 @@ def test_approval_needs_a_name_and_a_rejection_a_reason(world: dict, capsys: pyt
     assert "--by: name the person who decides" in capsys.readouterr().err
     assert site_agent(["model", "approve", "abcdef", "--site-dir", str(world["site"]), "--by", "X"]) == 1
     assert "no kept model with this id" in capsys.readouterr().err
+
+
+def test_a_held_release_shows_the_model_that_computed_it(world: dict, capsys: pytest.CaptureFixture) -> None:
+    """The ethics board's review page of a held release shows what the model is, next to what would leave."""
+    config = world["site"] / "site.toml"
+    config.write_text(config.read_text().replace("require_approval = false", "require_approval = true"))
+    assert site_agent(["model", "approve", str(world["card"]), "--site-dir", str(world["site"]), "--by", "Chair"]) == 0
+    assert run(world, request_for(world, world["card"]), world["card"]) == 3  # held for approval
+    capsys.readouterr()
+    assert site_agent(["review", "--site-dir", str(world["site"])]) == 0
+    text = capsys.readouterr().out
+    assert "What the model is (site-agent model review)" in text
+    assert "radius-points  (approved)" in text and "weight mean_radius   0.25" in text
+    page = world["root"] / "review.html"
+    assert site_agent(["review", "--site-dir", str(world["site"]), "--html", str(page)]) == 0
+    assert "<summary>What the model is</summary>" in page.read_text() and "intercept -3" in page.read_text()
