@@ -72,7 +72,7 @@ def test_site_killed_during_a_release_recovers_without_a_second_disclosure(
     assert ledger.unsent(folder / "ledger.jsonl") == []
     assert list((folder / "releases").glob("*.json"))[0].read_bytes() == recorded
     site = load_site(folder)
-    assert ledger.verify_ledger(site.ledger_path, site.public_key()) == 4  # chain and signatures intact
+    assert ledger.verify_ledger(site.ledger_path, site.public_key()) == 5  # chain and signatures intact
 
     store = Store(store_copy(coordinator, tmp_path / "coordinator"))
     store.ingest([(out.read_bytes(), str(out))])

@@ -37,6 +37,8 @@ def held_full(tmp_path_factory: pytest.TempPathFactory) -> tuple[Path, str, Path
     assert (
         site_agent(["init", "--site-id", "s0", "--trust", str(study.coordinator_pub), "--site-dir", str(site_dir)]) == 0
     )
+    approve = ["model", "approve", str(study.bundle_path), "--site-dir", str(site_dir), "--by", "site IT"]
+    assert site_agent(approve) == 0
     config = site_dir / "site.toml"
     text = config.read_text().replace("require_approval = false", "require_approval = true")
     text = re.sub(r"(?m)^min_cell_size = \d+", "min_cell_size = 20", text)
