@@ -10,6 +10,7 @@ import numpy as np
 from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PrivateKey
 
 from federation.protocol import BundleError, Schema, load_bundle, pack_bundle
+from federation.protocol.errors import ScoringError
 from federation.protocol.keys import KeyRing, key_id
 from federation.protocol.scoring import Scorecard, make_scorer
 
@@ -74,8 +75,16 @@ def pack_model(
     )
     public = private_key.public_key()
     bundle = load_bundle(data, KeyRing({key_id(public): public}))
-    scores = make_scorer(bundle).score(np.zeros((1, len(schema.features)), dtype=np.float32))
-    if scores.shape != (1,) or not np.isfinite(scores).all():
+    scorer = make_scorer(bundle)  # the sites' static check, run here first
+    # One record inside the schema's domains (0, moved into [min, max]; category code 0).
+    probe = [0.0 if f.categories else _inside(0.0, f.minimum, f.maximum) for f in schema.features]
+    try:
+        scores = scorer.score(np.array([probe], dtype=np.float32))
+    except ScoringError:
+        raise BundleError(
+            "the packed model does not return a finite score in its range for a record inside the schema"
+        ) from None
+    if scores.shape != (1,):
         raise BundleError("the packed model does not return one finite score per row")
     return data
 
@@ -87,3 +96,12 @@ def model_format_for(path: Path) -> str:
     if suffix == ".json":
         return "scorecard"
     raise BundleError(f"{path}: model must be .onnx (ONNX) or .json (scorecard)")
+
+
+def _inside(value: float, low: float | None, high: float | None) -> float:
+    """``value`` moved into [low, high] (an open side does not move it)."""
+    if low is not None:
+        value = max(value, low)
+    if high is not None:
+        value = min(value, high)
+    return value

@@ -63,6 +63,8 @@ def analysed(tmp_path_factory: pytest.TempPathFactory) -> Path:
         site_dir = tmp / f"site{i}"
         init = ["init", "--site-id", f"site-{i}", "--trust", str(study.coordinator_pub), "--site-dir", str(site_dir)]
         assert site_agent(init) == 0
+        approve = ["model", "approve", str(study.bundle_path), "--site-dir", str(site_dir), "--by", "site IT"]
+        assert site_agent(approve) == 0
         config = site_dir / "site.toml"
         config.write_text(
             config.read_text()

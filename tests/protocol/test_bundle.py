@@ -109,3 +109,14 @@ def test_unpinned_signer_is_refused_before_parsing(key, tmp_path):
 def test_not_a_bundle(key):
     with pytest.raises(BundleError, match="not a model bundle"):
         load_bundle(b"PK\x03\x04 a zip file", ring(key))
+
+
+def test_packing_probes_a_record_inside_the_schema(key):
+    """The packer scores one record inside the schema's domains: a points scorecard on a feature that starts
+    at 1 (so 0 lies outside the attainable range 2..10) packs."""
+    schema = Schema.from_dict({"features": [{"name": "a", "type": "float", "min": 1, "max": 5}]})
+    card = {"format": "scorecard", "kind": "points", "intercept": 0, "weights": {"a": 2}}
+    bundle = load_bundle(pack_model(json.dumps(card).encode(), "scorecard", schema, key, [3.0]), ring(key))
+    scorer = make_scorer(bundle)
+    assert (scorer.low, scorer.high) == (2.0, 10.0)  # 2 x [1, 5], by hand
+    assert scorer.score(np.array([[1.0], [5.0]], dtype=np.float32)).tolist() == [2.0, 10.0]
