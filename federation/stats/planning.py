@@ -60,6 +60,7 @@ __all__ = [
 MEASURES = ("sensitivity", "specificity")
 # Relations between the counts of one 2×2 release (total, parts), in the order a site checks them.
 _RELATIONS = (("analysed", ("positives", "negatives")), ("positives", ("tp", "fn")), ("negatives", ("fp", "tn")))
+_TOTALS = frozenset(total for total, _ in _RELATIONS)
 
 
 def _check_probability(name: str, value: float, open_interval: bool = True) -> float:
@@ -119,8 +120,9 @@ def withhold_table(
 
     Primary suppression withholds every count in 1..k−1 (and 0 when zeros may not be shown); secondary
     suppression then withholds, in each relation (analysed = with + without the condition; with the
-    condition = TP + FN; without = FP + TN) that has exactly one withheld member, the smallest shown member —
-    a part before the total, a non-zero count before a zero — until none is left with one. This is the rule
+    condition = TP + FN; without = FP + TN) that has exactly one withheld member, one more shown member,
+    chosen without looking at values — a part before the total, a leaf before a count that is itself a
+    total, then by name — until none is left with one. This is the rule
     the site agent applies to the 2×2 and the flow; the site's disclosure audit across earlier releases may
     withhold more, which a plan cannot foresee.
 
@@ -162,7 +164,9 @@ def withhold_table(
             hidden = [m for m in members if m in withheld]
             shown = [m for m in members if m not in withheld]
             if len(hidden) == 1 and shown:
-                withheld.add(min(shown, key=lambda m: (m == total, counts[m] == 0, counts[m], m)))
+                # The site's value-free order: a part before the total, a leaf before a count that is itself a
+                # total, then the name (site_agent/disclosure.py).
+                withheld.add(min(shown, key=lambda m: (m == total, m in _TOTALS, m)))
                 changed = True
     released = {name: (None if name in withheld else value) for name, value in counts.items()}
     return ReleasedTable(
