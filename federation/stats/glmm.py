@@ -41,7 +41,7 @@ from federation.stats.serial import PoolingError, SiteExclusion
 from federation.stats.suppression import SiteEvidence, site_evidence
 from federation.stats.tables import ReleasedTable
 
-__all__ = ["binomial_glmm", "glmm_accuracy", "marginal_log_likelihood"]
+__all__ = ["GlmmLikelihood", "binomial_glmm", "glmm_accuracy", "glmm_evidence", "glmm_fit", "marginal_log_likelihood"]
 
 _LOG_SD_BOUNDS = (math.log(1e-3), math.log(20.0))
 _ATANH_BOUND = 3.8  # |rho| <= 0.999
@@ -187,6 +187,9 @@ class _Quadrature:
         for _ in range(_NEWTON_ITERATIONS):
             grad, hess = self._curvature(mean, omega, u)
             step = -np.linalg.solve(hess, grad[:, :, None])[:, :, 0]
+            if np.max(np.abs(step)) < _NEWTON_TOLERANCE:
+                self.modes = u  # converged: the curvature just computed is the one at the mode
+                return u, hess, omega
             scale = np.ones(len(u))
             for _ in range(40):  # step halving, unit by unit, until the objective does not fall
                 trial = u + scale[:, None] * step
@@ -203,20 +206,59 @@ class _Quadrature:
         return u, hess, omega
 
     def site_log_marginals(self, mean: NDArray[np.float64], between: NDArray[np.float64]) -> NDArray[np.float64]:
+        return self._marginals(mean, between, None)[0]
+
+    def value_and_gradient(self, theta: NDArray[np.float64]) -> tuple[float, NDArray[np.float64]]:
+        """Total marginal log-likelihood and its gradient in the five parameters.
+
+        The gradient holds the quadrature's centres and scales fixed (the nodes of the adaptive rule at
+        these parameters): with the rule nearly exact its dependence on them is negligible, and each
+        gradient then costs one pass instead of the ten of central differences.
+        """
+        sites, gradient = self._marginals(theta[:2], _between(theta), theta)
+        return float(np.sum(sites)), gradient
+
+    def _marginals(self, mean, between, theta):
         u, hess, omega = self.modes_and_curvature(mean, between)
         cov = np.linalg.inv(-hess)
         chol = np.linalg.cholesky(cov)  # (U, 2, 2)
         points = u[:, None, :] + math.sqrt(2.0) * np.einsum("sij,qj->sqi", chol, self.nodes)  # (U, Q, 2)
-        ll = self.design.log_likelihood(mean[0] + points[:, :, 0], mean[1] + points[:, :, 1])
+        eta1, eta2 = mean[0] + points[:, :, 0], mean[1] + points[:, :, 1]
+        if theta is None:
+            ll = self.design.log_likelihood(eta1, eta2)
+        else:
+            ll, g1, g2, _, _ = self.design.log_likelihood(eta1, eta2, derivatives=True)
         _, log_det = np.linalg.slogdet(between)
         prior = -math.log(2 * math.pi) - 0.5 * log_det - 0.5 * np.einsum("sqi,ij,sqj->sq", points, omega, points)
         log_det_chol = np.log(chol[:, 0, 0] * chol[:, 1, 1])
-        units = math.log(2.0) + log_det_chol + special.logsumexp(self.log_weights[None, :] + ll + prior, axis=1)
-        if self.design.n_units == self.design.n_sites:
-            return units
-        starts = self.design.site_start
-        peak = np.maximum.reduceat(units, starts)
-        return peak + np.log(np.add.reduceat(np.exp(units - peak[self.design.unit_site]), starts))
+        integrand = self.log_weights[None, :] + ll + prior
+        units = math.log(2.0) + log_det_chol + special.logsumexp(integrand, axis=1)
+        several = self.design.n_units != self.design.n_sites
+        if several:
+            starts = self.design.site_start
+            peak = np.maximum.reduceat(units, starts)
+            sites = peak + np.log(np.add.reduceat(np.exp(units - peak[self.design.unit_site]), starts))
+        else:
+            sites = units
+        if theta is None:
+            return sites, None
+        weight = np.exp(integrand - special.logsumexp(integrand, axis=1, keepdims=True))  # (U, Q)
+        if several:
+            weight = weight * np.exp(units - sites[self.design.unit_site])[:, None]
+        s1, s2, rho = math.exp(theta[2]), math.exp(theta[3]), math.tanh(theta[4])
+        derivatives = (
+            np.array([[2 * s1 * s1, rho * s1 * s2], [rho * s1 * s2, 0.0]]),
+            np.array([[0.0, rho * s1 * s2], [rho * s1 * s2, 2 * s2 * s2]]),
+            (1 - rho * rho) * np.array([[0.0, s1 * s2], [s1 * s2, 0.0]]),
+        )
+        gradient = np.empty(5)
+        gradient[0] = float(np.sum(weight * g1))
+        gradient[1] = float(np.sum(weight * g2))
+        for j, d_between in enumerate(derivatives):
+            a = omega @ d_between @ omega
+            d_prior = -0.5 * np.trace(omega @ d_between) + 0.5 * np.einsum("sqi,ij,sqj->sq", points, a, points)
+            gradient[2 + j] = float(np.sum(weight * d_prior))
+        return sites, gradient
 
 
 def marginal_log_likelihood(
@@ -240,6 +282,70 @@ def marginal_log_likelihood(
     """
     quadrature = _Quadrature(_Design(evidence), points)
     return quadrature.site_log_marginals(np.asarray(mean, dtype=float), np.asarray(between, dtype=float))
+
+
+PARAMETERS = ("mean logit Se", "mean logit FPR", "SD logit Se", "SD logit FPR", "correlation")
+BOUNDS = ((-_MEAN_BOUND, _MEAN_BOUND),) * 2 + (_LOG_SD_BOUNDS,) * 2 + ((-_ATANH_BOUND, _ATANH_BOUND),)
+
+
+class GlmmLikelihood:
+    """The GLMM's marginal log-likelihood in :math:`\\theta = (\\mu_1, \\mu_2, \\log\\sigma_1,
+    \\log\\sigma_2, \\operatorname{atanh}\\rho)`, with maximisation over any subset of the parameters
+    (the others held at given values): the building block of the fit and of profile likelihoods."""
+
+    def __init__(self, quadrature: _Quadrature) -> None:
+        self.quadrature = quadrature
+        self.evaluations = 0
+
+    def negative(self, theta: NDArray[np.float64]) -> tuple[float, NDArray[np.float64]]:
+        self.evaluations += 1
+        value, gradient = self.quadrature.value_and_gradient(theta)
+        if not math.isfinite(value) or not np.all(np.isfinite(gradient)):
+            return 1e300, np.zeros(5)
+        return -value, -gradient
+
+    def maximise(
+        self, theta0: NDArray[np.float64], free: Sequence[int], tolerance: float = 1e-10
+    ) -> tuple[NDArray[np.float64], float, bool]:
+        """Maximise over ``free`` from ``theta0``; returns (theta, negative log-likelihood, converged)."""
+        free = list(free)
+        base = np.array(theta0, dtype=float)
+
+        def objective(x: NDArray[np.float64]) -> tuple[float, NDArray[np.float64]]:
+            theta = base.copy()
+            theta[free] = x
+            value, gradient = self.negative(theta)
+            return value, gradient[free]
+
+        found = optimize.minimize(
+            objective,
+            np.clip(base[free], [BOUNDS[i][0] for i in free], [BOUNDS[i][1] for i in free]),
+            jac=True,
+            method="L-BFGS-B",
+            bounds=[BOUNDS[i] for i in free],
+            options={"ftol": tolerance, "gtol": 1e-6, "maxiter": 400},
+        )
+        theta = base.copy()
+        theta[free] = found.x
+        # L-BFGS-B stops on its line search when the gradient is approximate; a small |gradient| is success.
+        converged = bool(found.success) or float(np.max(np.abs(found.jac))) < 1e-3
+        return theta, float(found.fun), converged
+
+    @staticmethod
+    def on_bound(theta: NDArray[np.float64], free: Sequence[int]) -> list[str]:
+        return [
+            PARAMETERS[i] for i in free if abs(theta[i] - BOUNDS[i][0]) < 1e-6 or abs(theta[i] - BOUNDS[i][1]) < 1e-6
+        ]
+
+    def hessian(self, theta: NDArray[np.float64], free: Sequence[int], step: float = 1e-4) -> NDArray[np.float64]:
+        """Hessian of the negative log-likelihood in ``free``, by central differences of the gradient."""
+        free = list(free)
+        hess = np.empty((len(free), len(free)))
+        for j, i in enumerate(free):
+            e = np.zeros(5)
+            e[i] = step
+            hess[j] = (self.negative(theta + e)[1][free] - self.negative(theta - e)[1][free]) / (2 * step)
+        return 0.5 * (hess + hess.T)
 
 
 def _numerical_hessian(function, x: NDArray[np.float64], step: float = 1e-4) -> NDArray[np.float64]:
@@ -320,6 +426,20 @@ def binomial_glmm(
     :math:`\hat\mu` are taken from the Hessian of the means alone, with the variance parameters held at
     their estimates (also named in ``notes``).
     """
+    return _fit(evidence, points, correlation, level, start, excluded, notes, interval)[0]
+
+
+def _fit(
+    evidence: Sequence[SiteEvidence],
+    points: int,
+    correlation: float | None,
+    level: float,
+    start: Sequence[float] | None,
+    excluded: Sequence[SiteExclusion],
+    notes: Sequence[str],
+    interval: Literal["t", "z"],
+) -> tuple[BivariateFit, GlmmLikelihood, NDArray[np.float64], float, list[int], NDArray[np.float64]]:
+    """The fit and what a profile likelihood needs: likelihood, estimates, minimum, free parameters, Hessian."""
     if len(evidence) < 2:
         raise PoolingError(f"the binomial GLMM needs at least 2 sites, got {len(evidence)}")
     if interval not in ("t", "z"):
@@ -344,37 +464,14 @@ def binomial_glmm(
     if correlation is not None:
         theta0[4] = math.atanh(float(correlation))
 
-    def full(x: NDArray[np.float64]) -> NDArray[np.float64]:
-        theta = theta0.copy()
-        theta[free] = x
-        return theta
-
-    def negative_log_likelihood(x: NDArray[np.float64]) -> float:
-        theta = full(x)
-        value = -float(np.sum(quadrature.site_log_marginals(theta[:2], _between(theta))))
-        return value if math.isfinite(value) else 1e300
-
-    bounds = [(-_MEAN_BOUND, _MEAN_BOUND)] * 2 + [_LOG_SD_BOUNDS] * 2 + [(-_ATANH_BOUND, _ATANH_BOUND)]
-    found = optimize.minimize(
-        negative_log_likelihood,
-        theta0[free],
-        method="L-BFGS-B",
-        bounds=[bounds[i] for i in free],
-        options={"ftol": 1e-13, "gtol": 1e-7, "maxiter": 500},
-    )
-    if not found.success:
+    likelihood = GlmmLikelihood(quadrature)
+    theta, value, success = likelihood.maximise(theta0, free)
+    if not success:
         notes.append("the likelihood maximiser reported incomplete convergence; estimates are the best found")
-    theta = full(found.x)
-    on_bound = [
-        name
-        for i, name in zip(
-            free, ("mean logit Se", "mean logit FPR", "SD logit Se", "SD logit FPR", "correlation"), strict=False
-        )
-        if abs(found.x[free.index(i)] - bounds[i][0]) < 1e-6 or abs(found.x[free.index(i)] - bounds[i][1]) < 1e-6
-    ]
+    on_bound = likelihood.on_bound(theta, free)
     if on_bound:
         notes.append("estimate on its bound: " + ", ".join(on_bound))
-    hess = _numerical_hessian(negative_log_likelihood, found.x)
+    hess = likelihood.hessian(theta, free)
     mean_cov = None
     if not on_bound:
         try:
@@ -383,18 +480,24 @@ def binomial_glmm(
         except np.linalg.LinAlgError:
             mean_cov = None
     if mean_cov is None or not np.all(np.isfinite(mean_cov)) or np.any(np.diag(mean_cov) <= 0):
-        mean_cov = np.linalg.inv(hess[:2, :2])
+        try:
+            mean_cov = np.linalg.inv(hess[:2, :2])
+        except np.linalg.LinAlgError as error:
+            raise PoolingError("the likelihood is flat in the summary point: it cannot be estimated") from error
         notes.append("standard errors of the means from their own Hessian, variance parameters held fixed (fallback)")
+        if not np.all(np.isfinite(mean_cov)) or np.any(np.diag(mean_cov) <= 0):
+            raise PoolingError("the likelihood is flat in the summary point: it cannot be estimated")
+    found_fun = value
     label = f"exact binomial GLMM (Chu & Cole 2006), ML by adaptive Gauss-Hermite quadrature ({points}x{points} points)"
     if any(ev.censored for ev in evidence):
         label += "; suppressed cells interval-censored"
-    return summarise_bivariate(
+    fit = summarise_bivariate(
         method=label,
         estimator="ML-AGHQ",
         mean=theta[:2],
         mean_cov=mean_cov,
         between=_between(theta),
-        log_likelihood=-found.fun,
+        log_likelihood=-found_fun,
         correlation_fixed=correlation is not None,
         site_ids=[ev.site_id for ev in evidence],
         excluded=excluded,
@@ -402,6 +505,7 @@ def binomial_glmm(
         level=level,
         degrees_of_freedom=max(len(evidence) - 2, 1) if interval == "t" else None,
     )
+    return fit, likelihood, theta, found_fun, free, hess
 
 
 def glmm_accuracy(
@@ -428,6 +532,34 @@ def glmm_accuracy(
     BivariateFit
         Sites that could not be used are in ``sites_not_pooled`` with the reason.
     """
+    evidence, excluded = glmm_evidence(tables, suppressed)
+    return binomial_glmm(
+        evidence,
+        points=points,
+        correlation=correlation,
+        level=level,
+        start=_start_from_tables(tables, evidence),
+        excluded=excluded,
+        interval=interval,
+    )
+
+
+def glmm_fit(
+    evidence: Sequence[SiteEvidence],
+    tables: Sequence[ReleasedTable],
+    excluded: Sequence[SiteExclusion],
+    points: int = 7,
+    level: float = 0.95,
+) -> tuple[BivariateFit, GlmmLikelihood, NDArray[np.float64], float, list[int], NDArray[np.float64]]:
+    """Fit with the correlation free; return the fit and what profile likelihoods need (see :func:`_fit`)."""
+    start = _start_from_tables(tables, evidence)
+    return _fit(evidence, points, None, level, start, excluded, (), "t")
+
+
+def glmm_evidence(
+    tables: Sequence[ReleasedTable], suppressed: Literal["censor", "drop"] = "censor"
+) -> tuple[list[SiteEvidence], list[SiteExclusion]]:
+    """Each usable site's likelihood evidence, and the sites that cannot be used with the reason."""
     if suppressed not in ("censor", "drop"):
         raise PoolingError(f"suppressed must be 'censor' or 'drop', got {suppressed!r}")
     evidence: list[SiteEvidence] = []
@@ -447,6 +579,11 @@ def glmm_accuracy(
         evidence.append(ev)
     if len(evidence) < 2:
         raise PoolingError(f"the binomial GLMM needs at least 2 usable sites, got {len(evidence)}")
+    return evidence, excluded
+
+
+def _start_from_tables(tables: Sequence[ReleasedTable], evidence: Sequence[SiteEvidence]) -> list[float] | None:
+    """Starting values from the normal-approximation model of the complete tables, when there are two."""
     start = None
     complete = [t for t in tables if t.is_complete and t.site_id in {ev.site_id for ev in evidence}]
     if len(complete) >= 2:
@@ -461,6 +598,4 @@ def glmm_accuracy(
             ]
         except PoolingError:
             start = None
-    return binomial_glmm(
-        evidence, points=points, correlation=correlation, level=level, start=start, excluded=excluded, interval=interval
-    )
+    return start
