@@ -60,6 +60,8 @@ from federation.stats import (
     subgroup_analysis,
     wilson,
 )
+from federation.stats.headline import METHOD as HEADLINE_METHOD
+from federation.stats.headline import PREDICTION_CONVENTION, headline_accuracy
 
 from .further_analysis import further_results
 from .labels import level_label
@@ -329,24 +331,85 @@ def _site_accuracy(table: SiteTable, prevalence: float | None) -> dict[str, Any]
     return out
 
 
-def _bivariate_results(tables: list[SiteTable]) -> dict[str, Any]:
-    released = []
-    invalid = []
+def _interval_json(interval: Any) -> dict[str, Any] | None:
+    if interval is None:
+        return None
+    return {
+        "estimate": interval.estimate,
+        "ci_low": interval.ci_low,
+        "ci_high": interval.ci_high,
+        "method": interval.method,
+    }
+
+
+def headline_pooling(tables: list[SiteTable]) -> dict[str, Any]:
+    """The ``pooled`` section: the headline bivariate binomial GLMM over every site, then the sensitivity analyses.
+
+    Top-level keys describe the headline (``federation.stats.headline``): ``sensitivity`` and ``specificity``
+    with profile-likelihood intervals and prediction intervals (``pi_low``/``pi_high``), ``tau_logit_*`` and
+    ``correlation`` with their intervals, ``tau2_logit_*``, ``sites_pooled`` (every site whose release bounds
+    its table), ``censored_sites``, and ``not_estimable`` (quantity -> "not estimable: <reason>"; the quantity
+    itself is then ``None``). ``bivariate_glmm_suppression_aware`` holds the same fit in full (SROC, regions).
+    Sensitivity analyses, labelled so: ``sensitivity_analyses.univariate`` (DerSimonian-Laird on complete
+    tables, continuity-corrected), ``bivariate`` (normal approximation, REML, complete tables) and
+    ``bivariate_glmm`` (binomial GLMM of complete tables only).
+    """
+    released, invalid = [], []
     for table in tables:
         try:
             released.append(table.released_table())
         except PoolingError as error:
             invalid.append({"site_id": table.site_id, "reason": str(error)})
-    results = {
+    headline = headline_accuracy(released)
+    not_estimable = dict(headline.not_estimable)
+    pooled: dict[str, Any] = {
+        "model": "headline",
+        "method": HEADLINE_METHOD + "; intervals: profile likelihood (summary point referred to t on k-2 df, "
+        "between-site SDs and correlation to chi-squared 1 df); " + PREDICTION_CONVENTION,
+    }
+    for name in ("sensitivity", "specificity"):
+        interval = getattr(headline, name)
+        prediction = getattr(headline, f"{name}_prediction")
+        entry = _interval_json(interval)
+        if entry is not None:
+            entry["pi_low"] = None if prediction is None else prediction.ci_low
+            entry["pi_high"] = None if prediction is None else prediction.ci_high
+        pooled[name] = entry
+    for name, key in (("sensitivity", "tau_logit_sensitivity"), ("specificity", "tau_logit_fpr")):
+        tau = getattr(headline, key)
+        pooled[f"tau_logit_{name}"] = _interval_json(tau)
+        pooled[f"tau2_logit_{name}"] = None if tau is None or tau.estimate is None else tau.estimate**2
+        pooled[f"i2_logit_{name}"] = None  # I² belongs to the univariate model (sensitivity analysis below)
+        if key in not_estimable:
+            not_estimable[f"tau_logit_{name}"] = not_estimable.pop(key)
+    pooled["correlation"] = _interval_json(headline.correlation)
+    pooled["not_estimable"] = not_estimable
+    first = next(iter(not_estimable.values()), None)
+    if pooled["sensitivity"] is None or pooled["specificity"] is None:
+        pooled["note"] = first or "not estimable"
+    pooled["sites_pooled"] = list(headline.sites_pooled)
+    pooled["sites_not_pooled"] = [e.to_dict() for e in headline.sites_not_pooled] + invalid
+    pooled["censored_sites"] = list(headline.censored_sites)
+    pooled["continuity_corrected_sites"] = []
+    univariate = pool_accuracy(tables)
+    univariate["label"] = "sensitivity analysis: univariate, complete tables only"
+    pooled["sensitivity_analyses"] = {"univariate": univariate}
+    others = {
         "bivariate": _attempt(lambda: reitsma(released)),
         "bivariate_glmm": _attempt(lambda: glmm_accuracy(released, suppressed="drop")),
-        "bivariate_glmm_suppression_aware": _attempt(lambda: glmm_accuracy(released, suppressed="censor")),
     }
-    if invalid:
-        for value in results.values():
-            value.setdefault("sites_not_pooled", [])
-            value["sites_not_pooled"] = [*value["sites_not_pooled"], *invalid]
-    return results
+    for key, label in (
+        ("bivariate", "sensitivity analysis: normal approximation, complete tables only"),
+        ("bivariate_glmm", "sensitivity analysis: binomial GLMM, complete tables only"),
+    ):
+        others[key]["label"] = label
+        if invalid:
+            others[key]["sites_not_pooled"] = [*others[key].get("sites_not_pooled", []), *invalid]
+    pooled.update(others)
+    pooled["bivariate_glmm_suppression_aware"] = (
+        {**headline.fit.to_dict(), "label": "headline"} if headline.fit is not None else _not_estimated(first or "")
+    )
+    return pooled
 
 
 # --- further analyses from release sections ----------------------------------------------------------
@@ -566,8 +629,7 @@ def analyze_tables(
         entry["flow"] = table.flow
         entry.update(_site_accuracy(table, prevalence))
         sites.append(entry)
-    pooled = pool_accuracy(tables)
-    pooled.update(_bivariate_results(tables))
+    pooled = headline_pooling(tables)
     result: dict[str, Any] = {"study_id": study_id, "sites": sites}
     for key, build in (
         ("discrimination", _discrimination),

@@ -12,8 +12,6 @@ import re
 from collections.abc import Iterator
 from typing import Any
 
-from federation.protocol.words import POOLED_MODELS
-
 from .html import esc
 from .inputs import ReportInputs
 
@@ -290,7 +288,10 @@ def methods_text(inputs: ReportInputs) -> tuple[str, list[str]]:
         if pooled.get("sensitivity") is None:
             text.append(" No pooled estimate was formed: " + esc(pooled.get("note", "too few sites")) + ".")
         else:
-            text.append(" Heterogeneity is reported as τ² and I² on the log-odds scale")
+            text.append(
+                " Heterogeneity is reported as τ² on the log-odds scale"
+                + (" and I²" if pooled.get("i2_logit_sensitivity") is not None else "")
+            )
             has_pi = isinstance(pooled.get("sensitivity"), dict) and "pi_low" in pooled["sensitivity"]
             text.append(
                 ", with 95% prediction intervals for a new site (t on k − 2 degrees of freedom with the random-effects "
@@ -324,16 +325,12 @@ def methods_text(inputs: ReportInputs) -> tuple[str, list[str]]:
             if dropped
             else f"{len(suppressed_sites)} site(s) with a withheld cell stayed in the pool"
         )
-        kept = [
-            name
-            for name, value in pooled.items()
-            if isinstance(value, dict) and "censor" in str(value.get("method", "")) and value.get("sensitivity")
-        ]
-        if kept:
-            handled += (
-                f"; the {POOLED_MODELS['bivariate_glmm_suppression_aware']} kept them, counting each withheld cell "
-                "as lying somewhere "
-                "between 1 and k − 1 (interval-censored) instead of dropping the site"
+        if pooled.get("censored_sites"):
+            handled = (
+                f"{len(pooled['censored_sites'])} site(s) with a withheld cell stayed in the headline model: each "
+                "contributed the probability of every table its release allows, given the rule that withheld each "
+                "cell and the range the coordinator can work out from everything the site sent (interval "
+                "censoring); the univariate sensitivity analysis left them out"
             )
         text.append(f" {handled}.")
     if flow_suppressed:

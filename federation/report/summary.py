@@ -73,6 +73,9 @@ def heterogeneity_words(analysis: dict[str, Any], name: str, label: str) -> str:
             tau = traced(pooled[f"tau2_logit_{name}"], f"pooled.tau2_logit_{name}", f"{tau2:.3f}")
             tau_text = f"; τ² {tau} on the log-odds scale"
         sentences.append(f"{label} {words} (I² {i2_text}{tau_text}).")
+    elif tau2 is not None:  # the binomial headline model has a between-site variance but no I²
+        tau = traced(pooled[f"tau2_logit_{name}"], f"pooled.tau2_logit_{name}", f"{tau2:.3f}")
+        sentences.append(f"Between sites, {label.lower()} varied with τ² {tau} on the log-odds scale.")
     entry = pooled.get(name) if isinstance(pooled.get(name), dict) else {}
     if number(entry.get("pi_low")) is not None and number(entry.get("pi_high")) is not None:
         sentences.append(
@@ -145,9 +148,18 @@ def _prediction(entry: Any, key: str, separate: Any, separate_key: str) -> dict[
 def models_table(analysis: dict[str, Any]) -> str:
     """One row per pooling model the analysis ran: sites in it, sensitivity and specificity with CI and PI."""
     pooled = analysis["pooled"]
-    models: list[tuple[str, str, dict[str, Any]]] = [("pooled", "univariate random effects (headline)", pooled)]
+    models: list[tuple[str, str, dict[str, Any]]] = [
+        ("pooled", "bivariate binomial GLMM, every site (headline)", pooled)
+    ]
     for path, value in bivariate_results(analysis):
-        models.append((".".join(map(str, path)), humanise(path[-1:]), value))
+        if path[-1] == "bivariate_glmm_suppression_aware":
+            continue  # the headline itself, in full
+        models.append((".".join(map(str, path)), humanise(path[-1:]) + " (sensitivity analysis)", value))
+    univariate = (pooled.get("sensitivity_analyses") or {}).get("univariate")
+    if isinstance(univariate, dict):
+        models.append(
+            ("pooled.sensitivity_analyses.univariate", "univariate random effects (sensitivity analysis)", univariate)
+        )
     if len(models) < 2:
         return ""
     rows = []

@@ -58,7 +58,8 @@ def test_demo_report_renders_in_chromium_with_key_numbers(demo_store: Path, demo
         assert f"{100 * entry['ci_low']:.1f}% to {100 * entry['ci_high']:.1f}%" in text, name
     n_pooled, n_sites = len(pooled["sites_pooled"]), len(analysis["sites"])
     assert f"{n_pooled} of {n_sites} sites with a release were pooled" in text
-    assert n_pooled == 7 and n_sites == 8  # the demo's design: skarrow-specialist is fully suppressed
+    # The demo's design: skarrow-specialist's cells are all withheld; the headline pools it through censoring.
+    assert n_pooled == 8 and n_sites == 8 and pooled["censored_sites"] == ["skarrow-specialist"]
 
     figures = [n for n in dom.iter("figure") if "plot" in n.classes()]
     ids = {f.attrs["id"] for f in figures}

@@ -66,14 +66,22 @@ def test_accuracy_pooling_keeps_foundation_keys_and_adds_bivariate_results() -> 
     json.dumps(result, allow_nan=False)  # no NaN or infinity anywhere
     assert FOUNDATION_SITE_KEYS <= set(result["sites"][0]) and FOUNDATION_POOLED_KEYS <= set(result["pooled"])
     pooled = result["pooled"]
-    assert pooled["sites_not_pooled"] == [{"site_id": "small-site", "reason": withheld_cells(("tp", "fp", "fn", "tn"))}]
+    # The headline keeps every site; the univariate sensitivity analysis drops the one with withheld cells.
+    assert pooled["sites_not_pooled"] == [] and "small-site" in pooled["censored_sites"]
+    univariate = pooled["sensitivity_analyses"]["univariate"]
+    assert univariate["sites_not_pooled"] == [
+        {"site_id": "small-site", "reason": withheld_cells(("tp", "fp", "fn", "tn"))}
+    ]
     direct = reitsma([t.released_table() for t in tables])
     assert pooled["bivariate"]["mean_logit_sensitivity"] == direct.mean_logit_sensitivity
     assert pooled["bivariate"]["sroc"]["area_under_curve"] == direct.sroc.area_under_curve
     assert pooled["bivariate_glmm"]["n_sites"] == 8
     aware = pooled["bivariate_glmm_suppression_aware"]
     assert aware["n_sites"] == 9 and "small-site" in aware["sites_pooled"]
-    assert aware["mean_logit_sensitivity"] == glmm_accuracy([t.released_table() for t in tables]).mean_logit_sensitivity
+    direct = glmm_accuracy([t.released_table() for t in tables])
+    assert aware["mean_logit_sensitivity"] == pytest.approx(direct.mean_logit_sensitivity, abs=1e-4)
+    assert pooled["sensitivity"]["estimate"] == aware["sensitivity"]["estimate"]
+    assert pooled["sensitivity"]["method"].startswith("profile likelihood")
     assert pooled["sensitivity"]["pi_low"] < pooled["sensitivity"]["ci_low"]
     site = result["sites"][0]
     assert site["ppv"]["estimate"] == pytest.approx(47 / 148) and site["likelihood_ratio_positive"] is not None
@@ -89,8 +97,13 @@ def test_a_model_that_cannot_be_estimated_says_why() -> None:
     assert result["pooled"]["bivariate"] == {
         "status": "not estimated",
         "reason": "bivariate pooling needs at least 2 sites with complete tables, got 1",
+        "label": "sensitivity analysis: normal approximation, complete tables only",
     }
-    assert result["pooled"]["bivariate_glmm_suppression_aware"]["n_sites"] == 2
+    # Two sites cannot support the bivariate random-effects headline: it says so, and prints no number.
+    pooled = result["pooled"]
+    assert pooled["sensitivity"] is None and pooled["specificity"] is None
+    assert pooled["note"] == "not estimable: 2 usable site(s); the bivariate random-effects model needs at least 4"
+    assert pooled["bivariate_glmm_suppression_aware"]["status"] == "not estimated"
 
 
 def _roc_section(s, edges: list[float]) -> dict:
