@@ -1,22 +1,30 @@
-"""Simulation study: what dropping suppressed sites costs, and how much suppression-aware pooling recovers.
+"""Simulation study: bias and coverage of every pooling method the tool reports, in several consortia.
 
 Each synthetic consortium has sites whose true logit sensitivity and logit false-positive rate are drawn
 from a bivariate normal distribution with known mean, so the true summary sensitivity and specificity
 (``expit`` of the mean, the quantity every bivariate model estimates) are known. Each site's records
 pass through the project's own disclosure rule (:func:`site_agent.disclosure.suppress`, with the flow and
 2×2 relations a release carries: records read = analysed + excluded by reason; analysed = with + without
-the condition; with = TP + FN; without = FP + TN), and the coordinator pools what was released in three
-ways:
+the condition; with = TP + FN; without = FP + TN), and the coordinator pools what was released.
 
-- ``reitsma_drop``: bivariate normal REML of the sites released in full (the usual practice);
-- ``glmm_drop``: exact binomial GLMM of the sites released in full;
-- ``glmm_censored``: the same GLMM with every site kept, suppressed cells interval-censored.
+Methods, one row per interval (the ``interval`` column names its reference distribution, so z and t are
+never mixed in one column):
 
-Reported per method: bias of the pooled sensitivity and specificity (probability scale), RMSE, coverage
-of the 95% confidence intervals as each method reports them (goal 93–97%; the GLMM uses t on k − 2 df) and
-with the normal quantile, mean interval width, and how many sites were pooled.
+- ``headline``: the bivariate binomial GLMM over every site, withheld cells censored under the replayed
+  rule, profile-likelihood interval referred to t on k − 2 df (:mod:`federation.stats.headline`);
+- ``glmm_censored``: the same fit with Wald intervals (z, and t on k − 2 df);
+- ``glmm_drop``: the binomial GLMM of the sites released in full, Wald t on k − 2 df;
+- ``reitsma_drop``: bivariate normal REML of the sites released in full, Wald z;
+- ``univariate_drop``: DerSimonian–Laird of each measure over the sites released in full (0.5 added to a
+  table with a zero cell), Wald z.
 
-Run: ``make validate-stats`` (1,000 consortia) or ``python -m simulations.validate_stats --consortia 200``.
+Reported per scenario, method and measure: bias of the pooled sensitivity and specificity (probability
+scale) with its Monte Carlo standard error (MCSE), RMSE, coverage of the 95% interval with its MCSE
+(goal 93–97%), mean interval width, how many sites each method pooled, and fits that failed or were
+declared not estimable.
+
+Run: ``make validate-stats`` (300 consortia per scenario), ``make validate-stats VALIDATE_QUICK=1`` (60
+per scenario, under 10 minutes on 2 cores) or ``python -m simulations.validate_stats --consortia 200``.
 Everything is invented; nothing here describes a real consortium.
 """
 
@@ -34,12 +42,22 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
+from scipy import special, stats
 
-from federation.stats import PoolingError, ReleasedTable, glmm_accuracy, reitsma
+from federation.stats import PoolingError, ReleasedTable, glmm_accuracy, random_effects, reitsma
+from federation.stats.headline import headline_accuracy
 from site_agent.counts import Relation
 from site_agent.disclosure import suppress
 
-METHODS = ("reitsma_drop", "glmm_drop", "glmm_censored")
+# (method, interval) rows of the table; the interval names its reference distribution.
+ROWS = (
+    ("headline", "profile, t(k-2)"),
+    ("glmm_censored", "Wald, t(k-2)"),
+    ("glmm_censored", "Wald, z"),
+    ("glmm_drop", "Wald, t(k-2)"),
+    ("reitsma_drop", "Wald, z"),
+    ("univariate_drop", "Wald, z"),
+)
 REASONS = ("duplicate_id", "missing_outcome", "missing_feature", "out_of_range", "unknown_category")
 DEFAULT_OUT = Path(__file__).with_name("validate_stats_results.json")
 
@@ -48,6 +66,7 @@ DEFAULT_OUT = Path(__file__).with_name("validate_stats_results.json")
 class Scenario:
     """The truth and the design of every synthetic consortium (all invented)."""
 
+    name: str = "mixed"
     sensitivity: float = 0.85
     specificity: float = 0.80
     sd_logit_sensitivity: float = 0.5
@@ -141,126 +160,209 @@ def consortium(scenario: Scenario, rng: np.random.Generator) -> list[ReleasedTab
     return tables
 
 
-def _fit(method: str, tables: list[ReleasedTable]) -> Any:
-    if method == "reitsma_drop":
-        return reitsma(tables)
-    return glmm_accuracy(tables, suppressed="drop" if method == "glmm_drop" else "censor")
+SCENARIOS = (
+    Scenario(),
+    Scenario(
+        name="screening",
+        sensitivity=0.80,
+        specificity=0.90,
+        sd_logit_sensitivity=0.4,
+        sd_logit_fpr=0.4,
+        correlation=-0.2,
+        sites=20,
+        min_size=30,
+        max_size=400,
+        min_prevalence=0.02,
+        max_prevalence=0.15,
+    ),
+    Scenario(name="few sites", sites=8, min_size=60, max_size=600, min_prevalence=0.15, max_prevalence=0.40),
+)
+
+
+def _logit(p: float) -> float:
+    return math.log(p / (1 - p))
+
+
+def _univariate(tables: list[ReleasedTable]) -> dict[str, Any]:
+    complete = [t for t in tables if t.is_complete and t.tp + t.fn > 0 and t.fp + t.tn > 0]  # type: ignore[operator]
+    if len(complete) < 2:
+        raise PoolingError("fewer than 2 complete tables")
+    out: dict[str, Any] = {"sites": len(complete)}
+    for measure, (events, others) in (("sensitivity", ("tp", "fn")), ("specificity", ("tn", "fp"))):
+        y, v = [], []
+        for t in complete:
+            a, b = float(getattr(t, events)), float(getattr(t, others))
+            if min(t.cells) == 0:  # type: ignore[type-var]
+                a, b = a + 0.5, b + 0.5
+            y.append(math.log(a / b))
+            v.append(1 / a + 1 / b)
+        pooled = random_effects(y, v, method="DL", tau2_interval=False)
+        out[measure] = (pooled.estimate, pooled.ci_low, pooled.ci_high)
+    return out
+
+
+def _logit_interval(centre: float, se: float, quantile: float) -> tuple[float, float, float]:
+    return (centre, centre - quantile * se, centre + quantile * se)
 
 
 def run_one(args: tuple[Scenario, int]) -> dict[str, Any]:
-    """One consortium: its suppression pattern and each method's estimates (None where a fit failed)."""
+    """One consortium: its suppression pattern and each row's logit-scale (estimate, low, high) per measure.
+
+    Specificity is carried as logit specificity. ``None`` where a fit failed or was declared not estimable.
+    """
     scenario, seed = args
     rng = np.random.default_rng(seed)
     tables = consortium(scenario, rng)
+    k = len(tables)
     row: dict[str, Any] = {"suppressed_sites": sum(1 for t in tables if not t.is_complete)}
-    for method in METHODS:
-        try:
-            fit = _fit(method, tables)
-        except PoolingError:
-            row[method] = None
-            continue
-        row[method] = {
-            "sites": fit.n_sites,
-            "sensitivity": (fit.sensitivity.estimate, fit.sensitivity.ci_low, fit.sensitivity.ci_high),
-            "specificity": (fit.specificity.estimate, fit.specificity.ci_low, fit.specificity.ci_high),
-            "logit": (fit.mean_logit_sensitivity, fit.se_logit_sensitivity, fit.mean_logit_fpr, fit.se_logit_fpr),
+    z = 1.959963984540054
+    try:
+        head = headline_accuracy(tables, intervals=False)
+    except PoolingError:
+        head = None
+    if head is not None and head.sensitivity is not None and head.specificity is not None and head.fit is not None:
+        fit = head.fit
+        t_q = float(stats.t.isf(0.025, k - 2))
+        row["headline"] = {
+            "sites": len(head.sites_pooled),
+            "sensitivity": tuple(
+                _logit(v) for v in (head.sensitivity.estimate, head.sensitivity.ci_low, head.sensitivity.ci_high)
+            ),
+            "specificity": tuple(
+                _logit(v) for v in (head.specificity.estimate, head.specificity.ci_low, head.specificity.ci_high)
+            ),
         }
+        for label, q in (("glmm_censored|Wald, t(k-2)", t_q), ("glmm_censored|Wald, z", z)):
+            row[label] = {
+                "sites": fit.n_sites,
+                "sensitivity": _logit_interval(fit.mean_logit_sensitivity, fit.se_logit_sensitivity, q),
+                "specificity": _logit_interval(-fit.mean_logit_fpr, fit.se_logit_fpr, q),
+            }
+    for name, build in (
+        ("glmm_drop|Wald, t(k-2)", lambda: glmm_accuracy(tables, suppressed="drop", interval="t")),
+        ("reitsma_drop|Wald, z", lambda: reitsma(tables)),
+    ):
+        try:
+            fit = build()
+        except PoolingError:
+            continue
+        q = float(stats.t.isf(0.025, fit.n_sites - 2)) if name.startswith("glmm") else z
+        row[name] = {
+            "sites": fit.n_sites,
+            "sensitivity": _logit_interval(fit.mean_logit_sensitivity, fit.se_logit_sensitivity, q),
+            "specificity": _logit_interval(-fit.mean_logit_fpr, fit.se_logit_fpr, q),
+        }
+    try:
+        row["univariate_drop|Wald, z"] = _univariate(tables)
+    except PoolingError:
+        pass
     return row
 
 
+def _key(method: str, interval: str) -> str:
+    return method if method == "headline" else f"{method}|{interval}"
+
+
 def summarise(rows: list[dict[str, Any]], scenario: Scenario) -> dict[str, Any]:
-    truth = {"sensitivity": scenario.sensitivity, "specificity": scenario.specificity}
+    truth = {"sensitivity": scenario.mean[0], "specificity": -scenario.mean[1]}
     out: dict[str, Any] = {}
-    for method in METHODS:
-        fits = [r[method] for r in rows if r[method] is not None]
-        entry: dict[str, Any] = {"fits": len(fits), "failed": len(rows) - len(fits)}
+    for method, interval in ROWS:
+        fits = [r[_key(method, interval)] for r in rows if _key(method, interval) in r]
+        entry: dict[str, Any] = {
+            "interval": interval,
+            "fits": len(fits),
+            "failed_or_not_estimable": len(rows) - len(fits),
+        }
         if fits:
             entry["mean_sites_pooled"] = float(np.mean([f["sites"] for f in fits]))
-            for measure, true in truth.items():
-                est = np.array([f[measure][0] for f in fits])
-                low = np.array([f[measure][1] for f in fits])
-                high = np.array([f[measure][2] for f in fits])
-                covered = (low <= true) & (true <= high)
-                # The same intervals with the normal quantile (the GLMM reports t on k - 2 df by default).
-                j = 0 if measure == "sensitivity" else 2
-                centre = np.array([f["logit"][j] for f in fits])
-                se = np.array([f["logit"][j + 1] for f in fits])
-                target = scenario.mean[j // 2]
-                covered_z = np.abs(centre - target) <= 1.959963984540054 * se
+            for measure, target in truth.items():
+                est, low, high = (np.array([f[measure][j] for f in fits]) for j in range(3))
+                p_true = float(special.expit(target))
+                p_est = special.expit(est)
+                covered = (low <= target) & (target <= high)
+                n = covered.size
                 entry[measure] = {
-                    "truth": true,
-                    "mean_estimate": float(est.mean()),
-                    "bias": float(est.mean() - true),
-                    "bias_mcse": float(est.std(ddof=1) / math.sqrt(est.size)) if est.size > 1 else None,
-                    "rmse": float(np.sqrt(np.mean((est - true) ** 2))),
+                    "truth": p_true,
+                    "bias": float(p_est.mean() - p_true),
+                    "bias_mcse": float(p_est.std(ddof=1) / math.sqrt(n)) if n > 1 else None,
+                    "rmse": float(np.sqrt(np.mean((p_est - p_true) ** 2))),
                     "coverage": float(covered.mean()),
-                    "coverage_mcse": float(math.sqrt(covered.mean() * (1 - covered.mean()) / covered.size)),
-                    "mean_ci_width": float(np.mean(high - low)),
-                    "coverage_normal_quantile": float(covered_z.mean()),
+                    "coverage_mcse": float(math.sqrt(max(covered.mean() * (1 - covered.mean()), 1e-12) / n)),
+                    "mean_ci_width": float(np.mean(special.expit(high) - special.expit(low))),
                 }
-        out[method] = entry
+        out[f"{method} [{interval}]"] = entry
     return out
 
 
 def print_table(summary: dict[str, Any], rows: list[dict[str, Any]], scenario: Scenario, seconds: float) -> None:
     suppressed = np.array([r["suppressed_sites"] for r in rows])
     print(
-        f"{len(rows)} consortia of {scenario.sites} sites; true sensitivity {scenario.sensitivity}, specificity "
-        f"{scenario.specificity}; sites with suppressed cells per consortium: mean {suppressed.mean():.1f} "
-        f"(range {suppressed.min()}-{suppressed.max()}); {seconds:.0f} s"
+        f"\nscenario {scenario.name!r}: {len(rows)} consortia of {scenario.sites} sites ({scenario.min_size}-"
+        f"{scenario.max_size} participants, prevalence {scenario.min_prevalence:g}-{scenario.max_prevalence:g}); "
+        f"true sensitivity {scenario.sensitivity}, specificity {scenario.specificity}; sites with withheld cells "
+        f"per consortium: mean {suppressed.mean():.1f} of {scenario.sites}; {seconds:.0f} s"
     )
     header = (
-        f"{'method':<15}{'fits':>6}{'sites':>7}  {'measure':<12}{'bias':>9}{'(MCSE)':>8}{'rmse':>8}"
-        f"{'coverage':>10}{'cov. z':>8}{'CI width':>10}"
+        f"{'method':<17}{'interval':<17}{'fits':>5}{'sites':>6}  {'measure':<12}{'bias':>8}{'(MCSE)':>8}"
+        f"{'rmse':>7}{'coverage':>10}{'(MCSE)':>7}{'width':>7}"
     )
     print(header)
     print("-" * len(header))
-    for method in METHODS:
-        entry = summary[method]
+    for name, entry in summary.items():
+        method, interval = name.split(" [")[0], entry["interval"]
         for measure in ("sensitivity", "specificity"):
             if measure not in entry:
-                continue
+                print(f"{method:<17}{interval:<17}{entry['fits']:>5}  (no fit)")
+                break
             m = entry[measure]
             print(
-                f"{method:<15}{entry['fits']:>6}{entry['mean_sites_pooled']:>7.1f}  {measure:<12}"
-                f"{m['bias']:>+9.4f}{m['bias_mcse']:>8.4f}{m['rmse']:>8.4f}{100 * m['coverage']:>9.1f}%"
-                f"{100 * m['coverage_normal_quantile']:>7.1f}%{m['mean_ci_width']:>10.4f}"
+                f"{method:<17}{interval:<17}{entry['fits']:>5}{entry['mean_sites_pooled']:>6.1f}  {measure:<12}"
+                f"{m['bias']:>+8.4f}{m['bias_mcse']:>8.4f}{m['rmse']:>7.4f}{100 * m['coverage']:>9.1f}%"
+                f"{100 * m['coverage_mcse']:>6.1f}%{m['mean_ci_width']:>7.3f}"
             )
 
 
 def main(argv: Sequence[str] | None = None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    parser.add_argument("--consortia", type=int, default=1000, help="number of synthetic consortia (default 1000)")
+    parser.add_argument("--consortia", type=int, default=300, help="synthetic consortia per scenario (default 300)")
+    parser.add_argument("--quick", action="store_true", help="60 consortia per scenario (under 10 minutes)")
+    parser.add_argument("--scenario", action="append", help="run only this scenario (repeatable)")
     parser.add_argument("--seed", type=int, default=20260, help="master seed")
     parser.add_argument("--workers", type=int, default=min(2, os.cpu_count() or 1), help="processes")
     parser.add_argument("--out", type=Path, default=DEFAULT_OUT, help="where to write the JSON results")
     args = parser.parse_args(argv)
-    if args.consortia < 2:
+    consortia = 60 if args.quick else args.consortia
+    if consortia < 2:
         parser.error("--consortia must be at least 2")
-    scenario = Scenario()
-    seeds = np.random.SeedSequence(args.seed).generate_state(args.consortia, dtype=np.uint64)
-    jobs = [(scenario, int(s)) for s in seeds]
-    started = time.perf_counter()
-    if args.workers > 1:
-        with ProcessPoolExecutor(args.workers) as pool:
-            rows = list(pool.map(run_one, jobs, chunksize=10))
-    else:
-        rows = [run_one(job) for job in jobs]
-    seconds = time.perf_counter() - started
-    summary = summarise(rows, scenario)
-    print_table(summary, rows, scenario, seconds)
-    result = {
-        "scenario": {
-            **{k: v for k, v in scenario.__dict__.items() if not isinstance(v, tuple)},
-            "exclusion_rates": dict(zip(REASONS, scenario.exclusion_rates, strict=True)),
-        },
-        "consortia": args.consortia,
-        "seed": args.seed,
-        "seconds": round(seconds, 1),
-        "suppressed_sites_per_consortium": float(np.mean([r["suppressed_sites"] for r in rows])),
-        "methods": summary,
-    }
-    args.out.write_text(json.dumps(result, indent=2) + "\n")
+    chosen = [s for s in SCENARIOS if not args.scenario or s.name in args.scenario]
+    if not chosen:
+        parser.error(f"--scenario must be one of: {', '.join(s.name for s in SCENARIOS)}")
+    results = []
+    for number, scenario in enumerate(chosen):
+        seeds = np.random.SeedSequence([args.seed, number]).generate_state(consortia, dtype=np.uint64)
+        jobs = [(scenario, int(s)) for s in seeds]
+        started = time.perf_counter()
+        if args.workers > 1:
+            with ProcessPoolExecutor(args.workers) as pool:
+                rows = list(pool.map(run_one, jobs, chunksize=4))
+        else:
+            rows = [run_one(job) for job in jobs]
+        seconds = time.perf_counter() - started
+        summary = summarise(rows, scenario)
+        print_table(summary, rows, scenario, seconds)
+        results.append(
+            {
+                "scenario": {
+                    **{k: v for k, v in scenario.__dict__.items() if not isinstance(v, tuple)},
+                    "exclusion_rates": dict(zip(REASONS, scenario.exclusion_rates, strict=True)),
+                },
+                "consortia": consortia,
+                "seconds": round(seconds, 1),
+                "withheld_sites_per_consortium": float(np.mean([r["suppressed_sites"] for r in rows])),
+                "methods": summary,
+            }
+        )
+    args.out.write_text(json.dumps({"seed": args.seed, "scenarios": results}, indent=2) + "\n")
     print(f"results: {args.out}")
     return 0
 

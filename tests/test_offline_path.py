@@ -143,8 +143,11 @@ def test_default_policy_suppresses_small_cells_and_keeps_the_rest_exact(study, t
         assert len(site["suppressed"]) != 1
         start += n
     assert any(site["suppressed"] for site in result["sites"]), "this split has small error cells at k=10"
-    not_pooled = {e["site_id"] for e in result["pooled"]["sites_not_pooled"]}
-    assert not_pooled == {s["site_id"] for s in result["sites"] if s["suppressed"]}
+    # The univariate sensitivity analysis drops the sites with withheld cells; the headline keeps them, censored.
+    withheld = {s["site_id"] for s in result["sites"] if s["suppressed"]}
+    univariate = result["pooled"]["sensitivity_analyses"]["univariate"]
+    assert {e["site_id"] for e in univariate["sites_not_pooled"]} == withheld
+    assert set(result["pooled"]["censored_sites"]) == withheld and not result["pooled"]["sites_not_pooled"]
     for path in releases:
         doc = json.loads(path.read_text())
         assert doc["policy"]["min_cell_size"] == 10

@@ -27,12 +27,16 @@ def test_readme_offline_sequence(tmp_path):
     script = f"set -euo pipefail\nexport D={demo} W={work}\ncd {ROOT}\n" + readme_block()
     result = subprocess.run(["bash", "-c", script], capture_output=True, text=True, timeout=300)
     assert result.returncode == 0, result.stderr
-    assert "not pooled: skarrow-specialist" in result.stdout
+    # Three sites are too few for the bivariate headline; the univariate sensitivity analysis pools two.
+    assert "sensitivity: not estimable: 3 usable site(s)" in result.stdout
+    assert "left out of the univariate sensitivity analysis: skarrow-specialist" in result.stdout
     analysis = json.loads((work / "analysis.json").read_text())
     assert [s["site_id"] for s in analysis["sites"]] == [
         "amberlow-referral",
         "northvale-community",
         "skarrow-specialist",
     ]
-    assert analysis["pooled"]["sites_pooled"] == ["amberlow-referral", "northvale-community"]
-    assert 0.0 < analysis["pooled"]["sensitivity"]["estimate"] < 1.0
+    assert analysis["pooled"]["sensitivity"] is None
+    univariate = analysis["pooled"]["sensitivity_analyses"]["univariate"]
+    assert univariate["sites_pooled"] == ["amberlow-referral", "northvale-community"]
+    assert 0.0 < univariate["sensitivity"]["estimate"] < 1.0

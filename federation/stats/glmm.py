@@ -191,15 +191,20 @@ class _Quadrature:
                 self.modes = u  # converged: the curvature just computed is the one at the mode
                 return u, hess, omega
             scale = np.ones(len(u))
-            for _ in range(40):  # step halving, unit by unit, until the objective does not fall
+            for _ in range(8):  # step halving, unit by unit, until the objective does not fall
                 trial = u + scale[:, None] * step
                 new = self._objective(mean, omega, trial)
                 worse = ~(new >= value - 1e-12)
                 if not worse.any():
                     break
                 scale[worse] *= 0.5
+            else:  # a unit whose objective still falls after 8 halvings is at its mode to rounding: stay
+                scale[worse] = 0.0
+                trial = u + scale[:, None] * step
+                new = np.where(worse, value, new)
+            gain = float(np.max(np.where(np.isfinite(new), new - value, 0.0)))
             u, value = trial, np.where(np.isfinite(new), new, value)
-            if np.max(np.abs(scale[:, None] * step)) < _NEWTON_TOLERANCE:
+            if np.max(np.abs(scale[:, None] * step)) < _NEWTON_TOLERANCE or gain < 1e-13:
                 break
         self.modes = u
         _, hess = self._curvature(mean, omega, u)
@@ -305,7 +310,12 @@ class GlmmLikelihood:
         return -value, -gradient
 
     def maximise(
-        self, theta0: NDArray[np.float64], free: Sequence[int], tolerance: float = 1e-10
+        self,
+        theta0: NDArray[np.float64],
+        free: Sequence[int],
+        tolerance: float = 1e-10,
+        gtol: float = 1e-6,
+        maxiter: int = 400,
     ) -> tuple[NDArray[np.float64], float, bool]:
         """Maximise over ``free`` from ``theta0``; returns (theta, negative log-likelihood, converged)."""
         free = list(free)
@@ -323,7 +333,7 @@ class GlmmLikelihood:
             jac=True,
             method="L-BFGS-B",
             bounds=[BOUNDS[i] for i in free],
-            options={"ftol": tolerance, "gtol": 1e-6, "maxiter": 400},
+            options={"ftol": tolerance, "gtol": gtol, "maxiter": maxiter},
         )
         theta = base.copy()
         theta[free] = found.x

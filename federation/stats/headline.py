@@ -167,14 +167,16 @@ def _maximise_near(
     low = np.array([BOUNDS[i][0] for i in free])
     high = np.array([BOUNDS[i][1] for i in free])
     nll, gradient = likelihood.negative(theta)
-    try:
-        inverse = np.linalg.inv(hess)
+    try:  # the Hessian made positive definite (near a bound the joint one need not be)
+        values, vectors = np.linalg.eigh(0.5 * (hess + hess.T))
+        floor = max(float(np.max(values)), 1e-6) * 1e-4
+        inverse = (vectors / np.maximum(values, floor)) @ vectors.T
     except np.linalg.LinAlgError:
         inverse = None
     for _ in range(12 if inverse is not None else 0):
         step = -inverse @ gradient[free]
         scale = 1.0
-        for _ in range(6):
+        for _ in range(2):  # a step that must be halved more than once: the quadratic guide is poor here
             trial = theta.copy()
             trial[free] = np.clip(theta[free] + scale * step, low, high)
             value, trial_gradient = likelihood.negative(trial)
@@ -188,7 +190,7 @@ def _maximise_near(
         theta, nll, gradient = trial, value, trial_gradient
         if moved < 1e-4 or gained < 1e-7:  # the signed root needs the maximum to about 1e-4
             return theta, nll
-    theta, nll, _ = likelihood.maximise(theta, free, tolerance=1e-9)
+    theta, nll, _ = likelihood.maximise(theta, free, tolerance=1e-8, gtol=1e-3, maxiter=80)
     return theta, nll
 
 
@@ -209,24 +211,26 @@ def _profile_limit(
     low, high = BOUNDS[index]
     previous_v, previous_r = float(theta_hat[index]), 0.0
     v = float(np.clip(theta_hat[index] + direction * step, low, high))
-    # The quadratic approximation's path of the other parameters as this one moves (a warm start).
+    # Warm start: the previous point's maximiser (continuation), with the means moved along the quadratic
+    # approximation's path; the variance parameters' path is too curved for that guess to help.
     j = free.index(index)
     rest = [free.index(i) for i in others]
     try:
         slope = -np.linalg.solve(hess[np.ix_(rest, rest)], hess[rest, j])
     except np.linalg.LinAlgError:
         slope = np.zeros(len(rest))
-    for _ in range(8):
-        start = theta_hat.copy()
-        start[others] = np.clip(
-            theta_hat[others] + slope * (v - theta_hat[index]), *np.array([BOUNDS[i] for i in others]).T
-        )
+    slope = np.where(np.array(others) < 2, slope, 0.0)
+    current, at = theta_hat.copy(), float(theta_hat[index])
+    for _ in range(6):
+        start = current.copy()
+        start[others] = np.clip(current[others] + slope * (v - at), *np.array([BOUNDS[i] for i in others]).T)
         start[index] = v
         theta, nll = _maximise_near(likelihood, start, others, hess[np.ix_(rest, rest)])
+        current, at = theta, v
         trace.append(likelihood.evaluations)
         r = _signed_root(nll, nll_hat)
         at_bound = v <= low + 1e-9 or v >= high - 1e-9
-        if abs(r - target) < 0.01 * target:
+        if abs(r - target) < 0.015 * target:
             return v, False
         if at_bound and r < target:
             return v, True
