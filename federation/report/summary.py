@@ -217,6 +217,14 @@ def summary_section(inputs: ReportInputs) -> str:
         + f". Evidence: the stored site releases, digest {ident(inputs.releases_digest)}.</p>"
     )
     parts.append(_headline(analysis))
+    unsupported = pooled.get("not_estimable") if isinstance(pooled.get("not_estimable"), dict) else {}
+    if unsupported and (pooled.get("sensitivity") is not None or pooled.get("specificity") is not None):
+        # Some figures stand and some cannot be estimated: say which, in the analysis's own words.
+        items = "".join(
+            f"<li>{esc(name.replace('_', ' '))}: {quote(str(reason), f'pooled.not_estimable.{name}')}</li>"
+            for name, reason in unsupported.items()
+        )
+        parts.append(f'<div class="note" id="not-estimable"><ul>{items}</ul></div>')
     if pooled.get("sensitivity") is None or pooled.get("specificity") is None:
         note = pooled.get("note")
         reason = quote(note, "pooled.note") if isinstance(note, str) else "too few sites could be pooled"

@@ -49,6 +49,13 @@ def _table(results: dict[str, Any]) -> str:
             f"univariate DL | {row['bivariate_ratio_to_dl']:.0f}x / {row['glmm_ratio_to_dl']:.0f}x; REML "
             f"{row['bivariate_ratio_to_target']:.3f} of target | REML < 1 s at 1,000 | |"
         )
+    h = results.get("headline")
+    if h:
+        lines.append(
+            f"| headline GLMM with profile intervals | {h['sites']} sites | {h['headline_s']:.2f} s | "
+            f"{h['glmm_s']:.2f} s (plain fit) | {h['ratio_to_plain_fit']:.1f}x; {h['ratio_to_target']:.2f} of target | "
+            "< 5 s | |"
+        )
     deployment = results.get("deployment", [])
     for row in [*results.get("federation", []), *(deployment if isinstance(deployment, list) else [deployment])]:
         deployed = row["engine"].startswith("deployment")
@@ -100,6 +107,7 @@ def main() -> None:
         stage("site_path", site_path.run, work, records, 1 if args.quick else 2)
         stage("audit", audit.run, work)
         stage("stats", stats.run)
+        stage("headline", stats.run_headline)
         stage("federation", federation.run_simulation_engine, work, sites)
         if args.deploy:
             stage("deployment", federation.run_deployment, work)

@@ -38,6 +38,9 @@ def test_one_site_explains_instead_of_a_diamond(one_site_store: Path, tmp_path: 
     note = dom.find_id("no-pooled-estimate")
     assert note is not None
     assert analysis["pooled"]["note"] in note.text()
+    assert analysis["pooled"]["note"] == (
+        "not estimable: 1 usable site(s); the bivariate random-effects model needs at least 4"
+    )
     assert "too few to pool" in dom.find_id("summary").text()
     assert dom.find_id("pooled-sensitivity") is None  # no headline card for a pooled value
     figure = dom.find_id("fig-forest-sensitivity")
