@@ -2,7 +2,8 @@
 
 Single-site accuracy (:mod:`.proportions`), univariate pooling across sites (:mod:`.univariate`) and
 the JSON-safe result objects they return (:mod:`.results`); bivariate pooling of sensitivity and
-specificity (:mod:`.bivariate`, :mod:`.glmm`) with suppressed cells modelled (:mod:`.suppression`);
+specificity (:mod:`.bivariate`, :mod:`.glmm`) with suppressed cells modelled (:mod:`.suppression`); the
+headline model with profile-likelihood intervals and its "not estimable" checks (:mod:`.headline`);
 discrimination and calibration (:mod:`.performance`); a summary ROC from each site's own score bands
 (:mod:`.multiple_threshold`); what a reviewer asks for: agreement and proportions pooled (:mod:`.agreement`),
 likelihood ratios from the bivariate model (:mod:`.summary_ratios`), bivariate meta-regression
@@ -36,6 +37,7 @@ from federation.stats.comparison import (
 )
 from federation.stats.funnel import FunnelAsymmetry, deeks_funnel_test
 from federation.stats.glmm import binomial_glmm, glmm_accuracy, marginal_log_likelihood
+from federation.stats.headline import PREDICTION_CONVENTION, HeadlineFit, headline_accuracy
 from federation.stats.influence import LeaveOneOut, OmittedSite, leave_one_site_out
 from federation.stats.multiple_threshold import (
     MultipleThresholdRoc,
@@ -77,6 +79,9 @@ from federation.stats.univariate import (
 from federation.stats.within_site import WithinSiteContrast, within_site_auc_contrasts, within_site_contrasts
 
 __all__ = [
+    "PREDICTION_CONVENTION",
+    "HeadlineFit",
+    "headline_accuracy",
     "BivariateRegression",
     "CovariateEffect",
     "FunnelAsymmetry",

@@ -358,25 +358,6 @@ class GlmmLikelihood:
         return 0.5 * (hess + hess.T)
 
 
-def _numerical_hessian(function, x: NDArray[np.float64], step: float = 1e-4) -> NDArray[np.float64]:
-    n = x.size
-    hess = np.empty((n, n))
-    f0 = function(x)
-    for i in range(n):
-        for j in range(i, n):
-            if i == j:
-                e = np.zeros(n)
-                e[i] = step
-                hess[i, i] = (function(x + e) - 2 * f0 + function(x - e)) / step**2
-            else:
-                ei, ej = np.zeros(n), np.zeros(n)
-                ei[i], ej[j] = step, step
-                hess[i, j] = hess[j, i] = (
-                    function(x + ei + ej) - function(x + ei - ej) - function(x - ei + ej) + function(x - ei - ej)
-                ) / (4 * step**2)
-    return hess
-
-
 def _start(evidence: Sequence[SiteEvidence]) -> NDArray[np.float64]:
     """Starting values from crude pooled logits; between-site SD 0.5, correlation 0."""
     tp = sum(float(np.mean(v)) for ev in evidence for v in ev.tp_values[:1])

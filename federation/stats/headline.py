@@ -58,7 +58,6 @@ PREDICTION_CONVENTION = "prediction interval: mean +/- t(k-2) * sqrt(tau^2 + SE^
 _MEAN_INTERVAL = "profile likelihood on the logit scale, signed root referred to t on {df} df"
 _VARIANCE_INTERVAL = "profile likelihood, chi-squared 1 df"
 _MIN_SITES = 4
-trace: list[int] = []
 HETEROGENEITY = ("tau_logit_sensitivity", "tau_logit_fpr", "correlation")
 
 
@@ -227,7 +226,6 @@ def _profile_limit(
         start[index] = v
         theta, nll = _maximise_near(likelihood, start, others, hess[np.ix_(rest, rest)])
         current, at = theta, v
-        trace.append(likelihood.evaluations)
         r = _signed_root(nll, nll_hat)
         at_bound = v <= low + 1e-9 or v >= high - 1e-9
         if abs(r - target) < 0.015 * target:
