@@ -197,8 +197,10 @@ def _attempt(function: Callable[..., Any], *args: Any, **kwargs: Any) -> dict[st
     """Run a pooling function; its result as JSON, or why it could not be estimated."""
     try:
         return function(*args, **kwargs).to_dict()
-    except ValueError as error:  # PoolingError and the engine's own input checks; messages hold no counts
+    except PoolingError as error:  # written for people: names the site and the rule, never a count
         return _not_estimated(str(error))
+    except (ValueError, ArithmeticError):  # any other failure inside a fit: no internal text reaches a person
+        return _not_estimated("not estimable: the model could not be fitted to these data")
 
 
 def _proportion(x: int, n: int) -> dict[str, float] | None:

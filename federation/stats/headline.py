@@ -303,9 +303,24 @@ def headline_accuracy(
             censored,
         )
     try:
-        fit, likelihood, theta_hat, nll_hat, free, hess = glmm_fit(evidence, tables, excluded, points, level)
-    except (PoolingError, np.linalg.LinAlgError, FloatingPointError):
+        return _fit_and_profile(evidence, tables, excluded, points, level, intervals, not_estimable, censored)
+    except (ValueError, ArithmeticError):  # a NaN interval or a singular system: say so, never the internal text
         return empty("not estimable: the model could not be fitted to these data")
+
+
+def _fit_and_profile(
+    evidence: list[SiteEvidence],
+    tables: Sequence[ReleasedTable],
+    excluded: list[SiteExclusion],
+    points: int,
+    level: float,
+    intervals: bool,
+    not_estimable: dict[str, str],
+    censored: tuple[str, ...],
+) -> HeadlineFit:
+    k = len(evidence)
+    site_ids = tuple(ev.site_id for ev in evidence)
+    fit, likelihood, theta_hat, nll_hat, free, hess = glmm_fit(evidence, tables, excluded, points, level)
     df = k - 2
     q_mean = float(stats.t.isf((1 - level) / 2, df))
     q_var = float(stats.norm.isf((1 - level) / 2))

@@ -155,3 +155,15 @@ def test_identical_sites_have_no_correlation() -> None:
     assert fit.tau_logit_sensitivity.estimate == 0.0 and fit.tau_logit_sensitivity.ci_low == 0.0
     assert fit.correlation is None
     assert fit.not_estimable["correlation"] == "not estimable: a between-site SD is estimated as 0"
+
+
+def test_an_internal_failure_reads_as_not_estimable() -> None:
+    from federation.analysis import _attempt
+
+    def broken() -> None:
+        raise ValueError("Interval.ci_low is nan; an undefined quantity must be None")
+
+    assert _attempt(broken) == {
+        "status": "not estimated",
+        "reason": "not estimable: the model could not be fitted to these data",
+    }
