@@ -213,7 +213,6 @@ def run_one(args: tuple[Scenario, int]) -> dict[str, Any]:
     scenario, seed = args
     rng = np.random.default_rng(seed)
     tables = consortium(scenario, rng)
-    k = len(tables)
     row: dict[str, Any] = {"suppressed_sites": sum(1 for t in tables if not t.is_complete)}
     z = 1.959963984540054
     try:
@@ -222,7 +221,7 @@ def run_one(args: tuple[Scenario, int]) -> dict[str, Any]:
         head = None
     if head is not None and head.sensitivity is not None and head.specificity is not None and head.fit is not None:
         fit = head.fit
-        t_q = float(stats.t.isf(0.025, k - 2))
+        t_q = float(stats.t.isf(0.025, len(head.sites_pooled) - 2))
         row["headline"] = {
             "sites": len(head.sites_pooled),
             "sensitivity": tuple(
@@ -246,7 +245,7 @@ def run_one(args: tuple[Scenario, int]) -> dict[str, Any]:
             fit = build()
         except PoolingError:
             continue
-        q = float(stats.t.isf(0.025, fit.n_sites - 2)) if name.startswith("glmm") else z
+        q = float(stats.t.isf(0.025, max(fit.n_sites - 2, 1))) if name.startswith("glmm") else z
         row[name] = {
             "sites": fit.n_sites,
             "sensitivity": _logit_interval(fit.mean_logit_sensitivity, fit.se_logit_sensitivity, q),
