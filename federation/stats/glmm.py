@@ -548,9 +548,11 @@ def glmm_fit(
 
 
 def glmm_evidence(
-    tables: Sequence[ReleasedTable], suppressed: Literal["censor", "drop"] = "censor"
+    tables: Sequence[ReleasedTable], suppressed: Literal["censor", "drop"] = "censor", minimum: int = 2
 ) -> tuple[list[SiteEvidence], list[SiteExclusion]]:
-    """Each usable site's likelihood evidence, and the sites that cannot be used with the reason."""
+    """Each usable site's likelihood evidence, and the sites that cannot be used with the reason.
+
+    Raises :class:`PoolingError` when fewer than ``minimum`` sites are usable."""
     if suppressed not in ("censor", "drop"):
         raise PoolingError(f"suppressed must be 'censor' or 'drop', got {suppressed!r}")
     evidence: list[SiteEvidence] = []
@@ -568,8 +570,8 @@ def glmm_evidence(
             excluded.append(SiteExclusion(table.site_id, "no participants analysed"))
             continue
         evidence.append(ev)
-    if len(evidence) < 2:
-        raise PoolingError(f"the binomial GLMM needs at least 2 usable sites, got {len(evidence)}")
+    if len(evidence) < minimum:
+        raise PoolingError(f"the binomial GLMM needs at least {minimum} usable sites, got {len(evidence)}")
     return evidence, excluded
 
 

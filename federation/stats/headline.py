@@ -48,7 +48,7 @@ from scipy import special, stats
 from federation.stats.bivariate import BivariateFit
 from federation.stats.glmm import BOUNDS, GlmmLikelihood, glmm_evidence, glmm_fit
 from federation.stats.results import Interval
-from federation.stats.serial import PoolingError, ResultRecord, SiteExclusion
+from federation.stats.serial import ResultRecord, SiteExclusion
 from federation.stats.suppression import SiteEvidence
 from federation.stats.tables import ReleasedTable
 
@@ -265,10 +265,7 @@ def headline_accuracy(
     HeadlineFit
         Never raises for data that cannot support the model: the reasons are in ``not_estimable``.
     """
-    try:
-        evidence, excluded = glmm_evidence(tables, "censor")
-    except PoolingError:  # fewer than 2 usable sites
-        evidence, excluded = [], [SiteExclusion(t.site_id, "no usable table") for t in tables]
+    evidence, excluded = glmm_evidence(tables, "censor", minimum=0)
     site_ids = tuple(ev.site_id for ev in evidence)
     censored = tuple(ev.site_id for ev in evidence if ev.censored)
     not_estimable = _identifiability(evidence)
