@@ -84,33 +84,32 @@ def format_table(result: dict) -> str:
         )
     pooled = result["pooled"]
     lines.append("-" * len(header))
-    label = f"pooled: {POOLED_MODELS['pooled']}"
+    label = f"pooled: {POOLED_MODELS['pooled']} ({len(pooled.get('sites_pooled', []))} sites)"
     lines.append(f"{label:<{width}}{_fmt(pooled['sensitivity']):<24}{_fmt(pooled['specificity']):<24}")
-    aware = pooled.get("bivariate_glmm_suppression_aware") or {}
-    if aware.get("sensitivity"):
-        label = (
-            f"pooled: {POOLED_MODELS['bivariate_glmm_suppression_aware']} ({len(aware.get('sites_pooled', []))} sites)"
-        )
-        lines.append(f"{label:<{width}}{_fmt(aware['sensitivity']):<24}{_fmt(aware['specificity']):<24}")
-    if pooled.get("sensitivity"):
-        parts = [
-            f"tau² logit {name} {pooled[f'tau2_logit_{name}']:.3f}, I² {100 * pooled[f'i2_logit_{name}']:.1f}%"
-            for name in ("sensitivity", "specificity")
-        ]
+    univariate = (pooled.get("sensitivity_analyses") or {}).get("univariate") or {}
+    if univariate.get("sensitivity"):
+        label = f"  {POOLED_MODELS['univariate']} ({len(univariate.get('sites_pooled', []))} sites)"
+        lines.append(f"{label:<{width}}{_fmt(univariate['sensitivity']):<24}{_fmt(univariate['specificity']):<24}")
+    for name, reason in (pooled.get("not_estimable") or {}).items():
+        lines.append(f"{name.replace('_', ' ')}: {reason}")
+    parts = [
+        f"tau² logit {name} {pooled[f'tau2_logit_{name}']:.3f}"
+        for name in ("sensitivity", "specificity")
+        if _finite(pooled.get(f"tau2_logit_{name}"))
+    ]
+    if parts:
         lines.append("between-site variation: " + "; ".join(parts))
-    else:
-        lines.append(pooled.get("note", ""))
     for entry in pooled["sites_not_pooled"]:
         lines.append(f"not pooled: {entry['site_id']} ({entry['reason']})")
+    for entry in univariate.get("sites_not_pooled", []):
+        lines.append(f"left out of the univariate sensitivity analysis: {entry['site_id']} ({entry['reason']})")
     legend = [WITHHELD_LEGEND] if shown_withheld else []
     if any(site.get(m) is None for site in result["sites"] for m in ("sensitivity", "specificity")):
         legend.append(f"{NOT_DEFINED_MARK} not defined from what the site released")
     lines += legend
-    if aware.get("sensitivity"):
-        lines.append(
-            f"{POOLED_MODELS['bivariate_glmm_suppression_aware']}: each withheld count lies somewhere in the range "
-            "the site's rules allow"
-        )
+    lines.append(
+        "pooled: every site, each withheld count within the range its release allows; 95% profile-likelihood intervals"
+    )
     return "\n".join(line.rstrip() for line in lines)
 
 

@@ -28,10 +28,11 @@ OBSERVED_EXPECTED = "O:E ratio"
 # The pooled models, by their key in the analysis JSON ("pooled" = the separate models of sensitivity and
 # specificity at the top of ``pooled``).
 POOLED_MODELS = {
-    "pooled": "univariate random-effects model",
-    "bivariate": "bivariate normal model",
-    "bivariate_glmm": "bivariate binomial model",
-    "bivariate_glmm_suppression_aware": "bivariate binomial model, withheld cells kept in",
+    "pooled": "bivariate binomial model, every site",
+    "univariate": "univariate random-effects model (sensitivity analysis)",
+    "bivariate": "bivariate normal model (sensitivity analysis)",
+    "bivariate_glmm": "bivariate binomial model of complete tables (sensitivity analysis)",
+    "bivariate_glmm_suppression_aware": "bivariate binomial model, every site",
 }
 
 # The four cells of a site's 2x2 table, as a person reads them.

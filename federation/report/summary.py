@@ -154,7 +154,7 @@ def models_table(analysis: dict[str, Any]) -> str:
     for path, value in bivariate_results(analysis):
         if path[-1] == "bivariate_glmm_suppression_aware":
             continue  # the headline itself, in full
-        models.append((".".join(map(str, path)), humanise(path[-1:]) + " (sensitivity analysis)", value))
+        models.append((".".join(map(str, path)), humanise(path[-1:]), value))
     univariate = (pooled.get("sensitivity_analyses") or {}).get("univariate")
     if isinstance(univariate, dict):
         models.append(
