@@ -101,17 +101,17 @@ def test_a_zero_cell_is_not_allowed_where_the_rule_would_have_shown_it() -> None
     assert site_evidence(table).tp_values[0].tolist() == [*range(1, 10), *range(41, 50)]
 
 
-def test_the_complementary_cell_is_the_smaller_one() -> None:
-    # Worked by hand, k = 10: 3 records excluded (primary), so the read relation hides the analysed total; the
-    # analysed relation hides the smaller margin (20 with the condition, against 157); the positive relation
-    # hides the smaller of TP = 10 and FN = 10 (a tie goes to FN by name). The recipient sees TP = 10,
-    # n0 = 157 and read = 180, so analysed = 180 - (1..9) and FN = analysed - 157 - 10 lies in 4..12; FN was
-    # either primary (4..9) or the smaller cell (FN <= TP = 10). So FN is 4..10, never 11 or 12.
+def test_the_replay_knows_which_cell_the_rule_picks() -> None:
+    # Worked by hand, k = 10, the site's value-free rule (a part before the total, a leaf before a total, then
+    # the name): 3 records excluded (primary), so the read relation hides the analysed total (its only other
+    # part); the analysed relation then hides analysed_negative (before analysed_positive by name); the
+    # negative relation hides FP (before TN by name). The recipient sees read = 180, n1 = 20, TP = FN = 10,
+    # TN = 117. FP cannot have been primary (TN would then have been hidden, not the margin), so the chain
+    # started at a primary exclusion of 1..9: analysed = 171..179, n0 = 151..159, FP = 34..42.
     release = _release(10, 40, 10, 117, 3, 10, True)
     table = _table(release, 10, True)
-    assert table.tp == 10 and table.fn is None and table.positives is None and table.read == 180
+    assert (table.tp, table.fn, table.tn, table.read) == (10, 10, 117, 180)
+    assert table.fp is None and table.negatives is None and table.analysed is None
     evidence = site_evidence(table)
-    assert sorted(int(n1) - 10 for n1 in evidence.positives) == list(range(4, 11))
-    # Without the replay (relations' necessary conditions only) 11 and 12 would be allowed too.
-    loose = ReleasedTable(**{**table.__dict__, "replayable": False})
-    assert sorted(int(n1) - 10 for n1 in site_evidence(loose).positives) == list(range(4, 13))
+    assert sorted(int(n0) - 117 for n0 in evidence.negatives) == list(range(34, 43))
+    assert evidence.fp_values[0].tolist() == [int(evidence.negatives[0]) - 117]
