@@ -231,7 +231,9 @@ class _Admissible:
             return True
         if rule == "minimum_cell_size":
             return self.rules.primary(value)
-        return not self.rules.primary(value)  # complementary, audit, coarsened: the count was safe to show
+        if rule == "coarsened":  # cut back before primary suppression ran: any value
+            return True
+        return not self.rules.primary(value)  # complementary or audit: chosen among counts safe to show
 
     def cell_values(self, name: str, other: str, margin: int) -> list[int]:
         """Candidate values of a withheld cell whose partner in the margin is withheld too."""
@@ -352,8 +354,9 @@ def site_evidence(table: ReleasedTable) -> SiteEvidence:
     """The likelihood evidence of one released table (exact when complete, censored otherwise).
 
     A withheld count may take the values that (a) lie in its feasible range (``table.ranges``), (b) the rule
-    that withheld it allows — 1..k−1 (0..k−1 when zeros are hidden) for the minimum cell size, 0 (where zeros
-    are shown) or at least k for a count withheld by complementary suppression, the audit or coarsening —
+    that withheld it allows — 1..k−1 (0..k−1 when zeros are hidden) for the minimum cell size; 0 (where zeros
+    are shown) or at least k for a count withheld by complementary suppression or the audit, which pick
+    among counts safe to show; any value for a coarsened one, cut back before primary suppression ran —
     and (c) complete the released totals. When the release does not name the rule, (b) is inferred from the
     relations; when the release is ``replayable`` the site's rule is replayed on each candidate table and only
     tables that reproduce the release exactly are kept.

@@ -16,9 +16,8 @@ POLICY = {"min_cell_size": 10, "allow_zero": True}
 def _release(site: str, tp: int, fn: int, fp: int, tn: int, bands: list[tuple], hide_fp: bool, rules=None) -> Release:
     """A release at threshold 0.5 with ROC bands (low, high, positive, negative); FP and TN withheld if asked."""
     cells = {"tp": tp, "fp": None if hide_fp else fp, "fn": fn, "tn": None if hide_fp else tn}
-    table = ConfusionTable(0.5, cells, tuple(c for c in ("tp", "fp", "fn", "tn") if cells[c] is None))
-    if rules is not None:
-        object.__setattr__(table, "suppressed_by", rules)
+    hidden = tuple(c for c in ("tp", "fp", "fn", "tn") if cells[c] is None)
+    table = ConfusionTable(0.5, cells, hidden, dict(rules) if rules else {})
     flow = {
         "read": tp + fn + fp + tn,
         "analysed": tp + fn + fp + tn,
