@@ -141,6 +141,13 @@ def _rules_named(release: Release, table: Any) -> dict[str, str]:
     return {name: rule for name, rule in named.items() if rule in RULES}
 
 
+def _all_rules(release: Release, table: Any) -> list[str]:
+    """Every rule the release names for the 2x2 and the flow (exclusions and records read included)."""
+    found = list((getattr(table, "suppressed_by", None) or {}).values())
+    flow = release.flow.get("suppressed_by")
+    return found + (list(flow.values()) if isinstance(flow, dict) else [])
+
+
 def site_tables(releases: list[StoredRelease], threshold: float | None = None) -> list[SiteTable]:
     """The latest release of each site, at ``threshold`` (default: each release's first table).
 
@@ -170,7 +177,7 @@ def site_tables(releases: list[StoredRelease], threshold: float | None = None) -
             not others
             and len(release.confusion) == 1
             and not any(name in release.extra for name in _COUNT_SECTIONS)
-            and not any(rule in ("audit", "coarsened") for rule in rules.values())
+            and not any(rule in ("audit", "coarsened") for rule in _all_rules(release, table))
         )
         tables.append(
             SiteTable(

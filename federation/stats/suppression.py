@@ -399,7 +399,7 @@ def site_evidence(table: ReleasedTable) -> SiteEvidence:
     rules = _Rules(table)
     _released_consistent(table, rules)
     blocks = _blocks(table, rules, _Admissible(table, rules))
-    if not blocks and not table.suppressed_by:
+    if not blocks:
         # The relations admit no table: something beyond the minimum cell size (the audit) withheld counts,
         # so a withheld count is known only to lie in its feasible range.
         blocks = _blocks(table, rules, _Admissible(table, rules, loose=True), loose=True)
