@@ -182,7 +182,9 @@ def test_every_site_but_the_small_one_releases_and_pools_its_whole_primary_table
     large = sorted(s for s in sites if s != SMALL_SITE_ID)
     for site_id in large:
         assert [sites[site_id][c] for c in ("tp", "fp", "fn", "tn")] == list(expected[site_id]["cells"].values())
-    assert sorted(analysis["pooled"]["sites_pooled"]) == large
+    # The univariate sensitivity analysis pools the complete tables; the headline also keeps the small site.
+    assert sorted(analysis["pooled"]["sensitivity_analyses"]["univariate"]["sites_pooled"]) == large
+    assert sorted(analysis["pooled"]["sites_pooled"]) == sorted([*large, SMALL_SITE_ID])
     accuracy = pd.read_csv(root / "results" / "accuracy.csv")
     assert accuracy.query("site_id != 'pooled'")[["tp", "fp", "fn", "tn"]].notna().all(axis=1).sum() == len(large)
     releases = json.loads((root / "results" / "releases.json").read_text())
