@@ -14,7 +14,7 @@ The merge depends only on the counts, which never leave the site; the merged edg
 
 from __future__ import annotations
 
-from collections.abc import Callable, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
 
@@ -208,3 +208,32 @@ class ScoreAxis:
             kept = _partition(table, overall, self.forced, min_cell_size, allow_zero)
         self._cuts[key] = frozenset(kept)
         return self._cuts[key]
+
+
+def released_groups(
+    bands: Sequence[Band],
+    released: Mapping[str, int | None],
+    names: Callable[[int], tuple[str, str]],
+    totals: tuple[str, str],
+) -> list[tuple[float | None, float | None, int, int]] | None:
+    """The bands as a recipient can count them from the released counts alone: every band whose two counts
+    are released, and one group from the first to the last band with a withheld count (its counts are the
+    totals minus the bands outside it). None when a total is withheld."""
+    total_pos, total_neg = released.get(totals[0]), released.get(totals[1])
+    if total_pos is None or total_neg is None:
+        return None
+    values = [(released.get(names(j)[0]), released.get(names(j)[1])) for j in range(len(bands))]
+    hidden = [j for j, (p, n) in enumerate(values) if p is None or n is None]
+    if not hidden:
+        return [(b.low, b.high, int(p), int(n)) for b, (p, n) in zip(bands, values, strict=True)]  # type: ignore[arg-type]
+    first, last = hidden[0], hidden[-1]
+    outside = [j for j in range(len(bands)) if j < first or j > last]
+    group = (
+        bands[first].low,
+        bands[last].high,
+        int(total_pos) - sum(int(values[j][0]) for j in outside),  # type: ignore[arg-type]
+        int(total_neg) - sum(int(values[j][1]) for j in outside),  # type: ignore[arg-type]
+    )
+    before = [(bands[j].low, bands[j].high, int(values[j][0]), int(values[j][1])) for j in range(first)]  # type: ignore[arg-type]
+    after = [(bands[j].low, bands[j].high, int(values[j][0]), int(values[j][1])) for j in range(last + 1, len(bands))]  # type: ignore[arg-type]
+    return [*before, group, *after]

@@ -287,6 +287,8 @@ def protect(
         return 10**6 if result is None else len((result.suppressed & core) - floor)
 
     result, findings, culprits = attempt(())
+    if result is None and any(not f.candidates for f in findings):
+        raise _refusal(findings, earlier)  # exposed by earlier releases alone: no cut of this one can help
     best, best_findings = result, findings
     dropped: list[str] = []
     # Cut back the parts whose counts the audit found exposed at the primary table's cost, in the fixed order,
@@ -390,13 +392,28 @@ def _protect_once(context: tuple, primary: frozenset[str], dropped: frozenset[st
 
     released = {name: (None if name in suppressed else value) for name, value in values.items()}
     hidden = frozenset(suppressed)
-    derived = {name: value for name, (value, rests_on) in counts.derived.items() if not (rests_on & hidden)}
+    derived = released_statistics(counts, released, hidden)
     cut = tuple(
         {"analysis": unit, "action": _action(unit), "rule": CUT_RULE} for unit in sorted(dropped, key=_cut_rank)
     )
     return Protected(
         released, hidden, derived, reasons, result, bundle, cut, k, allow_zero, domains, frozenset(culprits)
     )
+
+
+def released_statistics(counts: CountSet, released: Mapping[str, int | None], hidden: frozenset[str]) -> dict:
+    """Derived statistics that may be shown: those whose counts are all released. A statistic given as a
+    function is computed from the released counts alone (it returns None when they cannot support it)."""
+    out = {}
+    for name, (value, rests_on) in counts.derived.items():
+        if rests_on & hidden:
+            continue
+        if callable(value):
+            value = value(released)
+            if value is None:
+                continue
+        out[name] = value
+    return out
 
 
 def _units_of(findings: Sequence[Finding], primary: frozenset[str]) -> set[str]:

@@ -1,17 +1,21 @@
 """Calibration of a probability model: binned observed and expected events, O/E, CITL and slope.
 
 Per predicted-risk bin (cut at the request's edges, merged by :mod:`site_agent.banding` until events and
-non-events are each 0 or at least k): the number of events and non-events and the sum of predicted risks
-(expected events). Over all analysed records: observed events O, expected events E, and two logistic fits
-on the linear predictor lp = logit(predicted risk):
+non-events are each 0 or at least k): the number of events and non-events. Every statistic is computed from
+those released counts only, each bin's records placed at the bin's midpoint risk (open ends closed at 0 and
+1): expected events per bin (count × midpoint) and in all (E), observed events O, O/E, and two logistic fits
+on the linear predictor lp = logit(midpoint):
 
 - calibration-in-the-large (CITL): logit P(y=1) = a + offset(lp); a = 0 when mean risk matches;
 - calibration slope: logit P(y=1) = a + b·lp; b = 1 when predictions are neither too extreme nor too
   modest.
 
-Both are maximum-likelihood fits by Newton–Raphson (IRLS) over the counts per distinct predicted risk,
-which is exactly the fit over individual records; standard errors come from the inverse Fisher
-information. Risks of exactly 0 or 1 are clipped to [1e-12, 1 − 1e-12] before the logit (common practice).
+A statistic from record-level risks (a sum of predicted risks, a fit over individual records) would be a
+further fact about the records that a crafted model could turn into a count; from the released bins it
+tells nothing the bins do not. The cost is the grouping: finer bins give figures closer to the record-level
+ones. Both fits are maximum-likelihood by Newton–Raphson (IRLS) on the grouped data; standard errors come
+from the inverse Fisher information. Midpoints of exactly 0 or 1 are clipped to [1e-12, 1 − 1e-12] before
+the logit (common practice).
 
 References
 ----------
@@ -28,11 +32,11 @@ from typing import Any
 
 import numpy as np
 
-from ..banding import Band, ScoreAxis, bands_at_cuts, merged_bands
+from ..banding import Band, ScoreAxis, bands_at_cuts, merged_bands, released_groups
 from ..counts import ANALYSED, NEGATIVE, POSITIVE, Condition, CountSet
 from ..data import PreparedChunk
 from .base import CellPolicy
-from .histogram import ScoreHistogram, band_sums, band_table
+from .histogram import ScoreHistogram, band_table
 
 DEFAULT_BIN_EDGES = tuple(round(0.1 * j, 1) for j in range(1, 10))
 RISK_CLIP = 1e-12
@@ -100,6 +104,13 @@ def fit_logistic(
     return None
 
 
+def bin_midpoint(band: Band) -> float:
+    """The middle of a predicted-risk bin, open ends closed at 0 and 1 (risks are probabilities)."""
+    low = 0.0 if band.low is None else max(0.0, float(band.low))
+    high = 1.0 if band.high is None else min(1.0, float(band.high))
+    return (low + high) / 2
+
+
 class Calibration:
     name = "calibration"
 
@@ -112,13 +123,11 @@ class Calibration:
         self.feeds_axis = axis is not None and scope is None and axis.claim_feeder(self)
         self.histogram = ScoreHistogram()
         self.table = np.zeros((len(self.edges) + 1, 2), dtype=np.int64)
-        self.sums = np.zeros(len(self.edges) + 1)
         self.bins: list[Band] = []
 
     def add(self, chunk: PreparedChunk, scores: np.ndarray) -> None:
         self.histogram.add(scores, chunk.outcome)
         self.table += band_table(scores, chunk.outcome, self.edges)
-        self.sums += band_sums(scores, self.edges)
         if self.feeds_axis:
             self.axis.add(chunk, scores)
 
@@ -136,31 +145,55 @@ class Calibration:
             events, non_events = f"calibration.bin[{j}].events", f"calibration.bin[{j}].non_events"
             out.add(events, band.counts[0], ANALYSED, POSITIVE, where)
             out.add(non_events, band.counts[1], ANALYSED, NEGATIVE, where)
-            expected = float(self.sums[band.first : band.last + 1].sum())
-            out.derived[f"calibration.bin[{j}].expected"] = (expected, frozenset({events, non_events}))
         out.add("calibration.events", h.n_positive, ANALYSED, POSITIVE)
         out.add("calibration.non_events", h.n_negative, ANALYSED, NEGATIVE)
         out.relate("calibration.events", *(f"calibration.bin[{j}].events" for j in range(len(self.bins))))
         out.relate("calibration.non_events", *(f"calibration.bin[{j}].non_events" for j in range(len(self.bins))))
+        # Every statistic from the released bin counts only: each bin's records at the bin's midpoint risk (a run
+        # of bins with withheld counts is one bin). A sum of record-level risks would be a further fact about
+        # the records (a crafted model could make it count them).
+        for j, band in enumerate(self.bins):
+            names = frozenset({f"calibration.bin[{j}].events", f"calibration.bin[{j}].non_events"})
+            out.derived[f"calibration.bin[{j}].expected"] = (float(sum(band.counts)) * bin_midpoint(band), names)
         totals = frozenset({"calibration.events", "calibration.non_events"})
-        expected = float(self.sums.sum())
-        if h.n_positive + h.n_negative > 0:
-            out.derived["calibration.expected"] = (expected, totals)
-            if expected > 0:
-                out.derived["calibration.observed_expected_ratio"] = (h.n_positive / expected, totals)
-        lp = linear_predictor(h.keys)
-        trials = (h.positive + h.negative).astype(np.float64)
-        events = h.positive.astype(np.float64)
+        for key in ("expected", "observed_expected_ratio", "citl", "citl_se", "slope_intercept"):
+            out.derived[f"calibration.{key}"] = (lambda released, k=key: self._grouped(released).get(k), totals)
+        for key in ("slope_intercept_se", "slope", "slope_se"):
+            out.derived[f"calibration.{key}"] = (lambda released, k=key: self._grouped(released).get(k), totals)
+        return out
+
+    def _grouped(self, released: dict[str, int | None]) -> dict[str, float]:
+        """Expected events, O/E and the two fits from the released bins (each at its midpoint risk)."""
+        groups = released_groups(
+            self.bins,
+            released,
+            lambda j: (f"calibration.bin[{j}].events", f"calibration.bin[{j}].non_events"),
+            ("calibration.events", "calibration.non_events"),
+        )
+        if not groups:
+            return {}
+        middle = np.array([bin_midpoint(Band(g[0], g[1], (g[2], g[3]), 0, 0)) for g in groups])
+        events = np.array([g[2] for g in groups], dtype=np.float64)
+        trials = np.array([g[2] + g[3] for g in groups], dtype=np.float64)
+        out: dict[str, float] = {}
+        if trials.sum() <= 0:
+            return out
+        expected = float(trials @ middle)
+        out["expected"] = expected
+        if expected > 0:
+            out["observed_expected_ratio"] = float(events.sum()) / expected
+        keep = trials > 0
+        lp, events, trials = linear_predictor(middle[keep]), events[keep], trials[keep]
         citl = fit_logistic(np.ones((len(lp), 1)), events, trials, offset=lp)
         if citl is not None:
-            out.derived["calibration.citl"] = (float(citl[0][0]), totals)
-            out.derived["calibration.citl_se"] = (math.sqrt(citl[1][0, 0]), totals)
+            out["citl"] = float(citl[0][0])
+            out["citl_se"] = math.sqrt(citl[1][0, 0])
         slope = fit_logistic(np.column_stack([np.ones(len(lp)), lp]), events, trials)
         if slope is not None:
-            out.derived["calibration.slope_intercept"] = (float(slope[0][0]), totals)
-            out.derived["calibration.slope_intercept_se"] = (math.sqrt(slope[1][0, 0]), totals)
-            out.derived["calibration.slope"] = (float(slope[0][1]), totals)
-            out.derived["calibration.slope_se"] = (math.sqrt(slope[1][1, 1]), totals)
+            out["slope_intercept"] = float(slope[0][0])
+            out["slope_intercept_se"] = math.sqrt(slope[1][0, 0])
+            out["slope"] = float(slope[0][1])
+            out["slope_se"] = math.sqrt(slope[1][1, 1])
         return out
 
     def render(self, released: dict[str, int | None], derived: dict[str, Any]) -> dict[str, Any]:
@@ -196,8 +229,9 @@ class Calibration:
             "slope_se": derived.get("calibration.slope_se"),
             "slope_intercept": derived.get("calibration.slope_intercept"),
             "slope_intercept_se": derived.get("calibration.slope_intercept_se"),
-            "method": "logistic fits on logit(predicted risk): offset for CITL, covariate for slope; "
-            "maximum likelihood, SE from the inverse information",
+            "method": "from the released bin counts, each bin's records at its midpoint risk: expected = count x "
+            "midpoint; logistic fits on logit(midpoint): offset for CITL, covariate for slope; maximum likelihood, "
+            "SE from the inverse information",
             "score_resolution": self.histogram.resolution,
             "suppressed": [n.removeprefix("calibration.") for n in names if released.get(n) is None],
         }

@@ -1,20 +1,23 @@
 """ROC: positives and negatives per score band (merged to be safe), with the site's AUC and DeLong SE.
 
 The bands are cut at the edges the request gives (band j = edge_j <= score < edge_(j+1)) and merged by
-:mod:`site_agent.banding` until every per-class count is 0 or at least k. The AUC (Mann–Whitney, ties ½)
-and its DeLong (1988) standard error are computed from the counts per distinct score (exact unless the
-score resolution says otherwise), not from the released bands, so they lose nothing to banding; they are
-released only when both class totals are.
+:mod:`site_agent.banding` until every per-class count is 0 or at least k. The AUC (Mann–Whitney, records in
+the same band tied, ½) and its DeLong (1988) standard error are computed from the released band counts
+only, so they tell a recipient nothing the bands do not (a statistic from record-level scores would be a
+further fact about the records); a run of bands with withheld counts counts as one band (its counts are the
+totals minus the others), and both are released only when the class totals are. Finer bands give an AUC
+closer to the one from individual scores.
 """
 
 from __future__ import annotations
 
 import math
+from types import SimpleNamespace
 from typing import Any
 
 import numpy as np
 
-from ..banding import Band, ScoreAxis, bands_at_cuts, merged_bands
+from ..banding import Band, ScoreAxis, bands_at_cuts, merged_bands, released_groups
 from ..counts import ANALYSED, NEGATIVE, POSITIVE, Condition, CountSet
 from ..data import PreparedChunk
 from .base import CellPolicy
@@ -57,13 +60,35 @@ class Roc:
         out.add("roc.negative", self.histogram.n_negative, ANALYSED, NEGATIVE)
         out.relate("roc.positive", *(f"roc.band[{j}].positive" for j in range(len(self.bands))))
         out.relate("roc.negative", *(f"roc.band[{j}].negative" for j in range(len(self.bands))))
+        # The AUC and its DeLong SE from the released band counts only (ties within a band count 1/2), so they
+        # tell a recipient nothing the bands do not; a run of bands with withheld counts is one group.
         totals = frozenset({"roc.positive", "roc.negative"})
-        result = mann_whitney_delong(self.histogram)
-        if result is not None:
-            out.derived["roc.auc"] = (result.auc, totals)
-            if result.variance is not None:
-                out.derived["roc.auc_se"] = (math.sqrt(result.variance), totals)
+        out.derived["roc.auc"] = (lambda released: self._banded(released, 0), totals)
+        out.derived["roc.auc_se"] = (lambda released: self._banded(released, 1), totals)
         return out
+
+    def _banded(self, released: dict[str, int | None], which: int) -> float | None:
+        groups = released_groups(
+            self.bands,
+            released,
+            lambda j: (f"roc.band[{j}].positive", f"roc.band[{j}].negative"),
+            ("roc.positive", "roc.negative"),
+        )
+        if not groups:
+            return None
+        banded = SimpleNamespace(
+            keys=np.arange(len(groups), dtype=np.float64),
+            positive=np.array([g[2] for g in groups], dtype=np.int64),
+            negative=np.array([g[3] for g in groups], dtype=np.int64),
+            n_positive=sum(g[2] for g in groups),
+            n_negative=sum(g[3] for g in groups),
+        )
+        result = mann_whitney_delong(banded)  # type: ignore[arg-type]
+        if result is None:
+            return None
+        if which == 0:
+            return result.auc
+        return None if result.variance is None else math.sqrt(result.variance)
 
     def render(self, released: dict[str, int | None], derived: dict[str, Any]) -> dict[str, Any]:
         bands = []
@@ -92,7 +117,8 @@ class Roc:
             "negative": released.get("roc.negative"),
             "auc": derived.get("roc.auc"),
             "auc_se": derived.get("roc.auc_se"),
-            "method": "Mann-Whitney AUC (ties 1/2), DeLong 1988 standard error, from counts per distinct score",
+            "method": "Mann-Whitney AUC (records in one band tied, 1/2), DeLong 1988 standard error, from the released "
+            "band counts",
             "score_resolution": self.histogram.resolution,
             "suppressed": suppressed,
         }

@@ -62,8 +62,14 @@ def rename(counts: CountSet, prefix: str, condition: Condition) -> CountSet:
     for relation in counts.relations:
         out.relate(name_of(relation.total), *(name_of(p) for p in relation.parts))
     for name, (value, rests_on) in counts.derived.items():
+        if callable(value):  # computed from the released counts: give it this level's counts by their own names
+            value = _scoped(value, prefix)
         out.derived[name_of(name)] = (value, frozenset(name_of(n) for n in rests_on))
     return out
+
+
+def _scoped(function: Callable[[dict[str, Any]], Any], prefix: str) -> Callable[[dict[str, Any]], Any]:
+    return lambda released: function(_view(released, prefix))
 
 
 def _view(mapping: dict[str, Any], prefix: str) -> dict[str, Any]:

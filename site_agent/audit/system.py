@@ -264,11 +264,22 @@ def _build_system(
         # Keep a linearly independent set of rows, preferring sparse ones (pivoted QR on rows scaled by
         # 1/nnz): a dense total implied by its parts (records read, analysed) is dropped, which splits the
         # system into smaller blocks and spares HiGHS the redundant rows. Dropped rows are checked below.
-        scale = 1.0 / np.diff(a_live.indptr)
-        _, r_factor, pivots = qr((a_live.T @ sparse.diags(scale)).toarray(), mode="economic", pivoting=True)
-        diagonal = np.abs(np.diag(r_factor))
-        rank = int(np.sum(diagonal > diagonal[0] * 1e-9)) if len(diagonal) else 0
-        chosen = np.sort(pivots[:rank])
+        # Done per connected part of the system: a site's history grows the system, not its parts.
+        m0 = len(row_ids)
+        graph = sparse.bmat([[None, a_live], [a_live.T, None]]).tocsr()
+        _, labels = connected_components(graph, directed=False)
+        chosen_parts = []
+        for label in np.unique(labels[:m0]):
+            rows_here = np.flatnonzero(labels[:m0] == label)
+            sub = a_live[rows_here]
+            cols = np.unique(sub.indices)
+            sub = sub[:, cols]
+            scale = 1.0 / np.diff(sub.indptr)
+            _, r_factor, pivots = qr((sub.T @ sparse.diags(scale)).toarray(), mode="economic", pivoting=True)
+            diagonal = np.abs(np.diag(r_factor))
+            rank = int(np.sum(diagonal > diagonal[0] * 1e-9)) if len(diagonal) else 0
+            chosen_parts.append(rows_here[pivots[:rank]])
+        chosen = np.sort(np.concatenate(chosen_parts))
         row_ids, a_live = row_ids[chosen], a_live[chosen]
     if g is None:
         g = sparse.csr_matrix((0, n_atoms))

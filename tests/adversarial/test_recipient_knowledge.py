@@ -8,6 +8,8 @@ from __future__ import annotations
 from pathlib import Path
 
 import numpy as np
+import pytest
+from sklearn.metrics import roc_auc_score
 
 from .world import World, oracle_interval, records
 
@@ -111,6 +113,35 @@ def test_a_study_asking_for_everything_keeps_the_primary_table(tmp_path: Path) -
     for cut in release.get("cut_back", []):
         assert set(cut) == {"analysis", "action", "rule"}
         assert not any(ch.isdigit() for ch in cut["rule"].replace("2x2", "") + cut["action"])  # words, no count
-    print(release.get("cut_back"))
+    low, high = oracle_interval(world, in_small_band)
+    assert high - low >= 1, (low, high)
+
+
+def test_derived_statistics_tell_nothing_the_released_counts_do_not(tmp_path: Path) -> None:
+    """Item 5: a crafted logistic scorecard whose risk is a distinct value for every month of age. An AUC or
+    an expected total computed from record-level risks would be a further equation in those ages; here each
+    is recomputed from the release's own bands (scikit-learn's roc_auc_score on the band of each record,
+    expected = count x bin midpoint), and the small group stays uncertain."""
+    world = World(tmp_path, records(small=SMALL))
+
+    def risk(a: int, s: str, i: int) -> float:
+        return float(1 / (1 + np.exp(-(-3.0 + 0.05 * a))))
+
+    card = {"kind": "logistic", "intercept": -3.0, "weights": {"age_months": 0.05}}
+    world.scorecard("crafted", card, 0.5, risk)
+    release = world.ask("crafted", "s", "--analyses", "confusion,roc,calibration")
+    assert release is not None
+    roc, calibration = release["results"]["roc"], release["results"]["calibration"]
+    assert roc["auc"] is not None and calibration["expected"] is not None
+    if roc["auc"] is not None:
+        labels, bands = [], []
+        for j, band in enumerate(roc["bands"]):
+            labels += [1] * band["positive"] + [0] * band["negative"]
+            bands += [j] * (band["positive"] + band["negative"])
+        assert roc["auc"] == pytest.approx(roc_auc_score(labels, bands), abs=1e-12)
+    if calibration["expected"] is not None:
+        middle = [((b["low"] or 0.0) + (b["high"] if b["high"] is not None else 1.0)) / 2 for b in calibration["bins"]]
+        total = sum((b["events"] + b["non_events"]) * m for b, m in zip(calibration["bins"], middle, strict=True))
+        assert calibration["expected"] == pytest.approx(total, rel=1e-12)
     low, high = oracle_interval(world, in_small_band)
     assert high - low >= 1, (low, high)

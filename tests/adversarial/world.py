@@ -195,6 +195,13 @@ def facts_of(release: dict[str, Any], score: Score, k: int, allow_zero: bool) ->
             add(lambda c, f=inside: f(c) and c[3] == 1, level["analysed_positive"], by.get("analysed_positive"))
             add(lambda c, f=inside: f(c) and c[3] == 0, level["analysed_negative"], by.get("analysed_negative"))
             confusion(level.get("confusion", []), inside)
+    calibration = results.get("calibration")
+    if calibration:
+        by = calibration.get("suppressed_by", {})
+        for j, band in enumerate(calibration["bins"]):
+            for klass, outcome in (("events", 1), ("non_events", 0)):
+                test = lambda c, b=band, o=outcome: c[3] == o and _in_band(score(c[0], c[1], c[2]), b)  # noqa: E731
+                add(test, band[klass], by.get(f"bin[{j}].{klass}"))
     roc = results.get("roc")
     if roc:
         by = roc.get("suppressed_by", {})

@@ -36,3 +36,9 @@ def feed(analysis, scores: np.ndarray, outcome: np.ndarray, pieces: int = 1, **e
         sliced = {k: v[part] for k, v in extra.items()}
         analysis.add(chunk(outcome[part], sliced.get("reference2"), sliced.get("compare")), scores[part])
     return analysis
+
+
+def statistics(counts) -> dict:  # noqa: ANN001
+    """The derived statistics of a CountSet with every count released (a statistic given as a function of
+    the released counts is evaluated on them)."""
+    return {n: (v(counts.values) if callable(v) else v) for n, (v, _) in counts.derived.items()}

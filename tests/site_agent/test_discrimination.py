@@ -12,7 +12,7 @@ from site_agent.analyses import Paired, Roc
 from site_agent.analyses.histogram import ScoreHistogram, mann_whitney_delong
 
 from .conftest import Cancer
-from .helpers import Policy, feed
+from .helpers import Policy, feed, statistics
 
 # Hanley & McNeil (1982), Radiology 143:29-36, Table I: ratings 1 (definitely normal) .. 5 (definitely
 # abnormal) of 58 normal and 51 abnormal CT images.
@@ -44,7 +44,7 @@ def test_hanley_mcneil_rating_data() -> None:
     scores, outcome = rating_data()
     roc = feed(Roc((1.5, 2.5, 3.5, 4.5)), scores, outcome, pieces=5)
     counts = roc.counts(Policy(min_cell_size=1))
-    auc, se = counts.derived["roc.auc"][0], counts.derived["roc.auc_se"][0]
+    auc, se = statistics(counts)["roc.auc"], statistics(counts)["roc.auc_se"]
     # Hanley & McNeil 1982, Table I: area 0.8932 (= 2642/2958, the Mann-Whitney statistic with ties 1/2).
     assert auc == pytest.approx(2642 / 2958, abs=1e-12)
     assert round(auc, 4) == 0.8932
@@ -59,7 +59,7 @@ def test_hanley_mcneil_rating_data() -> None:
     assert [released[f"roc.band[{j}].positive"] for j in range(5)] == list(ABNORMAL)
 
 
-def test_bands_merge_but_auc_stays_exact() -> None:
+def test_merged_bands_give_the_auc_of_the_released_bands() -> None:
     scores, outcome = rating_data()
     roc = feed(Roc((1.5, 2.5, 3.5, 4.5)), scores, outcome)
     counts = roc.counts(Policy(min_cell_size=10))
@@ -67,17 +67,21 @@ def test_bands_merge_but_auc_stays_exact() -> None:
     bands = [(b.low, b.high, b.counts) for b in roc.bands]
     assert all(c == 0 or c >= 10 for _, _, pair in bands for c in pair)
     assert sum(pair[0] for _, _, pair in bands) == 51 and sum(pair[1] for _, _, pair in bands) == 58
-    assert counts.derived["roc.auc"][0] == pytest.approx(2642 / 2958, abs=1e-12)
+    # the AUC is the released bands' own (records in one band tied): scikit-learn on the band of each record
+    band_of = np.searchsorted([b.high if b.high is not None else np.inf for b in roc.bands], scores, side="right")
+    assert statistics(counts)["roc.auc"] == pytest.approx(roc_auc_score(outcome, band_of), abs=1e-12)
+    assert statistics(counts)["roc.auc"] < 2642 / 2958  # ties within merged bands only lower it here
 
 
-def test_delong_on_breast_cancer_matches_direct_computation(cancer: Cancer) -> None:
-    roc = feed(Roc((0.5,)), cancer.scores, cancer.outcome, pieces=3)
-    derived = roc.counts(Policy()).derived
-    positive, negative = cancer.scores[cancer.outcome == 1], cancer.scores[cancer.outcome == 0]
+def test_delong_from_the_released_bands_matches_direct_computation(cancer: Cancer) -> None:
+    roc = feed(Roc((0.2, 0.5, 0.8)), cancer.scores, cancer.outcome, pieces=3)
+    derived = statistics(roc.counts(Policy()))
+    band_of = np.searchsorted([0.2, 0.5, 0.8], cancer.scores, side="right").astype(float)
+    positive, negative = band_of[cancer.outcome == 1], band_of[cancer.outcome == 0]
     auc, variance, _, _ = structural_components(positive, negative)
-    assert derived["roc.auc"][0] == pytest.approx(roc_auc_score(cancer.outcome, cancer.scores), abs=1e-12)
-    assert derived["roc.auc"][0] == pytest.approx(auc, abs=1e-12)
-    assert derived["roc.auc_se"][0] == pytest.approx(math.sqrt(variance), rel=1e-9)
+    assert derived["roc.auc"] == pytest.approx(roc_auc_score(cancer.outcome, band_of), abs=1e-12)
+    assert derived["roc.auc"] == pytest.approx(auc, abs=1e-12)
+    assert derived["roc.auc_se"] == pytest.approx(math.sqrt(variance), rel=1e-9)
 
 
 def test_paired_delong_covariance_matches_direct_computation(cancer: Cancer) -> None:
@@ -113,4 +117,4 @@ def test_histogram_coarsens_past_its_cap_and_says_so() -> None:
 
 def test_one_class_only_gives_no_auc() -> None:
     roc = feed(Roc((0.5,)), np.array([0.1, 0.7, 0.9]), np.array([1, 1, 1]))
-    assert "roc.auc" not in roc.counts(Policy()).derived
+    assert statistics(roc.counts(Policy()))["roc.auc"] is None
