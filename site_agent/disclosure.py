@@ -66,13 +66,13 @@ def _secondary(
 ) -> None:
     """Hide more counts until no relation has exactly one hidden member (in place).
 
-    The choice depends on the pattern of hidden counts and the structure only, never on a value: a count not
-    yet public first, then one that matters least to the primary table ``keep`` (:func:`keep_rank`), a part
-    before the total, a count that is no relation's total (a leaf, whose loss carries no further) before one
-    that is, then the fixed order of names. A value-dependent rule (e.g. "the smallest shown part") would tell a
-    recipient who knows the rule that the hidden part is smaller than the shown ones.
-    ``public`` are counts whose value an earlier release already showed: hiding them protects nothing, so
-    they are chosen only when nothing else is left.
+    The choice depends on the pattern of hidden counts and the structure only, never on a value or on earlier
+    releases (so that a recipient can replay it): the count that matters least to the primary table ``keep``
+    (:func:`keep_rank`), a part before the total, a count that is no relation's total (a leaf, whose loss
+    carries no further) before one that is, then the fixed order of names. A value-dependent rule (e.g. "the
+    smallest shown part") would tell a recipient who knows the rule that the hidden part is smaller than the
+    shown ones. Where the choice is a count an earlier release showed (``public``), it protects nothing: the
+    audit then withholds more.
     """
     totals = {relation.total for relation in relations}
     changed = True
@@ -85,7 +85,7 @@ def _secondary(
             shown = [m for m in relation.members if m not in suppressed]
             if not shown:
                 continue
-            choice = min(shown, key=lambda m: (m in public, keep_rank(m, keep), m == relation.total, m in totals, m))
+            choice = min(shown, key=lambda m: (keep_rank(m, keep), m == relation.total, m in totals, m))
             suppressed.add(choice)
             reasons[choice] = f"secondary: otherwise {hidden[0]} could be recomputed from {relation.total} = " + (
                 " + ".join(relation.parts)
@@ -116,7 +116,8 @@ def suppress(
             if name not in counts:
                 raise KeyError(f"relation names unknown count {name!r}")
     suppressed = {name for name, value in counts.items() if is_unsafe(value, min_cell_size, allow_zero)}
-    _secondary(counts, relations, suppressed, {})
+    keep = frozenset(n for n in counts if n.startswith(("flow.", "confusion[0].")))  # protect's default primary
+    _secondary(counts, relations, suppressed, {}, keep=keep)
     released = {name: (None if name in suppressed else value) for name, value in counts.items()}
     return released, frozenset(suppressed)
 

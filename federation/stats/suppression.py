@@ -183,12 +183,13 @@ def _read_relation_ok(read: int, read_hidden: bool, analysed: int, known: int, h
 # --- the rule, replayed --------------------------------------------------------------------------------
 
 
-def _choice_key(name: str, is_total: bool, totals: frozenset[str]) -> tuple[bool, bool, str]:
-    """The site's order for complementary suppression, which never looks at a value: a part before the
-    relation's total, a count that is no relation's total (a leaf) before one that is, then the name
-    (site_agent/disclosure.py, the documented rule; the "not yet public" and "primary table last" preferences
-    do not arise in a lone release of the flow and one 2x2 table, the only kind replayed)."""
-    return (is_total, name in totals, name)
+def _choice_key(name: str, is_total: bool, totals: frozenset[str] | set[str]) -> tuple[int, bool, bool, str]:
+    """The site's order for complementary suppression, which never looks at a value: the count that matters
+    least to the primary table (records read and exclusions before the 2x2 cells and analysed totals), a
+    part before the total, a leaf before a count that is some relation's total, then the name
+    (site_agent/disclosure.py ``_secondary``, the documented rule)."""
+    rank = 1 if name == "flow.read" or name.startswith("flow.excluded.") else 2
+    return (rank, is_total, name in totals, name)
 
 
 def _replay(
@@ -304,8 +305,9 @@ def _flow_replays(table: ReleasedTable, rules: _Rules, total: int, n1: int) -> b
             if rest is None or p_low <= rest <= p_high:
                 options.append((primary, None, 0))
             continue
-        if rest is None:
-            continue  # a hidden read is itself primary, so every exclusion is below k
+        if rest is None:  # read withheld too: the rule never looks at values, any safe value replays alike
+            options.append((primary, outside, rules.k))
+            continue
         for value in range(max(0, rest - p_high), rest - p_low + 1):
             if not rules.primary(value):
                 options.append((primary, outside, value))
@@ -328,7 +330,9 @@ def _flow_replays(table: ReleasedTable, rules: _Rules, total: int, n1: int) -> b
             "flow.analysed_positive": n1,
             "flow.analysed_negative": n0,
         }
-        unsafe = {n for n, v in members.items() if rules.primary(v)} | ({"flow.read"} if table.read is None else set())
+        unsafe = {n for n, v in members.items() if n != "flow.read" and rules.primary(v)}
+        if table.read is not None and rules.primary(table.read):
+            unsafe.add("flow.read")
         for i, (part, v) in enumerate(zip(parts, table.excluded, strict=True)):
             if v is not None:
                 members[part] = v
@@ -339,14 +343,22 @@ def _flow_replays(table: ReleasedTable, rules: _Rules, total: int, n1: int) -> b
                 unsafe.add(part)
             if v is not None and rules.primary(v):
                 unsafe.add(part)
-        if table.read is None:  # a hidden read has no relation above it: it was primary
+        variants = [unsafe]
+        if table.read is None:  # a withheld read was small itself, or withheld by the complementary rule
             members["flow.read"] = total + sum(members[part] for part in parts)
-            if not rules.primary(members["flow.read"]):
-                continue
-        # the margins are totals of the 2x2 relations too (which this replay of the flow leaves out)
-        hidden = _replay(members, relations, unsafe, frozenset({"flow.analysed_positive", "flow.analysed_negative"}))
-        if all((name in hidden) == want for name, want in expected.items()):
-            return True
+            low_read = (
+                total
+                + sum(v for v in table.excluded if v is not None)
+                + sum(rules.low if i != outside else value for i in hidden_index)
+            )
+            variants = [unsafe | {"flow.read"}] if low_read <= rules.k - 1 else []
+            variants.append(unsafe)
+        for variant in variants:
+            hidden = _replay(
+                members, relations, variant, frozenset({"flow.analysed_positive", "flow.analysed_negative"})
+            )
+            if all((name in hidden) == want for name, want in expected.items()):
+                return True
     return False
 
 

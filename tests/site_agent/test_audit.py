@@ -36,10 +36,13 @@ def policy(k: int = 10, allow_zero: bool = True, width: int = 2) -> SimpleNamesp
 # --- an oracle independent of site_agent.audit ----------------------------------------------------------------
 
 
-def oracle_interval(cells: list[tuple], facts: list[tuple[tuple, int]], region: set[tuple]) -> tuple[int, int]:
+def oracle_interval(
+    cells: list[tuple], facts: list[tuple[tuple, int]], region: set[tuple], bounds: list[tuple] = ()
+) -> tuple[int, int]:
     """Whole-number interval (LP bounds rounded inward) of the count of ``region`` given ``facts``.
 
-    ``cells`` are the finest cells of the test's record space; each fact is (set of cells, released value).
+    ``cells`` are the finest cells of the test's record space; each fact is (set of cells, released value);
+    each bound is (set of cells, low, high): what a withheld count's rule tells (minimum cell size: 1..k-1).
     """
     index = {cell: i for i, cell in enumerate(cells)}
     a = np.zeros((len(facts), len(cells)))
@@ -50,8 +53,15 @@ def oracle_interval(cells: list[tuple], facts: list[tuple[tuple, int]], region: 
     c = np.zeros(len(cells))
     for cell in region:
         c[index[cell]] = 1.0
-    low = linprog(c, A_eq=a, b_eq=b, bounds=(0, None), method="highs")
-    high = linprog(-c, A_eq=a, b_eq=b, bounds=(0, None), method="highs")
+    g = np.zeros((2 * len(bounds), len(cells)))
+    h = np.zeros(2 * len(bounds))
+    for row, (members, lo, hi) in enumerate(bounds):
+        for cell in members:
+            g[2 * row, index[cell]], g[2 * row + 1, index[cell]] = 1.0, -1.0
+        h[2 * row], h[2 * row + 1] = hi, -lo
+    ub = {"A_ub": g, "b_ub": h} if len(bounds) else {}
+    low = linprog(c, A_eq=a, b_eq=b, bounds=(0, None), method="highs", **ub)
+    high = linprog(-c, A_eq=a, b_eq=b, bounds=(0, None), method="highs", **ub)
     assert low.status == 0, "the released counts must be consistent"
     top = math.inf if high.status == 3 else -high.fun
     return math.ceil(low.fun - 1e-6), (math.floor(top + 1e-6) if math.isfinite(top) else 10**9)
@@ -264,6 +274,7 @@ def test_no_sequence_of_band_requests_pins_down_a_hidden_or_small_count(case) ->
     earlier: list[ReleaseFacts] = []
     facts: list[tuple[set, int]] = []
     hidden: list[tuple[set, int]] = []  # (cells, true value) of every count suppressed so far
+    rules: list[tuple[set, int, int]] = []  # what each minimum-cell-size rule tells: 1..k-1 (0..k-1)
     shown: set[frozenset] = set()
     for r, edges in enumerate(bandings):
         counts_set = banded_release([float(e) for e in edges], counts, UNITS)
@@ -277,6 +288,8 @@ def test_no_sequence_of_band_requests_pins_down_a_hidden_or_small_count(case) ->
             assert value is None or value == counts_set.values[name]  # released counts are never changed
             if value is None:
                 hidden.append((members, counts_set.values[name]))
+                if protected.rules.get(name) == "minimum_cell_size":
+                    rules.append((members, 1 if allow_zero else 0, k - 1))
             else:
                 assert not (0 < value < k) and (allow_zero or value > 0)
                 facts.append((members, value))
@@ -287,7 +300,7 @@ def test_no_sequence_of_band_requests_pins_down_a_hidden_or_small_count(case) ->
     for members, _ in hidden:
         if frozenset(members) in shown:
             continue  # its value was public before it was hidden
-        low, high = oracle_interval(cells, facts, members)
+        low, high = oracle_interval(cells, facts, members, rules)
         assert high - low + 1 >= 2, "a suppressed count can be worked out from the releases"
     for unit in range(8):  # every finest cell that the policy would hide stays uncertain
         for klass in ("1", "0"):
@@ -296,7 +309,7 @@ def test_no_sequence_of_band_requests_pins_down_a_hidden_or_small_count(case) ->
                 members = {(unit, klass)}
                 if frozenset(members) in shown:
                     continue
-                low, high = oracle_interval(cells, facts, members)
+                low, high = oracle_interval(cells, facts, members, rules)
                 assert (low, high) != (value, value), "a small cell can be worked out by differencing"
 
 

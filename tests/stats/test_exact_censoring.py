@@ -101,17 +101,20 @@ def test_a_zero_cell_is_not_allowed_where_the_rule_would_have_shown_it() -> None
     assert site_evidence(table).tp_values[0].tolist() == [*range(1, 10), *range(41, 50)]
 
 
-def test_the_replay_knows_which_cell_the_rule_picks() -> None:
-    # Worked by hand, k = 10, the site's value-free rule (a part before the total, a leaf before a total, then
-    # the name): 3 records excluded (primary), so the read relation hides the analysed total (its only other
-    # part); the analysed relation then hides analysed_negative (before analysed_positive by name); the
-    # negative relation hides FP (before TN by name). The recipient sees read = 180, n1 = 20, TP = FN = 10,
-    # TN = 117. FP cannot have been primary (TN would then have been hidden, not the margin), so the chain
-    # started at a primary exclusion of 1..9: analysed = 171..179, n0 = 151..159, FP = 34..42.
-    release = _release(10, 40, 10, 117, 3, 10, True)
-    table = _table(release, 10, True)
-    assert (table.tp, table.fn, table.tn, table.read) == (10, 10, 117, 180)
-    assert table.fp is None and table.negatives is None and table.analysed is None
+def test_the_complementary_choice_follows_a_fixed_order() -> None:
+    # Worked by hand, k = 10, with the site's rule (site_agent/disclosure.py ``_secondary``: never by value):
+    # 3 records excluded (primary); the read relation withholds the records read (a count the primary 2x2
+    # needs least) rather than the analysed total, so the 2x2 table stays whole.
+    release = dict(_release(10, 40, 10, 117, 3, 10, True))
+    assert release["flow.read"] is None and release["flow.excluded.missing_outcome"] is None
+    assert [release[f"confusion[0].{c}"] for c in ("tp", "fp", "fn", "tn")] == [10, 40, 10, 117]
+    # TP = 3 is primary; the positive relation withholds FN (a part before the total), whatever its value. The
+    # recipient sees 20 with the condition and both cells withheld: one of them was small (1..9) and the other
+    # hidden by the rule, so TP is 1..9 or 11..19 (TP = 10 would have left both shown).
+    table = _table(_release(3, 40, 17, 117, 0, 10, True), 10, True)
+    assert table.tp is None and table.fn is None and table.positives == 20
     evidence = site_evidence(table)
-    assert sorted(int(n0) - 117 for n0 in evidence.negatives) == list(range(34, 43))
-    assert evidence.fp_values[0].tolist() == [int(evidence.negatives[0]) - 117]
+    assert sorted(int(v) for b in range(evidence.n_blocks) for v in evidence.tp_values[b]) == [
+        *range(1, 10),
+        *range(11, 20),
+    ]
