@@ -229,7 +229,7 @@ class Calibration:
             "slope_se": derived.get("calibration.slope_se"),
             "slope_intercept": derived.get("calibration.slope_intercept"),
             "slope_intercept_se": derived.get("calibration.slope_intercept_se"),
-            "method": "from the released bin counts, each bin's records at its midpoint risk: expected = count x "
+            "method": "from the released band counts, each band's records at its midpoint risk: expected = count x "
             "midpoint; logistic fits on logit(midpoint): offset for CITL, covariate for slope; maximum likelihood, "
             "SE from the inverse information",
             "score_resolution": self.histogram.resolution,

@@ -140,8 +140,8 @@ def test_derived_statistics_tell_nothing_the_released_counts_do_not(tmp_path: Pa
             bands += [j] * (band["positive"] + band["negative"])
         assert roc["auc"] == pytest.approx(roc_auc_score(labels, bands), abs=1e-12)
     if calibration["expected"] is not None:
-        middle = [((b["low"] or 0.0) + (b["high"] if b["high"] is not None else 1.0)) / 2 for b in calibration["bins"]]
-        total = sum((b["events"] + b["non_events"]) * m for b, m in zip(calibration["bins"], middle, strict=True))
+        middle = [((b["low"] or 0.0) + (b["high"] if b["high"] is not None else 1.0)) / 2 for b in calibration["bands"]]
+        total = sum((b["events"] + b["non_events"]) * m for b, m in zip(calibration["bands"], middle, strict=True))
         assert calibration["expected"] == pytest.approx(total, rel=1e-12)
     low, high = oracle_interval(world, in_small_band)
     assert high - low >= 1, (low, high)

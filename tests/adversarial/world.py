@@ -198,7 +198,7 @@ def facts_of(release: dict[str, Any], score: Score, k: int, allow_zero: bool) ->
     calibration = results.get("calibration")
     if calibration:
         by = calibration.get("suppressed_by", {})
-        for j, band in enumerate(calibration["bins"]):
+        for j, band in enumerate(calibration["bands"]):
             for klass, outcome in (("events", 1), ("non_events", 0)):
                 test = lambda c, b=band, o=outcome: c[3] == o and _in_band(score(c[0], c[1], c[2]), b)  # noqa: E731
                 add(test, band[klass], by.get(f"bin[{j}].{klass}"))

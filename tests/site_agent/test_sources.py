@@ -78,8 +78,8 @@ def test_csv_tables_equal_scikit_learn(cancer: Cancer, from_csv: dict) -> None:
         assert band["negative"] == int(np.sum(inside & (cancer.outcome == 0)))
     calibration = results["calibration"]
     assert calibration["observed"] == 212
-    middle = [((b["low"] or 0.0) + (1.0 if b["high"] is None else b["high"])) / 2 for b in calibration["bins"]]
-    expected = sum(b["n"] * m for b, m in zip(calibration["bins"], middle, strict=True))  # each bin at its midpoint
+    middle = [((b["low"] or 0.0) + (1.0 if b["high"] is None else b["high"])) / 2 for b in calibration["bands"]]
+    expected = sum(b["n"] * m for b, m in zip(calibration["bands"], middle, strict=True))  # each bin at its midpoint
     assert calibration["expected"] == pytest.approx(expected, rel=1e-12)
     table = results["agreement"]["tables"][0]
     agreement = table["pairs"]
