@@ -12,6 +12,7 @@ and are not played here (see docs/threat-model.md, residual risk R2).
 
 from __future__ import annotations
 
+import math
 from pathlib import Path
 
 from .world import World, oracle_interval, records
@@ -126,3 +127,33 @@ def test_bundles_whose_schemas_cut_the_age_range_differently_are_not_differenced
     low = linprog(target, A_eq=rows, b_eq=values, method="highs").fun
     high = -linprog([-x for x in target], A_eq=rows, b_eq=values, method="highs").fun
     assert (round(low), round(high)) == (0, flow["analysed_positive"])
+
+
+def test_auc_and_expected_total_of_a_crafted_scorecard_do_not_give_the_withheld_cell(tmp_path: Path) -> None:
+    """Issue 12 item 5: a logistic scorecard whose risk is about 1 inside the 24-29 month band and about 0
+    outside. With record-level scores the AUC would be 0.5 + (tp/P − fp/N)/2 and the expected total
+    n_band·σ(10) + (n − n_band)·σ(−10) (Hanley & McNeil 1982 for the AUC of a two-valued score, from memory),
+    which give the withheld tp cell and the band's size in one release. The recipient solves both for every
+    value its integer program still allows; neither may single one out."""
+    world = World(tmp_path, records(small=SMALL))
+    band = {str(a): 20 for a in range(24, 30)}
+
+    def risk(a: int, s: str, i: int) -> float:
+        return 1 / (1 + math.exp(-(-10 + (20 if 24 <= a < 30 else 0))))
+
+    world.scorecard("band", {"kind": "logistic", "intercept": -10, "points": {"age_months": band}}, 0.5, risk)
+    options = ["--roc-bands", "0,0.5,1", "--calibration-bands", "0,0.5,1"]
+    release = world.ask("band", "one", "--analyses", "confusion,roc,calibration", *options)
+    assert release is not None
+    cells, flow = release["results"]["confusion"][0]["cells"], release["flow"]
+    assert cells["tp"] is None and cells["fp"] == 0  # the three children are withheld; nobody without, shown
+    low, high = oracle_interval(world, in_small_band)
+    assert high - low >= 1, (low, high)
+    positives, negatives, n = flow["analysed_positive"], flow["analysed_negative"], flow["analysed"]
+    auc, expected = release["results"]["roc"]["auc"], release["results"]["calibration"]["expected"]
+    from_auc = [tp for tp in range(low, high + 1) if abs(0.5 + (tp / positives - 0) / 2 - auc) < 1e-9]
+    assert len(from_auc) != 1, from_auc
+    inside, outside = risk(25, "f", 0), risk(0, "f", 0)
+    from_expected = [m for m in range(low, n + 1) if abs(m * inside + (n - m) * outside - expected) < 1e-6]
+    assert len(from_expected) != 1, from_expected
+    assert negatives > 0
