@@ -152,6 +152,7 @@ def cmd_request_new(args: argparse.Namespace) -> int:
         args.request_id,
         specs,
         compare_bytes,
+        float(_float_list(args.primary_threshold, "--primary-threshold")[0]) if args.primary_threshold else None,
     )
     write_atomic(args.out, document)
     request = Request.from_bytes(document, None, str(args.out))
@@ -459,6 +460,12 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--bundle", type=Path, required=True, help="the signed model bundle the sites will run")
     p.add_argument("--sign", type=Path, required=True, help="coordinator private key")
     p.add_argument("--thresholds", help="comma-separated thresholds (default: the bundle's)")
+    p.add_argument(
+        "--primary-threshold",
+        metavar="T",
+        help="the threshold of the primary result, the 2x2 table sites withhold last (default: the bundle's "
+        "threshold if asked for, else the first of --thresholds); added to the thresholds if missing",
+    )
     p.add_argument(
         "--analyses",
         default="confusion",

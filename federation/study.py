@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import json
 import uuid
+from dataclasses import replace
 from datetime import UTC, datetime
 
 from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PrivateKey
@@ -23,16 +24,20 @@ def issue_request(
     request_id: str | None = None,
     analyses: tuple[AnalysisSpec, ...] | None = None,
     compare_bundle_bytes: bytes | None = None,
+    primary_threshold: float | None = None,
 ) -> bytes:
     """Sign a request for ``bundle_bytes`` and record the request (and the bundle) in ``store``.
 
     ``analyses`` default to one confusion table at ``thresholds``; a paired analysis names the SHA-256 of
-    ``compare_bundle_bytes``, which is verified and recorded too.
+    ``compare_bundle_bytes``, which is verified and recorded too. The request's primary result is the 2×2
+    table at the first confusion threshold listed: ``primary_threshold`` if given, else the bundle's own
+    threshold when it is among those asked for (see :func:`primary_first`).
     """
     public = private_key.public_key()
     ring = KeyRing({key_id(public): public})
     bundle = load_bundle(bundle_bytes, ring, "bundle")
     specs = analyses if analyses is not None else (AnalysisSpec("confusion", thresholds),)
+    specs = primary_first(specs, bundle.manifest.thresholds, primary_threshold)
     compare = load_bundle(compare_bundle_bytes, ring, "comparison bundle") if compare_bundle_bytes else None
     for spec in specs:
         if spec.name == "calibration" and bundle.manifest.score_kind != "probability":
@@ -64,6 +69,24 @@ def issue_request(
         store.add_bundle(compare.sha256, compare.manifest.name, json.dumps(compare.manifest.to_dict()))
     store.add_request(parsed, document)
     return document
+
+
+def primary_first(
+    specs: tuple[AnalysisSpec, ...], bundle_thresholds: tuple[float, ...], primary: float | None
+) -> tuple[AnalysisSpec, ...]:
+    """List the primary threshold first in the confusion analysis: the site keeps that table last when its
+    disclosure control must withhold (docs/formats.md, "The primary result")."""
+    out = []
+    for spec in specs:
+        if spec.name == "confusion":
+            asked = spec.thresholds or bundle_thresholds
+            if primary is None:
+                primary = bundle_thresholds[0] if bundle_thresholds and bundle_thresholds[0] in asked else asked[0]
+            spec = replace(spec, thresholds=(primary, *(t for t in asked if t != primary)))
+        out.append(spec)
+    if primary is not None and not any(s.name == "confusion" for s in out):
+        raise DocumentError("--primary-threshold: the request has no confusion analysis")
+    return tuple(out)
 
 
 def analysis_specs(

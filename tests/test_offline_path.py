@@ -29,7 +29,9 @@ def study(tmp_path: Path) -> breast_cancer.Study:
     return breast_cancer.build(tmp_path / "study")
 
 
-def offline_round(study: breast_cancer.Study, tmp: Path, min_cell_size: int) -> tuple[Path, list[Path]]:
+def offline_round(
+    study: breast_cancer.Study, tmp: Path, min_cell_size: int, request_options: tuple[str, ...] = ()
+) -> tuple[Path, list[Path]]:
     store = tmp / "study.db"
     assert (
         federation(
@@ -46,6 +48,7 @@ def offline_round(study: breast_cancer.Study, tmp: Path, min_cell_size: int) -> 
                 str(study.coordinator_key),
                 "--out",
                 str(tmp / "request.json"),
+                *request_options,
             ]
         )
         == 0
@@ -151,6 +154,34 @@ def test_default_policy_suppresses_small_cells_and_keeps_the_rest_exact(study, t
     for path in releases:
         doc = json.loads(path.read_text())
         assert doc["policy"]["min_cell_size"] == 10
+
+
+def test_the_primary_threshold_is_the_table_sites_keep_and_the_coordinator_pools(study, tmp_path, capsys):
+    # Reference: sklearn.metrics.confusion_matrix at the named primary threshold on each site's records.
+    probabilities = study.model.predict_proba(study.features)[:, 1]
+    options = ("--thresholds", "0.3,0.5,0.7", "--primary-threshold", "0.7")
+    store, releases = offline_round(study, tmp_path, min_cell_size=1, request_options=options)
+    request = json.loads((tmp_path / "request.json").read_text())
+    confusion = next(a for a in request["analyses"] if a["name"] == "confusion")
+    assert confusion["thresholds"] == [0.7, 0.3, 0.5]  # the primary table is listed first
+    result = analyze_json(store, capsys)
+    start = 0
+    for site, path, csv in zip(result["sites"], releases, study.site_csvs, strict=True):
+        n = sum(1 for _ in csv.open()) - 1
+        assert json.loads(path.read_text())["results"]["confusion"][0]["threshold"] == 0.7
+        ref = confusion_matrix(study.outcome[start : start + n], probabilities[start : start + n] >= 0.7).ravel()
+        assert [site["tn"], site["fp"], site["fn"], site["tp"]] == ref.tolist()
+        start += n
+
+
+def test_the_bundles_threshold_is_the_primary_table_when_asked_for(study, tmp_path):
+    # The breast-cancer bundle's threshold is 0.5 (tests/breast_cancer.py); asked among others, it comes first.
+    store = tmp_path / "study.db"
+    args = ["request", "new", "--store", str(store), "--study-id", "bc-p", "--bundle", str(study.bundle_path)]
+    args += ["--sign", str(study.coordinator_key), "--out", str(tmp_path / "r.json"), "--thresholds", "0.3,0.5,0.7"]
+    assert federation(args) == 0
+    confusion = next(a for a in json.loads((tmp_path / "r.json").read_text())["analyses"] if a["name"] == "confusion")
+    assert confusion["thresholds"] == [0.5, 0.3, 0.7]
 
 
 def test_ledger_holds_the_full_release_before_the_file(study, tmp_path):

@@ -17,7 +17,10 @@ class Confusion:
     name = "confusion"
 
     def __init__(self, thresholds: tuple[float, ...]) -> None:
-        self.thresholds = tuple(sorted(set(thresholds)))
+        # The first threshold the request lists is its primary result (``confusion[0]``, kept last when cells must
+        # be withheld); the others follow in increasing order.
+        primary = thresholds[0] if thresholds else None
+        self.thresholds = tuple([primary] if primary is not None else []) + tuple(sorted(set(thresholds) - {primary}))
         self.table = np.zeros((len(self.thresholds), 4), dtype=np.int64)
 
     def add(self, chunk: PreparedChunk, scores: np.ndarray) -> None:
