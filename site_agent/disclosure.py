@@ -32,11 +32,14 @@ from __future__ import annotations
 import re
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 from federation.protocol import PolicyViolation
 
-from .audit import SCORED, STATUS, Audit, AuditResult, Finding, ReleaseFacts, normalise
+from .audit import SCORED, STATUS, AuditResult, Finding, ReleaseFacts, normalise
+
+if TYPE_CHECKING:
+    from .audit.check import Audit
 from .audit.tree import tree_audit
 from .counts import CountSet, Relation
 from .withheld import rule_of
@@ -267,6 +270,8 @@ def protect(
 
     def audit() -> Audit:  # built on first need: the fast path of a lone tree-shaped release needs none
         if not built:
+            from .audit.check import Audit  # scipy: imported only when a linear-programming audit is needed
+
             built.append(Audit(earlier, current))
         return built[0]
 

@@ -42,7 +42,8 @@ protected by lower and upper protection levels. *Management Science* 2001;47(7):
 
 from __future__ import annotations
 
-from .check import Audit
+from typing import TYPE_CHECKING, Any
+
 from .facts import (
     ANALYSED,
     MAX_ATOMS,
@@ -59,6 +60,20 @@ from .facts import (
     ReleaseFacts,
 )
 from .refinement import Box, normalise, refine
+
+if TYPE_CHECKING:
+    from .check import Audit
+
+
+def __getattr__(name: str) -> Any:
+    # The linear-programming audit needs scipy (about 0.3 s to import); a lone flow and 2x2 release is checked
+    # in closed form (``tree``) and never needs it, so a site process imports it only when an audit does.
+    if name == "Audit":
+        from .check import Audit
+
+        return Audit
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
+
 
 __all__ = [
     "ANALYSED",
