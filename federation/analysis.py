@@ -88,6 +88,8 @@ class SiteTable:
     ranges: dict[str, tuple[int, int]] = field(default_factory=dict)
     suppressed_by: dict[str, str] = field(default_factory=dict)
     replayable: bool = False
+    # What the site cut back so that its primary table could be released (the release's ``cut_back``, in words).
+    cut_back: tuple[dict[str, str], ...] = ()
 
     def released_table(self) -> ReleasedTable:
         """The table with what the release says about its hidden cells (policy, flow margins, ranges, rules)."""
@@ -191,6 +193,7 @@ def site_tables(releases: list[StoredRelease], threshold: float | None = None) -
                 ranges=ranges,
                 suppressed_by=rules,
                 replayable=replayable,
+                cut_back=tuple(release.cut_back) if index == 0 else (),
             )
         )
     return tables
@@ -636,6 +639,7 @@ def analyze_tables(
             else None
         )
         entry["flow"] = table.flow
+        entry["cut_back"] = [dict(cut) for cut in table.cut_back]
         entry.update(_site_accuracy(table, prevalence))
         sites.append(entry)
     pooled = headline_pooling(tables)

@@ -103,6 +103,7 @@ def format_table(result: dict) -> str:
         lines.append(f"not pooled: {entry['site_id']} ({entry['reason']})")
     for entry in univariate.get("sites_not_pooled", []):
         lines.append(f"left out of the univariate sensitivity analysis: {entry['site_id']} ({entry['reason']})")
+    lines += cut_back_lines(result["sites"])
     legend = [WITHHELD_LEGEND] if shown_withheld else []
     if any(site.get(m) is None for site in result["sites"] for m in ("sensitivity", "specificity")):
         legend.append(f"{NOT_DEFINED_MARK} not defined from what the site released")
@@ -111,6 +112,16 @@ def format_table(result: dict) -> str:
         "pooled: every site, each withheld count within the range its release allows; 95% profile-likelihood intervals"
     )
     return "\n".join(line.rstrip() for line in lines)
+
+
+def cut_back_lines(sites: list[dict]) -> list[str]:
+    """One line per analysis a site cut back so that its primary table could be released: the analysis, what
+    was done and the rule, never a count."""
+    return [
+        f"cut back at {site['site_id']}: {cut.get('analysis', '?')} {cut.get('action', '')} ({cut.get('rule', '')})"
+        for site in sites
+        for cut in site.get("cut_back") or []
+    ]
 
 
 def _primary_extras(result: dict) -> list[str]:

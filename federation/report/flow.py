@@ -102,6 +102,22 @@ def flow_rows(sites: list[dict[str, Any]]) -> tuple[list[str], list[list[Any]]]:
     return header, rows
 
 
+def _cut_back(sites: list[dict[str, Any]]) -> str:
+    """What sites cut back so that their primary table could be released, one item per analysis, in words."""
+    items = [
+        f"<li><b>{esc(site['site_id'])}</b>: {esc(cut.get('analysis', ''))} {esc(cut.get('action', ''))} "
+        f"({esc(cut.get('rule', ''))})</li>"
+        for site in sites
+        for cut in site.get("cut_back") or []
+    ]
+    if not items:
+        return ""
+    return (
+        '<div class="cut-back"><p>Cut back by the sites so that their primary 2×2 table could be released '
+        "(the analysis and the rule; the counts stay at the site):</p><ul>" + "".join(items) + "</ul></div>"
+    )
+
+
 def flow_section(analysis: dict[str, Any]) -> str:
     """The participant-flow section: one flow diagram per site, then one table for all, with its CSV."""
     sites = analysis["sites"]
@@ -116,6 +132,7 @@ def flow_section(analysis: dict[str, Any]) -> str:
         "the site's minimum cell "
         "size) or would let a small count be worked out from the others.</p>"
         f'<div class="flow-grid">{"".join(_card(site) for site in sites)}</div>'
+        + _cut_back(sites)
         + table(header, html_rows, "Participant flow by site")
         + f'<p class="downloads">{csv_link("participant-flow.csv", header, csv_rows)}</p></section>'
     )

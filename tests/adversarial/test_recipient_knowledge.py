@@ -5,11 +5,15 @@ tests/adversarial/world.py (its own enumeration of record types and integer prog
 
 from __future__ import annotations
 
+import html
+import json
 from pathlib import Path
 
 import numpy as np
 import pytest
 from sklearn.metrics import roc_auc_score
+
+from federation.cli import main as federation
 
 from .world import World, oracle_interval, records
 
@@ -79,7 +83,7 @@ def test_a_band_outside_the_schema_range_is_known_to_be_empty(tmp_path: Path) ->
     assert high - low >= 1, (low, high)
 
 
-def test_a_study_asking_for_everything_keeps_the_primary_table(tmp_path: Path) -> None:
+def test_a_study_asking_for_everything_keeps_the_primary_table(tmp_path: Path, capsys) -> None:
     """Issue 13, item 1: every analysis, a second reference that is often blank and a paired comparison, at a
     site of 400 participants. The primary 2x2 table and the flow stay whole; what had to give is cut back
     in words (no count), and the hidden small group still cannot be worked out."""
@@ -115,6 +119,22 @@ def test_a_study_asking_for_everything_keeps_the_primary_table(tmp_path: Path) -
         assert not any(ch.isdigit() for ch in cut["rule"].replace("2x2", "") + cut["action"])  # words, no count
     low, high = oracle_interval(world, in_small_band)
     assert high - low >= 1, (low, high)
+    # The coordinator is told the same in words: analyze (terminal and JSON) and the report's flow section.
+    assert release.get("cut_back"), "this request costs the site more than the primary table allows"
+    store = str(tmp_path / "study.db")
+    assert federation(["enrol", "--store", store, "--site-id", "site-a", "--key", str(world.site / "site.pub")]) == 0
+    assert federation(["ingest", "--store", store, str(tmp_path / "release-0.json")]) == 0
+    capsys.readouterr()
+    assert federation(["analyze", "--store", store, "--json"]) == 0
+    site = json.loads(capsys.readouterr().out)["sites"][0]
+    assert site["cut_back"] == release["cut_back"]
+    assert federation(["analyze", "--store", store]) == 0
+    summary = capsys.readouterr().out
+    for cut in release["cut_back"]:
+        assert f"cut back at site-a: {cut['analysis']} {cut['action']} ({cut['rule']})" in summary
+    assert federation(["report", "--store", store, "--out", str(tmp_path / "report.html")]) == 0
+    page = (tmp_path / "report.html").read_text()
+    assert "Cut back by the sites" in page and all(html.escape(cut["rule"]) in page for cut in release["cut_back"])
 
 
 def test_derived_statistics_tell_nothing_the_released_counts_do_not(tmp_path: Path) -> None:
