@@ -37,6 +37,7 @@ from typing import Any
 from threadpoolctl import threadpool_limits
 
 from federation.protocol import Release, ValidationToolError
+from federation.protocol.documents import calibration_intercept
 from federation.protocol.words import withheld_cells
 from federation.ranges import primary_ranges
 from federation.stats import (
@@ -498,7 +499,9 @@ def _calibration(tables: list[SiteTable]) -> dict[str, Any] | None:
         ),
         "calibration_intercept": _attempt(
             lambda: pool_calibration_intercept(
-                ids, [_number(c.get("citl")) for _, c in sites], [_number(c.get("citl_se")) for _, c in sites]
+                ids,
+                [_number(calibration_intercept(c)) for _, c in sites],
+                [_number(calibration_intercept(c, "_se")) for _, c in sites],
             )
         ),
         "calibration_slope": _attempt(

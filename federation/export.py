@@ -32,6 +32,7 @@ from pathlib import Path
 from typing import Any
 
 from federation.protocol.cli_support import write_atomic
+from federation.protocol.documents import calibration_intercept
 
 from .analysis import analyze, enrolled_without_release, release_sections
 from .decisions import DECISION_TABLES, DecisionSettings, decision_analysis, decision_rows
@@ -344,14 +345,14 @@ def _discrimination(context: ExportContext) -> Iterable[dict[str, Any]]:
 
 @tidy_table(
     "calibration",
-    "Calibration per site and pooled: observed and expected events, O:E, calibration-in-the-large and slope",
+    "Calibration per site and pooled: observed and expected events, O:E, calibration intercept and slope",
     (
         _SITE,
         ("observed", "events observed (participants with the condition)"),
         ("expected", "events expected: the sum of predicted risks"),
         ("observed_expected_ratio", "O:E"),
-        ("citl", "calibration-in-the-large (logistic intercept with logit risk as offset)"),
-        ("citl_se", "its standard error"),
+        ("calibration_intercept", "calibration intercept (logistic intercept with logit risk as offset)"),
+        ("calibration_intercept_se", "its standard error"),
         ("slope", "calibration slope (logistic coefficient of logit risk)"),
         ("slope_se", "its standard error"),
         ("quantity", "pooled rows: which quantity the estimate is"),
@@ -366,10 +367,10 @@ def _calibration(context: ExportContext) -> Iterable[dict[str, Any]]:
             yield {
                 "site_id": site_id,
                 "observed": _count(c.get("observed")),
-                **{
-                    k: _number(c.get(k))
-                    for k in ("expected", "observed_expected_ratio", "citl", "citl_se", "slope", "slope_se")
-                },
+                **{k: _number(c.get(k)) for k in ("expected", "observed_expected_ratio")},
+                "calibration_intercept": _number(calibration_intercept(c)),
+                "calibration_intercept_se": _number(calibration_intercept(c, "_se")),
+                **{k: _number(c.get(k)) for k in ("slope", "slope_se")},
             }
     pooled = context.analysis.get("calibration")
     if isinstance(pooled, dict):

@@ -7,7 +7,7 @@ study has it, with pooled figures where the analysis pooled them and the sites' 
    sensitivity and specificity, likelihood ratios and the diagnostic odds ratio from the bivariate model,
    small-site effects and leave-one-site-out;
 2. discrimination (ROC bands): each site's AUC, the pooled AUC and the pooled ROC;
-3. calibration: observed:expected, calibration-in-the-large and slope;
+3. calibration: observed:expected, calibration intercept and slope;
 4. subgroups, one variable at a time in the order the request names them (age bands, subtypes, ...);
 5. accuracy by score margin (how often calls close to the threshold are wrong);
 6. agreement with a second reference standard (Cohen's kappa);
@@ -23,6 +23,8 @@ from __future__ import annotations
 import math
 from collections.abc import Mapping
 from typing import Any
+
+from federation.protocol.documents import calibration_intercept
 
 from .protocol.words import NOT_DEFINED_MARK, POOLED_MODELS, WITHHELD_LEGEND, WITHHELD_MARK
 
@@ -225,15 +227,15 @@ def _calibration(result: dict, sites: Mapping[str, dict]) -> list[str]:
         sites,
         "calibration",
         lambda c: (
-            f"O:E {_num(c.get('observed_expected_ratio'), 2)}, calibration-in-the-large "
-            f"{_num(c.get('citl'), 2)}, slope {_num(c.get('slope'), 2)}"
+            f"O:E {_num(c.get('observed_expected_ratio'), 2)}, calibration intercept "
+            f"{_num(calibration_intercept(c), 2)}, slope {_num(c.get('slope'), 2)}"
         ),
     )
     pooled = result.get("calibration")
     if isinstance(pooled, dict):
         for key, label in (
             ("observed_expected", "pooled O:E"),
-            ("calibration_intercept", "pooled calibration-in-the-large"),
+            ("calibration_intercept", "pooled calibration intercept"),
             ("calibration_slope", "pooled calibration slope"),
         ):
             line = _pooled_line(label, pooled.get(key), 2)

@@ -255,8 +255,8 @@ def _statistic_sentences(analysis: str, result: Any) -> list[str]:
                 f"{value('observed'):g} participants with the condition against {value('expected'):.1f} that the "
                 f"predicted risks expect{ratio_text}."
             )
-        if value("citl") is not None:
-            out.append(f"Calibration intercept {value('citl'):.2f}.")
+        if value("calibration_intercept") is not None:
+            out.append(f"Calibration intercept {value('calibration_intercept'):.2f}.")
         if value("slope") is not None:
             out.append(f"Calibration slope {value('slope'):.2f}.")
     return out

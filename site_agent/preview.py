@@ -117,7 +117,8 @@ def _summary(name: str, result: Any) -> str:
         bands = result.get("bands", result.get("bins", []))
         return (
             f"{len(bands)} risk bands, {OBSERVED_EXPECTED} {_number(result['observed_expected_ratio'])}, "
-            f"{CALIBRATION_INTERCEPT} {_number(result['citl'])}, {CALIBRATION_SLOPE} {_number(result['slope'])}"
+            f"{CALIBRATION_INTERCEPT} {_number(result.get('calibration_intercept'))}, "
+            f"{CALIBRATION_SLOPE} {_number(result['slope'])}"
         )
     if name == "margin":
         return f"{len(result)} threshold(s), bands on each side of the threshold"

@@ -420,3 +420,9 @@ def _check_flow(flow: dict[str, Any], where: str) -> None:
         raise DocumentError(f"{where}.excluded: must be an object of counts by reason")
     for reason, value in excluded.items():
         _count(value, f"{where}.excluded.{str(reason)[:40]}")
+
+
+def calibration_intercept(section: dict[str, Any], suffix: str = "") -> Any:
+    """A release's calibration intercept (``suffix="_se"``: its standard error). Releases made before the key
+    was named ``calibration_intercept`` called it ``citl``; both read the same."""
+    return section.get(f"calibration_intercept{suffix}", section.get(f"citl{suffix}"))

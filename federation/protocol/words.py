@@ -2,7 +2,7 @@
 
 One name for each thing, so that the coordinator, site IT and an ethics board read the same word in the
 command line, the report and the documents. JSON keys stay as they are (``suppressed`` lists the withheld
-counts, ``citl`` is the calibration intercept); these are the names shown to people.
+counts, ``calibration_intercept`` is the calibration intercept); these are the names shown to people.
 """
 
 from __future__ import annotations

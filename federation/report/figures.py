@@ -57,7 +57,6 @@ def humanise(path: tuple) -> str:
         "likelihood_ratio_negative": "negative likelihood ratio",
         "auc": "AUC",
         "area_under_curve": "AUC of the summary ROC curve, over false-positive rates from 0 to 1",
-        "citl": CALIBRATION_INTERCEPT,
         "calibration_intercept": CALIBRATION_INTERCEPT,
         "calibration_slope": CALIBRATION_SLOPE,
         "roc": "ROC",
@@ -91,7 +90,7 @@ def reference_value(name: str) -> float | None:
         return 1.0  # calibration slope: 1 is perfect
     if any(word in name for word in _RATIO_WORDS):
         return 1.0
-    if any(word in name for word in ("citl", "intercept", "difference", "kappa")):
+    if any(word in name for word in ("intercept", "difference", "kappa")):
         return 0.0
     if "auc" in name:
         return 0.5  # no discrimination
@@ -101,7 +100,7 @@ def reference_value(name: str) -> float | None:
 # Where the analysis keeps the pooled counterpart of a quantity the sites release under another name.
 POOLED_ALIASES: dict[tuple, tuple] = {
     ("roc", "auc"): ("discrimination", "pooled_auc"),
-    ("calibration", "citl"): ("calibration", "calibration_intercept"),
+    ("calibration", "calibration_intercept"): ("calibration", "calibration_intercept"),
     ("calibration", "slope"): ("calibration", "calibration_slope"),
     ("calibration", "observed_expected_ratio"): ("calibration", "observed_expected"),
     ("paired", "auc_difference"): ("paired", "auc_difference"),

@@ -156,9 +156,9 @@ class Calibration:
             names = frozenset({f"calibration.bin[{j}].events", f"calibration.bin[{j}].non_events"})
             out.derived[f"calibration.bin[{j}].expected"] = (float(sum(band.counts)) * bin_midpoint(band), names)
         totals = frozenset({"calibration.events", "calibration.non_events"})
-        for key in ("expected", "observed_expected_ratio", "citl", "citl_se", "slope_intercept"):
+        for key in ("expected", "observed_expected_ratio", "calibration_intercept", "calibration_intercept_se"):
             out.derived[f"calibration.{key}"] = (lambda released, k=key: self._grouped(released).get(k), totals)
-        for key in ("slope_intercept_se", "slope", "slope_se"):
+        for key in ("slope_intercept", "slope_intercept_se", "slope", "slope_se"):
             out.derived[f"calibration.{key}"] = (lambda released, k=key: self._grouped(released).get(k), totals)
         return out
 
@@ -184,10 +184,10 @@ class Calibration:
             out["observed_expected_ratio"] = float(events.sum()) / expected
         keep = trials > 0
         lp, events, trials = linear_predictor(middle[keep]), events[keep], trials[keep]
-        citl = fit_logistic(np.ones((len(lp), 1)), events, trials, offset=lp)
-        if citl is not None:
-            out["citl"] = float(citl[0][0])
-            out["citl_se"] = math.sqrt(citl[1][0, 0])
+        intercept = fit_logistic(np.ones((len(lp), 1)), events, trials, offset=lp)
+        if intercept is not None:
+            out["calibration_intercept"] = float(intercept[0][0])
+            out["calibration_intercept_se"] = math.sqrt(intercept[1][0, 0])
         slope = fit_logistic(np.column_stack([np.ones(len(lp)), lp]), events, trials)
         if slope is not None:
             out["slope_intercept"] = float(slope[0][0])
@@ -223,8 +223,8 @@ class Calibration:
             "non_events": released.get("calibration.non_events"),
             "expected": derived.get("calibration.expected"),
             "observed_expected_ratio": derived.get("calibration.observed_expected_ratio"),
-            "citl": derived.get("calibration.citl"),
-            "citl_se": derived.get("calibration.citl_se"),
+            "calibration_intercept": derived.get("calibration.calibration_intercept"),
+            "calibration_intercept_se": derived.get("calibration.calibration_intercept_se"),
             "slope": derived.get("calibration.slope"),
             "slope_se": derived.get("calibration.slope_se"),
             "slope_intercept": derived.get("calibration.slope_intercept"),

@@ -94,3 +94,13 @@ def test_release_counts_must_be_counts(key):
     doc["results"]["confusion"][0]["cells"]["tp"] = None
     with pytest.raises(DocumentError, match="must list exactly the cells that are null"):
         Release.from_bytes(json.dumps(doc).encode(), "release")
+
+
+def test_the_calibration_intercept_reads_under_its_earlier_name_too():
+    # Releases made before the key was renamed say "citl"; a current release's key wins when both are present.
+    from federation.protocol.documents import calibration_intercept
+
+    assert calibration_intercept({"citl": -0.25, "citl_se": 0.1}) == -0.25
+    assert calibration_intercept({"citl": -0.25, "citl_se": 0.1}, "_se") == 0.1
+    assert calibration_intercept({"calibration_intercept": 0.5, "citl": -0.25}) == 0.5
+    assert calibration_intercept({}) is None

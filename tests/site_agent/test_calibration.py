@@ -33,13 +33,13 @@ def grouped_fits(calibration: Calibration) -> tuple:
 
 
 @pytest.mark.parametrize("which", ["scores", "compare_scores"])
-def test_citl_and_slope_from_the_released_bins_equal_statsmodels(cancer: Cancer, which: str) -> None:
+def test_calibration_intercept_and_slope_from_the_released_bins_equal_statsmodels(cancer: Cancer, which: str) -> None:
     risk = getattr(cancer, which)
     calibration = feed(Calibration(), risk, cancer.outcome, pieces=6)
     derived = statistics(calibration.counts(Policy()))
     citl, slope, mids = grouped_fits(calibration)
-    assert derived["calibration.citl"] == pytest.approx(citl.params[0], abs=1e-6)
-    assert derived["calibration.citl_se"] == pytest.approx(citl.bse[0], rel=1e-5)
+    assert derived["calibration.calibration_intercept"] == pytest.approx(citl.params[0], abs=1e-6)
+    assert derived["calibration.calibration_intercept_se"] == pytest.approx(citl.bse[0], rel=1e-5)
     assert derived["calibration.slope_intercept"] == pytest.approx(slope.params[0], abs=1e-6)
     assert derived["calibration.slope"] == pytest.approx(slope.params[1], abs=1e-6)
     assert derived["calibration.slope_se"] == pytest.approx(slope.bse[1], rel=1e-5)
@@ -70,5 +70,5 @@ def test_bins_hold_counts_events_and_expected_at_the_midpoint(cancer: Cancer) ->
 def test_no_fit_without_both_outcomes() -> None:
     calibration = feed(Calibration(), np.array([0.2, 0.4, 0.9]), np.array([0, 0, 0]))
     derived = {k: v for k, v in statistics(calibration.counts(Policy())).items() if v is not None}
-    assert "calibration.citl" not in derived and "calibration.slope" not in derived
+    assert "calibration.calibration_intercept" not in derived and "calibration.slope" not in derived
     assert derived["calibration.expected"] == pytest.approx(0.25 + 0.45 + 0.95)  # decile midpoints
