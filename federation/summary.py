@@ -117,13 +117,22 @@ def format_table(result: dict) -> str:
 
 
 def cut_back_lines(sites: list[dict]) -> list[str]:
-    """One line per analysis a site cut back so that its primary table could be released: the analysis, what
-    was done and the rule, never a count."""
-    return [
-        f"cut back at {site['site_id']}: {cut.get('analysis', '?')} {cut.get('action', '')} ({cut.get('rule', '')})"
-        for site in sites
-        for cut in site.get("cut_back") or []
-    ]
+    """What each site cut back so that its primary table could be released: one line per site naming each
+    analysis and what was done, and the rule once when every site gives the same (never a count)."""
+    cuts = [(site["site_id"], cut) for site in sites for cut in site.get("cut_back") or []]
+    if not cuts:
+        return []
+    rules = {str(cut.get("rule", "")) for _, cut in cuts}
+    shared = rules.pop() if len(rules) == 1 else None
+    lines = ["cut back so that each site's primary 2x2 table could be released" + (f" ({shared}):" if shared else ":")]
+    for site_id in dict.fromkeys(site for site, _ in cuts):
+        items = [
+            f"{cut.get('analysis', '?')}: {cut.get('action', '')}" + ("" if shared else f" ({cut.get('rule', '')})")
+            for site, cut in cuts
+            if site == site_id
+        ]
+        lines.append(f"  {site_id:<24} " + "; ".join(items))
+    return lines
 
 
 def _primary_extras(result: dict) -> list[str]:
