@@ -222,10 +222,6 @@ def cmd_ingest(args: argparse.Namespace) -> int:
 
 
 def cmd_analyze(args: argparse.Namespace) -> int:
-    import sys
-
-    from federation.protocol.cli_support import EXIT_OK, EXIT_PARTIAL
-
     from .analysis import analyze, enrolled_without_release, release_sections  # scipy: imported here
     from .further_analysis import read_covariates
     from .summary import format_summary
@@ -238,11 +234,18 @@ def cmd_analyze(args: argparse.Namespace) -> int:
         print_json(result)
     else:
         print(format_summary(result, release_sections(store, result["study_id"])))
+    return _name_sites_without_release(missing, args.json)
+
+
+def _name_sites_without_release(missing: list[str], as_json: bool) -> int:
+    """Name the enrolled sites that sent nothing (on stderr under --json, so that stdout stays one JSON
+    document) and return the exit code: partial (3) when any is missing."""
+    from federation.protocol.cli_support import EXIT_OK, EXIT_PARTIAL
+
     if missing:
-        # stderr under --json, so that stdout stays one JSON document
         print(
             f"no release yet from {len(missing)} enrolled site(s): {', '.join(missing)}",
-            file=sys.stderr if args.json else sys.stdout,
+            file=sys.stderr if as_json else sys.stdout,
         )
     return EXIT_PARTIAL if missing else EXIT_OK
 
@@ -321,10 +324,6 @@ def cmd_report(args: argparse.Namespace) -> int:
 
 
 def cmd_export(args: argparse.Namespace) -> int:
-    import sys
-
-    from federation.protocol.cli_support import EXIT_OK, EXIT_PARTIAL
-
     from .export import export_study  # scipy: imported here so `federation --help` starts fast
 
     if not Path(args.store).is_file():
@@ -336,12 +335,7 @@ def cmd_export(args: argparse.Namespace) -> int:
     else:
         print(f"wrote {len(result.files)} files to {result.out_dir} (study {result.study_id}):")
         print("  " + ", ".join(result.files))
-    if missing:
-        print(
-            f"no release yet from {len(missing)} enrolled site(s): {', '.join(missing)}",
-            file=sys.stderr if args.json else sys.stdout,
-        )
-    return EXIT_PARTIAL if missing else EXIT_OK
+    return _name_sites_without_release(missing, args.json)
 
 
 def cmd_demo(args: argparse.Namespace) -> int:
