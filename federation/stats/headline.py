@@ -105,6 +105,31 @@ class HeadlineFit(ResultRecord):
     def estimable(self) -> bool:
         return self.sensitivity is not None or self.specificity is not None
 
+    @classmethod
+    def none_estimable(
+        cls,
+        reasons: dict[str, str],
+        sites_pooled: tuple[str, ...],
+        sites_not_pooled: tuple[SiteExclusion, ...] = (),
+        censored_sites: tuple[str, ...] = (),
+    ) -> HeadlineFit:
+        """A result with no estimate: every quantity ``None``, ``reasons`` saying why for each."""
+        return cls(
+            method=METHOD,
+            sensitivity=None,
+            specificity=None,
+            sensitivity_prediction=None,
+            specificity_prediction=None,
+            tau_logit_sensitivity=None,
+            tau_logit_fpr=None,
+            correlation=None,
+            not_estimable=reasons,
+            fit=None,
+            sites_pooled=sites_pooled,
+            sites_not_pooled=sites_not_pooled,
+            censored_sites=censored_sites,
+        )
+
 
 METHOD = (
     "bivariate binomial GLMM (Chu & Cole 2006) over every site, withheld cells censored under the rule that "
@@ -272,33 +297,14 @@ def headline_accuracy(
     k = len(evidence)
 
     def empty(reason: str) -> HeadlineFit:
-        reasons = {q: reason for q in ("sensitivity", "specificity", "tau_logit_sensitivity", "tau_logit_fpr")}
-        reasons["correlation"] = reason
-        return HeadlineFit(
-            METHOD, None, None, None, None, None, None, None, reasons, None, site_ids, tuple(excluded), censored
-        )
+        reasons = dict.fromkeys(("sensitivity", "specificity", *HETEROGENEITY), reason)
+        return HeadlineFit.none_estimable(reasons, site_ids, tuple(excluded), censored)
 
     if k < _MIN_SITES:
         return empty(f"not estimable: {k} usable site(s); the bivariate random-effects model needs at least 4")
     if "sensitivity" in not_estimable and "specificity" in not_estimable:
-        return HeadlineFit(
-            METHOD,
-            None,
-            None,
-            None,
-            None,
-            None,
-            None,
-            None,
-            {
-                **not_estimable,
-                **dict.fromkeys(HETEROGENEITY, not_estimable["sensitivity"]),
-            },
-            None,
-            site_ids,
-            tuple(excluded),
-            censored,
-        )
+        reasons = {**not_estimable, **dict.fromkeys(HETEROGENEITY, not_estimable["sensitivity"])}
+        return HeadlineFit.none_estimable(reasons, site_ids, tuple(excluded), censored)
     try:
         return _fit_and_profile(evidence, tables, excluded, points, level, intervals, not_estimable, censored)
     except (ValueError, ArithmeticError):  # a NaN interval or a singular system: say so, never the internal text

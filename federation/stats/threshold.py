@@ -124,19 +124,20 @@ class ThresholdAccuracy(ResultRecord):
     def not_estimable(
         cls, threshold: float, reason: str, not_pooled: Sequence[SiteExclusion] = ()
     ) -> ThresholdAccuracy:
+        """No pooled accuracy at ``threshold``: every estimate ``None``, ``status`` giving the reason."""
         return cls(
-            float(threshold),
-            f"not estimable: {reason}",
-            None,
-            None,
-            None,
-            None,
-            None,
-            None,
-            None,
-            (),
-            tuple(not_pooled),
-            "exact binomial GLMM (Chu & Cole 2006)",
+            threshold=float(threshold),
+            status=f"not estimable: {reason}",
+            sensitivity=None,
+            specificity=None,
+            sensitivity_prediction=None,
+            specificity_prediction=None,
+            tau_logit_sensitivity=None,
+            tau_logit_specificity=None,
+            correlation=None,
+            sites_pooled=(),
+            sites_not_pooled=tuple(not_pooled),
+            method="exact binomial GLMM (Chu & Cole 2006)",
         )
 
 
@@ -346,6 +347,29 @@ class ThresholdChoice(ResultRecord):
     method: str
     caution: str = CAUTION
 
+    @classmethod
+    def not_estimable(
+        cls, criterion: str, target: float | None, reason: str, level: float, seed: int, method: str
+    ) -> ThresholdChoice:
+        """No threshold chosen: every estimate ``None``, no bootstrap run, ``status`` giving the reason."""
+        return cls(
+            criterion=criterion,
+            target=target,
+            status=f"not estimable: {reason}",
+            threshold=None,
+            ci_low=None,
+            ci_high=None,
+            sensitivity=None,
+            specificity=None,
+            youden=None,
+            bootstrap_share={},
+            replicates=0,
+            replicates_without_choice=0,
+            level=level,
+            seed=seed,
+            method=method,
+        )
+
 
 def _pick(
     thresholds: Sequence[float],
@@ -522,23 +546,7 @@ def choose_threshold(
             if criterion == "target_sensitivity"
             else "no threshold could be pooled"
         )
-        return ThresholdChoice(
-            criterion,
-            target,
-            f"not estimable: {reason}",
-            None,
-            None,
-            None,
-            None,
-            None,
-            None,
-            {},
-            0,
-            0,
-            level,
-            seed,
-            method,
-        )
+        return ThresholdChoice.not_estimable(criterion, target, reason, level, seed, method)
     site_ids = sorted({t.site_id for tables in tables_by_threshold.values() for t in tables})
     ordered, _ = ordered_evidence(tables_by_threshold)
     evidence = {threshold: {ev.site_id: ev for ev in ordered[threshold]} for threshold in thresholds}
