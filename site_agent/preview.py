@@ -106,19 +106,21 @@ def _show(value: Any) -> str:
     return WITHHELD if value is None else str(value)
 
 
-def _number(value: Any) -> str:
-    return "withheld" if value is None else f"{value:.4f}"
+def _number(value: Any, digits: int) -> str:
+    """A statistic to as many decimals as the coordinator's summary and report show it (AUC 3; O:E, kappa 2)."""
+    return WITHHELD if value is None else f"{value:.{digits}f}"
 
 
 def _summary(name: str, result: Any) -> str:
     if name == "roc":
-        return f"{len(result['bands'])} score bands, AUC {_number(result['auc'])} (SE {_number(result['auc_se'])})"
+        auc, se = _number(result["auc"], 3), _number(result["auc_se"], 3)
+        return f"{len(result['bands'])} score bands, AUC {auc} (SE {se})"
     if name == "calibration":
         bands = result.get("bands", result.get("bins", []))
         return (
-            f"{len(bands)} risk bands, {OBSERVED_EXPECTED} {_number(result['observed_expected_ratio'])}, "
-            f"{CALIBRATION_INTERCEPT} {_number(result.get('calibration_intercept'))}, "
-            f"{CALIBRATION_SLOPE} {_number(result['slope'])}"
+            f"{len(bands)} risk bands, {OBSERVED_EXPECTED} {_number(result['observed_expected_ratio'], 2)}, "
+            f"{CALIBRATION_INTERCEPT} {_number(result.get('calibration_intercept'), 2)}, "
+            f"{CALIBRATION_SLOPE} {_number(result['slope'], 2)}"
         )
     if name == "margin":
         return f"{len(result)} threshold(s), bands on each side of the threshold"
@@ -126,10 +128,10 @@ def _summary(name: str, result: Any) -> str:
         if not result.get("available"):
             return result.get("reason", "not available")
         pairs = result["tables"][0]["pairs"]
-        return ", ".join(f"kappa {pair} {_number(p['kappa'])}" for pair, p in pairs.items())
+        return ", ".join(f"kappa {pair} {_number(p['kappa'], 2)}" for pair, p in pairs.items())
     if name == "paired":
         return (
-            f"AUC difference {_number(result['auc_difference'])} (SE {_number(result['auc_difference_se'])}), "
+            f"AUC difference {_number(result['auc_difference'], 3)} (SE {_number(result['auc_difference_se'], 3)}), "
             "screen results of both models among participants with and without the condition"
         )
     if name == "subgroups":

@@ -4,6 +4,7 @@ policy, `site-agent check`, and a paired request over the Flower adapters."""
 from __future__ import annotations
 
 import json
+import re
 from pathlib import Path
 
 import pytest
@@ -13,6 +14,7 @@ from federation.cli import main as federation
 from federation.flower_server import RoundConfig, make_server_app
 from federation.protocol import AnalysisSpec, DocumentError, Request, sha256_hex
 from federation.protocol.documents import SubgroupSpec
+from federation.protocol.words import CALIBRATION_INTERCEPT, OBSERVED_EXPECTED
 from federation.store import Store
 from simulations.inprocess import run_inprocess
 from site_agent.cli import main as site_agent
@@ -141,6 +143,13 @@ def test_check_shows_what_would_leave_and_records_nothing(cancer: Cancer, tmp_pa
             assert tp_fn[name.split(".")[1]] is None
     for band in release["results"]["roc"]["bands"]:
         assert all(v is None or v == 0 or v >= 10 for v in (band["positive"], band["negative"]))
+    # statistics to the decimals of the coordinator's terminal summary (federation/summary.py): AUC and its SE 3,
+    # O:E and calibration intercept 2; nothing to four decimals
+    roc, calibration = release["results"]["roc"], release["results"]["calibration"]
+    assert f"AUC {roc['auc']:.3f} (SE {roc['auc_se']:.3f})" in text
+    assert f"{OBSERVED_EXPECTED} {calibration['observed_expected_ratio']:.2f}, " in text
+    assert f"{CALIBRATION_INTERCEPT} {calibration['calibration_intercept']:.2f}, " in text
+    assert not re.search(r"\d\.\d{4}", text), re.search(r"\S*\d\.\d{4}\S*", text).group(0)
     assert (folder / "ledger.jsonl").read_bytes() == ledger_before
     assert not any((folder / "releases").iterdir())
 

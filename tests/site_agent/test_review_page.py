@@ -112,6 +112,24 @@ def test_the_page_says_who_decided_and_why(held_full) -> None:  # noqa: ANN001
     assert "Approved by A. Member on" in text and f"Reason given: {why}" in text
 
 
+def test_the_review_shows_statistics_as_the_summary_does(held_full, capsys) -> None:  # noqa: ANN001
+    # Decimals of the coordinator's terminal summary (federation/summary.py): AUC and its SE 3, O:E and the
+    # calibration intercept 2; counts as whole numbers; nothing a person reads to four decimals.
+    site_dir, held_id, _ = held_full
+    results = json.loads((site_dir / "held" / f"{held_id}.json").read_text())["results"]
+    roc, calibration = results["roc"], results["calibration"]
+    capsys.readouterr()
+    assert site_agent(["review", "--site-dir", str(site_dir), "--all"]) == 0
+    out = capsys.readouterr().out
+    assert f"AUC {roc['auc']:.3f} (standard error {roc['auc_se']:.3f})," in out
+    observed, expected = calibration["observed"], calibration["expected"]
+    assert f"{observed:g} participants with the condition against {expected:.1f} " in out
+    assert float(observed).is_integer() and f"{observed:g}" == str(int(observed))
+    assert f"(O:E ratio {calibration['observed_expected_ratio']:.2f})" in out
+    assert f"Calibration intercept {calibration['calibration_intercept']:.2f}." in out
+    assert not re.search(r"\d\.\d{4}", out), re.search(r"\S*\d\.\d{4}\S*", out).group(0)
+
+
 def test_the_text_review_is_short_and_plain(held_full, capsys) -> None:  # noqa: ANN001
     site_dir, held_id, _ = held_full
     capsys.readouterr()
