@@ -43,11 +43,12 @@ from typing import Any
 
 import numpy as np
 from scipy import special, stats
+from threadpoolctl import threadpool_limits
 
 from federation.stats import PoolingError, ReleasedTable, glmm_accuracy, random_effects, reitsma
 from federation.stats.headline import headline_accuracy
 from site_agent.counts import Relation
-from site_agent.disclosure import suppress
+from site_agent.disclosure import is_unsafe, suppress
 
 # (method, interval) rows of the table; the interval names its reference distribution.
 ROWS = (
@@ -93,10 +94,35 @@ class Scenario:
         return np.array([[s1 * s1, rho * s1 * s2], [rho * s1 * s2, s2 * s2]])
 
 
+# The release's names of the counts whose rule the pooling reads (federation.analysis._rules_named).
+_POOLING_NAMES = {
+    "confusion[0].tp": "tp",
+    "confusion[0].fp": "fp",
+    "confusion[0].fn": "fn",
+    "confusion[0].tn": "tn",
+    "flow.analysed_positive": "positives",
+    "flow.analysed_negative": "negatives",
+    "flow.analysed": "analysed",
+}
+
+
 def release_table(
-    site_id: str, tp: int, fp: int, fn: int, tn: int, excluded: Sequence[int], k: int, allow_zero: bool
+    site_id: str,
+    tp: int,
+    fp: int,
+    fn: int,
+    tn: int,
+    excluded: Sequence[int],
+    k: int,
+    allow_zero: bool,
+    name_rules: bool = True,
 ) -> ReleasedTable:
-    """Apply the site's disclosure rule to one site's flow and 2×2 and return what the coordinator sees."""
+    """Apply the site's disclosure rule to one site's flow and 2×2 and return what the coordinator sees.
+
+    As a real release does, it names the rule that withheld each count (``suppressed_by``:
+    ``minimum_cell_size`` for a count in the unsafe range, ``complementary`` for one hidden so that such a
+    count cannot be recomputed); ``name_rules=False`` leaves the rules out (an older release).
+    """
     analysed = tp + fp + fn + tn
     counts = {
         "flow.read": analysed + sum(excluded),
@@ -115,7 +141,12 @@ def release_table(
         Relation("flow.analysed_positive", ("confusion[0].tp", "confusion[0].fn")),
         Relation("flow.analysed_negative", ("confusion[0].fp", "confusion[0].tn")),
     ]
-    shown, _ = suppress(counts, relations, k, allow_zero)
+    shown, hidden = suppress(counts, relations, k, allow_zero)
+    rules = {
+        _POOLING_NAMES[name]: "minimum_cell_size" if is_unsafe(counts[name], k, allow_zero) else "complementary"
+        for name in hidden
+        if name in _POOLING_NAMES and name_rules
+    }
     return ReleasedTable(
         site_id,
         shown["confusion[0].tp"],
@@ -130,6 +161,7 @@ def release_table(
         min_cell_size=k,
         allow_zero=allow_zero,
         excluded_names=REASONS,
+        suppressed_by=rules,
         replayable=True,  # only the flow and the 2x2, one release, no audit: the coordinator replays the rule
     )
 
@@ -205,38 +237,54 @@ def _logit_interval(centre: float, se: float, quantile: float) -> tuple[float, f
     return (centre, centre - quantile * se, centre + quantile * se)
 
 
+def _logit_triple(interval: Any) -> tuple[float, float, float]:
+    return tuple(_logit(v) for v in (interval.estimate, interval.ci_low, interval.ci_high))  # type: ignore[return-value]
+
+
+def _not_estimable_reason(head: Any) -> str:
+    """The headline's first "not estimable" reason for the summary point, without site names or numbers."""
+    for name in ("sensitivity", "specificity"):
+        if name in head.not_estimable:
+            return str(head.not_estimable[name])
+    return "not estimable: no summary point"
+
+
 def run_one(args: tuple[Scenario, int]) -> dict[str, Any]:
     """One consortium: its suppression pattern and each row's logit-scale (estimate, low, high) per measure.
 
-    Specificity is carried as logit specificity. ``None`` where a fit failed or was declared not estimable.
+    Specificity is carried as logit specificity. A row is missing where its fit failed or was declared not
+    estimable; ``not_estimable`` holds the headline's reason then. ``seconds`` is the CPU time it took.
     """
     scenario, seed = args
+    started = time.process_time()
     rng = np.random.default_rng(seed)
     tables = consortium(scenario, rng)
     row: dict[str, Any] = {"suppressed_sites": sum(1 for t in tables if not t.is_complete)}
-    z = 1.959963984540054
+    z = float(stats.norm.isf(0.025))
     try:
         head = headline_accuracy(tables, intervals=False)
-    except PoolingError:
+    except PoolingError as error:  # never expected: the headline says "not estimable" instead of raising
+        row["not_estimable"] = f"failed: {error}"
         head = None
     if head is not None and head.sensitivity is not None and head.specificity is not None and head.fit is not None:
         fit = head.fit
-        t_q = float(stats.t.isf(0.025, len(head.sites_pooled) - 2))
+        k = len(head.sites_pooled)
         row["headline"] = {
-            "sites": len(head.sites_pooled),
-            "sensitivity": tuple(
-                _logit(v) for v in (head.sensitivity.estimate, head.sensitivity.ci_low, head.sensitivity.ci_high)
-            ),
-            "specificity": tuple(
-                _logit(v) for v in (head.specificity.estimate, head.specificity.ci_low, head.specificity.ci_high)
-            ),
+            "sites": k,
+            "sensitivity": _logit_triple(head.sensitivity),
+            "specificity": _logit_triple(head.specificity),
         }
-        for label, q in (("glmm_censored|Wald, t(k-2)", t_q), ("glmm_censored|Wald, z", z)):
+        for label, q in (
+            ("glmm_censored|Wald, t(k-2)", float(stats.t.isf(0.025, k - 2))),
+            ("glmm_censored|Wald, z", z),
+        ):
             row[label] = {
                 "sites": fit.n_sites,
                 "sensitivity": _logit_interval(fit.mean_logit_sensitivity, fit.se_logit_sensitivity, q),
                 "specificity": _logit_interval(-fit.mean_logit_fpr, fit.se_logit_fpr, q),
             }
+    elif head is not None:
+        row["not_estimable"] = _not_estimable_reason(head)
     for name, build in (
         ("glmm_drop|Wald, t(k-2)", lambda: glmm_accuracy(tables, suppressed="drop", interval="t")),
         ("reitsma_drop|Wald, z", lambda: reitsma(tables)),
@@ -255,7 +303,13 @@ def run_one(args: tuple[Scenario, int]) -> dict[str, Any]:
         row["univariate_drop|Wald, z"] = _univariate(tables)
     except PoolingError:
         pass
+    row["seconds"] = time.process_time() - started
     return row
+
+
+def _worker() -> None:
+    """One BLAS thread per process: the fits are small, and threads of two processes on two cores contend."""
+    threadpool_limits(1)
 
 
 def _key(method: str, interval: str) -> str:
@@ -319,6 +373,17 @@ def print_table(summary: dict[str, Any], rows: list[dict[str, Any]], scenario: S
                 f"{m['bias']:>+8.4f}{m['bias_mcse']:>8.4f}{m['rmse']:>7.4f}{100 * m['coverage']:>9.1f}%"
                 f"{100 * m['coverage_mcse']:>6.1f}%{m['mean_ci_width']:>7.3f}"
             )
+    for reason, count in _reasons(rows).items():
+        print(f"headline not estimable in {count} of {len(rows)}: {reason}")
+
+
+def _reasons(rows: list[dict[str, Any]]) -> dict[str, int]:
+    """How often each "not estimable" reason of the headline fired."""
+    counts: dict[str, int] = {}
+    for row in rows:
+        if "not_estimable" in row:
+            counts[row["not_estimable"]] = counts.get(row["not_estimable"], 0) + 1
+    return dict(sorted(counts.items(), key=lambda item: -item[1]))
 
 
 def main(argv: Sequence[str] | None = None) -> int:
@@ -336,32 +401,49 @@ def main(argv: Sequence[str] | None = None) -> int:
     chosen = [s for s in SCENARIOS if not args.scenario or s.name in args.scenario]
     if not chosen:
         parser.error(f"--scenario must be one of: {', '.join(s.name for s in SCENARIOS)}")
-    results = []
-    for number, scenario in enumerate(chosen):
-        seeds = np.random.SeedSequence([args.seed, number]).generate_state(consortia, dtype=np.uint64)
-        jobs = [(scenario, int(s)) for s in seeds]
-        started = time.perf_counter()
-        if args.workers > 1:
-            with ProcessPoolExecutor(args.workers) as pool:
-                rows = list(pool.map(run_one, jobs, chunksize=4))
-        else:
-            rows = [run_one(job) for job in jobs]
-        seconds = time.perf_counter() - started
-        summary = summarise(rows, scenario)
-        print_table(summary, rows, scenario, seconds)
-        results.append(
-            {
-                "scenario": {
-                    **{k: v for k, v in scenario.__dict__.items() if not isinstance(v, tuple)},
-                    "exclusion_rates": dict(zip(REASONS, scenario.exclusion_rates, strict=True)),
-                },
-                "consortia": consortia,
-                "seconds": round(seconds, 1),
-                "withheld_sites_per_consortium": float(np.mean([r["suppressed_sites"] for r in rows])),
-                "methods": summary,
+    results: list[dict[str, Any]] = []
+    begun = time.perf_counter()
+    pool = ProcessPoolExecutor(args.workers, initializer=_worker) if args.workers > 1 else None
+    if pool is None:
+        _worker()
+    try:
+        for scenario in chosen:
+            # Seeds follow the scenario's place in SCENARIOS, so a scenario run alone repeats the full run's.
+            number = SCENARIOS.index(scenario)
+            seeds = np.random.SeedSequence([args.seed, number]).generate_state(consortia, dtype=np.uint64)
+            jobs = [(scenario, int(s)) for s in seeds]
+            started = time.perf_counter()
+            rows = list(pool.map(run_one, jobs, chunksize=2)) if pool else [run_one(job) for job in jobs]
+            seconds = time.perf_counter() - started
+            summary = summarise(rows, scenario)
+            print_table(summary, rows, scenario, seconds)
+            results.append(
+                {
+                    "scenario": {
+                        **{k: v for k, v in scenario.__dict__.items() if not isinstance(v, tuple)},
+                        "exclusion_rates": dict(zip(REASONS, scenario.exclusion_rates, strict=True)),
+                    },
+                    "consortia": consortia,
+                    "seconds": round(seconds, 1),
+                    "cpu_seconds": round(float(sum(r["seconds"] for r in rows)), 1),
+                    "withheld_sites_per_consortium": float(np.mean([r["suppressed_sites"] for r in rows])),
+                    "not_estimable": _reasons(rows),
+                    "methods": summary,
+                }
+            )
+            # Written after every scenario, so that a long run stopped part-way keeps what it finished.
+            document = {
+                "seed": args.seed,
+                "workers": args.workers,
+                "complete": len(results) == len(chosen),
+                "minutes": round((time.perf_counter() - begun) / 60, 1),
+                "scenarios": results,
             }
-        )
-    args.out.write_text(json.dumps({"seed": args.seed, "scenarios": results}, indent=2) + "\n")
+            args.out.write_text(json.dumps(document, indent=2) + "\n")
+    finally:
+        if pool is not None:
+            pool.shutdown()
+    print(f"\n{(time.perf_counter() - begun) / 60:.1f} min in all")
     print(f"results: {args.out}")
     return 0
 
