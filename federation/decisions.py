@@ -10,7 +10,6 @@ into JSON and tidy rows (for the report and ``federation export``).
 
 from __future__ import annotations
 
-import math
 from collections.abc import Sequence
 from dataclasses import dataclass
 from typing import Any
@@ -19,6 +18,8 @@ import numpy as np
 from threadpoolctl import threadpool_limits
 
 from federation.protocol import ValidationToolError
+from federation.release_values import count_or_none as _count
+from federation.release_values import number_or_none as _edge
 from federation.stats import PoolingError, ReleasedTable, SiteEvidence
 from federation.stats.net_benefit import decision_curve
 from federation.stats.threshold import CAUTION, choose_threshold, pool_by_threshold
@@ -73,16 +74,6 @@ def parse_probability_range(text: str) -> tuple[float, float]:
 
 
 MAX_THRESHOLDS = 8
-
-
-def _count(value: Any) -> int | None:
-    return value if isinstance(value, int) and not isinstance(value, bool) and value >= 0 else None
-
-
-def _edge(value: Any) -> float | None:
-    if isinstance(value, bool) or not isinstance(value, int | float) or not math.isfinite(value):
-        return None
-    return float(value)
 
 
 def _band_tables(releases: Sequence[Any]) -> dict[float, list[ReleasedTable | SiteEvidence]]:

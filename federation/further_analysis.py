@@ -34,6 +34,8 @@ from threadpoolctl import threadpool_limits
 
 from federation.labels import level_label
 from federation.protocol import ValidationToolError
+from federation.release_values import count_or_none as _count
+from federation.release_values import number_or_none as _number
 from federation.stats import (
     PoolingError,
     ReleasedTable,
@@ -82,16 +84,6 @@ def _attempt(function: Callable[..., Any], *args: Any, **kwargs: Any) -> dict[st
         return function(*args, **kwargs).to_dict()
     except (PoolingError, ValueError, np.linalg.LinAlgError) as error:
         return _not_estimated(str(error))
-
-
-def _count(value: Any) -> int | None:
-    return value if isinstance(value, int) and not isinstance(value, bool) and value >= 0 else None
-
-
-def _number(value: Any) -> float | None:
-    if isinstance(value, bool) or not isinstance(value, int | float) or not math.isfinite(value):
-        return None
-    return float(value)
 
 
 def _section(table: SiteTable, name: str) -> Any:

@@ -33,6 +33,7 @@ import numpy as np
 from scipy import optimize, sparse
 
 from federation.protocol import Release
+from federation.release_values import count_or_none as _count
 
 __all__ = ["Count", "count_definitions", "feasible_ranges", "primary_ranges"]
 
@@ -54,10 +55,6 @@ class Count:
     name: str
     value: int | None
     where: Mapping[str, frozenset[str] | Interval] | None
-
-
-def _count(value: Any) -> int | None:
-    return value if isinstance(value, int) and not isinstance(value, bool) and value >= 0 else None
 
 
 def _bound(value: Any, default: float) -> float:

@@ -6,6 +6,8 @@ import math
 from typing import Any
 
 from federation.protocol.documents import calibration_intercept
+from federation.release_values import count_or_none as _count
+from federation.release_values import number_or_none as _number
 from federation.stats import (
     SiteBands,
     multiple_threshold_roc,
@@ -21,16 +23,6 @@ from federation.stats import (
 from ..labels import level_label
 from .accuracy import _attempt, _logit_pair, _not_estimated
 from .tables import SiteTable
-
-
-def _number(value: Any) -> float | None:
-    if isinstance(value, bool) or not isinstance(value, int | float) or not math.isfinite(value):
-        return None
-    return float(value)
-
-
-def _count(value: Any) -> int | None:
-    return value if isinstance(value, int) and not isinstance(value, bool) and value >= 0 else None
 
 
 def _section(table: SiteTable, name: str) -> dict[str, Any] | None:

@@ -6,6 +6,8 @@ from collections.abc import Iterable
 from typing import Any
 
 from federation.protocol.documents import calibration_intercept
+from federation.release_values import count_or_none as _count
+from federation.release_values import number_or_none as _number
 
 from .registry import (
     _BAND_COLUMNS,
@@ -13,10 +15,8 @@ from .registry import (
     _SITE,
     POOLED,
     ExportContext,
-    _count,
     _edge,
     _interval,
-    _number,
     _withheld,
     tidy_table,
 )

@@ -7,7 +7,10 @@ from __future__ import annotations
 from collections.abc import Iterable
 from typing import Any
 
-from .registry import _BAND_COLUMNS, _SITE, ExportContext, _count, _edge, _number, _withheld, tidy_table
+from federation.release_values import count_or_none as _count
+from federation.release_values import number_or_none as _number
+
+from .registry import _BAND_COLUMNS, _SITE, ExportContext, _edge, _withheld, tidy_table
 
 
 @tidy_table(

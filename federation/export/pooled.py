@@ -5,7 +5,9 @@ from __future__ import annotations
 from collections.abc import Iterable
 from typing import Any
 
-from .registry import _POOLED_COLUMNS, ExportContext, _number, tidy_table
+from federation.release_values import number_or_none as _number
+
+from .registry import _POOLED_COLUMNS, ExportContext, tidy_table
 
 
 def _pooled_results(

@@ -11,6 +11,8 @@ from collections.abc import Callable, Iterable, Mapping
 from dataclasses import dataclass
 from typing import Any
 
+from federation.release_values import number_or_none as _number
+
 NA = "NA"
 POOLED = "pooled"
 
@@ -67,16 +69,6 @@ def _cell(value: Any) -> str:
             return NA
         return str(int(value)) if value.is_integer() and abs(value) < 1e15 else repr(value)
     return str(value)
-
-
-def _count(value: Any) -> int | None:
-    return value if isinstance(value, int) and not isinstance(value, bool) and value >= 0 else None
-
-
-def _number(value: Any) -> float | None:
-    if isinstance(value, bool) or not isinstance(value, int | float) or not math.isfinite(value):
-        return None
-    return float(value)
 
 
 def _interval(prefix: str, value: Any) -> dict[str, float | None]:

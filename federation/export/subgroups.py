@@ -6,8 +6,11 @@ import math
 from collections.abc import Iterable
 from typing import Any
 
+from federation.release_values import count_or_none as _count
+from federation.release_values import number_or_none as _number
+
 from ..labels import level_label
-from .registry import _POOLED_COLUMNS, _SITE, ExportContext, _count, _edge, _number, _withheld, tidy_table
+from .registry import _POOLED_COLUMNS, _SITE, ExportContext, _edge, _withheld, tidy_table
 
 
 @tidy_table(
