@@ -25,9 +25,9 @@ from typing import Any
 from federation.protocol import Bundle, ValidationToolError, load_bundle
 from federation.protocol.cli_support import print_json, write_atomic
 from federation.protocol.errors import ModelNotApproved
-from federation.protocol.scoring import make_scorer
 
 from . import ledger
+from .checked_models import site_scorer
 from .config import Site, load_site
 
 MODELS_DIR = "models"
@@ -127,7 +127,7 @@ def describe(site: Site, bundle: Bundle) -> dict[str, Any]:
             high = "inf" if feature.maximum is None else f"{feature.maximum:g}"
             domain = f"{feature.type} in [{low}, {high}]"
         inputs.append({"name": feature.name, "type": feature.type, "domain": domain, "required": feature.required})
-    scorer = make_scorer(bundle)  # the static check: a bundle that fails it is refused here, not described
+    scorer = site_scorer(site, bundle)  # the static check (kept for the rounds): a failing bundle is refused here
     view: dict[str, Any] = {
         "id": bundle.sha256[:16],
         "bundle_sha256": bundle.sha256,
@@ -178,7 +178,7 @@ def decide(site: Site, bundle: Bundle, approve: bool, by: str, reason: str = "")
         raise ValidationToolError("--by: name the person who decides")
     if not approve and not reason.strip():
         raise ValidationToolError("--reason: say why the model is rejected")
-    make_scorer(bundle)  # a model that fails the static check cannot be approved
+    site_scorer(site, bundle)  # a model that fails the static check cannot be approved; a passing one is kept
     details = {
         "bundle_sha256": bundle.sha256,
         "model_sha256": bundle.manifest.model_sha256,

@@ -24,7 +24,6 @@ from federation.protocol import (
     Request,
     ValidationToolError,
     load_bundle,
-    make_scorer,
     sha256_hex,
 )
 from federation.protocol.cli_support import write_atomic
@@ -34,6 +33,7 @@ from federation.protocol.errors import LimitReached, ModelNotApproved, ScoringEr
 from . import approval, ledger, models
 from .analyses import Flow, build_analyses, collect_counts, combined_schema, tabulate
 from .approval import AwaitingApproval
+from .checked_models import site_scorer
 from .config import Site
 from .counts import CountSet
 from .data import DEFAULT_CHUNK_ROWS, exclusion_reasons
@@ -352,8 +352,8 @@ def _compute(
     holder = {} if holder is None else holder
     holder["phase"] = "model"
     schema = combined_schema(bundle.schema, compare.schema if compare else None)
-    scorer = make_scorer(bundle)
-    pair = (compare, make_scorer(compare)) if compare is not None else None
+    scorer = site_scorer(site, bundle)  # the static check, kept per model in the site folder once it was made
+    pair = (compare, site_scorer(site, compare)) if compare is not None else None
     analyses = build_analyses(request.analyses, bundle, compare)
     holder["phase"] = "setup"
     source = data if isinstance(data, SourceSpec) else site.source(data)

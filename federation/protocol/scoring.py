@@ -23,7 +23,7 @@ import numpy as np
 
 from .bundle import Bundle
 from .errors import BundleError, ScoringError
-from .model_check import ALLOWED_DOMAINS, check_onnx
+from .model_check import ALLOWED_DOMAINS, CheckedGraph, check_onnx
 from .schema import Schema
 
 ALLOWED_ONNX_DOMAINS = ALLOWED_DOMAINS
@@ -59,10 +59,14 @@ class OnnxScorer:
 
     low, high = 0.0, 1.0
 
-    def __init__(self, model_bytes: bytes, n_features: int) -> None:
+    def __init__(self, model_bytes: bytes, n_features: int, checked: CheckedGraph | None = None) -> None:
+        """``checked``: the result of :func:`check_onnx` for exactly these bytes, made earlier (the site keeps
+        it per model); without it the check runs here, before any record is read (BundleError)."""
         import onnxruntime
 
-        checked = check_onnx(model_bytes, n_features)  # BundleError before any record is read
+        if checked is None:
+            checked = check_onnx(model_bytes, n_features)
+        self.checked = checked
         self.operators = checked.operators
         options = onnxruntime.SessionOptions()
         options.intra_op_num_threads = 1
