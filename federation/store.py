@@ -49,6 +49,9 @@ CREATE TABLE IF NOT EXISTS round_sites (
     round_id TEXT NOT NULL REFERENCES rounds(round_id), site_id TEXT NOT NULL, status TEXT NOT NULL,
     reason TEXT NOT NULL, node_id TEXT, attempts INTEGER NOT NULL, updated_at TEXT NOT NULL,
     PRIMARY KEY (round_id, site_id));
+CREATE TABLE IF NOT EXISTS acknowledgements (
+    release_sha256 TEXT PRIMARY KEY REFERENCES releases(release_sha256), site_id TEXT NOT NULL,
+    document BLOB NOT NULL, signed_at TEXT NOT NULL);
 """
 
 
@@ -293,6 +296,33 @@ class Store:
             "SELECT release_sha256, ingested_at FROM releases WHERE site_id = ? ORDER BY ingested_at, rowid", (site_id,)
         )
         return [(digest, when) for digest, when in rows]
+
+    # --- acknowledgements: the coordinator's signed word that a release is stored -----------------------
+    def unacknowledged(self) -> list[tuple[str, str, str, str, str]]:
+        """(release SHA-256, study, request, site, stored at) of every stored release without an acknowledgement."""
+        rows = self._db.execute(
+            "SELECT r.release_sha256, r.study_id, r.request_id, r.site_id, r.ingested_at FROM releases r "
+            "LEFT JOIN acknowledgements a ON a.release_sha256 = r.release_sha256 WHERE a.release_sha256 IS NULL "
+            "ORDER BY r.ingested_at, r.rowid"
+        )
+        return [tuple(row) for row in rows]  # type: ignore[misc]
+
+    def add_acknowledgements(self, signed: list[tuple[str, str, bytes]]) -> None:
+        """Keep signed acknowledgements, (release SHA-256, site, document), in one transaction."""
+        with self.transaction() as db:
+            for digest, site_id, document in signed:
+                db.execute(
+                    "INSERT OR IGNORE INTO acknowledgements VALUES (?, ?, ?, ?)", (digest, site_id, document, _now())
+                )
+
+    def acknowledgements_of(self, site_id: str) -> list[bytes]:
+        """The signed acknowledgements of a site's stored releases, oldest release first."""
+        rows = self._db.execute(
+            "SELECT a.document FROM acknowledgements a JOIN releases r ON r.release_sha256 = a.release_sha256 "
+            "WHERE a.site_id = ? ORDER BY r.ingested_at, r.rowid",
+            (site_id,),
+        )
+        return [bytes(document) for (document,) in rows]
 
     # --- node keys (online sites): node key <-> site id <-> release-signing key ------------------------
     def bind_node_key(self, site_id: str, node_key_sha256: str, node_public_key_pem: bytes, source: str) -> None:

@@ -10,10 +10,11 @@ Two message types:
                     allowlist and data source, without reading a record; the reply is a fixed set of fields
                     whose reason never holds a path of the site's file system.
 
-Either message may carry the coordinator's **acknowledgements**: the SHA-256 of every release from this site
-that its store holds. Each one that names a release this site handed to its node and that the ledger does
-not yet record as acknowledged is written to the ledger (``acknowledged``), so the ledger tells a release
-handed to the local node (``sent``) from one the coordinator stored.
+Either message may carry the coordinator's **acknowledgements**: one document per release from this site
+that its store holds, signed with the coordinator's key. Each one whose signature verifies against a pinned
+coordinator key and that names a release this site handed to its node, not yet acknowledged, is written to
+the ledger (``acknowledged``, with the signed document), so the ledger tells a release handed to the local
+node (``sent``) from one the coordinator stored. A forged or altered one is logged and not recorded.
 
 Which site folder a node serves: ``node_config["site-dir"]`` in deployment
 (``flower-supernode --node-config 'site-dir="/srv/site"'``); in simulation the factory maps each virtual
@@ -51,20 +52,25 @@ def _site_dir(context: Context, site_dirs: Sequence[Path] | None) -> Path:
 
 
 def record_acknowledgements(site: Site, message: Message) -> int:
-    """Write the coordinator's acknowledgements of this site's releases to the ledger; return how many are new.
+    """Write the coordinator's signed acknowledgements of this site's releases to the ledger; return how many.
 
-    An acknowledgement counts only for a release this site's ledger records as handed over; one naming any
-    other release is ignored (and said on the app runner's log), so nothing the coordinator sends can make
-    the ledger claim a delivery the site never made.
+    Each acknowledgement is a document signed with the coordinator's key
+    (:mod:`federation.protocol.acknowledgement`). It counts only when its signature verifies against a
+    coordinator key this site pinned, it names this site, and it names a release this site's ledger records
+    as handed over. Anything else is said on the app runner's log and not recorded: a forged or altered
+    acknowledgement (``signature does not verify``) never makes the ledger claim a delivery.
     """
+    from federation.protocol import SignatureError
+    from federation.protocol.acknowledgement import Acknowledgement
+
     from . import ledger
 
     record = message.content.config_records.get(ACKNOWLEDGEMENTS)
     if record is None:
         return 0
-    digests, stored = record.get("release_sha256", []), record.get("stored_at", [])
-    if not isinstance(digests, list) or not isinstance(stored, list) or len(digests) != len(stored):
-        print("acknowledgements: malformed record ignored", file=sys.stderr)
+    documents = record.get("documents", [])
+    if not isinstance(documents, list) or not all(isinstance(d, bytes) for d in documents):
+        print("acknowledgements: malformed record ignored (not a list of signed documents)", file=sys.stderr)
         return 0
     entries = ledger.read_entries(site.ledger_path)
     released = {
@@ -75,14 +81,20 @@ def record_acknowledgements(site: Site, message: Message) -> int:
     handed = {e["details"].get("release_sha256") for e in entries if e.get("event") == "sent"}
     done = {e["details"].get("release_sha256") for e in entries if e.get("event") == "acknowledged"}
     new = 0
-    for digest, when in zip(digests, stored, strict=True):
-        if not isinstance(digest, str) or digest in done:
+    for index, document in enumerate(documents):
+        try:
+            ack = Acknowledgement.from_bytes(document, site.trusted, f"acknowledgement {index + 1}")
+        except SignatureError as exc:
+            print(f"acknowledgements: refused, not recorded as delivered: {exc}", file=sys.stderr)
             continue
-        if digest not in handed or digest not in released:
-            print(
-                f"acknowledgements: release {str(digest)[:12]} is not one this site handed over; ignored",
-                file=sys.stderr,
-            )
+        except ValidationToolError as exc:
+            print(f"acknowledgements: malformed, ignored: {exc}", file=sys.stderr)
+            continue
+        digest = ack.release_sha256
+        if digest in done:
+            continue
+        if ack.site_id != site.site_id or digest not in handed or digest not in released:
+            print(f"acknowledgements: release {digest[:12]} is not one this site handed over; ignored", file=sys.stderr)
             continue
         details = released[digest]
         ledger.append(
@@ -93,9 +105,11 @@ def record_acknowledgements(site: Site, message: Message) -> int:
                 "release_sha256": digest,
                 "study_id": details.get("study_id", ""),
                 "request_id": details.get("request_id", ""),
-                "stored_at": str(when)[:40],
+                "stored_at": ack.stored_at,
+                "coordinator_key_id": ack.coordinator_key_id,
+                "acknowledgement": document.decode("utf-8"),
                 "via": "flower",
-                "note": "the coordinator's store holds this release (acknowledged on a later message)",
+                "note": "the coordinator's store holds this release (its signed acknowledgement, on a later message)",
             },
         )
         done.add(digest)

@@ -20,8 +20,9 @@ Events:
 ``model_rejection``   a person rejected a model bundle (as above, with ``reason``)
 ``sent``              the release was handed over (``via``: ``file`` with its path, or ``flower``: handed to
                       the local node (SuperNode) for delivery, which does not yet say it arrived)
-``acknowledged``      the coordinator's store holds the release (online: its acknowledgement, by the release's
-                      SHA-256, arrived with a later message and names a release this ledger records as sent)
+``acknowledged``      the coordinator's store holds the release (online: its acknowledgement, signed with a
+                      coordinator key this site pinned, arrived with a later message and names a release this
+                      ledger records as sent; ``acknowledgement`` keeps the signed document)
 
 A ``release`` without a later ``sent`` for the same SHA-256 means the agent stopped between recording and
 handing over (a crash or an interrupted command): the release may or may not have reached the coordinator.
@@ -341,9 +342,11 @@ def summary(entry: dict[str, Any]) -> str:
         where = details.get("path") or details.get("via")
         return f"release {str(details.get('release_sha256', ''))[:12]} handed over via {where}"
     if event == "acknowledged":
+        signer = details.get("coordinator_key_id")
         return (
             f"release {str(details.get('release_sha256', ''))[:12]} stored by the coordinator "
-            f"(acknowledged; stored at {details.get('stored_at')})"
+            f"(acknowledged; stored at {details.get('stored_at')}"
+            + (f", signed by coordinator key {signer})" if signer else ")")
         )
     if event == "refusal":
         return f"refused: {details.get('reason')}"

@@ -89,6 +89,7 @@ def cmd_run(args: argparse.Namespace) -> int:
         deadline_s=args.deadline,
         resume=args.resume,
         kind=PING if args.ping else VALIDATE,
+        sign_key=args.sign,
     )
     say = (lambda line: print(line, file=sys.stderr)) if args.json else print
     if interactive():  # a live table of site status on stderr; plain lines when piped or logged
@@ -156,8 +157,9 @@ def add_deploy_commands(sub: argparse._SubParsersAction) -> None:
         "change otherwise. Exit codes: 0 every asked site released; 1 bad input; 3 quorum reached but some "
         "sites did not release; 4 the SuperLink is unreachable, the quorum was not reached or the round was "
         "cut short (continue with --resume; sites that released are not asked again).",
-        epilog="example:\n  federation run --study-dir study/ --min-sites 3 --deadline 900\n"
-        "  federation run --study-dir study/ --resume",
+        epilog="example:\n"
+        "  federation run --study-dir study/ --min-sites 3 --deadline 900 --sign coordinator/coordinator.key\n"
+        "  federation run --study-dir study/ --resume --sign coordinator/coordinator.key",
         formatter_class=argparse.RawDescriptionHelpFormatter,
     )
     option(
@@ -177,6 +179,12 @@ def add_deploy_commands(sub: argparse._SubParsersAction) -> None:
         action="store_true",
         help="readiness check instead: each site checks its folder, policy, keys, ledger, app allowlist and data "
         "source without reading a record; nothing is released (exit 0 all ready, 3 some not)",
+    )
+    p.add_argument(
+        "--sign",
+        type=Path,
+        help="coordinator private key (coordinator.key): signs an acknowledgement of every stored release, which "
+        "the next message to its site carries; without it sites record releases as sent, never as acknowledged",
     )
     p.add_argument("--json", action="store_true", help="print the outcome as JSON on stdout")
     p.set_defaults(handler=cmd_run)

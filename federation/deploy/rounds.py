@@ -19,8 +19,9 @@ message; each site is recorded ``ready``, or ``failed`` with the category of the
 error reply, such as the site's launcher refusing an app bundle it has not listed, is a failure, never an
 answer). A readiness check stores no release and never counts as one.
 
-Every message to a site carries the coordinator's acknowledgements: the SHA-256 of every release from that
-site the store holds, which the site writes to its ledger (``acknowledged``) the next time it is asked.
+Every message to a site carries the coordinator's acknowledgements of that site's stored releases: signed
+documents (:mod:`federation.protocol.acknowledgement`, signed by ``federation run --sign``; this process never
+holds the key), which the site verifies against its pinned coordinator key before it writes ``acknowledged``.
 
 Because every outcome is written when it happens, a round cut short (SuperLink stopped, run stopped)
 leaves an exact record; ``federation run --resume`` starts a new round for the same request that asks
@@ -230,11 +231,9 @@ class DeployedRound:
             if self.compare_bundle_bytes is not None:
                 fields["compare_bundle"] = self.compare_bundle_bytes
             records["request"] = ConfigRecord(fields)
-        stored = self.store.stored_releases_of(target.site_id)
-        if stored:
-            records[ACKNOWLEDGEMENTS] = ConfigRecord(
-                {"release_sha256": [d for d, _ in stored], "stored_at": [w for _, w in stored]}
-            )
+        signed = self.store.acknowledgements_of(target.site_id)
+        if signed:  # signed by `federation run --sign`; the site verifies each against its pinned coordinator key
+            records[ACKNOWLEDGEMENTS] = ConfigRecord({"documents": signed})
         return RecordDict(records)
 
     def _type(self) -> str:

@@ -17,9 +17,12 @@ from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
 
-from federation.protocol import Request, ValidationToolError
+from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PrivateKey
+
+from federation.protocol import Request, ValidationToolError, load_private_key
 from federation.store import Store
 
+from .acknowledge import sign_acknowledgements
 from .fab import build_app_bundle
 from .rounds import CONNECTED_WAITING, NOT_ASKED, PING, VALIDATE
 from .superlink import LinkSettings, SuperLinkError, register_node, registered_nodes, run_status, stop_run, submit_run
@@ -47,6 +50,9 @@ class RunOptions:
     poll_s: float = 0.2
     link: LinkSettings | None = None
     link_grace_s: float = 5.0  # how long the SuperLink may stay silent before the round counts as cut short
+    # The coordinator's signing key (coordinator.key): signs the acknowledgements of stored releases that the
+    # round's messages carry to the sites. Without it no acknowledgement is signed and sites keep ``sent``.
+    sign_key: Path | None = None
     # Called with every site's status on each poll (a live table at a terminal); when given, the per-site
     # change lines are not said, since the table shows them.
     on_sites: Callable[[dict[str, dict]], None] | None = None
@@ -151,6 +157,7 @@ def run_study(options: RunOptions, say: Callable[[str], None] = print) -> RunOut
         raise ValidationToolError(f"round kind must be {VALIDATE} or {PING}")
     if options.deadline_s <= 0:
         raise ValidationToolError("--deadline: must be a positive number of seconds")
+    signing_key = load_private_key(options.sign_key) if options.sign_key is not None else None
     store = Store(study / "study.db")
     try:
         request = _study_request(study, store)
@@ -180,6 +187,7 @@ def run_study(options: RunOptions, say: Callable[[str], None] = print) -> RunOut
                 "", 0, request.request_id, "complete", "nothing to ask", {}, len(released), time.monotonic() - started
             )
         _sync_registrations(store, link, say)
+        _acknowledge(store, signing_key, say)
         bundle = build_app_bundle()
         round_id = uuid.uuid4().hex
         store.start_round(round_id, request.request_id, STORED_KIND[options.kind], min_sites, options.deadline_s)
@@ -222,9 +230,21 @@ def run_study(options: RunOptions, say: Callable[[str], None] = print) -> RunOut
             say(f"round {round_id[:8]} interrupted; continue with `federation run --study {study} --resume`")
             raise
         outcome.wall_s = time.monotonic() - started
+        _acknowledge(store, signing_key, say)  # this round's releases: delivered with the next message
         return outcome
     finally:
         store.close()
+
+
+def _acknowledge(store: Store, key: Ed25519PrivateKey | None, say: Callable[[str], None]) -> None:
+    """Sign an acknowledgement for every stored release without one (needs ``--sign``)."""
+    if key is None:
+        if store.unacknowledged():
+            say("acknowledgements: not signed (no --sign key): sites keep their stored releases as sent only")
+        return
+    count = sign_acknowledgements(store, key)
+    if count:
+        say(f"acknowledgements: signed {count} for stored releases (sites record them with the next message)")
 
 
 def _follow(store: Store, link: LinkSettings, outcome: RunOutcome, options: RunOptions, say: Callable) -> None:

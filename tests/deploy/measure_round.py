@@ -92,12 +92,15 @@ def measure(out: Path, rounds: int, task_poll: str, n_sites: int = 10) -> dict:
                     task_poll,
                 ],
             )
-        options = RunOptions(study=coordinator, deadline_s=300)
-        first = run_study(RunOptions(study=coordinator, deadline_s=300, kind="ping"), lambda line: None)
+        # --sign as a coordinator runs it: both kinds of round carry the sites' signed acknowledgements.
+        signing = coordinator / "coordinator.key"
+        options = RunOptions(study=coordinator, deadline_s=300, sign_key=signing)
+        ping_options = RunOptions(study=coordinator, deadline_s=300, kind="ping", sign_key=signing)
+        first = run_study(ping_options, lambda line: None)
         assert first.state == "complete" and first.ready == len(sites), first.to_dict()  # warm-up: all ready
         key = load_private_key(coordinator / "coordinator.key")
         for index in range(rounds):
-            ping = run_study(RunOptions(study=coordinator, deadline_s=300, kind="ping"), lambda line: None)
+            ping = run_study(ping_options, lambda line: None)
             assert ping.state == "complete" and ping.ready == len(sites), ping.to_dict()
             times["ping"].append(ping.wall_s)
             store = Store(study.store_path)

@@ -27,9 +27,17 @@ from federation.analysis import analyze
 from federation.deploy.commands import enrol_node_key
 from federation.deploy.nodes import parse_node_key
 from federation.deploy.superlink import LinkSettings, registered_nodes
-from federation.protocol import load_private_key, sha256_hex
+from federation.protocol import (
+    canonical_bytes,
+    key_id,
+    load_private_key,
+    load_public_key,
+    sha256_hex,
+    write_keypair,
+)
 from federation.protocol.app_bundle import build_app_bundle
 from federation.protocol.cli_support import write_atomic
+from federation.protocol.keys import sign
 from federation.store import Store
 from federation.study import issue_request
 from simulations.demo import DemoStudy, prepare_study, run_offline
@@ -67,6 +75,10 @@ class Deployment:
     fleet: Fleet
     port: int
     fab_sha256: str
+
+    @property
+    def key(self) -> Path:
+        return self.coordinator / "coordinator.key"
 
     @property
     def ca(self) -> Path:
@@ -245,7 +257,9 @@ def offline_reference(deployment: Deployment) -> tuple[dict[str, bytes], dict]:
 @pytest.fixture(scope="module")
 def first_round(deployment: Deployment) -> tuple[int, dict]:
     wait_until(lambda: deployment.online() == set(deployment.sites), 90, "all four SuperNodes online")
-    return deployment.federation_run("--min-sites", "3", "--deadline", "90")
+    # --sign: when the round ends, `run` signs an acknowledgement of each release it stored (the next message
+    # to each site carries it).
+    return deployment.federation_run("--min-sites", "3", "--deadline", "90", "--sign", str(deployment.key))
 
 
 def test_superlink_runs_with_tls_node_auth_and_no_dependency_installs(deployment: Deployment) -> None:
@@ -309,10 +323,24 @@ def test_site_refuses_bundle_missing_from_its_allowlist(deployment: Deployment, 
     assert not list((deployment.sites[REFUSING] / "runtime" / "flwr-home").glob("apps/*"))
 
 
-def test_readiness_check_fails_the_refusing_site_and_acknowledges_earlier_releases(
-    deployment: Deployment, first_round: tuple[int, dict]
+def test_readiness_check_fails_the_refusing_site_and_delivers_only_signed_acknowledgements(
+    deployment: Deployment, first_round: tuple[int, dict], tmp_path: Path
 ) -> None:
-    code, outcome = deployment.federation_run("--ping", "--deadline", "90")
+    # One site's acknowledgement is forged in the coordinator's store before the check: the same fields,
+    # signed by another key that claims the coordinator's key id (what a party between the store and the site
+    # could send). The site must refuse it and keep its release as sent only.
+    forged_site, claimed = ALLOWING[1], key_id(load_public_key(deployment.coordinator / "coordinator.pub"))
+    rogue = load_private_key(write_keypair(tmp_path / "rogue", "rogue")[0])
+    store = Store(deployment.coordinator / "study.db")
+    try:
+        (document,) = store.acknowledgements_of(forged_site)
+        body = {k: v for k, v in json.loads(document).items() if k != "signature"}
+        assert body["coordinator_key_id"] == claimed and body["site_id"] == forged_site
+        forged = json.dumps({**body, "signature": sign(rogue, canonical_bytes(body))}).encode()
+        store._db.execute("UPDATE acknowledgements SET document = ? WHERE site_id = ?", (forged, forged_site))
+    finally:
+        store.close()
+    code, outcome = deployment.federation_run("--ping", "--deadline", "90")  # no --sign: nothing new is signed
     assert outcome["kind"] == "readiness" and outcome["state"] == "complete"
     assert code == 3  # complete, but one site is not ready
     assert outcome["released"] == 0 and outcome["ready"] == len(ALLOWING)
@@ -331,9 +359,20 @@ def test_readiness_check_fails_the_refusing_site_and_acknowledges_earlier_releas
     for site in ALLOWING:  # the first round's releases, acknowledged in the ledger on this next message
         entries = _after_setup(ledger.read_entries(deployment.sites[site] / "ledger.jsonl"))
         events = [e["event"] for e in entries]
-        assert events == ["request_received", "release", "sent", "acknowledged"], site
         assert entries[2]["details"]["note"].startswith("handed to the local node")
-        assert [(entries[3]["details"]["release_sha256"], entries[3]["details"]["stored_at"])] == stored[site]
+        if site == forged_site:  # refused: not recorded as delivered, and the site's app runner log says why
+            assert events == ["request_received", "release", "sent"], site
+            log = (deployment.sites[site] / "runtime" / "app-runner.log").read_text()
+            assert (
+                "acknowledgements: refused, not recorded as delivered: acknowledgement 1: signature does not verify "
+                "(altered or forged)"
+            ) in log
+            continue
+        assert events == ["request_received", "release", "sent", "acknowledged"], site
+        ack = entries[3]["details"]
+        assert [(ack["release_sha256"], ack["stored_at"])] == stored[site]
+        assert ack["coordinator_key_id"] == claimed
+        assert json.loads(ack["acknowledgement"])["site_id"] == site  # the signed document, kept as it arrived
     refusals = _after_setup(ledger.read_entries(deployment.sites[REFUSING] / "ledger.jsonl"))
     assert [e["event"] for e in refusals] == ["refusal", "refusal"]  # the launcher refused the check's bundle too
 

@@ -11,14 +11,19 @@ from __future__ import annotations
 import json
 import re
 import uuid
+from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
 
 import pytest
 from flwr.app import Context, RecordDict
 
+from federation.deploy.acknowledge import sign_acknowledgements
 from federation.deploy.nodes import parse_node_key
 from federation.deploy.rounds import RoundSettings, run_deployed_round
+from federation.protocol import KeyRing, canonical_bytes, key_id, load_private_key, load_public_key, write_keypair
+from federation.protocol.acknowledgement import Acknowledgement
+from federation.protocol.keys import sign
 from federation.store import Store
 from simulations.demo import DemoStudy, prepare_study
 from simulations.inprocess import SERVER_NODE_ID, LoopbackGrid, _identity
@@ -59,6 +64,14 @@ def study(tmp_path: Path) -> DemoStudy:
     finally:
         store.close()
     return study
+
+
+def _sign(study: DemoStudy) -> int:
+    store = Store(study.store_path)
+    try:
+        return sign_acknowledgements(store, load_private_key(study.root / "coordinator" / "coordinator.key"))
+    finally:
+        store.close()
 
 
 def _round(study: DemoStudy, kind: str, grid: KeyedGrid, min_sites: int = SITES, deadline_s: float = 20.0) -> dict:
@@ -158,12 +171,17 @@ def test_release_is_sent_then_acknowledged_on_the_next_message(study: DemoStudy)
         assert entries[-1]["details"]["via"] == "flower"
         assert entries[-1]["details"]["note"].startswith("handed to the local node (SuperNode) for delivery")
 
+    _round(study, "ping", KeyedGrid(folders))  # nothing signed yet: an unsigned store holds no acknowledgement
+    assert all(_events(folder)[-1] == "sent" for folder in folders)
+
+    assert _sign(study) == SITES  # what `federation run --sign` does before and after a round
     _round(study, "ping", KeyedGrid(folders))  # the next message carries the coordinator's acknowledgements
     store = Store(study.store_path)
     try:
         stored = {folder.name: store.stored_releases_of(folder.name) for folder in folders}
     finally:
         store.close()
+    coordinator = load_public_key(study.root / "coordinator" / "coordinator.pub")
     for folder in folders:
         entries = _entries(folder)
         assert [e["event"] for e in entries] == ["request_received", "release", "sent", "acknowledged"]
@@ -171,6 +189,11 @@ def test_release_is_sent_then_acknowledged_on_the_next_message(study: DemoStudy)
         ack = entries[-1]["details"]
         assert ack["release_sha256"] == digest == entries[1]["details"]["release_sha256"]
         assert ack["stored_at"] == stored_at and ack["request_id"] == json.loads(study.request_bytes)["request_id"]
+        assert ack["coordinator_key_id"] == key_id(coordinator)
+        # The signed document is kept: anyone with coordinator.pub checks it again.
+        ring = KeyRing({key_id(coordinator): coordinator})
+        document = Acknowledgement.from_bytes(ack["acknowledgement"].encode(), ring)
+        assert (document.site_id, document.release_sha256) == (folder.name, digest)
         site = load_site(folder)
         assert ledger.verify_ledger(site.ledger_path, site.public_key()) == len(ledger.read_entries(site.ledger_path))
 
@@ -188,8 +211,51 @@ def test_acknowledgement_of_a_release_the_site_never_sent_is_ignored(study: Demo
         store._db.commit()
     finally:
         store.close()
+    assert _sign(study) == 1  # signed by the real coordinator key, but naming a release site 2 never handed over
     _round(study, "ping", KeyedGrid(folders))
     assert "acknowledged" not in _events(folders[1])
+
+
+def _forge(study: DemoStudy, site_id: str, change: Callable[[bytes], bytes]) -> None:
+    store = Store(study.store_path)
+    try:
+        (document,) = store.acknowledgements_of(site_id)
+        store._db.execute("UPDATE acknowledgements SET document = ? WHERE site_id = ?", (change(document), site_id))
+        store._db.commit()
+    finally:
+        store.close()
+
+
+def test_forged_or_altered_acknowledgements_are_refused_and_not_recorded(
+    study: DemoStudy, tmp_path: Path, capfd: pytest.CaptureFixture[str]
+) -> None:
+    folders = list(study.site_dirs[:SITES])
+    _round(study, "validate", KeyedGrid(folders))
+    assert _sign(study) == SITES
+    # Site 1: an acknowledgement signed by another key that claims the coordinator's key id (a forgery).
+    rogue_key = load_private_key(write_keypair(tmp_path / "rogue", "rogue")[0])
+    claimed = key_id(load_public_key(study.root / "coordinator" / "coordinator.pub"))
+
+    def forged(document: bytes) -> bytes:
+        body = {k: v for k, v in json.loads(document).items() if k != "signature"}
+        assert body["coordinator_key_id"] == claimed  # the forgery names the pinned key; its signature is not by it
+        return json.dumps({**body, "signature": sign(rogue_key, canonical_bytes(body))}).encode()
+
+    _forge(study, folders[0].name, forged)
+    # Site 2: the real signature, with the storage time altered after signing.
+    _forge(study, folders[1].name, lambda d: d.replace(b'"stored_at":"', b'"stored_at":"1999-'))
+    capfd.readouterr()
+    _round(study, "ping", KeyedGrid(folders))
+    log = capfd.readouterr().err
+    assert _events(folders[0])[-1] == "sent" and _events(folders[1])[-1] == "sent"  # not recorded as delivered
+    assert _events(folders[2])[-1] == "acknowledged"  # the untouched acknowledgement is recorded
+    assert (
+        log.count(
+            "acknowledgements: refused, not recorded as delivered: acknowledgement 1: signature does not "
+            "verify (altered or forged)"
+        )
+        == 2
+    )
 
 
 def test_sites_connected_but_never_asked_are_not_called_unconnected(study: DemoStudy) -> None:
