@@ -16,7 +16,9 @@ never mixed in one column):
 - ``glmm_drop``: the binomial GLMM of the sites released in full, Wald t on k − 2 df;
 - ``reitsma_drop``: bivariate normal REML of the sites released in full, Wald z;
 - ``univariate_drop``: DerSimonian–Laird of each measure over the sites released in full (0.5 added to a
-  table with a zero cell), Wald z.
+  table with a zero cell), Wald z;
+- with ``--compare-reference``, also ``headline`` [profile, z]: the same profile likelihood with the plain
+  chi-squared(1) cut-off, the alternative the headline's t(k − 2) reference was chosen over.
 
 Reported per scenario, method and measure: bias of the pooled sensitivity and specificity (probability
 scale) with its Monte Carlo standard error (MCSE), RMSE, coverage of the 95% interval with its MCSE
@@ -34,6 +36,7 @@ import argparse
 import json
 import math
 import os
+import sys
 import time
 from collections.abc import Sequence
 from concurrent.futures import ProcessPoolExecutor
@@ -42,10 +45,11 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
-from scipy import special, stats
+from scipy import optimize, special, stats
 from threadpoolctl import threadpool_limits
 
 from federation.stats import PoolingError, ReleasedTable, glmm_accuracy, random_effects, reitsma
+from federation.stats.glmm import glmm_evidence, glmm_fit
 from federation.stats.headline import headline_accuracy
 from site_agent.counts import Relation
 from site_agent.disclosure import is_unsafe, suppress
@@ -59,6 +63,9 @@ ROWS = (
     ("reitsma_drop", "Wald, z"),
     ("univariate_drop", "Wald, z"),
 )
+# With --compare-reference: the headline's profile likelihood with the plain chi-squared(1) cut-off (the signed
+# root against the normal quantile), the alternative its t(k-2) reference was chosen over.
+COMPARISON = ("headline", "profile, z")
 REASONS = ("duplicate_id", "missing_outcome", "missing_feature", "out_of_range", "unknown_category")
 DEFAULT_OUT = Path(__file__).with_name("validate_stats_results.json")
 
@@ -249,13 +256,53 @@ def _not_estimable_reason(head: Any) -> str:
     return "not estimable: no summary point"
 
 
-def run_one(args: tuple[Scenario, int]) -> dict[str, Any]:
+def _plain_profile(tables: list[ReleasedTable], head: Any) -> dict[str, Any] | None:
+    """The headline's profile-likelihood interval with the chi-squared(1) cut-off instead of t(k-2).
+
+    The same model refitted; each limit is where the signed root of the likelihood-ratio statistic, maximised
+    over the other four parameters, equals the normal quantile, found by Brent's method between the estimate
+    and the headline's t(k-2) limit (the signed root is monotone there and reaches t(k-2) > z at that limit).
+    ``None`` when a limit cannot be bracketed (the t(k-2) limit stopped at a parameter bound).
+    """
+    evidence, excluded = glmm_evidence(tables, "censor", minimum=0)
+    _, likelihood, theta, nll_hat, free, _ = glmm_fit(evidence, tables, excluded)
+    z = float(stats.norm.isf(0.025))
+    out: dict[str, Any] = {"sites": len(evidence)}
+    for measure, index in (("sensitivity", 0), ("specificity", 1)):
+        interval = getattr(head, measure)
+        # the headline's limits on the model's scale: logit sensitivity, logit false-positive rate
+        limits = (
+            (_logit(interval.ci_low), _logit(interval.ci_high))
+            if index == 0
+            else (-_logit(interval.ci_high), -_logit(interval.ci_low))
+        )
+        others = [i for i in free if i != index]
+        centre = float(theta[index])
+
+        def signed_root(value: float, index: int = index, others: list[int] = others, centre: float = centre) -> float:
+            start = theta.copy()
+            start[index] = value
+            _, nll, _ = likelihood.maximise(start, others, tolerance=1e-9, gtol=1e-5, maxiter=200)
+            return math.copysign(math.sqrt(max(0.0, 2.0 * (nll - nll_hat))), value - centre)
+
+        try:
+            low = optimize.brentq(lambda v: signed_root(v) + z, limits[0], centre, xtol=1e-3)
+            high = optimize.brentq(lambda v: signed_root(v) - z, centre, limits[1], xtol=1e-3)
+        except ValueError:
+            return None
+        out[measure] = (centre, low, high) if index == 0 else (-centre, -high, -low)
+    return out
+
+
+def run_one(args: tuple[Scenario, int] | tuple[Scenario, int, bool]) -> dict[str, Any]:
     """One consortium: its suppression pattern and each row's logit-scale (estimate, low, high) per measure.
 
     Specificity is carried as logit specificity. A row is missing where its fit failed or was declared not
-    estimable; ``not_estimable`` holds the headline's reason then. ``seconds`` is the CPU time it took.
+    estimable; ``not_estimable`` holds the headline's reason then. ``seconds`` is the CPU time it took. A third
+    item ``True`` adds the :data:`COMPARISON` row.
     """
-    scenario, seed = args
+    scenario, seed = args[0], args[1]
+    compare = len(args) > 2 and bool(args[2])
     started = time.process_time()
     rng = np.random.default_rng(seed)
     tables = consortium(scenario, rng)
@@ -283,6 +330,13 @@ def run_one(args: tuple[Scenario, int]) -> dict[str, Any]:
                 "sensitivity": _logit_interval(fit.mean_logit_sensitivity, fit.se_logit_sensitivity, q),
                 "specificity": _logit_interval(-fit.mean_logit_fpr, fit.se_logit_fpr, q),
             }
+        if compare:
+            try:
+                plain = _plain_profile(tables, head)
+            except PoolingError:
+                plain = None
+            if plain is not None:
+                row[row_key(*COMPARISON)] = plain
     elif head is not None:
         row["not_estimable"] = _not_estimable_reason(head)
     for name, build in (
@@ -312,15 +366,17 @@ def _worker() -> None:
     threadpool_limits(1)
 
 
-def _key(method: str, interval: str) -> str:
-    return method if method == "headline" else f"{method}|{interval}"
+def row_key(method: str, interval: str) -> str:
+    """Where one consortium's result keeps a row: the headline's own interval as ``headline``."""
+    return method if (method, interval) == ROWS[0] else f"{method}|{interval}"
 
 
 def summarise(rows: list[dict[str, Any]], scenario: Scenario) -> dict[str, Any]:
     truth = {"sensitivity": scenario.mean[0], "specificity": -scenario.mean[1]}
     out: dict[str, Any] = {}
-    for method, interval in ROWS:
-        fits = [r[_key(method, interval)] for r in rows if _key(method, interval) in r]
+    compared = any(row_key(*COMPARISON) in r for r in rows)
+    for method, interval in (*ROWS[:1], COMPARISON, *ROWS[1:]) if compared else ROWS:
+        fits = [r[row_key(method, interval)] for r in rows if row_key(method, interval) in r]
         entry: dict[str, Any] = {
             "interval": interval,
             "fits": len(fits),
@@ -393,6 +449,11 @@ def main(argv: Sequence[str] | None = None) -> int:
     parser.add_argument("--scenario", action="append", help="run only this scenario (repeatable)")
     parser.add_argument("--seed", type=int, default=20260, help="master seed")
     parser.add_argument("--workers", type=int, default=min(2, os.cpu_count() or 1), help="processes")
+    parser.add_argument(
+        "--compare-reference",
+        action="store_true",
+        help="add the headline's profile interval with the chi-squared(1) cut-off (about twice the time)",
+    )
     parser.add_argument("--out", type=Path, default=DEFAULT_OUT, help="where to write the JSON results")
     args = parser.parse_args(argv)
     consortia = 60 if args.quick else args.consortia
@@ -411,9 +472,13 @@ def main(argv: Sequence[str] | None = None) -> int:
             # Seeds follow the scenario's place in SCENARIOS, so a scenario run alone repeats the full run's.
             number = SCENARIOS.index(scenario)
             seeds = np.random.SeedSequence([args.seed, number]).generate_state(consortia, dtype=np.uint64)
-            jobs = [(scenario, int(s)) for s in seeds]
+            jobs = [(scenario, int(s), args.compare_reference) for s in seeds]
             started = time.perf_counter()
-            rows = list(pool.map(run_one, jobs, chunksize=2)) if pool else [run_one(job) for job in jobs]
+            rows = []
+            for row in pool.map(run_one, jobs, chunksize=2) if pool else map(run_one, jobs):
+                rows.append(row)
+                if len(rows) % max(1, consortia // 10) == 0 and len(rows) < consortia:
+                    print(f"  {scenario.name}: {len(rows)} of {consortia}", file=sys.stderr, flush=True)
             seconds = time.perf_counter() - started
             summary = summarise(rows, scenario)
             print_table(summary, rows, scenario, seconds)

@@ -7,9 +7,22 @@ import math
 
 import numpy as np
 import pytest
+from scipy import optimize, special
 
 from federation.stats import site_evidence
-from simulations.validate_stats import REASONS, ROWS, Scenario, release_table, run_one, summarise
+from federation.stats.headline import headline_accuracy
+from simulations.validate_stats import (
+    REASONS,
+    ROWS,
+    Scenario,
+    _plain_profile,
+    release_table,
+    row_key,
+    run_one,
+    summarise,
+)
+from tests.stats.test_bivariate import AUDITC
+from tests.stats.test_headline import _independent_log_likelihood
 
 
 def test_a_simulated_release_names_the_rule_of_each_withheld_cell() -> None:
@@ -47,12 +60,12 @@ def _row(covered: bool, estimate: float = 0.0) -> dict:
         "suppressed_sites": 0,
         "seconds": 0.0,
         **{
-            key if method == "headline" else f"{method}|{interval}": {
+            row_key(method, interval): {
                 "sites": 10,
                 "sensitivity": (estimate, low, high),
                 "specificity": (estimate, low, high),
             }
-            for key, (method, interval) in ((m, (m, i)) for m, i in ROWS)
+            for method, interval in ROWS
         },
     }
 
@@ -83,3 +96,24 @@ def test_one_consortium_fills_every_row_or_says_why_not() -> None:
     assert few["not_estimable"] == (
         "not estimable: 3 usable site(s); the bivariate random-effects model needs at least 4"
     )
+
+
+def test_the_plain_profile_interval_sits_where_an_independent_likelihood_ratio_says() -> None:
+    # AUDIT-C, 14 published studies (Kriston et al. 2008; the AuditC data of R's mada package). At each limit of
+    # the comparison interval, the independent likelihood of tests/stats/test_headline.py (plain Gauss-Hermite
+    # quadrature, no shared code) maximised over the other four parameters gives a likelihood-ratio statistic
+    # equal to the chi-squared(1) 95% quantile, 1.96^2 (any table of the normal distribution).
+    head = headline_accuracy(AUDITC)
+    plain = _plain_profile(list(AUDITC), head)
+    assert plain is not None and plain["sites"] == 14
+    best = optimize.minimize(
+        lambda t: -_independent_log_likelihood(t), np.array([2.0, -1.2, 0.0, -0.5, 0.5]), method="BFGS"
+    )
+    estimate, low, high = plain["sensitivity"]
+    # nested inside the headline's t(12) interval, which is wider
+    assert special.logit(head.sensitivity.ci_low) < low < estimate < high < special.logit(head.sensitivity.ci_high)
+    for limit in (low, high):
+        inner = optimize.minimize(
+            lambda t, fixed=limit: -_independent_log_likelihood(np.r_[fixed, t]), best.x[1:], method="BFGS"
+        )
+        assert 2 * (inner.fun - best.fun) == pytest.approx(1.959964**2, abs=0.1)
