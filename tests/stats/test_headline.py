@@ -13,9 +13,11 @@ from numpy.polynomial.hermite import hermgauss
 from scipy import optimize, special, stats
 
 from federation.analysis import analyze_tables
+from federation.report.inputs import ReportInputs
+from federation.report.methods import methods_text
 from federation.stats import ReleasedTable
 from federation.stats.headline import headline_accuracy
-from tests.stats.test_analysis_pooling import _site_table
+from tests.stats.test_analysis_pooling import _complete, _site_table
 from tests.stats.test_bivariate import AUDITC, AUDITC_FN, AUDITC_FP, AUDITC_TN, AUDITC_TP
 
 # AUDIT-C: 14 published studies (Kriston et al. 2008, the AuditC data shipped with R's mada package).
@@ -167,3 +169,13 @@ def test_an_internal_failure_reads_as_not_estimable() -> None:
         "status": "not estimated",
         "reason": "not estimable: the model could not be fitted to these data",
     }
+
+
+def test_the_report_methods_name_the_interval_reference_and_why() -> None:
+    # AUDIT-C (14 studies, Kriston et al. 2008): k - 2 = 12 degrees of freedom for the summary point's limits.
+    analysis = analyze_tables("study", [_complete(t) for t in AUDITC])
+    assert analysis["pooled"]["sensitivity"]["method"].endswith("referred to t on 12 df")
+    inputs = ReportInputs("study.db", "study", analysis, (), (), (), None, ())
+    text = " ".join(methods_text(inputs)[0].split())
+    assert "referred to t on k − 2 degrees of freedom rather than the normal distribution" in text
+    assert "fewer than 93% of consortia of 8 to 15 sites" in text
