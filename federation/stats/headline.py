@@ -17,9 +17,9 @@ Intervals (one convention, stated in every result):
   Wald intervals of this model (k − 2 = subjects minus random effects; Chu & Cole 2006 used it; from
   memory) and is carried over here to the likelihood-ratio statistic, which unlike Wald respects the
   skewness of the likelihood near 0 or 1. Chosen by simulation against the plain profile interval (the
-  :math:`\chi^2_1` cut-off, i.e. the normal quantile), which covered 84-91% with 8 and 15 sites, as the Wald
-  z interval does; a parametric bootstrap would need hundreds of refits per interval. The coverage is checked
-  by ``make validate-stats`` (docs/coordinator.md, "How the pooled intervals were chosen").
+  :math:`\chi^2_1` cut-off, i.e. the normal quantile), which covered 87-92% with 8 and 15 sites, much as
+  the Wald z interval does; a parametric bootstrap would need hundreds of refits per interval. The coverage
+  is checked by ``make validate-stats`` (docs/coordinator.md, "How the pooled intervals were chosen").
 - **Between-site SDs (tau) and correlation (rho)**: profile likelihood with the :math:`\chi^2_1` quantile;
   a limit that reaches the parameter's boundary (SD 0, correlation ±1) is reported as the boundary.
 - **Prediction intervals** for a new site's sensitivity and specificity (the convention shared by every
@@ -145,18 +145,23 @@ def _symmetric(values: np.ndarray, margin: int) -> bool:
 
 
 def _informative(evidence: Sequence[SiteEvidence], side: int) -> tuple[int, bool, bool]:
-    """(sites informing the measure, all of them at the upper boundary, all at the lower boundary)."""
+    """(sites informing the measure, every site with data at the upper boundary, every one at the lower).
+
+    A site whose likelihood is symmetric in p and 1 - p cannot tell which side the measure lies on, but it
+    still excludes the boundary (its allowed values are not all 0 or all the margin), so it counts against a
+    boundary estimate: sites with FN = 0 beside sites whose TP and FN were withheld do not make one.
+    """
     informative, upper, lower = 0, True, True
     for ev in evidence:
         margins = ev.positives if side == 0 else ev.negatives
         values = ev.tp_values if side == 0 else ev.fp_values
         if np.all(margins == 0):
             continue
+        upper = upper and all(np.all(v == n) for v, n in zip(values, margins, strict=True))
+        lower = lower and all(np.all(v == 0) for v in values)
         if all(_symmetric(v, int(n)) for v, n in zip(values, margins, strict=True) if n > 0):
             continue  # the site's likelihood is the same at p and 1 - p: it cannot tell which
         informative += 1
-        upper = upper and all(np.all(v == n) for v, n in zip(values, margins, strict=True))
-        lower = lower and all(np.all(v == 0) for v in values)
     return informative, informative > 0 and upper, informative > 0 and lower
 
 

@@ -179,3 +179,16 @@ def test_the_report_methods_name_the_interval_reference_and_why() -> None:
     text = " ".join(methods_text(inputs)[0].split())
     assert "referred to t on k − 2 degrees of freedom rather than the normal distribution" in text
     assert "fewer than 93% of consortia of 8 to 15 sites" in text
+
+
+def test_sites_without_false_negatives_beside_withheld_ones_are_no_boundary() -> None:
+    # Three sites released FN = 0; three withheld TP and FN (FN in 1..9, TP its complement) with only their
+    # total released and no rule named (an older release). Those three allow TP in 1..9 or 21..29 of 30
+    # (worked by hand from the rule: one of the pair in 1..9, neither 0 nor 30 since zeros are shown), so
+    # their likelihood vanishes at sensitivity 1: the estimate is inside (0, 1), not on the boundary.
+    tables = [ReleasedTable.complete(f"c{i}", 20 + i, 10 + i, 0, 100 + i) for i in range(3)]
+    tables += [_hidden_positive_pair(f"h{i}", 30, 12 + i, 120 + i) for i in range(3)]
+    fit = headline_accuracy(tables)
+    assert "sensitivity" not in fit.not_estimable
+    assert fit.sensitivity is not None and 0.7 < fit.sensitivity.estimate < 0.99
+    assert fit.sensitivity.ci_low < fit.sensitivity.estimate < fit.sensitivity.ci_high < 1.0
