@@ -61,6 +61,8 @@ PREDICTION_CONVENTION = "prediction interval: mean +/- t(k-2) * sqrt(tau^2 + SE^
 _MEAN_INTERVAL = "profile likelihood on the logit scale, signed root referred to t on {df} df"
 _VARIANCE_INTERVAL = "profile likelihood, chi-squared 1 df"
 _MIN_SITES = 4
+_ROOT_TOLERANCE = 0.005  # relative, on the signed root at a profile limit
+_ROOT_STEPS = 16
 HETEROGENEITY = ("tau_logit_sensitivity", "tau_logit_fpr", "correlation")
 
 
@@ -188,41 +190,14 @@ def _signed_root(nll: float, nll_hat: float) -> float:
     return math.sqrt(max(0.0, 2.0 * (nll - nll_hat)))
 
 
-def _maximise_near(
-    likelihood: GlmmLikelihood, start: np.ndarray, free: list[int], hess: np.ndarray
-) -> tuple[np.ndarray, float]:
-    """Maximise over ``free`` from a good start by Newton steps with the Hessian at the overall maximum
-    (close to the profile's own near the estimate); L-BFGS-B if that does not settle in a few steps."""
-    theta = start.copy()
+def _maximise_near(likelihood: GlmmLikelihood, start: np.ndarray, free: list[int]) -> tuple[np.ndarray, float]:
+    """Maximise over ``free`` from a good start (the previous profile point's maximiser): Newton steps with the
+    analytic Hessian, L-BFGS-B from where they stopped if they do not settle."""
     if not free:
-        return theta, likelihood.negative(theta)[0]
-    low = np.array([BOUNDS[i][0] for i in free])
-    high = np.array([BOUNDS[i][1] for i in free])
-    nll, gradient = likelihood.negative(theta)
-    try:  # the Hessian made positive definite (near a bound the joint one need not be)
-        values, vectors = np.linalg.eigh(0.5 * (hess + hess.T))
-        floor = max(float(np.max(values)), 1e-6) * 1e-4
-        inverse = (vectors / np.maximum(values, floor)) @ vectors.T
-    except np.linalg.LinAlgError:
-        inverse = None
-    for _ in range(12 if inverse is not None else 0):
-        step = -inverse @ gradient[free]
-        scale = 1.0
-        for _ in range(2):  # a step that must be halved more than once: the quadratic guide is poor here
-            trial = theta.copy()
-            trial[free] = np.clip(theta[free] + scale * step, low, high)
-            value, trial_gradient = likelihood.negative(trial)
-            if value <= nll + 1e-10:
-                break
-            scale *= 0.5
-        else:
-            break
-        moved = float(np.max(np.abs(trial[free] - theta[free])))
-        gained = nll - value
-        theta, nll, gradient = trial, value, trial_gradient
-        if moved < 1e-4 or gained < 1e-7:  # the signed root needs the maximum to about 1e-4
-            return theta, nll
-    theta, nll, _ = likelihood.maximise(theta, free, tolerance=1e-8, gtol=1e-3, maxiter=80)
+        return start.copy(), likelihood.negative(start)[0]
+    theta, nll, converged = likelihood.newton(start, free, tolerance=1e-6)
+    if not converged:
+        theta, nll, _ = likelihood.maximise(theta, free, tolerance=1e-8, gtol=1e-3, maxiter=80)
     return theta, nll
 
 
@@ -237,14 +212,20 @@ def _profile_limit(
     step: float,
     hess: np.ndarray,
 ) -> tuple[float, bool]:
-    """Where the profile signed root reaches ``target`` on one side (secant search; Venzon & Moolgavkar
-    1988 find the same point by Newton steps). Returns (limit, reached the parameter's bound)."""
+    """Where the profile signed root reaches ``target`` on one side. Returns (limit, reached the parameter's
+    bound).
+
+    Steps outwards from the estimate (extrapolating the signed root, which is nearly linear in the parameter)
+    until the target is bracketed, then regula falsi with the Illinois modification inside the bracket, so a
+    step that overshoots is never followed by one outside the bracket; each point's inner maximisation starts
+    from the nearest point already profiled. Venzon & Moolgavkar (1988) find the same point by Newton steps.
+    """
     others = [i for i in free if i != index]
     low, high = BOUNDS[index]
-    previous_v, previous_r = float(theta_hat[index]), 0.0
-    v = float(np.clip(theta_hat[index] + direction * step, low, high))
-    # Warm start: the previous point's maximiser (continuation), with the means moved along the quadratic
-    # approximation's path; the variance parameters' path is too curved for that guess to help.
+    edge = high if direction > 0 else low
+    estimate = float(theta_hat[index])
+    # Warm start: the nearest profiled point's maximiser (continuation), with the means moved along the
+    # quadratic approximation's path; the variance parameters' path is too curved for that guess to help.
     j = free.index(index)
     rest = [free.index(i) for i in others]
     try:
@@ -252,29 +233,46 @@ def _profile_limit(
     except np.linalg.LinAlgError:
         slope = np.zeros(len(rest))
     slope = np.where(np.array(others) < 2, slope, 0.0)
-    current, at = theta_hat.copy(), float(theta_hat[index])
-    for _ in range(6):
-        start = current.copy()
-        start[others] = np.clip(current[others] + slope * (v - at), *np.array([BOUNDS[i] for i in others]).T)
+    limits = np.array([BOUNDS[i] for i in others]).T
+    inside: list[tuple[float, float, np.ndarray]] = [(estimate, 0.0, theta_hat.copy())]  # signed root < target
+    outside: tuple[float, float, np.ndarray] | None = None  # signed root > target
+    below, above = -target, 0.0  # the bracket ends' signed root minus the target, Illinois-halved
+    last = "inside"
+    v = float(np.clip(estimate + direction * step, low, high))
+    for _ in range(_ROOT_STEPS):
+        near = inside[-1] if outside is None or abs(v - inside[-1][0]) <= abs(v - outside[0]) else outside
+        start = near[2].copy()
+        if others:
+            start[others] = np.clip(near[2][others] + slope * (v - near[0]), *limits)
         start[index] = v
-        theta, nll = _maximise_near(likelihood, start, others, hess[np.ix_(rest, rest)])
-        current, at = theta, v
+        theta, nll = _maximise_near(likelihood, start, others)
         r = _signed_root(nll, nll_hat)
-        at_bound = v <= low + 1e-9 or v >= high - 1e-9
-        if abs(r - target) < 0.015 * target:
+        if abs(r - target) < _ROOT_TOLERANCE * target:
             return v, False
-        if at_bound and r < target:
-            return v, True
-        if r <= previous_r + 1e-9:  # not yet rising: step further out
-            new = v + direction * 2 * abs(v - previous_v)
+        if r < target:
+            if abs(v - edge) < 1e-9:
+                return v, True
+            inside.append((v, r, theta))
+            below, above = r - target, above * (0.5 if last == "inside" else 1.0)
+            last = "inside"
         else:
-            new = v + (target - r) * (v - previous_v) / (r - previous_r)
-        # keep on the right side of the estimate, and within the bounds
-        if direction * (new - theta_hat[index]) <= 0:
-            new = 0.5 * (v + theta_hat[index])
-        previous_v, previous_r = v, r
+            outside = (v, r, theta)
+            below, above = below * (0.5 if last == "outside" else 1.0), r - target
+            last = "outside"
+        a_v, a_r = inside[-1][0], inside[-1][1]
+        if outside is None:  # not bracketed yet: extrapolate from the last two points, 1.2 to 4 times as far
+            b_v, b_r = inside[-2][0], inside[-2][1]
+            distance = abs(a_v - estimate)
+            ratio = (target - b_r) / (a_r - b_r) if a_r > b_r + 1e-9 else 4.0
+            further = abs(b_v - estimate) + ratio * abs(a_v - b_v)
+            new = estimate + direction * float(np.clip(further, 1.2 * distance, 4.0 * distance))
+        else:  # regula falsi (Illinois) between the last point below the target and the last above it
+            o_v = outside[0]
+            if abs(o_v - a_v) < 1e-7:
+                return o_v, False
+            new = a_v - below * (o_v - a_v) / (above - below)
         v = float(np.clip(new, low, high))
-    return v, False
+    return (v if outside is None else 0.5 * (inside[-1][0] + outside[0])), False
 
 
 def headline_accuracy(
@@ -351,7 +349,8 @@ def _fit_and_profile(
     inner_hess = hess[np.ix_([free.index(i) for i in inner], [free.index(i) for i in inner])]
 
     def limit(index: int, direction: int, target: float) -> tuple[float, bool]:
-        s = min(max(step[index], 0.02), 3.0) * target
+        # a first step of about the Wald half-width; the SE of a log SD or atanh correlation can be huge near 0
+        s = min(max(step[index], 0.02), 3.0 if index < 2 else 0.5) * target
         if index in on_bound:  # profiled outward from its bound; no quadratic guess for the others' path
             block = np.zeros((len(inner) + 1, len(inner) + 1))
             block[:-1, :-1], block[-1, -1] = inner_hess, 1.0
