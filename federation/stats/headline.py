@@ -49,7 +49,7 @@ import numpy as np
 from scipy import special, stats
 
 from federation.stats.bivariate import BivariateFit
-from federation.stats.glmm import BOUNDS, GlmmLikelihood, glmm_evidence, glmm_fit
+from federation.stats.glmm import BOUNDS, GlmmLikelihood, glmm_evidence, glmm_fit, one_blas_thread
 from federation.stats.results import Interval
 from federation.stats.serial import ResultRecord, SiteExclusion
 from federation.stats.suppression import SiteEvidence
@@ -312,7 +312,8 @@ def headline_accuracy(
         reasons = {**not_estimable, **dict.fromkeys(HETEROGENEITY, not_estimable["sensitivity"])}
         return HeadlineFit.none_estimable(reasons, site_ids, tuple(excluded), censored)
     try:
-        return _fit_and_profile(evidence, tables, excluded, points, level, intervals, not_estimable, censored)
+        with one_blas_thread():
+            return _fit_and_profile(evidence, tables, excluded, points, level, intervals, not_estimable, censored)
     except (ValueError, ArithmeticError):  # a NaN interval or a singular system: say so, never the internal text
         return empty("not estimable: the model could not be fitted to these data")
 

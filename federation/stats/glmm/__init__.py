@@ -35,6 +35,7 @@ from federation.stats.glmm.fit import (
     glmm_accuracy,
     glmm_evidence,
     glmm_fit,
+    one_blas_thread,
 )
 from federation.stats.glmm.quadrature import marginal_log_likelihood
 
@@ -47,4 +48,5 @@ __all__ = [
     "glmm_evidence",
     "glmm_fit",
     "marginal_log_likelihood",
+    "one_blas_thread",
 ]
