@@ -56,10 +56,12 @@ def _table(results: dict[str, Any]) -> str:
             f"univariate DL | {row['bivariate_ratio_to_dl']:.0f}x / {row['glmm_ratio_to_dl']:.0f}x; REML "
             f"{row['bivariate_ratio_to_target']:.3f} of target | REML < 1 s at 1,000 | |"
         )
-    h = results.get("headline")
-    if h:
+    headline = results.get("headline") or []
+    for h in headline if isinstance(headline, list) else [headline]:
+        tables = f", {h['tables']} ({h['sites_withholding']} withholding)" if "tables" in h else ""
+        cpu = f" (CPU {h['headline_cpu_s']:.2f} s)" if "headline_cpu_s" in h else ""
         lines.append(
-            f"| headline GLMM with profile intervals | {h['sites']} sites | {h['headline_s']:.2f} s | "
+            f"| headline GLMM with profile intervals | {h['sites']} sites{tables} | {h['headline_s']:.2f} s{cpu} | "
             f"{h['glmm_s']:.2f} s (plain fit) | {h['ratio_to_plain_fit']:.1f}x; {h['ratio_to_target']:.2f} of target | "
             "< 5 s | |"
         )
