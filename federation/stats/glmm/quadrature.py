@@ -273,7 +273,9 @@ class AdaptiveQuadrature:
         scaled = np.exp(integrand - peak)
         total = np.sum(scaled, axis=1)
         units = (
-            math.log(2.0) - math.log(2 * math.pi) - 0.5 * log_det
+            math.log(2.0)
+            - math.log(2 * math.pi)
+            - 0.5 * log_det
             + np.log(chol[:, 0, 0] * chol[:, 1, 1])
             + peak[:, 0]
             + np.log(total)
