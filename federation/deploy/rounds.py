@@ -354,7 +354,30 @@ class DeployedRound:
         self.store.close()
 
 
+# How soon the ServerApp asks again for a reply's content that the SuperLink does not hold yet (seconds).
+REPLY_PULL_BACKOFF = (0.1, 1.0)  # first wait, longest wait; Flower 1.42's own: 1 s doubling up to 10 s
+
+
+def quicker_reply_pulls() -> None:
+    """Ask sooner for reply content still in flight, in this process (the ServerApp's) only.
+
+    A reply is listed at the SuperLink as soon as its node announces it, before the node has pushed its
+    content; pulling it in between makes Flower's grid wait 1 s, 2 s, 4 s ... (up to 10 s) before asking again,
+    and the whole round waits with it (seen: 4-12 s at the end of a 10-site round). The grid's object pull
+    (``flwr.superlink.grid.http_grid.pull_objects``, Flower-internal; flwr is pinned) is given a first wait
+    of 0.1 s doubling up to 1 s; its overall time limit stays Flower's.
+    """
+    from functools import partial
+
+    from flwr.superlink.grid import http_grid
+
+    if not isinstance(http_grid.pull_objects, partial):
+        first, longest = REPLY_PULL_BACKOFF
+        http_grid.pull_objects = partial(http_grid.pull_objects, initial_backoff=first, backoff_cap=longest)
+
+
 def run_deployed_round(grid: Grid, settings: RoundSettings) -> RoundResult:
+    quicker_reply_pulls()
     round_ = DeployedRound(grid, settings)
     try:
         return round_.run()

@@ -6,7 +6,8 @@ SuperLink and N authenticated SuperNodes (the invented consortium's first N of 8
 two sites' data under new site ids beyond 8), then alternates a readiness check (``federation run --ping``:
 every node starts its ClientApp process, checks its folder, keys and data source without reading a record,
 and answers) and a validation round (a fresh request each time), and prints the wall time of each, the
-ratio of medians and the SuperLink's peak memory. Every process is stopped by PID at the end.
+ratio of medians and the SuperLink's peak memory. Every process is stopped by PID at the end. The agent's
+modules are compiled to bytecode first, as an installed agent's are (:func:`compile_bytecode`).
 """
 
 from __future__ import annotations
@@ -46,7 +47,24 @@ def _peak_rss_mib(pids: list[int]) -> float:
     return round(total, 1)
 
 
+def compile_bytecode() -> None:
+    """Compile the agent's and the coordinator's modules, as ``pip install`` does for an installed package.
+
+    A site runs an installed agent, whose modules load from bytecode. This checkout is an editable install,
+    and with ``PYTHONDONTWRITEBYTECODE`` set (as on the build machine) every ClientApp process would compile
+    each module it imports from source (about 0.05 s of CPU for a readiness check, 0.1-0.2 s for a validation).
+    """
+    import compileall
+
+    import federation
+    import site_agent
+
+    for package in (federation, site_agent):
+        compileall.compile_dir(str(Path(package.__file__).parent), quiet=1)
+
+
 def measure(out: Path, rounds: int, task_poll: str, n_sites: int = 10) -> dict:
+    compile_bytecode()
     study = prepare_study(out / "study")
     coordinator = study.root / "coordinator"
     sites = {d.name: d for d in study.site_dirs[:n_sites]}

@@ -286,3 +286,37 @@ def test_refusal_sent_to_the_coordinator_holds_no_site_path(study: DemoStudy) ->
     # The site's own ledger keeps the full message, path included, for its IT staff.
     refusal = ledger.read_entries(folders[0] / "ledger.jsonl")[-1]
     assert refusal["event"] == "refusal" and refusal["details"]["detail"].startswith(data_line.group(1))
+
+
+def test_reply_content_still_in_flight_is_asked_for_again_within_a_second() -> None:
+    """Flower's own object pull (not a stand-in) as the ServerApp's grid calls it, after quicker_reply_pulls."""
+    import time
+    from functools import partial
+
+    from flwr.supercore.inflatable.inflatable_utils import ObjectUnavailableError
+    from flwr.superlink.grid import http_grid
+
+    from federation.deploy.rounds import REPLY_PULL_BACKOFF, quicker_reply_pulls
+
+    original = http_grid.pull_objects
+    try:
+        quicker_reply_pulls()
+        quicker_reply_pulls()  # once only: a second call does not stack another wrapper
+        assert isinstance(http_grid.pull_objects, partial) and http_grid.pull_objects.func is original
+        tries: list[float] = []
+
+        def pull_one(object_id: str) -> bytes:  # the content arrives on the third ask
+            tries.append(time.monotonic())
+            if len(tries) < 3:
+                raise ObjectUnavailableError(object_id)
+            return b"content"
+
+        started = time.monotonic()
+        assert http_grid.pull_objects(["reply"], pull_one) == {"reply": b"content"}
+        # Waits of about 0.1 s and 0.2 s (each +-20% jitter, Flower's), where Flower's defaults wait 1 s and 2 s.
+        first, _ = REPLY_PULL_BACKOFF
+        assert len(tries) == 3
+        assert 0.8 * first <= tries[1] - tries[0] < 1.0
+        assert time.monotonic() - started < 1.0
+    finally:
+        http_grid.pull_objects = original
