@@ -5,7 +5,9 @@ The bands are cut at the edges the request gives (band j = edge_j <= score < edg
 the same band tied, ½) and its DeLong (1988) standard error are computed from the released band counts
 only, so they tell a recipient nothing the bands do not (a statistic from record-level scores would be a
 further fact about the records); a run of bands with withheld counts counts as one band (its counts are the
-totals minus the others), and both are released only when the class totals are. Finer bands give an AUC
+totals minus the others), and both are released only when the class totals are and at least two groups
+remain (a single group ties every record: its "AUC" of 0.5 with SE 0 would describe the suppression, not the
+model). Finer bands give an AUC
 closer to the one from individual scores.
 """
 
@@ -74,7 +76,7 @@ class Roc:
             lambda j: (f"roc.band[{j}].positive", f"roc.band[{j}].negative"),
             ("roc.positive", "roc.negative"),
         )
-        if not groups:
+        if not groups or len(groups) < 2:  # one group (every band withheld or merged): all tied, no AUC to tell
             return None
         banded = SimpleNamespace(
             keys=np.arange(len(groups), dtype=np.float64),

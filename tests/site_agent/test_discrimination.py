@@ -62,10 +62,11 @@ def test_hanley_mcneil_rating_data() -> None:
 def test_merged_bands_give_the_auc_of_the_released_bands() -> None:
     scores, outcome = rating_data()
     roc = feed(Roc((1.5, 2.5, 3.5, 4.5)), scores, outcome)
-    counts = roc.counts(Policy(min_cell_size=10))
-    # Abnormal counts 3, 2, 2 in ratings 1-3 are below 10: merged with their neighbour until safe.
+    counts = roc.counts(Policy(min_cell_size=5))
+    # Abnormal counts 3, 2, 2 in ratings 1-3 and the normal 2 in rating 5 are below 5: merged with their
+    # neighbour until safe, which leaves more than one band (a single band would give no AUC at all).
     bands = [(b.low, b.high, b.counts) for b in roc.bands]
-    assert all(c == 0 or c >= 10 for _, _, pair in bands for c in pair)
+    assert all(c == 0 or c >= 5 for _, _, pair in bands for c in pair) and 1 < len(bands) < 5
     assert sum(pair[0] for _, _, pair in bands) == 51 and sum(pair[1] for _, _, pair in bands) == 58
     # the AUC is the released bands' own (records in one band tied): scikit-learn on the band of each record
     band_of = np.searchsorted([b.high if b.high is not None else np.inf for b in roc.bands], scores, side="right")
@@ -118,3 +119,19 @@ def test_histogram_coarsens_past_its_cap_and_says_so() -> None:
 def test_one_class_only_gives_no_auc() -> None:
     roc = feed(Roc((0.5,)), np.array([0.1, 0.7, 0.9]), np.array([1, 1, 1]))
     assert statistics(roc.counts(Policy()))["roc.auc"] is None
+
+
+def test_every_band_withheld_gives_no_auc() -> None:
+    # Four positives spread over three bands, minimum cell size 5: every band's positive count is withheld
+    # and merging leaves one group, in which every record is tied. An AUC of 0.5 with SE 0 would describe the
+    # suppression, not the model, so none is released (Mann-Whitney needs two ordered groups: Hanley and
+    # McNeil 1982, from memory).
+    scores = np.array([0.1, 0.4, 0.45, 0.8, 0.1, 0.2, 0.3, 0.35, 0.4, 0.6, 0.7, 0.75, 0.85, 0.9])
+    outcome = np.array([1, 1, 1, 1, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0])
+    roc = feed(Roc((0.3, 0.6)), scores, outcome)
+    derived = statistics(roc.counts(Policy(min_cell_size=5)))
+    assert derived["roc.auc"] is None and derived["roc.auc_se"] is None
+    # the same records with a cell size that lets two groups through still give their banded AUC
+    two = statistics(feed(Roc((0.3, 0.6)), scores, outcome).counts(Policy(min_cell_size=1)))
+    band_of = np.searchsorted([0.3, 0.6], scores, side="right")
+    assert two["roc.auc"] == pytest.approx(roc_auc_score(outcome, band_of), abs=1e-12)
