@@ -25,13 +25,15 @@ from __future__ import annotations
 
 import csv
 import math
-from collections.abc import Callable, Sequence
+from collections.abc import Sequence
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 import numpy as np
 from threadpoolctl import threadpool_limits
 
+from federation.attempts import attempt as _attempt
+from federation.attempts import not_estimated as _not_estimated
 from federation.labels import level_label
 from federation.protocol import ValidationToolError
 from federation.release_values import count_or_none as _count
@@ -73,17 +75,6 @@ MAX_COVARIATES = 12
 
 class CovariateError(ValidationToolError):
     pass
-
-
-def _not_estimated(reason: str) -> dict[str, str]:
-    return {"status": "not estimated", "reason": reason}
-
-
-def _attempt(function: Callable[..., Any], *args: Any, **kwargs: Any) -> dict[str, Any]:
-    try:
-        return function(*args, **kwargs).to_dict()
-    except (PoolingError, ValueError, np.linalg.LinAlgError) as error:
-        return _not_estimated(str(error))
 
 
 def _section(table: SiteTable, name: str) -> Any:

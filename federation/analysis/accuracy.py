@@ -5,9 +5,10 @@ headline model first, then the univariate and bivariate sensitivity analyses.
 from __future__ import annotations
 
 import math
-from collections.abc import Callable
 from typing import Any
 
+from federation.attempts import attempt as _attempt
+from federation.attempts import not_estimated as _not_estimated
 from federation.protocol.words import withheld_cells
 from federation.stats import (
     PoolingError,
@@ -23,20 +24,6 @@ from federation.stats.headline import METHOD as HEADLINE_METHOD
 from federation.stats.headline import PREDICTION_CONVENTION, headline_accuracy
 
 from .tables import CELLS, SiteTable
-
-
-def _not_estimated(reason: str) -> dict[str, str]:
-    return {"status": "not estimated", "reason": reason}
-
-
-def _attempt(function: Callable[..., Any], *args: Any, **kwargs: Any) -> dict[str, Any]:
-    """Run a pooling function; its result as JSON, or why it could not be estimated."""
-    try:
-        return function(*args, **kwargs).to_dict()
-    except PoolingError as error:  # written for people: names the site and the rule, never a count
-        return _not_estimated(str(error))
-    except (ValueError, ArithmeticError):  # any other failure inside a fit: no internal text reaches a person
-        return _not_estimated("not estimable: the model could not be fitted to these data")
 
 
 def _proportion(x: int, n: int) -> dict[str, float] | None:
