@@ -11,7 +11,7 @@ Built by :func:`further_results` from the same per-site tables as :mod:`federati
 - ``likelihood_ratios``: LR+, LR− and the diagnostic odds ratio derived from the bivariate summary point
   (Zwinderman & Bossuyt 2008), never pooled site by site;
 - ``small_site_effects``: Deeks' funnel plot asymmetry test;
-- ``influence``: leave-one-site-out refits of the bivariate model;
+- ``influence``: leave-one-site-out refits of the headline model (withheld cells censored);
 - ``subgroup_contrasts``: each subgroup level against the reference level, estimated inside each site and
   pooled (not ecological);
 - ``meta_regression``: bivariate meta-regression of sensitivity and specificity on each site covariate in
@@ -43,10 +43,9 @@ from federation.stats import (
     ReleasedTable,
     bivariate_meta_regression,
     deeks_funnel_test,
-    leave_one_site_out,
+    headline_leave_one_site_out,
     pool_kappa,
     pool_proportion,
-    reitsma,
     summary_ratios,
     within_site_auc_contrasts,
     within_site_contrasts,
@@ -218,11 +217,11 @@ def _released(tables: Sequence[SiteTable]) -> list[ReleasedTable]:
 
 
 def _influence(tables: Sequence[SiteTable]) -> dict[str, Any]:
-    result = _attempt(leave_one_site_out, _released(tables), reitsma)
+    result = _attempt(headline_leave_one_site_out, _released(tables))
     result.setdefault(
         "note",
-        "leave-one-site-out refits of the bivariate normal model of complete tables (Viechtbauer & Cheung "
-        "2010), a sensitivity analysis beside the headline model",
+        "leave-one-site-out refits of the headline model (the bivariate binomial GLMM over every site, withheld "
+        "cells censored), each started from the fit to every site (Viechtbauer & Cheung 2010)",
     )
     return result
 
@@ -548,7 +547,7 @@ def summary_lines(result: dict[str, Any]) -> list[str]:
     influence = result.get("influence")
     if isinstance(influence, dict) and influence.get("most_influential"):
         lines.append(
-            f"Leave-one-site-out: largest change without {influence['most_influential']} "
+            f"Leave-one-site-out refits of the headline model: largest change without {influence['most_influential']} "
             f"({influence['largest_change_logit']:.2f} on the logit scale)"
         )
     for variable, measures in (result.get("subgroup_contrasts") or {}).items():

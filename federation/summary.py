@@ -163,7 +163,8 @@ def _primary_extras(result: dict) -> list[str]:
     influence = result.get("influence")
     if isinstance(influence, dict) and influence.get("most_influential"):
         lines.append(
-            f"leave-one-site-out: the largest change is without {influence['most_influential']} "
+            f"leave-one-site-out refits of the headline model: the largest change is without "
+            f"{influence['most_influential']} "
             f"({_num(influence.get('largest_change_logit'), 2)} on the logit scale)"
         )
     return lines

@@ -27,7 +27,8 @@ FURTHER_SECTIONS = {
     ),
     "influence": (
         "Leave-one-site-out influence",
-        "The bivariate summary point refitted without each site in turn: which site moves the result most.",
+        "The headline model (the bivariate binomial GLMM over every site, withheld cells censored) refitted "
+        "without each site in turn: which site moves the summary point most.",
     ),
     "subgroup_contrasts": (
         "Subgroup differences within sites",

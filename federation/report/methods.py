@@ -240,7 +240,10 @@ def _further_sentences(analysis: dict[str, Any]) -> list[str]:
     if analysis.get("small_site_effects"):
         out.append(" Small-site effects were tested with Deeks' funnel plot asymmetry test (Deeks et al. 2005).")
     if analysis.get("influence"):
-        out.append(" Influence was examined by refitting the bivariate model leaving out one site at a time.")
+        out.append(
+            " Influence was examined by refitting the headline model (the bivariate binomial model with withheld "
+            "cells censored) leaving out one site at a time."
+        )
     if analysis.get("subgroup_contrasts"):
         out.append(
             " Subgroup differences were estimated within each site and then pooled by random effects, so that "

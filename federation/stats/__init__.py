@@ -38,7 +38,7 @@ from federation.stats.comparison import (
 from federation.stats.funnel import FunnelAsymmetry, deeks_funnel_test
 from federation.stats.glmm import binomial_glmm, glmm_accuracy, marginal_log_likelihood
 from federation.stats.headline import PREDICTION_CONVENTION, HeadlineFit, headline_accuracy
-from federation.stats.influence import LeaveOneOut, OmittedSite, leave_one_site_out
+from federation.stats.influence import LeaveOneOut, OmittedSite, headline_leave_one_site_out, leave_one_site_out
 from federation.stats.multiple_threshold import (
     MultipleThresholdRoc,
     OperatingPoint,
@@ -91,6 +91,7 @@ __all__ = [
     "WithinSiteContrast",
     "bivariate_meta_regression",
     "deeks_funnel_test",
+    "headline_leave_one_site_out",
     "leave_one_site_out",
     "pool_kappa",
     "pool_proportion",

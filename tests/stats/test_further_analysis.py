@@ -22,6 +22,7 @@ from federation.further_analysis import CovariateError, read_covariates, summary
 from federation.stats import (
     bivariate_meta_regression,
     deeks_funnel_test,
+    headline_leave_one_site_out,
     pool_kappa,
     pool_proportion,
     summary_ratios,
@@ -146,6 +147,8 @@ def test_deeks_influence_and_contrasts_are_the_stats_functions(result: dict) -> 
     deeks = deeks_funnel_test(IDS, *([t.cells[c] for t in TABLES] for c in ("tp", "fp", "fn", "tn")))
     assert result["small_site_effects"]["test"] == deeks.test
     assert [r["site_id"] for r in result["influence"]["omitted"]] == IDS
+    influence = headline_leave_one_site_out([t.released_table() for t in TABLES]).to_dict()
+    assert result["influence"]["omitted"] == influence["omitted"] and "headline model" in result["influence"]["note"]
     ids, levels, events, totals = [], [], [], []
     for t in TABLES:
         for level in t.extra["subgroups"]["variables"][0]["levels"]:
@@ -179,6 +182,7 @@ def test_terminal_lines_show_each_pooled_result(result: dict) -> None:
     assert "Agreement, screen vs reference standard: pooled kappa" in text
     assert "Paired comparison, difference in sensitivity (model minus comparison):" in text
     assert "Small-site effects (Deeks' test): slope" in text
+    assert "Leave-one-site-out refits of the headline model: largest change without" in text
     assert "difference between subgroups: t(4) =" in text
     assert "Meta-regression on setting = community (vs clinic)" in text
 

@@ -35,6 +35,7 @@ from federation.stats.glmm.fit import (
     glmm_accuracy,
     glmm_evidence,
     glmm_fit,
+    glmm_refit_without,
     one_blas_thread,
 )
 from federation.stats.glmm.quadrature import marginal_log_likelihood
@@ -47,6 +48,7 @@ __all__ = [
     "glmm_accuracy",
     "glmm_evidence",
     "glmm_fit",
+    "glmm_refit_without",
     "marginal_log_likelihood",
     "one_blas_thread",
 ]

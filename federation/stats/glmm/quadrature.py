@@ -187,6 +187,7 @@ class AdaptiveQuadrature:
 
     def __init__(self, design: Design, points: int) -> None:
         self.design = design
+        self.points = points
         x, w = np.polynomial.hermite.hermgauss(points)
         grid = np.array([(a, b) for a in x for b in x])
         self.nodes = grid  # (Q, 2)
