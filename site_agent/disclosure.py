@@ -144,6 +144,7 @@ class Protected:
     min_cell_size: int = 0
     allow_zero: bool = True
     domains: Mapping[str, Any] = field(default_factory=dict)
+    models: Mapping[str, Any] = field(default_factory=dict)  # "score"/"score.compare" -> model description
     culprits: frozenset[str] = frozenset()  # parts whose exposure cost primary cells (site side only)
 
     @property
@@ -160,6 +161,7 @@ class Protected:
             "bundle": self.bundle,
             "policy": {"min_cell_size": self.min_cell_size, "allow_zero": self.allow_zero},
             "domains": {name: dict(raw) for name, raw in sorted(self.domains.items())},
+            "models": {name: dict(raw) for name, raw in sorted(self.models.items())},
             "counts": [
                 {
                     **counts.definitions[name].to_dict(),
@@ -245,6 +247,8 @@ def protect(
     label: str = "this release",
     primary: frozenset[str] | None = None,
     domains: Mapping[str, Any] | None = None,
+    models: Mapping[str, Any] | None = None,
+    occupied: Any = None,
 ) -> Protected:
     """Apply the site policy to one release's counts, auditing it against ``earlier`` releases of the site.
 
@@ -253,7 +257,10 @@ def protect(
     the primary table (default: the flow and ``confusion[0]``): when more than the minimum cell size must be
     withheld, other analyses are cut back first (:data:`CUT_ORDER`), and primary cells are withheld only
     when nothing else protects them. ``domains`` maps each schema feature to its schema entry (``type``,
-    ``min``, ``max``, ``categories``): the recipient knows them, and so does the audit.
+    ``min``, ``max``, ``categories``): the recipient knows them, and so does the audit. ``models`` describes
+    the model behind each score variable (:mod:`site_agent.audit.model`; the recipient knows it), and
+    ``occupied`` gives the records' combinations of features and scores where a model cannot be followed
+    exactly (an ONNX graph).
     """
     check_definitions(counts, policy)
     k, allow_zero = policy.min_cell_size, policy.allow_zero
@@ -265,18 +272,20 @@ def protect(
     if primary is None:
         primary = frozenset(n for n in counts.values if n.startswith(("flow.", "confusion[0].")))
     domains = dict(domains or {})
-    current = ReleaseFacts(label, counts.definitions, {}, counts.relations, bundle, {}, k, allow_zero, domains)
+    models = dict(models or {})
+    current = ReleaseFacts(label, counts.definitions, {}, counts.relations, bundle, {}, k, allow_zero, domains, models)
     built: list[Audit] = []
 
     def audit() -> Audit:  # built on first need: the fast path of a lone tree-shaped release needs none
         if not built:
             from .audit.check import Audit  # scipy: imported only when a linear-programming audit is needed
 
-            built.append(Audit(earlier, current))
+            built.append(Audit(earlier, current, occupied))
         return built[0]
 
     lone = not earlier
-    context = (counts, k, allow_zero, width, audit, _already_public(counts, earlier, bundle), bundle, domains, lone)
+    public = _already_public(counts, earlier, bundle, models)
+    context = (counts, k, allow_zero, width, audit, public, bundle, domains, lone, models)
     units = sorted({u for n in counts.values if (u := unit_of(n, primary)) is not None}, key=_cut_rank)
 
     def attempt(dropped: Sequence[str]) -> tuple[Protected | None, list[Finding], set[str]]:
@@ -323,11 +332,11 @@ def _primary_floor(counts: CountSet, primary: frozenset[str], k: int, allow_zero
 
 def _protect_once(context: tuple, primary: frozenset[str], dropped: frozenset[str]) -> Protected:
     """One pass: cut back ``dropped`` parts, primary and secondary suppression, then the audit rounds."""
-    counts, k, allow_zero, width, audit, public, bundle, domains, lone = context
+    counts, k, allow_zero, width, audit, public, bundle, domains, lone, models = context
     values = counts.values
     reasons: dict[str, str] = {}
     suppressed: set[str] = set()
-    twins = _same_definition(counts, bundle)
+    twins = _same_definition(counts, bundle, models)
     for name, value in values.items():
         # a count of a cut part that another, kept part shows under the same definition stays: it is shown anyway
         if unit_of(name, primary) in dropped and all(unit_of(t, primary) in dropped for t in twins[name]):
@@ -403,7 +412,7 @@ def _protect_once(context: tuple, primary: frozenset[str], dropped: frozenset[st
         {"analysis": unit, "action": _action(unit), "rule": CUT_RULE} for unit in sorted(dropped, key=_cut_rank)
     )
     return Protected(
-        released, hidden, derived, reasons, result, bundle, cut, k, allow_zero, domains, frozenset(culprits)
+        released, hidden, derived, reasons, result, bundle, cut, k, allow_zero, domains, models, frozenset(culprits)
     )
 
 
@@ -435,20 +444,22 @@ def _action(unit: str) -> str:
     return "withheld in full"
 
 
-def _already_public(counts: CountSet, earlier: Sequence[ReleaseFacts], bundle: str) -> frozenset[str]:
+def _already_public(
+    counts: CountSet, earlier: Sequence[ReleaseFacts], bundle: str, models: Mapping[str, Any]
+) -> frozenset[str]:
     shown = set()
     for release in earlier:
         for name, definition in release.definitions.items():
             if release.values.get(name) is not None:
-                shown.add(normalise(definition.where, release.bundle))
-    return frozenset(n for n, d in counts.definitions.items() if normalise(d.where, bundle) in shown)
+                shown.add(normalise(definition.where, release.bundle, models=release.models))
+    return frozenset(n for n, d in counts.definitions.items() if normalise(d.where, bundle, models=models) in shown)
 
 
-def _same_definition(counts: CountSet, bundle: str) -> dict[str, tuple[str, ...]]:
+def _same_definition(counts: CountSet, bundle: str, models: Mapping[str, Any]) -> dict[str, tuple[str, ...]]:
     """Counts of this release with the same definition: suppressing one means suppressing all of them."""
     groups: dict[Any, list[str]] = {}
     for name, definition in counts.definitions.items():
-        groups.setdefault(normalise(definition.where, bundle), []).append(name)
+        groups.setdefault(normalise(definition.where, bundle, models=models), []).append(name)
     return {name: tuple(group) for group in groups.values() for name in group}
 
 

@@ -33,12 +33,14 @@ from federation.protocol.errors import LimitReached, ModelNotApproved, ScoringEr
 from . import approval, ledger, models
 from .analyses import Flow, build_analyses, collect_counts, combined_schema, tabulate
 from .approval import AwaitingApproval
+from .audit.model import describe_bundle
 from .checked_models import site_scorer
 from .config import Site
 from .counts import CountSet
 from .data import DEFAULT_CHUNK_ROWS, exclusion_reasons
 from .disclosure import Protected, protect
 from .mapping import Mapping, default_mapping, load_mapping
+from .occupancy import combinations
 from .sources import SourceSpec
 from .withheld import annotate
 
@@ -368,7 +370,15 @@ def _compute(
     earlier = ledger.facts_for_site(site.ledger_path)
     primary = primary_counts(counts, analyses, bundle)
     domains = {f.name: f.to_dict() for f in schema.features}
-    protected = protect(counts, site.policy, earlier, bundle.sha256, request.request_id, primary, domains)
+    # the recipient knows the models: the audit follows their scores over the features they read
+    scores = {"score": describe_bundle(bundle, scorer)}
+    if pair is not None:
+        scores["score.compare"] = describe_bundle(*pair)
+    # where a model cannot be followed exactly (ONNX), the records' combinations of features and scores
+    occupied = combinations(site, source, mapping, bundle, scorer, pair, chunk_rows, scores, domains)
+    protected = protect(
+        counts, site.policy, earlier, bundle.sha256, request.request_id, primary, domains, scores, occupied
+    )
     holder.update(counts=counts, protected=protected)
     results = {a.name: a.render(protected.released, protected.derived) for a in analyses}
     flow_part = flow.render(protected.released, protected.derived)

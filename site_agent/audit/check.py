@@ -14,6 +14,7 @@ from scipy import sparse
 from threadpoolctl import ThreadpoolController
 
 from .facts import _TOL, MILP_MAX_ATOMS, AuditError, AuditResult, Finding, Interval, ReleaseFacts
+from .model import Occupied, joint_boxes, meet_entries
 from .refinement import Box, Domain, _bits, _whole_numbers, normalise, refine
 from .system import _build_system, _implicit_zeros, _Pool, _System
 
@@ -38,14 +39,22 @@ class Audit:
     = suppressed), so that more suppression can be tried without rebuilding the refinement.
     """
 
-    def __init__(self, earlier: Sequence[ReleaseFacts], current: ReleaseFacts) -> None:
+    def __init__(
+        self, earlier: Sequence[ReleaseFacts], current: ReleaseFacts, occupied: Occupied | None = None
+    ) -> None:
         started = time.perf_counter()
         self.releases = [*earlier, current]
         self.domains: dict[str, Domain] = {}
+        schema_entries: dict[str, dict[str, Any]] = {}
+        models: dict[str, Mapping[str, Any]] = {}
         for release in self.releases:
             for name, raw in release.domains.items():
                 domain = Domain.from_dict(raw)
                 self.domains[name] = self.domains[name].meet(domain) if name in self.domains else domain
+                schema_entries[name] = meet_entries(schema_entries.get(name), raw)
+            for model in release.models.values():
+                if model.get("id"):
+                    models[f"score@m:{model['id']}"] = model
         self.current = len(self.releases) - 1
         box_index: dict[Box, int] = {}
         self.statements: list[_Statement] = []
@@ -53,14 +62,16 @@ class Audit:
         for r, release in enumerate(self.releases):
             names: dict[str, _Statement] = {}
             for name, definition in release.definitions.items():
-                box = normalise(definition.where, release.bundle, self.domains)
+                box = normalise(definition.where, release.bundle, self.domains, release.models)
                 index = None if box is None else box_index.setdefault(box, len(box_index))
                 statement = _Statement(r, name, index)
                 self.statements.append(statement)
                 names[name] = statement
             self.by_name.append(names)
         self.boxes = list(box_index)
-        atom_masks = refine(self.boxes, self.domains)
+        # what the recipient knows about the models: score bands as regions of the features they read
+        joined, joint_values, self.joints = joint_boxes(self.boxes, models, schema_entries, occupied)
+        atom_masks = refine(joined, self.domains, joint_values)
         n_boxes, n_atoms = len(self.boxes), len(atom_masks)
         members = [_bits(mask, n_boxes) for mask in atom_masks]
         rows = np.concatenate(members) if members else np.zeros(0, int)
@@ -70,6 +81,15 @@ class Audit:
         indptr, indices = self.incidence.indptr, self.incidence.indices
         self.box_index = [indices[indptr[j] : indptr[j + 1]] for j in range(n_boxes)]  # atoms of each box
         self.box_atoms = [frozenset(index.tolist()) for index in self.box_index]
+        # Through the models, two definitions can hold the same records (score 30 or more, and age 30 or more,
+        # for a score that is the age): one count, whichever name shows it. A definition the model makes
+        # empty (score 30 or more, age below 24) holds nobody.
+        canonical: dict[frozenset[int], int] = {}
+        for statement in self.statements:
+            if statement.box is None:
+                continue
+            atoms = self.box_atoms[statement.box]
+            statement.box = canonical.setdefault(atoms, statement.box) if atoms else None
         self.relation_rows = self._relation_rows()
         self.structural_zero = self._structural_zeros()
         self._pool = _Pool()
@@ -303,8 +323,8 @@ class Audit:
         for statement in self.statements:
             if statement.box is None or self._value(statement, current_values) is not None:
                 continue
-            if statement.box in first and first[statement.box] < statement.release:
-                continue
+            if statement.box in first and first[statement.box] <= statement.release:
+                continue  # shown already (or, through a model, under another name in this release)
             release, names = targets.setdefault(statement.box, (statement.release, []))
             if statement.release == release:
                 names.append(statement.name)

@@ -31,7 +31,9 @@ class ReleaseFacts:
     """What one release told (or, for the release being audited, would tell) the study's recipient.
 
     ``values[name]`` is ``None`` for a suppressed count. ``bundle`` qualifies the score variables, so that two
-    releases scored with different models are not mistaken for the same variable.
+    releases scored with different models are not mistaken for the same variable; ``models`` describes each
+    score's model (:mod:`site_agent.audit.model`), which the recipient knows: then the score variable is named
+    by the model, and its level sets over the features are part of the audit.
     """
 
     label: str
@@ -43,6 +45,7 @@ class ReleaseFacts:
     min_cell_size: int = 0  # the policy the release states (0: unknown, no facts from the rules)
     allow_zero: bool = True
     domains: Mapping[str, Mapping[str, Any]] = field(default_factory=dict)  # feature -> schema entry
+    models: Mapping[str, Mapping[str, Any]] = field(default_factory=dict)  # "score"/"score.compare" -> model
 
     @classmethod
     def from_dict(cls, label: str, raw: Any, bundle: str = "") -> ReleaseFacts:
@@ -64,6 +67,7 @@ class ReleaseFacts:
             int(policy.get("min_cell_size", 0) or 0),
             bool(policy.get("allow_zero", True)),
             dict(raw.get("domains", {})) if isinstance(raw, dict) else {},
+            dict(raw.get("models", {})) if isinstance(raw, dict) else {},
         )
 
     def bounds(self, rules: Mapping[str, str] | None = None) -> dict[str, tuple[int, int]]:

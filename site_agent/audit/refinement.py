@@ -80,24 +80,37 @@ class Domain:
 Domains = Mapping[str, Domain]
 
 
-def _qualified(variable: str, bundle: str) -> str:
-    return f"{variable}@{bundle}" if bundle and variable in SCORED else variable
+def _qualified(variable: str, bundle: str, models: Mapping[str, Mapping[str, Any]] | None = None) -> str:
+    """A score variable named by its model (``score@m:<id>``: the same function in two bundles is one
+    variable), or by the bundle when the facts do not describe the model (ledgers written before)."""
+    if variable not in SCORED:
+        return variable
+    model = (models or {}).get(variable)
+    if model is not None and model.get("id"):
+        return f"score@m:{model['id']}"
+    return f"{variable}@{bundle}" if bundle else variable
 
 
 def _base(variable: str) -> str:
     return variable.split("@", 1)[0]
 
 
-def normalise(where: Sequence[Condition], bundle: str = "", domains: Domains | None = None) -> Box | None:
+def normalise(
+    where: Sequence[Condition],
+    bundle: str = "",
+    domains: Domains | None = None,
+    models: Mapping[str, Mapping[str, Any]] | None = None,
+) -> Box | None:
     """The box of a conjunction (conditions on one variable intersected); ``None`` if it is empty.
 
     With ``domains``, a box of analysed records only is read within the features' domains: numeric bands
     snapped to the values they can hold, categories outside the list dropped, and a condition that every
-    analysed record meets (all categories, a band spanning the range) dropped.
+    analysed record meets (all categories, a band spanning the range) dropped. With ``models`` (variable ->
+    the model's description, :mod:`site_agent.audit.model`), score variables are named by the model.
     """
     parts: dict[str, Constraint] = {}
     for condition in where:
-        name = _qualified(condition.variable, bundle)
+        name = _qualified(condition.variable, bundle, models)
         if condition.values:
             new: Constraint = frozenset(condition.values)
         else:
@@ -147,17 +160,26 @@ def _variable_order(variables: set[str]) -> list[str]:
     return sorted(variables | {STATUS}, key=lambda v: (rank.get(v, 2), v))
 
 
-def _cell_masks(variable: str, boxes: Sequence[Box]) -> tuple[list[Any], list[int], bool]:
+def _cell_masks(
+    variable: str, boxes: Sequence[Box], joint: Mapping[str, list[str]] | None = None
+) -> tuple[list[Any], list[int], bool]:
     """Cells of one variable and, per cell, the bitmask of boxes containing it.
 
     Numeric cells are the intervals between consecutive edges plus a last cell for "no value"; categorical
-    cells are the named values plus one cell for every other value (or none).
+    cells are the named values plus one cell for every other value (or none); a joint variable's cells are
+    its values plus "no value" (records not analysed).
     """
     constrained = [(j, dict(box)[variable]) for j, box in enumerate(boxes) if variable in dict(box)]
     unconstrained = 0
     for j, box in enumerate(boxes):
         if variable not in dict(box):
             unconstrained |= 1 << j
+    if joint and variable in joint:
+        own = {value: 0 for value in joint[variable]}
+        for j, allowed in constrained:
+            for value in allowed:
+                own[value] |= 1 << j
+        return [*own, None], [unconstrained | m for m in own.values()] + [unconstrained], False
     numeric = bool(constrained) and isinstance(constrained[0][1], tuple)
     if variable in SCORED or _base(variable) in SCORED:
         numeric = True
@@ -208,13 +230,17 @@ def _possible(variable: str, cell: Any, domains: Domains, named: frozenset[str])
     return not domain.categories or cell in domain.categories
 
 
-def refine(boxes: Sequence[Box], domains: Domains | None = None) -> list[int]:
+def refine(
+    boxes: Sequence[Box], domains: Domains | None = None, joint: Mapping[str, list[str]] | None = None
+) -> list[int]:
     """Atoms of the common refinement, each as the bitmask of the boxes that contain it.
 
     Variables are split one at a time; partial regions contained in the same boxes so far are merged,
     because their further splits are identical (a decision-diagram reduction). Regions in no box are dropped:
     nothing released says anything about them. With ``domains``, analysed records take only values their
-    features' domains allow (an empty band between two whole numbers is no atom).
+    features' domains allow (an empty band between two whole numbers is no atom). ``joint`` gives the values
+    of the joint variables that stand for a model's score and the features it reads
+    (:func:`site_agent.audit.model.joint_boxes`).
     """
     domains = domains or {}
     if not boxes:
@@ -222,7 +248,7 @@ def refine(boxes: Sequence[Box], domains: Domains | None = None) -> list[int]:
     variables = _variable_order({v for box in boxes for v, _ in box})
     groups: dict[tuple[int, bool | None], None] = {((1 << len(boxes)) - 1, None): None}
     for variable in variables:
-        cells, masks, numeric = _cell_masks(variable, boxes)
+        cells, masks, numeric = _cell_masks(variable, boxes, joint)
         scored = _base(variable) in SCORED
         named = frozenset(c for c in cells if isinstance(c, str))
         possible = [_possible(variable, cell, domains, named) for cell in cells]

@@ -91,13 +91,16 @@ def test_a_study_asking_for_everything_keeps_the_primary_table(tmp_path: Path, c
     rng = np.random.default_rng(5)
     second = [("" if rng.random() < 0.4 else str(o if rng.random() < 0.85 else 1 - o)) for *_, o in data]
     world = World(tmp_path, data, reference2=second)
+    # The short form calls a child positive from 24 months, the full-length form from 30: the paired table's
+    # discordant cell with the condition is the small group (the audit knows both models, and that is what
+    # has to give).
     world.scorecard(
         "short",
-        {"kind": "logistic", "intercept": -1.0, "weights": {"item": 0.8, "age_months": 0.002}},
+        {"kind": "logistic", "intercept": -24.0, "weights": {"item": 0.1, "age_months": 1.0}},
         0.5,
-        lambda a, s, i: 1 / (1 + np.exp(-(-1.0 + 0.8 * i + 0.002 * a))),
+        lambda a, s, i: 1 / (1 + np.exp(-(-24.0 + 0.1 * i + 1.0 * a))),
     )
-    world.scorecard("long", {"kind": "points", "points": {"item": {"1": 1, "2": 2, "3": 3}}}, 2, lambda a, s, i: i)
+    world.scorecard("long", {"kind": "points", "weights": {"age_months": 1}}, 30, lambda a, s, i: float(a))
     everything = "confusion,roc,calibration,margin,agreement,subgroups,paired"
     release = world.ask(
         "short",
