@@ -4,21 +4,23 @@ An ONNX graph's level sets cannot be computed, so the audit assumes the recipien
 (feature values, score bands) that no analysed record holds to be empty (:mod:`site_agent.audit.model`).
 This module gives it those combinations: a second pass over the records, scoring them with the request's
 models, and with an earlier release's model when the site kept its bundle (``SITEDIR/models/``) or the
-ledger describes it (a scorecard). Nothing here leaves the site; the audit reads only which combinations
-occur, never how often.
+ledger describes it (a scorecard). Random inputs over the schema's domains, scored the same way, are
+witnesses too (a combination some input reaches is not known to be empty). Nothing here leaves the site;
+the audit reads only which combinations occur, never how often.
 """
 
 from __future__ import annotations
 
-from collections.abc import Mapping, Sequence
+from collections.abc import Iterator, Mapping, Sequence
 from typing import Any
 
 import numpy as np
 
 from federation.protocol import ValidationToolError, load_bundle
-from federation.protocol.scoring import make_scorer
+from federation.protocol.errors import ScoringError
 
 from .audit.model import score_of
+from .checked_models import site_scorer
 from .data import PreparedChunk
 
 
@@ -76,11 +78,51 @@ def combinations(
             return None
         collector = _Collector(features, scorers)
         tabulate(source, mapping, bundle, scorer, Flow(exclusion_reasons(mapping)), [collector], chunk_rows, pair)
+        # Inputs of our own making are witnesses too: a combination some input reaches is not empty for the
+        # recipient either, so it need not be assumed known to be empty (fewer facts, still a superset of
+        # what the model tells). They are drawn without looking at the records.
+        for block in _witnesses(bundle, pair, domains):
+            try:
+                collector.add(block, scorer.score(block.inputs))
+            except ScoringError:
+                break  # a model that fails outside the records' values: the records alone are the witnesses
         if not collector.rows:
             return np.zeros((0, len(features) + len(models)))
         return np.unique(np.concatenate(collector.rows), axis=0)
 
     return occupied
+
+
+WITNESSES = 16_384  # random inputs per audit (four blocks)
+
+
+def _witnesses(bundle: Any, pair: tuple[Any, Any] | None, domains: Mapping[str, Any]) -> Iterator[PreparedChunk]:
+    """Blocks of random inputs over the schema's domains (whole numbers, categories, ranges), scored like
+    records; a fixed seed, so that the same request gets the same witnesses."""
+    rng = np.random.default_rng(20261202)
+    rows = WITNESSES // 4
+    for _ in range(4):
+        columns = {}
+        for name, entry in domains.items():
+            categories = entry.get("categories")
+            if categories:
+                columns[name] = rng.integers(0, len(categories), rows).astype(np.float32)
+                continue
+            low = float(entry.get("min", 0.0) if entry.get("min") is not None else -1e6)
+            high = float(entry.get("max", 1.0) if entry.get("max") is not None else 1e6)
+            if entry.get("type") == "int":
+                columns[name] = rng.integers(int(np.ceil(low)), int(np.floor(high)) + 1, rows).astype(np.float32)
+            else:
+                columns[name] = rng.uniform(low, high, rows).astype(np.float32)
+        block = PreparedChunk(inputs=np.zeros((rows, 0), np.float32), outcome=np.zeros(rows, np.int8), read=0)
+        block.columns = columns
+        block.inputs = block.matrix(bundle.schema)
+        if pair is not None:
+            try:
+                block.compare_scores = pair[1].score(block.matrix(pair[0].schema))
+            except ScoringError:
+                return
+        yield block
 
 
 def _kept_scorer(site: Any, bundle_sha256: str, domains: Mapping[str, Any]) -> Any:
@@ -93,7 +135,7 @@ def _kept_scorer(site: Any, bundle_sha256: str, domains: Mapping[str, Any]) -> A
         return None
     try:
         bundle = load_bundle(path.read_bytes(), site.trusted, str(path))
-        model = make_scorer(bundle)
+        model = site_scorer(site, bundle)
     except ValidationToolError:
         return None
     if bundle.sha256 != bundle_sha256 or not set(bundle.schema.names) <= set(domains):

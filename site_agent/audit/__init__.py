@@ -11,7 +11,10 @@ record space that no released definition splits (two points of record space lie 
 the same boxes contain them). The unknowns are the atom counts ``x >= 0``; each released count says that the
 sum of its atoms equals its value, and each relation says that two sums are equal. Structural knowledge that
 every recipient has is added explicitly: only analysed records have a score, and an analysed record's outcome
-is ``"0"`` or ``"1"``. Excluded records therefore have no score or outcome split.
+is ``"0"`` or ``"1"``. Excluded records therefore have no score or outcome split. The recipient knows the
+models too (:mod:`site_agent.audit.model`): a score and the features its model reads are one joint variable
+whose values are the (feature values, score band) combinations some input reaches (exactly, for a scorecard;
+for an ONNX graph, those a record or a random input reaches), so a score band is a region of the features.
 
 **What is checked.**
 

@@ -7,9 +7,9 @@ box, the conditions on the scores and on the features they read by one categoric
 group of such variables (:func:`joint_boxes`):
 
 - **Groups.** A score variable is linked to each feature it reads that some released definition names, and
-  to every other score variable that reads a feature it reads (two bundles, a paired comparison). A group
-  with a score and a named feature, or with two scores, is treated; a lone score whose features no
-  definition names is a variable of its own, as before (no definition can tell its level sets apart).
+  to every other score variable that reads a feature it reads (two bundles, a paired comparison). A lone
+  score whose features no definition names is a group too: the score bands its model cannot reach (a
+  points total below the smallest attainable one) are known to be empty.
 - **Scorecards: exact.** A scorecard's score is additive over features (points and weight × value; a
   logistic scorecard is a monotone function of that sum). The joint variable's values are the whole-number
   or category values of the group's features (every value of the schema's domain, which must be finite and
@@ -21,9 +21,10 @@ group of such variables (:func:`joint_boxes`):
   :data:`MAX_COMBINATIONS`; then the refinement as before.
 - **When the model cannot be followed exactly** (an ONNX graph, whose level sets the audit cannot compute,
   or a scorecard over a continuous feature that a definition names): the recipient's facts about empty
-  combinations are a subset of "no analysed record has this combination"; with the records' combinations
-  (``occupied``, computed by the site from its records), every unoccupied combination is treated as known
-  to be empty. This is sound (geometric emptiness implies no records) and more cautious than needed; the
+  combinations are a subset of "no analysed record, and no input the site tried, has this combination";
+  with those combinations (``occupied``, computed by the site from its records and from random inputs over
+  the schema's domains, :mod:`site_agent.occupancy`), every other combination is treated as known to be
+  empty. This is sound (geometric emptiness implies no records) and more cautious than needed; the
   decision then looks at values in the sense of docs/threat-model.md R12. Without the records'
   combinations the audit refuses: it cannot show that the release is safe.
 
@@ -233,7 +234,7 @@ def _groups(boxes: Sequence[Box], models: Mapping[str, Mapping[str, Any]]) -> li
     for group in members.values():
         group_scores = {v for v in group if v in models}
         group_features = group - group_scores
-        if group_scores and (group_features or len(group_scores) > 1):
+        if group_scores:  # a lone score too: the bands its model never reaches are known to be empty
             out.append((group_scores, group_features))
     return sorted(out, key=lambda g: sorted(g[0]))
 

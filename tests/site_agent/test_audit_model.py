@@ -1,0 +1,137 @@
+"""The audit's model of a scorecard (site_agent/audit/model.py) against brute force: for random points and
+logistic scorecards and random released definitions (score bands, feature bands, categories, outcome), the
+regions of record space the audit keeps (its atoms, as the sets of definitions that hold them) must be
+exactly the distinct sets of definitions that the records of every possible type fall in, each type scored
+by the site's own scorer (federation.protocol.scoring.Scorecard). Fewer regions would be a fact the recipient
+does not have (an inconsistent audit); more would miss a fact the recipient has (a region it knows is
+empty), which is how a score that is the age gave the small age band away."""
+
+from __future__ import annotations
+
+import itertools
+import json
+
+import numpy as np
+from hypothesis import given, settings
+from hypothesis import strategies as st
+
+from federation.protocol.schema import Schema
+from federation.protocol.scoring import Scorecard
+from site_agent.audit.model import describe_bundle, joint_boxes, meet_entries
+from site_agent.audit.refinement import Domain, normalise, refine
+from site_agent.counts import ANALYSED, Condition
+
+SCHEMA = {
+    "features": [
+        {"name": "age", "type": "int", "min": 0, "max": 11},
+        {"name": "sex", "type": "category", "categories": ["f", "m", "x"]},
+        {"name": "item", "type": "int", "min": 0, "max": 3},
+    ]
+}
+halves = st.integers(-6, 6).map(lambda v: v / 2)  # exact in binary: the brute force and the audit agree exactly
+
+
+@st.composite
+def scorecards(draw: st.DrawFn) -> dict:
+    kind = draw(st.sampled_from(["points", "logistic"]))
+    card: dict = {"format": "scorecard", "kind": kind, "intercept": draw(halves), "weights": {}, "points": {}}
+    for name in draw(st.sets(st.sampled_from(["age", "item", "sex"]), max_size=3)):
+        card["weights"][name] = draw(halves)
+    for name in draw(st.sets(st.sampled_from(["age", "item", "sex"]), max_size=2)):
+        keys = ["f", "m", "x"] if name == "sex" else [str(v) for v in range(0, 12 if name == "age" else 4)]
+        chosen = draw(st.sets(st.sampled_from(keys), min_size=1, max_size=3))
+        card["points"][name] = {k: draw(halves) for k in sorted(chosen)}
+    return card
+
+
+@st.composite
+def definitions(draw: st.DrawFn, logistic: tuple[bool, bool]) -> list[tuple[Condition, ...]]:
+    out = []
+    for _ in range(draw(st.integers(1, 5))):
+        where = [ANALYSED]
+        if draw(st.booleans()):
+            where.append(Condition("outcome", (draw(st.sampled_from(["0", "1"])),)))
+        for variable, is_logistic in (("score", logistic[0]), ("score.compare", logistic[1])):
+            if draw(st.booleans()):
+                grid = [v / 10 for v in range(1, 10)] if is_logistic else [v / 2 for v in range(-20, 21)]
+                low, high = sorted(draw(st.lists(st.sampled_from(grid), min_size=2, max_size=2)))
+                where.append(Condition(variable, (), low if draw(st.booleans()) else None, high))
+        if draw(st.booleans()):
+            low = draw(st.integers(0, 11))
+            where.append(Condition("age", (), low, low + draw(st.integers(1, 6))))
+        if draw(st.booleans()):
+            where.append(Condition("sex", tuple(sorted(draw(st.sets(st.sampled_from("fmx"), min_size=1))))))
+        out.append(tuple(where))
+    return out
+
+
+def brute_force(cards: list[Scorecard], wheres: list[tuple[Condition, ...]]) -> set[int]:
+    """Every type of analysed record (age, sex, item, outcome), scored by the site's scorer: the set of
+    definitions each type lies in."""
+    types = list(itertools.product(range(12), range(3), range(4), (0, 1)))
+    inputs = np.array([[a, s, i] for a, s, i, _ in types], dtype=np.float32)
+    scores = [card.score(inputs) for card in cards]
+    masks = set()
+    for row, (age, sex, _item, outcome) in enumerate(types):
+        values = {"age": age, "sex": "fmx"[sex], "outcome": str(outcome)}
+        values["score"] = scores[0][row]
+        values["score.compare"] = scores[-1][row]
+        mask = 0
+        for j, where in enumerate(wheres):
+            inside = True
+            for c in where:
+                if c.variable == "status":
+                    continue
+                value = values[c.variable]
+                if c.values:
+                    inside &= value in c.values
+                else:
+                    inside &= (c.low is None or value >= c.low) and (c.high is None or value < c.high)
+            mask |= inside << j
+        if mask:
+            masks.add(mask)
+    return masks
+
+
+@settings(max_examples=80, deadline=None)
+@given(st.data())
+def test_the_audit_keeps_exactly_the_regions_some_record_can_be_in(data: st.DataObject) -> None:
+    schema = Schema.from_dict(SCHEMA)
+    raw = [data.draw(scorecards()) for _ in range(2)]
+    cards = [Scorecard.from_json(json.dumps(card).encode(), schema) for card in raw]
+    logistic = (raw[0]["kind"] == "logistic", raw[1]["kind"] == "logistic")
+    wheres = data.draw(definitions(logistic))
+
+    class _Bundle:  # what describe_bundle reads of a bundle
+        class manifest:
+            model_format = "scorecard"
+
+    _Bundle.schema = schema
+    models = {"score": describe_bundle(_Bundle, cards[0]), "score.compare": describe_bundle(_Bundle, cards[1])}
+    entries = {f["name"]: meet_entries(None, f) for f in SCHEMA["features"]}
+    domains = {name: Domain.from_dict(entry) for name, entry in entries.items()}
+    boxes = [normalise(where, "b", domains, models) for where in wheres]
+    keep = [j for j, box in enumerate(boxes) if box is not None]
+    qualified = {f"score@m:{m['id']}": m for m in models.values()}
+    joined, values, _ = joint_boxes([boxes[j] for j in keep], qualified, entries)
+    audit = {sum(1 << keep[b] for b in range(len(keep)) if mask >> b & 1) for mask in refine(joined, domains, values)}
+    assert audit == brute_force(cards, wheres)
+
+
+def test_the_closed_form_fast_path_never_takes_a_feature_or_a_second_score() -> None:
+    """The fast path (site_agent/audit/tree.py) knows nothing of the models: a release whose definitions name a
+    feature beside the score, or a second score, must go to the full audit, which does."""
+    from site_agent.audit.tree import tree_audit
+    from site_agent.counts import POSITIVE, CountDef
+
+    above = Condition("score", (), 30.0, None)
+    lone = {
+        "analysed_positive": CountDef("analysed_positive", (ANALYSED, POSITIVE)),
+        "tp": CountDef("tp", (ANALYSED, POSITIVE, above)),
+        "fn": CountDef("fn", (ANALYSED, POSITIVE, Condition("score", (), None, 30.0))),
+    }
+    values = {"analysed_positive": 128, "tp": 95, "fn": 33}
+    assert tree_audit(lone, values, {}, 10, True, 2) is not None  # the premise: this one is a tree
+    for extra in (Condition("age_months", (), 24.0, None), Condition("score.compare", (), 30.0, None)):
+        mixed = {**lone, "more": CountDef("more", (ANALYSED, POSITIVE, extra))}
+        assert tree_audit(mixed, {**values, "more": 98}, {}, 10, True, 2) is None
