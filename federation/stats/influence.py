@@ -29,6 +29,7 @@ from federation.stats.tables import ReleasedTable
 
 __all__ = ["LeaveOneOut", "OmittedSite", "headline_leave_one_site_out", "leave_one_site_out"]
 
+COULD_NOT_REFIT = "not estimable: the model could not be fitted without this site"
 HEADLINE_MODEL = (
     "the headline model (bivariate binomial GLMM over every site, withheld cells censored under the rule that "
     "withheld them), each refit started from the fit to every site; Wald intervals, t on k - 2 df"
@@ -105,8 +106,11 @@ def leave_one_site_out(
         rest = [t for t in tables if t.site_id != site]
         try:
             refit = fit(rest)
-        except (PoolingError, ValueError) as error:
+        except PoolingError as error:  # written for people: names the site and the rule
             rows.append(OmittedSite(site, None, None, None, None, None, None, str(error)))
+            continue
+        except (ValueError, ArithmeticError):  # no internal error text reaches a person
+            rows.append(OmittedSite(site, None, None, None, None, None, None, COULD_NOT_REFIT))
             continue
         rows.append(_omitted(site, refit, full))
     return _summarise(full.method, full, rows)
@@ -159,8 +163,10 @@ def headline_leave_one_site_out(tables: Sequence[ReleasedTable], level: float = 
             if reason is None:
                 try:
                     refit = glmm_refit_without(likelihood, evidence, index, np.array(theta), free, level)
-                except (PoolingError, ValueError, ArithmeticError) as error:
+                except PoolingError as error:
                     reason = str(error)
+                except (ValueError, ArithmeticError):  # no internal error text reaches a person
+                    reason = COULD_NOT_REFIT
             if reason is not None:
                 rows.append(OmittedSite(ev.site_id, None, None, None, None, None, None, reason))
                 continue
