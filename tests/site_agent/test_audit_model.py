@@ -135,3 +135,71 @@ def test_the_closed_form_fast_path_never_takes_a_feature_or_a_second_score() -> 
     for extra in (Condition("age_months", (), 24.0, None), Condition("score.compare", (), 30.0, None)):
         mixed = {**lone, "more": CountDef("more", (ANALYSED, POSITIVE, extra))}
         assert tree_audit(mixed, {**values, "more": 98}, {}, 10, True, 2) is None
+
+
+@settings(max_examples=40, deadline=None)
+@given(st.data())
+def test_the_conservative_rule_keeps_only_regions_that_hold_a_record(data: st.DataObject) -> None:
+    """The rule for models the audit cannot follow (ONNX), played with scorecards so that brute force knows the
+    truth: given the combinations some records hold, the audit keeps every region those records fall in (it
+    is consistent with the data) and no region that no input can reach (every fact the recipient has from
+    the models is among the audit's)."""
+    import site_agent.audit.model as model
+
+    schema = Schema.from_dict(SCHEMA)
+    raw = [data.draw(scorecards()) for _ in range(2)]
+    cards = [Scorecard.from_json(json.dumps(card).encode(), schema) for card in raw]
+    wheres = data.draw(definitions((raw[0]["kind"] == "logistic", raw[1]["kind"] == "logistic")))
+    held = data.draw(st.lists(st.tuples(st.integers(0, 11), st.integers(0, 2), st.integers(0, 3)), min_size=1))
+
+    class _Bundle:
+        class manifest:
+            model_format = "scorecard"
+
+    _Bundle.schema = schema
+    models = {"score": describe_bundle(_Bundle, cards[0]), "score.compare": describe_bundle(_Bundle, cards[1])}
+    qualified = {f"score@m:{m['id']}": m for m in models.values()}
+    by_id = {f"score@m:{m['id']}": card for m, card in zip(models.values(), cards, strict=True)}
+    entries = {f["name"]: meet_entries(None, f) for f in SCHEMA["features"]}
+    domains = {name: Domain.from_dict(entry) for name, entry in entries.items()}
+    boxes = [normalise(where, "b", domains, models) for where in wheres]
+    keep = [j for j, box in enumerate(boxes) if box is not None]
+    inputs = np.array(held, dtype=np.float32)
+
+    def occupied(features: list[str], descriptions: list[dict]) -> np.ndarray:
+        columns = [inputs[:, ["age", "sex", "item"].index(f)] for f in features]
+        scores = [by_id[f"score@m:{d['id']}"].score(inputs) for d in descriptions]
+        return np.column_stack([*columns, *scores]) if columns or scores else np.zeros((len(held), 0))
+
+    original = model._exact_combinations
+    model._exact_combinations = lambda *args: None  # as for an ONNX graph
+    try:
+        joined, values, _ = joint_boxes([boxes[j] for j in keep], qualified, entries, occupied)
+    finally:
+        model._exact_combinations = original
+    audit = {sum(1 << keep[b] for b in range(len(keep)) if mask >> b & 1) for mask in refine(joined, domains, values)}
+    full = brute_force(cards, wheres)
+    assert audit <= full  # never a region no input reaches
+    # every held record's region is kept (with either outcome: the rule looks at features and scores only)
+    held_regions = set()
+    scores = [card.score(inputs) for card in cards]
+    for row, (age, sex, _item) in enumerate(held):
+        for outcome in ("0", "1"):
+            values_of = {"age": age, "sex": "fmx"[sex], "outcome": outcome, "score": scores[0][row]}
+            values_of["score.compare"] = scores[1][row]
+            mask = 0
+            for j, where in enumerate(wheres):
+                inside = all(
+                    (values_of[c.variable] in c.values)
+                    if c.values
+                    else (
+                        (c.low is None or values_of[c.variable] >= c.low)
+                        and (c.high is None or values_of[c.variable] < c.high)
+                    )
+                    for c in where
+                    if c.variable != "status"
+                )
+                mask |= inside << j
+            if mask:
+                held_regions.add(mask)
+    assert held_regions <= audit
