@@ -14,7 +14,7 @@ from scipy import sparse
 from threadpoolctl import ThreadpoolController
 
 from .facts import _TOL, MILP_MAX_ATOMS, AuditError, AuditResult, Finding, Interval, ReleaseFacts
-from .model import Occupied, joint_boxes, meet_entries
+from .model import Occupied, joint_boxes, meet_entries, models_for_old_entries
 from .refinement import Box, Domain, _bits, _whole_numbers, normalise, refine
 from .system import _build_system, _implicit_zeros, _Pool, _System
 
@@ -56,13 +56,14 @@ class Audit:
                 if model.get("id"):
                     models[f"score@m:{model['id']}"] = model
         self.current = len(self.releases) - 1
+        described = models_for_old_entries(self.releases)
         box_index: dict[Box, int] = {}
         self.statements: list[_Statement] = []
         self.by_name: list[dict[str, _Statement]] = []
         for r, release in enumerate(self.releases):
             names: dict[str, _Statement] = {}
             for name, definition in release.definitions.items():
-                box = normalise(definition.where, release.bundle, self.domains, release.models)
+                box = normalise(definition.where, release.bundle, self.domains, described.get(r, release.models))
                 index = None if box is None else box_index.setdefault(box, len(box_index))
                 statement = _Statement(r, name, index)
                 self.statements.append(statement)

@@ -118,6 +118,21 @@ def meet_entries(old: Mapping[str, Any] | None, raw: Mapping[str, Any]) -> dict[
     return new
 
 
+def models_for_old_entries(releases: Sequence[Any]) -> dict[int, dict[str, Mapping[str, Any]]]:
+    """Models for releases recorded before the ledger described them: the bundle's model where a later release
+    of the same bundle describes it (the comparison model of an old paired release stays its own variable),
+    so that an old and a new release of one bundle share one score."""
+    by_bundle: dict[str, Mapping[str, Any]] = {}
+    for release in releases:
+        if release.bundle and release.models.get("score"):
+            by_bundle.setdefault(release.bundle, release.models["score"])
+    return {
+        r: {"score": by_bundle[release.bundle]}
+        for r, release in enumerate(releases)
+        if not release.models and release.bundle in by_bundle
+    }
+
+
 def reads(description: Mapping[str, Any]) -> frozenset[str]:
     if description.get("format") == "scorecard":
         return frozenset(description.get("terms", {}))

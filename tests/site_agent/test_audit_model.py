@@ -203,3 +203,27 @@ def test_the_conservative_rule_keeps_only_regions_that_hold_a_record(data: st.Da
             if mask:
                 held_regions.add(mask)
     assert held_regions <= audit
+
+
+def test_a_release_recorded_before_models_shares_the_score_of_its_bundle() -> None:
+    """A ledger entry written before releases described their models names the score by its bundle; a new
+    release of the same bundle must still be the same score (else shifted bands across the two give a band's
+    count by subtraction, tests/adversarial/test_red_team.py::test_score_bands_shifted_across_two_studies_on_a_
+    score_that_is_the_age)."""
+    from site_agent.audit import ReleaseFacts
+    from site_agent.audit.check import Audit
+    from site_agent.counts import CountDef
+
+    where = (ANALYSED, Condition("score", (), 24.0, None))
+    age = {"age_months": {"type": "int", "min": 0, "max": 95}}
+    card = {"format": "scorecard", "kind": "points", "intercept": 0.0}
+    card["terms"] = {"age_months": {"weight": 1.0, "points": {}}}
+    model = {"score": {**card, "id": "c0ffee"}}
+    definitions = {"band": CountDef("band", where)}
+    old = ReleaseFacts("old", definitions, {"band": 40}, bundle="b1", domains=age)
+    new = ReleaseFacts("new", definitions, {}, bundle="b1", domains=age, models=model)
+    other = ReleaseFacts("other", definitions, {}, bundle="b2", domains=age, models=model)
+    audit = Audit([old], new)
+    assert audit.statements[1].box is not None and audit.statements[0].box == audit.statements[1].box
+    audit = Audit([old], other)  # another bundle's old entry is not this model's
+    assert audit.statements[1].box is not None and audit.statements[0].box != audit.statements[1].box
