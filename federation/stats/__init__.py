@@ -7,7 +7,8 @@ headline model with profile-likelihood intervals and its "not estimable" checks 
 discrimination and calibration (:mod:`.performance`); a summary ROC from each site's own score bands
 (:mod:`.multiple_threshold`); what a reviewer asks for: agreement and proportions pooled (:mod:`.agreement`),
 likelihood ratios from the bivariate model (:mod:`.summary_ratios`), bivariate meta-regression
-(:mod:`.bivariate_regression`), within-site subgroup contrasts (:mod:`.within_site`), Deeks' test
+(:mod:`.bivariate_regression`) with its likelihood-ratio test in the headline model
+(:mod:`.headline_regression`), within-site subgroup contrasts (:mod:`.within_site`), Deeks' test
 (:mod:`.funnel`) and leave-one-site-out influence (:mod:`.influence`); subgroups and paired comparisons
 (:mod:`.comparison`).
 """
@@ -38,6 +39,7 @@ from federation.stats.comparison import (
 from federation.stats.funnel import FunnelAsymmetry, deeks_funnel_test
 from federation.stats.glmm import binomial_glmm, glmm_accuracy, marginal_log_likelihood
 from federation.stats.headline import PREDICTION_CONVENTION, HeadlineFit, headline_accuracy
+from federation.stats.headline_regression import CovariateLikelihoodRatio, headline_covariate_test
 from federation.stats.influence import LeaveOneOut, OmittedSite, headline_leave_one_site_out, leave_one_site_out
 from federation.stats.multiple_threshold import (
     MultipleThresholdRoc,
@@ -85,12 +87,14 @@ __all__ = [
     "BivariateRegression",
     "CovariateEffect",
     "FunnelAsymmetry",
+    "CovariateLikelihoodRatio",
     "LeaveOneOut",
     "OmittedSite",
     "SummaryRatios",
     "WithinSiteContrast",
     "bivariate_meta_regression",
     "deeks_funnel_test",
+    "headline_covariate_test",
     "headline_leave_one_site_out",
     "leave_one_site_out",
     "pool_kappa",

@@ -256,7 +256,18 @@ class AdaptiveQuadrature:
         sites, gradient, hessian = self._marginals(theta[:2], between(theta), theta, hessian=True)
         return float(np.sum(sites)), gradient, hessian
 
-    def _marginals(self, mean, between_cov, theta=None, hessian: bool = False):
+    def value_and_unit_scores(
+        self, mean1: NDArray[np.float64], mean2: NDArray[np.float64], theta: NDArray[np.float64]
+    ) -> tuple[float, NDArray[np.float64], tuple[NDArray[np.float64], NDArray[np.float64]]]:
+        """Total marginal log-likelihood with a mean per unit (``mean1``, ``mean2``: one value per unit, as a
+        site covariate makes them), its gradient in the variance parameters ``theta[2:5]`` (entries 2-4 of the
+        returned gradient) and each unit's derivatives in its two means (nodes held fixed)."""
+        sites, gradient, scores = self._marginals(
+            (mean1[:, None], mean2[:, None]), between(theta), theta, unit_means=True
+        )
+        return float(np.sum(sites)), gradient, scores
+
+    def _marginals(self, mean, between_cov, theta=None, hessian: bool = False, unit_means: bool = False):
         design = self.design
         u, hess, omega = self.modes_and_curvature(mean, between_cov)
         chol = np.linalg.cholesky(np.linalg.inv(-hess))  # (U, 2, 2), lower
@@ -301,10 +312,13 @@ class AdaptiveQuadrature:
         forms = [omega @ b @ omega for b in d_between]
         traces = [float(np.trace(omega @ b)) for b in d_between]
         gradient = np.empty(5)
-        gradient[0] = float(np.sum(weight * g1))
-        gradient[1] = float(np.sum(weight * g2))
+        unit_scores = (np.sum(weight * g1, axis=1), np.sum(weight * g2, axis=1))  # each unit's d/d(its means)
+        gradient[0] = float(np.sum(unit_scores[0]))
+        gradient[1] = float(np.sum(unit_scores[1]))
         for j in range(3):
             gradient[2 + j] = -0.5 * traces[j] * k + 0.5 * _quadratic(forms[j], sums)
+        if unit_means:
+            return sites, gradient, unit_scores
         if not hessian:
             return sites, gradient, None
         scores = np.stack(
