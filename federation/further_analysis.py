@@ -15,8 +15,10 @@ Built by :func:`further_results` from the same per-site tables as :mod:`federati
 - ``subgroup_contrasts``: each subgroup level against the reference level, estimated inside each site and
   pooled (not ecological);
 - ``meta_regression``: bivariate meta-regression of sensitivity and specificity on each site covariate in
-  turn: prevalence and size from the participant flow, subgroup shares from the subgroup tables, and any
-  coordinator-supplied covariates (``--covariates FILE``, :func:`read_covariates`).
+  turn (Wald tests on the complete tables, and ``likelihood_ratio_test``: the headline model with and without
+  the covariate over every site that has it, withheld cells censored): prevalence and size from the
+  participant flow, subgroup shares from the subgroup tables, and any coordinator-supplied covariates
+  (``--covariates FILE``, :func:`read_covariates`).
 
 Every result names its method; one that cannot be estimated is ``{"status": "not estimated", "reason"}``.
 """
@@ -43,6 +45,7 @@ from federation.stats import (
     ReleasedTable,
     bivariate_meta_regression,
     deeks_funnel_test,
+    headline_covariate_test,
     headline_leave_one_site_out,
     pool_kappa,
     pool_proportion,
@@ -415,8 +418,10 @@ def _meta_regression(
     if not names:
         return None
     logits = {t.site_id: found for t in tables if (found := _logits(t)) is not None}
+    released = _released(tables)
     out: dict[str, Any] = {}
     for name in names:
+        likelihood_ratio = _likelihood_ratio(name, released, covariates)
         sites = [s for s in logits if name in covariates.get(s, {})]
         values = [covariates[s][name] for s in sites]
         if len({type(v) for v in values}) > 1:
@@ -425,6 +430,7 @@ def _meta_regression(
         columns = _columns(values) if sites else None
         if columns is None:
             out[name] = _not_estimated("fewer than 2 categories among the sites with complete tables")
+            out[name]["likelihood_ratio_test"] = likelihood_ratio
             continue
         matrix, categories = columns
         labels = [name] if not categories else [f"{name} = {c} (vs {categories[0]})" for c in categories[1:]]
@@ -440,8 +446,36 @@ def _meta_regression(
         if "effects" in result and len(sites) < 10:
             # Common practice: about ten sites per covariate before a meta-regression is more than exploratory.
             result["caution"] = f"{len(sites)} sites: exploratory (Wald tests on few sites are too liberal)"
+        result["likelihood_ratio_test"] = likelihood_ratio
         out[name] = result
     return out
+
+
+def _likelihood_ratio(
+    name: str, released: Sequence[ReleasedTable], covariates: dict[str, dict[str, float | str]]
+) -> dict[str, Any]:
+    """The covariate's likelihood-ratio test in the headline model, over every site that has it (withheld
+    cells censored), beside the Wald tests of the normal-approximation regression of complete tables."""
+    used = [t for t in released if name in covariates.get(t.site_id, {})]
+    values = [covariates[t.site_id][name] for t in used]
+    if len({type(v) for v in values}) > 1:
+        return _not_estimated("mixes numbers and categories")
+    columns = _columns(values) if used else None
+    if columns is None:
+        return _not_estimated("fewer than 2 categories among the sites")
+    matrix, categories = columns
+    labels = [name] if not categories else [f"{name} = {c} (vs {categories[0]})" for c in categories[1:]]
+    return _attempt(headline_covariate_test, used, matrix, labels)
+
+
+def _likelihood_ratio_line(name: str, fit: dict[str, Any]) -> str | None:
+    test = fit.get("likelihood_ratio_test") if isinstance(fit, dict) else None
+    if not isinstance(test, dict) or _number(test.get("statistic")) is None:
+        return None
+    return (
+        f"Likelihood-ratio test of {name} in the headline model over {test['n_sites']} sites (withheld cells "
+        f"censored): χ²({test['df']}) = {test['statistic']:.2f}, p = {test['p']:.2g}"
+    )
 
 
 def further_results(
@@ -555,15 +589,18 @@ def summary_lines(result: dict[str, Any]) -> list[str]:
             if isinstance(value, list):
                 lines += [f"Within sites, {variable}: {c['sentence']}" for c in value]
     for name, fit in (result.get("meta_regression") or {}).items():
+        likelihood_ratio = _likelihood_ratio_line(name, fit)
         if "effects" not in fit:
             lines.append(f"Meta-regression on {name}: {_why(fit)}")
+            lines += [likelihood_ratio] if likelihood_ratio else []
             continue
         for effect in fit["effects"]:
             test = effect["covariate_test"]
             lines.append(
                 f"Meta-regression on {effect['name']} over {fit['n_sites']} sites: logit sensitivity "
                 f"{effect['logit_sensitivity']:+.2f}, logit specificity {effect['logit_specificity']:+.2f}; "
-                f"joint test χ²({test['df']}) = {test['statistic']:.2f}, p = {test['p']:.2g}"
+                f"joint Wald test χ²({test['df']}) = {test['statistic']:.2f}, p = {test['p']:.2g}"
                 + (" (exploratory: few sites)" if fit.get("caution") else "")
             )
+        lines += [likelihood_ratio] if likelihood_ratio else []
     return lines

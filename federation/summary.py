@@ -394,21 +394,35 @@ def _paired(result: dict, sites: Mapping[str, dict]) -> list[str]:
     return lines
 
 
+def _likelihood_ratio_line(name: str, fit: object) -> str | None:
+    test = fit.get("likelihood_ratio_test") if isinstance(fit, dict) else None
+    if not isinstance(test, dict) or not _finite(test.get("statistic")):
+        return None
+    return (
+        f"  {name}, likelihood-ratio test in the headline model (k = {test.get('n_sites')}, withheld cells "
+        f"censored): χ²({test.get('df')}) = {_num(test.get('statistic'), 2)}, "
+        + (f"p = {test['p']:.2g}" if _finite(test.get("p")) else "p —")
+    )
+
+
 def _meta_regression_lines(regression: dict) -> list[str]:
     lines: list[str] = []
     for name, fit in regression.items():
+        likelihood_ratio = _likelihood_ratio_line(name, fit)
         if not isinstance(fit, dict) or "effects" not in fit:
             reason = fit.get("reason") if isinstance(fit, dict) else None
             lines.append(f"  {name}: not estimable" + (f": {reason}" if reason else ""))
+            lines += [likelihood_ratio] if likelihood_ratio else []
             continue
         for effect in fit["effects"]:
             test = effect.get("covariate_test") or {}
             lines.append(
                 f"  {effect.get('name')} (k = {fit.get('n_sites')}): logit sensitivity "
                 f"{_num(effect.get('logit_sensitivity'), 2)}, logit specificity "
-                f"{_num(effect.get('logit_specificity'), 2)}; χ²({test.get('df')}) = {_num(test.get('statistic'), 2)}, "
-                + (f"p = {test['p']:.2g}" if _finite(test.get("p")) else "p —")
+                f"{_num(effect.get('logit_specificity'), 2)}; Wald χ²({test.get('df')}) = "
+                f"{_num(test.get('statistic'), 2)}, " + (f"p = {test['p']:.2g}" if _finite(test.get("p")) else "p —")
             )
+        lines += [likelihood_ratio] if likelihood_ratio else []
     return lines
 
 

@@ -39,7 +39,8 @@ FURTHER_SECTIONS = {
         "Meta-regression on site covariates",
         "Bivariate random-effects meta-regression of sensitivity and specificity on one site covariate at a "
         "time (van Houwelingen, Arends & Stijnen 2002): does accuracy change with the setting, prevalence or "
-        "case mix?",
+        "case mix? Wald tests from the normal approximation of the complete tables, and a likelihood-ratio "
+        "test from the headline model with and without the covariate over every site (withheld cells censored).",
     ),
 }
 
@@ -203,11 +204,23 @@ def _contrasts(analysis: dict[str, Any]) -> list[str]:
     return lines
 
 
+def _likelihood_ratio(name: str, fit: Any) -> str | None:
+    test = fit.get("likelihood_ratio_test") if isinstance(fit, dict) else None
+    if not isinstance(test, dict) or "statistic" not in test:
+        return None
+    return (
+        f"{name}, likelihood-ratio test in the headline model ({test['n_sites']} sites, withheld cells censored): "
+        f"chi-squared({test['df']}) = {test['statistic']:.2f}, p = {test['p']:.3g}."
+    )
+
+
 def _regression(analysis: dict[str, Any]) -> list[str]:
     lines = []
     for name, fit in (analysis.get("meta_regression") or {}).items():
+        likelihood_ratio = _likelihood_ratio(name, fit)
         if not isinstance(fit, dict) or "effects" not in fit:
             lines.append(f"{name}: {_why(fit)}")
+            lines += [likelihood_ratio] if likelihood_ratio else []
             continue
         for effect in fit["effects"]:
             test = effect["covariate_test"]
@@ -216,9 +229,10 @@ def _regression(analysis: dict[str, Any]) -> list[str]:
                 f"{effect['logit_sensitivity']:+.2f} (95% CI {effect['logit_sensitivity_ci_low']:+.2f} to "
                 f"{effect['logit_sensitivity_ci_high']:+.2f}), logit specificity {effect['logit_specificity']:+.2f} "
                 f"(95% CI {effect['logit_specificity_ci_low']:+.2f} to {effect['logit_specificity_ci_high']:+.2f}); "
-                f"joint test chi-squared({test['df']}) = {test['statistic']:.2f}, p = {test['p']:.3g}"
+                f"joint Wald test chi-squared({test['df']}) = {test['statistic']:.2f}, p = {test['p']:.3g}"
                 + (f"; {fit['caution']}." if fit.get("caution") else ".")
             )
+        lines += [likelihood_ratio] if likelihood_ratio else []
         heterogeneity = fit.get("residual_heterogeneity") or {}
         if heterogeneity:
             lines.append(

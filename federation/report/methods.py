@@ -252,7 +252,9 @@ def _further_sentences(analysis: dict[str, Any]) -> list[str]:
     if analysis.get("meta_regression"):
         out.append(
             " Bivariate random-effects meta-regression examined one site covariate at a time (van Houwelingen "
-            "et al. 2002), with Wald tests; with few sites these are exploratory."
+            "et al. 2002), with Wald tests; with few sites these are exploratory. Each covariate was also tested "
+            "by the likelihood ratio of the headline model fitted with and without it over every site that "
+            "reported it, withheld cells censored (chi-squared on 2 df per covariate column)."
         )
     return out
 

@@ -22,6 +22,7 @@ from federation.further_analysis import CovariateError, read_covariates, summary
 from federation.stats import (
     bivariate_meta_regression,
     deeks_funnel_test,
+    headline_covariate_test,
     headline_leave_one_site_out,
     pool_kappa,
     pool_proportion,
@@ -174,6 +175,9 @@ def test_meta_regression_on_release_and_coordinator_covariates(result: dict) -> 
         x.append(t.flow["analysed_positive"] / t.flow["analysed"])
     reference = bivariate_meta_regression(np.array(y), np.array(v), np.array(x), ["prevalence"], IDS)
     assert regression["prevalence"]["effects"][0]["covariate_test"] == reference.effects[0].covariate_test
+    # beside the Wald test, the likelihood-ratio test of the headline model (tests/stats/test_headline_regression.py)
+    likelihood_ratio = headline_covariate_test([t.released_table() for t in TABLES], np.array(x), ["prevalence"])
+    assert regression["prevalence"]["likelihood_ratio_test"] == likelihood_ratio.to_dict()
     assert "exploratory" in regression["prevalence"]["caution"]
 
 
@@ -185,6 +189,7 @@ def test_terminal_lines_show_each_pooled_result(result: dict) -> None:
     assert "Leave-one-site-out refits of the headline model: largest change without" in text
     assert "difference between subgroups: t(4) =" in text
     assert "Meta-regression on setting = community (vs clinic)" in text
+    assert "Likelihood-ratio test of setting in the headline model over" in text
 
 
 def test_covariates_file_is_read_and_bad_ones_named(tmp_path: Path) -> None:
