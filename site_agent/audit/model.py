@@ -45,7 +45,7 @@ from typing import Any
 
 import numpy as np
 
-from .facts import ANALYSED, SCORED, STATUS, AuditError
+from .facts import ANALYSED, STATUS, AuditError
 
 MAX_COMBINATIONS = 200_000  # joint values before merging, per group
 MAX_RESIDUAL = 4_096  # attainable residual values (points of features no definition names) per score
@@ -443,7 +443,3 @@ def joint_boxes(
 
 def _shared(scores: Sequence[str], models: Mapping[str, Mapping[str, Any]]) -> set[str]:
     return {f for s, t in itertools.combinations(scores, 2) for f in reads(models[s]) & reads(models[t])}
-
-
-def is_scored(variable: str) -> bool:
-    return variable in SCORED or variable.split("@", 1)[0] in SCORED
