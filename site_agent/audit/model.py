@@ -397,6 +397,8 @@ def joint_boxes(
         exact = _exact_combinations(boxes, scores, features, models, domains)
         if exact is None:
             observed = occupied(features, [models[s] for s in scores]) if occupied is not None else None
+            if observed is None and not features and len(scores) == 1:
+                continue  # a lone score the site cannot score again: its own variable, as before (R10)
             if observed is None:
                 raise AuditError(
                     "the audit cannot follow a model whose score is released together with a feature it reads "

@@ -227,3 +227,22 @@ def test_a_release_recorded_before_models_shares_the_score_of_its_bundle() -> No
     assert audit.statements[1].box is not None and audit.statements[0].box == audit.statements[1].box
     audit = Audit([old], other)  # another bundle's old entry is not this model's
     assert audit.statements[1].box is not None and audit.statements[0].box != audit.statements[1].box
+
+
+def test_an_onnx_score_the_site_cannot_score_again_is_refused_only_beside_a_feature_it_reads() -> None:
+    """An earlier ONNX graph whose bundle is gone: beside a definition naming a feature it reads the audit
+    refuses (it cannot show the release is safe); a score that stands alone stays its own variable."""
+    import pytest
+
+    from site_agent.audit import AuditError
+    from site_agent.audit.model import describe_onnx
+
+    onnx = describe_onnx("ab" * 32, ["age", "sex", "item"])
+    models = {f"score@m:{onnx['id']}": onnx}
+    score = (("score@m:" + onnx["id"], (0.5, float("inf"))), ("status", frozenset({"analysed"})))
+    entries = {f["name"]: meet_entries(None, f) for f in SCHEMA["features"]}
+    joined, values, _ = joint_boxes([score], models, entries, lambda features, descriptions: None)
+    assert joined == [score] and values == {}
+    age = (("age", (0.0, 6.0)), ("status", frozenset({"analysed"})))
+    with pytest.raises(AuditError, match="cannot follow a model"):
+        joint_boxes([score, age], models, entries, lambda features, descriptions: None)
