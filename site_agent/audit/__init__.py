@@ -27,6 +27,17 @@ for an ONNX graph, those a record or a random input reaches), so a score band is
    system after the atoms that are zero in every feasible table are fixed (found with one LP per block);
    this is exact for the real relaxation and costs one SVD per block instead of one LP per region.
 
+**Scale: the grouped model.** A site's history crosses every variable's cuts with every other's (fine ROC
+score bands times age bands: 150,000 atoms after 200 releases of mixed analyses), though no count names a fine
+score band and an age band together. The audit therefore first answers in a grouped model
+(:mod:`~site_agent.audit.decompose`): the scores and the boxes over them in a centre, each other variable's
+boxes in a leaf, tied by one row per cell of the leaf boxes' projections onto the centre. Its linear programs
+have the same optima as the full model's, and its atoms answer the differencing checks for full atoms
+exactly, so a clear answer (nothing found, every interval too wide for integer programs to matter) is the
+full audit's answer. Otherwise the full model decides while it has at most ``FULL_MAX_ATOMS`` atoms (a few
+seconds); beyond, the grouped model's findings do (the same regions; the counts it proposes to withhold come
+from its own rows, so a repair may withhold other counts than the full model would).
+
 **Integrality.** The true interval of a count over whole-number tables can only be narrower than the LP
 relaxation's. We round the LP bounds inward (``ceil(min)``, ``floor(max)``), and where it is cheap (a
 suppressed count whose rounded interval holds fewer than ``protection_width + 2`` values) we solve the two

@@ -3,6 +3,7 @@
 
 from __future__ import annotations
 
+import copy
 import math
 import time
 from collections.abc import Mapping, Sequence
@@ -13,7 +14,8 @@ import numpy as np
 from scipy import sparse
 from threadpoolctl import ThreadpoolController
 
-from .facts import _TOL, MILP_MAX_ATOMS, AuditError, AuditResult, Finding, Interval, ReleaseFacts
+from .decompose import Cells, decompose
+from .facts import _TOL, MAX_ATOMS, MILP_MAX_ATOMS, AuditError, AuditResult, Finding, Interval, ReleaseFacts
 from .model import Occupied, joint_boxes, meet_entries, models_for_old_entries
 from .refinement import Box, Domain, _bits, _whole_numbers, normalise, refine
 from .system import _build_system, _implicit_zeros, _Pool, _System
@@ -22,6 +24,9 @@ from .system import _build_system, _implicit_zeros, _Pool, _System
 
 
 _CONTROLLER: ThreadpoolController | None = None
+# Where the grouped model's answer is not clear, the full model decides when it has at most this many atoms
+# (a few seconds); beyond, the grouped model's own findings do (see ``evaluate``).
+FULL_MAX_ATOMS = 5_000
 
 
 @dataclass
@@ -40,7 +45,11 @@ class Audit:
     """
 
     def __init__(
-        self, earlier: Sequence[ReleaseFacts], current: ReleaseFacts, occupied: Occupied | None = None
+        self,
+        earlier: Sequence[ReleaseFacts],
+        current: ReleaseFacts,
+        occupied: Occupied | None = None,
+        group: bool = True,
     ) -> None:
         started = time.perf_counter()
         self.releases = [*earlier, current]
@@ -71,14 +80,43 @@ class Audit:
             self.by_name.append(names)
         self.boxes = list(box_index)
         # what the recipient knows about the models: score bands as regions of the features they read
-        joined, joint_values, self.joints = joint_boxes(self.boxes, models, schema_entries, occupied)
-        atom_masks = refine(joined, self.domains, joint_values)
+        self._joined, self._joint_values, self.joints = joint_boxes(self.boxes, models, schema_entries, occupied)
+        self.cells: Cells | None = None  # the grouped model's separator cells (None: the full model)
+        self._grouped: Audit | None = None
+        self._full = False
+        self._too_large = False
+        grouped = decompose(self._joined, self.domains, self._joint_values) if group else None
+        if grouped is not None:
+            # the grouped model answers first; the full refinement is built only if its answer is not clear
+            self._grouped = copy.copy(self)
+            own = [copy.copy(s) for s in self.statements]  # each model makes equal definitions one count
+            lookup = {id(s): o for s, o in zip(self.statements, own, strict=True)}
+            self._grouped.statements = own
+            self._grouped.by_name = [{n: lookup[id(s)] for n, s in names.items()} for names in self.by_name]
+            self._grouped._space(grouped.incidence, grouped.separators, Cells(grouped))
+        else:
+            self._build_full()
+        self.build_seconds = time.perf_counter() - started
+        if self._grouped is not None:
+            self._grouped.build_seconds = self.build_seconds
+
+    def _build_full(self, limit: int = MAX_ATOMS) -> None:
+        """The common refinement of every box (see :mod:`site_agent.audit`): the full model."""
+        atom_masks = refine(self._joined, self.domains, self._joint_values, limit)
         n_boxes, n_atoms = len(self.boxes), len(atom_masks)
         members = [_bits(mask, n_boxes) for mask in atom_masks]
         rows = np.concatenate(members) if members else np.zeros(0, int)
         cols = np.repeat(np.arange(n_atoms), [len(m) for m in members]) if members else np.zeros(0, int)
         # incidence[box, atom] = 1 when the atom lies in the box
-        self.incidence = sparse.csr_matrix((np.ones(len(rows)), (rows, cols)), shape=(n_boxes, n_atoms))
+        incidence = sparse.csr_matrix((np.ones(len(rows)), (rows, cols)), shape=(n_boxes, n_atoms))
+        self._space(incidence, None, None)
+        self._full = True
+
+    def _space(self, incidence: sparse.csr_matrix, separators: sparse.csr_matrix | None, cells: Cells | None) -> None:
+        """Set the atoms the system is written over (full model, or the grouped model and its separator rows)."""
+        self.incidence = incidence
+        self.cells = cells
+        n_boxes = incidence.shape[0]
         indptr, indices = self.incidence.indptr, self.incidence.indices
         self.box_index = [indices[indptr[j] : indptr[j + 1]] for j in range(n_boxes)]  # atoms of each box
         self.box_atoms = [frozenset(index.tolist()) for index in self.box_index]
@@ -92,30 +130,38 @@ class Audit:
             atoms = self.box_atoms[statement.box]
             statement.box = canonical.setdefault(atoms, statement.box) if atoms else None
         self.relation_rows = self._relation_rows()
+        if separators is not None and separators.shape[0]:
+            self.relation_rows = sparse.vstack([self.relation_rows, separators]).tocsr()
         self.structural_zero = self._structural_zeros()
         self._pool = _Pool()
-        self.build_seconds = time.perf_counter() - started
 
     def _relation_rows(self) -> sparse.csr_matrix:
         """Each relation ``total = sum(parts)`` as a homogeneous row over the atoms (duplicates dropped)."""
         n_atoms = self.incidence.shape[1]
-        unique: dict[tuple, sparse.csr_matrix] = {}
+        unique: dict[tuple, np.ndarray] = {}  # (atoms, coefficients) -> atoms
+        signatures: set[tuple] = set()  # the same boxes related again (every release repeats the flow's)
         for r, release in enumerate(self.releases):
             for relation in release.relations:
                 members = [self.by_name[r].get(n) for n in relation.members]
                 if any(m is None for m in members):
                     continue
+                signature = tuple(m.box for m in members if m is not None)
+                if signature in signatures:
+                    continue
+                signatures.add(signature)
                 vector = np.zeros(n_atoms)
                 for position, member in enumerate(members):
                     if member is not None and member.box is not None:
                         vector[self.box_index[member.box]] += 1.0 if position == 0 else -1.0
                 nonzero = np.flatnonzero(vector)
                 if len(nonzero):
-                    key = (tuple(nonzero), tuple(vector[nonzero]))
-                    unique.setdefault(key, sparse.csr_matrix(vector))
+                    unique.setdefault((tuple(nonzero), tuple(vector[nonzero])), nonzero)
         if not unique:
             return sparse.csr_matrix((0, n_atoms))
-        return sparse.vstack(list(unique.values())).tocsr()
+        rows = np.repeat(np.arange(len(unique)), [len(cols) for cols in unique.values()])
+        cols = np.concatenate(list(unique.values()))
+        data = np.concatenate([np.array(key[1]) for key in unique])
+        return sparse.csr_matrix((data, (rows, cols)), shape=(len(unique), n_atoms))
 
     def _structural_zeros(self) -> np.ndarray:
         """Atoms empty in every table that satisfies the relations alone: known to everyone, never a finding."""
@@ -172,9 +218,30 @@ class Audit:
         if _CONTROLLER is None:  # scanning the loaded libraries costs more than a small audit: once per process
             _CONTROLLER = ThreadpoolController()
         with _CONTROLLER.limit(limits=1, user_api="blas"):
-            return self._evaluate(
-                current_values, min_cell_size, allow_zero, protection_width, exact, current_rules or {}
-            )
+            rules = current_rules or {}
+            if self._grouped is not None:
+                clear = self._grouped._evaluate(
+                    current_values, min_cell_size, allow_zero, protection_width, exact, rules, clear_only=True
+                )
+                if clear is not None:
+                    return clear
+                if not self._full and not self._too_large:
+                    started = time.perf_counter()
+                    try:
+                        self._build_full(FULL_MAX_ATOMS)
+                    except AuditError:
+                        self._too_large = True
+                    self.build_seconds += time.perf_counter() - started
+                if self._too_large:
+                    # the full model would take minutes: the grouped model's own findings (exact; their
+                    # candidates come from its rows, so repairs may choose other counts than the full model)
+                    self._grouped.build_seconds = self.build_seconds
+                    result = self._grouped._evaluate(
+                        current_values, min_cell_size, allow_zero, protection_width, exact, rules
+                    )
+                    assert result is not None
+                    return result
+            return self._evaluate(current_values, min_cell_size, allow_zero, protection_width, exact, rules)
 
     def _bound_rows(
         self, current_values: Mapping[str, int | None], current_rules: Mapping[str, str], known: dict[int, int]
@@ -206,7 +273,11 @@ class Audit:
         protection_width: int,
         exact: bool,
         current_rules: Mapping[str, str],
-    ) -> AuditResult:
+        clear_only: bool = False,
+    ) -> AuditResult | None:
+        """The audit over this object's atoms. ``clear_only`` (the grouped model): None unless the answer is
+        clear (nothing found, and every suppressed count's interval too wide for integer programs to matter),
+        and every interval of the audited release an exact LP interval."""
         started = time.perf_counter()
         self._k = min_cell_size
         n_atoms = self.incidence.shape[1]
@@ -253,6 +324,8 @@ class Audit:
             self._atoms_pinned(system, unsafe, released_zero, findings, seen_regions)
             self._nested_pinned(system, unsafe, findings, seen_regions)
         if findings:
+            if clear_only:
+                return None
             targets = {}
 
         # 1. suppressed counts: the interval must hold at least `protection_width` whole numbers
@@ -274,6 +347,10 @@ class Audit:
                     else (0.0, math.inf)
                 )
                 margin = 2 if (exact and small) else 0  # leave room for the integer programs where they run
+                if clear_only:  # which counts the full model would give integer programs is not known here
+                    margin = 2 if exact else 0
+                    if release == self.current and not system.unbounded(vector):
+                        seen = None  # the audited release's intervals are reported: exact ones
                 if seen is not None and _whole_numbers(*seen) >= protection_width + margin:
                     low, high = seen  # an inner bound is enough: the count is at least this uncertain
                     exact_interval = False
@@ -282,6 +359,15 @@ class Audit:
                     self._pool.add(points)
             lo_int = max(0, math.ceil(low - 1e-6))
             hi_int = None if math.isinf(high) else math.floor(high + 1e-6)
+            if clear_only and hi_int is not None and hi_int - lo_int + 1 < protection_width + (2 if exact else 0):
+                # A narrow interval: the full model may run integer programs (on its small blocks). An earlier
+                # release's count is clear if even the integer interval is wide enough (the groups' integer
+                # tables are the full model's); the audited release's intervals are reported: the full model's.
+                if release == self.current or not exact_interval or residual < _TOL:
+                    return None
+                checked = system.milp_interval(vector, lo_int, hi_int, strict=True)
+                if checked is None or checked[1] - checked[0] + 1 < protection_width:
+                    return None
             if exact and small and exact_interval and hi_int is not None and residual >= _TOL:
                 if hi_int - lo_int + 1 < protection_width + 2:
                     lo_int, hi_int = system.milp_interval(vector, lo_int, hi_int)
@@ -300,6 +386,8 @@ class Audit:
                     )
                 )
 
+        if clear_only and findings:
+            return None
         return AuditResult(
             ok=not findings,
             intervals=intervals,
@@ -310,6 +398,7 @@ class Audit:
             seconds=time.perf_counter() - started + self.build_seconds,
             protection_width=protection_width,
             unrepairable=any(not f.candidates for f in findings),
+            grouped=self.cells is not None,
         )
 
     def _vector(self, box: int) -> np.ndarray:
@@ -343,11 +432,14 @@ class Audit:
         for block in system.blocks:
             if block.basis.shape[1]:
                 determined[block.atoms] = np.einsum("ij,ij->i", block.basis, block.basis) > 1 - 1e-6
+        live = ~system.zero
         for atom in np.flatnonzero(determined & ~self.structural_zero & ~released_zero):
             value = 0 if system.zero[atom] else int(round(system.solution[atom]))
             region = frozenset([int(atom)])
             if not unsafe(value) or region in seen:
                 continue
+            if self.cells is not None and value > 0 and not self.cells.whole(int(atom), live):
+                continue  # a union of full atoms, each of which other groups' counts leave open
             seen.add(region)
             vector = np.zeros(self.incidence.shape[1])
             vector[atom] = 1.0
@@ -393,6 +485,8 @@ class Audit:
                 cache[box] = frozenset(index[live_mask[index]].tolist())
             return cache[box]
 
+        if self.cells is not None:
+            self.cells.forget()
         order = np.argsort(key, kind="stable")
         start = 0
         while start < n_boxes:
@@ -411,7 +505,14 @@ class Audit:
                 last = int(np.searchsorted(sorted_values, sorted_values[gi] + self._k - 0.5))
                 for f in group[max(first, gi + 1) : last]:
                     difference = int(round(values[f] - values[g]))
-                    if not unsafe(difference) or not region_of(g) < region_of(f):
+                    if not unsafe(difference):
+                        continue
+                    if self.cells is not None and self.cells.box_group[f] != self.cells.box_group[g]:
+                        # boxes of two groups: nested as regions of live full atoms (see decompose.Cells)
+                        small, large = self._in_group(g), self._in_group(f)
+                        if not self.cells.inside(small, large, live_mask) or self.cells.inside(large, small, live_mask):
+                            continue
+                    elif not region_of(g) < region_of(f):
                         continue
                     region = region_of(f) - region_of(g)
                     if region in seen:
@@ -429,11 +530,16 @@ class Audit:
                         )
                     )
 
+    def _in_group(self, box: int) -> tuple[np.ndarray, int]:
+        return self.box_index[box], int(self.cells.box_group[box]) if self.cells is not None else 0
+
     def _box_label(self, box: int) -> str:
-        for statement in self.statements:
-            if statement.box == box:
-                return f"{statement.name} (release {self.releases[statement.release].label})"
-        return "?"
+        if not hasattr(self, "_labels"):
+            self._labels: dict[int, str] = {}
+            for statement in reversed(self.statements):  # the first statement of a box names it
+                if statement.box is not None:
+                    self._labels[statement.box] = f"{statement.name} (release {self.releases[statement.release].label})"
+        return self._labels.get(box, "?")
 
     def _names_overlapping(self, vector: np.ndarray) -> tuple[str, ...]:
         overlap = self.incidence @ vector
@@ -454,4 +560,5 @@ class Audit:
             boxes = {int(j) for j in np.flatnonzero(np.abs(overlap) > 0.5) if int(j) in self._suppressible}
         # by name, never by value: the choice must tell a recipient who knows this rule nothing about values
         # (the caller reorders by the analyses' priority, which does not look at values either)
-        return tuple(sorted(s.name for s in self.statements if s.release == self.current and s.box in boxes))
+        own = [s for s in self.by_name[self.current].values() if s.box is not None]
+        return tuple(sorted(s.name for s in own if s.box in boxes))

@@ -124,6 +124,7 @@ class AuditResult:
     seconds: float
     protection_width: int
     unrepairable: bool = False
+    grouped: bool = False  # answered by the grouped model (site_agent.audit.decompose), not the full refinement
 
     def to_dict(self) -> dict[str, Any]:
         return {

@@ -231,7 +231,10 @@ def _possible(variable: str, cell: Any, domains: Domains, named: frozenset[str])
 
 
 def refine(
-    boxes: Sequence[Box], domains: Domains | None = None, joint: Mapping[str, list[str]] | None = None
+    boxes: Sequence[Box],
+    domains: Domains | None = None,
+    joint: Mapping[str, list[str]] | None = None,
+    limit: int = MAX_ATOMS,
 ) -> list[int]:
     """Atoms of the common refinement, each as the bitmask of the boxes that contain it.
 
@@ -267,7 +270,7 @@ def refine(
                 state = (cell == ANALYSED) if variable == STATUS else analysed
                 new[(merged, state)] = None
         groups = new
-        if len(groups) > MAX_ATOMS:
+        if len(groups) > limit:
             raise AuditError(
                 "the requests answered by this site define too many distinct regions to audit; ask for fewer bands"
             )

@@ -155,10 +155,11 @@ class _System:
             high = math.inf
         return low, high, duals, points
 
-    def milp_interval(self, vector: np.ndarray, low: int, high: int) -> tuple[int, int]:
-        """Whole-number min and max (HiGHS branch and bound, 1 s per program); the LP bounds if time runs out."""
+    def milp_interval(self, vector: np.ndarray, low: int, high: int, strict: bool = False) -> tuple[int, int] | None:
+        """Whole-number min and max (HiGHS branch and bound, 1 s per program); the LP bounds if time runs out
+        (``strict``: None)."""
         if self.unbounded(vector):
-            return low, high
+            return None if strict else (low, high)
         int_low = int_high = 0
         for block in self.blocks_of(vector):
             c = vector[block.atoms]
@@ -176,7 +177,7 @@ class _System:
                     options={"time_limit": 1.0},
                 )
                 if result.status != 0 or result.fun is None:
-                    return low, high
+                    return None if strict else (low, high)
                 found.append(sign * float(result.fun))
             int_low += round(found[0])
             int_high += round(found[1])
