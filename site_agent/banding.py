@@ -237,3 +237,138 @@ def released_groups(
     before = [(bands[j].low, bands[j].high, int(values[j][0]), int(values[j][1])) for j in range(first)]  # type: ignore[arg-type]
     after = [(bands[j].low, bands[j].high, int(values[j][0]), int(values[j][1])) for j in range(last + 1, len(bands))]  # type: ignore[arg-type]
     return [*before, group, *after]
+
+
+# --- two scores at once (the paired comparison) -----------------------------------------------------------
+
+
+def _group_matrix(edges: Sequence[float], kept: set[float]) -> np.ndarray:
+    """Bands cut by ``edges`` × runs between the ``kept`` edges: 1 where a band lies in a run."""
+    run = np.concatenate([[0], np.cumsum([edge in kept for edge in edges])])
+    matrix = np.zeros((len(run), int(run[-1]) + 1), dtype=np.int64)
+    matrix[np.arange(len(run)), run] = 1
+    return matrix
+
+
+def grid_table(
+    table: np.ndarray, edges: tuple[Sequence[float], Sequence[float]], kept: tuple[set[float], set[float]]
+) -> np.ndarray:
+    """The joint table (bands of score A × bands of score B × classes) summed over the runs between kept edges."""
+    rows, columns = _group_matrix(edges[0], kept[0]), _group_matrix(edges[1], kept[1])
+    return np.einsum("ia,ijc,jb->abc", rows, np.asarray(table, dtype=np.int64), columns)
+
+
+def merge_grid(
+    table: np.ndarray,
+    edges: tuple[Sequence[float], Sequence[float]],
+    forced: tuple[Sequence[float], Sequence[float]],
+    min_cell_size: int,
+    allow_zero: bool = True,
+    allowed: tuple[frozenset[float] | None, frozenset[float] | None] = (None, None),
+    joint_forced: tuple[Sequence[float], Sequence[float]] = ((), ()),
+) -> tuple[tuple[frozenset[float], frozenset[float]], tuple[frozenset[float], frozenset[float]]]:
+    """Which edges of two scores to keep: for each score's own bands (its marginal table, safe per class), and
+    for the joint table (a subset of those, every cell safe per class).
+
+    ``table`` counts records per band of score A (rows, cut by ``edges[0]``), band of score B (columns, cut by
+    ``edges[1]``) and class. The ``forced`` edges are always among each score's own bands (the thresholds),
+    ``joint_forced`` among the joint table's; ``allowed[axis]``, when given, limits the other edges of that
+    axis (the release's shared score cuts, :class:`ScoreAxis`). Each score's own bands are its finest safe
+    partition alone (:func:`_partition` of its marginal). For the joint table, empty runs are merged into a
+    neighbour (no statistic changes) and each axis has a nested sequence of coarser partitions (each step
+    drops the edge between the fewest records: sparse tails merge first) and each single edge alone;
+    among the pairs whose every constrained cell is safe, the one with an edge on both axes that keeps the
+    most discrimination on the poorer axis (the smaller |AUC − ½| of each axis's runs, from its marginal
+    counts alone; then the most bands in all, then more for score A) is kept. A quadrant between
+    ``joint_forced`` edges whose count of a class is itself unsafe does not constrain the cuts (its cells of
+    that class are suppressed whatever they are), so the
+    forced edges alone always qualify. Returns ((own bands A, own bands B), (joint A, joint B)); the joint
+    edges are both empty when no pair with at least one edge on each axis qualifies (no joint table).
+    """
+    grid = np.asarray(table, dtype=np.int64)
+    forced_cuts = ({float(f) for f in forced[0]}, {float(f) for f in forced[1]})
+    kept: list[set[float]] = []
+    for axis in (0, 1):
+        axis_edges = [float(e) for e in edges[axis] if allowed[axis] is None or float(e) in allowed[axis]]
+        axis_edges = sorted(set(axis_edges) | forced_cuts[axis])
+        marginal = _coarse(grid.sum(axis=1 - axis), edges[axis], set(axis_edges))
+        found = _partition(marginal, axis_edges, sorted(forced_cuts[axis]), min_cell_size, allow_zero)
+        kept.append(found | forced_cuts[axis])
+    forced_cuts = ({float(f) for f in joint_forced[0]}, {float(f) for f in joint_forced[1]})
+    # A cell inside a quadrant (between forced cuts) whose own count is unsafe is suppressed whatever the cuts:
+    # it does not constrain them (no cut can make it safe).
+    quadrants = grid_table(grid, edges, forced_cuts)
+    quadrant_safe = (quadrants >= min_cell_size) | ((quadrants == 0) & allow_zero)
+    rows, columns = _group_matrix(edges[0], forced_cuts[0]), _group_matrix(edges[1], forced_cuts[1])
+    counted = np.einsum("ia,abc,jb->ijc", rows, quadrant_safe.astype(np.int64), columns)
+
+    def unsafe(cuts: tuple[set[float], set[float]]) -> int:
+        cells = grid_table(grid, edges, cuts)
+        constrained = grid_table(counted, edges, cuts) > 0
+        bad = ((cells > 0) & (cells < min_cell_size)) | ((cells == 0) & (not allow_zero))
+        return int(np.sum(bad & constrained))
+
+    # Each axis alone: a nested sequence of partitions, from its finest safe one down to the forced edges,
+    # each step dropping the edge between the fewest records (the sparse tails merge first). Then the pair of
+    # partitions with the most bands on the poorer axis (then the most bands in all, then more for score A)
+    # whose every constrained cell is safe.
+    sequences = []
+    for axis in (0, 1):
+        marginal = grid.sum(axis=(1 - axis, 2))
+        current = set(kept[axis])
+        # an empty run merged with its neighbour changes no statistic; the joint table needs no empty rows
+        while empty := [e for e in _beside_empty(edges[axis], current, marginal) if e not in forced_cuts[axis]]:
+            current.discard(empty[0])
+        sequence = [frozenset(current)]
+        while removable := sorted(current - forced_cuts[axis]):
+            runs = _group_matrix(edges[axis], current).T @ marginal
+            order = sorted(current)
+            edge = min(removable, key=lambda e: (int(runs[order.index(e)] + runs[order.index(e) + 1]), e))
+            current.discard(edge)
+            sequence.append(frozenset(current))
+        # and every single edge alone (a 2x2 joint table cut anywhere on this axis)
+        sequence += [frozenset({*forced_cuts[axis], e}) for e in sorted(kept[axis] - forced_cuts[axis])]
+        # a partition with an empty run tells nothing more than one without it
+        sequences.append([c for c in dict.fromkeys(sequence) if not _beside_empty(edges[axis], set(c), marginal)])
+    # How much of each score's discrimination a partition keeps: the Mann-Whitney AUC of its runs (ties 1/2),
+    # from the marginal counts alone (never from the joint cells, so the choice does not favour a correlation).
+    separation = [
+        {cuts: _banded_auc(_coarse(grid.sum(axis=1 - axis), edges[axis], set(cuts))) for cuts in sequences[axis]}
+        for axis in (0, 1)
+    ]
+    best: tuple | None = None
+    for first in sequences[0]:
+        for second in sequences[1]:
+            kept_auc = min(separation[0][first], separation[1][second])
+            key = (bool(first and second), round(kept_auc, 12), len(first) + len(second), len(first))
+            if best is not None and key <= best[0]:
+                continue
+            if unsafe((set(first), set(second))) == 0:
+                best = (key, first, second)
+    assert best is not None  # the forced edges alone leave only cells that do not constrain
+    if not (best[1] and best[2]):
+        # one band on an axis: the joint table would only repeat the other score's bands; none is kept
+        return (frozenset(kept[0]), frozenset(kept[1])), (frozenset(), frozenset())
+    return (frozenset(kept[0]), frozenset(kept[1])), (best[1], best[2])
+
+
+def _banded_auc(table: np.ndarray) -> float:
+    """|AUC − ½| of bands (rows) × [positive, negative] counts, records in one band tied; 0 without both."""
+    positive, negative = table[:, 0].astype(float), table[:, 1].astype(float)
+    if positive.sum() == 0 or negative.sum() == 0:
+        return 0.0
+    below = np.cumsum(negative) - negative
+    auc = float(np.sum(positive * (below + 0.5 * negative)) / (positive.sum() * negative.sum()))
+    return abs(auc - 0.5)
+
+
+def _beside_empty(edges: Sequence[float], kept: set[float], marginal: np.ndarray) -> list[float]:
+    """The kept edges next to a run between kept edges that holds no record."""
+    runs = _group_matrix(edges, kept).T @ marginal
+    order = sorted(kept)
+    return [e for p, e in enumerate(order) if runs[p] == 0 or runs[p + 1] == 0]
+
+
+def _coarse(marginal: np.ndarray, edges: Sequence[float], kept: set[float]) -> np.ndarray:
+    """A marginal table over the bands cut by ``edges``, summed over the runs between the ``kept`` edges."""
+    return _group_matrix(edges, kept).T @ marginal

@@ -210,7 +210,7 @@ def check_definitions(counts: CountSet, policy: Any) -> None:
 # Which parts of a release are cut back first when something must be withheld beyond the minimum cell size
 # (issue: the primary table comes first). Earlier in this list = cut back first; the order does not look at
 # any value, so the choice tells a recipient nothing about the data.
-CUT_ORDER = ("subgroups", "margin", "agreement", "paired", "calibration", "roc", "confusion")
+CUT_ORDER = ("subgroups", "margin", "paired", "agreement", "calibration", "roc", "confusion")
 CUT_RULE = (
     "otherwise the site's disclosure control would have withheld cells of the primary 2x2 table "
     "(minimum cell size and differencing across every release of the site)"

@@ -164,6 +164,8 @@ def inner_analysis(name: str) -> str:
 def count_words(count: dict[str, Any]) -> str:
     """A count's definition in words: "analysed, with the condition, score 0.5 or more"."""
     analysis = inner_analysis(str(count.get("name", "")))
+    if analysis == "paired" and re.search(r"\.(joint|model_band|compare_band)\[", str(count.get("name", ""))):
+        analysis = "paired bands"  # score bands, not screen results
     words = [condition_words(c, analysis) for c in count.get("where", [])]
     if words == ["analysed"]:
         return "participants analysed"

@@ -8,10 +8,11 @@ request) and feeds every analysis; :func:`collect_counts` gathers the named coun
 
 from __future__ import annotations
 
+import math
 from collections.abc import Callable, Sequence
 from typing import Any
 
-from federation.protocol import AnalysisSpec, Bundle, Schema, ValidationToolError
+from federation.protocol import AnalysisSpec, Bundle, Schema, ValidationToolError, make_scorer
 
 from ..banding import ScoreAxis
 from ..counts import CountDef, CountSet
@@ -86,6 +87,7 @@ def build_analyses(
         if "paired" in by_name:
             paired = by_name["paired"]
             forced.append(paired.thresholds[0] if paired.thresholds else manifest.thresholds[0])
+            edges.extend(paired_edges(bundle, bands_of("roc") if "roc" in by_name else ()))
         strata = [
             (feature.name, levels, lambda chunk, f=feature, e=cuts: level_index(f, e, chunk.columns[f.name]))
             for feature, cuts, levels in subgroup_variables
@@ -110,7 +112,12 @@ def build_analyses(
                 raise ValidationToolError("request: the paired comparison needs the bundle the request names")
             own = spec.thresholds[0] if spec.thresholds else manifest.thresholds[0]
             other = spec.thresholds[1] if len(spec.thresholds) > 1 else compare.manifest.thresholds[0]
-            return Paired(own, other, compare.sha256)
+            roc_bands = tuple(by_name["roc"].bands) if "roc" in by_name else ()
+            edges = paired_edges(bundle, roc_bands)
+            compare_edges = paired_edges(
+                compare, roc_bands if compare.manifest.score_kind == manifest.score_kind else ()
+            )
+            return Paired(own, other, compare.sha256, edges, compare_edges, axis)
         raise ValidationToolError(f"request: unknown analysis {name!r}")
 
     analyses = [make(name) for name in ORDER if name in by_name and name != "subgroups"]
@@ -119,6 +126,28 @@ def build_analyses(
         variables = [(feature, cuts) for feature, cuts, _ in subgroup_variables]
         analyses.append(Subgroups(variables, lambda scope: [make(name, scope) for name in inner]))
     return analyses
+
+
+def paired_edges(bundle: Bundle, requested: tuple[float, ...] = ()) -> tuple[float, ...]:
+    """Where the paired comparison's joint table cuts a model's score, before merging: the ROC bands the
+    request names, else 0.05 steps for a probability, else for a points scorecard every whole number of its
+    attainable range when that range has whole ends and spans at most 20 points, or 19 edges evenly across
+    it (rounded up to whole numbers when the ends are whole), else the bundle's thresholds. Depends only on the
+    request and the model, never on a record."""
+    if requested:
+        return tuple(requested)
+    if bundle.manifest.score_kind == "probability":
+        return DEFAULT_PROBABILITY_EDGES
+    scorer = make_scorer(bundle) if bundle.manifest.model_format != "onnx" else None
+    low, high = getattr(scorer, "low", -math.inf), getattr(scorer, "high", math.inf)
+    if not (math.isfinite(low) and math.isfinite(high)) or high <= low:
+        return tuple(bundle.manifest.thresholds)
+    whole = float(low).is_integer() and float(high).is_integer()
+    if whole and high - low <= 20:
+        return tuple(float(e) for e in range(int(low) + 1, int(high) + 1))
+    steps = [low + (high - low) * j / 20 for j in range(1, 20)]
+    edges = sorted({float(math.ceil(e)) if whole else round(e, 6) for e in steps})
+    return tuple(e for e in edges if low < e <= high)
 
 
 def _subgroup_variables(spec: AnalysisSpec | None, bundle: Bundle) -> list[tuple[Any, tuple[float, ...], int]]:

@@ -85,7 +85,7 @@ def test_a_band_outside_the_schema_range_is_known_to_be_empty(tmp_path: Path) ->
 
 def test_a_study_asking_for_everything_keeps_the_primary_table(tmp_path: Path, capsys) -> None:
     """Issue 13, item 1: every analysis, a second reference that is often blank and a paired comparison, at a
-    site of 400 participants. The primary 2x2 table and the flow stay whole; what had to give is cut back
+    site of 400 participants. The primary 2x2 table and the flow stay whole; whatever had to give is cut back
     in words (no count), and the hidden small group still cannot be worked out."""
     data = records(small=SMALL)
     rng = np.random.default_rng(5)
@@ -122,8 +122,19 @@ def test_a_study_asking_for_everything_keeps_the_primary_table(tmp_path: Path, c
         assert not any(ch.isdigit() for ch in cut["rule"].replace("2x2", "") + cut["action"])  # words, no count
     low, high = oracle_interval(world, in_small_band)
     assert high - low >= 1, (low, high)
-    # The coordinator is told the same in words: analyze (terminal and JSON) and the report's flow section.
-    assert release.get("cut_back"), "this request costs the site more than the primary table allows"
+
+
+def test_what_a_site_cut_back_reaches_the_coordinator_in_words(tmp_path: Path, capsys) -> None:
+    """Issue 13, item 1: a paired comparison of two scores that are the age ("24 or more" and "30 or more")
+    costs the primary table, so the site cuts the paired comparison back; analyze (terminal and JSON) and the
+    report's flow section say so in the site's words, never a count."""
+    world = World(tmp_path, records(small=SMALL))
+    for name, threshold in (("age24", 24), ("age30", 30)):
+        card = {"kind": "points", "weights": {"age_months": 1}}
+        world.scorecard(name, card, threshold, lambda a, s, i: float(a))
+    release = world.ask("age24", "one", "--analyses", "confusion,paired", compare="age30")
+    assert release is not None and [cut["analysis"] for cut in release.get("cut_back", [])] == ["paired"]
+    assert release["results"]["confusion"][0]["suppressed"] == []
     store = str(tmp_path / "study.db")
     assert federation(["enrol", "--store", store, "--site-id", "site-a", "--key", str(world.site / "site.pub")]) == 0
     assert federation(["ingest", "--store", store, str(tmp_path / "release-0.json")]) == 0
@@ -137,6 +148,7 @@ def test_a_study_asking_for_everything_keeps_the_primary_table(tmp_path: Path, c
     line = next(text for text in summary.splitlines() if text.startswith("  site-a "))
     for cut in release["cut_back"]:
         assert f"{cut['analysis']}: {cut['action']}" in line and cut["rule"] in summary
+        assert not any(ch.isdigit() for ch in cut["rule"].replace("2x2", "") + cut["action"])  # words, no count
     assert federation(["report", "--store", store, "--out", str(tmp_path / "report.html")]) == 0
     page = (tmp_path / "report.html").read_text()
     assert "Cut back by the sites" in page and all(html.escape(cut["rule"]) in page for cut in release["cut_back"])
@@ -170,3 +182,123 @@ def test_derived_statistics_tell_nothing_the_released_counts_do_not(tmp_path: Pa
         assert calibration["expected"] == pytest.approx(total, rel=1e-12)
     low, high = oracle_interval(world, in_small_band)
     assert high - low >= 1, (low, high)
+
+
+def _delong_pairs(positive: np.ndarray, negative: np.ndarray) -> tuple[float, np.ndarray, np.ndarray]:
+    """DeLong et al. (1988) straight from the definition, over all m x n pairs (psi = 1, 1/2 on a tie, 0):
+    the AUC and the structural components V10 (per positive) and V01 (per negative)."""
+    psi = (positive[:, None] > negative[None, :]) + 0.5 * (positive[:, None] == negative[None, :])
+    return float(psi.mean()), psi.mean(axis=1), psi.mean(axis=0)
+
+
+def _as_records(bands: list[dict], total_positive: int, total_negative: int) -> tuple[list[int], list[float]]:
+    """(outcome, band index) per record, as a recipient reads each model's released bands: a run from the
+    first to the last band with a withheld count is one band holding the totals minus the other bands."""
+    hidden = [j for j, b in enumerate(bands) if b["positive"] is None or b["negative"] is None]
+    groups = [(b["positive"], b["negative"]) for b in bands]
+    if hidden:
+        first, last = hidden[0], hidden[-1]
+        outside = groups[:first] + groups[last + 1 :]
+        middle = (total_positive - sum(p for p, _ in outside), total_negative - sum(n for _, n in outside))
+        groups = groups[:first] + [middle] + groups[last + 1 :]
+    labels, index = [], []
+    for j, (p, n) in enumerate(groups):
+        labels += [1] * p + [0] * n
+        index += [float(j)] * (p + n)
+    return labels, index
+
+
+def test_a_crafted_comparison_model_gives_nothing_through_the_paired_aucs(tmp_path: Path) -> None:
+    """Item 5 for the paired comparison (R11 in docs/threat-model.md): the comparison model is a logistic
+    scorecard whose risk is about 1 inside the small age band only. From record-level scores its AUC would be
+    1/2 + s/(2m), which gives the band's count s with the condition exactly (played below with scikit-learn on
+    the records). The release computes every paired statistic from its own bands instead: each is recomputed
+    here from the release file alone (scikit-learn's roc_auc_score and the DeLong structural components over
+    all pairs), no other statistic travels, and the small group stays uncertain for a recipient who holds
+    every released count (the integer programs of tests/adversarial/world.py)."""
+    world = World(tmp_path, records(small=SMALL))
+    world.scorecard(
+        "screen",
+        {"kind": "points", "points": {"item": {"1": 1, "2": 2, "3": 3}}},
+        2,
+        lambda a, s, i: float(i),
+    )
+    inside = {str(age): 12.0 for age in range(24, 30)}
+
+    def crafted(a: int, s: str, i: int) -> float:
+        return float(1 / (1 + np.exp(-(-6.0 + (12.0 if 24 <= a < 30 else 0.0)))))
+
+    world.scorecard("crafted", {"kind": "logistic", "intercept": -6.0, "points": {"age_months": inside}}, 0.5, crafted)
+    # What a record-level AUC of the comparison model would have told: s = (2 AUC - 1) m, exactly.
+    data = world.data
+    outcome = np.array([o for *_, o in data])
+    record_level = roc_auc_score(outcome, [crafted(a, s, i) for a, s, i, _ in data])
+    assert round((2 * record_level - 1) * outcome.sum()) == len(SMALL)
+
+    release = world.ask("screen", "s", "--analyses", "confusion,paired", compare="crafted")
+    assert release is not None
+    paired = release["results"]["paired"]
+    statistics = {"auc_model", "auc_compare", "auc_model_se", "auc_compare_se", "auc_correlation", "auc_covariance"}
+    statistics |= {"auc_difference", "auc_difference_se", "auc_difference_ci_low", "auc_difference_ci_high"}
+    counts = {"diseased", "non_diseased", "model_bands", "compare_bands", "joint"}
+    words = {"compare_bundle_sha256", "threshold", "compare_threshold", "rule", "bands_rule", "method"}
+    structure = {"edges", "joint_bands", "suppressed", "suppressed_by"}
+    assert set(paired) == statistics | counts | words | structure  # nothing else travels
+    # the crafted model's one small band is merged away: one band, so no AUC at all (it would restate totals)
+    assert len(paired["compare_bands"]) == 1 and paired["auc_compare"] is None
+    assert paired["auc_model"] is not None
+    _check_paired_statistics(paired)
+    low, high = oracle_interval(world, in_small_band)
+    assert high - low >= 1, (low, high)
+    # An honest comparison model at a fresh site: its statistics are recomputed the same way.
+    world = World(tmp_path / "honest", records(small=SMALL))
+    world.scorecard("screen", {"kind": "points", "points": {"item": {"1": 1, "2": 2, "3": 3}}}, 2, lambda a, s, i: i)
+    world.scorecard(
+        "other",
+        {"kind": "logistic", "intercept": -2.0, "weights": {"item": 0.9}, "points": {"sex": {"f": 0.4}}},
+        0.5,
+        lambda a, s, i: float(1 / (1 + np.exp(-(-2.0 + 0.9 * i + (0.4 if s == "f" else 0.0))))),
+    )
+    second = world.ask("screen", "t", "--analyses", "confusion,paired", compare="other")
+    assert second is not None and second["results"]["paired"]["auc_compare"] is not None
+    _check_paired_statistics(second["results"]["paired"])
+    low, high = oracle_interval(world, in_small_band)
+    assert high - low >= 1, (low, high)
+
+
+def _check_paired_statistics(paired: dict) -> None:
+    """Every statistic of a released paired section, recomputed from its counts alone."""
+    m, n = paired["diseased"]["total"], paired["non_diseased"]["total"]
+    found = {}
+    for which in ("model", "compare"):
+        labels, index = _as_records(paired[f"{which}_bands"], m, n)
+        found[which] = _delong_pairs(
+            np.array([x for x, y in zip(index, labels, strict=True) if y == 1]),
+            np.array([x for x, y in zip(index, labels, strict=True) if y == 0]),
+        )
+        if paired[f"auc_{which}"] is not None:
+            assert paired[f"auc_{which}"] == pytest.approx(roc_auc_score(labels, index), abs=1e-12)
+            auc, v10, v01 = found[which]
+            se = np.sqrt(v10.var(ddof=1) / len(v10) + v01.var(ddof=1) / len(v01))
+            assert paired[f"auc_{which}_se"] == pytest.approx(se, rel=1e-9)
+    if paired["auc_correlation"] is not None:  # from the joint table: every cell is released
+        joint = paired["joint"]
+        rows, columns, labels = [], [], []
+        for group, label in (("diseased", 1), ("non_diseased", 0)):
+            for i, row in enumerate(joint[group]):
+                for j, cell in enumerate(row):
+                    rows += [i] * cell
+                    columns += [j] * cell
+                    labels += [label] * cell
+        rows_a, columns_a, labels_a = np.array(rows, float), np.array(columns, float), np.array(labels)
+        a = _delong_pairs(rows_a[labels_a == 1], rows_a[labels_a == 0])
+        b = _delong_pairs(columns_a[labels_a == 1], columns_a[labels_a == 0])
+        covariance = np.cov(a[1], b[1])[0, 1] / m + np.cov(a[2], b[2])[0, 1] / n
+        variance = [x[1].var(ddof=1) / m + x[2].var(ddof=1) / n for x in (a, b)]
+        assert paired["auc_correlation"] == pytest.approx(covariance / np.sqrt(variance[0] * variance[1]), rel=1e-9)
+        se = (paired["auc_model_se"], paired["auc_compare_se"])
+        assert paired["auc_covariance"] == pytest.approx(paired["auc_correlation"] * se[0] * se[1], rel=1e-9)
+        difference_se = np.sqrt(se[0] ** 2 + se[1] ** 2 - 2 * paired["auc_covariance"])
+        assert paired["auc_difference_se"] == pytest.approx(difference_se, rel=1e-9)
+    else:
+        assert paired["auc_difference_se"] is None and paired["auc_covariance"] is None

@@ -132,6 +132,7 @@ class World:
         assert code == 0
         release = json.loads(out.read_text())
         release["_bundle"] = bundle
+        release["_compare"] = compare
         self.releases.append(release)
         return release
 
@@ -150,9 +151,12 @@ def _in_band(value: float, band: dict[str, Any] | None) -> bool:
     return (low is None or value >= low) and (high is None or value < high)
 
 
-def facts_of(release: dict[str, Any], score: Score, k: int, allow_zero: bool) -> list[tuple[Callable, int | tuple]]:
+def facts_of(
+    release: dict[str, Any], score: Score, k: int, allow_zero: bool, compare: Score | None = None
+) -> list[tuple[Callable, int | tuple]]:
     """(membership test over record types, value or (low, high) from the withheld rule) for every count the
-    release shows or withholds, read from the release file alone."""
+    release shows or withholds, read from the release file alone (``compare``: the comparison model of a
+    paired release)."""
     facts: list[tuple[Callable, Any]] = []
     low_small = 1 if allow_zero else 0
 
@@ -209,7 +213,37 @@ def facts_of(release: dict[str, Any], score: Score, k: int, allow_zero: bool) ->
             for klass, outcome in (("positive", 1), ("negative", 0)):
                 test = lambda c, b=band, o=outcome: c[3] == o and _in_band(score(c[0], c[1], c[2]), b)  # noqa: E731
                 add(test, band[klass], by.get(f"band[{j}].{klass}"))
+    paired = results.get("paired")
+    if paired and compare is not None:
+        _paired_facts(paired, score, compare, add)
     return facts
+
+
+def _paired_facts(paired: dict[str, Any], score: Score, compare: Score, add: Callable) -> None:
+    """The paired 2x2 tables, each model's own bands and the joint table, through ``add``."""
+    by = paired.get("suppressed_by", {})
+    t, u = paired["threshold"], paired["compare_threshold"]
+    for group, klass, outcome in (("diseased", "positive", 1), ("non_diseased", "negative", 0)):
+        for a, b in itertools.product((1, 0), (1, 0)):
+
+            def test(c: tuple, a: int = a, b: int = b, o: int = outcome) -> bool:
+                own = score(c[0], c[1], c[2]) >= t
+                other = compare(c[0], c[1], c[2]) >= u
+                return c[3] == o and own == bool(a) and other == bool(b)
+
+            add(test, paired[group][f"model{a}_compare{b}"], by.get(f"{klass}.model{a}_compare{b}"))
+        for which, model in (("model", score), ("compare", compare)):
+            for j, band in enumerate(paired.get(f"{which}_bands", [])):
+                test = lambda c, b=band, o=outcome, f=model: c[3] == o and _in_band(f(c[0], c[1], c[2]), b)  # noqa: E731
+                add(test, band[klass], by.get(f"{klass}.{which}_band[{j}]"))
+        rows, columns = paired.get("joint_bands", {}).get("model", []), paired.get("joint_bands", {}).get("compare", [])
+        for i, row in enumerate(rows):
+            for j, column in enumerate(columns):
+
+                def test(c: tuple, r: dict = row, q: dict = column, o: int = outcome) -> bool:
+                    return c[3] == o and _in_band(score(c[0], c[1], c[2]), r) and _in_band(compare(c[0], c[1], c[2]), q)
+
+                add(test, paired["joint"][group][i][j], by.get(f"{klass}.joint[{i}][{j}]"))
 
 
 def oracle_interval(world: World, region: Callable[[tuple], bool]) -> tuple[int, int]:
@@ -219,7 +253,8 @@ def oracle_interval(world: World, region: Callable[[tuple], bool]) -> tuple[int,
     rows, lows, highs = [], [], []
     for release in world.releases:
         _, score, _ = world.bundles[release["_bundle"]]
-        for test, value in facts_of(release, score, world.k, world.allow_zero):
+        compare = world.bundles[release["_compare"]][1] if release.get("_compare") else None
+        for test, value in facts_of(release, score, world.k, world.allow_zero, compare):
             rows.append([1.0 if test(c) else 0.0 for c in cells])
             low, high = (value, value) if isinstance(value, int) else value
             lows.append(low)

@@ -115,8 +115,9 @@ def _expected(root: Path) -> dict[str, dict]:
                 "fn": int((~called & truth).sum()),
                 "tn": int((~called & ~truth).sum()),
             },
-            "auc_model": roc_auc_score(truth, score),
-            "auc_compare": roc_auc_score(truth, points),
+            "truth": truth,
+            "score": score,
+            "points": points.astype(float),
             "long_called": points >= LONG_THRESHOLD,
             "n": len(frame),
         }
@@ -125,6 +126,16 @@ def _expected(root: Path) -> dict[str, dict]:
             entry["kappa_reference_reference2"] = cohen_kappa_score(truth[both], frame["reference2"].to_numpy()[both])
         out[site_dir.name] = entry
     return out
+
+
+def _band_of(scores: np.ndarray, bands: list[dict]) -> np.ndarray:
+    """Each record's released band (low <= score < high), the bands from the first to the last with a withheld
+    count read as one (docs/formats.md, "Derived statistics")."""
+    index = np.searchsorted([b["low"] for b in bands[1:]], scores, side="right")
+    hidden = [j for j, b in enumerate(bands) if b["positive"] is None or b["negative"] is None]
+    if hidden:
+        index = np.where((index >= hidden[0]) & (index <= hidden[-1]), hidden[0], index)
+    return index
 
 
 def test_demo_runs_every_analysis_and_prints_them_in_the_paper_order(demo) -> None:
@@ -207,19 +218,28 @@ def test_paired_comparison_and_agreement_match_scikit_learn(demo) -> None:
     for release in releases:
         site_id = release["site_id"]
         paired = release["results"]["paired"]
-        if paired.get("auc_model") is not None:  # withheld at the small site
-            assert paired["auc_model"] == pytest.approx(expected[site_id]["auc_model"], abs=1e-6)
-            assert paired["auc_compare"] == pytest.approx(expected[site_id]["auc_compare"], abs=1e-9)
+        truth = expected[site_id]["truth"]
+        for key, scores in (("model", expected[site_id]["score"]), ("compare", expected[site_id]["points"])):
+            if paired.get(f"auc_{key}") is not None:  # withheld where a class total is
+                # the AUC of the released bands: scikit-learn on each record's band, a run of withheld bands one
+                assert paired[f"auc_{key}"] == pytest.approx(
+                    roc_auc_score(truth, _band_of(scores, paired[f"{key}_bands"])), abs=1e-6
+                )
         agreement = release["results"]["agreement"]
         if agreement.get("available"):
             kappa = agreement["tables"][0]["pairs"]["reference_reference2"]["kappa"]
             if kappa is not None:
                 assert kappa == pytest.approx(expected[site_id]["kappa_reference_reference2"], abs=1e-9)
     assert sum(r["results"]["agreement"].get("available", False) for r in releases) == 5
+    # The comparison model's AUC comes from its own released bands at most sites; the SE of the difference needs
+    # the joint banded table, whose corners are too sparse at these sites' sizes for k = 10 (two correlated
+    # scores), so no site gives it and the pooled difference is not estimated (docs/formats.md, "Derived
+    # statistics"): a record-level covariance would be a further fact about the records.
+    assert sum(r["results"]["paired"]["auc_compare"] is not None for r in releases) >= 2
+    assert all(r["results"]["paired"]["auc_difference_se"] is None for r in releases)
     analysis = json.loads((root / "results" / "analysis.json").read_text())
     auc = analysis["paired"]["auc_difference"]
-    # the full-length instrument discriminates better at every site, so the pooled difference is below zero
-    assert auc["ci_high"] < 0 and len(auc["sites_pooled"]) >= 7
+    assert auc["status"] == "not estimated" and "at least 2 sites" in auc["reason"]
 
 
 def test_export_tables_parse_with_pandas_and_agree_with_the_flow(demo) -> None:

@@ -10,6 +10,7 @@ from sklearn.metrics import roc_auc_score
 
 from site_agent.analyses import Paired, Roc
 from site_agent.analyses.histogram import ScoreHistogram, mann_whitney_delong
+from site_agent.analyses.roc import DEFAULT_PROBABILITY_EDGES
 
 from .conftest import Cancer
 from .helpers import Policy, feed, statistics
@@ -85,21 +86,81 @@ def test_delong_from_the_released_bands_matches_direct_computation(cancer: Cance
     assert derived["roc.auc_se"] == pytest.approx(math.sqrt(variance), rel=1e-9)
 
 
-def test_paired_delong_covariance_matches_direct_computation(cancer: Cancer) -> None:
-    paired = feed(Paired(0.5, 0.5, "0" * 64), cancer.scores, cancer.outcome, pieces=4, compare=cancer.compare_scores)
-    derived = {name: value for name, (value, _) in paired.counts(Policy()).derived.items()}
-    diseased = cancer.outcome == 1
-    a = structural_components(cancer.scores[diseased], cancer.scores[~diseased])
-    b = structural_components(cancer.compare_scores[diseased], cancer.compare_scores[~diseased])
-    # DeLong et al. 1988, eq. for the covariance of two correlated AUCs: S10_ab/m + S01_ab/n.
-    s10 = np.cov(a[2], b[2], ddof=1)[0, 1]
-    s01 = np.cov(a[3], b[3], ddof=1)[0, 1]
-    covariance = s10 / diseased.sum() + s01 / (~diseased).sum()
-    assert derived["paired.auc_model"] == pytest.approx(a[0], abs=1e-12)
-    assert derived["paired.auc_compare"] == pytest.approx(b[0], abs=1e-12)
-    assert derived["paired.auc_covariance"] == pytest.approx(covariance, rel=1e-9)
-    assert derived["paired.auc_model_se"] == pytest.approx(math.sqrt(a[1]), rel=1e-9)
-    assert derived["paired.auc_difference_se"] == pytest.approx(math.sqrt(a[1] + b[1] - 2 * covariance), rel=1e-9)
+def _index(values: np.ndarray, edges: tuple[float, ...]) -> np.ndarray:
+    """Each record's band (0, 1, ...) among the bands cut by ``edges`` (low <= value < high)."""
+    return np.searchsorted(np.asarray(edges, dtype=np.float64), values, side="right").astype(np.float64)
+
+
+def _correlated_scores(n: int = 3000, seed: int = 1) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Two correlated logistic risk scores of one invented condition (prevalence about 10%)."""
+    rng = np.random.default_rng(seed)
+    outcome = (rng.random(n) < 0.1).astype(np.int64)
+    shared = rng.normal(size=n)
+    model = 1 / (1 + np.exp(-(-1.5 + 1.6 * outcome + 0.8 * shared + 0.5 * rng.normal(size=n))))
+    compare = 1 / (1 + np.exp(-(-1.5 + 1.2 * outcome + 0.8 * shared + 0.6 * rng.normal(size=n))))
+    return model, compare, outcome
+
+
+@pytest.mark.parametrize("k", [1, 10])
+def test_paired_statistics_are_those_of_the_released_bands(cancer: Cancer, k: int) -> None:
+    """Every paired statistic is recomputed from the bands the release shows, by code that shares nothing with
+    the site's: each record replaced by its band index (ties within a band), scikit-learn's roc_auc_score for
+    the AUCs, the DeLong (1988) structural components over all m x n pairs for the variances, and the same
+    over the joint cells for the AUCs' correlation. k = 1 on scikit-learn's breast-cancer data (nothing to
+    merge); k = 10 on 3,000 invented records with two correlated scores (bands merged, a joint table of
+    coarser bands)."""
+    scores, compare_scores, outcome = (
+        (cancer.scores, cancer.compare_scores, cancer.outcome) if k == 1 else _correlated_scores()
+    )
+    paired = Paired(0.5, 0.5, "0" * 64, DEFAULT_PROBABILITY_EDGES, DEFAULT_PROBABILITY_EDGES)
+    feed(paired, scores, outcome, pieces=4, compare=compare_scores)
+    counts = paired.counts(Policy(min_cell_size=k))
+    derived = {name.removeprefix("paired."): value for name, value in statistics(counts).items()}
+    diseased = outcome == 1
+    own = [
+        _index(s, tuple(b.low for b in bands[1:]))
+        for s, bands in zip((scores, compare_scores), paired.own, strict=True)
+    ]
+    assert paired.has_joint
+    joint = [_index(s, edges) for s, edges in zip((scores, compare_scores), paired.kept, strict=True)]
+    for which, index in (("model", own[0]), ("compare", own[1])):
+        auc, variance, _, _ = structural_components(index[diseased], index[~diseased])
+        assert derived[f"auc_{which}"] == pytest.approx(roc_auc_score(outcome, index), abs=1e-12)
+        assert derived[f"auc_{which}"] == pytest.approx(auc, abs=1e-12)
+        assert derived[f"auc_{which}_se"] == pytest.approx(math.sqrt(variance), rel=1e-9)
+    # DeLong et al. 1988: Cov = S10_ab/m + S01_ab/n over the structural components of the two (joint) indices.
+    a = structural_components(joint[0][diseased], joint[0][~diseased])
+    b = structural_components(joint[1][diseased], joint[1][~diseased])
+    m, n = diseased.sum(), (~diseased).sum()
+    covariance = np.cov(a[2], b[2], ddof=1)[0, 1] / m + np.cov(a[3], b[3], ddof=1)[0, 1] / n
+    correlation = covariance / math.sqrt(a[1] * b[1])
+    assert derived["auc_correlation"] == pytest.approx(correlation, rel=1e-9)
+    se_model, se_compare = derived["auc_model_se"], derived["auc_compare_se"]
+    assert derived["auc_covariance"] == pytest.approx(correlation * se_model * se_compare, rel=1e-9)
+    difference_se = math.sqrt(se_model**2 + se_compare**2 - 2 * correlation * se_model * se_compare)
+    assert derived["auc_difference"] == pytest.approx(derived["auc_model"] - derived["auc_compare"], abs=1e-15)
+    assert derived["auc_difference_se"] == pytest.approx(difference_se, rel=1e-9)
+    assert derived["auc_difference_ci_high"] - derived["auc_difference"] == pytest.approx(1.959964 * difference_se)
+    if k == 1:  # nothing to merge: each model's bands are the requested ones (the comparison's threshold no edge)
+        assert len(paired.own[0]) == len(paired.own[1]) + 1 == len(DEFAULT_PROBABILITY_EDGES) + 1
+        return
+    shown = [v for name, v in counts.values.items() if "_band[" in name or ".joint[" in name]
+    assert all(v == 0 or v >= k for v in shown)  # every class total and threshold side is large here
+    assert 2 <= len(paired.kept[0]) + 1 < len(paired.own[0])  # the joint table is coarser than the own bands
+    # near the AUCs of the individual scores (scikit-learn), and a correlation below theirs (ties)
+    assert derived["auc_model"] == pytest.approx(roc_auc_score(outcome, scores), abs=0.02)
+    assert derived["auc_compare"] == pytest.approx(roc_auc_score(outcome, compare_scores), abs=0.02)
+
+
+def test_a_withheld_joint_cell_withholds_the_correlation_but_not_the_aucs(cancer: Cancer) -> None:
+    paired = Paired(0.5, 0.5, "0" * 64, DEFAULT_PROBABILITY_EDGES, DEFAULT_PROBABILITY_EDGES)
+    feed(paired, cancer.scores, cancer.outcome, compare=cancer.compare_scores)
+    counts = paired.counts(Policy(min_cell_size=10))
+    released = dict(counts.values)
+    released["paired.positive.joint[0][0]"] = None
+    derived = {name: (value(released) if callable(value) else value) for name, (value, _) in counts.derived.items()}
+    assert derived["paired.auc_model"] is not None and derived["paired.auc_compare_se"] is not None
+    assert derived["paired.auc_correlation"] is None and derived["paired.auc_difference_se"] is None
 
 
 def test_histogram_coarsens_past_its_cap_and_says_so() -> None:
