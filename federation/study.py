@@ -159,7 +159,8 @@ def costly_analyses(specs: tuple[AnalysisSpec, ...]) -> list[str]:
         if spec.name == "paired":
             lines.append(
                 "paired: the second model's table overlaps the primary table record by record; the sites' audit "
-                "may cut the paired comparison back to protect it"
+                "may cut the paired comparison back to protect it, and the AUC difference's standard error needs "
+                "a joint table of both scores that small sites withhold"
             )
         if spec.bands and spec.name in ("roc", "calibration", "margin"):
             gaps = [b - a for a, b in zip(spec.bands, spec.bands[1:], strict=False)]
