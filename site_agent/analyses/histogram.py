@@ -1,12 +1,14 @@
-"""Counts of positives and negatives per distinct score: the additive summary ROC, calibration and paired
-analyses are computed from.
+"""Counts of positives and negatives per distinct score: the additive summary the ROC and calibration
+analyses keep (their released statistics come from their bands), and the Mann–Whitney / DeLong arithmetic on
+counts that every banded AUC uses.
 
 Every discrimination and calibration statistic the site releases depends on the records only through the
 pairs (score, outcome), so counting them per distinct score is lossless, additive over chunks, and as
 small as the number of distinct scores. A points model has few; a probability model may have as many as
 records, so the number of distinct keys is capped: past the cap, scores are rounded to a grid (the
-resolution is reported with the statistics; ``None`` means exact). Keys may be complex: ``a + 1j·b`` holds
-the scores of two models for the same record (the paired analysis).
+resolution is reported with the statistics; ``None`` means exact). :func:`paired_delong` takes complex keys,
+``a + 1j·b`` for a record in band ``a`` of one model and band ``b`` of the other (the paired analysis's
+released joint table).
 
 Mann–Whitney AUC and the DeLong (1988) variance are computed from these counts with ties counted one half,
 through placement values (the structural components): for a positive with score x,
@@ -22,6 +24,7 @@ Hanley JA, McNeil BJ. The meaning and use of the area under a ROC curve. Radiolo
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 
@@ -31,10 +34,9 @@ MAX_KEYS = 250_000
 class ScoreHistogram:
     """Sorted distinct score keys with the number of positive and negative records at each."""
 
-    def __init__(self, max_keys: int = MAX_KEYS, paired: bool = False) -> None:
+    def __init__(self, max_keys: int = MAX_KEYS) -> None:
         self.max_keys = max_keys
-        self.paired = paired
-        self.keys = np.zeros(0, dtype=np.complex128 if paired else np.float64)
+        self.keys = np.zeros(0, dtype=np.float64)
         self.positive = np.zeros(0, dtype=np.int64)
         self.negative = np.zeros(0, dtype=np.int64)
         self.resolution: float | None = None  # grid step once the cap forced rounding; None = exact
@@ -47,14 +49,11 @@ class ScoreHistogram:
     def n_negative(self) -> int:
         return int(self.negative.sum())
 
-    def add(self, scores: np.ndarray, outcome: np.ndarray, compare: np.ndarray | None = None) -> None:
-        """Count records with ``outcome`` 1 (positive) or 0 (negative) at their score (or score pair)."""
+    def add(self, scores: np.ndarray, outcome: np.ndarray) -> None:
+        """Count records with ``outcome`` 1 (positive) or 0 (negative) at their score."""
         if len(outcome) == 0:
             return
-        keys = np.asarray(scores, dtype=np.float64)
-        if self.paired:
-            keys = keys + 1j * np.asarray(compare, dtype=np.float64)
-        keys = self._round(keys)
+        keys = self._round(np.asarray(scores, dtype=np.float64))
         diseased = np.asarray(outcome) == 1
         self._merge(keys, diseased.astype(np.int64), (~diseased).astype(np.int64))
         while len(self.keys) > self.max_keys:
@@ -73,14 +72,11 @@ class ScoreHistogram:
         if self.resolution is None:
             return keys
         step = self.resolution
-        if self.paired:
-            return np.round(keys.real / step) * step + 1j * np.round(keys.imag / step) * step
         return np.round(keys / step) * step
 
     def _coarsen(self) -> None:
         """Round every key to a grid ten times coarser (first time: fine enough for ~max_keys/4 points)."""
-        parts = [self.keys.real, self.keys.imag] if self.paired else [self.keys]
-        span = max(float(np.ptp(p)) for p in parts) or 1.0
+        span = float(np.ptp(self.keys)) or 1.0
         if self.resolution is None:
             self.resolution = 10.0 ** np.ceil(np.log10(span / max(self.max_keys // 4, 1)))
         else:
@@ -158,8 +154,9 @@ class PairedAuc:
     covariance: np.ndarray  # 2×2 DeLong covariance of (AUC requested model, AUC comparison model)
 
 
-def paired_delong(histogram: ScoreHistogram) -> PairedAuc | None:
-    """Both models' AUCs and their DeLong covariance from the joint (score, compare score) histogram.
+def paired_delong(histogram: Any) -> PairedAuc | None:
+    """Both models' AUCs and their DeLong covariance from joint counts: ``histogram`` has complex ``keys`` (model
+    band + 1j × comparison band), ``positive``, ``negative``, ``n_positive`` and ``n_negative``.
 
     S10[r, s] = Σ over positives (V10_r − AUC_r)(V10_s − AUC_s)/(m − 1), likewise S01 over negatives;
     covariance = S10/m + S01/n (DeLong et al. 1988, section 3).

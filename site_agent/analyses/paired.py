@@ -280,7 +280,7 @@ def joint_correlation(joint: np.ndarray) -> float | None:
         n_positive=int(table[..., 0].sum()),
         n_negative=int(table[..., 1].sum()),
     )
-    result = paired_delong(banded)  # type: ignore[arg-type]
+    result = paired_delong(banded)
     if result is None:
         return None
     cov = result.covariance
