@@ -26,7 +26,8 @@ scale) with its Monte Carlo standard error (MCSE), RMSE, coverage of the 95% int
 declared not estimable.
 
 Run: ``make validate-stats`` (300 consortia per scenario), ``make validate-stats VALIDATE_QUICK=1`` (60
-per scenario, under 10 minutes on 2 cores) or ``python -m simulations.validate_stats --consortia 200``.
+per scenario, about a CPU-minute) or
+``python -m simulations.validate_stats --consortia 200``.
 Everything is invented; nothing here describes a real consortium.
 """
 
@@ -215,6 +216,21 @@ SCENARIOS = (
         max_prevalence=0.15,
     ),
     Scenario(name="few sites", sites=8, min_size=60, max_size=600, min_prevalence=0.15, max_prevalence=0.40),
+    # Many sites of moderate size, more heterogeneity and a strong threshold effect (sensitivity and false-positive
+    # rate rising together): where t(k-2) and the normal quantile nearly agree.
+    Scenario(
+        name="many sites",
+        sensitivity=0.75,
+        specificity=0.85,
+        sd_logit_sensitivity=0.7,
+        sd_logit_fpr=0.5,
+        correlation=0.5,
+        sites=30,
+        min_size=50,
+        max_size=800,
+        min_prevalence=0.05,
+        max_prevalence=0.30,
+    ),
 )
 
 
@@ -445,7 +461,7 @@ def _reasons(rows: list[dict[str, Any]]) -> dict[str, int]:
 def main(argv: Sequence[str] | None = None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--consortia", type=int, default=300, help="synthetic consortia per scenario (default 300)")
-    parser.add_argument("--quick", action="store_true", help="60 consortia per scenario (under 10 minutes)")
+    parser.add_argument("--quick", action="store_true", help="60 consortia per scenario (about a CPU-minute)")
     parser.add_argument("--scenario", action="append", help="run only this scenario (repeatable)")
     parser.add_argument("--seed", type=int, default=20260, help="master seed")
     parser.add_argument("--workers", type=int, default=min(2, os.cpu_count() or 1), help="processes")
