@@ -17,7 +17,7 @@ Intervals (one convention, stated in every result):
   Wald intervals of this model (k − 2 = subjects minus random effects; Chu & Cole 2006 used it; from
   memory) and is carried over here to the likelihood-ratio statistic, which unlike Wald respects the
   skewness of the likelihood near 0 or 1. Chosen by simulation against the plain profile interval (the
-  :math:`\chi^2_1` cut-off, i.e. the normal quantile), which covered 87-92% with 8 and 15 sites, much as
+  :math:`\chi^2_1` cut-off, i.e. the normal quantile), which covered 86-93% with 8 and 15 sites, more than
   the Wald z interval does; a parametric bootstrap would need hundreds of refits per interval. The coverage
   is checked by ``make validate-stats`` (docs/coordinator.md, "How the pooled intervals were chosen").
 - **Between-site SDs (tau) and correlation (rho)**: profile likelihood with the :math:`\chi^2_1` quantile;
