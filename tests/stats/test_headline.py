@@ -9,7 +9,6 @@ import math
 
 import numpy as np
 import pytest
-from numpy.polynomial.hermite import hermgauss
 from scipy import optimize, special, stats
 
 from federation.analysis import analyze_tables
@@ -17,6 +16,7 @@ from federation.report.inputs import ReportInputs
 from federation.report.methods import methods_text
 from federation.stats import ReleasedTable
 from federation.stats.headline import headline_accuracy
+from tests.stats.chu_cole import chu_cole_log_likelihood
 from tests.stats.test_analysis_pooling import _complete, _site_table
 from tests.stats.test_bivariate import AUDITC, AUDITC_FN, AUDITC_FP, AUDITC_TN, AUDITC_TP
 
@@ -29,29 +29,7 @@ def _independent_log_likelihood(theta: np.ndarray, points: int = 30) -> float:
     a product Gauss-Hermite rule (numpy.polynomial.hermite.hermgauss) centred at the precision-weighted mean
     of the study's empirical logits (0.5 added) and the summary mean, scaled by the combined precision (a
     normal approximation to the study's posterior; no mode search), log-sum-exp over the nodes."""
-    mu = theta[:2]
-    s1, s2, rho = math.exp(theta[2]), math.exp(theta[3]), math.tanh(theta[4])
-    psi = np.array([[s1 * s1, rho * s1 * s2], [rho * s1 * s2, s2 * s2]])
-    inverse = np.linalg.inv(psi)
-    log_norm = -math.log(2 * math.pi) - 0.5 * math.log(np.linalg.det(psi))
-    x, w = hermgauss(points)
-    grid = np.array(np.meshgrid(x, x, indexing="ij")).reshape(2, -1)
-    log_w = (np.log(w)[:, None] + np.log(w)[None, :]).ravel() + np.sum(grid**2, axis=0)
-    total = 0.0
-    for tp, fn, fp, tn in TABLES:
-        observed = np.array([math.log((tp + 0.5) / (fn + 0.5)), math.log((fp + 0.5) / (tn + 0.5))])
-        within = np.array([1 / (tp + 0.5) + 1 / (fn + 0.5), 1 / (fp + 0.5) + 1 / (tn + 0.5)])
-        precision = 1 / within + 1 / np.diag(psi)
-        centre = (observed / within + mu / np.diag(psi)) / precision
-        scale = np.sqrt(1 / precision)
-        eta = centre[:, None] + math.sqrt(2.0) * scale[:, None] * grid
-        d = eta - mu[:, None]
-        prior = log_norm - 0.5 * np.einsum("iq,ij,jq->q", d, inverse, d)
-        ll = stats.binom.logpmf(tp, tp + fn, special.expit(eta[0])) + stats.binom.logpmf(
-            fp, fp + tn, special.expit(eta[1])
-        )
-        total += math.log(2 * scale[0] * scale[1]) + special.logsumexp(log_w + ll + prior)
-    return float(total)
+    return chu_cole_log_likelihood(theta, None, points, TABLES)
 
 
 @pytest.fixture(scope="module")
