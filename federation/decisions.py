@@ -355,15 +355,6 @@ def decision_rows(result: dict[str, Any]) -> dict[str, list[dict[str, Any]]]:
     }
 
 
-def score_kind_of(manifests: Sequence[dict[str, Any] | None]) -> str | None:
-    """The score kind of the first bundle manifest that states one."""
-    for manifest in manifests:
-        score = manifest.get("score") if isinstance(manifest, dict) else None
-        if isinstance(score, dict) and isinstance(score.get("kind"), str):
-            return score["kind"]
-    return None
-
-
 _INTERVAL = "95% confidence interval"
 # Each tidy table of decision_rows: (title, ((column, meaning), ...)), for an export's codebook.
 DECISION_TABLES: dict[str, tuple[str, tuple[tuple[str, str], ...]]] = {

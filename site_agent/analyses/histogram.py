@@ -101,12 +101,6 @@ def band_table(scores: np.ndarray, outcome: np.ndarray, edges: tuple[float, ...]
     ).astype(np.int64)
 
 
-def band_sums(scores: np.ndarray, edges: tuple[float, ...]) -> np.ndarray:
-    """Sum of scores per band cut by ``edges`` (calibration: expected events per bin)."""
-    band = np.searchsorted(np.asarray(edges, dtype=np.float64), scores, side="right")
-    return np.bincount(band, weights=np.asarray(scores, dtype=np.float64), minlength=len(edges) + 1)
-
-
 @dataclass(frozen=True)
 class Placements:
     """Per distinct key: placement values of positives (V10) and negatives (V01), and the AUC."""
