@@ -191,6 +191,7 @@ def cmd_join(args: argparse.Namespace) -> int:
         runtime_port=args.runtime_port,
         max_restarts=args.max_restarts,
         task_poll_s=args.task_poll,
+        warm_start=not args.cold_start,
     )
     return run_join(settings, lambda line: print(line, flush=True))
 
@@ -358,6 +359,12 @@ def build_parser() -> argparse.ArgumentParser:
         "--max-restarts", type=int, help="give up after this many SuperNode restarts, with exit code 4 (default: never)"
     )
     p.add_argument("--task-poll", type=float, help="seconds between the app runner's task polls (Flower: 1)")
+    p.add_argument(
+        "--cold-start",
+        action="store_true",
+        help="start every ClientApp as a new Python process (default: fork it from one warm process that has "
+        "imported the agent once; see docs/deployment.md)",
+    )
     p.set_defaults(handler=cmd_join)
 
     app = sub.add_parser("app", help="the app bundle this site runs online").add_subparsers(metavar="ACTION")

@@ -27,6 +27,7 @@ import argparse
 import hashlib
 import importlib
 import os
+import socket
 import sys
 from collections.abc import Sequence
 from pathlib import Path
@@ -96,8 +97,31 @@ def _watch_parent(parent: int, grace_s: float = 3.0) -> None:
     threading.Thread(target=watch, daemon=True, name="parent-watch").start()
 
 
-def main(argv: Sequence[str] | None = None) -> None:
-    """Entry point ``site-agent-clientapp --site-dir SITEDIR [flwr-clientapp arguments ...]``."""
+def watch_connection(conn: socket.socket, grace_s: float = 3.0) -> None:
+    """In a warm copy (:mod:`site_agent.warmstart`): exit when the client the app runner started is gone.
+
+    The client holds the other end of ``conn``; when it ends, by any signal, the connection reads as closed.
+    Then as :func:`_watch_parent`: SIGINT first, ended outright after ``grace_s``.
+    """
+    import signal
+    import threading
+    import time
+
+    def watch() -> None:
+        try:
+            while conn.recv(1):
+                pass
+        except OSError:
+            pass
+        signal.raise_signal(signal.SIGINT)
+        time.sleep(grace_s)
+        os._exit(70)
+
+    threading.Thread(target=watch, daemon=True, name="client-watch").start()
+
+
+def run_checked(argv: Sequence[str], watch_parent: bool = False) -> None:
+    """Run Flower's ClientApp entry point with the app bundle's SHA-256 checked before it is installed."""
     parser = argparse.ArgumentParser(
         prog="site-agent-clientapp",
         description="Run one Flower ClientApp task if the app bundle's SHA-256 is in the site's allowlist. "
@@ -108,9 +132,10 @@ def main(argv: Sequence[str] | None = None) -> None:
     )
     args, flower_args = parser.parse_known_args(argv)
     site_dir = args.site_dir.resolve()
-    # Watch the app runner before importing Flower (seconds on a busy host): a runner that died while this
-    # process started is noticed at once, and this process does not outlive its node.
-    _watch_parent(_parent_pid(flower_args))
+    if watch_parent:
+        # Watch the app runner before importing Flower (seconds on a busy host): a runner that died while this
+        # process started is noticed at once, and this process does not outlive its node.
+        _watch_parent(_parent_pid(flower_args))
 
     # Import the modules, not the same-named functions the package re-exports.
     entry = importlib.import_module("flwr.supernode.cli.flwr_clientapp")
@@ -126,6 +151,11 @@ def main(argv: Sequence[str] | None = None) -> None:
     runtime.install_from_fab = install_checked
     sys.argv = ["flwr-clientapp", *flower_args]
     entry.flwr_clientapp()
+
+
+def main(argv: Sequence[str] | None = None) -> None:
+    """Entry point ``site-agent-clientapp --site-dir SITEDIR [flwr-clientapp arguments ...]`` (a cold start)."""
+    run_checked(sys.argv[1:] if argv is None else argv, watch_parent=True)
 
 
 if __name__ == "__main__":

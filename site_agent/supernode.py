@@ -43,6 +43,7 @@ from federation.protocol import ValidationToolError
 from federation.protocol.cli_support import EXIT_OFFLINE, EXIT_REFUSED
 
 from .config import load_site
+from .warmstart import SOCKET_NAME
 
 NODE_KEY = "node.key"
 NODE_PUBLIC_KEY = "node.pub"
@@ -198,6 +199,7 @@ class JoinSettings:
     longest_pause_s: float = 30.0
     task_poll_s: float | None = None  # FLWR_SUPEREXEC_TASK_POLL_INTERVAL for the app runner (Flower: 1 s)
     bin_dir: Path = field(default_factory=lambda: Path(sys.executable).parent)
+    warm_start: bool = True  # ClientApps forked from one warm process (site_agent.warmstart); False: cold starts
 
 
 class SiteNode:
@@ -217,6 +219,7 @@ class SiteNode:
             raise ValidationToolError(f"{root}: root certificate not found (the coordinator's ca.crt)")
         self.supernode: subprocess.Popen[bytes] | None = None
         self.app_runner: subprocess.Popen[bytes] | None = None
+        self.warm: subprocess.Popen[bytes] | None = None
         self.starts = 0
         self.last_exit_code: int | None = None
         self.last_cause: ExitCause | None = None
@@ -237,10 +240,12 @@ class SiteNode:
             fd = os.open(secret, os.O_WRONLY | os.O_CREAT | os.O_TRUNC, 0o600)
             with os.fdopen(fd, "wb") as handle:
                 handle.write(os.urandom(32))
-        launcher = self.settings.bin_dir / "site-agent-clientapp"
-        command = (
-            shlex.quote(str(launcher)) if launcher.exists() else f"{shlex.quote(sys.executable)} -m site_agent.launcher"
-        )
+        python = shlex.quote(sys.executable)
+        if self.settings.warm_start:  # a copy of the warm process, else (no warm process) a cold launcher
+            command = f"{python} -m site_agent.warmstart client {shlex.quote(str(self.runtime / SOCKET_NAME))}"
+        else:
+            launcher = self.settings.bin_dir / "site-agent-clientapp"
+            command = shlex.quote(str(launcher)) if launcher.exists() else f"{python} -m site_agent.launcher"
         script = self.runtime / "bin" / "flwr-clientapp"
         script.write_text(
             "#!/bin/sh\n"
@@ -312,6 +317,17 @@ class SiteNode:
         )
         log.close()
         self._wait_listening(port, self.supernode)
+        if self.settings.warm_start and (self.warm is None or self.warm.poll() is not None):
+            warm_log = open(self.runtime / "warm-start.log", "ab")  # noqa: SIM115 - handed to the child
+            self.warm = subprocess.Popen(
+                [sys.executable, "-m", "site_agent.warmstart", "serve", str(self.runtime / SOCKET_NAME)],
+                stdout=warm_log,
+                stderr=subprocess.STDOUT,
+                env=env,
+                cwd=self.runtime,
+                preexec_fn=_die_with_parent,
+            )
+            warm_log.close()
         runner_log = open(self.runtime / "app-runner.log", "ab")  # noqa: SIM115 - handed to the child
         self.app_runner = subprocess.Popen(
             self.app_runner_command(port, self.supernode.pid),
@@ -333,11 +349,12 @@ class SiteNode:
             except OSError:
                 time.sleep(0.1)
 
-    def _stop_processes(self, grace_s: float = 5.0) -> None:
-        for process in (self.app_runner, self.supernode):
+    def _stop_processes(self, grace_s: float = 5.0, warm_too: bool = False) -> None:
+        processes = (self.app_runner, self.supernode, self.warm) if warm_too else (self.app_runner, self.supernode)
+        for process in processes:
             if process is not None and process.poll() is None:
                 process.send_signal(signal.SIGTERM)
-        for process in (self.app_runner, self.supernode):
+        for process in processes:
             if process is None:
                 continue
             try:
@@ -430,7 +447,7 @@ class SiteNode:
                     break
                 pause = min(pause * 2, self.settings.longest_pause_s)
         finally:
-            self._stop_processes()
+            self._stop_processes(warm_too=True)
         return 0
 
 

@@ -60,6 +60,7 @@ from .harness import (
 ALLOWING = ("vellacombe-primary", "brackenholt-specialist", "amberlow-referral")
 KILLED = "amberlow-referral"  # the site killed mid-round, and again absent when the SuperLink restarts
 REFUSING = "skarrow-specialist"  # enrolled and online, but its allowlist lacks the bundle
+COLD = "brackenholt-specialist"  # joined with --cold-start: its ClientApps are new processes, not warm copies
 PER_RUN_FIELDS = {"study_id", "request_id", "bundle_sha256", "created_at", "site_key_id", "signature"}
 PER_RUN_POLICY_FIELDS = {"trusted_coordinator_keys", "policy_sha256"}
 TASK_POLL = "0.2"  # the app runners' task polling; Flower's default is 1 s
@@ -167,8 +168,8 @@ def deployment(tmp_path_factory: pytest.TempPathFactory):  # noqa: ANN201
                 enrol_node_key(store, name, sites[name] / "node.pub")
         finally:
             store.close()
-        for name in sites:
-            deployment.join(name)
+        for name in sites:  # one site starts each ClientApp cold (a new process), the others warm (a fork)
+            deployment.join(name, *(["--cold-start"] if name == COLD else []))
         yield deployment
     finally:
         fleet.stop_all()
@@ -301,6 +302,13 @@ def test_round_matches_offline_path(deployment: Deployment, first_round: tuple[i
     assert analysis["sites"] == reference_analysis["sites"]
     assert analysis["pooled"] == reference_analysis["pooled"]
     assert len(analysis["sites"]) == 3
+    # Warm sites answered from copies of their warm process; the cold site started no warm process.
+    for site, folder in deployment.sites.items():
+        log = folder / "runtime" / "warm-start.log"
+        if site == COLD:
+            assert not log.exists()
+        else:
+            assert "ClientApp copy started" in log.read_text(), site
     # Three sites are too few for the bivariate headline model; it says so, and the univariate sensitivity
     # analysis pools what it can.
     assert analysis["pooled"]["sensitivity"] is None
@@ -411,7 +419,8 @@ def test_site_killed_mid_round_is_unreachable_and_round_completes(deployment: De
 
         def clientapp() -> int | None:
             for pid in processes_under(site_dir):
-                if f"--site-dir {site_dir.resolve()}" in cmdline(pid) and "clientapp" in cmdline(pid):
+                line = cmdline(pid)  # a warm client (the copy it hands over to is a fork) or a cold launcher
+                if f"--site-dir {site_dir.resolve()}" in line and ("warmstart client" in line or "clientapp" in line):
                     return pid
             return None
 
@@ -423,6 +432,8 @@ def test_site_killed_mid_round_is_unreachable_and_round_completes(deployment: De
         fleet.procs.pop(f"join-{KILLED}").wait(timeout=10)
         # The app runner and the ClientApp it was running do not outlive their node.
         wait_until(lambda: gone(runner) and gone(app_pid), 15, "the app runner and ClientApp to exit")
+        # Nor does anything else of the site: the warm process and the copy that was answering the round.
+        wait_until(lambda: not processes_under(site_dir), 15, "every process of the killed site to exit")
         stdout, _ = running.communicate(timeout=120)
     finally:
         if running.poll() is None:
