@@ -159,6 +159,7 @@ def run_deployment(work: Path, sizes: tuple[int, ...] = (3, 10), rounds: int = 3
         result = measure(out, rounds, "0.2", n)
         row = {
             "engine": "deployment (TLS, loopback)",
+            "clientapp_start": result["clientapp_start"],
             "sites": result["sites"],
             "floor_round_s": result["median_floor_s"],
             "validation_round_s": result["median_validation_s"],

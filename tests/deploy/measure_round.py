@@ -1,13 +1,14 @@
 """Measure once: a validation round against a readiness check of the same sites, on loopback.
 
 Not collected by pytest (a measurement, not a check). Run with
-``.venv/bin/python -m tests.deploy.measure_round [--sites N] [--rounds N] [--out DIR]``. It starts a TLS
-SuperLink and N authenticated SuperNodes (the invented consortium's first N of 8 sites, plus sites reading
-two sites' data under new site ids beyond 8), then alternates a readiness check (``federation run --ping``:
-every node starts its ClientApp process, checks its folder, keys and data source without reading a record,
-and answers) and a validation round (a fresh request each time), and prints the wall time of each, the
-ratio of medians and the SuperLink's peak memory. Every process is stopped by PID at the end. The agent's
-modules are compiled to bytecode first, as an installed agent's are (:func:`compile_bytecode`).
+``.venv/bin/python -m tests.deploy.measure_round [--sites N] [--rounds N] [--out DIR] [--cold-start]``. It
+starts a TLS SuperLink and N authenticated SuperNodes (the invented consortium's first N of 8 sites, plus
+sites reading two sites' data under new site ids beyond 8; each ClientApp a warm copy unless
+``--cold-start``), then alternates a readiness check (``federation run --ping``: every node starts its
+ClientApp, checks its folder, keys and data source without reading a record, and answers) and a validation
+round (a fresh request each time), and prints the wall time of each, the ratio of medians and the
+SuperLink's peak memory. Every process is stopped by PID at the end. The agent's modules are compiled to
+bytecode first, as an installed agent's are (:func:`compile_bytecode`).
 """
 
 from __future__ import annotations
@@ -63,7 +64,7 @@ def compile_bytecode() -> None:
         compileall.compile_dir(str(Path(package.__file__).parent), quiet=1)
 
 
-def measure(out: Path, rounds: int, task_poll: str, n_sites: int = 10) -> dict:
+def measure(out: Path, rounds: int, task_poll: str, n_sites: int = 10, cold_start: bool = False) -> dict:
     compile_bytecode()
     study = prepare_study(out / "study")
     coordinator = study.root / "coordinator"
@@ -108,6 +109,7 @@ def measure(out: Path, rounds: int, task_poll: str, n_sites: int = 10) -> dict:
                     str(coordinator / "certs" / "ca.crt"),
                     "--task-poll",
                     task_poll,
+                    *(["--cold-start"] if cold_start else []),
                 ],
             )
         # --sign as a coordinator runs it: both kinds of round carry the sites' signed acknowledgements.
@@ -137,6 +139,7 @@ def measure(out: Path, rounds: int, task_poll: str, n_sites: int = 10) -> dict:
     floor, validation = statistics.median(times["ping"]), statistics.median(times["validate"])
     return {
         "sites": len(sites),
+        "clientapp_start": "cold" if cold_start else "warm",
         "superlink_peak_rss_mib": superlink_rss,
         "rounds": rounds,
         "task_poll_s": float(task_poll),
@@ -154,9 +157,10 @@ def main() -> None:
     parser.add_argument("--sites", type=int, default=10, help="how many sites (8 consortium sites, then copies)")
     parser.add_argument("--task-poll", default="0.2", help="app runners' task polling in seconds (Flower: 1)")
     parser.add_argument("--out", type=Path, help="working folder (default: a new temporary folder)")
+    parser.add_argument("--cold-start", action="store_true", help="join every site with --cold-start")
     args = parser.parse_args()
     out = args.out or Path(tempfile.mkdtemp(prefix="msv-measure-"))
-    print(json.dumps(measure(out, args.rounds, args.task_poll, args.sites), indent=2))
+    print(json.dumps(measure(out, args.rounds, args.task_poll, args.sites, args.cold_start), indent=2))
 
 
 if __name__ == "__main__":
