@@ -230,7 +230,7 @@ def _reap() -> None:
             return
 
 
-def _serve_one(conn: socket.socket) -> None:
+def _serve_one(conn: socket.socket, listener: socket.socket) -> None:
     """Read one client's request and fork its copy; the copy never comes back here."""
     streams: list[int] = []
     try:
@@ -258,6 +258,7 @@ def _serve_one(conn: socket.socket) -> None:
         conn.settimeout(None)
         pid = os.fork()
         if pid == 0:  # pragma: no cover - the copy
+            listener.close()  # the copy serves nobody
             _run_copy(conn, request, streams)
         print(f"warm start: ClientApp copy started, pid {pid}", flush=True)
     except (OSError, ValueError) as exc:
@@ -312,7 +313,7 @@ def serve(socket_path: str, parent: int | None = None) -> None:
                 continue
             if ready:
                 conn, _ = listener.accept()
-                _serve_one(conn)
+                _serve_one(conn, listener)
     finally:
         listener.close()
         try:
