@@ -300,45 +300,31 @@ class SiteNode:
 
     # --- one start ----------------------------------------------------------------------------------
     def start(self) -> None:
-        """Start the SuperNode and, once its Runtime API listens, the app runner."""
+        """Start the SuperNode and, once its Runtime API listens, the warm process and the app runner."""
         self._prepare_runtime()
         port = self.settings.runtime_port or free_port()
-        env = self._environment()
-        log = open(self.runtime / "supernode.log", "ab")  # noqa: SIM115 - handed to the child
-        self._log_offset = self._read_offset = log.tell()
         self._retries = 0
-        self.supernode = subprocess.Popen(
-            self.supernode_command(port),
-            stdout=log,
-            stderr=subprocess.STDOUT,
-            env=env,
-            cwd=self.runtime,
-            preexec_fn=_die_with_parent,
-        )
-        log.close()
+        self.supernode = self._spawn(self.supernode_command(port), "supernode.log", follow=True)
         self._wait_listening(port, self.supernode)
         if self.settings.warm_start and (self.warm is None or self.warm.poll() is not None):
-            warm_log = open(self.runtime / "warm-start.log", "ab")  # noqa: SIM115 - handed to the child
-            self.warm = subprocess.Popen(
-                [sys.executable, "-m", "site_agent.warmstart", "serve", str(self.runtime / SOCKET_NAME)],
-                stdout=warm_log,
+            serve = [sys.executable, "-m", "site_agent.warmstart", "serve", str(self.runtime / SOCKET_NAME)]
+            self.warm = self._spawn(serve, "warm-start.log")
+        self.app_runner = self._spawn(self.app_runner_command(port, self.supernode.pid), "app-runner.log")
+        self.starts += 1
+
+    def _spawn(self, argv: list[str], log_name: str, follow: bool = False) -> subprocess.Popen[bytes]:
+        """Start one of join's processes, its output appended to ``runtime/LOG_NAME``; it dies with join."""
+        with open(self.runtime / log_name, "ab") as log:
+            if follow:  # the supervisor reads this log as it is written, from here on
+                self._log_offset = self._read_offset = log.tell()
+            return subprocess.Popen(
+                argv,
+                stdout=log,
                 stderr=subprocess.STDOUT,
-                env=env,
+                env=self._environment(),
                 cwd=self.runtime,
                 preexec_fn=_die_with_parent,
             )
-            warm_log.close()
-        runner_log = open(self.runtime / "app-runner.log", "ab")  # noqa: SIM115 - handed to the child
-        self.app_runner = subprocess.Popen(
-            self.app_runner_command(port, self.supernode.pid),
-            stdout=runner_log,
-            stderr=subprocess.STDOUT,
-            env=env,
-            cwd=self.runtime,
-            preexec_fn=_die_with_parent,
-        )
-        runner_log.close()
-        self.starts += 1
 
     def _wait_listening(self, port: int, process: subprocess.Popen[bytes], timeout_s: float = 30.0) -> None:
         end = time.monotonic() + timeout_s
