@@ -42,6 +42,11 @@ class Audit:
     ``earlier`` are the facts of earlier releases (and of releases awaiting approval) of the site, to any study;
     ``current`` is the release being audited. :meth:`evaluate` takes the audited release's values (``None``
     = suppressed), so that more suppression can be tried without rebuilding the refinement.
+
+    ``group=False`` audits in the full model alone. Where the full model has more than ``full_max_atoms`` atoms
+    (known when the audit is built), the grouped model's own evaluation decides, and with ``shortcut`` (the
+    default) its clear-only pass is skipped: that pass could only defer to this evaluation or agree with it
+    (see :meth:`evaluate`). ``shortcut=False`` runs it anyway; tests compare both ways.
     """
 
     def __init__(
@@ -50,6 +55,8 @@ class Audit:
         current: ReleaseFacts,
         occupied: Occupied | None = None,
         group: bool = True,
+        shortcut: bool = True,
+        full_max_atoms: int = FULL_MAX_ATOMS,
     ) -> None:
         started = time.perf_counter()
         self.releases = [*earlier, current]
@@ -85,8 +92,17 @@ class Audit:
         self._grouped: Audit | None = None
         self._full = False
         self._too_large = False
+        self._full_masks: list[int] | None = None
+        self.shortcut = shortcut
+        self.full_max_atoms = full_max_atoms
         grouped = decompose(self._joined, self.domains, self._joint_values) if group else None
         if grouped is not None:
+            # Whether the full model is small enough to decide is known before any evaluation: its refinement
+            # stops as soon as it passes FULL_MAX_ATOMS (milliseconds, even after 200 releases); kept if small.
+            try:
+                self._full_masks = refine(self._joined, self.domains, self._joint_values, full_max_atoms)
+            except AuditError:
+                self._too_large = True
             # the grouped model answers first; the full refinement is built only if its answer is not clear
             self._grouped = copy.copy(self)
             own = [copy.copy(s) for s in self.statements]  # each model makes equal definitions one count
@@ -102,7 +118,10 @@ class Audit:
 
     def _build_full(self, limit: int = MAX_ATOMS) -> None:
         """The common refinement of every box (see :mod:`site_agent.audit`): the full model."""
-        atom_masks = refine(self._joined, self.domains, self._joint_values, limit)
+        if self._full_masks is not None and limit >= self.full_max_atoms:
+            atom_masks = self._full_masks
+        else:
+            atom_masks = refine(self._joined, self.domains, self._joint_values, limit)
         n_boxes, n_atoms = len(self.boxes), len(atom_masks)
         members = [_bits(mask, n_boxes) for mask in atom_masks]
         rows = np.concatenate(members) if members else np.zeros(0, int)
@@ -219,6 +238,19 @@ class Audit:
             _CONTROLLER = ThreadpoolController()
         with _CONTROLLER.limit(limits=1, user_api="blas"):
             rules = current_rules or {}
+            if self._grouped is not None and self._too_large and self.shortcut:
+                # The full model is too large to decide, so the grouped model's own findings do. Its clear-only
+                # pass would decide the same: it is clear only where this evaluation is (every check it makes is
+                # at least as strict: exact LP intervals, integer programs for narrow ones), and where it is
+                # not, this evaluation decides anyway. Skipping it spares the integer programs it runs on
+                # every narrow interval of every earlier release (most of the cost of a long history).
+                # tests/site_agent/test_audit_cache.py compares both ways on random histories.
+                self._grouped.build_seconds = self.build_seconds
+                result = self._grouped._evaluate(
+                    current_values, min_cell_size, allow_zero, protection_width, exact, rules
+                )
+                assert result is not None
+                return result
             if self._grouped is not None:
                 clear = self._grouped._evaluate(
                     current_values, min_cell_size, allow_zero, protection_width, exact, rules, clear_only=True
@@ -228,7 +260,7 @@ class Audit:
                 if not self._full and not self._too_large:
                     started = time.perf_counter()
                     try:
-                        self._build_full(FULL_MAX_ATOMS)
+                        self._build_full(self.full_max_atoms)
                     except AuditError:
                         self._too_large = True
                     self.build_seconds += time.perf_counter() - started
