@@ -1,9 +1,11 @@
 """``make bench``: run every stage, print one table of ratios, write ``bench/results.json``.
 
-``python -m simulations.bench [--quick] [--deploy] [--out bench/results.json] [--work DIR]``; the Makefile
-passes ``--quick`` when ``BENCH_QUICK=1`` and ``--deploy`` when ``BENCH_DEPLOY=1``. Full run: site path at 1M
-and 10M records, federation at 20, 100, 200 and 500 virtual sites. Quick run: 1M and 3M records, 20 and 100
-sites. ``--deploy``: also 3 and 10 sites over a loopback TLS deployment.
+``python -m simulations.bench [--quick] [--deploy] [--only STAGES] [--out bench/results.json] [--work DIR]``;
+the Makefile passes ``--quick`` when ``BENCH_QUICK=1`` and ``--deploy`` when ``BENCH_DEPLOY=1``. Full run: site
+path at 1M and 10M records, federation at 20, 100, 200 and 500 virtual sites. Quick run: 1M and 3M records, 20
+and 100 sites. ``--deploy``: also 3 and 10 sites over a loopback TLS deployment. ``--only audit_history`` (a
+comma-separated list of stages) runs those stages alone and replaces them in the ``--out`` file, keeping its
+other stages; ``stages_rerun`` in the file says when, in which mode and under what load each was re-run.
 """
 
 from __future__ import annotations
@@ -19,6 +21,8 @@ from typing import Any
 
 from . import audit, federation, site_path, stats
 from .common import ROOT, machine, say
+
+STAGES = ("site_path", "audit", "audit_history", "stats", "headline", "federation", "deployment")
 
 
 def _table(results: dict[str, Any]) -> str:
@@ -89,7 +93,13 @@ def main() -> None:
     parser.add_argument("--work", type=Path, help="working folder (default: a new temporary folder, removed)")
     parser.add_argument("--records", help="comma-separated record counts (overrides --quick/full)")
     parser.add_argument("--sites", help="comma-separated virtual site counts (overrides --quick/full)")
+    parser.add_argument(
+        "--only", help=f"comma-separated stages to run alone, replaced in the --out file ({', '.join(STAGES)})"
+    )
     args = parser.parse_args()
+    only = set(args.only.split(",")) if args.only else None
+    if only is not None and not only <= set(STAGES):
+        parser.error(f"--only: unknown stage(s) {', '.join(sorted(only - set(STAGES)))}; stages: {', '.join(STAGES)}")
     records = (1_000_000, 3_000_000) if args.quick else (1_000_000, 10_000_000)
     sites = (20, 100) if args.quick else (20, 100, 200, 500)
     if args.records:
@@ -98,20 +108,32 @@ def main() -> None:
         sites = tuple(int(x) for x in args.sites.split(","))
     work = args.work or Path(tempfile.mkdtemp(prefix="msv-bench-", dir="/tmp"))
     started = time.perf_counter()
-    results: dict[str, Any] = {
-        "created_at": datetime.now(UTC).replace(microsecond=0).isoformat(),
-        "mode": "quick" if args.quick else "full",
-        "machine": machine(),
-    }
+    now = datetime.now(UTC).replace(microsecond=0).isoformat()
+    results: dict[str, Any] = {"created_at": now, "mode": "quick" if args.quick else "full", "machine": machine()}
+    if only is not None:  # the other stages stay as the earlier run measured them
+        if args.out.exists():
+            results = json.loads(args.out.read_text())
+        results.setdefault("stages_rerun", {})
     args.out.parent.mkdir(parents=True, exist_ok=True)
 
     def stage(name: str, function: Any, *stage_args: Any) -> None:
         """Run one stage and save at once: its result, or its failure in one line (the other stages still run)."""
+        if only is not None and name not in only:
+            return
+        if only is not None:
+            results.get("failures", {}).pop(name, None)
+            results["stages_rerun"][name] = {
+                "created_at": now,
+                "mode": "quick" if args.quick else "full",
+                "load_average_at_start": [round(x, 2) for x in __import__("os").getloadavg()],
+            }
         try:
             results[name] = function(*stage_args)
         except Exception as exc:  # a benchmark stage that fails is reported, and the others still run
             results.setdefault("failures", {})[name] = f"{type(exc).__name__}: {exc}"[:500]
             say(f"{name}: FAILED: {results['failures'][name]}")
+        if only is not None:
+            results["stages_rerun"][name]["load_average_at_end"] = [round(x, 2) for x in __import__("os").getloadavg()]
         args.out.write_text(json.dumps(results, indent=2) + "\n")
 
     try:
@@ -121,13 +143,14 @@ def main() -> None:
         stage("stats", stats.run)
         stage("headline", stats.run_headline)
         stage("federation", federation.run_simulation_engine, work, sites)
-        if args.deploy:
+        if args.deploy or (only is not None and "deployment" in only):
             stage("deployment", federation.run_deployment, work)
     finally:
         if args.work is None:
             shutil.rmtree(work, ignore_errors=True)
-    results["load_average_at_end"] = [round(x, 2) for x in __import__("os").getloadavg()]
-    results["minutes"] = round((time.perf_counter() - started) / 60, 1)
+    if only is None:
+        results["load_average_at_end"] = [round(x, 2) for x in __import__("os").getloadavg()]
+        results["minutes"] = round((time.perf_counter() - started) / 60, 1)
     results["table"] = _table(results)
     args.out.write_text(json.dumps(results, indent=2) + "\n")
     m = results["machine"]
@@ -136,7 +159,7 @@ def main() -> None:
         f"load {m['load_average_at_start']} at start"
     )
     print(results["table"])
-    print(f"written: {args.out} ({results['minutes']} min)")
+    print(f"written: {args.out} ({round((time.perf_counter() - started) / 60, 1)} min)")
     say("")
 
 
