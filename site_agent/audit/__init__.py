@@ -36,7 +36,10 @@ have the same optima as the full model's, and its atoms answer the differencing 
 exactly, so a clear answer (nothing found, every interval too wide for integer programs to matter) is the
 full audit's answer. Otherwise the full model decides while it has at most ``FULL_MAX_ATOMS`` atoms (a few
 seconds); beyond, the grouped model's findings do (the same regions; the counts it proposes to withhold come
-from its own rows, so a repair may withhold other counts than the full model would).
+from its own rows, so a repair may withhold other counts than the full model would). Which case applies is
+known when the audit is built (the full refinement stops as soon as it passes the limit); beyond the limit the
+grouped model evaluates once, without the clear-only pass, which could only agree with that evaluation or defer
+to it (it ran integer programs on every narrow interval of every earlier release).
 
 **Integrality.** The true interval of a count over whole-number tables can only be narrower than the LP
 relaxation's. We round the LP bounds inward (``ceil(min)``, ``floor(max)``), and where it is cheap (a
