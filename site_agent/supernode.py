@@ -220,6 +220,7 @@ class SiteNode:
         self.supernode: subprocess.Popen[bytes] | None = None
         self.app_runner: subprocess.Popen[bytes] | None = None
         self.warm: subprocess.Popen[bytes] | None = None
+        self._warm_started = 0.0
         self.starts = 0
         self.last_exit_code: int | None = None
         self.last_cause: ExitCause | None = None
@@ -304,13 +305,41 @@ class SiteNode:
         self._prepare_runtime()
         port = self.settings.runtime_port or free_port()
         self._retries = 0
+        if self.settings.warm_start and (self.warm is None or self.warm.poll() is not None):
+            self._start_warm()  # first: its imports overlap the SuperNode's start
         self.supernode = self._spawn(self.supernode_command(port), "supernode.log", follow=True)
         self._wait_listening(port, self.supernode)
-        if self.settings.warm_start and (self.warm is None or self.warm.poll() is not None):
-            serve = [sys.executable, "-m", "site_agent.warmstart", "serve", str(self.runtime / SOCKET_NAME)]
-            self.warm = self._spawn(serve, "warm-start.log")
+        self._wait_warm()  # so that the first message already finds it (else that ClientApp would start cold)
         self.app_runner = self._spawn(self.app_runner_command(port, self.supernode.pid), "app-runner.log")
         self.starts += 1
+
+    def _start_warm(self) -> None:
+        (self.runtime / SOCKET_NAME).unlink(missing_ok=True)  # a killed warm process leaves its socket behind
+        serve = [sys.executable, "-m", "site_agent.warmstart", "serve", str(self.runtime / SOCKET_NAME)]
+        self.warm = self._spawn(serve, "warm-start.log")
+        self._warm_started = time.monotonic()
+
+    def _wait_warm(self, timeout_s: float = 60.0) -> None:
+        end = time.monotonic() + timeout_s
+        while self.warm is not None and self.warm.poll() is None and time.monotonic() < end:
+            if (self.runtime / SOCKET_NAME).exists():
+                return
+            time.sleep(0.05)
+
+    def _keep_warm(self) -> None:
+        """Start the warm process again if it exited; if it keeps exiting within a minute, leave ClientApps cold."""
+        if self.warm is None or self.warm.poll() is None:
+            return
+        code = self.warm.returncode
+        if time.monotonic() - self._warm_started < 60:
+            self.say(
+                f"site {self.site.site_id}: the warm process exited (status {code}) within a minute of starting; "
+                "ClientApps start cold until the node restarts (see runtime/warm-start.log)"
+            )
+            self.warm = None
+            return
+        self.say(f"site {self.site.site_id}: the warm process exited (status {code}); starting it again")
+        self._start_warm()
 
     def _spawn(self, argv: list[str], log_name: str, follow: bool = False) -> subprocess.Popen[bytes]:
         """Start one of join's processes, its output appended to ``runtime/LOG_NAME``; it dies with join."""
@@ -405,6 +434,7 @@ class SiteNode:
                 )
                 while self.supernode.poll() is None and not self._stopping.is_set():
                     self._follow_log()
+                    self._keep_warm()
                     self._stopping.wait(0.2)
                 self._follow_log()
                 if self._stopping.is_set():

@@ -407,6 +407,21 @@ def test_runtime_port_is_loopback_only_and_refuses_calls_without_the_runtime_sec
     assert refused.value.response.status_code in (401, 403)
 
 
+def test_a_site_whose_warm_process_dies_says_so_and_answers_cold(deployment: Deployment, first_round) -> None:
+    site = "vellacombe-primary"  # a warm site that stays online for the tests after this one
+    join_pid = deployment.fleet.procs[f"join-{site}"].pid
+    (warm,) = [p for p in children(join_pid) if "site_agent.warmstart serve" in cmdline(p)]
+    log = deployment.sites[site] / "runtime" / "warm-start.log"
+    copies = log.read_text().count("ClientApp copy started")
+    os.kill(warm, signal.SIGKILL)
+    said = "the warm process exited (status -9) within a minute of starting; ClientApps start cold"
+    wait_until(lambda: said in deployment.fleet.log(f"join-{site}"), 30, "join to say the warm process is gone")
+    code, outcome = deployment.federation_run("--ping", "--deadline", "90")
+    assert outcome["sites"][site]["status"] == "ready"  # answered by a cold start
+    assert log.read_text().count("ClientApp copy started") == copies
+    assert not [p for p in children(join_pid) if "site_agent.warmstart serve" in cmdline(p)]  # not restarted
+
+
 def test_site_killed_mid_round_is_unreachable_and_round_completes(deployment: Deployment, first_round) -> None:
     fleet, site_dir = deployment.fleet, deployment.sites[KILLED]
     request = deployment.new_request("tallowmere-online-2")
