@@ -244,7 +244,7 @@ class Audit:
                 # at least as strict: exact LP intervals, integer programs for narrow ones), and where it is
                 # not, this evaluation decides anyway. Skipping it spares the integer programs it runs on
                 # every narrow interval of every earlier release (most of the cost of a long history).
-                # tests/site_agent/test_audit_cache.py compares both ways on random histories.
+                # tests/site_agent/test_audit_shortcut.py compares both ways on random histories.
                 self._grouped.build_seconds = self.build_seconds
                 result = self._grouped._evaluate(
                     current_values, min_cell_size, allow_zero, protection_width, exact, rules
