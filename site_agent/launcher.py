@@ -29,7 +29,7 @@ import importlib
 import os
 import socket
 import sys
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from pathlib import Path
 
 from federation.protocol import PolicyViolation
@@ -74,50 +74,53 @@ def _parent_pid(flower_args: Sequence[str]) -> int:
     return os.getppid()
 
 
-def _watch_parent(parent: int, grace_s: float = 3.0) -> None:
+def _end_after(wait: Callable[[], None], name: str, grace_s: float = 3.0) -> None:
+    """In a thread: once ``wait()`` returns, stop this ClientApp. First as Flower does (SIGINT, so the ClientApp
+    can stop cleanly); if the process is still there after ``grace_s`` (seen: a ClientApp whose runner died
+    mid-task then waits forever at exit), it is ended outright. Ledger entries are single appended lines,
+    fsynced before anything they record is sent, so ending here leaves the ledger consistent."""
+    import signal
+    import threading
+    import time
+
+    def watch() -> None:
+        wait()
+        signal.raise_signal(signal.SIGINT)
+        time.sleep(grace_s)
+        os._exit(70)  # nobody is left to take this ClientApp's answer
+
+    threading.Thread(target=watch, daemon=True, name=name).start()
+
+
+def _watch_parent(parent: int) -> None:
     """Exit when the app runner that started this process is gone (it is re-parented on Linux).
 
     ``parent`` is the pid the app runner passed (``--parent-pid``): a runner that died while this process was
-    still starting is noticed at once. First as Flower does (SIGINT, so the ClientApp can stop cleanly); if
-    the process is still there after ``grace_s`` (seen: a ClientApp whose runner died mid-task then waits
-    forever at exit), it is ended outright. Ledger entries are single appended lines, fsynced before anything
-    they record is sent, so ending here leaves the ledger consistent.
+    still starting is noticed at once.
     """
-    import signal
-    import threading
     import time
 
-    def watch() -> None:
+    def runner_gone() -> None:
         while os.getppid() == parent:
             time.sleep(0.2)
-        signal.raise_signal(signal.SIGINT)
-        time.sleep(grace_s)
-        os._exit(70)  # the app runner is gone: nobody is left to take this ClientApp's answer
 
-    threading.Thread(target=watch, daemon=True, name="parent-watch").start()
+    _end_after(runner_gone, "parent-watch")
 
 
-def watch_connection(conn: socket.socket, grace_s: float = 3.0) -> None:
+def watch_connection(conn: socket.socket) -> None:
     """In a warm copy (:mod:`site_agent.warmstart`): exit when the client the app runner started is gone.
 
     The client holds the other end of ``conn``; when it ends, by any signal, the connection reads as closed.
-    Then as :func:`_watch_parent`: SIGINT first, ended outright after ``grace_s``.
     """
-    import signal
-    import threading
-    import time
 
-    def watch() -> None:
+    def client_gone() -> None:
         try:
             while conn.recv(1):
                 pass
         except OSError:
             pass
-        signal.raise_signal(signal.SIGINT)
-        time.sleep(grace_s)
-        os._exit(70)
 
-    threading.Thread(target=watch, daemon=True, name="client-watch").start()
+    _end_after(client_gone, "client-watch")
 
 
 def run_checked(argv: Sequence[str], watch_parent: bool = False) -> None:

@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import os
 import shutil
 import tempfile
 import time
@@ -125,7 +126,7 @@ def main() -> None:
             results["stages_rerun"][name] = {
                 "created_at": now,
                 "mode": "quick" if args.quick else "full",
-                "load_average_at_start": [round(x, 2) for x in __import__("os").getloadavg()],
+                "load_average_at_start": [round(x, 2) for x in os.getloadavg()],
             }
         try:
             results[name] = function(*stage_args)
@@ -133,7 +134,7 @@ def main() -> None:
             results.setdefault("failures", {})[name] = f"{type(exc).__name__}: {exc}"[:500]
             say(f"{name}: FAILED: {results['failures'][name]}")
         if only is not None:
-            results["stages_rerun"][name]["load_average_at_end"] = [round(x, 2) for x in __import__("os").getloadavg()]
+            results["stages_rerun"][name]["load_average_at_end"] = [round(x, 2) for x in os.getloadavg()]
         args.out.write_text(json.dumps(results, indent=2) + "\n")
 
     try:
@@ -149,7 +150,7 @@ def main() -> None:
         if args.work is None:
             shutil.rmtree(work, ignore_errors=True)
     if only is None:
-        results["load_average_at_end"] = [round(x, 2) for x in __import__("os").getloadavg()]
+        results["load_average_at_end"] = [round(x, 2) for x in os.getloadavg()]
         results["minutes"] = round((time.perf_counter() - started) / 60, 1)
     results["table"] = _table(results)
     args.out.write_text(json.dumps(results, indent=2) + "\n")
