@@ -411,6 +411,8 @@ def joint_boxes(
         involved = set(scores) | set(grid_features)
         n = len(score_cells)
         member = np.zeros((len(out), n), bool)
+        # each score's cells as [low, high) bounds, once per group (not once per box)
+        bounds = {v: np.array([-math.inf, *_score_cells(boxes, v), math.inf]) for v in scores}
         for b, box in enumerate(out):
             own = {v: c for v, c in box.items() if v in involved}
             if not own:
@@ -418,19 +420,16 @@ def joint_boxes(
             keep = np.ones(n, bool)
             for v, constraint in own.items():
                 if v in scores:
-                    i = scores.index(v)
-                    bounds = [-math.inf, *_score_cells(boxes, v), math.inf]
-                    inside = np.array(
-                        [constraint[0] <= bounds[c] and bounds[c + 1] <= constraint[1] for c in range(len(bounds) - 1)]
-                    )
-                    keep &= inside[score_cells[:, i]]
+                    edges = bounds[v]
+                    inside = (constraint[0] <= edges[:-1]) & (edges[1:] <= constraint[1])
+                    keep &= inside[score_cells[:, scores.index(v)]]
                 else:
                     j = grid_features.index(v)
                     keep &= _allowed(constraint, value_lists[j])[indices[:, j]]
             member[b] = keep
         touched = np.flatnonzero(member.any(axis=1) | np.array([bool(set(box) & involved) for box in out]))
         # combinations in the same boxes are one value of the joint variable
-        patterns, cell_of = np.unique(member[touched].T, axis=0, return_inverse=True)
+        patterns, cell_of = _unique_rows(member[touched].T)
         name = f"{JOINT}{number}"
         values[name] = [str(c) for c in range(len(patterns))]
         for position, b in enumerate(touched):
@@ -441,6 +440,18 @@ def joint_boxes(
         joints.append(Joint(name, values[name], tuple(grid_features), tuple(scores), exact is not None))
     boxes_out = [tuple(sorted(box.items(), key=lambda item: item[0])) for box in out]
     return boxes_out, values, joints
+
+
+def _unique_rows(rows: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """``np.unique(rows, axis=0, return_inverse=True)`` for a boolean matrix, in the same order, on the rows
+    packed into bytes (the lexicographic order of bit strings is that of their big-endian bytes)."""
+    if rows.shape[0] == 0 or rows.shape[1] == 0:
+        unique, inverse = np.unique(rows, axis=0, return_inverse=True)
+        return unique, inverse.reshape(-1)
+    packed = np.ascontiguousarray(np.packbits(rows, axis=1))
+    keys = packed.view(np.dtype((np.void, packed.shape[1]))).reshape(-1)
+    _, first, inverse = np.unique(keys, return_index=True, return_inverse=True)
+    return rows[first], inverse.reshape(-1)
 
 
 def _shared(scores: Sequence[str], models: Mapping[str, Mapping[str, Any]]) -> set[str]:
