@@ -251,7 +251,6 @@ def _build_system(
     """Split ``a x = b`` (with the bound facts ``g_low <= g x <= g_high``) into independent blocks, fix each
     block's implicit zeros and factorise its equalities (SVD)."""
     n_atoms = a.shape[1]
-    zero = zero.copy()
     keep = np.flatnonzero(~zero)
     a_live = a[:, keep].tocsr()
     a_live.eliminate_zeros()
@@ -260,32 +259,89 @@ def _build_system(
         raise AuditError("the released counts contradict each other (no table is consistent with them)")
     row_ids = np.flatnonzero(nonempty)
     a_live = a_live[row_ids]
-    all_rows, all_live = row_ids, a_live
-    if len(row_ids):
-        # Keep a linearly independent set of rows, preferring sparse ones (pivoted QR on rows scaled by
-        # 1/nnz): a dense total implied by its parts (records read, analysed) is dropped, which splits the
-        # system into smaller blocks and spares HiGHS the redundant rows. Dropped rows are checked below.
-        # Done per connected part of the system: a site's history grows the system, not its parts.
-        m0 = len(row_ids)
-        graph = sparse.bmat([[None, a_live], [a_live.T, None]]).tocsr()
-        _, labels = connected_components(graph, directed=False)
-        chosen_parts = []
-        for label in np.unique(labels[:m0]):
-            rows_here = np.flatnonzero(labels[:m0] == label)
-            sub = a_live[rows_here]
-            cols = np.unique(sub.indices)
-            sub = sub[:, cols]
-            scale = 1.0 / np.diff(sub.indptr)
-            _, r_factor, pivots = qr((sub.T @ sparse.diags(scale)).toarray(), mode="economic", pivoting=True)
-            diagonal = np.abs(np.diag(r_factor))
-            rank = int(np.sum(diagonal > diagonal[0] * 1e-9)) if len(diagonal) else 0
-            chosen_parts.append(rows_here[pivots[:rank]])
-        chosen = np.sort(np.concatenate(chosen_parts))
-        row_ids, a_live = row_ids[chosen], a_live[chosen]
     if g is None:
         g = sparse.csr_matrix((0, n_atoms))
         g_low = g_high = np.zeros(0)
+    assert g_low is not None and g_high is not None
     g_live = g[:, keep].tocsr()
+    # Keep a linearly independent set of rows, preferring sparse ones: a dense total implied by its parts
+    # (records read, analysed) is dropped, which splits the system into smaller blocks and spares HiGHS the
+    # redundant rows. The choice is made on a random sketch of the rows (``_independent_rows``) and then
+    # proved: every dropped row must lie in the row space of the blocks built without it (its value is then
+    # the same in every table they allow, checked against b below). Otherwise the exact choice is made, and
+    # if even that cannot be proved every row is kept.
+    system = None
+    for method in ("sketch", "exact", "all"):
+        chosen = np.arange(len(row_ids)) if method == "all" else _independent_rows(a_live, method == "sketch")
+        system = _blocks(a, b, row_box, zero, keep, row_ids, a_live, chosen, g_live, g_low, g_high)
+        dropped = np.setdiff1d(np.arange(len(row_ids)), chosen)
+        if len(dropped) == 0:
+            break
+        rows = np.zeros((len(dropped), n_atoms))
+        rows[:, keep] = a_live[dropped].toarray()
+        rows[:, system.zero] = 0.0
+        norms = np.sqrt(np.sum(rows**2, axis=1))
+        if np.all(system.residuals(rows) <= 1e-7 * np.maximum(norms, 1.0)):
+            break
+    assert system is not None
+    if len(row_ids) and np.max(np.abs(a_live @ system.solution[keep] - b[row_ids])) > 1e-6 * (1 + np.max(np.abs(b))):
+        raise AuditError("the released counts contradict each other (no table is consistent with them)")
+    return system
+
+
+def _independent_rows(a_live: sparse.csr_matrix, sketch: bool) -> np.ndarray:
+    """Positions of a linearly independent set of rows spanning the row space, preferring sparse rows (pivoted
+    QR on the rows scaled by 1/nnz), done per connected part of the system: a site's history grows the system,
+    not its parts. ``sketch``: the QR runs on a Gaussian sketch of the atoms (as many as the part's rows and a
+    quarter more; each atom spread over four of them) instead of every atom, which keeps the rows' linear
+    dependences (almost surely) at a fraction of the cost; the caller proves the choice."""
+    m0 = a_live.shape[0]
+    if m0 == 0:
+        return np.zeros(0, np.int64)
+    graph = sparse.bmat([[None, a_live], [a_live.T, None]]).tocsr()
+    _, labels = connected_components(graph, directed=False)
+    chosen_parts = []
+    for label in np.unique(labels[:m0]):
+        rows_here = np.flatnonzero(labels[:m0] == label)
+        sub = a_live[rows_here]
+        cols = np.unique(sub.indices)
+        scaled = sparse.diags(1.0 / np.diff(sub.indptr)) @ sub[:, cols]  # rows x atoms
+        m, n = scaled.shape
+        width = m + max(16, m // 4)
+        if sketch and n > 2 * width:
+            # each atom adds a Gaussian multiple of its column to four random columns of the sketch
+            rng = np.random.default_rng([m, n])  # the same system gets the same choice
+            spread = sparse.csr_matrix(
+                (rng.standard_normal(4 * n), (np.repeat(np.arange(n), 4), rng.integers(0, width, 4 * n))),
+                shape=(n, width),
+            )
+            matrix = (scaled @ spread).T.toarray()
+        else:
+            matrix = scaled.T.toarray()
+        r_factor, pivots = qr(matrix, mode="r", pivoting=True)
+        diagonal = np.abs(np.diag(r_factor))
+        rank = int(np.sum(diagonal > diagonal[0] * 1e-9)) if len(diagonal) else 0
+        chosen_parts.append(rows_here[pivots[:rank]])
+    return np.sort(np.concatenate(chosen_parts))
+
+
+def _blocks(
+    a: sparse.csr_matrix,
+    b: np.ndarray,
+    row_box: list[int | None],
+    zero: np.ndarray,
+    keep: np.ndarray,
+    all_ids: np.ndarray,
+    all_live: sparse.csr_matrix,
+    chosen: np.ndarray,
+    g_live: sparse.csr_matrix,
+    g_low: np.ndarray,
+    g_high: np.ndarray,
+) -> _System:
+    """The system over the ``chosen`` rows: its blocks, each with its implicit zeros fixed and factorised."""
+    n_atoms = a.shape[1]
+    zero = zero.copy()
+    row_ids, a_live = all_ids[chosen], all_live[chosen]
     m, q = len(row_ids), g_live.shape[0]
     blocks: list[_Block] = []
     in_rows = np.zeros(n_atoms, bool)
@@ -303,10 +359,10 @@ def _build_system(
                 continue
             sub = a_live[r_local][:, c_local].tocsr()
             rhs = b[row_ids[r_local]]
-            basis, left, solution = _factorise(sub.toarray(), rhs)
             # A strictly positive solution is an interior point: then no atom is forced to zero and the LP
-            # that finds such atoms can be skipped.
-            if len(r_local) and np.min(solution, initial=1.0) <= 1e-9:
+            # that finds such atoms can be skipped. The min-norm solution is tried (from the rows' Gram
+            # matrix, cheaper than the SVD below and checked against the rows).
+            if len(r_local) and not _interior(sub, rhs):
                 implicit = _implicit_zeros(sub, rhs)
                 if implicit.any():
                     zero[keep[c_local[implicit]]] = True
@@ -314,12 +370,11 @@ def _build_system(
                     sub = sub[:, ~implicit].tocsr()
                     if len(c_local) == 0:
                         continue
-                    basis, left, solution = _factorise(sub.toarray(), rhs)
-            dense = sub.toarray()
+            basis, left, solution = _factorise(sub.toarray(), rhs)
             rank = basis.shape[1]
             independent = np.arange(len(r_local))
             if rank < len(r_local):  # fixing implicit zeros can make rows dependent again
-                _, _, pivots = qr(dense.T, mode="economic", pivoting=True)
+                _, pivots = qr(sub.toarray().T, mode="r", pivoting=True)
                 independent = np.sort(pivots[:rank])
             block = _Block(keep[c_local], row_ids[r_local], sub, rhs, basis, left, solution, independent)
             if len(q_local):
@@ -332,9 +387,16 @@ def _build_system(
     for i, block in enumerate(blocks):
         atom_block[block.atoms] = i
         solution[block.atoms] = block.solution
-    if len(all_rows) and np.max(np.abs(all_live @ solution[keep] - b[all_rows])) > 1e-6 * (1 + np.max(np.abs(b))):
-        raise AuditError("the released counts contradict each other (no table is consistent with them)")
     return _System(a, b, row_box, zero, free, blocks, atom_block, solution)
+
+
+def _interior(a: sparse.csr_matrix, b: np.ndarray) -> bool:
+    """Whether the min-norm solution of ``a x = b`` is strictly positive (then every atom can be positive)."""
+    gram = (a @ a.T).toarray()
+    y = np.linalg.lstsq(gram, b, rcond=None)[0]
+    x = a.T @ y
+    scale = 1.0 + float(np.max(np.abs(b), initial=0.0))
+    return bool(np.min(x, initial=1.0) > 1e-9 and np.max(np.abs(a @ x - b), initial=0.0) <= 1e-9 * scale)
 
 
 def _factorise(dense: np.ndarray, rhs: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:

@@ -1,0 +1,94 @@
+"""The audit's linear system: the independent rows it keeps, and the blocks it builds from them.
+
+The row choice runs on a random sketch of the atoms (``site_agent.audit.system._independent_rows``) and is then
+proved (every dropped row must lie in the row space of the blocks built without it). These tests check the
+choice against numpy's rank (``numpy.linalg.matrix_rank``, an SVD) and the system's intervals against scipy's
+``linprog`` on every row, and play a wrong choice to see that the proof catches it.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
+from scipy import sparse
+from scipy.optimize import linprog
+
+from site_agent.audit import system as audit_system
+from site_agent.audit.system import _build_system, _independent_rows, _interior
+
+
+def _history_like(seed: int, rows: int, atoms: int) -> tuple[sparse.csr_matrix, np.ndarray]:
+    """Boxes as 0/1 rows over atoms, with totals that are sums of other rows (as a site's flow relations
+    and repeated releases make them), and the counts of one table of whole numbers."""
+    rng = np.random.default_rng(seed)
+    base = (rng.random((rows, atoms)) < rng.uniform(0.02, 0.3)).astype(float)
+    sums = np.array([base[rng.choice(rows, size=3, replace=False)].sum(axis=0) for _ in range(max(1, rows // 3))])
+    sums = np.minimum(sums, 1.0) if rng.random() < 0.5 else sums  # unions too, which may be independent
+    a = np.vstack([base, sums, base[: rows // 4]])  # and plain repeats
+    a = a[np.any(a != 0, axis=1)]
+    table = rng.integers(0, 4, atoms).astype(float)
+    return sparse.csr_matrix(a), a @ table
+
+
+@settings(max_examples=25, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(seed=st.integers(0, 2**31), rows=st.integers(3, 40), atoms=st.integers(3, 600))
+def test_the_rows_kept_span_the_row_space_and_are_independent(seed: int, rows: int, atoms: int) -> None:
+    a, _ = _history_like(seed, rows, atoms)
+    rank = np.linalg.matrix_rank(a.toarray())  # reference: numpy's SVD rank
+    for sketch in (True, False):
+        chosen = _independent_rows(a, sketch)
+        assert len(chosen) == rank
+        assert np.linalg.matrix_rank(a[chosen].toarray()) == rank
+
+
+@settings(max_examples=15, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(seed=st.integers(0, 2**31))
+def test_the_system_gives_the_intervals_of_every_row(seed: int) -> None:
+    a, b = _history_like(seed, 12, 120)
+    n = a.shape[1]
+    system = _build_system(a, b, [None] * a.shape[0], np.zeros(n, bool))
+    rng = np.random.default_rng(seed)
+    for _ in range(3):
+        vector = (rng.random(n) < 0.2).astype(float)
+        low, high, _, _ = system.lp_interval(vector)
+        # reference: scipy's linprog with every row, none dropped
+        ref_low = linprog(vector, A_eq=a.toarray(), b_eq=b, bounds=(0, None), method="highs")
+        ref_high = linprog(-vector, A_eq=a.toarray(), b_eq=b, bounds=(0, None), method="highs")
+        assert low == pytest.approx(ref_low.fun, abs=1e-6)
+        if ref_high.status == 3:
+            assert high == np.inf
+        else:
+            assert high == pytest.approx(-ref_high.fun, abs=1e-6)
+
+
+def test_a_wrong_sketch_is_caught_and_the_exact_choice_made(monkeypatch: pytest.MonkeyPatch) -> None:
+    a, b = _history_like(7, 20, 300)
+    exact = _independent_rows(a, False)
+    real = audit_system._independent_rows
+    calls = []
+
+    def wrong(matrix: sparse.csr_matrix, sketch: bool) -> np.ndarray:
+        calls.append(sketch)
+        chosen = real(matrix, sketch)
+        return chosen[1:] if sketch else chosen  # the sketch "loses" an independent row
+
+    monkeypatch.setattr(audit_system, "_independent_rows", wrong)
+    system = _build_system(a, b, [None] * a.shape[0], np.zeros(a.shape[1], bool))
+    assert calls == [True, False]
+    kept = np.sort(np.concatenate([block.rows for block in system.blocks]))
+    assert kept.tolist() == exact.tolist()
+    # the row the sketch lost is in the system: its count is fixed
+    lost = a[exact[0]].toarray().ravel()
+    low, high, _, _ = system.lp_interval(lost)
+    assert low == pytest.approx(b[exact[0]]) and high == pytest.approx(b[exact[0]])
+
+
+def test_the_interior_test_says_yes_only_for_a_strictly_positive_solution() -> None:
+    a = sparse.csr_matrix(np.array([[1.0, 1.0, 0.0], [0.0, 1.0, 1.0]]))
+    # x1 + x2 = b1, x2 + x3 = b2; min-norm solution x = a.T (a a.T)^-1 b (worked by hand): for b = (2, 2)
+    # it is (2/3, 4/3, 2/3), all positive
+    assert _interior(a, np.array([2.0, 2.0]))
+    # with b = (2, 0) the only non-negative solutions have x2 = x3 = 0: not interior
+    assert not _interior(a, np.array([2.0, 0.0]))
