@@ -429,14 +429,15 @@ def joint_boxes(
             member[b] = keep
         touched = np.flatnonzero(member.any(axis=1) | np.array([bool(set(box) & involved) for box in out]))
         # combinations in the same boxes are one value of the joint variable
-        patterns, cell_of = _unique_rows(member[touched].T)
+        patterns, _ = _unique_rows(member[touched].T)
         name = f"{JOINT}{number}"
-        values[name] = [str(c) for c in range(len(patterns))]
+        values[name] = cell_names = [str(c) for c in range(len(patterns))]
+        columns = np.asfortranarray(patterns)
         for position, b in enumerate(touched):
             box = out[b]
             for v in involved:
                 box.pop(v, None)
-            box[name] = frozenset(str(c) for c in np.flatnonzero(patterns[:, position]))
+            box[name] = frozenset(map(cell_names.__getitem__, np.flatnonzero(columns[:, position]).tolist()))
         joints.append(Joint(name, values[name], tuple(grid_features), tuple(scores), exact is not None))
     boxes_out = [tuple(sorted(box.items(), key=lambda item: item[0])) for box in out]
     return boxes_out, values, joints
