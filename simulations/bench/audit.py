@@ -28,44 +28,93 @@ def _cuts(release: int) -> tuple[tuple[float, ...], tuple[float, ...]]:
     return thresholds, edges
 
 
-def run(work: Path, repeats: int = 3) -> dict[str, Any]:
-    from federation.protocol import AnalysisSpec, KeyRing, key_id, load_bundle, load_private_key, make_scorer
-    from site_agent.analyses import Flow, build_analyses, collect_counts, tabulate
-    from site_agent.audit import ReleaseFacts
+def _site(work: Path) -> Any:
+    """The bench's site: 20,000 generated records, the bundle, its mapping and policy, and what the site's
+    runner passes the audit too: the schema's domains, the model's description (the recipient knows the model;
+    its ONNX graph reads the age and sex that subgroups name) and the records' combinations of features and
+    scores (site_agent.occupancy)."""
+    from types import SimpleNamespace
+
+    from federation.protocol import KeyRing, key_id, load_bundle, load_private_key, make_scorer
+    from site_agent.audit.model import describe_bundle
     from site_agent.config import Policy
-    from site_agent.data import exclusion_reasons
-    from site_agent.disclosure import protect
     from site_agent.mapping import default_mapping
+    from site_agent.occupancy import combinations
     from site_agent.sources import SourceSpec
 
     prepare(work)
     csv_path, _ = write_files(work, RECORDS)
     public = load_private_key(work / "coordinator" / "coordinator.key").public_key()
     bundle = load_bundle((work / "model.bundle").read_bytes(), KeyRing({key_id(public): public}), "bundle")
-    mapping, scorer, policy = default_mapping(bundle.schema), make_scorer(bundle), Policy()
+    mapping, scorer = default_mapping(bundle.schema), make_scorer(bundle)
+    domains = {f.name: f.to_dict() for f in bundle.schema.features}
+    source = SourceSpec(path=csv_path)
+    models = {"score": describe_bundle(bundle, scorer)}
+    occupied = combinations(None, source, mapping, bundle, scorer, None, 200_000, models, domains)
+    return SimpleNamespace(
+        bundle=bundle,
+        mapping=mapping,
+        scorer=scorer,
+        policy=Policy(),
+        source=source,
+        domains=domains,
+        models=models,
+        occupied=occupied,
+    )
+
+
+def _counts(site: Any, specs: tuple[Any, ...]) -> Any:
+    """One request's counts on the bench's records."""
+    from site_agent.analyses import Flow, build_analyses, collect_counts, tabulate
+    from site_agent.data import exclusion_reasons
+
+    flow = Flow(exclusion_reasons(site.mapping))
+    analyses = build_analyses(specs, site.bundle)
+    tabulate(site.source, site.mapping, site.bundle, site.scorer, flow, analyses)
+    return collect_counts(flow, analyses, site.policy)
+
+
+def _protect(site: Any, counts: Any, earlier: Any, label: str) -> Any:
+    """The site's protect step, as its runner calls it (domains, the model's description, the combinations)."""
+    from site_agent.disclosure import protect
+
+    return protect(
+        counts,
+        site.policy,
+        earlier,
+        site.bundle.sha256,
+        label,
+        domains=site.domains,
+        models=site.models,
+        occupied=site.occupied,
+    )
+
+
+def run(work: Path, repeats: int = 3) -> dict[str, Any]:
+    from federation.protocol import AnalysisSpec
+    from site_agent.audit import ReleaseFacts
+
+    site = _site(work)
+    bundle = site.bundle
 
     def counts_for(release: int) -> Any:
         thresholds, edges = _cuts(release)
-        specs = (AnalysisSpec("confusion", thresholds), AnalysisSpec("roc", (), edges))
-        flow = Flow(exclusion_reasons(mapping))
-        analyses = build_analyses(specs, bundle)
-        tabulate(SourceSpec(path=csv_path), mapping, bundle, scorer, flow, analyses)
-        return collect_counts(flow, analyses, policy)
+        return _counts(site, (AnalysisSpec("confusion", thresholds), AnalysisSpec("roc", (), edges)))
 
     say(f"audit: building {EARLIER} earlier releases ...")
     earlier: list[ReleaseFacts] = []
     for release in range(EARLIER):
         counts = counts_for(release)
-        protected = protect(counts, policy, earlier, bundle.sha256, f"release {release + 1}")
+        protected = _protect(site, counts, earlier, f"release {release + 1}")
         earlier.append(ReleaseFacts.from_dict(f"release {release + 1}", protected.facts(counts), bundle.sha256))
     counts = counts_for(EARLIER)
     with_history, alone, audits = [], [], []
     for _ in range(repeats):
         started = time.perf_counter()
-        protect(counts, policy, (), bundle.sha256, "alone")
+        _protect(site, counts, (), "alone")
         alone.append(time.perf_counter() - started)
         started = time.perf_counter()
-        protected = protect(counts, policy, earlier, bundle.sha256, f"release {EARLIER + 1}")
+        protected = _protect(site, counts, earlier, f"release {EARLIER + 1}")
         with_history.append(time.perf_counter() - started)
         audits.append(protected.audit.seconds if protected.audit is not None else float("nan"))
     result = {
@@ -126,27 +175,17 @@ def run_history(work: Path, sizes: tuple[int, ...] = HISTORY, repeats: int = 2) 
     out. The one after it, the 2x2 table and ROC bands, is released.) The same release is then timed with
     no history and with the first 50 and the first 200 earlier releases.
     """
-    from federation.protocol import KeyRing, PolicyViolation, key_id, load_bundle, load_private_key, make_scorer
-    from site_agent.analyses import Flow, build_analyses, collect_counts, tabulate
+    from federation.protocol import PolicyViolation
     from site_agent.audit import ReleaseFacts
-    from site_agent.config import Policy
-    from site_agent.data import exclusion_reasons
-    from site_agent.disclosure import protect
-    from site_agent.mapping import default_mapping
-    from site_agent.sources import SourceSpec
 
-    prepare(work)
-    csv_path, _ = write_files(work, RECORDS)
-    public = load_private_key(work / "coordinator" / "coordinator.key").public_key()
-    bundle = load_bundle((work / "model.bundle").read_bytes(), KeyRing({key_id(public): public}), "bundle")
-    mapping, scorer, policy = default_mapping(bundle.schema), make_scorer(bundle), Policy()
-    domains = {f.name: f.to_dict() for f in bundle.schema.features}
+    site = _site(work)
+    bundle = site.bundle
 
     def counts_for(specs: tuple[Any, ...]) -> Any:
-        flow = Flow(exclusion_reasons(mapping))
-        analyses = build_analyses(specs, bundle)
-        tabulate(SourceSpec(path=csv_path), mapping, bundle, scorer, flow, analyses)
-        return collect_counts(flow, analyses, policy)
+        return _counts(site, specs)
+
+    def audited(counts: Any, history: Any, label: str) -> Any:
+        return _protect(site, counts, history, label)
 
     largest = max(sizes)
     say(f"audit: a history of {largest} earlier releases of mixed analyses, each audited against those before ...")
@@ -155,7 +194,7 @@ def run_history(work: Path, sizes: tuple[int, ...] = HISTORY, repeats: int = 2) 
     while len(earlier) < largest and request < 3 * largest:
         counts = counts_for(_mixed_specs(request))
         try:
-            done = protect(counts, policy, earlier, bundle.sha256, f"release {request + 1}", domains=domains)
+            done = audited(counts, earlier, f"release {request + 1}")
             earlier.append(ReleaseFacts.from_dict(f"release {request + 1}", done.facts(counts), bundle.sha256))
         except PolicyViolation:
             refused += 1
@@ -166,7 +205,7 @@ def run_history(work: Path, sizes: tuple[int, ...] = HISTORY, repeats: int = 2) 
     for request in range(history_requests, history_requests + 8):  # the next request the site releases
         counts = counts_for(_mixed_specs(request))
         try:
-            protect(counts, policy, earlier, bundle.sha256, "new", domains=domains)
+            audited(counts, earlier, "new")
             break
         except PolicyViolation:
             new_refused += 1
@@ -177,7 +216,7 @@ def run_history(work: Path, sizes: tuple[int, ...] = HISTORY, repeats: int = 2) 
         for _ in range(repeats):
             started = time.perf_counter()
             try:
-                protected = protect(counts, policy, earlier[:size], bundle.sha256, "new", domains=domains)
+                protected = audited(counts, earlier[:size], "new")
                 outcome = f"released, {len(protected.suppressed)} withheld"
                 if protected.audit is not None:
                     grouped, atoms = protected.audit.grouped, protected.audit.atoms
