@@ -181,20 +181,14 @@ def run_history(work: Path, sizes: tuple[int, ...] = HISTORY, repeats: int = 2) 
     site = _site(work)
     bundle = site.bundle
 
-    def counts_for(specs: tuple[Any, ...]) -> Any:
-        return _counts(site, specs)
-
-    def audited(counts: Any, history: Any, label: str) -> Any:
-        return _protect(site, counts, history, label)
-
     largest = max(sizes)
     say(f"audit: a history of {largest} earlier releases of mixed analyses, each audited against those before ...")
     earlier: list[ReleaseFacts] = []
     built, refused, request = time.perf_counter(), 0, 0
     while len(earlier) < largest and request < 3 * largest:
-        counts = counts_for(_mixed_specs(request))
+        counts = _counts(site, _mixed_specs(request))
         try:
-            done = audited(counts, earlier, f"release {request + 1}")
+            done = _protect(site, counts, earlier, f"release {request + 1}")
             earlier.append(ReleaseFacts.from_dict(f"release {request + 1}", done.facts(counts), bundle.sha256))
         except PolicyViolation:
             refused += 1
@@ -203,9 +197,9 @@ def run_history(work: Path, sizes: tuple[int, ...] = HISTORY, repeats: int = 2) 
     history_requests = request
     new_refused = 0
     for request in range(history_requests, history_requests + 8):  # the next request the site releases
-        counts = counts_for(_mixed_specs(request))
+        counts = _counts(site, _mixed_specs(request))
         try:
-            audited(counts, earlier, "new")
+            _protect(site, counts, earlier, "new")
             break
         except PolicyViolation:
             new_refused += 1
@@ -216,7 +210,7 @@ def run_history(work: Path, sizes: tuple[int, ...] = HISTORY, repeats: int = 2) 
         for _ in range(repeats):
             started = time.perf_counter()
             try:
-                protected = audited(counts, earlier[:size], "new")
+                protected = _protect(site, counts, earlier[:size], "new")
                 outcome = f"released, {len(protected.suppressed)} withheld"
                 if protected.audit is not None:
                     grouped, atoms = protected.audit.grouped, protected.audit.atoms

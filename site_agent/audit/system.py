@@ -370,11 +370,12 @@ def _blocks(
                     sub = sub[:, ~implicit].tocsr()
                     if len(c_local) == 0:
                         continue
-            basis, left, solution = _factorise(sub.toarray(), rhs)
+            dense = sub.toarray()
+            basis, left, solution = _factorise(dense, rhs)
             rank = basis.shape[1]
             independent = np.arange(len(r_local))
             if rank < len(r_local):  # fixing implicit zeros can make rows dependent again
-                _, pivots = qr(sub.toarray().T, mode="r", pivoting=True)
+                _, pivots = qr(dense.T, mode="r", pivoting=True)
                 independent = np.sort(pivots[:rank])
             block = _Block(keep[c_local], row_ids[r_local], sub, rhs, basis, left, solution, independent)
             if len(q_local):
