@@ -289,12 +289,17 @@ def _build_system(
     return system
 
 
+_SKETCH_FROM = 2_000_000  # entries of a part's dense matrix (16 MB) above which its rows are chosen on a sketch
+
+
 def _independent_rows(a_live: sparse.csr_matrix, sketch: bool) -> np.ndarray:
     """Positions of a linearly independent set of rows spanning the row space, preferring sparse rows (pivoted
     QR on the rows scaled by 1/nnz), done per connected part of the system: a site's history grows the system,
-    not its parts. ``sketch``: the QR runs on a Gaussian sketch of the atoms (as many as the part's rows and a
-    quarter more; each atom spread over four of them) instead of every atom, which keeps the rows' linear
-    dependences (almost surely) at a fraction of the cost; the caller proves the choice."""
+    not its parts. ``sketch``: a large part's QR (more than ``_SKETCH_FROM`` entries) runs on a Gaussian sketch
+    of the atoms (as many as the part's rows and a quarter more; each atom spread over four of them) instead of
+    every atom, which keeps the rows' linear dependences (almost surely) at a fraction of the cost; the caller
+    proves the choice. A small part gets the exact QR: the choice of rows steers which cells a repair withholds
+    (through the rows' weights), and the exact one prefers sparse rows by their true norms, not sketched ones."""
     m0 = a_live.shape[0]
     if m0 == 0:
         return np.zeros(0, np.int64)
@@ -308,7 +313,7 @@ def _independent_rows(a_live: sparse.csr_matrix, sketch: bool) -> np.ndarray:
         scaled = sparse.diags(1.0 / np.diff(sub.indptr)) @ sub[:, cols]  # rows x atoms
         m, n = scaled.shape
         width = m + max(16, m // 4)
-        if sketch and n > 2 * width:
+        if sketch and n > 2 * width and m * n > _SKETCH_FROM:
             # each atom adds a Gaussian multiple of its column to four random columns of the sketch
             rng = np.random.default_rng([m, n])  # the same system gets the same choice
             spread = sparse.csr_matrix(

@@ -1,9 +1,10 @@
 """The audit's linear system: the independent rows it keeps, and the blocks it builds from them.
 
-The row choice runs on a random sketch of the atoms (``site_agent.audit.system._independent_rows``) and is then
-proved (every dropped row must lie in the row space of the blocks built without it). These tests check the
-choice against numpy's rank (``numpy.linalg.matrix_rank``, an SVD) and the system's intervals against scipy's
-``linprog`` on every row, and play a wrong choice to see that the proof catches it.
+A large part's row choice runs on a random sketch of the atoms (``site_agent.audit.system._independent_rows``;
+these tests lower ``_SKETCH_FROM`` so that their small systems take that path too) and is then proved (every
+dropped row must lie in the row space of the blocks built without it). These tests check the choice against
+numpy's rank (``numpy.linalg.matrix_rank``, an SVD) and the system's intervals against scipy's ``linprog`` on
+every row, and play a wrong choice to see that the proof catches it.
 """
 
 from __future__ import annotations
@@ -38,7 +39,9 @@ def test_the_rows_kept_span_the_row_space_and_are_independent(seed: int, rows: i
     a, _ = _history_like(seed, rows, atoms)
     rank = np.linalg.matrix_rank(a.toarray())  # reference: numpy's SVD rank
     for sketch in (True, False):
-        chosen = _independent_rows(a, sketch)
+        with pytest.MonkeyPatch.context() as patch:
+            patch.setattr(audit_system, "_SKETCH_FROM", 0)
+            chosen = _independent_rows(a, sketch)
         assert len(chosen) == rank
         assert np.linalg.matrix_rank(a[chosen].toarray()) == rank
 
@@ -48,7 +51,9 @@ def test_the_rows_kept_span_the_row_space_and_are_independent(seed: int, rows: i
 def test_the_system_gives_the_intervals_of_every_row(seed: int) -> None:
     a, b = _history_like(seed, 12, 120)
     n = a.shape[1]
-    system = _build_system(a, b, [None] * a.shape[0], np.zeros(n, bool))
+    with pytest.MonkeyPatch.context() as patch:
+        patch.setattr(audit_system, "_SKETCH_FROM", 0)
+        system = _build_system(a, b, [None] * a.shape[0], np.zeros(n, bool))
     rng = np.random.default_rng(seed)
     for _ in range(3):
         vector = (rng.random(n) < 0.2).astype(float)
@@ -92,3 +97,15 @@ def test_the_interior_test_says_yes_only_for_a_strictly_positive_solution() -> N
     assert _interior(a, np.array([2.0, 2.0]))
     # with b = (2, 0) the only non-negative solutions have x2 = x3 = 0: not interior
     assert not _interior(a, np.array([2.0, 0.0]))
+
+
+def test_a_small_part_gets_the_exact_choice() -> None:
+    # Below _SKETCH_FROM entries the rows are chosen by the exact pivoted QR (the choice steers which cells a
+    # repair withholds, so a small study's release does not depend on a random sketch).
+    a, _ = _history_like(11, 30, 500)
+    assert a.shape[0] * a.shape[1] < audit_system._SKETCH_FROM
+    assert _independent_rows(a, True).tolist() == _independent_rows(a, False).tolist()
+    with pytest.MonkeyPatch.context() as patch:
+        patch.setattr(audit_system, "_SKETCH_FROM", 0)
+        sketched = _independent_rows(a, True)
+    assert len(sketched) == np.linalg.matrix_rank(a.toarray())  # reference: numpy's SVD rank
