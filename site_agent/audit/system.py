@@ -247,9 +247,12 @@ def _build_system(
     g: sparse.csr_matrix | None = None,
     g_low: np.ndarray | None = None,
     g_high: np.ndarray | None = None,
+    maybe_zero: np.ndarray | None = None,
 ) -> _System:
     """Split ``a x = b`` (with the bound facts ``g_low <= g x <= g_high``) into independent blocks, fix each
-    block's implicit zeros and factorise its equalities (SVD)."""
+    block's implicit zeros and factorise its equalities (SVD). ``maybe_zero``: the only atoms that can be
+    empty in every table (None: any), when a system with more facts over the same atoms was solved before
+    (``check.Audit._maybe_zero``)."""
     n_atoms = a.shape[1]
     keep = np.flatnonzero(~zero)
     a_live = a[:, keep].tocsr()
@@ -273,7 +276,7 @@ def _build_system(
     system = None
     for method in ("sketch", "exact", "all"):
         chosen = np.arange(len(row_ids)) if method == "all" else _independent_rows(a_live, method == "sketch")
-        system = _blocks(a, b, row_box, zero, keep, row_ids, a_live, chosen, g_live, g_low, g_high)
+        system = _blocks(a, b, row_box, zero, keep, row_ids, a_live, chosen, g_live, g_low, g_high, maybe_zero)
         dropped = np.setdiff1d(np.arange(len(row_ids)), chosen)
         if len(dropped) == 0:
             break
@@ -342,6 +345,7 @@ def _blocks(
     g_live: sparse.csr_matrix,
     g_low: np.ndarray,
     g_high: np.ndarray,
+    maybe_zero: np.ndarray | None,
 ) -> _System:
     """The system over the ``chosen`` rows: its blocks, each with its implicit zeros fixed and factorised."""
     n_atoms = a.shape[1]
@@ -366,9 +370,11 @@ def _blocks(
             rhs = b[row_ids[r_local]]
             # A strictly positive solution is an interior point: then no atom is forced to zero and the LP
             # that finds such atoms can be skipped. The min-norm solution is tried (from the rows' Gram
-            # matrix, cheaper than the SVD below and checked against the rows).
-            if len(r_local) and not _interior(sub, rhs):
-                implicit = _implicit_zeros(sub, rhs)
+            # matrix, cheaper than the SVD below and checked against the rows). Where only some atoms can be
+            # forced to zero (``maybe_zero``), the LP asks about those alone, and none means no LP.
+            among = None if maybe_zero is None else maybe_zero[keep[c_local]]
+            if len(r_local) and (among is None or among.any()) and not _interior(sub, rhs):
+                implicit = _implicit_zeros(sub, rhs, among=among)
                 if implicit.any():
                     zero[keep[c_local[implicit]]] = True
                     c_local = c_local[~implicit]
@@ -416,25 +422,31 @@ def _factorise(dense: np.ndarray, rhs: np.ndarray) -> tuple[np.ndarray, np.ndarr
     return basis, left, basis @ (left.T @ rhs)
 
 
-def _implicit_zeros(a: sparse.csr_matrix, b: np.ndarray, homogeneous: bool = False) -> np.ndarray:
+def _implicit_zeros(
+    a: sparse.csr_matrix, b: np.ndarray, homogeneous: bool = False, among: np.ndarray | None = None
+) -> np.ndarray:
     """Atoms that are zero in every non-negative solution of ``a x = b`` (one LP).
 
     Maximise the number of atoms that can be made positive: ``a x = b t``, ``t >= 1``, ``0 <= z <= 1``,
     ``z <= x``. Scaling by ``t`` lets every atom that can be positive reach 1 at once, so at the optimum
     ``z = 0`` exactly for the atoms that are empty in every feasible table (Freund, Roundy & Todd 1985).
+    ``among``: only these atoms are asked about (one ``z`` each); the others are known to be positive in some
+    table and are returned False.
     """
     m, n = a.shape
-    if n == 0:
-        return np.zeros(0, bool)
-    eye = sparse.identity(n, format="csr")
-    a_eq = sparse.hstack([a, sparse.csr_matrix((m, n)), sparse.csr_matrix(-b.reshape(-1, 1))]).tocsr()
-    a_ub = sparse.hstack([-eye, eye, sparse.csr_matrix((n, 1))]).tocsr()
-    c = np.concatenate([np.zeros(n), -np.ones(n), [0.0]])
-    bounds = [(0, None)] * n + [(0, 1)] * n + [(0, 0) if homogeneous else (1, None)]
+    asked = np.arange(n) if among is None else np.flatnonzero(among)
+    if n == 0 or len(asked) == 0:
+        return np.zeros(n, bool)
+    p = len(asked)
+    pick = sparse.csr_matrix((np.ones(p), (np.arange(p), asked)), shape=(p, n))
+    a_eq = sparse.hstack([a, sparse.csr_matrix((m, p)), sparse.csr_matrix(-b.reshape(-1, 1))]).tocsr()
+    a_ub = sparse.hstack([-pick, sparse.identity(p, format="csr"), sparse.csr_matrix((p, 1))]).tocsr()
+    c = np.concatenate([np.zeros(n), -np.ones(p), [0.0]])
+    bounds = [(0, None)] * n + [(0, 1)] * p + [(0, 0) if homogeneous else (1, None)]
     result = linprog(
         c,
         A_ub=a_ub,
-        b_ub=np.zeros(n),
+        b_ub=np.zeros(p),
         A_eq=a_eq,
         b_eq=np.zeros(m),
         bounds=bounds,
@@ -445,4 +457,6 @@ def _implicit_zeros(a: sparse.csr_matrix, b: np.ndarray, homogeneous: bool = Fal
         raise AuditError("the released counts contradict each other (no table is consistent with them)")
     if result.status != 0:
         raise AuditError("the audit's linear program did not solve; the release is withheld")
-    return result.x[n : 2 * n] < 0.5
+    implicit = np.zeros(n, bool)
+    implicit[asked] = result.x[n : n + p] < 0.5
+    return implicit

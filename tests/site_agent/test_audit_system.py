@@ -109,3 +109,24 @@ def test_a_small_part_gets_the_exact_choice() -> None:
         patch.setattr(audit_system, "_SKETCH_FROM", 0)
         sketched = _independent_rows(a, True)
     assert len(sketched) == np.linalg.matrix_rank(a.toarray())  # reference: numpy's SVD rank
+
+
+@settings(max_examples=20, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(seed=st.integers(0, 2**31))
+def test_implicit_zeros_asked_about_some_atoms_agree_with_every_atom_asked(seed: int) -> None:
+    # A repair round asks only about the atoms the last round's system left empty (a superset of the new
+    # system's implicit zeros). Reference: for each atom, scipy's linprog maximising that atom alone (it is an
+    # implicit zero exactly when that maximum is 0).
+    rng = np.random.default_rng(seed)
+    a, _ = _history_like(seed, 10, 60)
+    n = a.shape[1]
+    table = rng.integers(0, 3, n).astype(float) * (rng.random(n) < 0.6)  # many empty atoms
+    b = a @ table
+    reference = np.zeros(n, bool)
+    for j in range(n):
+        top = linprog(-np.eye(n)[j], A_eq=a.toarray(), b_eq=b, bounds=(0, None), method="highs")
+        reference[j] = top.status == 0 and -top.fun <= 1e-9
+    assert audit_system._implicit_zeros(a, b).tolist() == reference.tolist()
+    among = reference | (rng.random(n) < 0.3)
+    assert audit_system._implicit_zeros(a, b, among=among).tolist() == reference.tolist()
+    assert not audit_system._implicit_zeros(a, b, among=np.zeros(n, bool)).any()
