@@ -389,7 +389,7 @@ class Audit:
                     low, high = seen  # an inner bound is enough: the count is at least this uncertain
                     exact_interval = False
                 else:
-                    low, high, duals, points = system.lp_interval(vector)
+                    low, high, duals, points = system.lp_interval(vector, hot=True)
                     self._pool.add(points)
             lo_int = max(0, math.ceil(low - 1e-6))
             hi_int = None if math.isinf(high) else math.floor(high + 1e-6)
@@ -410,6 +410,8 @@ class Audit:
                 intervals.update({name: Interval(name, lo_int, hi_int, exact_interval) for name in names})
             if interval.values < protection_width and self.box_atoms[box] not in seen_regions:
                 seen_regions.add(self.box_atoms[box])
+                if duals is not None:  # the counts to withhold come from a fresh solve's duals (hot: see lp_interval)
+                    duals = system.lp_interval(vector)[2]
                 weights = duals if duals else system.combination(vector)
                 findings.append(
                     Finding(

@@ -14,6 +14,11 @@ from scipy.sparse.csgraph import connected_components
 
 from .facts import AuditError
 
+try:  # HiGHS through scipy's own binding (scipy >= 1.15): a block's program kept between objectives
+    from scipy.optimize._highspy import _core as _highs
+except ImportError:  # pragma: no cover - an older scipy: every program is solved afresh by linprog
+    _highs = None
+
 # --- the equality system of one evaluation ----------------------------------------------------------------
 
 
@@ -32,6 +37,7 @@ class _Block:
     g: sparse.csr_matrix | None = None  # bound facts over this block's atoms: low <= g x <= high
     g_low: np.ndarray | None = None
     g_high: np.ndarray | None = None
+    hot: object | None = None  # the block's program in HiGHS, its last basis kept (:func:`_solve_hot`)
 
     def inequalities(self) -> tuple[sparse.csr_matrix | None, np.ndarray | None]:
         """The bound facts as ``A_ub x <= b_ub`` (None when the block has none)."""
@@ -117,7 +123,7 @@ class _System:
                 point = self.solution.copy()
                 mask = np.zeros(len(point), bool)
                 for block in self.blocks_of(direction):
-                    result = _solve(orientation * direction[block.atoms], block)
+                    result = _solve_hot(orientation * direction[block.atoms], block)
                     if result is not None:
                         point[block.atoms] = result[1]
                         mask[block.atoms] = True
@@ -125,10 +131,12 @@ class _System:
         return points
 
     def lp_interval(
-        self, vector: np.ndarray
+        self, vector: np.ndarray, hot: bool = False
     ) -> tuple[float, float, dict[int, float], list[tuple[np.ndarray, np.ndarray]]]:
         """Min and max of the vector's count over the LP relaxation (HiGHS dual simplex), the binding rows'
-        duals, and the optimal tables (feasible points for :class:`_Pool`)."""
+        duals, and the optimal tables (feasible points for :class:`_Pool`). ``hot``: each block's program
+        starts from the last basis HiGHS found for it (:func:`_solve_hot`): the same optima, found faster, but
+        where an optimum is not unique other duals and tables than a fresh solve's."""
         low = high = 0.0
         duals: dict[int, float] = {}
         points = []
@@ -136,7 +144,7 @@ class _System:
             point = self.solution.copy()
             mask = self.zero.copy()
             for block in self.blocks_of(vector):
-                result = _solve(sign * vector[block.atoms], block)
+                result = (_solve_hot if hot else _solve)(sign * vector[block.atoms], block)
                 if result is None:  # unbounded: only a maximum can be
                     high = math.inf
                     continue
@@ -199,6 +207,54 @@ def _solve(c: np.ndarray, block: _Block) -> tuple[float, np.ndarray, np.ndarray]
         raise AuditError("the audit's linear program did not solve; the release is withheld")
     marginals = np.asarray(result.eqlin.marginals) if a is not None else np.zeros(0)
     return float(result.fun), np.asarray(result.x), marginals
+
+
+def _solve_hot(c: np.ndarray, block: _Block) -> tuple[float, np.ndarray, np.ndarray] | None:
+    """:func:`_solve`, on the block's program kept in HiGHS: only the objective changes, so the last optimal
+    basis is still feasible and HiGHS starts from it (the spread tables' programs at 200 earlier releases: 2.8 s
+    solved afresh, 1.6 s kept). Any status but optimal or unbounded is solved afresh."""
+    if _highs is None:
+        return _solve(c, block)
+    if block.hot is None:
+        a, b = block.a[block.independent], block.b[block.independent]
+        parts, low, high = [a], [b], [b]
+        if block.g is not None and block.g.shape[0]:
+            parts.append(block.g)
+            low.append(block.g_low)
+            high.append(block.g_high)
+        matrix = sparse.vstack(parts).tocsc()
+        lp = _highs.HighsLp()
+        lp.num_col_, lp.num_row_ = matrix.shape[1], matrix.shape[0]
+        lp.col_cost_ = np.zeros(matrix.shape[1])
+        lp.col_lower_ = np.zeros(matrix.shape[1])
+        lp.col_upper_ = np.full(matrix.shape[1], np.inf)
+        lp.row_lower_ = np.concatenate(low).astype(float)
+        lp.row_upper_ = np.concatenate(high).astype(float)
+        lp.a_matrix_.format_ = _highs.MatrixFormat.kColwise
+        lp.a_matrix_.start_ = matrix.indptr
+        lp.a_matrix_.index_ = matrix.indices
+        lp.a_matrix_.value_ = matrix.data.astype(float)
+        program = _highs._Highs()
+        program.setOptionValue("output_flag", False)
+        program.setOptionValue("presolve", "off")
+        program.setOptionValue("simplex_strategy", 0)  # HiGHS chooses (primal from a kept basis); dual: 5x slower
+        if program.passModel(lp) == _highs.HighsStatus.kError:
+            return _solve(c, block)
+        block.hot = program
+    program = block.hot
+    program.changeColsCost(len(c), np.arange(len(c), dtype=np.int32), np.asarray(c, float))
+    program.run()
+    status = program.getModelStatus()
+    if status == _highs.HighsModelStatus.kUnbounded:
+        return None
+    if status != _highs.HighsModelStatus.kOptimal:
+        block.hot = None  # start afresh next time
+        return _solve(c, block)
+    solution = program.getSolution()
+    n_rows = len(block.independent)
+    x = np.asarray(solution.col_value, float)
+    marginals = np.asarray(solution.row_dual, float)[:n_rows]
+    return float(program.getInfo().objective_function_value), x, marginals
 
 
 class _Pool:

@@ -20,6 +20,11 @@ from site_agent.audit import system as audit_system
 from site_agent.audit.system import _build_system, _independent_rows, _interior
 
 
+def table_of(a: sparse.csr_matrix, b: np.ndarray) -> np.ndarray:
+    """One non-negative table with these row counts (scipy's linprog, any objective)."""
+    return linprog(np.zeros(a.shape[1]), A_eq=a.toarray(), b_eq=b, bounds=(0, None), method="highs").x
+
+
 def _history_like(seed: int, rows: int, atoms: int) -> tuple[sparse.csr_matrix, np.ndarray]:
     """Boxes as 0/1 rows over atoms, with totals that are sums of other rows (as a site's flow relations
     and repeated releases make them), and the counts of one table of whole numbers."""
@@ -55,17 +60,30 @@ def test_the_system_gives_the_intervals_of_every_row(seed: int) -> None:
         patch.setattr(audit_system, "_SKETCH_FROM", 0)
         system = _build_system(a, b, [None] * a.shape[0], np.zeros(n, bool))
     rng = np.random.default_rng(seed)
-    for _ in range(3):
+    # bound facts on a few boxes, as the rules' facts are (low <= count <= high), to test the kept program's rows
+    g = sparse.csr_matrix((rng.random((3, n)) < 0.1).astype(float))
+    inside = g @ table_of(a, b)
+    g_low, g_high = np.floor(0.5 * inside), np.ceil(inside) + 2.0
+    bounded = _build_system(a, b, [None] * a.shape[0], np.zeros(n, bool), g, g_low, g_high)
+    for _ in range(6):
         vector = (rng.random(n) < 0.2).astype(float)
-        low, high, _, _ = system.lp_interval(vector)
         # reference: scipy's linprog with every row, none dropped
-        ref_low = linprog(vector, A_eq=a.toarray(), b_eq=b, bounds=(0, None), method="highs")
-        ref_high = linprog(-vector, A_eq=a.toarray(), b_eq=b, bounds=(0, None), method="highs")
-        assert low == pytest.approx(ref_low.fun, abs=1e-6)
-        if ref_high.status == 3:
-            assert high == np.inf
-        else:
-            assert high == pytest.approx(-ref_high.fun, abs=1e-6)
+        for which, ub in ((system, False), (bounded, True)):
+            a_ub, b_ub = (None, None) if not ub else (np.vstack([g.toarray(), -g.toarray()]), np.r_[g_high, -g_low])
+            ref_low = linprog(vector, A_ub=a_ub, b_ub=b_ub, A_eq=a.toarray(), b_eq=b, bounds=(0, None), method="highs")
+            ref_high = linprog(
+                -vector, A_ub=a_ub, b_ub=b_ub, A_eq=a.toarray(), b_eq=b, bounds=(0, None), method="highs"
+            )
+            # each block's program solved afresh, and kept in HiGHS between objectives (hot)
+            for hot in (False, True):
+                low, high, _, points = which.lp_interval(vector, hot=hot)
+                assert low == pytest.approx(ref_low.fun, abs=1e-6)
+                if ref_high.status == 3:
+                    assert high == np.inf
+                else:
+                    assert high == pytest.approx(-ref_high.fun, abs=1e-6)
+                for point, mask in points:  # the optimal tables are tables: every row holds on them
+                    assert np.all(point[mask] >= -1e-7)
 
 
 def test_a_wrong_sketch_is_caught_and_the_exact_choice_made(monkeypatch: pytest.MonkeyPatch) -> None:
