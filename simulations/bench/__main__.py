@@ -50,6 +50,13 @@ def _table(results: dict[str, Any]) -> str:
                 f"audited releases of mixed analyses ({row['outcome']}) | {row['seconds']:.2f} s | "
                 f"{h['rows'][0]['seconds']:.3f} s (no history) | {ratio} | < 10 s at 200 | |"
             )
+        for refused in h.get("refused", []):  # a request refused against the whole history, after repair rounds
+            lines.append(
+                f"| disclosure audit, site history | request {refused['request']} ({refused['analyses']}) vs "
+                f"{h['rows'][-1]['earlier_releases']} audited releases (refused) | {refused['seconds']:.2f} s | "
+                f"{h['rows'][0]['seconds']:.3f} s (no history) | "
+                f"{refused['seconds'] / max(h['rows'][0]['seconds'], 1e-3):.0f}x | | |"
+            )
     for row in results.get("stats", []):
         lines.append(
             f"| univariate DL / REML | {row['sites']:,} sites | "

@@ -168,11 +168,12 @@ def run_history(work: Path, sizes: tuple[int, ...] = HISTORY, repeats: int = 2) 
     it (a release the audit refuses is not in the history); the time that took is reported too.
 
     The new release is the generator's next request that the site releases against the whole history: the
-    requests after the history are tried in turn (at most eight; those refused are counted, not timed), as a
-    coordinator whose request was refused would ask for another analysis. So the timed audit is one that
-    releases, not one that ends in a refusal. (With this generator's 200 releases the next request, 2x2 tables at
-    two moved thresholds, is refused: together with the history it would let a count the policy hides be worked
-    out. The one after it, the 2x2 table and ROC bands, is released.) The same release is then timed with
+    requests after the history are tried in turn (at most eight; those refused are counted and timed once, as
+    ``refused``: repair rounds before the refusal multiply the cost), as a coordinator whose request was refused
+    would ask for another analysis. So the rows time an audit that releases, not one that ends in a refusal.
+    (With this generator's 200 releases the next request, 2x2 tables at two moved thresholds, is refused:
+    together with the history it would let a count the policy hides be worked out. The one after it, the 2x2
+    table and ROC bands, is released.) The same release is then timed with
     no history and with the first 50 and the first 200 earlier releases.
     """
     from federation.protocol import PolicyViolation
@@ -195,15 +196,20 @@ def run_history(work: Path, sizes: tuple[int, ...] = HISTORY, repeats: int = 2) 
         request += 1
     built = time.perf_counter() - built
     history_requests = request
-    new_refused = 0
+    new_refused: list[dict[str, Any]] = []
     for request in range(history_requests, history_requests + 8):  # the next request the site releases
         counts = _counts(site, _mixed_specs(request))
+        started = time.perf_counter()
         try:
             _protect(site, counts, earlier, "new")
             break
         except PolicyViolation:
-            new_refused += 1
-            say(f"  request {request + 1} ({_kind(request)}) refused against the whole history; the next one")
+            seconds = time.perf_counter() - started
+            new_refused.append({"request": request + 1, "analyses": _kind(request), "seconds": round(seconds, 3)})
+            say(
+                f"  request {request + 1} ({_kind(request)}) refused against the whole history after {seconds:.2f} s;"
+                " the next one"
+            )
     rows = []
     for size in sizes:
         seconds, outcome, grouped, atoms, constraints = [], "released", None, None, None
@@ -239,7 +245,8 @@ def run_history(work: Path, sizes: tuple[int, ...] = HISTORY, repeats: int = 2) 
     return {
         "counts_in_release": len(counts.values),
         "new_release": f"request {request + 1} of the generator ({_kind(request)})",
-        "new_requests_refused": new_refused,
+        "new_requests_refused": len(new_refused),
+        "refused": new_refused,
         "rows": rows,
         "history_requests": history_requests,
         "history_refused": refused,
