@@ -212,49 +212,57 @@ def _solve(c: np.ndarray, block: _Block) -> tuple[float, np.ndarray, np.ndarray]
 def _solve_hot(c: np.ndarray, block: _Block) -> tuple[float, np.ndarray, np.ndarray] | None:
     """:func:`_solve`, on the block's program kept in HiGHS: only the objective changes, so the last optimal
     basis is still feasible and HiGHS starts from it (the spread tables' programs at 200 earlier releases: 2.8 s
-    solved afresh, 1.6 s kept). Any status but optimal or unbounded is solved afresh."""
+    solved afresh, 1.6 s kept). Only an optimum is taken from it; any other status (unbounded included, which
+    would widen an interval to infinity) is solved afresh by :func:`_solve`."""
+    global _highs
     if _highs is None:
         return _solve(c, block)
-    if block.hot is None:
-        a, b = block.a[block.independent], block.b[block.independent]
-        parts, low, high = [a], [b], [b]
-        if block.g is not None and block.g.shape[0]:
-            parts.append(block.g)
-            low.append(block.g_low)
-            high.append(block.g_high)
-        matrix = sparse.vstack(parts).tocsc()
-        lp = _highs.HighsLp()
-        lp.num_col_, lp.num_row_ = matrix.shape[1], matrix.shape[0]
-        lp.col_cost_ = np.zeros(matrix.shape[1])
-        lp.col_lower_ = np.zeros(matrix.shape[1])
-        lp.col_upper_ = np.full(matrix.shape[1], np.inf)
-        lp.row_lower_ = np.concatenate(low).astype(float)
-        lp.row_upper_ = np.concatenate(high).astype(float)
-        lp.a_matrix_.format_ = _highs.MatrixFormat.kColwise
-        lp.a_matrix_.start_ = matrix.indptr
-        lp.a_matrix_.index_ = matrix.indices
-        lp.a_matrix_.value_ = matrix.data.astype(float)
-        program = _highs._Highs()
-        program.setOptionValue("output_flag", False)
-        program.setOptionValue("presolve", "off")
-        program.setOptionValue("simplex_strategy", 0)  # HiGHS chooses (primal from a kept basis); dual: 5x slower
-        if program.passModel(lp) == _highs.HighsStatus.kError:
+    try:
+        if block.hot is None:
+            block.hot = _kept_program(block)
+        program = block.hot
+        program.changeColsCost(len(c), np.arange(len(c), dtype=np.int32), np.asarray(c, float))
+        program.run()
+        if program.getModelStatus() != _highs.HighsModelStatus.kOptimal:
+            block.hot = None  # start afresh next time
             return _solve(c, block)
-        block.hot = program
-    program = block.hot
-    program.changeColsCost(len(c), np.arange(len(c), dtype=np.int32), np.asarray(c, float))
-    program.run()
-    status = program.getModelStatus()
-    if status == _highs.HighsModelStatus.kUnbounded:
-        return None
-    if status != _highs.HighsModelStatus.kOptimal:
-        block.hot = None  # start afresh next time
+        solution = program.getSolution()
+        x = np.asarray(solution.col_value, float)
+        marginals = np.asarray(solution.row_dual, float)[: len(block.independent)]
+        return float(program.getInfo().objective_function_value), x, marginals
+    except (AttributeError, TypeError, ValueError):  # scipy's private binding changed: linprog from now on
+        _highs = None
+        block.hot = None
         return _solve(c, block)
-    solution = program.getSolution()
-    n_rows = len(block.independent)
-    x = np.asarray(solution.col_value, float)
-    marginals = np.asarray(solution.row_dual, float)[:n_rows]
-    return float(program.getInfo().objective_function_value), x, marginals
+
+
+def _kept_program(block: _Block) -> object:
+    """The block's program in HiGHS (equalities, bound facts as ranged rows, atoms >= 0), objective to come."""
+    a, b = block.a[block.independent], block.b[block.independent]
+    parts, low, high = [a], [b], [b]
+    if block.g is not None and block.g.shape[0]:
+        parts.append(block.g)
+        low.append(block.g_low)
+        high.append(block.g_high)
+    matrix = sparse.vstack(parts).tocsc()
+    lp = _highs.HighsLp()
+    lp.num_col_, lp.num_row_ = matrix.shape[1], matrix.shape[0]
+    lp.col_cost_ = np.zeros(matrix.shape[1])
+    lp.col_lower_ = np.zeros(matrix.shape[1])
+    lp.col_upper_ = np.full(matrix.shape[1], np.inf)
+    lp.row_lower_ = np.concatenate(low).astype(float)
+    lp.row_upper_ = np.concatenate(high).astype(float)
+    lp.a_matrix_.format_ = _highs.MatrixFormat.kColwise
+    lp.a_matrix_.start_ = matrix.indptr
+    lp.a_matrix_.index_ = matrix.indices
+    lp.a_matrix_.value_ = matrix.data.astype(float)
+    program = _highs._Highs()
+    program.setOptionValue("output_flag", False)
+    program.setOptionValue("presolve", "off")
+    program.setOptionValue("simplex_strategy", 0)  # HiGHS chooses (primal from a kept basis); dual: 5x slower
+    if program.passModel(lp) == _highs.HighsStatus.kError:
+        raise ValueError("HiGHS did not take the program")
+    return program
 
 
 class _Pool:
