@@ -4,7 +4,8 @@ A large part's row choice runs on a random sketch of the atoms (``site_agent.aud
 these tests lower ``_SKETCH_FROM`` so that their small systems take that path too) and is then proved (every
 dropped row must lie in the row space of the blocks built without it). These tests check the choice against
 numpy's rank (``numpy.linalg.matrix_rank``, an SVD) and the system's intervals against scipy's ``linprog`` on
-every row, and play a wrong choice to see that the proof catches it.
+every row (each block's program solved afresh, and kept in HiGHS between objectives), and play a wrong choice
+to see that the proof catches it.
 """
 
 from __future__ import annotations
