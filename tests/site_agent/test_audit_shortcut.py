@@ -12,6 +12,8 @@ tests/site_agent/test_audit_groups.py checks against the full model, and that on
 
 from __future__ import annotations
 
+from collections.abc import Callable
+
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
@@ -20,12 +22,12 @@ from site_agent.audit import Audit, ReleaseFacts
 from .test_audit_groups import DOMAINS, facts, records, release, requests
 
 
-def _replay(audit: Audit, values: dict[str, int | None], rules: dict[str, str], k: int) -> list[tuple]:
+def _replay(audit: Audit | Callable[[], Audit], values: dict[str, int | None], rules: dict[str, str], k: int) -> list:
     """Audit, withhold the first candidate of each finding (by name, as protect's fixed order does), audit again:
-    what each round decided."""
+    what each round decided. ``audit``: one audit for every round, or a function giving each round its own."""
     values, rules, rounds = dict(values), dict(rules), []
     for _ in range(8):
-        result = audit.evaluate(values, k, True, 2, current_rules=rules)
+        result = (audit if isinstance(audit, Audit) else audit()).evaluate(values, k, True, 2, current_rules=rules)
         rounds.append(
             (result.ok, result.unrepairable, [(f.kind, f.release, f.names, f.candidates) for f in result.findings])
         )
@@ -74,24 +76,6 @@ def test_a_grouped_history_takes_the_shortcut_only_when_the_full_model_is_too_la
     assert not too_large._full
 
 
-def _replay_fresh(make, values: dict[str, int | None], rules: dict[str, str], k: int) -> list[tuple]:  # noqa: ANN001
-    """As :func:`_replay`, but each round on a new audit (nothing carried over from the round before)."""
-    values, rules, rounds = dict(values), dict(rules), []
-    for _ in range(8):
-        result = make().evaluate(values, k, True, 2, current_rules=rules)
-        rounds.append(
-            (result.ok, result.unrepairable, [(f.kind, f.release, f.names, f.candidates) for f in result.findings])
-        )
-        if result.ok or result.unrepairable:
-            break
-        for finding in result.findings:
-            open_candidates = [c for c in finding.candidates if values.get(c) is not None]
-            if open_candidates:
-                values[open_candidates[0]] = None
-                rules[open_candidates[0]] = "audit"
-    return rounds
-
-
 @settings(max_examples=25, deadline=None, suppress_health_check=[HealthCheck.too_slow])
 @given(st.integers(0, 10_000), st.integers(40, 160), requests, st.sampled_from([3, 5, 10]))
 def test_a_repair_round_decides_as_a_fresh_audit_would(seed: int, n: int, history, k: int) -> None:  # noqa: ANN001
@@ -105,4 +89,4 @@ def test_a_repair_round_decides_as_a_fresh_audit_would(seed: int, n: int, histor
     for values, given_rules in ((released, rules), (dict(releases[-1].values), {})):
         for group in (True, False):
             carried = _replay(Audit(earlier, current, group=group), values, given_rules, k)
-            assert carried == _replay_fresh(lambda g=group: Audit(earlier, current, group=g), values, given_rules, k)
+            assert carried == _replay(lambda g=group: Audit(earlier, current, group=g), values, given_rules, k)
