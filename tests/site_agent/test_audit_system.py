@@ -149,3 +149,18 @@ def test_implicit_zeros_asked_about_some_atoms_agree_with_every_atom_asked(seed:
     among = reference | (rng.random(n) < 0.3)
     assert audit_system._implicit_zeros(a, b, among=among).tolist() == reference.tolist()
     assert not audit_system._implicit_zeros(a, b, among=np.zeros(n, bool)).any()
+
+
+def test_without_scipy_s_highs_binding_every_program_is_solved_afresh(monkeypatch: pytest.MonkeyPatch) -> None:
+    # The kept programs use scipy's private HiGHS binding; without it (an older scipy), or when it no longer has
+    # what the audit calls, each program is solved by linprog and the intervals are the same.
+    a, b = _history_like(3, 12, 120)
+    n = a.shape[1]
+    vectors = [(np.random.default_rng(j).random(n) < 0.2).astype(float) for j in range(4)]
+    expected = [_build_system(a, b, [None] * a.shape[0], np.zeros(n, bool)).lp_interval(v)[:2] for v in vectors]
+    for binding in (None, object()):  # missing; present but without the calls the audit makes
+        monkeypatch.setattr(audit_system, "_highs", binding)
+        system = _build_system(a, b, [None] * a.shape[0], np.zeros(n, bool))
+        for vector, (low, high) in zip(vectors, expected, strict=True):
+            assert system.lp_interval(vector, hot=True)[:2] == pytest.approx((low, high), abs=1e-6)
+        assert audit_system._highs is None  # a binding that failed is not tried again
