@@ -153,7 +153,6 @@ class Audit:
             self.relation_rows = sparse.vstack([self.relation_rows, separators]).tocsr()
         self.structural_zero = self._structural_zeros()
         self._pool = _Pool()
-        self._zeros: tuple[sparse.csr_matrix, dict[int, int], np.ndarray] | None = None
 
     def _relation_rows(self) -> sparse.csr_matrix:
         """Each relation ``total = sum(parts)`` as a homogeneous row over the atoms (duplicates dropped)."""
@@ -332,14 +331,16 @@ class Audit:
             if value == 0:
                 released_zero[self.box_index[box]] = True
         g, g_low, g_high = self._bound_rows(current_values, current_rules, known)
-        system = _build_system(a, b, row_box, zero | released_zero, g, g_low, g_high, self._maybe_zero(known))
-        self._zeros = (self.incidence, dict(known), system.zero.copy())
+        # A repair round withholds more of the audited release: every table the round before allowed is still
+        # allowed, so only the atoms it left empty can be empty now (the pool keeps them while that holds).
+        self._pool.valid_for(known)
+        system = _build_system(a, b, row_box, zero | released_zero, g, g_low, g_high, self._pool.zero)
+        self._pool.zero = system.zero.copy()
 
         findings: list[Finding] = []
         seen_regions: set[frozenset[int]] = set()
         intervals: dict[str, Interval] = {}
 
-        self._pool.valid_for(known)
         targets = self._targets(current_values, first)
         vectors = {box: self._vector(box) for box in targets}
         batch = system.residuals(np.stack(list(vectors.values()))) if vectors else np.zeros(0)
@@ -436,17 +437,6 @@ class Audit:
             unrepairable=any(not f.candidates for f in findings),
             grouped=self.cells is not None,
         )
-
-    def _maybe_zero(self, known: dict[int, int]) -> np.ndarray | None:
-        """The atoms that can still be empty in every table, when the last evaluation had these facts and more
-        (a repair round withholds more of the audited release): every table it allowed is allowed now, so an
-        atom some table filled then can be filled now. None when that is not known."""
-        if self._zeros is None:
-            return None
-        incidence, earlier_known, earlier_zero = self._zeros
-        if incidence is not self.incidence or any(earlier_known.get(box) != value for box, value in known.items()):
-            return None
-        return earlier_zero
 
     def _vector(self, box: int) -> np.ndarray:
         vector = np.zeros(self.incidence.shape[1])

@@ -269,17 +269,20 @@ class _Pool:
     """Feasible tables found so far (LP optima). A count's LP interval contains its value in each of them, so
     two tables whose values lie far enough apart certify a count without solving its two LPs. Removing
     released counts (more suppression) only enlarges the feasible set, so the tables stay valid while the
-    released counts are a subset of those they were found for."""
+    released counts are a subset of those they were found for, and so does ``zero``: an atom some table filled
+    then can be filled now."""
 
     def __init__(self) -> None:
         self.known: dict[int, int] = {}
         self.points: list[np.ndarray] = []
         self.masks: list[np.ndarray] = []  # atoms on which each point is a feasible table (its solved blocks)
         self._stacked: tuple[np.ndarray, np.ndarray] | None = None
+        # atoms empty in every table of the last system built: a superset of those empty now (None: not known)
+        self.zero: np.ndarray | None = None
 
     def valid_for(self, known: dict[int, int]) -> None:
         if not all(self.known.get(box) == value for box, value in known.items()):
-            self.known, self.points, self.masks, self._stacked = dict(known), [], [], None
+            self.known, self.points, self.masks, self._stacked, self.zero = dict(known), [], [], None, None
         else:
             self.known = dict(known)
 
@@ -316,7 +319,7 @@ def _build_system(
     """Split ``a x = b`` (with the bound facts ``g_low <= g x <= g_high``) into independent blocks, fix each
     block's implicit zeros and factorise its equalities (SVD). ``maybe_zero``: the only atoms that can be
     empty in every table (None: any), when a system with more facts over the same atoms was solved before
-    (``check.Audit._maybe_zero``)."""
+    (:attr:`_Pool.zero`)."""
     n_atoms = a.shape[1]
     keep = np.flatnonzero(~zero)
     a_live = a[:, keep].tocsr()

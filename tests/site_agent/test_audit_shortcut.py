@@ -79,7 +79,7 @@ def test_a_grouped_history_takes_the_shortcut_only_when_the_full_model_is_too_la
 @settings(max_examples=25, deadline=None, suppress_health_check=[HealthCheck.too_slow])
 @given(st.integers(0, 10_000), st.integers(40, 160), requests, st.sampled_from([3, 5, 10]))
 def test_a_repair_round_decides_as_a_fresh_audit_would(seed: int, n: int, history, k: int) -> None:  # noqa: ANN001
-    # A repair round reuses what the round before found (the atoms some table fills, Audit._maybe_zero; the
+    # A repair round reuses what the round before found (the atoms some table fills, _Pool.zero; the
     # feasible tables of _Pool); a new audit per round starts from nothing. Both must decide alike.
     data = records(seed, n)
     releases = [release(data, kind, cut, age) for kind, cut, age in history]
