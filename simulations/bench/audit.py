@@ -245,7 +245,6 @@ def run_history(work: Path, sizes: tuple[int, ...] = HISTORY, repeats: int = 2) 
     return {
         "counts_in_release": len(counts.values),
         "new_release": f"request {request + 1} of the generator ({_kind(request)})",
-        "new_requests_refused": len(new_refused),
         "refused": new_refused,
         "rows": rows,
         "history_requests": history_requests,

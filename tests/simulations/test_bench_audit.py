@@ -39,7 +39,6 @@ def test_the_history_stage_times_a_refused_request_and_the_release_after_it(
     base = result["rows"][0]["seconds"]
     assert result["rows"][1]["ratio_to_no_history"] == round(result["rows"][1]["seconds"] / max(base, 1e-3), 1)
     # request 5 refused (timed, counted), request 6 timed in the rows
-    assert result["new_requests_refused"] == 1
     assert [r["request"] for r in result["refused"]] == [5] and result["refused"][0]["seconds"] >= 0
     assert result["new_release"].startswith("request 6 ")
     table = bench_main._table({"audit_history": result})
