@@ -11,7 +11,8 @@ and cutting back other analyses so that the primary table survives.
    the site, to every study; where a hidden count (or a small region found by differencing) could be
    worked out, it suppresses more counts of this release (other analyses before the primary table, in the
    fixed order :data:`CUT_ORDER`, then by name) and checks again. What each rule tells (a count withheld
-   for the minimum cell size lies in 1..k−1) is a fact the audit takes into account.
+   for the minimum cell size lies in 1..k−1; one withheld by the complementary rule or the audit was not
+   small) is a fact the audit takes into account.
 4. **The primary table comes first.** When cells of the primary table (the flow and the 2×2 table at the
    bundle's threshold) would be withheld beyond what the table alone needs, the analyses whose counts the
    audit found exposed at the primary table's cost are cut back (withheld in full, subgroups variable by
@@ -37,6 +38,7 @@ from typing import TYPE_CHECKING, Any
 from federation.protocol import PolicyViolation
 
 from .audit import SCORED, STATUS, AuditResult, Finding, ReleaseFacts, normalise
+from .audit.facts import NOT_SMALL_RULES, withheld_bounds
 
 if TYPE_CHECKING:
     from .audit.check import Audit
@@ -157,6 +159,7 @@ class Protected:
         released (and the rule that withheld it where it was not), the relations between counts and the
         policy the release states. Stored in the ledger with the release."""
         rules = self.rules
+        zero = _zero(counts.values, rules)
         return {
             "bundle": self.bundle,
             "policy": {"min_cell_size": self.min_cell_size, "allow_zero": self.allow_zero},
@@ -167,6 +170,7 @@ class Protected:
                     **counts.definitions[name].to_dict(),
                     "value": self.released[name],
                     **({"rule": rules[name]} if name in rules else {}),
+                    **({"zero": zero[name]} if name in zero else {}),
                 }
                 for name in sorted(counts.values)
             ],
@@ -180,6 +184,12 @@ class Protected:
             "cut_back": [dict(c) for c in self.cut_back],
             "audit": self.audit.to_dict() if self.audit is not None else None,
         }
+
+
+def _zero(values: Mapping[str, int], rules: Mapping[str, str]) -> dict[str, bool]:
+    """Which counts withheld as not small (:data:`~.audit.facts.NOT_SMALL_RULES`) are 0: the branch of the
+    fact "0, or at least k" the audit takes (site side only: the ledger keeps it, no release carries it)."""
+    return {name: values[name] == 0 for name, rule in rules.items() if rule in NOT_SMALL_RULES}
 
 
 def check_definitions(counts: CountSet, policy: Any) -> None:
@@ -358,15 +368,15 @@ def _protect_once(context: tuple, primary: frozenset[str], dropped: frozenset[st
     for _ in range(MAX_AUDIT_ROUNDS):
         current = {name: (None if name in suppressed else value) for name, value in values.items()}
         rules = {name: rule_of(reasons.get(name, "audit")) for name in suppressed}
+        zero = _zero(values, rules)
         fast = None
         if lone and width >= 1:
-            low = 1 if allow_zero else 0
-            bounds = {n: (low, k - 1) for n, r in rules.items() if r == "minimum_cell_size"}
+            bounds = withheld_bounds(rules, zero, k, allow_zero)
             fast = tree_audit(counts.definitions, current, bounds, k, allow_zero, width)
         if fast is not None:
             result = fast
             break
-        result = audit().evaluate(current, k, allow_zero, width, current_rules=rules)
+        result = audit().evaluate(current, k, allow_zero, width, current_rules=rules, current_zero=zero)
         if result.ok:
             break
         added: set[str] = set()

@@ -4,14 +4,17 @@ Disclosure control names each withheld count's rule (never its value):
 
 ``minimum_cell_size``  primary suppression: the count is in 1..k−1 (0..k−1 when the policy hides zeros);
 ``complementary``      secondary suppression: hidden so that a primary-suppressed count cannot be recomputed
-                       from a total and its parts; chosen by a fixed rule that does not look at values;
+                       from a total and its parts; chosen by a fixed rule that does not look at values; the
+                       count was not small (primary suppression ran first): 0 or at least k (at least k
+                       when zeros are hidden);
 ``audit``              hidden after the disclosure audit (otherwise a count, or a small region found by
-                       differencing, could be worked out from every release the site made);
+                       differencing, could be worked out from every release the site made); not small, as
+                       for ``complementary``;
 ``coarsened``          an analysis cut back so that the primary table survives (the release's ``cut_back``
                        list says which and why).
 
 The recipient is told the rule because a recipient who knows the algorithm can work it out anyway; the
-audit therefore treats it as a fact (a ``minimum_cell_size`` count lies in 1..k−1). Each part of a release
+audit therefore treats it as a fact (:func:`site_agent.audit.facts.withheld_bounds`). Each part of a release
 that has a ``suppressed`` list gets a ``suppressed_by`` object with the same names as keys.
 """
 
@@ -33,7 +36,7 @@ def rule_of(reason: str) -> str:
 def _mark(part: dict[str, Any], prefix: str, rules: Mapping[str, str]) -> None:
     hidden = part.get("suppressed")
     if isinstance(hidden, list):
-        # A name the map lacks is marked "audit": the weakest claim (nothing known about its value).
+        # protect names the rule of every count it withheld; a name the map lacks is marked "audit"
         part["suppressed_by"] = {str(n): rules.get(prefix + str(n), "audit") for n in hidden}
 
 

@@ -20,7 +20,9 @@ for an ONNX graph, those a record or a random input reaches), so a score band is
 
 1. Every suppressed count, of this release and of every earlier release of the site: its feasible interval
    ``[min, max]`` (two linear programs, HiGHS through :func:`scipy.optimize.linprog`) must hold at least
-   ``protection_width`` whole numbers (default 2: it can never be worked out exactly).
+   ``protection_width`` whole numbers (default 2: it can never be worked out exactly). The facts include
+   what each count's withholding rule tells (:func:`~.facts.withheld_bounds`); a count withheld as not small
+   whose value is 0 (zeros shown) is fixed at 0 and is no target.
 2. Differencing: every atom, and every difference ``F \\ G`` of two nested boxes (``G`` inside ``F``), must
    not be exactly determined with a value the policy would suppress (1..k−1, and 0 when zeros may not be
    shown). A region is exactly determined when its indicator vector lies in the row space of the equality

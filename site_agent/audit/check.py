@@ -225,11 +225,14 @@ class Audit:
         protection_width: int = 2,
         exact: bool = True,
         current_rules: Mapping[str, str] | None = None,
+        current_zero: Mapping[str, bool] | None = None,
     ) -> AuditResult:
         """Check every suppressed count and every differencing region; see the module docstring.
 
-        ``current_rules`` names the rule that withheld each count of the audited release; what the rules tell
-        (a ``minimum_cell_size`` count lies in 1..k−1) is a fact, as it is for every earlier release.
+        ``current_rules`` names the rule that withheld each count of the audited release, and ``current_zero``
+        says which of those withheld as not small are 0; what the rules tell (a ``minimum_cell_size`` count
+        lies in 1..k−1, a ``complementary`` one is not small: :func:`~.facts.withheld_bounds`) is a fact, as it
+        is for every earlier release.
         """
         # One BLAS thread: the factorisations are small, and threads fighting for two busy cores made them
         # hundreds of times slower.
@@ -237,7 +240,7 @@ class Audit:
         if _CONTROLLER is None:  # scanning the loaded libraries costs more than a small audit: once per process
             _CONTROLLER = ThreadpoolController()
         with _CONTROLLER.limit(limits=1, user_api="blas"):
-            rules = current_rules or {}
+            rules = (current_rules or {}, current_zero or {})
             if self._grouped is not None and self._too_large and self.shortcut:
                 # The full model is too large to decide, so the grouped model's own findings do. Its clear-only
                 # pass would decide the same: it is clear only where this evaluation is (every check it makes is
@@ -276,12 +279,16 @@ class Audit:
             return self._evaluate(current_values, min_cell_size, allow_zero, protection_width, exact, rules)
 
     def _bound_rows(
-        self, current_values: Mapping[str, int | None], current_rules: Mapping[str, str], known: dict[int, int]
-    ) -> tuple[sparse.csr_matrix, np.ndarray, np.ndarray]:
-        """The rules' facts as rows ``low <= count <= high`` over the atoms, one per withheld box."""
+        self,
+        current_values: Mapping[str, int | None],
+        current_rules: tuple[Mapping[str, str], Mapping[str, bool]],
+        known: dict[int, int],
+    ) -> tuple[sparse.csr_matrix, np.ndarray, np.ndarray, set[int]]:
+        """The rules' facts as rows ``low <= count <= high`` over the atoms, one per withheld box, and the boxes
+        a fact says are empty (their atoms are fixed at zero like a shown 0's, instead of a row)."""
         bounds: dict[int, tuple[float, float]] = {}
         for r, release in enumerate(self.releases):
-            facts = release.bounds(current_rules if r == self.current else None)
+            facts = release.bounds(*current_rules) if r == self.current else release.bounds()
             for name, (low, high) in facts.items():
                 statement = self.by_name[r].get(name)
                 if statement is None or statement.box is None or statement.box in known:
@@ -290,12 +297,13 @@ class Audit:
                     continue
                 old = bounds.get(statement.box, (0.0, math.inf))
                 bounds[statement.box] = (max(old[0], low), min(old[1], high))
-        boxes = sorted(bounds)
         n_atoms = self.incidence.shape[1]
+        empty = {j for j, (_, high) in bounds.items() if high <= 0}
+        boxes = sorted(set(bounds) - empty)
         if not boxes:
-            return sparse.csr_matrix((0, n_atoms)), np.zeros(0), np.zeros(0)
+            return sparse.csr_matrix((0, n_atoms)), np.zeros(0), np.zeros(0), empty
         rows = self.incidence[boxes]
-        return rows, np.array([bounds[j][0] for j in boxes]), np.array([bounds[j][1] for j in boxes])
+        return rows, np.array([bounds[j][0] for j in boxes]), np.array([bounds[j][1] for j in boxes]), empty
 
     def _evaluate(
         self,
@@ -304,12 +312,13 @@ class Audit:
         allow_zero: bool,
         protection_width: int,
         exact: bool,
-        current_rules: Mapping[str, str],
+        current_rules: tuple[Mapping[str, str], Mapping[str, bool]],
         clear_only: bool = False,
     ) -> AuditResult | None:
-        """The audit over this object's atoms. ``clear_only`` (the grouped model): None unless the answer is
-        clear (nothing found, and every suppressed count's interval too wide for integer programs to matter),
-        and every interval of the audited release an exact LP interval."""
+        """The audit over this object's atoms (``current_rules``: the audited release's rules and zeros).
+        ``clear_only`` (the grouped model): None unless the answer is clear (nothing found, and every
+        suppressed count's interval too wide for integer programs to matter), and every interval of the audited
+        release an exact LP interval."""
         started = time.perf_counter()
         self._k = min_cell_size
         n_atoms = self.incidence.shape[1]
@@ -330,7 +339,9 @@ class Audit:
         for box, value in known.items():
             if value == 0:
                 released_zero[self.box_index[box]] = True
-        g, g_low, g_high = self._bound_rows(current_values, current_rules, known)
+        g, g_low, g_high, empty = self._bound_rows(current_values, current_rules, known)
+        for box in empty:
+            zero[self.box_index[box]] = True
         # A repair round withholds more of the audited release: every table the round before allowed is still
         # allowed, so only the atoms it left empty can be empty now (the pool keeps them while that holds).
         self._pool.valid_for(known)
@@ -341,7 +352,9 @@ class Audit:
         seen_regions: set[frozenset[int]] = set()
         intervals: dict[str, Interval] = {}
 
-        targets = self._targets(current_values, first)
+        # A count withheld as not small whose value is 0 is fixed at 0 (the branch it is in) and is no target:
+        # the recipient knows only "0, or at least k", and a 0 is a count this policy shows.
+        targets = {box: v for box, v in self._targets(current_values, first).items() if box not in empty}
         vectors = {box: self._vector(box) for box in targets}
         batch = system.residuals(np.stack(list(vectors.values()))) if vectors else np.zeros(0)
         residuals = dict(zip(vectors, batch.tolist(), strict=True))

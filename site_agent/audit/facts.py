@@ -20,6 +20,35 @@ OTHER = "\x00other"  # the categorical cell for every value no definition names 
 MAX_ATOMS = 200_000
 MILP_MAX_ATOMS = 60  # integer programs run where a count's blocks are this small (cheap); else inward rounding
 _TOL = 1e-7
+# Rules that withhold a count only after primary suppression has run: the count was not small (0 or at least
+# k when zeros are shown, at least k when they are not). ``coarsened`` withholds a whole part whatever its values.
+NOT_SMALL_RULES = ("complementary", "audit")
+
+
+def withheld_bounds(
+    rules: Mapping[str, str], zero: Mapping[str, bool], min_cell_size: int, allow_zero: bool
+) -> dict[str, tuple[float, float]]:
+    """What the rules tell a recipient who knows the algorithm about each withheld count, as ``(low, high)``.
+
+    ``minimum_cell_size``: 1..k−1 (0..k−1 when zeros are hidden). ``complementary`` and ``audit``: not small.
+    When zeros are hidden that is ``k..``; when they are shown it is the disjunction "0, or k..", which is not a
+    linear fact, so the audit takes the branch the count is really in (``zero[name]``): the recipient can
+    only know less than that, so every interval the audit computes is at most as wide as the recipient's. A
+    count whose branch is unknown (a ledger entry written before it was recorded) gets no fact.
+    """
+    if min_cell_size < 1:
+        return {}
+    small_low = 1 if allow_zero else 0
+    out: dict[str, tuple[float, float]] = {}
+    for name, rule in rules.items():
+        if rule == "minimum_cell_size":
+            out[name] = (small_low, min_cell_size - 1)
+        elif rule in NOT_SMALL_RULES:
+            if not allow_zero:
+                out[name] = (min_cell_size, math.inf)
+            elif name in zero:
+                out[name] = (0, 0) if zero[name] else (min_cell_size, math.inf)
+    return out
 
 
 class AuditError(PolicyViolation):
@@ -46,6 +75,7 @@ class ReleaseFacts:
     allow_zero: bool = True
     domains: Mapping[str, Mapping[str, Any]] = field(default_factory=dict)  # feature -> schema entry
     models: Mapping[str, Mapping[str, Any]] = field(default_factory=dict)  # "score"/"score.compare" -> model
+    zero: Mapping[str, bool] = field(default_factory=dict)  # count withheld as not small -> its value is 0
 
     @classmethod
     def from_dict(cls, label: str, raw: Any, bundle: str = "") -> ReleaseFacts:
@@ -55,6 +85,7 @@ class ReleaseFacts:
         definitions = {c["name"]: CountDef.from_dict(c) for c in counts}
         values = {c["name"]: c.get("value") for c in counts}
         rules = {c["name"]: str(c["rule"]) for c in counts if c.get("value") is None and c.get("rule")}
+        zero = {c["name"]: c["zero"] for c in counts if c.get("value") is None and isinstance(c.get("zero"), bool)}
         rels = tuple(Relation(r["total"], tuple(r["parts"])) for r in relations)
         policy = raw.get("policy", {}) if isinstance(raw, dict) else {}
         return cls(
@@ -68,17 +99,20 @@ class ReleaseFacts:
             bool(policy.get("allow_zero", True)),
             dict(raw.get("domains", {})) if isinstance(raw, dict) else {},
             dict(raw.get("models", {})) if isinstance(raw, dict) else {},
+            zero,
         )
 
-    def bounds(self, rules: Mapping[str, str] | None = None) -> dict[str, tuple[int, int]]:
-        """What the rules tell about withheld counts: ``minimum_cell_size`` means 1..k−1 (0..k−1 when zeros
-        are hidden); the other rules tell nothing about the value (their choice does not look at values)."""
-        k = self.min_cell_size
-        if k < 1:
-            return {}
-        low = 1 if self.allow_zero else 0
-        chosen = self.rules if rules is None else rules
-        return {n: (low, k - 1) for n, r in chosen.items() if r == "minimum_cell_size"}
+    def bounds(
+        self, rules: Mapping[str, str] | None = None, zero: Mapping[str, bool] | None = None
+    ) -> dict[str, tuple[float, float]]:
+        """What the rules tell about withheld counts (:func:`withheld_bounds`); ``rules`` and ``zero`` replace
+        the release's own (the release being audited has its rules only while it is protected)."""
+        return withheld_bounds(
+            self.rules if rules is None else rules,
+            self.zero if zero is None else zero,
+            self.min_cell_size,
+            self.allow_zero,
+        )
 
 
 @dataclass(frozen=True)

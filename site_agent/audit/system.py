@@ -43,7 +43,8 @@ class _Block:
         """The bound facts as ``A_ub x <= b_ub`` (None when the block has none)."""
         if self.g is None or self.g.shape[0] == 0:
             return None, None
-        return sparse.vstack([self.g, -self.g]).tocsr(), np.concatenate([self.g_high, -self.g_low])
+        bounded = np.isfinite(self.g_high)  # "at least k" has no upper bound
+        return sparse.vstack([self.g[bounded], -self.g]).tocsr(), np.concatenate([self.g_high[bounded], -self.g_low])
 
 
 @dataclass

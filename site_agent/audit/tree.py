@@ -5,7 +5,8 @@ outcome and one score threshold, the boxes form a *laminar* family (any two are 
 read ⊃ analysed ⊃ with / without the condition ⊃ the 2×2 cells, and the exclusions. Over such a tree the
 linear programs of :mod:`site_agent.audit.check` have closed forms, computed exactly over whole numbers:
 
-- the feasible range of every count is its own range (released value, or the withheld rule's 1..k−1)
+- the feasible range of every count is its own range (released value, or what the withheld rule tells:
+  1..k−1, or for a count withheld as not small 0 or k.., :func:`~.facts.withheld_bounds`)
   intersected with the sum of its children's ranges (bottom up) and with its parent's range minus its
   siblings' ranges (top down); two passes are exact on a tree (sums of whole-number intervals are
   whole-number intervals);
@@ -153,7 +154,9 @@ def tree_audit(
             interval_high = None if math.isinf(high) else int(high)
             for name in hidden:
                 intervals[name] = Interval(name, int(max(low, 0)), interval_high)
-            if not math.isinf(high) and high - max(low, 0) + 1 < width:
+            # a count a rule's fact says is 0 (withheld as not small; the policy shows zeros) is no target
+            empty = all(name in bounds and bounds[name][1] <= 0 for name in hidden)
+            if not empty and not math.isinf(high) and high - max(low, 0) + 1 < width:
                 ok = False
         elif width >= 2:
             # differencing: the part of a released count that no released count below it covers

@@ -68,6 +68,26 @@ def test_every_withheld_count_names_its_rule(tmp_path: Path) -> None:
     assert level["analysed_positive"] is None and level["suppressed_by"]["analysed_positive"] == "minimum_cell_size"
 
 
+def test_a_count_withheld_to_protect_another_is_known_not_to_be_small(tmp_path: Path) -> None:
+    """Item 4: primary suppression runs first, so a count withheld by the complementary rule or by the audit
+    was not small: 0 or at least k (at least k when zeros are hidden). Eleven children aged 24-29 months with
+    the condition, one scoring at the threshold: the band's positives (11) are shown, its tp (1) is withheld
+    for the minimum cell size and its fn (10) to protect tp. A recipient who knows the rule reads fn in
+    {0} or 10.. and tp in 1..9 with tp + fn = 11: fn = 10 and tp = 1, unless the site withholds more."""
+    split = [(25, "f", 3, 1)] + [(24 + i % 6, "mf"[i % 2], 0, 1) for i in range(10)]
+    for allow_zero in (True, False):
+        world = World(tmp_path / str(allow_zero), records(small=split), allow_zero=allow_zero)
+        neutral(world)
+        release = world.ask("neutral", "s", "--analyses", "confusion,subgroups", "--subgroup", "age_months=24,30")
+        assert release is not None
+        level = release["results"]["subgroups"]["variables"][0]["levels"][1]
+        assert level["level"] == {"low": 24.0, "high": 30.0}
+        # the scenario's premise: tp withheld for its size (the first rule the recipient reads)
+        assert level["confusion"][0]["suppressed_by"]["tp"] == "minimum_cell_size"
+        low, high = oracle_interval(world, lambda c: 24 <= c[0] < 30 and c[3] == 1 and c[2] >= 2)
+        assert high - low >= 1, (allow_zero, low, high)
+
+
 def test_a_band_outside_the_schema_range_is_known_to_be_empty(tmp_path: Path) -> None:
     """Item 3: ages are whole months from 0, so a band below 0 (or between two whole months) holds nobody,
     and the recipient knows it. Bands at 0/24/30: the 24-29 group is withheld, and the fixed complementary

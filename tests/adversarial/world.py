@@ -49,6 +49,7 @@ SEXES = ("f", "m")
 ITEMS = range(0, 4)
 
 Record = tuple[int, str, int, int]  # age_months, sex, item, outcome
+NOT_SMALL = "0 or at least k"  # a withheld count's fact when zeros are shown: a disjunction (integer program)
 Score = Callable[[int, str, int], float]
 
 
@@ -154,9 +155,11 @@ def _in_band(value: float, band: dict[str, Any] | None) -> bool:
 def facts_of(
     release: dict[str, Any], score: Score, k: int, allow_zero: bool, compare: Score | None = None
 ) -> list[tuple[Callable, int | tuple]]:
-    """(membership test over record types, value or (low, high) from the withheld rule) for every count the
-    release shows or withholds, read from the release file alone (``compare``: the comparison model of a
-    paired release)."""
+    """(membership test over record types, value or (low, high) from the withheld rule, or ``NOT_SMALL``) for
+    every count the release shows or withholds, read from the release file alone (``compare``: the comparison
+    model of a paired release). What each rule tells follows from the algorithm alone: primary suppression
+    runs first, so a count withheld by any rule but ``minimum_cell_size`` or ``coarsened`` was not small (0 or
+    at least k when zeros are shown, at least k when they are not)."""
     facts: list[tuple[Callable, Any]] = []
     low_small = 1 if allow_zero else 0
 
@@ -165,6 +168,8 @@ def facts_of(
             facts.append((test, value))
         elif rule == "minimum_cell_size":
             facts.append((test, (low_small, k - 1)))
+        elif rule in ("complementary", "audit"):
+            facts.append((test, NOT_SMALL if allow_zero else (k, math.inf)))
 
     flow = release["flow"]
     by = flow.get("suppressed_by", {})
@@ -248,22 +253,38 @@ def _paired_facts(paired: dict[str, Any], score: Score, compare: Score, add: Cal
 
 def oracle_interval(world: World, region: Callable[[tuple], bool]) -> tuple[int, int]:
     """Whole-number min and max of the number of records in ``region`` over every table of record types
-    consistent with every release the world's site made (HiGHS branch and bound, scipy.optimize.milp)."""
+    consistent with every release the world's site made (HiGHS branch and bound, scipy.optimize.milp). A
+    ``NOT_SMALL`` fact gets a 0/1 variable z: k·z <= count <= N·z (N, the number of records, bounds any count)."""
     cells = _cells()
-    rows, lows, highs = [], [], []
+    rows, lows, highs, either = [], [], [], []
     for release in world.releases:
         _, score, _ = world.bundles[release["_bundle"]]
         compare = world.bundles[release["_compare"]][1] if release.get("_compare") else None
         for test, value in facts_of(release, score, world.k, world.allow_zero, compare):
-            rows.append([1.0 if test(c) else 0.0 for c in cells])
+            row = [1.0 if test(c) else 0.0 for c in cells]
+            if value == NOT_SMALL:
+                either.append(row)
+                continue
+            rows.append(row)
             low, high = (value, value) if isinstance(value, int) else value
             lows.append(low)
             highs.append(high)
-    target = np.array([1.0 if region(c) else 0.0 for c in cells])
-    constraint = LinearConstraint(np.array(rows), np.array(lows, float), np.array(highs, float))
+    n, m, total = len(cells), len(either), float(len(world.data))
+    matrix = np.zeros((len(rows) + 2 * m, n + m))
+    matrix[: len(rows), :n] = np.array(rows).reshape(len(rows), n)
+    for j, row in enumerate(either):  # count - k·z >= 0 and count - N·z <= 0
+        matrix[len(rows) + 2 * j, :n] = row
+        matrix[len(rows) + 2 * j, n + j] = -world.k
+        matrix[len(rows) + 2 * j + 1, :n] = row
+        matrix[len(rows) + 2 * j + 1, n + j] = -total
+    lows += [v for _ in either for v in (0.0, -np.inf)]
+    highs += [v for _ in either for v in (np.inf, 0.0)]
+    target = np.array([1.0 if region(c) else 0.0 for c in cells] + [0.0] * m)
+    constraint = LinearConstraint(matrix, np.array(lows, float), np.array(highs, float))
+    bounds = Bounds(np.zeros(n + m), np.concatenate([np.full(n, np.inf), np.ones(m)]))
     found = []
     for sign in (1.0, -1.0):
-        result = milp(sign * target, constraints=constraint, integrality=np.ones(len(cells)), bounds=Bounds(0, np.inf))
+        result = milp(sign * target, constraints=constraint, integrality=np.ones(n + m), bounds=bounds)
         assert result.status == 0, "the releases must be consistent with some table"
         found.append(sign * result.fun)
     return math.ceil(found[0] - 1e-6), math.floor(found[1] + 1e-6)

@@ -18,7 +18,7 @@ import numpy as np
 import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
-from scipy.optimize import linprog
+from scipy.optimize import Bounds, LinearConstraint, linprog, milp
 
 from federation.protocol import PolicyViolation
 from site_agent.audit import Audit, ReleaseFacts
@@ -37,12 +37,19 @@ def policy(k: int = 10, allow_zero: bool = True, width: int = 2) -> SimpleNamesp
 
 
 def oracle_interval(
-    cells: list[tuple], facts: list[tuple[tuple, int]], region: set[tuple], bounds: list[tuple] = ()
+    cells: list[tuple],
+    facts: list[tuple[tuple, int]],
+    region: set[tuple],
+    bounds: list[tuple] = (),
+    either: tuple[int, list[set]] = (0, []),
 ) -> tuple[int, int]:
     """Whole-number interval (LP bounds rounded inward) of the count of ``region`` given ``facts``.
 
     ``cells`` are the finest cells of the test's record space; each fact is (set of cells, released value);
-    each bound is (set of cells, low, high): what a withheld count's rule tells (minimum cell size: 1..k-1).
+    each bound is (set of cells, low, high): what a withheld count's rule tells (minimum cell size: 1..k-1;
+    withheld as not small with zeros hidden: k..inf). ``either = (k, sets)``: counts withheld as not small
+    with zeros shown, each "0, or at least k"; then the interval is exact over whole numbers
+    (scipy.optimize.milp, a 0/1 variable z per count: k·z <= count <= N·z, N bounding every count).
     """
     index = {cell: i for i, cell in enumerate(cells)}
     a = np.zeros((len(facts), len(cells)))
@@ -53,6 +60,9 @@ def oracle_interval(
     c = np.zeros(len(cells))
     for cell in region:
         c[index[cell]] = 1.0
+    k, disjunctions = either
+    if disjunctions or any(math.isinf(hi) for _, _, hi in bounds):
+        return _whole_number_interval(a, b, c, index, bounds, k, disjunctions)
     g = np.zeros((2 * len(bounds), len(cells)))
     h = np.zeros(2 * len(bounds))
     for row, (members, lo, hi) in enumerate(bounds):
@@ -65,6 +75,39 @@ def oracle_interval(
     assert low.status == 0, "the released counts must be consistent"
     top = math.inf if high.status == 3 else -high.fun
     return math.ceil(low.fun - 1e-6), (math.floor(top + 1e-6) if math.isfinite(top) else 10**9)
+
+
+def _whole_number_interval(
+    a: np.ndarray, b: np.ndarray, c: np.ndarray, index: dict, bounds: list[tuple], k: int, disjunctions: list[set]
+) -> tuple[int, int]:
+    n, m = len(c), len(disjunctions)
+    big = float(max(b.max(initial=0.0), 1.0)) * 4 + 1000.0  # above any count consistent with the facts here
+    rows, low, high = [np.hstack([a, np.zeros((len(a), m))])], [b], [b]
+    for members, lo, hi in bounds:
+        row = np.zeros(n + m)
+        row[[index[cell] for cell in members]] = 1.0
+        rows.append(row[None])
+        low.append([lo])
+        high.append([hi])
+    for j, members in enumerate(disjunctions):  # count - k·z >= 0 and count - big·z <= 0
+        for weight, lo, hi in ((k, 0.0, np.inf), (big, -np.inf, 0.0)):
+            row = np.zeros(n + m)
+            row[[index[cell] for cell in members]] = 1.0
+            row[n + j] = -weight
+            rows.append(row[None])
+            low.append([lo])
+            high.append([hi])
+    constraint = LinearConstraint(np.vstack(rows), np.concatenate(low), np.concatenate(high))
+    box = Bounds(np.zeros(n + m), np.concatenate([np.full(n, np.inf), np.ones(m)]))
+    found = []
+    objective = np.concatenate([c, np.zeros(m)])
+    for sign in (1.0, -1.0):
+        result = milp(sign * objective, constraints=constraint, integrality=np.ones(n + m), bounds=box)
+        if sign < 0 and result.status == 3:
+            return round(found[0]), 10**9
+        assert result.status == 0, "the released counts must be consistent"
+        found.append(sign * result.fun)
+    return round(found[0]), round(found[1])
 
 
 def banded_release(edges: list[float], counts: dict[tuple[int, str], int], units: list[float]) -> CountSet:
@@ -274,7 +317,8 @@ def test_no_sequence_of_band_requests_pins_down_a_hidden_or_small_count(case) ->
     earlier: list[ReleaseFacts] = []
     facts: list[tuple[set, int]] = []
     hidden: list[tuple[set, int]] = []  # (cells, true value) of every count suppressed so far
-    rules: list[tuple[set, int, int]] = []  # what each minimum-cell-size rule tells: 1..k-1 (0..k-1)
+    rules: list[tuple[set, int, float]] = []  # what each rule tells: 1..k-1 (0..k-1), or k.. (not small)
+    either: list[set] = []  # withheld as not small with zeros shown: 0, or at least k
     shown: set[frozenset] = set()
     for r, edges in enumerate(bandings):
         counts_set = banded_release([float(e) for e in edges], counts, UNITS)
@@ -288,8 +332,11 @@ def test_no_sequence_of_band_requests_pins_down_a_hidden_or_small_count(case) ->
             assert value is None or value == counts_set.values[name]  # released counts are never changed
             if value is None:
                 hidden.append((members, counts_set.values[name]))
-                if protected.rules.get(name) == "minimum_cell_size":
+                rule = protected.rules.get(name)
+                if rule == "minimum_cell_size":
                     rules.append((members, 1 if allow_zero else 0, k - 1))
+                elif rule in ("complementary", "audit"):  # primary suppression ran first: it was not small
+                    (either.append(members) if allow_zero else rules.append((members, k, math.inf)))
             else:
                 assert not (0 < value < k) and (allow_zero or value > 0)
                 facts.append((members, value))
@@ -297,10 +344,12 @@ def test_no_sequence_of_band_requests_pins_down_a_hidden_or_small_count(case) ->
         earlier.append(ReleaseFacts.from_dict(f"r{r}", protected.facts(counts_set)))
     if not facts:
         return
-    for members, _ in hidden:
+    for members, value in hidden:
         if frozenset(members) in shown:
             continue  # its value was public before it was hidden
-        low, high = oracle_interval(cells, facts, members, rules)
+        low, high = oracle_interval(cells, facts, members, rules, (k, either))
+        if value == 0 and allow_zero and (low, high) == (0, 0):
+            continue  # a 0 withheld to protect another count: worked out, it shows a count the policy shows
         assert high - low + 1 >= 2, "a suppressed count can be worked out from the releases"
     for unit in range(8):  # every finest cell that the policy would hide stays uncertain
         for klass in ("1", "0"):
@@ -309,7 +358,7 @@ def test_no_sequence_of_band_requests_pins_down_a_hidden_or_small_count(case) ->
                 members = {(unit, klass)}
                 if frozenset(members) in shown:
                     continue
-                low, high = oracle_interval(cells, facts, members, rules)
+                low, high = oracle_interval(cells, facts, members, rules, (k, either))
                 assert (low, high) != (value, value), "a small cell can be worked out by differencing"
 
 

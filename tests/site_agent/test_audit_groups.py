@@ -109,7 +109,12 @@ def facts(label: str, counts: CountSet, k: int) -> tuple[ReleaseFacts, dict[str,
         "policy": {"min_cell_size": k, "allow_zero": True},
         "domains": DOMAINS,
         "counts": [
-            {**counts.definitions[n].to_dict(), "value": released[n], **({"rule": rules[n]} if n in rules else {})}
+            {
+                **counts.definitions[n].to_dict(),
+                "value": released[n],
+                **({"rule": rules[n]} if n in rules else {}),
+                **({"zero": counts.values[n] == 0} if rules.get(n) == "complementary" else {}),
+            }
             for n in sorted(counts.values)
         ],
         "relations": [{"total": r.total, "parts": list(r.parts)} for r in counts.relations],
@@ -133,12 +138,14 @@ def test_the_grouped_model_answers_as_the_full_model(seed: int, n: int, history,
     for j, counts in enumerate(releases[:-1]):
         earlier.append(facts(f"r{j}", counts, k)[0])
     current, released, rules = facts("new", releases[-1], k)
+    zero = dict(current.zero)  # which complementary counts are 0: the branch of "0, or at least k" taken
     current = ReleaseFacts("new", current.definitions, {}, current.relations, "", {}, k, True, DOMAINS)
     site = Audit(earlier, current)
     full = Audit(earlier, current, group=False)
     for values in (released, dict(releases[-1].values)):  # protected, and as asked (findings likely)
-        mine = site.evaluate(values, k, True, 2, current_rules=rules if values is released else {})
-        theirs = full.evaluate(values, k, True, 2, current_rules=rules if values is released else {})
+        told = {"current_rules": rules, "current_zero": zero} if values is released else {}
+        mine = site.evaluate(values, k, True, 2, **told)
+        theirs = full.evaluate(values, k, True, 2, **told)
         assert mine.ok == theirs.ok
         if mine.grouped:  # the grouped model answered (clear): exact intervals, the full model's where exact
             assert mine.ok and set(mine.intervals) == set(theirs.intervals)

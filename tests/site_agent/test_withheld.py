@@ -1,7 +1,9 @@
 """What the suppression rules tell a recipient who knows them (issue: the suppression algorithm itself).
 
 A count withheld for the minimum cell size lies in 1..k-1 when zeros are shown (0..k-1 when they are not);
-the release says so in its ``suppressed_by`` map, and the audit must treat it as a fact. The secondary rule's
+one withheld by the complementary rule or the audit was not small, since primary suppression runs first (0
+or at least k; at least k when zeros are hidden). The release says which rule in its ``suppressed_by`` map,
+and the audit must treat each as a fact. The secondary rule's
 choice must not depend on values. Checked by brute force over every whole-number table of the test's own
 small record space (independent of site_agent.audit).
 """
@@ -32,9 +34,11 @@ def chain(x: int, u: int, v: int, w: int) -> CountSet:
     return out
 
 
-def brute_force(counts: CountSet, released: dict[str, int | None], rules: dict[str, str], k: int) -> set[int]:
-    """Every value of X consistent with what was released and what the rules tell (zeros shown): all
-    whole-number tables with cells 0..39, enumerated at once (numpy)."""
+def brute_force(
+    counts: CountSet, released: dict[str, int | None], rules: dict[str, str], k: int, allow_zero: bool = True
+) -> set[int]:
+    """Every value of X consistent with what was released and what the rules tell: all whole-number tables
+    with cells 0..39, enumerated at once (numpy)."""
     grid = dict(zip("xuvw", np.meshgrid(*[np.arange(40)] * 4, indexing="ij"), strict=True))
     ok = np.ones(grid["x"].shape, bool)
     for name, definition in counts.definitions.items():
@@ -43,7 +47,9 @@ def brute_force(counts: CountSet, released: dict[str, int | None], rules: dict[s
         if shown is not None:
             ok &= value == shown
         elif rules.get(name) == "minimum_cell_size":
-            ok &= (value >= 1) & (value <= k - 1)
+            ok &= (value >= (1 if allow_zero else 0)) & (value <= k - 1)
+        elif rules.get(name) in ("complementary", "audit"):  # primary suppression ran first: not small
+            ok &= ((value == 0) & allow_zero) | (value >= k)
     return set(np.unique(grid["x"][ok]).tolist())
 
 
@@ -59,6 +65,26 @@ def test_a_cell_withheld_for_the_minimum_cell_size_is_at_least_one() -> None:
     naive = {n: (None if n in ("t.x", "t.u", "t.v", "t.w") else v) for n, v in counts.values.items()}
     assert brute_force(counts, naive, {}, 10) == {0, 1}
     assert brute_force(counts, naive, {"t.x": "minimum_cell_size"}, 10) == {1}
+
+
+def test_a_complementary_count_is_known_not_to_be_small() -> None:
+    # X = 1 is small; U, V and W are withheld only so that X cannot be recomputed from A = X + U = 11,
+    # B = U + V and C = V + W. A recipient who knows the rules reads U in {0} or 10.., X in 1..9: U = 10 and
+    # X = 1, unless more is withheld.
+    counts = chain(1, 10, 20, 19)
+    naive = {n: (None if n in ("t.x", "t.u", "t.v", "t.w") else v) for n, v in counts.values.items()}
+    rules = {"t.x": "minimum_cell_size", **{n: "complementary" for n in ("t.u", "t.v", "t.w")}}
+    assert brute_force(counts, naive, {"t.x": "minimum_cell_size"}, 10) != {1}  # the first rule alone: open
+    assert brute_force(counts, naive, rules, 10) == {1}  # with the second: pinned
+    for allow_zero in (True, False):
+        protected = protect(counts, policy(allow_zero=allow_zero))
+        assert protected.rules["t.x"] == "minimum_cell_size"
+        possible = brute_force(counts, protected.released, protected.rules, 10, allow_zero)
+        assert len(possible) >= 2 and 1 in possible, allow_zero
+    # the ledger keeps, for the site's later audits, which such counts are 0 (the branch the audit takes)
+    zeros = chain(1, 9, 10, 0)
+    facts = {c["name"]: c for c in protect(zeros, policy()).facts(zeros)["counts"]}
+    assert facts["t.w"]["zero"] is True and facts["t.v"]["zero"] is False and "zero" not in facts["t.x"]
 
 
 def test_the_secondary_choice_does_not_depend_on_values() -> None:
