@@ -324,12 +324,10 @@ def _interval_words(interval: dict[str, Any] | None) -> str:
         return ""
     low, high = interval.get("low"), interval.get("high")
     span = f"{low} or more" if high is None else f"anywhere from {low} to {high}"
+    told = "From everything the site has released, to this study and any other, a recipient can"
     if interval.get("exact", True):
-        return f"From everything the site has released to this study, the coordinator can only tell it is {span}."
-    return (
-        f"From everything the site has released to this study, the coordinator can tell no more than that it "
-        f"could be {span} (or in a wider range)."
-    )
+        return f"{told} only tell it is {span}."
+    return f"{told} tell no more than that it could be {span} (or in a wider range)."
 
 
 _SECONDARY = re.compile(r"otherwise (\S+) could be recomputed from (\S+) = ")
