@@ -43,7 +43,8 @@ def oracle_interval(
     bounds: list[tuple] = (),
     either: tuple[int, list[set]] = (0, []),
 ) -> tuple[int, int]:
-    """Whole-number interval (LP bounds rounded inward) of the count of ``region`` given ``facts``.
+    """Whole-number interval (LP bounds rounded inward, or exact where a fact is "at least k") of the count of
+    ``region`` given ``facts``.
 
     ``cells`` are the finest cells of the test's record space; each fact is (set of cells, released value);
     each bound is (set of cells, low, high): what a withheld count's rule tells (minimum cell size: 1..k-1;
@@ -335,8 +336,10 @@ def test_no_sequence_of_band_requests_pins_down_a_hidden_or_small_count(case) ->
                 rule = protected.rules.get(name)
                 if rule == "minimum_cell_size":
                     rules.append((members, 1 if allow_zero else 0, k - 1))
-                elif rule in ("complementary", "audit"):  # primary suppression ran first: it was not small
-                    (either.append(members) if allow_zero else rules.append((members, k, math.inf)))
+                elif rule in ("complementary", "audit") and allow_zero:  # primary suppression ran first
+                    either.append(members)  # so it was not small: 0, or at least k
+                elif rule in ("complementary", "audit"):
+                    rules.append((members, k, math.inf))
             else:
                 assert not (0 < value < k) and (allow_zero or value > 0)
                 facts.append((members, value))
