@@ -240,7 +240,7 @@ class Audit:
         if _CONTROLLER is None:  # scanning the loaded libraries costs more than a small audit: once per process
             _CONTROLLER = ThreadpoolController()
         with _CONTROLLER.limit(limits=1, user_api="blas"):
-            rules = (current_rules or {}, current_zero or {})
+            told = (current_rules or {}, current_zero or {})
             if self._grouped is not None and self._too_large and self.shortcut:
                 # The full model is too large to decide, so the grouped model's own findings do. Its clear-only
                 # pass would decide the same: it is clear only where this evaluation is (every check it makes is
@@ -250,13 +250,13 @@ class Audit:
                 # tests/site_agent/test_audit_shortcut.py compares both ways on random histories.
                 self._grouped.build_seconds = self.build_seconds
                 result = self._grouped._evaluate(
-                    current_values, min_cell_size, allow_zero, protection_width, exact, rules
+                    current_values, min_cell_size, allow_zero, protection_width, exact, told
                 )
                 assert result is not None
                 return result
             if self._grouped is not None:
                 clear = self._grouped._evaluate(
-                    current_values, min_cell_size, allow_zero, protection_width, exact, rules, clear_only=True
+                    current_values, min_cell_size, allow_zero, protection_width, exact, told, clear_only=True
                 )
                 if clear is not None:
                     return clear
@@ -272,23 +272,23 @@ class Audit:
                     # candidates come from its rows, so repairs may choose other counts than the full model)
                     self._grouped.build_seconds = self.build_seconds
                     result = self._grouped._evaluate(
-                        current_values, min_cell_size, allow_zero, protection_width, exact, rules
+                        current_values, min_cell_size, allow_zero, protection_width, exact, told
                     )
                     assert result is not None
                     return result
-            return self._evaluate(current_values, min_cell_size, allow_zero, protection_width, exact, rules)
+            return self._evaluate(current_values, min_cell_size, allow_zero, protection_width, exact, told)
 
     def _bound_rows(
         self,
         current_values: Mapping[str, int | None],
-        current_rules: tuple[Mapping[str, str], Mapping[str, bool]],
+        told: tuple[Mapping[str, str], Mapping[str, bool]],
         known: dict[int, int],
     ) -> tuple[sparse.csr_matrix, np.ndarray, np.ndarray, set[int]]:
         """The rules' facts as rows ``low <= count <= high`` over the atoms, one per withheld box, and the boxes
         a fact says are empty (their atoms are fixed at zero like a shown 0's, instead of a row)."""
         bounds: dict[int, tuple[float, float]] = {}
         for r, release in enumerate(self.releases):
-            facts = release.bounds(*current_rules) if r == self.current else release.bounds()
+            facts = release.bounds(*told) if r == self.current else release.bounds()
             for name, (low, high) in facts.items():
                 statement = self.by_name[r].get(name)
                 if statement is None or statement.box is None or statement.box in known:
@@ -312,10 +312,11 @@ class Audit:
         allow_zero: bool,
         protection_width: int,
         exact: bool,
-        current_rules: tuple[Mapping[str, str], Mapping[str, bool]],
+        told: tuple[Mapping[str, str], Mapping[str, bool]],
         clear_only: bool = False,
     ) -> AuditResult | None:
-        """The audit over this object's atoms (``current_rules``: the audited release's rules and zeros).
+        """The audit over this object's atoms (``told``: the audited release's rules and which of its counts
+        withheld as not small are 0).
         ``clear_only`` (the grouped model): None unless the answer is clear (nothing found, and every
         suppressed count's interval too wide for integer programs to matter), and every interval of the audited
         release an exact LP interval."""
@@ -339,7 +340,7 @@ class Audit:
         for box, value in known.items():
             if value == 0:
                 released_zero[self.box_index[box]] = True
-        g, g_low, g_high, empty = self._bound_rows(current_values, current_rules, known)
+        g, g_low, g_high, empty = self._bound_rows(current_values, told, known)
         for box in empty:
             zero[self.box_index[box]] = True
         # A repair round withholds more of the audited release: every table the round before allowed is still
