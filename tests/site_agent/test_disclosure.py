@@ -18,7 +18,7 @@ from types import SimpleNamespace
 
 import numpy as np
 import pytest
-from hypothesis import HealthCheck, given, settings
+from hypothesis import HealthCheck, example, given, settings
 from hypothesis import strategies as st
 from scipy.optimize import linprog
 
@@ -204,6 +204,7 @@ def tables(draw):  # noqa: ANN001, ANN201
 
 @settings(max_examples=600, deadline=None, suppress_health_check=[HealthCheck.too_slow])
 @given(tables())
+@example(([[3, 0, 1], [0, 0, 0], [0, 0, 0]], 3, True))  # a withheld 0 that the shown counts give away
 def test_protected_tables_keep_every_hidden_cell_uncertain(case) -> None:  # noqa: ANN001
     values, k, allow_zero = case
     counts = two_way(values)
@@ -230,4 +231,8 @@ def test_protected_tables_keep_every_hidden_cell_uncertain(case) -> None:  # noq
         else:
             target = {(i, j) for i in range(rows) for j in range(cols)}
         low, high = interior_interval(values, released, target)
+        if allow_zero and counts.values[name] == 0 and protected.rules[name] in ("complementary", "audit"):
+            # withheld to protect another count, and 0: the policy shows zeros, so it may be worked out (the
+            # audit fixes it at 0 and keeps the count it protects open; docs/threat-model.md, section 0, item 4)
+            continue
         assert high - low + 1 >= 2, f"{name} can be worked out from the released counts"
