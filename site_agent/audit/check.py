@@ -14,6 +14,7 @@ import numpy as np
 from scipy import sparse
 from threadpoolctl import ThreadpoolController
 
+from .branches import Branches
 from .decompose import Cells, decompose
 from .facts import _TOL, MAX_ATOMS, MILP_MAX_ATOMS, AuditError, AuditResult, Finding, Interval, ReleaseFacts
 from .model import Occupied, joint_boxes, meet_entries, models_for_old_entries
@@ -348,6 +349,10 @@ class Audit:
         self._pool.valid_for(known)
         system = _build_system(a, b, row_box, zero | released_zero, g, g_low, g_high, self._pool.zero)
         self._pool.zero = system.zero.copy()
+        self._branches_for = (known, told, min_cell_size, allow_zero, self.structural_zero | released_zero)
+        self._system = system
+        self._branches: Branches | None = None
+        self._opened_cache: dict[tuple, tuple[int, int, bool] | None] = {}
 
         findings: list[Finding] = []
         seen_regions: set[frozenset[int]] = set()
@@ -366,6 +371,9 @@ class Audit:
         if protection_width >= 2:
             for box, (release, names) in targets.items():
                 if residuals[box] < _TOL:
+                    pinned = round(system.value(vectors[box]))
+                    if self._opened(vectors[box], protection_width, pinned, pinned) is not None:
+                        continue  # open for a recipient who knows only "0, or at least k" (the interval below)
                     seen_regions.add(self.box_atoms[box])
                     vector = vectors[box]
                     candidates = self._candidates(system.combination(vector), system, vector)
@@ -422,6 +430,10 @@ class Audit:
             if exact and small and exact_interval and hi_int is not None and residual >= _TOL:
                 if hi_int - lo_int + 1 < protection_width + 2:
                     lo_int, hi_int = system.milp_interval(vector, lo_int, hi_int)
+            if hi_int is not None and hi_int - lo_int + 1 < protection_width:
+                opened = self._opened(vector, protection_width, lo_int, hi_int)
+                if opened is not None:  # the recipient's own disjunctions keep it open
+                    (lo_int, hi_int), exact_interval = opened, False
             interval = Interval(names[0], lo_int, hi_int, exact_interval)
             if release == self.current:
                 intervals.update({name: Interval(name, lo_int, hi_int, exact_interval) for name in names})
@@ -453,6 +465,31 @@ class Audit:
             unrepairable=any(not f.candidates for f in findings),
             grouped=self.cells is not None,
         )
+
+    def _opened(self, vector: np.ndarray, need: int, low: int, high: int) -> tuple[int, int] | None:
+        """Whether a recipient who knows each "0, or at least k" as the disjunction it is (not the branch the
+        audit took) keeps at least ``need`` values of ``vector``, which the audit's own facts narrow to
+        ``low..high`` (:mod:`~.branches`): an interval the recipient cannot narrow, or None (the finding
+        stands). Only in the full model: the grouped model's atoms are not whole tables."""
+        if self.cells is not None:
+            return None
+        on = np.flatnonzero(vector)
+        key = (tuple(on.tolist()), tuple(vector[on].tolist()), need, low, high)
+        if key not in self._opened_cache and self._system.stated(vector, self._branches_for[4]):
+            self._opened_cache[key] = None  # the shown counts alone give it, whichever branch a count is in
+        if key not in self._opened_cache:
+            if self._branches is None:
+                known, told, k, allow_zero, zero = self._branches_for
+                facts = []
+                for r, release in enumerate(self.releases):
+                    boxes = {n: s.box for n, s in self.by_name[r].items() if s.box is not None}
+                    if r == self.current:
+                        facts.append((told[0], told[1], k, allow_zero, boxes))
+                    else:
+                        facts.append((release.rules, release.zero, release.min_cell_size, release.allow_zero, boxes))
+                self._branches = Branches(self.incidence, known, self.relation_rows, zero, facts)
+            self._opened_cache[key] = self._branches.open(vector, need, low, high)
+        return self._opened_cache[key]
 
     def _vector(self, box: int) -> np.ndarray:
         vector = np.zeros(self.incidence.shape[1])
@@ -493,9 +530,11 @@ class Audit:
                 continue
             if self.cells is not None and value > 0 and not self.cells.whole(int(atom), live):
                 continue  # a union of full atoms, each of which other groups' counts leave open
-            seen.add(region)
             vector = np.zeros(self.incidence.shape[1])
             vector[atom] = 1.0
+            if self._opened(vector, 2, value, value) is not None:
+                continue
+            seen.add(region)
             weights = system.combination(vector)
             findings.append(
                 Finding(
@@ -571,7 +610,7 @@ class Audit:
                     if region in seen:
                         continue
                     vector = self._vector(f) - self._vector(g)
-                    if system.residual(vector) > 1e-6:
+                    if system.residual(vector) > 1e-6 or self._opened(vector, 2, difference, difference) is not None:
                         continue
                     seen.add(region)
                     findings.append(

@@ -103,6 +103,17 @@ class _System:
                     weights[int(row)] = weights.get(int(row), 0.0) + abs(float(weight))
         return weights
 
+    def stated(self, vector: np.ndarray, known_zero: np.ndarray) -> bool:
+        """Whether ``vector`` is a combination of the rows on every atom but ``known_zero`` (atoms empty
+        whatever else is known), not only on the atoms this system left live: then its value follows from the
+        equalities alone, even where an atom this system fixed at zero could be filled."""
+        combined = np.zeros(self.a.shape[1])
+        for block in self.blocks_of(vector):
+            coefficients = block.left @ (block.basis.T @ vector[block.atoms])
+            combined += self.a[block.rows].T @ coefficients
+        rest = ~known_zero
+        return bool(np.max(np.abs(vector[rest] - combined[rest]), initial=0.0) < 1e-6)
+
     def block_atoms(self, vector: np.ndarray) -> np.ndarray:
         """Every atom of the blocks the vector touches (and the vector's own atoms)."""
         blocks = self.blocks_of(vector)

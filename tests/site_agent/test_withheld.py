@@ -14,6 +14,7 @@ from types import SimpleNamespace
 
 import numpy as np
 
+from federation.protocol import PolicyViolation
 from site_agent.counts import Condition, CountSet
 from site_agent.disclosure import protect, suppress
 from site_agent.withheld import annotate, rule_of
@@ -143,3 +144,93 @@ def test_every_suppressed_list_gets_its_rules() -> None:
         "audit",
         "coarsened",
     ]
+
+
+# --- "0, or at least k" as the disjunction it is (site_agent/audit/branches.py) ------------------------------
+
+FIVE = "abcde"
+
+
+def cells(values: dict[str, int], boxes: list[str]) -> CountSet:
+    """Five cells of one variable ``z`` and a count per box (a set of cells), related where two boxes split a
+    third."""
+    out = CountSet()
+    for i, box in enumerate(boxes):
+        out.add(f"t.b{i}", sum(values[c] for c in box), Condition("z", tuple(box)))
+    for i, box in enumerate(boxes):
+        for j, part in enumerate(boxes):
+            for other in boxes[j + 1 :]:
+                if set(part) | set(other) == set(box) and not set(part) & set(other):
+                    out.relate(f"t.b{i}", f"t.b{j}", f"t.b{boxes.index(other)}")
+    return out
+
+
+def tables(counts: CountSet, released: dict, rules: dict, k: int, zero_branch: bool = False) -> np.ndarray:
+    """Every whole-number table of the five cells (0..12 each) consistent with what was released and what the
+    rules tell, zeros shown; ``zero_branch`` replaces "0, or at least k" by the branch each count is really in
+    (the audit's linear facts). Cutting the cells at 12 can only remove tables: a count this enumeration
+    leaves open is open for the recipient too."""
+    grid = np.stack(np.meshgrid(*[np.arange(13)] * 5, indexing="ij"), axis=-1).reshape(-1, 5)
+    ok = np.ones(len(grid), bool)
+    for name, definition in counts.definitions.items():
+        value = grid[:, [FIVE.index(c) for c in definition.where[0].values]].sum(axis=1)
+        truth = counts.values[name]
+        if released[name] is not None:
+            ok &= value == released[name]
+        elif rules[name] == "minimum_cell_size":
+            ok &= (value >= 1) & (value <= k - 1)
+        elif rules[name] in ("complementary", "audit"):
+            ok &= ((value == 0) | (value >= k)) if not zero_branch else ((value == 0) if truth == 0 else (value >= k))
+    return grid[ok]
+
+
+def test_a_count_the_other_branch_keeps_open_is_released() -> None:
+    # Cells a=1, b=0, c=6, d=7, e=5, k = 5; counts E=e, BD=b+d, BC=b+c, AE=a+e, AC=a+c (5, 7, 6, 6, 7). AE
+    # minus E would give a = 1, so the audit withholds E (not small). Taken in its true branch (E >= 5), E
+    # would be pinned at 5 over whole numbers (E = 6 makes a = 0, c = 7 and b = -1), and the audit withheld BC
+    # too. But the recipient knows only "E is 0 or at least 5": E = 0 (a=6, c=1, b=5, d=2) is a table as well.
+    counts = cells({"a": 1, "b": 0, "c": 6, "d": 7, "e": 5}, ["e", "bd", "bc", "ae", "ac"])
+    protected = protect(counts, policy(k=5))
+    assert protected.suppressed == {"t.b0"} and protected.rules == {"t.b0": "audit"}
+    possible = tables(counts, protected.released, protected.rules, 5)
+    assert set(possible[:, FIVE.index("e")].tolist()) == {0, 5}
+    assert set(possible[:, FIVE.index("a")].tolist()) == {1, 6}  # the small cell stays open
+    pinned = tables(counts, protected.released, protected.rules, 5, zero_branch=True)
+    assert set(pinned[:, FIVE.index("e")].tolist()) == {5}  # why the true branch alone withheld more
+
+
+def test_what_the_other_branch_lets_out_stays_protected() -> None:
+    # Random boxes over five cells (seeded): whatever the audit releases after its second look, every count it
+    # withholds (but a 0 withheld as not small, which the policy shows anyway) keeps two values, and no region
+    # it checks is pinned to a small value, for a recipient that enumerates every table (zeros shown, k = 5).
+    import random
+
+    rng = random.Random(7)
+    checked = 0
+    for _ in range(400):
+        values = {c: rng.choice([0, 0, 1, 2, 5, 6, 7]) for c in FIVE}
+        boxes = sorted({"".join(sorted(rng.sample(FIVE, rng.randint(1, 4)))) for _ in range(rng.randint(4, 8))})
+        counts = cells(values, boxes)
+        try:
+            protected = protect(counts, policy(k=5))
+        except PolicyViolation:
+            continue  # refused: nothing released
+        possible = tables(counts, protected.released, protected.rules, 5)
+        assert len(possible), (values, boxes)
+        for name in protected.suppressed:
+            cols = [FIVE.index(c) for c in counts.definitions[name].where[0].values]
+            seen = set(possible[:, cols].sum(axis=1).tolist())
+            if protected.rules[name] in ("complementary", "audit") and counts.values[name] == 0:
+                continue
+            assert len(seen) >= 2, (values, boxes, name, seen)
+        # the regions the audit checks by differencing (site_agent/audit/__init__.py): each atom (the cells
+        # the same boxes hold) and each difference of two nested boxes (threat model R14: other unions not)
+        atoms = {}
+        for cell in FIVE:
+            atoms.setdefault(tuple(cell in box for box in boxes), set()).add(cell)
+        regions = [*atoms.values(), *(set(f) - set(g) for f in boxes for g in boxes if set(g) < set(f))]
+        for region in regions:
+            seen = set(possible[:, [FIVE.index(c) for c in region]].sum(axis=1).tolist())
+            assert not (len(seen) == 1 and 0 < next(iter(seen)) < 5), (values, boxes, region)
+        checked += 1
+    assert checked >= 300
