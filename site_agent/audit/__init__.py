@@ -48,8 +48,16 @@ relaxation's. We round the LP bounds inward (``ceil(min)``, ``floor(max)``), and
 suppressed count whose rounded interval holds fewer than ``protection_width + 2`` values) we solve the two
 integer programs exactly with :func:`scipy.optimize.milp` under a time limit, keeping the LP bound if the
 limit is hit. Differencing (check 2) is decided on the relaxation: a region the relaxation cannot pin down
-may, in rare non-unimodular systems (three or more cross-classified variables), still be pinned down over
-whole numbers; this is a known limit of the method (Hundepool et al. 2012, §4.3).
+may, in non-unimodular systems (overlapping counts, or three or more cross-classified variables), still be
+pinned down over whole numbers; this is a known limit of the method (Hundepool et al. 2012, §4.3). Where the
+whole system is small (at most ``MILP_MAX_ATOMS`` live atoms) every atom and nested difference the relaxation
+leaves open is also decided by two integer programs (``Audit._whole_pinned``), and one integer program looks
+for any group of atoms the shown counts give by addition and subtraction with a count of 1..k−1
+(``Audit._union_pinned``); larger systems keep the limit.
+
+**Not small, as a disjunction.** Before a finding makes the site withhold more, :mod:`~.branches` looks for a
+whole-number table in which the counts withheld as "0, or at least k" may lie in either branch and the found
+count stays open; the finding is dropped only on such a table.
 
 References
 ----------

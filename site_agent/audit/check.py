@@ -12,6 +12,7 @@ from typing import Any
 
 import numpy as np
 from scipy import sparse
+from scipy.optimize import Bounds, LinearConstraint, milp
 from threadpoolctl import ThreadpoolController
 
 from .branches import Branches
@@ -255,12 +256,14 @@ class Audit:
                 )
                 assert result is not None
                 return result
+            small = self._full_masks is not None and len(self._full_masks) <= MILP_MAX_ATOMS
             if self._grouped is not None:
-                clear = self._grouped._evaluate(
-                    current_values, min_cell_size, allow_zero, protection_width, exact, told, clear_only=True
-                )
-                if clear is not None:
-                    return clear
+                if not small:  # a small full model decides over whole numbers itself (``_whole_pinned``)
+                    clear = self._grouped._evaluate(
+                        current_values, min_cell_size, allow_zero, protection_width, exact, told, clear_only=True
+                    )
+                    if clear is not None:
+                        return clear
                 if not self._full and not self._too_large:
                     started = time.perf_counter()
                     try:
@@ -380,6 +383,10 @@ class Audit:
                     findings.append(Finding("suppressed", self.releases[release].label, tuple(names), candidates))
             self._atoms_pinned(system, unsafe, released_zero, findings, seen_regions)
             self._nested_pinned(system, unsafe, findings, seen_regions)
+            if exact and self.cells is None and int((~system.zero).sum()) <= MILP_MAX_ATOMS:
+                self._whole_pinned(system, unsafe, released_zero, findings, seen_regions)
+                if not findings:
+                    self._union_pinned(system, min_cell_size, findings)
         if findings:
             if clear_only:
                 return None
@@ -544,6 +551,109 @@ class Audit:
                     self._candidates(weights, system, vector),
                 )
             )
+
+    def _whole_pinned(
+        self,
+        system: _System,
+        unsafe: Any,
+        released_zero: np.ndarray,
+        findings: list[Finding],
+        seen: set[frozenset[int]],
+    ) -> None:
+        """A small system (at most ``MILP_MAX_ATOMS`` live atoms): every atom and every difference of two nested
+        boxes that the real relaxation leaves open, decided over whole numbers (two integer programs each). A
+        recipient reasoning with whole numbers can pin down a region the relaxation cannot (five cells, a few
+        overlapping counts and two feasible tables in all); in a small system that is cheap to rule out."""
+        live = ~system.zero & ~self.structural_zero & ~released_zero
+        regions: dict[frozenset[int], np.ndarray] = {}
+        for atom in np.flatnonzero(live):
+            vector = np.zeros(self.incidence.shape[1])
+            vector[atom] = 1.0
+            regions.setdefault(frozenset([int(atom)]), vector)
+        boxes = {j: frozenset(a for a in atoms if live[a]) for j, atoms in enumerate(self.box_atoms)}
+        for f, large in boxes.items():
+            for g, small in boxes.items():
+                if small < large and small:
+                    regions.setdefault(large - small, self._vector(f) - self._vector(g))
+        # A few whole-number tables first: a region that takes two values among them is open, and one that
+        # takes a single value the policy shows needs no proof either; only the rest get integer programs.
+        tables = np.array(system.whole_tables(6))
+        for region, vector in regions.items():
+            if region in seen or system.residual(vector) < 1e-6:
+                continue  # decided already (pinned over the reals, or found)
+            values = tables @ vector
+            if not np.isnan(values).any() and (np.ptp(values) > 0.5 or not unsafe(int(round(values[0])))):
+                continue
+            interval = system.milp_interval(vector, 0, 10**9, strict=True)
+            if interval is None or interval[0] != interval[1] or not unsafe(interval[0]):
+                continue
+            if self._opened(vector, 2, interval[0], interval[0]) is not None:
+                continue
+            seen.add(region)
+            findings.append(
+                Finding(
+                    "difference",
+                    self.releases[self.current].label,
+                    self._names_overlapping(vector),
+                    self._candidates(system.combination(vector), system, vector),
+                )
+            )
+
+    def _union_pinned(self, system: _System, min_cell_size: int, findings: list[Finding]) -> None:
+        """A small system: any union of atoms (not only an atom or a nested difference) that the shown counts
+        pin down to 1..k−1, found by one integer program: a 0/1 vector ``z`` over the live atoms that is a
+        combination ``A^T w`` of the equalities (so its count is ``b . w`` in every table) with ``b . w`` in
+        1..k−1. Five cells and counts over overlapping sets of them can give c + e = 3 as (a+b+c+e) − (a+b+d+e)
+        + (d+e) while each cell stays open. A union the recipient still cannot work out for the disjunctions of
+        "0, or at least k" (:mod:`~.branches`) is cut off and the search goes on, a few times."""
+        if min_cell_size < 2:
+            return
+        live = np.flatnonzero(~system.zero)
+        if not len(live) or system.a.shape[0] == 0:
+            return
+        a = system.a[:, live].toarray()  # rows x live atoms
+        m, n = a.shape
+        # variables: z (n, whole 0/1), w (m, free); a^T w - z = 0; min_k: 1 <= b . w <= k - 1
+        rows = [np.hstack([-np.eye(n), a.T])]
+        low, high = [np.zeros(n)], [np.zeros(n)]
+        rows.append(np.concatenate([np.zeros(n), system.b])[None, :])
+        low.append(np.array([1.0 - 1e-6]))
+        high.append(np.array([min_cell_size - 1 + 1e-6]))
+        integrality = np.concatenate([np.ones(n), np.zeros(m)])
+        bounds = Bounds(
+            np.concatenate([np.zeros(n), np.full(m, -np.inf)]), np.concatenate([np.ones(n), np.full(m, np.inf)])
+        )
+        for _ in range(8):
+            result = milp(
+                np.concatenate([np.ones(n), np.zeros(m)]),  # the smallest such union first
+                constraints=LinearConstraint(np.vstack(rows), np.concatenate(low), np.concatenate(high)),
+                integrality=integrality,
+                bounds=bounds,
+                options={"time_limit": 5.0},
+            )
+            if result.status != 0 or result.x is None:
+                return  # none (or not proved within the limit: the checks above stand)
+            chosen = np.round(result.x[:n]) > 0.5
+            vector = np.zeros(self.incidence.shape[1])
+            vector[live[chosen]] = 1.0
+            if system.residual(vector) > 1e-6:  # not a combination after all (numerics): nothing proved
+                return
+            value = int(round(system.value(vector)))
+            if self._opened(vector, 2, value, value) is None:
+                findings.append(
+                    Finding(
+                        "difference",
+                        self.releases[self.current].label,
+                        self._names_overlapping(vector),
+                        self._candidates(system.combination(vector), system, vector),
+                    )
+                )
+                return
+            # open for the disjunctions: look for another union (this one cut off)
+            cut = np.concatenate([np.where(chosen, 1.0, -1.0), np.zeros(m)])
+            rows.append(cut[None, :])
+            low.append(np.array([-np.inf]))
+            high.append(np.array([chosen.sum() - 1.0]))
 
     def _nested_pinned(self, system: _System, unsafe: Any, findings: list[Finding], seen: set[frozenset[int]]) -> None:
         """Nested boxes G inside F whose difference F \\ G is pinned down to a value the policy would hide.

@@ -175,6 +175,36 @@ class _System:
             high = math.inf
         return low, high, duals, points
 
+    def whole_tables(self, count: int, seed: int = 0) -> list[np.ndarray]:
+        """Whole-number tables of the system (integer programs per block, random objectives: the sum, its
+        negative, then random directions), each a vector over every atom (free atoms 0). A block whose program
+        does not solve in its time limit is left out of every table (its atoms NaN)."""
+        rng = np.random.default_rng(seed)
+        tables = [np.where(self.zero, 0.0, np.nan) for _ in range(count)]
+        for table in tables:
+            table[self.free] = 0.0
+        for block in self.blocks:
+            a, b = block.a[block.independent], block.b[block.independent]
+            constraints = [LinearConstraint(a, b, b)] if len(b) else []
+            if block.g is not None and block.g.shape[0]:
+                constraints.append(LinearConstraint(block.g, block.g_low, block.g_high))
+            for i, table in enumerate(tables):
+                c = (
+                    np.ones(len(block.atoms)) * (1 if i % 2 == 0 else -1)
+                    if i < 2
+                    else rng.standard_normal(len(block.atoms))
+                )
+                result = milp(
+                    c,
+                    constraints=constraints,
+                    integrality=np.ones(len(c)),
+                    bounds=Bounds(0, np.inf),
+                    options={"time_limit": 1.0},
+                )
+                if result.status == 0 and result.x is not None:
+                    table[block.atoms] = np.round(result.x)
+        return tables
+
     def milp_interval(self, vector: np.ndarray, low: int, high: int, strict: bool = False) -> tuple[int, int] | None:
         """Whole-number min and max (HiGHS branch and bound, 1 s per program); the LP bounds if time runs out
         (``strict``: None)."""
