@@ -51,9 +51,7 @@ limit is hit. Differencing (check 2) is decided on the relaxation: a region the 
 may, in non-unimodular systems (overlapping counts, or three or more cross-classified variables), still be
 pinned down over whole numbers; this is a known limit of the method (Hundepool et al. 2012, §4.3). Where the
 whole system is small (at most ``MILP_MAX_ATOMS`` live atoms) every atom and nested difference the relaxation
-leaves open is also decided by two integer programs (``Audit._whole_pinned``), and one integer program looks
-for any group of atoms the shown counts give by addition and subtraction with a count of 1..k−1
-(``Audit._union_pinned``); larger systems keep the limit.
+leaves open is also decided by two integer programs (``Audit._whole_pinned``); larger systems keep the limit.
 
 **Not small, as a disjunction.** Before a finding makes the site withhold more, :mod:`~.branches` looks for a
 whole-number table in which the counts withheld as "0, or at least k" may lie in either branch and the found

@@ -12,7 +12,6 @@ from typing import Any
 
 import numpy as np
 from scipy import sparse
-from scipy.optimize import Bounds, LinearConstraint, milp
 from threadpoolctl import ThreadpoolController
 
 from .branches import Branches
@@ -385,8 +384,6 @@ class Audit:
             self._nested_pinned(system, unsafe, findings, seen_regions)
             if exact and self.cells is None and int((~system.zero).sum()) <= MILP_MAX_ATOMS:
                 self._whole_pinned(system, unsafe, released_zero, findings, seen_regions)
-                if not findings:
-                    self._union_pinned(system, min_cell_size, findings)
         if findings:
             if clear_only:
                 return None
@@ -542,15 +539,17 @@ class Audit:
             if self._opened(vector, 2, value, value) is not None:
                 continue
             seen.add(region)
-            weights = system.combination(vector)
-            findings.append(
-                Finding(
-                    "difference",
-                    self.releases[self.current].label,
-                    self._names_overlapping(vector),
-                    self._candidates(weights, system, vector),
-                )
-            )
+            findings.append(self._difference(system, vector))
+
+    def _difference(self, system: _System, vector: np.ndarray) -> Finding:
+        """A region of the audited release worked out by differencing: its counts, and those whose suppression
+        could break it."""
+        return Finding(
+            "difference",
+            self.releases[self.current].label,
+            self._names_overlapping(vector),
+            self._candidates(system.combination(vector), system, vector),
+        )
 
     def _whole_pinned(
         self,
@@ -590,70 +589,7 @@ class Audit:
             if self._opened(vector, 2, interval[0], interval[0]) is not None:
                 continue
             seen.add(region)
-            findings.append(
-                Finding(
-                    "difference",
-                    self.releases[self.current].label,
-                    self._names_overlapping(vector),
-                    self._candidates(system.combination(vector), system, vector),
-                )
-            )
-
-    def _union_pinned(self, system: _System, min_cell_size: int, findings: list[Finding]) -> None:
-        """A small system: any union of atoms (not only an atom or a nested difference) that the shown counts
-        pin down to 1..k−1, found by one integer program: a 0/1 vector ``z`` over the live atoms that is a
-        combination ``A^T w`` of the equalities (so its count is ``b . w`` in every table) with ``b . w`` in
-        1..k−1. Five cells and counts over overlapping sets of them can give c + e = 3 as (a+b+c+e) − (a+b+d+e)
-        + (d+e) while each cell stays open. A union the recipient still cannot work out for the disjunctions of
-        "0, or at least k" (:mod:`~.branches`) is cut off and the search goes on, a few times."""
-        if min_cell_size < 2:
-            return
-        live = np.flatnonzero(~system.zero)
-        if not len(live) or system.a.shape[0] == 0:
-            return
-        a = system.a[:, live].toarray()  # rows x live atoms
-        m, n = a.shape
-        # variables: z (n, whole 0/1), w (m, free); a^T w - z = 0; min_k: 1 <= b . w <= k - 1
-        rows = [np.hstack([-np.eye(n), a.T])]
-        low, high = [np.zeros(n)], [np.zeros(n)]
-        rows.append(np.concatenate([np.zeros(n), system.b])[None, :])
-        low.append(np.array([1.0 - 1e-6]))
-        high.append(np.array([min_cell_size - 1 + 1e-6]))
-        integrality = np.concatenate([np.ones(n), np.zeros(m)])
-        bounds = Bounds(
-            np.concatenate([np.zeros(n), np.full(m, -np.inf)]), np.concatenate([np.ones(n), np.full(m, np.inf)])
-        )
-        for _ in range(8):
-            result = milp(
-                np.concatenate([np.ones(n), np.zeros(m)]),  # the smallest such union first
-                constraints=LinearConstraint(np.vstack(rows), np.concatenate(low), np.concatenate(high)),
-                integrality=integrality,
-                bounds=bounds,
-                options={"time_limit": 5.0},
-            )
-            if result.status != 0 or result.x is None:
-                return  # none (or not proved within the limit: the checks above stand)
-            chosen = np.round(result.x[:n]) > 0.5
-            vector = np.zeros(self.incidence.shape[1])
-            vector[live[chosen]] = 1.0
-            if system.residual(vector) > 1e-6:  # not a combination after all (numerics): nothing proved
-                return
-            value = int(round(system.value(vector)))
-            if self._opened(vector, 2, value, value) is None:
-                findings.append(
-                    Finding(
-                        "difference",
-                        self.releases[self.current].label,
-                        self._names_overlapping(vector),
-                        self._candidates(system.combination(vector), system, vector),
-                    )
-                )
-                return
-            # open for the disjunctions: look for another union (this one cut off)
-            cut = np.concatenate([np.where(chosen, 1.0, -1.0), np.zeros(m)])
-            rows.append(cut[None, :])
-            low.append(np.array([-np.inf]))
-            high.append(np.array([chosen.sum() - 1.0]))
+            findings.append(self._difference(system, vector))
 
     def _nested_pinned(self, system: _System, unsafe: Any, findings: list[Finding], seen: set[frozenset[int]]) -> None:
         """Nested boxes G inside F whose difference F \\ G is pinned down to a value the policy would hide.
