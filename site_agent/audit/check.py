@@ -354,7 +354,7 @@ class Audit:
         self._branches_for = (known, told, min_cell_size, allow_zero, self.structural_zero | released_zero)
         self._system = system
         self._branches: Branches | None = None
-        self._opened_cache: dict[tuple, tuple[int, int, bool] | None] = {}
+        self._opened_cache: dict[tuple, tuple[int, int] | None] = {}
 
         findings: list[Finding] = []
         seen_regions: set[frozenset[int]] = set()
