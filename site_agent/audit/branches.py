@@ -70,7 +70,9 @@ class Branches:
         linear: dict[int, tuple[float, float]] = {}
         either: dict[int, int] = {}  # box -> k of the release that withheld it as not small
         for rules, zeros, k, allow_zero, box_of in facts:
-            branches = {n for n, rule in rules.items() if rule in NOT_SMALL_RULES and allow_zero and n in zeros}
+            # every such count, also one whose branch no ledger entry recorded (written before ``zero`` was):
+            # its recipient knows the disjunction, though the linear programs could give it no fact
+            branches = {n for n, rule in rules.items() if rule in NOT_SMALL_RULES and allow_zero}
             lines = withheld_bounds({n: r for n, r in rules.items() if n not in branches}, zeros, k, allow_zero)
             for name in branches:
                 box = box_of.get(name)
