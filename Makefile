@@ -8,7 +8,7 @@ DEMO_OUT ?= demo-output
 export FLWR_TELEMETRY_ENABLED := 0
 export FLWR_DISABLE_UPDATE_CHECK := 1
 
-.PHONY: install demo test lint clean browser postgres validate-stats fuzz bench
+.PHONY: install demo test lint clean browser postgres validate-stats fuzz bench audit-campaign
 
 $(STAMP): pyproject.toml
 	@test -x $(BIN)/python || $(PYTHON) -m venv $(VENV)
@@ -58,6 +58,14 @@ fuzz: $(STAMP)
 		echo "fuzz: $$target for $(FUZZ_SECONDS) s"; \
 		$(BIN)/python -m fuzz.run $$target --seconds $(FUZZ_SECONDS) || exit 1; \
 	done
+
+# A recipient who reruns the site's disclosure algorithm on every table the stated facts allow (not part of
+# `make test`; docs/threat-model.md, R12): random two-release requests over five cells, each count the rerun
+# pins that the facts leave open, and which decision told it. About 10 minutes for the default 150 scenarios.
+AUDIT_SEED ?= 3
+AUDIT_SCENARIOS ?= 150
+audit-campaign: $(STAMP)
+	$(BIN)/python -m simulations.rerun --seed $(AUDIT_SEED) --scenarios $(AUDIT_SCENARIOS)
 
 lint: $(STAMP)
 	$(BIN)/ruff check federation site_agent simulations tests fuzz

@@ -696,6 +696,12 @@ class Audit:
         if not boxes:
             overlap = self.incidence @ vector
             boxes = {int(j) for j in np.flatnonzero(np.abs(overlap) > 0.5) if int(j) in self._suppressible}
+        if not boxes:
+            # A shown count can work a region out through no row of the combination: a shown 0, or two shown
+            # counts whose difference is 0, empties atoms the region's other counts then pin. Any shown count of
+            # this release may be the one (the caller picks by the fixed priority); refusing instead would
+            # tell the recipient that the values of this release, not the request, left nothing to withhold.
+            boxes = {j for j in system.row_box if j is not None and j in self._suppressible}
         # by name, never by value: the choice must tell a recipient who knows this rule nothing about values
         # (the caller reorders by the analyses' priority, which does not look at values either)
         own = [s for s in self.by_name[self.current].values() if s.box is not None]

@@ -15,6 +15,7 @@ from types import SimpleNamespace
 import numpy as np
 
 from federation.protocol import PolicyViolation
+from site_agent.audit import ReleaseFacts
 from site_agent.counts import Condition, CountSet
 from site_agent.disclosure import protect, suppress
 from site_agent.withheld import annotate, rule_of
@@ -234,3 +235,64 @@ def test_what_the_other_branch_lets_out_stays_protected() -> None:
             assert not (len(seen) == 1 and 0 < next(iter(seen)) < 5), (values, boxes, region)
         checked += 1
     assert checked >= 300
+
+
+# --- a recipient who reruns the site's algorithm (threat model R12) ------------------------------------------
+
+
+def observed(values: dict[str, int], releases: list[list[str]], k: int) -> tuple:
+    """What a recipient sees of each release of these boxes, made one after the other at one site: each count's
+    value or rule, or that the release was refused."""
+    earlier: list[ReleaseFacts] = []
+    seen: list[tuple] = []
+    for r, boxes in enumerate(releases):
+        counts = cells(values, boxes)
+        try:
+            protected = protect(counts, policy(k=k), earlier, label=f"r{r}")
+        except PolicyViolation:
+            seen.append(("refused",))
+            continue
+        seen.append(tuple((n, protected.released[n], protected.rules.get(n)) for n in sorted(protected.released)))
+        earlier.append(ReleaseFacts.from_dict(f"r{r}", protected.facts(counts)))
+    return tuple(seen)
+
+
+def rerun_tables(values: dict[str, int], releases: list[list[str]], k: int) -> tuple[np.ndarray, np.ndarray]:
+    """Every table the rules' facts leave possible (numpy enumeration, ``tables``), and those of them on which
+    the site's algorithm, rerun by the recipient, shows exactly what it showed for the true table."""
+    seen = observed(values, releases, k)
+    ok = None
+    for boxes, release in zip(releases, seen, strict=True):
+        if release == ("refused",):
+            continue  # a refusal states no fact
+        counts = cells(values, boxes)
+        released, rules = {n: v for n, v, _ in release}, {n: r for n, _, r in release}
+        possible = {tuple(row) for row in tables(counts, released, rules, k)}
+        ok = possible if ok is None else ok & possible
+    assert ok is not None
+    stated = np.array(sorted(ok))
+    kept = np.array(
+        [row for row in stated if observed(dict(zip(FIVE, map(int, row), strict=True)), releases, k) == seen]
+    )
+    return stated, kept
+
+
+def test_a_recipient_who_reruns_the_algorithm_does_not_learn_a_small_cell_from_a_refusal() -> None:
+    # Cells a=0, b=1, c=1, d=0, e=6, k = 5. The first release shows ABE 7, ADE 6, BCE 8 and withholds ACD (1).
+    # The second asks BCD, CD and DE: BCD and CD are small, and DE = 6 = ADE empties cell a, which (with the
+    # rules' facts of BCD and CD) pins cell b. No row of that finding's combination belonged to the second
+    # release, so the audit found nothing to withhold and refused the release; on the tables where a is not
+    # empty it withholds DE instead. The refusal then told the recipient that a = 0, and so c = 1 exactly
+    # (found by the campaign of simulations/rerun.py). Now any shown count of the release may be withheld:
+    # DE is, on every table, and the recipient who reruns the algorithm learns nothing the rules do not tell.
+    values = {"a": 0, "b": 1, "c": 1, "d": 0, "e": 6}
+    releases = [["abe", "acd", "ade", "bce"], ["bcd", "cd", "de"]]
+    assert observed(values, releases, 5)[1] == (
+        ("t.b0", None, "minimum_cell_size"),
+        ("t.b1", None, "minimum_cell_size"),
+        ("t.b2", None, "audit"),
+    )
+    stated, kept = rerun_tables(values, releases, 5)
+    assert [tuple(map(int, row)) for row in kept] == [(0, 1, 1, 0, 6), (0, 2, 1, 1, 5), (1, 1, 2, 0, 5)]
+    assert len(stated) == len(kept)  # rerunning rules nothing out
+    assert set(kept[:, FIVE.index("c")].tolist()) == {1, 2}
