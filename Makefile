@@ -61,7 +61,7 @@ fuzz: $(STAMP)
 
 # A recipient who reruns the site's disclosure algorithm on every table the stated facts allow (not part of
 # `make test`; docs/threat-model.md, R12): random two-release requests over five cells, each count the rerun
-# pins that the facts leave open, and which decision told it. About 10 minutes for the default 150 scenarios.
+# pins that the facts leave open, and which decision told it. About 4 minutes for the default 150 scenarios.
 AUDIT_SEED ?= 3
 AUDIT_SCENARIOS ?= 150
 audit-campaign: $(STAMP)

@@ -15,7 +15,8 @@ from types import SimpleNamespace
 import numpy as np
 
 from federation.protocol import PolicyViolation
-from site_agent.audit import ReleaseFacts
+from simulations import rerun
+from simulations.rerun import counts_of
 from site_agent.counts import Condition, CountSet
 from site_agent.disclosure import protect, suppress
 from site_agent.withheld import annotate, rule_of
@@ -154,16 +155,8 @@ FIVE = "abcde"
 
 def cells(values: dict[str, int], boxes: list[str]) -> CountSet:
     """Five cells of one variable ``z`` and a count per box (a set of cells), related where two boxes split a
-    third."""
-    out = CountSet()
-    for i, box in enumerate(boxes):
-        out.add(f"t.b{i}", sum(values[c] for c in box), Condition("z", tuple(box)))
-    for i, box in enumerate(boxes):
-        for j, part in enumerate(boxes):
-            for other in boxes[j + 1 :]:
-                if set(part) | set(other) == set(box) and not set(part) & set(other):
-                    out.relate(f"t.b{i}", f"t.b{j}", f"t.b{boxes.index(other)}")
-    return out
+    third (the campaign's builder, :func:`simulations.rerun.counts_of`)."""
+    return counts_of(values, tuple(boxes))
 
 
 def tables(counts: CountSet, released: dict, rules: dict, k: int, zero_branch: bool = False) -> np.ndarray:
@@ -242,19 +235,9 @@ def test_what_the_other_branch_lets_out_stays_protected() -> None:
 
 def observed(values: dict[str, int], releases: list[list[str]], k: int) -> tuple:
     """What a recipient sees of each release of these boxes, made one after the other at one site: each count's
-    value or rule, or that the release was refused."""
-    earlier: list[ReleaseFacts] = []
-    seen: list[tuple] = []
-    for r, boxes in enumerate(releases):
-        counts = cells(values, boxes)
-        try:
-            protected = protect(counts, policy(k=k), earlier, label=f"r{r}")
-        except PolicyViolation:
-            seen.append(("refused",))
-            continue
-        seen.append(tuple((n, protected.released[n], protected.rules.get(n)) for n in sorted(protected.released)))
-        earlier.append(ReleaseFacts.from_dict(f"r{r}", protected.facts(counts)))
-    return tuple(seen)
+    value or rule, or that the release was refused (:func:`simulations.rerun.observe`, whose policy has k = 5)."""
+    assert k == rerun.K
+    return rerun.observe(tuple(values[c] for c in FIVE), tuple(tuple(boxes) for boxes in releases))
 
 
 def rerun_tables(values: dict[str, int], releases: list[list[str]], k: int) -> tuple[np.ndarray, np.ndarray]:
