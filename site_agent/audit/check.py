@@ -689,7 +689,8 @@ class Audit:
         """Counts of the audited release whose suppression could break the finding, smallest value first.
 
         From the rows of a combination of released counts that yields the region (or the binding rows of the
-        LP); if none is suppressible, the audited release's counts that overlap the region.
+        LP); if none is suppressible, the audited release's counts that overlap the region; if none, every
+        count the audited release shows.
         """
         # every row of the combination (the caller picks among them by the analyses' fixed priority)
         boxes = {system.row_box[r] for r, w in weights.items() if system.row_box[r] in self._suppressible and w > 1e-9}
