@@ -96,6 +96,10 @@ def check_onnx(model_bytes: bytes, n_features: int) -> CheckedGraph:
         return _check(model, n_features)
     except _Refused as exc:
         raise BundleError(f"ONNX model refused before any record is read: {exc}") from None
+    except BundleError:
+        raise
+    except Exception:  # a graph the check cannot follow (a value it cannot read as an axis or a shape)
+        raise BundleError("ONNX model refused before any record is read: the check cannot follow its graph") from None
 
 
 def _check(model: Any, n_features: int) -> CheckedGraph:
@@ -237,6 +241,8 @@ def _prove_row_independence(model: Any, input_name: str, output: str) -> None:
 
     for node in graph.node:
         ins = [known(name) for name in node.input]
+        if any(name and name in values for name in node.output):
+            raise _Refused(f"operator {node.op_type!r}: defines a value the graph already has")
         outs = []
         for name in node.output:
             info = infos.get(name)
@@ -261,8 +267,10 @@ def _prove_row_independence(model: Any, input_name: str, output: str) -> None:
                     raise _Refused(f"operator {node.op_type!r}: its output shape does not keep the batch axis")
                 value.batched = True
                 value.rank = value.rank if value.rank is not None else rank
-        elif all(v.constant is not None for v in ins) and node.op_type in ("Identity", "Cast", "Reshape", "Squeeze"):
+        elif all(v.constant is not None for v in ins) and node.op_type in ("Identity", "Reshape", "Squeeze"):
             outs[0].constant = ins[0].constant  # small constant plumbing (axes, shapes) keeps its values
+        elif node.op_type == "Cast" and ins[0].constant is not None:
+            outs[0].constant = _cast(ins[0].constant, int(_attr(node, "to", 0)))
         for name, value in zip(node.output, outs, strict=False):
             values[name] = value
     final = values.get(output)
@@ -301,7 +309,28 @@ def _attr(node: Any, name: str, default: Any = None) -> Any:
     return default
 
 
+def _cast(array: Any, to: int) -> Any:
+    """A constant through ``Cast``: its values only where the cast keeps every one of them exactly (whole
+    numbers that fit the target type). A cast that wraps (int64 2**32 to int32 is 0 at run time) or turns a
+    NaN into an integer would make the check reason about another axis than the one onnxruntime uses, so
+    such a constant is unknown to the check, and a rule that needs it refuses."""
+    import numpy as np
+    from onnx import helper
+
+    try:
+        target = helper.tensor_dtype_to_np_dtype(to)
+        with np.errstate(all="ignore"):
+            cast = array.astype(target)
+            before = array.astype(np.float64)
+            same = bool(np.all(np.isfinite(before))) and np.array_equal(cast.astype(np.float64), before)
+    except (TypeError, ValueError, KeyError, OverflowError):
+        return None
+    return cast if same else None
+
+
 def _axis(value: int, rank: int | None, op: str) -> int:
+    if rank is not None and not -rank <= value < rank:
+        raise _Refused(f"operator {op!r}: an axis outside the tensor's rank")
     if value >= 0:
         return value
     if rank is None:
@@ -312,7 +341,10 @@ def _axis(value: int, rank: int | None, op: str) -> int:
 def _axes(node: Any, ins: list[_Value], position: int) -> list[int] | None:
     """Axes from the attribute ``axes`` or, in newer opsets, the constant input at ``position``."""
     axes = _attr(node, "axes")
-    if axes is None and len(ins) > position and node.input[position]:
+    given = len(ins) > position and bool(node.input[position])
+    if axes is not None and given:
+        raise _Refused(f"operator {node.op_type!r}: axes given both as an attribute and as an input")
+    if axes is None and given:
         if ins[position].batched or ins[position].constant is None:
             raise _Refused(f"operator {node.op_type!r}: its axes must be constants in the graph")
         axes = [int(a) for a in ins[position].constant.ravel()]
@@ -427,8 +459,12 @@ def _reshape(node: Any, ins: list[_Value], outs: list[_Value], opset: int) -> li
 
 
 def _flatten(node: Any, ins: list[_Value], outs: list[_Value], opset: int) -> list[int | None]:
-    if _axis(int(_attr(node, "axis", 1)), ins[0].rank, "Flatten") == 0:
-        raise _Refused("operator 'Flatten' at axis 0 would mix records")
+    # Flatten at axis a gives [d0 * ... * d(a-1), the rest]: only a = 1 keeps one row per record
+    axis, rank = int(_attr(node, "axis", 1)), ins[0].rank
+    if axis < 0 and rank is None:
+        raise _Refused("operator 'Flatten': a negative axis on a tensor of unknown rank")
+    if (axis + rank if axis < 0 and rank is not None else axis) != 1:
+        raise _Refused("operator 'Flatten' at an axis other than 1 would mix records")
     return [2]
 
 

@@ -184,10 +184,75 @@ MIXING = {
         ],
         "'Concat' along the batch axis",
     ),
+    # Found by the red team: a Cast the check read as keeping its value. int64 2**32 cast to int32 is 0 at run
+    # time, so the Slice takes record 0 and every score is "this record minus the first one".
+    "records picked by an axis that wraps in a cast": (
+        [
+            *FIRST_COLUMN,
+            helper.make_node("Cast", ["wrapping_axis"], ["axis_i32"], to=TensorProto.INT32),
+            helper.make_node("Slice", ["first", "zero_i32", "one_i32", "axis_i32"], ["record0"]),
+            helper.make_node("Sub", ["first", "record0"], ["against_first"]),
+            *as_probabilities("against_first"),
+        ],
+        "'Slice': starts, ends and axes must be constants in the graph",
+    ),
+    # uint32 4294967294 cast to int32 is -2, axis 0 of a rank-2 tensor: step -1 gives record i the score of
+    # record N-1-i
+    "records reversed by an axis that wraps in a cast": (
+        [
+            *FIRST_COLUMN,
+            helper.make_node("Cast", ["unsigned_axis"], ["axis_back"], to=TensorProto.INT32),
+            helper.make_node(
+                "Slice", ["first", "minus_one_i32", "lowest_i32", "axis_back", "minus_one_i32"], ["reversed"]
+            ),
+            *as_probabilities("reversed"),
+        ],
+        "'Slice': starts, ends and axes must be constants in the graph",
+    ),
+    "an axis cast from a NaN": (
+        [
+            helper.make_node("Cast", ["not_a_number"], ["nan_axis"], to=TensorProto.INT64),
+            helper.make_node("Slice", ["input", "zero", "one", "nan_axis"], ["first"]),
+            *as_probabilities("first"),
+        ],
+        "'Slice': starts, ends and axes must be constants in the graph",
+    ),
+    # onnxruntime refuses to load this one itself; the check must not lean on that
+    "axes given twice (attribute over the batch, input elsewhere)": (
+        [
+            *FIRST_COLUMN,
+            helper.make_node("ReduceSum", ["first", "one"], ["total"], keepdims=1, axes=[0]),
+            *as_probabilities("total"),
+        ],
+        "'ReduceSum': axes given both as an attribute and as an input",
+    ),
+    "flatten at the last axis (one row per value, not per record)": (
+        [
+            helper.make_node("Flatten", ["input"], ["values"], axis=2),
+            helper.make_node("Slice", ["values", "zero", "one", "one"], ["first"]),
+            *as_probabilities("first"),
+        ],
+        "'Flatten' at an axis other than 1 would mix records",
+    ),
+    "a value defined twice (a node output over a constant)": (
+        [
+            helper.make_node("Identity", ["zero_i32"], ["one"]),
+            *FIRST_COLUMN,
+            *as_probabilities("first"),
+        ],
+        "'Identity': defines a value the graph already has",
+    ),
 }
 MIXING_CONSTANTS = [
     *FIRST_COLUMN_CONSTANTS,
     *UNITY,
+    const("wrapping_axis", [2**32]),
+    const("unsigned_axis", [4294967294], np.uint32),
+    const("zero_i32", [0], np.int32),
+    const("one_i32", [1], np.int32),
+    const("minus_one_i32", [-1], np.int32),
+    const("lowest_i32", [-(2**31)], np.int32),
+    const("not_a_number", [np.nan], np.float32),
     const("pairs", [-1, 2]),
     const("column", [-1, 1]),
     const("zero_scalar", 0),
@@ -206,7 +271,15 @@ def test_graphs_that_mix_records_are_refused_before_any_record_is_read(name: str
 
 
 @pytest.mark.parametrize(
-    "name", ["mean over the batch", "softmax across records", "cumulative sum over records", "batch size (Shape)"]
+    "name",
+    [
+        "mean over the batch",
+        "softmax across records",
+        "cumulative sum over records",
+        "batch size (Shape)",
+        "records picked by an axis that wraps in a cast",
+        "records reversed by an axis that wraps in a cast",
+    ],
 )
 def test_the_refused_graphs_really_mix_records_when_run_unchecked(name: str) -> None:
     """The premise of the check: run directly in onnxruntime, these graphs give a record a different score
