@@ -33,6 +33,7 @@ from federation.protocol.errors import LimitReached, ModelNotApproved, ScoringEr
 from . import approval, ledger, models
 from .analyses import Flow, build_analyses, collect_counts, combined_schema, tabulate
 from .approval import AwaitingApproval
+from .audit.facts import AuditError
 from .audit.model import describe_bundle
 from .checked_models import site_scorer
 from .config import Site
@@ -64,8 +65,8 @@ def refusal_reason(exc: BaseException, phase: str) -> tuple[str, str]:
     The travelling line starts with one of ``REFUSAL_CATEGORIES`` (federation/protocol/errors.py). Our own
     message follows only when it was decided before any record was read (it then depends on the request,
     the bundle and the policy alone) or by the disclosure audit (which names an analysis and a rule, never a
-    count). After records were read, a data or scoring failure travels as its category alone, the same
-    whatever the record. ``phase``: ``verify`` (request, bundle, policy), ``model`` (static checks of the
+    count; where the audit stopped on the values themselves, one fixed line, ``AuditError.public``). After
+    records were read, a data or scoring failure travels as its category alone, the same whatever the record. ``phase``: ``verify`` (request, bundle, policy), ``model`` (static checks of the
     analyses and the model), ``setup`` (the mapping and the source), ``records`` (reading and scoring),
     ``disclosure`` (suppression and the audit).
     """
@@ -85,7 +86,9 @@ def refusal_reason(exc: BaseException, phase: str) -> tuple[str, str]:
             return f"request not accepted by the site's policy: {exc}", local
         return f"request not accepted: {exc}", local
     if phase == "disclosure" and isinstance(exc, PolicyViolation):
-        return f"release withheld by the site's disclosure control: {exc}", local
+        # an audit that stopped on the values themselves sends one fixed line (its message names a count)
+        public = exc.public if isinstance(exc, AuditError) and exc.public else str(exc)
+        return f"release withheld by the site's disclosure control: {public}", local
     if phase in ("setup", "records"):
         return "data could not be read", local
     return "internal error at the site", local

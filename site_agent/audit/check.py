@@ -16,7 +16,17 @@ from threadpoolctl import ThreadpoolController
 
 from .branches import Branches
 from .decompose import Cells, decompose
-from .facts import _TOL, MAX_ATOMS, MILP_MAX_ATOMS, AuditError, AuditResult, Finding, Interval, ReleaseFacts
+from .facts import (
+    _TOL,
+    MAX_ATOMS,
+    MILP_MAX_ATOMS,
+    VALUES_REFUSED,
+    AuditError,
+    AuditResult,
+    Finding,
+    Interval,
+    ReleaseFacts,
+)
 from .model import Occupied, joint_boxes, meet_entries, models_for_old_entries
 from .refinement import Box, Domain, _bits, _whole_numbers, normalise, refine
 from .system import _build_system, _implicit_zeros, _Pool, _System
@@ -205,14 +215,17 @@ class Audit:
                 continue
             if statement.box is None:
                 if value != 0:
-                    raise AuditError(f"count {statement.name!r} has an empty definition but a value other than 0")
+                    raise AuditError(
+                        f"count {statement.name!r} has an empty definition but a value other than 0", VALUES_REFUSED
+                    )
                 continue
             if statement.box in known and known[statement.box] != value:
                 raise AuditError(
                     f"count {statement.name!r} differs from the same count in release "
                     f"{self.releases[first[statement.box]].label}: the records changed since an earlier release of "
                     "this site, and the audit cannot protect differences between two versions of the data; "
-                    "answer from the data extract earlier releases used (see docs/threat-model.md, data versions)"
+                    "answer from the data extract earlier releases used (see docs/threat-model.md, data versions)",
+                    VALUES_REFUSED,
                 )
             known[statement.box] = int(value)
             first[statement.box] = min(first.get(statement.box, statement.release), statement.release)

@@ -51,8 +51,26 @@ def withheld_bounds(
     return out
 
 
+# What travels to the coordinator when the audit stops on the values themselves (two releases give the same
+# count different values, the counts contradict each other, a linear program fails): one fixed line, whatever
+# count or value caused it. The message naming the count stays at the site (its terminal and ledger): a
+# refusal that named the count that changed told the recipient which group held the records that differ.
+VALUES_REFUSED = (
+    "the audit cannot relate this release to the site's earlier releases (the records, or how a bundle's schema "
+    "reads them, differ from before); the site's ledger says more"
+)
+
+
 class AuditError(PolicyViolation):
-    """The audit cannot model the facts (they contradict each other, or are too many)."""
+    """The audit cannot model the facts (they contradict each other, or are too many).
+
+    ``public`` is what may travel to the coordinator instead of the message, for a failure that depends on
+    values (:data:`VALUES_REFUSED`); None: the message depends on the request, the bundles and the ledger's
+    definitions alone, and travels as it is."""
+
+    def __init__(self, message: str, public: str | None = None) -> None:
+        super().__init__(message)
+        self.public = public
 
 
 @dataclass(frozen=True)

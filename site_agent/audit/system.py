@@ -12,7 +12,7 @@ from scipy.linalg import qr
 from scipy.optimize import Bounds, LinearConstraint, linprog, milp
 from scipy.sparse.csgraph import connected_components
 
-from .facts import AuditError
+from .facts import VALUES_REFUSED, AuditError
 
 try:  # HiGHS through scipy's own binding (scipy >= 1.15): a block's program kept between objectives
     from scipy.optimize._highspy import _core as _highs
@@ -246,7 +246,7 @@ def _solve(c: np.ndarray, block: _Block) -> tuple[float, np.ndarray, np.ndarray]
     if result.status == 3:
         return None
     if result.status != 0:
-        raise AuditError("the audit's linear program did not solve; the release is withheld")
+        raise AuditError("the audit's linear program did not solve; the release is withheld", VALUES_REFUSED)
     marginals = np.asarray(result.eqlin.marginals) if a is not None else np.zeros(0)
     return float(result.fun), np.asarray(result.x), marginals
 
@@ -368,7 +368,7 @@ def _build_system(
     a_live.eliminate_zeros()
     nonempty = np.diff(a_live.indptr) > 0
     if np.any(np.abs(b[~nonempty]) > 0.5):
-        raise AuditError("the released counts contradict each other (no table is consistent with them)")
+        raise AuditError("the released counts contradict each other (no table is consistent with them)", VALUES_REFUSED)
     row_ids = np.flatnonzero(nonempty)
     a_live = a_live[row_ids]
     if g is None:
@@ -397,7 +397,7 @@ def _build_system(
             break
     assert system is not None
     if len(row_ids) and np.max(np.abs(a_live @ system.solution[keep] - b[row_ids])) > 1e-6 * (1 + np.max(np.abs(b))):
-        raise AuditError("the released counts contradict each other (no table is consistent with them)")
+        raise AuditError("the released counts contradict each other (no table is consistent with them)", VALUES_REFUSED)
     return system
 
 
@@ -563,9 +563,9 @@ def _implicit_zeros(
         options={"presolve": False},  # a third faster on these systems (measured at 100 earlier releases)
     )
     if result.status == 2:
-        raise AuditError("the released counts contradict each other (no table is consistent with them)")
+        raise AuditError("the released counts contradict each other (no table is consistent with them)", VALUES_REFUSED)
     if result.status != 0:
-        raise AuditError("the audit's linear program did not solve; the release is withheld")
+        raise AuditError("the audit's linear program did not solve; the release is withheld", VALUES_REFUSED)
     implicit = np.zeros(n, bool)
     implicit[asked] = result.x[n : n + p] < 0.5
     return implicit

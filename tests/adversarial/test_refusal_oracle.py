@@ -238,3 +238,28 @@ def test_the_refusal_reads_the_same_whichever_records_trigger_it(tmp_path: Path,
         assert entry["details"]["study_id"] == "probe" and entry["details"]["error"] == "ScoringError"
         assert set(entry["details"]) == {"request_sha256", "reason", "error", "detail", "study_id", "request_id"}
     assert lines[0] == lines[1] and reasons[0] == reasons[1] == ["scoring failed"]
+
+
+def test_a_refusal_for_changed_records_names_no_count(tmp_path: Path) -> None:
+    """Found by our red team: when the records behind a count changed since an earlier release, the audit
+    refused with a reason naming the count that differs (``subgroups.sex[1].confusion[0].tp``), which told the
+    coordinator the sex and outcome of the records that changed. Two sites, each asked twice for the 2x2
+    table by sex, each given one record more before the second request (a boy with the condition at one, a
+    girl without it at the other): the same fixed line travels from both, and no count's name."""
+    from site_agent.audit.facts import VALUES_REFUSED
+
+    from .world import World
+    from .world import records as world_records
+
+    reasons = []
+    for name, added in (("boy", (40, "m", 1, 1)), ("girl", (50, "f", 0, 0))):
+        world = World(tmp_path / name, world_records())
+        world.scorecard("items", {"kind": "points", "points": {"item": {"2": 1, "3": 1}}}, 1, lambda a, s, i: i >= 2)
+        assert world.ask("items", "one", "--analyses", "confusion,subgroups", "--subgroup", "sex") is not None
+        with (world.root / "records.csv").open("a") as data:
+            data.write(",".join(str(v) for v in added) + "\n")
+        assert world.ask("items", "two", "--analyses", "confusion,subgroups", "--subgroup", "sex") is None
+        reasons.append(sent_reasons(world.site)[-1])
+        detail = [e for e in ledger.read_entries(world.site / "ledger.jsonl") if e["event"] == "refusal"][-1]
+        assert "differs from the same count" in detail["details"]["detail"]  # the site's own record says which
+    assert reasons[0] == reasons[1] == f"release withheld by the site's disclosure control: {VALUES_REFUSED}"
