@@ -51,17 +51,21 @@ def merge_bands(counts: np.ndarray, min_cell_size: int, allow_zero: bool = True)
     """Partition bands (rows of ``counts``, one column per class) into runs ``[start, stop)``.
 
     Dynamic programming over run ends, O(bands² × classes): maximise the number of runs in which every
-    column sum is safe, then minimise the sum of squared run sizes (records), so runs are as even as the
-    counts allow. Returns ``[(0, bands)]`` when no partition is safe.
+    column sum is safe; among partitions with as many runs, the last run of each prefix starts as early as
+    possible (a rule of positions). The merged edges are released, so the choice may depend on which runs are
+    safe but never on how large a safe run is: a tie broken by run sizes (say, runs as even as possible) would
+    tell whether a small band's left neighbour holds fewer records than its right one, and with a second
+    request that is the small band's count (docs/threat-model.md, R12). Returns ``[(0, bands)]`` when no
+    partition is safe.
     """
     table = np.asarray(counts, dtype=np.int64)
     if table.ndim != 2 or table.shape[0] == 0:
         raise ValueError("counts must be a non-empty bands × classes table")
     bands = table.shape[0]
     prefix = np.vstack([np.zeros((1, table.shape[1]), dtype=np.int64), np.cumsum(table, axis=0)])
-    best: list[tuple[int, float] | None] = [None] * (bands + 1)
+    best: list[int | None] = [None] * (bands + 1)  # the most safe runs a prefix can be cut into
     start_of: list[int] = [-1] * (bands + 1)
-    best[0] = (0, 0.0)
+    best[0] = 0
     for stop in range(1, bands + 1):
         for start in range(stop):
             before = best[start]
@@ -70,10 +74,9 @@ def merge_bands(counts: np.ndarray, min_cell_size: int, allow_zero: bool = True)
             sums = prefix[stop] - prefix[start]
             if not all(is_safe(int(c), min_cell_size, allow_zero) for c in sums):
                 continue
-            size = float(sums.sum())
-            candidate = (before[0] + 1, before[1] - size * size)
+            candidate = before + 1
             current = best[stop]
-            if current is None or candidate > current:
+            if current is None or candidate > current:  # strictly more runs: the earliest start keeps a tie
                 best[stop] = candidate
                 start_of[stop] = start
     if best[bands] is None:

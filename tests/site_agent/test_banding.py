@@ -50,6 +50,32 @@ def test_dynamic_programme_finds_the_most_safe_runs(seed: int) -> None:
         assert all(is_safe(int(c), k, allow_zero) for a, b in runs for c in table[a:b].sum(axis=0))
 
 
+def test_which_way_a_small_band_merges_does_not_depend_on_its_neighbours_sizes() -> None:
+    """The merged edges are released. A small band between two safe ones must merge the same way (into its
+    right neighbour) whatever the neighbours hold: a tie broken by run sizes told a < b, and two such requests
+    gave the small band's count (docs/threat-model.md, R12)."""
+    for a, b in itertools.product(range(5, 40, 3), repeat=2):
+        assert merge_bands(np.array([[a, 0], [3, 0], [b, 0]]), 5) == [(0, 1), (1, 3)], (a, b)
+
+
+def test_the_runs_depend_only_on_which_stretches_are_safe() -> None:
+    """Property: two tables whose every stretch of consecutive bands is safe or unsafe alike are cut alike
+    (the recipient of the merged edges learns which stretches are safe, never more)."""
+    rng = np.random.default_rng(11)
+    seen: dict[tuple, list[tuple[int, int]]] = {}
+    for _ in range(4000):
+        bands = int(rng.integers(2, 5))
+        table = rng.choice([0, 1, 3, 5, 6, 9, 14], size=(bands, 2))
+        pattern = tuple(
+            all(is_safe(int(c), 5, True) for c in table[a:b].sum(axis=0))
+            for a in range(bands)
+            for b in range(a + 1, bands + 1)
+        )
+        runs = merge_bands(table, 5)
+        assert seen.setdefault(pattern, runs) == runs, table.tolist()
+    assert len(seen) > 40  # many patterns were met, each twice or more on average
+
+
 def test_merged_bands_carry_edges_and_counts() -> None:
     table = np.array([[12, 30], [3, 20], [4, 0], [15, 11]])
     bands = merged_bands((0.25, 0.5, 0.75), table, 10)
