@@ -8,7 +8,7 @@ synced) before it is written out or returned for sending; every refusal is in th
 
 from __future__ import annotations
 
-from collections.abc import Callable
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from datetime import UTC, datetime
 from pathlib import Path
@@ -22,6 +22,7 @@ from federation.protocol import (
     PolicyViolation,
     Release,
     Request,
+    Schema,
     ValidationToolError,
     load_bundle,
     sha256_hex,
@@ -33,7 +34,7 @@ from federation.protocol.errors import LimitReached, ModelNotApproved, ScoringEr
 from . import approval, ledger, models
 from .analyses import Flow, build_analyses, collect_counts, combined_schema, tabulate
 from .approval import AwaitingApproval
-from .audit.facts import AuditError
+from .audit.facts import AuditError, ReleaseFacts
 from .audit.model import describe_bundle
 from .checked_models import site_scorer
 from .config import Site
@@ -66,9 +67,10 @@ def refusal_reason(exc: BaseException, phase: str) -> tuple[str, str]:
     message follows only when it was decided before any record was read (it then depends on the request,
     the bundle and the policy alone) or by the disclosure audit (which names an analysis and a rule, never a
     count; where the audit stopped on the values themselves, one fixed line, ``AuditError.public``). After
-    records were read, a data or scoring failure travels as its category alone, the same whatever the record. ``phase``: ``verify`` (request, bundle, policy), ``model`` (static checks of the
-    analyses and the model), ``setup`` (the mapping and the source), ``records`` (reading and scoring),
-    ``disclosure`` (suppression and the audit).
+    records were read, a data or scoring failure travels as its category alone, the same whatever the record.
+    ``phase``: ``verify`` (request, bundle, policy), ``model`` (static checks of the analyses and the model;
+    whether the bundle's schema reads records as every earlier release's did), ``setup`` (the mapping and the
+    source), ``records`` (reading and scoring), ``disclosure`` (suppression and the audit).
     """
     local = str(exc) if isinstance(exc, ValidationToolError) else f"internal error at the site ({type(exc).__name__})"
     if not isinstance(exc, ValidationToolError):
@@ -152,6 +154,56 @@ def model_facts(bundle: Bundle) -> dict[str, Any]:
         "bundle_sha256": bundle.sha256,
         "inputs": [feature.name for feature in manifest.schema.features],
     }
+
+
+def _reading(entry: dict[str, Any]) -> tuple:
+    """What decides which records a schema entry lets through and the value it gives them: type, range,
+    categories (as a set) and the missing-value rule."""
+    categories = entry.get("categories")
+    return (
+        entry.get("type"),
+        entry.get("min"),
+        entry.get("max"),
+        frozenset(categories) if categories else None,
+        entry.get("missing"),
+    )
+
+
+def check_schema_reads_alike(schema: Schema, earlier: Sequence[ReleaseFacts]) -> None:
+    """Refuse, before any record is read, a bundle whose schema would read the site's records differently
+    from the schema of an earlier release of the site (to any study).
+
+    The audit relates every release of the site over one set of records with one status each (analysed, or
+    excluded for a reason) and one value of each feature. A schema with another range, other categories, another
+    missing-value rule or other features could exclude other records or give a record another value (a missing
+    age filled as 0 by one bundle and as 95 by another). The audit would then see the same count change, and
+    refuse *because of the records* (one bit about them, and before this check the reason named the count;
+    found by our red team). Comparing the schemas decides the same without reading a record. Releases whose
+    ledger entry records no schema (older ledgers) are not compared.
+    """
+    own = {f.name: _reading(f.to_dict()) for f in schema.features}
+    for release in earlier:
+        if not release.domains:
+            continue
+        theirs = {name: _reading(dict(entry)) for name, entry in release.domains.items()}
+        if theirs == own:
+            continue
+        differs = sorted(n for n in set(own) | set(theirs) if own.get(n) != theirs.get(n))
+        name = differs[0]
+        if name not in own:
+            what = f"feature {name!r}, which the schema of an earlier release of this site declares, is not in it"
+        elif name not in theirs:
+            what = f"feature {name!r} is not in the schema of an earlier release of this site"
+        else:
+            what = (
+                f"feature {name!r} is declared differently (type, range, categories or missing-value rule) from "
+                "the schema of an earlier release of this site"
+            )
+        raise PolicyViolation(
+            f"bundle schema: {what}; the site's disclosure audit relates releases that read the same records "
+            "alike, so every bundle a site answers for must declare the same features the same way (a new schema "
+            "needs a new site folder and ledger: docs/threat-model.md, R1)"
+        )
 
 
 def check_compare_bundle(site: Site, request: Request, compare_bundle_bytes: bytes | None) -> Bundle | None:
@@ -357,6 +409,9 @@ def _compute(
     holder = {} if holder is None else holder
     holder["phase"] = "model"
     schema = combined_schema(bundle.schema, compare.schema if compare else None)
+    # the audit's scope is the site: every release it made, to any study (max_studies is only a rate limit)
+    earlier = ledger.facts_for_site(site.ledger_path)
+    check_schema_reads_alike(schema, earlier)
     scorer = site_scorer(site, bundle)  # the static check, kept per model in the site folder once it was made
     pair = (compare, site_scorer(site, compare)) if compare is not None else None
     analyses = build_analyses(request.analyses, bundle, compare)
@@ -369,8 +424,6 @@ def _compute(
     check_something_analysed(flow, mapping, site.policy.min_cell_size)
     holder["phase"] = "disclosure"
     counts = collect_counts(flow, analyses, site.policy)
-    # the audit's scope is the site: every release it made, to any study (max_studies is only a rate limit)
-    earlier = ledger.facts_for_site(site.ledger_path)
     primary = primary_counts(counts, analyses, bundle)
     domains = {f.name: f.to_dict() for f in schema.features}
     # the recipient knows the models: the audit follows their scores over the features they read

@@ -124,4 +124,10 @@ def _parse_feature(item: Any, where: str) -> Feature:
                 raise DocumentError(f"{where}.missing: must be one of the categories")
         else:
             missing = _number(missing, f"{where}.missing")
+            # a filled record is analysed with this value: it must be one the feature can take, or the site's
+            # audit (which knows the domain) would take a band holding the filled records as empty
+            if (minimum is not None and missing < minimum) or (maximum is not None and missing > maximum):
+                raise DocumentError(f"{where}.missing: must lie within the feature's min and max")
+            if kind == "int" and missing != int(missing):
+                raise DocumentError(f"{where}.missing: an int feature's missing value must be a whole number")
     return Feature(name, kind, minimum, maximum, categories, required, missing)

@@ -97,12 +97,13 @@ def test_thresholds_either_side_of_the_small_band_on_a_score_that_is_the_age(tmp
 def test_bundles_whose_schemas_cut_the_age_range_differently_are_not_differenced(tmp_path: Path) -> None:
     """Issue 12 items 1 and 3 through the flow: a bundle whose schema allows ages from 24 months and another
     from 30 months would give the 24-29 count as the difference of their ``out_of_range`` exclusions. The
-    second study is refused (the audit sees the analysed count of the same definition change), so the
+    second study is refused before any record is read (its schema declares the age differently), so the
     recipient holds only the first release: 24-29 is one part of the 304 analysed, anywhere in 0..98 with the
     condition (checked by a linear program over the three regions the release names, scipy.optimize.linprog)."""
     from scipy.optimize import linprog
 
     from federation.cli import main as federation
+    from site_agent import ledger
 
     world = World(tmp_path, records(small=SMALL))
     key = str(tmp_path / "coordinator" / "coordinator.key")
@@ -120,6 +121,10 @@ def test_bundles_whose_schemas_cut_the_age_range_differently_are_not_differenced
     flow = first["flow"]
     assert flow["excluded"]["out_of_range"] == sum(1 for a, *_ in world.data if a < 24)
     assert world.ask("from30", "two", "--analyses", "confusion") is None  # refused
+    refusal = [e for e in ledger.read_entries(world.site / "ledger.jsonl") if e["event"] == "refusal"][-1]
+    assert refusal["details"]["reason"].startswith(
+        "request not accepted by the site's policy: bundle schema: feature 'age_months' is declared differently"
+    )
     # Regions: [age < 24], [24-29, with], [24-29, without], [30+, with], [30+, without].
     rows = [[1, 0, 0, 0, 0], [0, 1, 0, 1, 0], [0, 0, 1, 0, 1], [1, 1, 1, 1, 1]]
     values = [flow["excluded"]["out_of_range"], flow["analysed_positive"], flow["analysed_negative"], flow["read"]]
@@ -127,6 +132,40 @@ def test_bundles_whose_schemas_cut_the_age_range_differently_are_not_differenced
     low = linprog(target, A_eq=rows, b_eq=values, method="highs").fun
     high = -linprog([-x for x in target], A_eq=rows, b_eq=values, method="highs").fun
     assert (round(low), round(high)) == (0, flow["analysed_positive"])
+
+
+def test_bundles_that_fill_a_missing_age_differently_are_refused_before_any_record_is_read(tmp_path: Path) -> None:
+    """Found by our red team: two bundles whose schemas fill a missing age as 0 and as 95 months move the
+    records with no age from one age to another. The audit took the second release's changed counts for
+    changed records and refused, so released-or-refused told whether any record lacks an age (and the reason
+    named the count, so which sex). Now the second bundle is refused before any record is read: the same
+    line whether or not a record lacks an age, naming the feature, never a count."""
+    from federation.cli import main as federation
+    from site_agent import ledger
+
+    reasons = []
+    for name, extra in (("complete", []), ("one-without-age", [("", "m", 2, 1)])):
+        world = World(tmp_path / name, records(n=300) + extra)  # type: ignore[operator]
+        key = str(world.root / "coordinator" / "coordinator.key")
+        for fill in (0, 95):
+            schema = world.root / f"fill{fill}.toml"
+            schema.write_text(
+                (world.root / "schema.toml").read_text().replace("max = 95\n", f"max = 95\nmissing = {fill}\n", 1)
+            )
+            model = world.root / "age.json"
+            model.write_text('{"format": "scorecard", "kind": "points", "weights": {"age_months": 1}}')
+            out = world.root / f"fill{fill}.bundle"
+            args = ["bundle", "pack", "--model", str(model), "--schema", str(schema), "--threshold", "48"]
+            assert federation([*args, "--sign", key, "--name", f"fill{fill}", "--out", str(out)]) == 0
+            world.bundles[f"fill{fill}"] = (out, lambda a, s, i: float(a), 48.0)
+        assert world.ask("fill0", "one", "--analyses", "confusion,subgroups", "--subgroup", "sex") is not None
+        assert world.ask("fill95", "two", "--analyses", "confusion,subgroups", "--subgroup", "sex") is None
+        refusals = [e for e in ledger.read_entries(world.site / "ledger.jsonl") if e["event"] == "refusal"]
+        reasons.append(refusals[-1]["details"]["reason"])
+    assert reasons[0] == reasons[1]
+    assert reasons[0].startswith(
+        "request not accepted by the site's policy: bundle schema: feature 'age_months' is declared differently"
+    )
 
 
 def test_auc_and_expected_total_of_a_crafted_scorecard_do_not_give_the_withheld_cell(tmp_path: Path) -> None:

@@ -120,3 +120,22 @@ def test_packing_probes_a_record_inside_the_schema(key):
     scorer = make_scorer(bundle)
     assert (scorer.low, scorer.high) == (2.0, 10.0)  # 2 x [1, 5], by hand
     assert scorer.score(np.array([[1.0], [5.0]], dtype=np.float32)).tolist() == [2.0, 10.0]
+
+
+@pytest.mark.parametrize(
+    ("entry", "rule"),
+    [
+        ({"type": "int", "min": 0, "max": 95, "missing": -1}, "missing: must lie within the feature's min and max"),
+        ({"type": "float", "min": 0, "max": 95, "missing": 500}, "missing: must lie within the feature's min and max"),
+        ({"type": "int", "min": 0, "max": 95, "missing": 2.5}, "missing: an int feature.s missing value"),
+    ],
+)
+def test_a_missing_value_outside_the_features_domain_is_refused(entry, rule):
+    """Found by our red team: a fill of -1 months put records at an age the site's audit, which knows the
+    schema's domain, takes as impossible. The schema names the field and the rule."""
+    from federation.protocol import DocumentError
+
+    with pytest.raises(DocumentError, match=rf"features\[0\]\.{rule}"):
+        Schema.from_dict({"features": [{"name": "age_months", **entry}]})
+    inside = {**entry, "missing": 0}
+    assert Schema.from_dict({"features": [{"name": "age_months", **inside}]}).features[0].missing_value == 0
