@@ -232,6 +232,5 @@ class Calibration:
             "method": "from the released band counts, each band's records at its midpoint risk: expected = count x "
             "midpoint; logistic fits on logit(midpoint): offset for CITL, covariate for slope; maximum likelihood, "
             "SE from the inverse information",
-            "score_resolution": self.histogram.resolution,
             "suppressed": [n.removeprefix("calibration.") for n in names if released.get(n) is None],
         }

@@ -6,9 +6,9 @@ Every discrimination and calibration statistic the site releases depends on the 
 pairs (score, outcome), so counting them per distinct score is lossless, additive over chunks, and as
 small as the number of distinct scores. A points model has few; a probability model may have as many as
 records, so the number of distinct keys is capped: past the cap, scores are rounded to a grid (the
-resolution is reported with the statistics; ``None`` means exact). :func:`paired_delong` takes complex keys,
-``a + 1j·b`` for a record in band ``a`` of one model and band ``b`` of the other (the paired analysis's
-released joint table).
+resolution stays at the site: it depends on the spread of the records' scores, and no released figure uses
+it; ``None`` means exact). :func:`paired_delong` takes complex keys, ``a + 1j·b`` for a record in band ``a``
+of one model and band ``b`` of the other (the paired analysis's released joint table).
 
 Mann–Whitney AUC and the DeLong (1988) variance are computed from these counts with ties counted one half,
 through placement values (the structural components): for a positive with score x,

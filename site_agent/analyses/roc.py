@@ -121,6 +121,5 @@ class Roc:
             "auc_se": derived.get("roc.auc_se"),
             "method": "Mann-Whitney AUC (records in one band tied, 1/2), DeLong 1988 standard error, from the released "
             "band counts",
-            "score_resolution": self.histogram.resolution,
             "suppressed": suppressed,
         }
