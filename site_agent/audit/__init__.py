@@ -27,7 +27,11 @@ for an ONNX graph, those a record or a random input reaches), so a score band is
    not be exactly determined with a value the policy would suppress (1..k−1, and 0 when zeros may not be
    shown). A region is exactly determined when its indicator vector lies in the row space of the equality
    system after the atoms that are zero in every feasible table are fixed (found with one LP per block);
-   this is exact for the real relaxation and costs one SVD per block instead of one LP per region.
+   this is exact for the real relaxation and costs one SVD per block instead of one LP per region. Beyond
+   two boxes: a pinned box less two or more pinned boxes inside it, no two overlapping (``Audit._unions_pinned``):
+   among sibling boxes (the same conditions but on one variable: the bands of one analysis, the cells of one
+   table, across every release) by exact dynamic programming over sums; among any boxes by one small integer
+   program where at most ``UNION_MILP_BOXES`` lie inside.
 
 **Scale: the grouped model.** A site's history crosses every variable's cuts with every other's (fine ROC
 score bands times age bands: 150,000 atoms after 200 releases of mixed analyses), though no count names a fine

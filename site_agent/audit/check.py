@@ -12,6 +12,7 @@ from typing import Any
 
 import numpy as np
 from scipy import sparse
+from scipy.optimize import Bounds, LinearConstraint, milp
 from threadpoolctl import ThreadpoolController
 
 from .branches import Branches
@@ -38,6 +39,11 @@ _CONTROLLER: ThreadpoolController | None = None
 # Where the grouped model's answer is not clear, the full model decides when it has at most this many atoms
 # (a few seconds); beyond, the grouped model's own findings do (see ``evaluate``).
 FULL_MAX_ATOMS = 5_000
+# The search for a box less several boxes inside it (``_unions_pinned``) runs where the full model has at most
+# this many live atoms and pinned boxes (the demo's sites: up to 1,456 atoms).
+UNION_MAX_ATOMS = 3_000
+UNION_MAX_BOXES = 1_500
+UNION_MILP_BOXES = 12  # beyond sibling families, one integer program per box with at most this many inside it
 
 
 @dataclass
@@ -100,6 +106,7 @@ class Audit:
         # what the recipient knows about the models: score bands as regions of the features they read
         self._joined, self._joint_values, self.joints = joint_boxes(self.boxes, models, schema_entries, occupied)
         self.cells: Cells | None = None  # the grouped model's separator cells (None: the full model)
+        self._union_answers: dict[tuple, tuple[int, ...] | None] = {}  # see _unions_pinned
         self._grouped: Audit | None = None
         self._full = False
         self._too_large = False
@@ -395,6 +402,8 @@ class Audit:
                     findings.append(Finding("suppressed", self.releases[release].label, tuple(names), candidates))
             self._atoms_pinned(system, unsafe, released_zero, findings, seen_regions)
             self._nested_pinned(system, unsafe, findings, seen_regions)
+            if self.cells is None:
+                self._unions_pinned(system, unsafe, findings, seen_regions)
             if exact and self.cells is None and int((~system.zero).sum()) <= MILP_MAX_ATOMS:
                 self._whole_pinned(system, unsafe, released_zero, findings, seen_regions)
         if findings:
@@ -615,16 +624,7 @@ class Audit:
         if n_boxes < 2:
             return
         live = np.flatnonzero(~system.zero)
-        rng = np.random.default_rng(0)
-        # key = residual . g for a random g, computed without forming the residual matrix
-        key = np.zeros(n_boxes)
-        for block in system.blocks:
-            g = rng.standard_normal(len(block.atoms))
-            sub = self.incidence[:, block.atoms]
-            key += sub @ g - (sub @ block.basis) @ (block.basis.T @ g)
-        free_atoms = np.flatnonzero(system.free)
-        if len(free_atoms):
-            key += self.incidence[:, free_atoms] @ rng.standard_normal(len(free_atoms))
+        key = self._residual_keys(system)
         values = self.incidence @ system.solution
         live_mask = np.zeros(n_atoms, bool)
         live_mask[live] = True
@@ -680,6 +680,230 @@ class Audit:
                             self._candidates(system.combination(vector), system, vector),
                         )
                     )
+
+    def _residual_keys(self, system: _System) -> np.ndarray:
+        """Per box, its residual (distance from the row space) dotted with one random vector: two boxes have the
+        same key exactly when the system pins their difference down, and a box has key 0 when it pins the box
+        itself (almost surely); computed without forming the residual matrix."""
+        rng = np.random.default_rng(0)
+        key = np.zeros(self.incidence.shape[0])
+        for block in system.blocks:
+            g = rng.standard_normal(len(block.atoms))
+            sub = self.incidence[:, block.atoms]
+            key += sub @ g - (sub @ block.basis) @ (block.basis.T @ g)
+        free_atoms = np.flatnonzero(system.free)
+        if len(free_atoms):
+            key += self.incidence[:, free_atoms] @ rng.standard_normal(len(free_atoms))
+        return key
+
+    def _unions_pinned(self, system: _System, unsafe: Any, findings: list[Finding], seen: set[frozenset[int]]) -> None:
+        """A box F less two or more boxes inside it, no two overlapping, all pinned down (shown, or worked out):
+        what is left of F is pinned down too, and must not hold 1..k−1 records (0 too, when zeros are hidden).
+
+        Two nested boxes are checked by :meth:`_nested_pinned`; here one small integer program per box F
+        (HiGHS, at most 1 s) asks which of the pinned boxes inside F, no two sharing an atom and leaving at
+        least one live atom of F, take away all but a value the policy would hide, with at least one count of
+        the audited release among them. Found by our red team: the 2x2 table's positives aged 24-59 in one
+        study, less two bands of a comparison model (ages 30-44 and 45-59) in another, gave the three positives
+        aged 24-29 while a third model's bands split them into two open atoms; and one ordinary agreement
+        request gave the positives with no second reference (the analysed positives less the two pair cells
+        with one). Systems with more than ``UNION_MAX_ATOMS`` live atoms or ``UNION_MAX_BOXES`` pinned boxes
+        (long histories) are not searched (docs/threat-model.md, R14)."""
+        live_mask = ~system.zero
+        if int(live_mask.sum()) > UNION_MAX_ATOMS:
+            return
+        key = self._residual_keys(system)
+        values = self.incidence @ system.solution
+        regions: dict[int, frozenset[int]] = {}
+        for box in np.flatnonzero(np.abs(key) < 1e-7).tolist():
+            index = self.box_index[box]
+            region = frozenset(index[live_mask[index]].tolist())
+            if region and round(values[box]) >= 1:
+                regions[box] = region
+        if len(regions) > UNION_MAX_BOXES or not any(b in self._suppressible for b in regions):
+            return
+        low, high = (0 if unsafe(0) else 1), self._k - 1
+        for f in sorted(regions, key=lambda b: (len(regions[b]), b)):
+            total = int(round(values[f]))
+            inside = [g for g in regions if regions[g] < regions[f] and round(values[g]) <= total - low]
+            own = f in self._suppressible
+            if len(inside) < 2 or not (own or any(g in self._suppressible for g in inside)):
+                continue
+            taken = np.array([round(values[g]) for g in inside], float)
+            if total - taken.sum() > high:
+                continue  # even all of them together leave too many records
+            # the same question comes back in every repair round and every cut-back attempt of a release
+            question = (
+                total,
+                regions[f],
+                own,
+                tuple((regions[g], round(values[g]), g in self._suppressible) for g in inside),
+            )
+            if question in self._union_answers:
+                chosen = self._union_answers[question]
+            else:
+                chosen = self._sibling_search(inside, regions, values, total - high, total - low, own)
+                if chosen is None and len(inside) <= UNION_MILP_BOXES:
+                    chosen = self._union_search(inside, regions, regions[f], taken, total - high, total - low, own)
+                self._union_answers[question] = chosen
+            if chosen is None:
+                continue
+            region = regions[f].difference(*(regions[g] for g in chosen))
+            if region in seen:
+                continue
+            vector = self._vector(f) - sum(self._vector(g) for g in chosen)
+            rest = int(round(values[f] - sum(values[g] for g in chosen)))
+            if self._opened(vector, 2, rest, rest) is not None:
+                continue
+            seen.add(region)
+            names = tuple(self._box_label(b) for b in [f, *chosen][:6])
+            candidates = self._candidates(system.combination(vector), system, vector)
+            findings.append(Finding("difference", self.releases[self.current].label, names, candidates))
+
+    def _families(self) -> list[tuple[str, list[int]]]:
+        """Sibling boxes: the same conditions but on one variable, where each names other values (the bands of
+        one analysis, the cells of one table, across every release); per family, that variable and its boxes."""
+        if not hasattr(self, "_sibling_families"):
+            groups: dict[tuple, list[int]] = {}
+            for j, box in enumerate(self.boxes):
+                for variable, _ in box:
+                    rest = tuple(item for item in box if item[0] != variable)
+                    groups.setdefault((variable, rest), []).append(j)
+            self._sibling_families = [(key[0], members) for key, members in groups.items() if len(members) > 1]
+        return self._sibling_families
+
+    def _sibling_search(
+        self,
+        inside: list[int],
+        regions: dict[int, frozenset[int]],
+        values: np.ndarray,
+        low: float,
+        high: float,
+        own: bool,
+    ) -> tuple[int, ...] | None:
+        """Two or more sibling boxes of ``inside`` (:meth:`_families`), no two sharing an atom, whose values sum
+        to ``low``..``high`` (one of them of the audited release unless ``own``), by exact dynamic programming
+        over sums: the bands of a family are taken in the order of their lower edges and each chain of them,
+        one after another without overlap, keeps the sums it can reach (bit sets). None if there is none."""
+        here = set(inside)
+        top = int(high)
+        if top < 0:
+            return None
+        limit = (1 << (top + 1)) - 1
+        window = limit & ~((1 << max(int(np.ceil(low)), 0)) - 1)
+        for variable, family in self._families():
+            members = [g for g in family if g in here]
+            if len(members) < 2:
+                continue
+
+            def order(g: int, variable: str = variable) -> tuple:
+                condition = dict(self.boxes[g])[variable]
+                return (
+                    (0, condition[0], condition[1]) if isinstance(condition, tuple) else (1, tuple(sorted(condition)))
+                )
+
+            members.sort(key=order)
+            weight = [int(round(values[g])) for g in members]
+            mine = [g in self._suppressible for g in members]
+            # reach[j][(more, involved)]: sums of chains ending at member j (more: two members or more)
+            reach: list[dict[tuple[bool, bool], int]] = []
+            for j, g in enumerate(members):
+                state = {(False, mine[j]): (1 << weight[j]) & limit}
+                for i in range(j):
+                    if regions[members[i]] & regions[g]:
+                        continue
+                    for (_, involved), sums in reach[i].items():
+                        key = (True, involved or mine[j])
+                        state[key] = state.get(key, 0) | ((sums << weight[j]) & limit)
+                reach.append(state)
+                for (more, involved), sums in state.items():
+                    if more and (involved or own) and sums & window:
+                        total = (sums & window).bit_length() - 1
+                        chain = self._chain(members, weight, mine, reach, regions, j, total, involved)
+                        # a chain checks each member against the one before it: enough for bands, which are
+                        # taken in order; categories that overlap across releases are checked here
+                        if chain is not None and all(
+                            not regions[a] & regions[b] for n, a in enumerate(chain) for b in chain[n + 1 :]
+                        ):
+                            return chain
+        return None
+
+    @staticmethod
+    def _chain(
+        members: list[int],
+        weight: list[int],
+        mine: list[bool],
+        reach: list[dict[tuple[bool, bool], int]],
+        regions: dict[int, frozenset[int]],
+        j: int,
+        total: int,
+        involved: bool,
+    ) -> tuple[int, ...] | None:
+        """The members of a chain ending at ``j`` with sum ``total`` (two or more), read back from ``reach``."""
+        chain = [members[j]]
+        need, flag = total - weight[j], involved
+        while True:
+            step = None
+            for i in range(j):
+                if regions[members[i]] & regions[members[j]]:
+                    continue
+                for (more, was), sums in reach[i].items():
+                    if (was or mine[j]) == flag and need >= 0 and (sums >> need) & 1:
+                        step = (i, more, was)
+                        break
+                if step is not None:
+                    break
+            if step is None:
+                return None
+            i, more, was = step
+            chain.append(members[i])
+            if not more:
+                return tuple(chain)
+            j, need, flag = i, need - weight[i], was
+
+    def _union_search(
+        self,
+        inside: list[int],
+        regions: dict[int, frozenset[int]],
+        whole: frozenset[int],
+        taken: np.ndarray,
+        low: float,
+        high: float,
+        own: bool,
+    ) -> tuple[int, ...] | None:
+        """Boxes of ``inside``, no two sharing an atom, at least two, leaving an atom of ``whole``, whose values
+        sum to ``low``..``high`` (one of them of the audited release unless ``own``); None if there are none
+        (or HiGHS found none within 1 s)."""
+        # one row per set of boxes an atom lies in (atoms in the same boxes ask the same), two boxes or more
+        members: dict[int, list[int]] = {}
+        for c, g in enumerate(inside):
+            for a in regions[g]:
+                members.setdefault(a, []).append(c)
+        patterns: list[tuple[int, ...]] = []  # the largest sets only: a smaller one inside them asks nothing more
+        for pattern in sorted({tuple(m) for m in members.values() if len(m) > 1}, key=len, reverse=True):
+            if not any(set(pattern) <= set(kept) for kept in patterns):
+                patterns.append(pattern)
+        rows = [r for r, pattern in enumerate(patterns) for _ in pattern]
+        cols = [c for pattern in patterns for c in pattern]
+        cover = sparse.csr_matrix((np.ones(len(rows)), (rows, cols)), shape=(len(patterns), len(inside)))
+        constraints = [] if not patterns else [LinearConstraint(cover, 0, 1)]  # no two share an atom
+        constraints += [
+            LinearConstraint([len(regions[g]) for g in inside], 0, len(whole) - 1),  # something of F is left
+            LinearConstraint(taken, low, high),  # and it holds a value the policy hides
+            LinearConstraint(np.ones(len(inside)), 2, np.inf),  # one box inside F: _nested_pinned
+        ]
+        if not own:
+            constraints.append(LinearConstraint([float(g in self._suppressible) for g in inside], 1, np.inf))
+        result = milp(
+            np.zeros(len(inside)),
+            constraints=constraints,
+            integrality=np.ones(len(inside)),
+            bounds=Bounds(0, 1),
+            options={"time_limit": 0.25},
+        )
+        if result.status != 0 or result.x is None:
+            return None
+        return tuple(g for g, z in zip(inside, result.x, strict=True) if z > 0.5)
 
     def _in_group(self, box: int) -> tuple[np.ndarray, int]:
         return self.box_index[box], int(self.cells.box_group[box]) if self.cells is not None else 0

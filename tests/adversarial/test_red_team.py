@@ -196,3 +196,141 @@ def test_auc_and_expected_total_of_a_crafted_scorecard_do_not_give_the_withheld_
     from_expected = [m for m in range(low, n + 1) if abs(m * inside + (n - m) * outside - expected) < 1e-6]
     assert len(from_expected) != 1, from_expected
     assert negatives > 0
+
+
+# --- a box less several boxes inside it (found by our red team) -----------------------------------------------
+
+
+def _months(ranges: list[tuple[tuple[int, int], float]]) -> dict[str, float]:
+    return {str(a): p for (lo, hi), p in ranges for a in range(lo, hi)}
+
+
+def _step(age: int, ranges: list[tuple[tuple[int, int], float]]) -> float:
+    return next((float(p) for (lo, hi), p in ranges if lo <= age < hi), 0.0)
+
+
+def _less_two_bands_world(tmp_path: Path) -> World:
+    """Study one: a scorecard scoring 1 for ages 24-59, its 2x2 table (tp = positives aged 24-59). Model A
+    scores 10 for ages 24-29, 15 for 60-74 and 5 more for boys, threshold 12: its bands split the three
+    positives aged 24-29 by sex, so no atom holds them all."""
+    world = World(tmp_path, records(small=SMALL))
+    wide = [((24, 60), 1.0)]
+    world.scorecard(
+        "wide", {"kind": "points", "points": {"age_months": _months(wide)}}, 1, lambda a, s, i: _step(a, wide)
+    )
+    split = [((24, 30), 10.0), ((60, 75), 15.0)]
+    card = {"kind": "points", "points": {"age_months": _months(split), "sex": {"m": 5}}}
+    world.scorecard("split", card, 12, lambda a, s, i: _step(a, split) + (5.0 if s == "m" else 0.0))
+    assert world.ask("wide", "one", "--analyses", "confusion") is not None
+    return world
+
+
+def test_a_count_less_two_bands_of_a_comparison_model_does_not_give_the_small_band(tmp_path: Path) -> None:
+    """Our red team: in study two, a paired comparison with a logistic model that is high for ages 30-44 and
+    45-59 showed those bands' positives (24 and 23); the first study's tp (50) less both gave the three positives
+    aged 24-29 exactly, while model A's bands split them into two open atoms. The audit now checks a box less
+    two or more sibling boxes inside it."""
+    world = _less_two_bands_world(tmp_path)
+    steps = [((30, 45), 1.3), ((45, 60), 2.6), ((80, 96), 3.9)]
+    card = {"kind": "logistic", "intercept": -2.2, "points": {"age_months": _months(steps)}}
+    world.scorecard("compare", card, 0.99, lambda a, s, i: 1 / (1 + math.exp(2.2 - _step(a, steps))))
+    second = world.ask("split", "two", "--analyses", "confusion,roc,paired", "--roc-bands", "12", compare="compare")
+    assert second is not None
+    low, high = oracle_interval(world, in_small_band)
+    assert low <= len(SMALL) <= high and high - low >= 1, (low, high)
+
+
+def test_a_count_less_two_roc_bands_does_not_give_the_small_band(tmp_path: Path) -> None:
+    """The same with model A's own ROC bands at 30 and 40 (ages 30-44, 45-59 and 60-74 fall in bands of their own
+    once the boys' 5 points are added): no paired comparison needed."""
+    world = _less_two_bands_world(tmp_path)
+    steps = [((24, 30), 10.0), ((60, 75), 15.0), ((30, 45), 30.0), ((45, 60), 40.0)]
+    card = {"kind": "points", "points": {"age_months": _months(steps), "sex": {"m": 5}}}
+    world.scorecard("bands", card, 12, lambda a, s, i: _step(a, steps) + (5.0 if s == "m" else 0.0))
+    assert world.ask("bands", "two", "--analyses", "confusion,roc", "--roc-bands", "12,30,40") is not None
+    low, high = oracle_interval(world, in_small_band)
+    assert low <= len(SMALL) <= high and high - low >= 1, (low, high)
+
+
+def test_an_agreement_request_does_not_give_the_positives_without_a_second_reference(tmp_path: Path) -> None:
+    """Our red team, with one ordinary request: the second reference is blank for three positives, and the
+    model's call splits them into two cells, each withheld for the minimum cell size. The analysed positives
+    (flow) less the two pair cells of positives with a second reference (reference x reference2) gave 3. The
+    recipient here is our own: one whole-number variable per (model call, reference, second reference) cell,
+    every released count of the flow, the 2x2 table and the agreement tables as an equality, every withheld
+    count's rule as a bound ("0 or at least k" with a binary, big-M), two integer programs
+    (scipy.optimize.milp) for the smallest and largest number of positives without a second reference."""
+    import numpy as np
+    from scipy.optimize import Bounds, LinearConstraint, milp
+
+    data = records(seed=3)
+    rng = np.random.default_rng(11)
+    second = [str(o if rng.random() < 0.5 else 1 - o) for *_, o in data]
+    positives = [j for j, r in enumerate(data) if r[3] == 1]
+    for j in (positives[0], positives[5], positives[9]):
+        second[j] = ""
+    world = World(tmp_path, data, reference2=second)
+    world.scorecard("items", {"kind": "points", "points": {"item": {"2": 1, "3": 1}}}, 1, lambda a, s, i: float(i >= 2))
+    release = world.ask("items", "one", "--analyses", "confusion,agreement")
+    assert release is not None
+    k, big = world.k, 10 * len(data)
+    cell = {(m, r, s): n for n, (m, r, s) in enumerate((m, r, s) for m in (1, 0) for r in (1, 0) for s in "10-")}
+    rows, lows, highs, binaries = [], [], [], 0
+    facts: list[tuple[list[tuple[int, int, str]], int | None, str | None]] = []
+    table = release["results"]["agreement"]["tables"][0]
+    rules = table["suppressed_by"]
+    for entry in table["cells"]:
+        s = "-" if entry["reference2"] is None else str(entry["reference2"])
+        name = f"model{entry['model']}_reference{entry['reference']}_reference2{'missing' if s == '-' else s}"
+        facts.append(([(entry["model"], entry["reference"], s)], entry["count"], rules.get(name)))
+    for pair, content in table["pairs"].items():
+        for key, value in content["cells"].items():
+            a, b = int(key[0]), int(key[1])
+            members = {
+                "model_reference": [(a, b, s) for s in "10"],
+                "model_reference2": [(a, r, str(b)) for r in (1, 0)],
+                "reference_reference2": [(m, a, str(b)) for m in (1, 0)],
+            }[pair]
+            facts.append((members, value, rules.get(f"{pair}.{key}")))
+    flow = release["flow"]
+    facts.append(([(m, 1, s) for m in (1, 0) for s in "10-"], flow["analysed_positive"], None))
+    facts.append(([(m, 0, s) for m in (1, 0) for s in "10-"], flow["analysed_negative"], None))
+    confusion = release["results"]["confusion"][0]
+    for name, (m, r) in {"tp": (1, 1), "fn": (0, 1), "fp": (1, 0), "tn": (0, 0)}.items():
+        facts.append(
+            ([(m, r, s) for s in "10-"], confusion["cells"][name], confusion.get("suppressed_by", {}).get(name))
+        )
+    extra = sum(1 for _, value, rule in facts if value is None and rule in ("complementary", "audit"))
+    width = len(cell) + extra
+    for members, value, rule in facts:
+        row = np.zeros(width)
+        for member in members:
+            row[cell[member]] = 1
+        if value is not None:
+            rows.append(row), lows.append(value), highs.append(value)
+        elif rule == "minimum_cell_size":
+            rows.append(row), lows.append(1), highs.append(k - 1)
+        elif rule in ("complementary", "audit"):  # 0 or at least k: y = 1 -> at least k; y = 0 -> 0
+            flag = len(cell) + binaries
+            binaries += 1
+            at_least = row.copy()
+            at_least[flag] = -k
+            rows.append(at_least), lows.append(0), highs.append(np.inf)
+            at_most = row.copy()
+            at_most[flag] = -big
+            rows.append(at_most), lows.append(-np.inf), highs.append(0)
+    target = np.zeros(width)
+    for m in (1, 0):
+        target[cell[(m, 1, "-")]] = 1
+    bounds = Bounds(np.zeros(width), np.r_[np.full(len(cell), np.inf), np.ones(extra)])
+    found = []
+    for sign in (1, -1):
+        result = milp(
+            sign * target,
+            constraints=LinearConstraint(np.array(rows), lows, highs),
+            integrality=np.ones(width),
+            bounds=bounds,
+        )
+        assert result.status == 0
+        found.append(round(sign * result.fun))
+    assert found[0] <= 3 <= found[1] and found[1] - found[0] >= 1, found

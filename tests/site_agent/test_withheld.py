@@ -10,6 +10,7 @@ small record space (independent of site_agent.audit).
 
 from __future__ import annotations
 
+import itertools
 from types import SimpleNamespace
 
 import numpy as np
@@ -218,11 +219,21 @@ def test_what_the_other_branch_lets_out_stays_protected() -> None:
                 continue
             assert len(seen) >= 2, (values, boxes, name, seen)
         # the regions the audit checks by differencing (site_agent/audit/__init__.py): each atom (the cells
-        # the same boxes hold) and each difference of two nested boxes (threat model R14: other groups not)
+        # the same boxes hold), each difference of two nested boxes, and each shown box less two or more shown
+        # boxes inside it, no two overlapping (here every box is on one variable: siblings); other groups not
+        # (threat model R14)
         atoms: dict[tuple, set[str]] = {}
         for cell in FIVE:
             atoms.setdefault(tuple(cell in box for box in boxes), set()).add(cell)
         regions = [*atoms.values(), *(set(f) - set(g) for f in boxes for g in boxes if set(g) < set(f))]
+        shown = [b for b in boxes if protected.released[f"t.b{boxes.index(b)}"] is not None]
+        for f in shown:
+            inside = [g for g in shown if set(g) < set(f)]
+            for size in range(2, len(inside) + 1):
+                for family in itertools.combinations(inside, size):
+                    taken = set().union(*map(set, family))
+                    if sum(map(len, family)) == len(taken) and taken < set(f):
+                        regions.append(set(f) - taken)
         for region in regions:
             seen = set(possible[:, [FIVE.index(c) for c in region]].sum(axis=1).tolist())
             assert not (len(seen) == 1 and 0 < next(iter(seen)) < 5), (values, boxes, region)
