@@ -31,7 +31,9 @@ for an ONNX graph, those a record or a random input reaches), so a score band is
    two boxes: a pinned box less two or more pinned boxes inside it, no two overlapping (``Audit._unions_pinned``):
    among sibling boxes (the same conditions but on one variable: the bands of one analysis, the cells of one
    table, across every release) by exact dynamic programming over sums; among any boxes by one small integer
-   program where at most ``UNION_MILP_BOXES`` lie inside.
+   program where at most ``UNION_MILP_BOXES`` lie inside. A rest that is exactly the other cells of a chosen
+   box's own table (withheld cells adding up to a total less its shown cells) is passed over: each of them is
+   protected by check 1.
 
 **Scale: the grouped model.** A site's history crosses every variable's cuts with every other's (fine ROC
 score bands times age bands: 150,000 atoms after 200 releases of mixed analyses), though no count names a fine

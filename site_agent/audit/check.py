@@ -742,11 +742,13 @@ class Audit:
             if question in self._union_answers:
                 chosen = self._union_answers[question]
             else:
-                chosen = self._sibling_search(inside, regions, values, total - high, total - low, own)
+                chosen = self._sibling_search(
+                    inside, regions, values, total - high, total - low, own, (regions[f], live_mask)
+                )
                 if chosen is None and len(inside) <= UNION_MILP_BOXES:
                     chosen = self._union_search(inside, regions, regions[f], taken, total - high, total - low, own)
                 self._union_answers[question] = chosen
-            if chosen is None:
+            if chosen is None or self._rest_is_listed(regions[f], chosen, regions, live_mask):
                 continue
             region = regions[f].difference(*(regions[g] for g in chosen))
             if region in seen:
@@ -770,7 +772,34 @@ class Audit:
                     rest = tuple(item for item in box if item[0] != variable)
                     groups.setdefault((variable, rest), []).append(j)
             self._sibling_families = [(key[0], members) for key, members in groups.items() if len(members) > 1]
+            self._family_of: dict[int, list[list[int]]] = {}
+            for _, members in self._sibling_families:
+                for member in members:
+                    self._family_of.setdefault(member, []).append(members)
         return self._sibling_families
+
+    def _rest_is_listed(
+        self, whole: frozenset[int], chosen: tuple[int, ...], regions: dict[int, frozenset[int]], live: np.ndarray
+    ) -> bool:
+        """Whether what is left of ``whole`` is exactly the other cells of a chosen box's own table inside it
+        (siblings that share no atom with the chosen): the rest is then a sum of counts the release lists, each
+        withheld and protected on its own, as a table's withheld cells add up to its total less its shown cells
+        (records read less those analysed and those left out for one reason). The check answers for groups a
+        release does not list (threat model R14)."""
+        self._families()
+        taken = frozenset().union(*(regions[g] for g in chosen))
+        rest = whole - taken
+        for box in chosen:
+            for members in self._family_of.get(box, []):
+                listed: set[int] = set()
+                for member in members:
+                    index = self.box_index[member]
+                    region = frozenset(index[live[index]].tolist())
+                    if region and region <= whole and not region & taken:
+                        listed |= region
+                if listed == rest:
+                    return True
+        return False
 
     def _sibling_search(
         self,
@@ -780,11 +809,14 @@ class Audit:
         low: float,
         high: float,
         own: bool,
+        whole: tuple[frozenset[int], np.ndarray],
     ) -> tuple[int, ...] | None:
         """Two or more sibling boxes of ``inside`` (:meth:`_families`), no two sharing an atom, whose values sum
         to ``low``..``high`` (one of them of the audited release unless ``own``), by exact dynamic programming
         over sums: the bands of a family are taken in the order of their lower edges and each chain of them,
-        one after another without overlap, keeps the sums it can reach (bit sets). None if there is none."""
+        one after another without overlap, keeps the sums it can reach (bit sets). A family whose other cells
+        make up what is left of ``whole`` (the region of F, and the live atoms) is passed over
+        (:meth:`_rest_is_listed`). None if there is none."""
         here = set(inside)
         top = int(high)
         if top < 0:
@@ -822,10 +854,16 @@ class Audit:
                         chain = self._chain(members, weight, mine, reach, regions, j, total, involved)
                         # a chain checks each member against the one before it: enough for bands, which are
                         # taken in order; categories that overlap across releases are checked here
-                        if chain is not None and all(
-                            not regions[a] & regions[b] for n, a in enumerate(chain) for b in chain[n + 1 :]
+                        if chain is None or any(
+                            regions[a] & regions[b] for n, a in enumerate(chain) for b in chain[n + 1 :]
                         ):
-                            return chain
+                            continue
+                        if self._rest_is_listed(whole[0], chain, regions, whole[1]):
+                            break  # this family's remainders are its own withheld cells
+                        return chain
+                else:
+                    continue
+                break
         return None
 
     @staticmethod
