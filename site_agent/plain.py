@@ -127,13 +127,17 @@ def condition_words(condition: dict[str, Any], analysis: str = "") -> str:
     if variable == "outcome":
         return "with the condition" if values == ["1"] else "without the condition"
     if variable == "reference2":
-        return "second reference standard positive" if values == ["1"] else "second reference standard negative"
+        states = {"1": "positive", "0": "negative", "missing": "missing"}
+        if sorted(values) == ["0", "1"]:
+            return "second reference standard known"
+        return "second reference standard " + " or ".join(states.get(v, v) for v in values)
     if variable in ("score", "score.compare"):
         model = "comparison model's score" if variable == "score.compare" else "score"
         if analysis == "calibration":
             model = "predicted risk"
         low, high = condition.get("low"), condition.get("high")
-        if analysis in ("confusion", "paired", "agreement") and (low is None) != (high is None):
+        # a 2x2 table's score condition is its threshold; a paired or agreement band's open end need not be
+        if analysis == "confusion" and (low is None) != (high is None):
             sign = "screen +" if high is None else "screen −"
             prefix = "comparison model " if variable == "score.compare" else ""
             return f"{prefix}{sign} ({_range_words(model, low, high)})"
@@ -202,10 +206,14 @@ def _pivot(counts: list[dict[str, Any]], analysis: str) -> Table | None:
             continue
         label = "; ".join(condition_words(c, analysis) for c in rest) or "participants analysed"
         column = "with" if outcome[0].get("values") == ["1"] else "without"
+        if column in rows.get(label, {}):
+            # two counts the words cannot tell apart: each gets a row of its own, never one hidden behind the other
+            single.append([count_words({**count, "where": where}), _shown(count.get("value"))])
+            continue
         if label not in rows:
             rows[label] = {}
             order.append(label)
-        rows[label].setdefault(column, count.get("value"))
+        rows[label][column] = count.get("value")
     title = ANALYSIS_TITLES.get(analysis, analysis.replace("_", " "))
     explain = ANALYSIS_EXPLAINED.get(analysis, "Counts of participants analysed.")
     if rows:
@@ -248,7 +256,7 @@ def _statistic_sentences(analysis: str, result: Any) -> list[str]:
 
     if analysis == "roc" and value("auc") is not None:
         se = f" (standard error {value('auc_se'):.3f})" if value("auc_se") is not None else ""
-        out.append(f"AUC {value('auc'):.3f}{se}, computed at the site from every score.")
+        out.append(f"AUC {value('auc'):.3f}{se}, computed from the released band counts.")
     if analysis == "calibration":
         if value("observed") is not None and value("expected") is not None:
             ratio = value("observed_expected_ratio")
@@ -261,6 +269,24 @@ def _statistic_sentences(analysis: str, result: Any) -> list[str]:
             out.append(f"Calibration intercept {value('calibration_intercept'):.2f}.")
         if value("slope") is not None:
             out.append(f"Calibration slope {value('slope'):.2f}.")
+    if analysis == "agreement":
+        for table in result.get("tables", []) if isinstance(result.get("tables"), list) else []:
+            for pair, content in (table.get("pairs") or {}).items():
+                kappa = content.get("kappa") if isinstance(content, dict) else None
+                if isinstance(kappa, (int, float)) and not isinstance(kappa, bool):
+                    se = content.get("kappa_se")
+                    se_text = f" (standard error {se:.3f})" if isinstance(se, (int, float)) else ""
+                    agreed = content.get("observed_agreement")
+                    agreed_text = f", observed agreement {agreed:.3f}" if isinstance(agreed, (int, float)) else ""
+                    out.append(f"Kappa, {pair.replace('_', ' and ')}: {kappa:.3f}{se_text}{agreed_text}.")
+    if analysis == "paired":
+        for key, words in (("auc_model", "AUC of the model"), ("auc_compare", "AUC of the comparison model")):
+            if value(key) is not None:
+                out.append(f"{words} {value(key):.3f}, computed from the released band counts.")
+        if value("auc_difference") is not None:
+            se = value("auc_difference_se")
+            se_text = f" (standard error {se:.3f})" if se is not None else ""
+            out.append(f"Difference of the two AUCs {value('auc_difference'):.3f}{se_text}.")
     return out
 
 

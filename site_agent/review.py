@@ -335,8 +335,17 @@ def _parts_text(view: dict[str, Any]) -> str:
 # --- command handlers (registered by site_agent.cli) -------------------------------------------------------
 
 
+def _checked_site(root: Path) -> Site:
+    """The site, once its whole ledger verified: the review page is built from the ledger's entries, so a page
+    read from an edited ledger would show the board other numbers than the held bytes hold."""
+    site = load_site(root)
+    if site.ledger_path.exists():
+        ledger.verify_ledger(site.ledger_path, site.public_key())
+    return site
+
+
 def cmd_review(args: argparse.Namespace) -> int:
-    site = load_site(args.site_dir)
+    site = _checked_site(args.site_dir)
     held = approval.held_releases(site).values()
     chosen = [h for h in held if args.all or h.state == "held"]
     views = [describe(site, h) for h in chosen]
@@ -361,7 +370,7 @@ def cmd_review(args: argparse.Namespace) -> int:
 
 
 def cmd_approve(args: argparse.Namespace) -> int:
-    site = load_site(args.site_dir)
+    site = _checked_site(args.site_dir)
     held = approval.approve(site, args.id, args.by, args.reason or "")
     print(f"release {held.held_id} approved by {held.decided_by}; recorded in {site.ledger_path}")
     print("it leaves when the request is answered again (`site-agent run` or the online agent), or with")
@@ -370,14 +379,14 @@ def cmd_approve(args: argparse.Namespace) -> int:
 
 
 def cmd_reject(args: argparse.Namespace) -> int:
-    site = load_site(args.site_dir)
+    site = _checked_site(args.site_dir)
     held = approval.reject(site, args.id, args.reason, args.by or getpass.getuser())
     print(f"release {held.held_id} rejected by {held.decided_by}; it will not be sent")
     return 0
 
 
 def cmd_release(args: argparse.Namespace) -> int:
-    site = load_site(args.site_dir)
+    site = _checked_site(args.site_dir)
     held = approval.find(site, args.id)
     data = approval.hand_over(site, held)
     write_atomic(args.out, data)

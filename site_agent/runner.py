@@ -237,6 +237,9 @@ def run_request(
     ``progress``, when given, is called with the number of records in each chunk read (for a progress bar).
     """
     private_key = site.private_key()
+    # the ledger is the audit's memory and the board's record: a broken one stops the run before anything
+    if site.ledger_path.exists():
+        ledger.verify_ledger(site.ledger_path, site.public_key())
     ledger.append(
         site.ledger_path,
         private_key,

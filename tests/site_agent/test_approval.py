@@ -154,6 +154,34 @@ def test_a_held_file_changed_after_review_is_not_approved(held, capsys) -> None:
     assert "changed since it was prepared" in capsys.readouterr().err
 
 
+def test_a_ledger_edited_behind_the_review_stops_review_approval_and_run(held, capsys) -> None:  # noqa: ANN001
+    """Found by following the ethics board's guide: the review page is built from the held entry's facts in the
+    ledger, and only the held file's SHA-256 was checked, so an edited ledger showed the board other numbers than
+    the bytes it then approved. Every command that reads the ledger for a decision verifies it first (exit 2)."""
+    site_dir, run, held_id = held
+    path = site_dir / "ledger.jsonl"
+    lines = path.read_text().splitlines(keepends=True)
+    held_line = next(i for i, line in enumerate(lines) if '"event":"held"' in line)
+    entry = json.loads(lines[held_line])
+    counts = entry["details"]["facts"]["counts"]
+    shown = next(c for c in counts if isinstance(c.get("value"), int) and c["value"] > 0)
+    shown["value"] += 1
+    lines[held_line] = json.dumps(entry, sort_keys=True, separators=(",", ":")) + "\n"
+    path.write_text("".join(lines))
+    before = path.read_bytes()
+    for command in (
+        ["review", "--site-dir", str(site_dir)],
+        ["approve", held_id, "--site-dir", str(site_dir), "--by", "A. Reviewer"],
+        ["release", held_id, "--site-dir", str(site_dir), "--out", str(site_dir.parent / "out.json")],
+        run,
+    ):
+        capsys.readouterr()
+        assert site_agent(command) == 2, command
+        assert f"line {held_line + 1}: entry was edited" in capsys.readouterr().err
+    assert path.read_bytes() == before  # nothing appended to a broken ledger
+    assert not (site_dir.parent / "out.json").exists()
+
+
 def test_a_crash_between_recording_and_sending_is_visible(held, capsys) -> None:  # noqa: ANN001
     from site_agent import approval
     from site_agent.config import load_site

@@ -146,3 +146,36 @@ def test_the_text_review_is_short_and_plain(held_full, capsys) -> None:  # noqa:
     assert exact not in out
     assert site_agent(["review", "--site-dir", str(site_dir), "--all", "--exact"]) == 0
     assert exact in capsys.readouterr().out
+
+
+def test_every_released_agreement_count_has_its_own_words_on_the_page() -> None:
+    """Found by following the ethics board's guide: a second reference standard that is missing, and one that is
+    known (0 or 1), were both worded "negative", so the plain table kept the first count of each pair and showed
+    the others as withheld while they left the site. Each state has its words now, every released value appears,
+    and a paired band's open end is not called "screen +" (only a 2x2 table's threshold is)."""
+    from site_agent.plain import analysis_parts, condition_words
+
+    def count(name: str, value: int, outcome: str, state: list[str], call: dict) -> dict:
+        where = [
+            {"variable": "status", "values": ["analysed"]},
+            {"variable": "score", **call},
+            {"variable": "outcome", "values": [outcome]},
+            {"variable": "reference2", "values": state},
+        ]
+        return {"name": name, "value": value, "where": where}
+
+    above = {"low": 0.5, "high": None}
+    counts = [
+        count("agreement[0].model1_reference1_reference2missing", 1369, "1", ["missing"], above),
+        count("agreement[0].model1_reference1_reference20", 23, "1", ["0"], above),
+        count("agreement[0].model1_reference1_reference21", 93, "1", ["1"], above),
+        count("agreement[0].model_reference.11", 1346, "1", ["0", "1"], above),
+    ]
+    (part,) = analysis_parts({"counts": counts}, {})
+    shown = {cell for table in part.tables for row in table.rows for cell in row}
+    assert {"1369", "23", "93", "1346"} <= shown, shown
+    assert condition_words({"variable": "reference2", "values": ["missing"]}) == "second reference standard missing"
+    assert condition_words({"variable": "reference2", "values": ["0", "1"]}) == "second reference standard known"
+    band = {"variable": "score.compare", "low": 12.0, "high": None}
+    assert "screen" not in condition_words(band, "paired")
+    assert condition_words({"variable": "score", "low": 0.5, "high": None}, "confusion").startswith("screen +")
