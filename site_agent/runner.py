@@ -69,8 +69,8 @@ def refusal_reason(exc: BaseException, phase: str) -> tuple[str, str]:
     count; where the audit stopped on the values themselves, one fixed line, ``AuditError.public``). After
     records were read, a data or scoring failure travels as its category alone, the same whatever the record.
     ``phase``: ``verify`` (request, bundle, policy), ``model`` (static checks of the analyses and the model;
-    whether the bundle's schema reads records as every earlier release's did), ``setup`` (the mapping and the
-    source), ``records`` (reading and scoring), ``disclosure`` (suppression and the audit).
+    whether the bundle's schema declares shared features as every earlier release's did), ``setup`` (the
+    mapping and the source), ``records`` (reading and scoring), ``disclosure`` (suppression and the audit).
     """
     local = str(exc) if isinstance(exc, ValidationToolError) else f"internal error at the site ({type(exc).__name__})"
     if not isinstance(exc, ValidationToolError):
@@ -170,40 +170,31 @@ def _reading(entry: dict[str, Any]) -> tuple:
 
 
 def check_schema_reads_alike(schema: Schema, earlier: Sequence[ReleaseFacts]) -> None:
-    """Refuse, before any record is read, a bundle whose schema would read the site's records differently
-    from the schema of an earlier release of the site (to any study).
+    """Refuse, before any record is read, a bundle whose schema declares a feature differently from the schema
+    of an earlier release of the site (to any study): another type, range, categories or missing-value rule.
 
     The audit relates every release of the site over one set of records with one status each (analysed, or
-    excluded for a reason) and one value of each feature. A schema with another range, other categories, another
-    missing-value rule or other features could exclude other records or give a record another value (a missing
-    age filled as 0 by one bundle and as 95 by another). The audit would then see the same count change, and
-    refuse *because of the records* (one bit about them, and before this check the reason named the count;
-    found by our red team). Comparing the schemas decides the same without reading a record. Releases whose
-    ledger entry records no schema (older ledgers) are not compared.
+    excluded for a reason) and one value of each feature. A feature declared differently could exclude other
+    records or give a record another value (a missing age filled as 0 by one bundle and as 95 by another). The
+    audit would then see the same count change, and refuse *because of the records* (one bit about them, and
+    before this check the reason named the count; found by our red team). Comparing the declarations decides it
+    without reading a record. A feature only one of the schemas declares (a paired comparison's second model
+    reads more inputs) can still exclude records the other schema analyses; where it does, the audit refuses
+    with one fixed line (docs/threat-model.md, R1). Releases whose ledger entry records no schema (older
+    ledgers) are not compared.
     """
     own = {f.name: _reading(f.to_dict()) for f in schema.features}
     for release in earlier:
-        if not release.domains:
-            continue
         theirs = {name: _reading(dict(entry)) for name, entry in release.domains.items()}
-        if theirs == own:
-            continue
-        differs = sorted(n for n in set(own) | set(theirs) if own.get(n) != theirs.get(n))
-        name = differs[0]
-        if name not in own:
-            what = f"feature {name!r}, which the schema of an earlier release of this site declares, is not in it"
-        elif name not in theirs:
-            what = f"feature {name!r} is not in the schema of an earlier release of this site"
-        else:
-            what = (
-                f"feature {name!r} is declared differently (type, range, categories or missing-value rule) from "
-                "the schema of an earlier release of this site"
+        differs = sorted(n for n in set(own) & set(theirs) if own[n] != theirs[n])
+        if differs:
+            raise PolicyViolation(
+                f"bundle schema: feature {differs[0]!r} is declared differently (type, range, categories or "
+                "missing-value rule) from the schema of an earlier release of this site; the site's disclosure "
+                "audit relates releases that read the same records alike, so every bundle a site answers for must "
+                "declare a feature they share the same way (a new declaration needs a new site folder and "
+                "ledger: docs/threat-model.md, R1)"
             )
-        raise PolicyViolation(
-            f"bundle schema: {what}; the site's disclosure audit relates releases that read the same records "
-            "alike, so every bundle a site answers for must declare the same features the same way (a new schema "
-            "needs a new site folder and ledger: docs/threat-model.md, R1)"
-        )
 
 
 def check_compare_bundle(site: Site, request: Request, compare_bundle_bytes: bytes | None) -> Bundle | None:

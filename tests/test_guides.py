@@ -16,7 +16,7 @@ from pathlib import Path
 import pytest
 
 from federation.store import Store
-from simulations.demo import prepare_study, run_offline
+from simulations.demo import run_demo
 
 ROOT = Path(__file__).resolve().parents[1]
 GUIDES = ("coordinator", "site-it", "ethics-board")
@@ -37,7 +37,7 @@ def every_bash_block(name: str) -> list[str]:
 @pytest.fixture(scope="module")
 def demo(tmp_path_factory: pytest.TempPathFactory) -> Path:
     root = tmp_path_factory.mktemp("guides") / "demo"
-    run_offline(prepare_study(root))  # what `federation demo --engine offline` leaves behind
+    run_demo(root, engine="offline")  # exactly what `federation demo --engine offline` leaves behind
     return root
 
 
