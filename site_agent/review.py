@@ -109,9 +109,9 @@ def _decision_lines(view: dict[str, Any], site_dir: Path) -> list[str]:
         ]
     verb = "Rejected" if view["state"] == "rejected" else "Approved"
     line = f"{verb} by {view['decided_by'] or 'an unnamed person'} on {_when(view['decided_at'])}"
-    line += f". Reason given: {view['reason']}" if view["reason"] else ". No reason was given."
+    line += f". Reason given: {str(view['reason']).rstrip('.')}." if view["reason"] else ". No reason was given."
     if view["state"] == "released":
-        line += " It has been handed over to the coordinator."
+        line += " It has left the site (sent, or written to a file for the coordinator)."
     return [line]
 
 
