@@ -29,11 +29,11 @@ for an ONNX graph, those a record or a random input reaches), so a score band is
    system after the atoms that are zero in every feasible table are fixed (found with one LP per block);
    this is exact for the real relaxation and costs one SVD per block instead of one LP per region. Beyond
    two boxes: a pinned box less two or more pinned boxes inside it, no two overlapping (``Audit._unions_pinned``):
-   among sibling boxes (the same conditions but on one variable: the bands of one analysis, the cells of one
-   table, across every release) by exact dynamic programming over sums; among any boxes by one small integer
-   program where at most ``UNION_MILP_BOXES`` lie inside. A rest that is exactly the other cells of a chosen
-   box's own table (withheld cells adding up to a total less its shown cells) is passed over: each of them is
-   protected by check 1.
+   among sibling boxes (the same conditions but on one variable: the cells of one table, the bands of one
+   analysis, across every release) by exact dynamic programming over sums, bands only on another variable than
+   the box's own. A rest that is exactly the other cells of a chosen box's own table (withheld cells adding up
+   to a total less its shown cells) is passed over: each of them is protected by check 1; so is a rest the
+   earlier releases alone already pin.
 
 **Scale: the grouped model.** A site's history crosses every variable's cuts with every other's (fine ROC
 score bands times age bands: 150,000 atoms after 200 releases of mixed analyses), though no count names a fine

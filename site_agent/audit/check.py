@@ -12,7 +12,6 @@ from typing import Any
 
 import numpy as np
 from scipy import sparse
-from scipy.optimize import Bounds, LinearConstraint, milp
 from threadpoolctl import ThreadpoolController
 
 from .branches import Branches
@@ -43,7 +42,7 @@ FULL_MAX_ATOMS = 5_000
 # this many live atoms and pinned boxes (the demo's sites: up to 1,456 atoms).
 UNION_MAX_ATOMS = 3_000
 UNION_MAX_BOXES = 1_500
-UNION_MILP_BOXES = 12  # beyond sibling families, one integer program per box with at most this many inside it
+UNION_FAMILY_BOXES = 40  # a family with more boxes inside one F is not searched (the search is quadratic in them)
 
 
 @dataclass
@@ -700,10 +699,14 @@ class Audit:
         """A box F less two or more boxes inside it, no two overlapping, all pinned down (shown, or worked out):
         what is left of F is pinned down too, and must not hold 1..k−1 records (0 too, when zeros are hidden).
 
-        Two nested boxes are checked by :meth:`_nested_pinned`; here one small integer program per box F
-        (HiGHS, at most 1 s) asks which of the pinned boxes inside F, no two sharing an atom and leaving at
-        least one live atom of F, take away all but a value the policy would hide, with at least one count of
-        the audited release among them. Found by our red team: the 2x2 table's positives aged 24-59 in one
+        Two nested boxes are checked by :meth:`_nested_pinned`; here, per box F, an exact search over sums
+        (:meth:`_sibling_search`) asks which sibling boxes inside F (one family: the cells of one table, the
+        bands of one analysis, across every release), no two sharing an atom and leaving F's records in one
+        stretch, take away all but a value the policy would hide, with at least one count of the audited release
+        among them; a rest the earlier releases alone pin, or that is the family's own other cells, is passed
+        over. Not searched: bands on F's own variable (thresholds and bands of one score: searching them cascaded
+        into refusals over dense histories), families with more than ``UNION_FAMILY_BOXES`` boxes inside F, and
+        boxes of different families together. Found by our red team: the 2x2 table's positives aged 24-59 in one
         study, less two bands of a comparison model (ages 30-44 and 45-59) in another, gave the three positives
         aged 24-29 while a third model's bands split them into two open atoms; and one ordinary agreement
         request gave the positives with no second reference (the analysed positives less the two pair cells
@@ -723,30 +726,31 @@ class Audit:
         if len(regions) > UNION_MAX_BOXES or not any(b in self._suppressible for b in regions):
             return
         low, high = (0 if unsafe(0) else 1), self._k - 1
-        for f in sorted(regions, key=lambda b: (len(regions[b]), b)):
-            total = int(round(values[f]))
-            inside = [g for g in regions if regions[g] < regions[f] and round(values[g]) <= total - low]
+        boxes = sorted(regions, key=lambda b: (len(regions[b]), b))
+        rounded = {b: int(round(values[b])) for b in boxes}
+        sizes = np.array([len(regions[b]) for b in boxes])
+        rows = np.repeat(np.arange(len(boxes)), sizes)
+        cols = np.fromiter((a for b in boxes for a in regions[b]), dtype=np.int64, count=int(sizes.sum()))
+        member = sparse.csr_matrix((np.ones(len(rows)), (rows, cols)), shape=(len(boxes), len(live_mask)))
+        shared = (member @ member.T).toarray()  # live atoms two boxes share: G lies in F when all of G's
+        signature = hash(live_mask.tobytes())
+        for n, f in enumerate(boxes):
+            total = rounded[f]
+            within = np.flatnonzero((shared[n] == sizes) & (sizes < sizes[n]))
+            inside = [boxes[m] for m in within if rounded[boxes[m]] <= total - low]
             own = f in self._suppressible
             if len(inside) < 2 or not (own or any(g in self._suppressible for g in inside)):
                 continue
-            taken = np.array([round(values[g]) for g in inside], float)
-            if total - taken.sum() > high:
+            if total - sum(rounded[g] for g in inside) > high:
                 continue  # even all of them together leave too many records
             # the same question comes back in every repair round and every cut-back attempt of a release
-            question = (
-                total,
-                regions[f],
-                own,
-                tuple((regions[g], round(values[g]), g in self._suppressible) for g in inside),
-            )
+            question = (f, total, signature, tuple(inside), tuple(rounded[g] for g in inside))
             if question in self._union_answers:
                 chosen = self._union_answers[question]
             else:
                 chosen = self._sibling_search(
-                    inside, regions, values, total - high, total - low, own, (regions[f], live_mask)
+                    inside, regions, values, total - high, total - low, own, (regions[f], live_mask, f)
                 )
-                if chosen is None and len(inside) <= UNION_MILP_BOXES:
-                    chosen = self._union_search(inside, regions, regions[f], taken, total - high, total - low, own)
                 self._union_answers[question] = chosen
             if chosen is None or self._rest_is_listed(regions[f], chosen, regions, live_mask):
                 continue
@@ -797,10 +801,60 @@ class Audit:
                     groups.setdefault((variable, rest), []).append(j)
             self._sibling_families = [(key[0], members) for key, members in groups.items() if len(members) > 1]
             self._family_of: dict[int, list[list[int]]] = {}
-            for _, members in self._sibling_families:
+            self._family_index: dict[int, list[int]] = {}
+            self._family_order: list[dict[int, int]] = []
+            for number, (variable, members) in enumerate(self._sibling_families):
                 for member in members:
                     self._family_of.setdefault(member, []).append(members)
+                    self._family_index.setdefault(member, []).append(number)
+
+                def order(g: int, variable: str = variable) -> tuple:
+                    condition = dict(self.boxes[g])[variable]
+                    return (0, *condition) if isinstance(condition, tuple) else (1, tuple(sorted(condition)))
+
+                ranked = sorted(members, key=order)  # bands by their lower edges, categories by name
+                self._family_order.append({g: n for n, g in enumerate(ranked)})
         return self._sibling_families
+
+    def _one_gap(
+        self, variable: str, family: list[int], chain: tuple[int, ...], whole: tuple[frozenset[int], np.ndarray, int]
+    ) -> bool:
+        """For bands (a numeric variable): whether what the chosen bands leave of the line holds F's records in one
+        stretch only, so that the rest is F within one band of the variable, a group a request could name. A
+        rest in two stretches (the records below one band and above another) is not looked for (threat model,
+        R14). A stretch counts as empty when bands of the family cover it and hold none of F's live atoms.
+        Categories: any rest is F within a set of categories."""
+        conditions = [dict(self.boxes[g])[variable] for g in chain]
+        if not all(isinstance(c, tuple) for c in conditions):
+            return True
+        region, live, _ = whole
+        edges = sorted(conditions)
+        gaps, start = [], -math.inf
+        for low, high in edges:
+            if low > start:
+                gaps.append((start, low))
+            start = max(start, high)
+        if start < math.inf:
+            gaps.append((start, math.inf))
+        filled = 0
+        for low, high in gaps:
+            cover = [
+                (c[0], c[1], g)
+                for g in family
+                if isinstance(c := dict(self.boxes[g])[variable], tuple) and low <= c[0] and c[1] <= high
+            ]
+            reach, empty = low, True
+            for c_low, c_high, g in sorted(cover):
+                if c_low > reach:
+                    break
+                index = self.box_index[g]
+                if region & frozenset(index[live[index]].tolist()):
+                    empty = False
+                    break
+                reach = max(reach, c_high)
+            if not (empty and reach >= high):
+                filled += 1
+        return filled == 1
 
     def _rest_is_listed(
         self, whole: frozenset[int], chosen: tuple[int, ...], regions: dict[int, frozenset[int]], live: np.ndarray
@@ -833,7 +887,7 @@ class Audit:
         low: float,
         high: float,
         own: bool,
-        whole: tuple[frozenset[int], np.ndarray],
+        whole: tuple[frozenset[int], np.ndarray, int],
     ) -> tuple[int, ...] | None:
         """Two or more sibling boxes of ``inside`` (:meth:`_families`), no two sharing an atom, whose values sum
         to ``low``..``high`` (one of them of the audited release unless ``own``), by exact dynamic programming
@@ -841,26 +895,33 @@ class Audit:
         one after another without overlap, keeps the sums it can reach (bit sets). A family whose other cells
         make up what is left of ``whole`` (the region of F, and the live atoms) is passed over
         (:meth:`_rest_is_listed`). None if there is none."""
-        here = set(inside)
         top = int(high)
         if top < 0:
             return None
         limit = (1 << (top + 1)) - 1
         window = limit & ~((1 << max(int(np.ceil(low)), 0)) - 1)
-        for variable, family in self._families():
-            members = [g for g in family if g in here]
-            if len(members) < 2:
+        self._families()
+        # only the families with two boxes inside F, one of them of the audited release unless F is
+        candidates: dict[int, list[int]] = {}
+        for g in inside:
+            for number in self._family_index.get(g, ()):
+                candidates.setdefault(number, []).append(g)
+        for number in sorted(candidates):
+            variable, family = self._sibling_families[number]
+            members = candidates[number]
+            if len(members) < 2 or len(members) > UNION_FAMILY_BOXES:
                 continue
-
-            def order(g: int, variable: str = variable) -> tuple:
-                condition = dict(self.boxes[g])[variable]
-                return (
-                    (0, condition[0], condition[1]) if isinstance(condition, tuple) else (1, tuple(sorted(condition)))
-                )
-
-            members.sort(key=order)
-            weight = [int(round(values[g])) for g in members]
+            if isinstance(dict(self.boxes[members[0]])[variable], tuple) and whole[2] in self._family_order[number]:
+                continue  # bands of F's own variable: not searched (threat model R14)
             mine = [g in self._suppressible for g in members]
+            weight = [int(round(values[g])) for g in members]
+            if not (own or any(mine)) or sum(weight) < low:
+                continue
+            position = self._family_order[number]
+            order = sorted(range(len(members)), key=lambda n: position[members[n]])
+            members = [members[n] for n in order]
+            weight = [weight[n] for n in order]
+            mine = [mine[n] for n in order]
             # reach[j][(more, involved)]: sums of chains ending at member j (more: two members or more)
             reach: list[dict[tuple[bool, bool], int]] = []
             for j, g in enumerate(members):
@@ -884,6 +945,8 @@ class Audit:
                             continue
                         if self._rest_is_listed(whole[0], chain, regions, whole[1]):
                             break  # this family's remainders are its own withheld cells
+                        if not self._one_gap(variable, family, chain, whole):
+                            continue
                         return chain
                 else:
                     continue
@@ -922,50 +985,6 @@ class Audit:
             if not more:
                 return tuple(chain)
             j, need, flag = i, need - weight[i], was
-
-    def _union_search(
-        self,
-        inside: list[int],
-        regions: dict[int, frozenset[int]],
-        whole: frozenset[int],
-        taken: np.ndarray,
-        low: float,
-        high: float,
-        own: bool,
-    ) -> tuple[int, ...] | None:
-        """Boxes of ``inside``, no two sharing an atom, at least two, leaving an atom of ``whole``, whose values
-        sum to ``low``..``high`` (one of them of the audited release unless ``own``); None if there are none
-        (or HiGHS found none within 1 s)."""
-        # one row per set of boxes an atom lies in (atoms in the same boxes ask the same), two boxes or more
-        members: dict[int, list[int]] = {}
-        for c, g in enumerate(inside):
-            for a in regions[g]:
-                members.setdefault(a, []).append(c)
-        patterns: list[tuple[int, ...]] = []  # the largest sets only: a smaller one inside them asks nothing more
-        for pattern in sorted({tuple(m) for m in members.values() if len(m) > 1}, key=len, reverse=True):
-            if not any(set(pattern) <= set(kept) for kept in patterns):
-                patterns.append(pattern)
-        rows = [r for r, pattern in enumerate(patterns) for _ in pattern]
-        cols = [c for pattern in patterns for c in pattern]
-        cover = sparse.csr_matrix((np.ones(len(rows)), (rows, cols)), shape=(len(patterns), len(inside)))
-        constraints = [] if not patterns else [LinearConstraint(cover, 0, 1)]  # no two share an atom
-        constraints += [
-            LinearConstraint([len(regions[g]) for g in inside], 0, len(whole) - 1),  # something of F is left
-            LinearConstraint(taken, low, high),  # and it holds a value the policy hides
-            LinearConstraint(np.ones(len(inside)), 2, np.inf),  # one box inside F: _nested_pinned
-        ]
-        if not own:
-            constraints.append(LinearConstraint([float(g in self._suppressible) for g in inside], 1, np.inf))
-        result = milp(
-            np.zeros(len(inside)),
-            constraints=constraints,
-            integrality=np.ones(len(inside)),
-            bounds=Bounds(0, 1),
-            options={"time_limit": 0.25},
-        )
-        if result.status != 0 or result.x is None:
-            return None
-        return tuple(g for g, z in zip(inside, result.x, strict=True) if z > 0.5)
 
     def _in_group(self, box: int) -> tuple[np.ndarray, int]:
         return self.box_index[box], int(self.cells.box_group[box]) if self.cells is not None else 0
