@@ -300,6 +300,31 @@ class Audit:
                     return result
             return self._evaluate(current_values, min_cell_size, allow_zero, protection_width, exact, told)
 
+    def _equations(
+        self,
+        current_values: Mapping[str, int | None],
+        told: tuple[Mapping[str, str], Mapping[str, bool]],
+        known: dict[int, int],
+    ) -> tuple[sparse.csr_matrix, np.ndarray, list[int | None], np.ndarray, np.ndarray, tuple, set[int]]:
+        """The system's inputs: every shown count and relation as a row ``a x = b`` (and the box of each row),
+        the atoms empty in every table (structurally, or by a rule's fact) and those a shown 0 empties, the
+        rules' facts as bound rows (:meth:`_bound_rows`), and the boxes a fact says are empty."""
+        n_atoms = self.incidence.shape[1]
+        known_boxes = sorted(known)
+        data_rows = self.incidence[known_boxes] if known_boxes else sparse.csr_matrix((0, n_atoms))
+        a = sparse.vstack([data_rows, self.relation_rows]).tocsr()
+        b = np.concatenate([np.array([known[j] for j in known_boxes], float), np.zeros(self.relation_rows.shape[0])])
+        row_box: list[int | None] = [*known_boxes, *([None] * self.relation_rows.shape[0])]
+        zero = self.structural_zero.copy()
+        released_zero = np.zeros(n_atoms, bool)
+        for box, value in known.items():
+            if value == 0:
+                released_zero[self.box_index[box]] = True
+        g, g_low, g_high, empty = self._bound_rows(current_values, told, known)
+        for box in empty:
+            zero[self.box_index[box]] = True
+        return a, b, row_box, zero, released_zero, (g, g_low, g_high), empty
+
     def _bound_rows(
         self,
         current_values: Mapping[str, int | None],
@@ -344,7 +369,6 @@ class Audit:
         release an exact LP interval."""
         started = time.perf_counter()
         self._k = min_cell_size
-        n_atoms = self.incidence.shape[1]
         known, first = self._known(current_values)
         # boxes known only from the audited release: the only ones suppression can still take back
         self._suppressible = {box for box, r in first.items() if r == self.current}
@@ -352,19 +376,7 @@ class Audit:
         def unsafe(value: int) -> bool:
             return (0 < value < min_cell_size) or (value == 0 and not allow_zero)
 
-        known_boxes = sorted(known)
-        data_rows = self.incidence[known_boxes] if known_boxes else sparse.csr_matrix((0, n_atoms))
-        a = sparse.vstack([data_rows, self.relation_rows]).tocsr()
-        b = np.concatenate([np.array([known[j] for j in known_boxes], float), np.zeros(self.relation_rows.shape[0])])
-        row_box: list[int | None] = [*known_boxes, *([None] * self.relation_rows.shape[0])]
-        zero = self.structural_zero.copy()
-        released_zero = np.zeros(n_atoms, bool)
-        for box, value in known.items():
-            if value == 0:
-                released_zero[self.box_index[box]] = True
-        g, g_low, g_high, empty = self._bound_rows(current_values, told, known)
-        for box in empty:
-            zero[self.box_index[box]] = True
+        a, b, row_box, zero, released_zero, (g, g_low, g_high), empty = self._equations(current_values, told, known)
         # A repair round withholds more of the audited release: every table the round before allowed is still
         # allowed, so only the atoms it left empty can be empty now (the pool keeps them while that holds).
         self._pool.valid_for(known)
@@ -400,9 +412,10 @@ class Audit:
                     candidates = self._candidates(system.combination(vector), system, vector)
                     findings.append(Finding("suppressed", self.releases[release].label, tuple(names), candidates))
             self._atoms_pinned(system, unsafe, released_zero, findings, seen_regions)
-            self._nested_pinned(system, unsafe, findings, seen_regions)
+            key = self._residual_keys(system)
+            self._nested_pinned(system, unsafe, findings, seen_regions, key)
             if self.cells is None:
-                self._unions_pinned(system, unsafe, findings, seen_regions)
+                self._unions_pinned(system, unsafe, findings, seen_regions, key)
             if exact and self.cells is None and int((~system.zero).sum()) <= MILP_MAX_ATOMS:
                 self._whole_pinned(system, unsafe, released_zero, findings, seen_regions)
         if findings:
@@ -612,27 +625,26 @@ class Audit:
             seen.add(region)
             findings.append(self._difference(system, vector))
 
-    def _nested_pinned(self, system: _System, unsafe: Any, findings: list[Finding], seen: set[frozenset[int]]) -> None:
+    def _nested_pinned(
+        self, system: _System, unsafe: Any, findings: list[Finding], seen: set[frozenset[int]], key: np.ndarray
+    ) -> None:
         """Nested boxes G inside F whose difference F \\ G is pinned down to a value the policy would hide.
 
         F \\ G is pinned down exactly when F and G have the same residual (distance from the row space), so
         boxes are grouped by residual (sorted on a random projection, then compared) and, inside a group,
-        sorted by value so that only pairs whose difference could be small are compared.
+        sorted by value so that only pairs whose difference could be small are compared. ``key``: each box's
+        residual against one random vector (:meth:`_residual_keys`, shared with :meth:`_unions_pinned`).
         """
-        n_boxes, n_atoms = self.incidence.shape
+        n_boxes = self.incidence.shape[0]
         if n_boxes < 2:
             return
-        live = np.flatnonzero(~system.zero)
-        key = self._residual_keys(system)
         values = self.incidence @ system.solution
-        live_mask = np.zeros(n_atoms, bool)
-        live_mask[live] = True
+        live_mask = ~system.zero
         cache: dict[int, frozenset[int]] = {}
 
         def region_of(box: int) -> frozenset[int]:
             if box not in cache:
-                index = self.box_index[box]
-                cache[box] = frozenset(index[live_mask[index]].tolist())
+                cache[box] = self._live_region(box, live_mask)
             return cache[box]
 
         if self.cells is not None:
@@ -695,7 +707,14 @@ class Audit:
             key += self.incidence[:, free_atoms] @ rng.standard_normal(len(free_atoms))
         return key
 
-    def _unions_pinned(self, system: _System, unsafe: Any, findings: list[Finding], seen: set[frozenset[int]]) -> None:
+    def _live_region(self, box: int, live: np.ndarray) -> frozenset[int]:
+        """The atoms of a box that some table can fill (``live``: not fixed at zero)."""
+        index = self.box_index[box]
+        return frozenset(index[live[index]].tolist())
+
+    def _unions_pinned(
+        self, system: _System, unsafe: Any, findings: list[Finding], seen: set[frozenset[int]], key: np.ndarray
+    ) -> None:
         """A box F less two or more boxes inside it, no two overlapping, all pinned down (shown, or worked out):
         what is left of F is pinned down too, and must not hold 1..k−1 records (0 too, when zeros are hidden).
 
@@ -715,12 +734,10 @@ class Audit:
         live_mask = ~system.zero
         if int(live_mask.sum()) > UNION_MAX_ATOMS:
             return
-        key = self._residual_keys(system)
         values = self.incidence @ system.solution
         regions: dict[int, frozenset[int]] = {}
         for box in np.flatnonzero(np.abs(key) < 1e-7).tolist():
-            index = self.box_index[box]
-            region = frozenset(index[live_mask[index]].tolist())
+            region = self._live_region(box, live_mask)
             if region and round(values[box]) >= 1:
                 regions[box] = region
         if len(regions) > UNION_MAX_BOXES or not any(b in self._suppressible for b in regions):
@@ -752,7 +769,7 @@ class Audit:
                     inside, regions, values, total - high, total - low, own, (regions[f], live_mask, f)
                 )
                 self._union_answers[question] = chosen
-            if chosen is None or self._rest_is_listed(regions[f], chosen, regions, live_mask):
+            if chosen is None:  # (a chain whose rest is its own table's other cells was passed over already)
                 continue
             region = regions[f].difference(*(regions[g] for g in chosen))
             if region in seen:
@@ -774,20 +791,8 @@ class Audit:
         if getattr(self, "_history", None) is None:
             none = {s.name: None for s in self.statements if s.release == self.current}
             known, _ = self._known(none)
-            n_atoms = self.incidence.shape[1]
-            boxes = sorted(known)
-            rows = self.incidence[boxes] if boxes else sparse.csr_matrix((0, n_atoms))
-            a = sparse.vstack([rows, self.relation_rows]).tocsr()
-            b = np.concatenate([np.array([known[j] for j in boxes], float), np.zeros(self.relation_rows.shape[0])])
-            zero = self.structural_zero.copy()
-            for box, value in known.items():
-                if value == 0:
-                    zero[self.box_index[box]] = True
-            g, g_low, g_high, empty = self._bound_rows(none, ({}, {}), known)
-            for box in empty:
-                zero[self.box_index[box]] = True
-            row_box: list[int | None] = [*boxes, *([None] * self.relation_rows.shape[0])]
-            self._history = _build_system(a, b, row_box, zero, g, g_low, g_high)
+            a, b, row_box, zero, released_zero, bounds, _ = self._equations(none, ({}, {}), known)
+            self._history = _build_system(a, b, row_box, zero | released_zero, *bounds)
         return self._history
 
     def _families(self) -> list[tuple[str, list[int]]]:
@@ -847,8 +852,7 @@ class Audit:
             for c_low, c_high, g in sorted(cover):
                 if c_low > reach:
                     break
-                index = self.box_index[g]
-                if region & frozenset(index[live[index]].tolist()):
+                if region & self._live_region(g, live):
                     empty = False
                     break
                 reach = max(reach, c_high)
@@ -871,8 +875,7 @@ class Audit:
             for members in self._family_of.get(box, []):
                 listed: set[int] = set()
                 for member in members:
-                    index = self.box_index[member]
-                    region = frozenset(index[live[index]].tolist())
+                    region = self._live_region(member, live)
                     if region and region <= whole and not region & taken:
                         listed |= region
                 if listed == rest:
