@@ -210,6 +210,13 @@ def verify_ledger(path: Path, public_key: Ed25519PublicKey) -> int:
     return expected_seq - 1
 
 
+def verify_before_use(path: Path, public_key: Ed25519PublicKey) -> None:
+    """Verify the whole ledger, if there is one, before a command reads it for a decision or adds to it (the
+    audit's memory and the board's record): :func:`verify_ledger`, raising LedgerError (exit code 2)."""
+    if path.exists():
+        verify_ledger(path, public_key)
+
+
 def check_copies(path: Path, folder: Path) -> list[str]:
     """Release files in ``folder`` that the ledger does not record (entries removed from its end)."""
     recorded = {

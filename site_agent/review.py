@@ -339,8 +339,7 @@ def _checked_site(root: Path) -> Site:
     """The site, once its whole ledger verified: the review page is built from the ledger's entries, so a page
     read from an edited ledger would show the board other numbers than the held bytes hold."""
     site = load_site(root)
-    if site.ledger_path.exists():
-        ledger.verify_ledger(site.ledger_path, site.public_key())
+    ledger.verify_before_use(site.ledger_path, site.public_key())
     return site
 
 

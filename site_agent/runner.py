@@ -229,8 +229,7 @@ def run_request(
     """
     private_key = site.private_key()
     # the ledger is the audit's memory and the board's record: a broken one stops the run before anything
-    if site.ledger_path.exists():
-        ledger.verify_ledger(site.ledger_path, site.public_key())
+    ledger.verify_before_use(site.ledger_path, site.public_key())
     ledger.append(
         site.ledger_path,
         private_key,
