@@ -26,7 +26,7 @@ from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
 
-from federation.protocol import PolicyViolation, Release, ValidationToolError, sha256_hex
+from federation.protocol import PolicyViolation, Release, Request, ValidationToolError, sha256_hex
 from federation.protocol.cli_support import EXIT_PARTIAL, write_atomic
 
 from . import ledger
@@ -70,11 +70,31 @@ def _held_id(details: dict[str, Any]) -> Any:
     return details.get("held_id", details.get("pending_id"))
 
 
-def hold(site: Site, request_sha256: str, release_bytes: bytes, facts: dict[str, Any], review: dict[str, Any]) -> Held:
+def addressee(request: Request, request_bytes: bytes) -> dict[str, str]:
+    """Who a release answers, for the ledger: the request (verified) and the coordinator key that signed it."""
+    return {
+        "request_sha256": sha256_hex(request_bytes),
+        "coordinator_key_id": request.coordinator_key_id,
+        "request": request_bytes.decode("utf-8"),
+    }
+
+
+ADDRESSEE_FIELDS = ("request_sha256", "coordinator_key_id", "request")
+
+
+def hold(
+    site: Site,
+    request: Request,
+    request_bytes: bytes,
+    release_bytes: bytes,
+    facts: dict[str, Any],
+    review: dict[str, Any],
+) -> Held:
     """Queue a signed release for approval: ledger first (fsynced), then the files people read."""
     release = Release.from_bytes(release_bytes, "release")
     digest = sha256_hex(release_bytes)
     held_id = digest[:16]
+    request_sha256 = sha256_hex(request_bytes)
     entry = ledger.append(
         site.ledger_path,
         site.private_key(),
@@ -83,7 +103,7 @@ def hold(site: Site, request_sha256: str, release_bytes: bytes, facts: dict[str,
             "held_id": held_id,
             "study_id": release.study_id,
             "request_id": release.request_id,
-            "request_sha256": request_sha256,
+            **addressee(request, request_bytes),
             "release_sha256": digest,
             "release": release_bytes.decode("utf-8"),
             "facts": facts,
@@ -163,31 +183,31 @@ def reviewed_bytes(site: Site, held: Held) -> bytes:
     return data
 
 
-def _from_ledger(site: Site, held: Held) -> bytes:
+def held_entry(site: Site, held: Held) -> dict[str, Any]:
+    """The ``held`` entry's details as the ledger recorded them when the release was prepared ({} if none)."""
     for entry in ledger.read_entries(site.ledger_path):
         details = entry.get("details", {})
         if entry.get("event") in HELD_EVENTS and _held_id(details) == held.held_id:
-            return str(details.get("release", "")).encode("utf-8")
-    raise ValidationToolError(f"{held.held_id}: the ledger holds no prepared release with this id")
+            return details if isinstance(details, dict) else {}
+    return {}
+
+
+def _from_ledger(site: Site, held: Held) -> bytes:
+    details = held_entry(site, held)
+    if not details:
+        raise ValidationToolError(f"{held.held_id}: the ledger holds no prepared release with this id")
+    return str(details.get("release", "")).encode("utf-8")
 
 
 def held_facts(site: Site, held: Held) -> dict[str, Any]:
     """The counts (with their definitions) behind a held release, as recorded in the ledger."""
-    for entry in ledger.read_entries(site.ledger_path):
-        details = entry.get("details", {})
-        if entry.get("event") in HELD_EVENTS and _held_id(details) == held.held_id:
-            facts = details.get("facts", {})
-            return facts if isinstance(facts, dict) else {}
-    return {}
+    facts = held_entry(site, held).get("facts", {})
+    return facts if isinstance(facts, dict) else {}
 
 
 def review_details(site: Site, held: Held) -> dict[str, Any]:
     """What suppression did and the audit's result, as recorded in the ledger when the release was prepared."""
-    for entry in ledger.read_entries(site.ledger_path):
-        details = entry.get("details", {})
-        if entry.get("event") in HELD_EVENTS and _held_id(details) == held.held_id:
-            return details.get("review", {}) or {}
-    return {}
+    return held_entry(site, held).get("review", {}) or {}
 
 
 def _decide(site: Site, held_id: str, event: str, by: str, reason: str = "") -> Held:
@@ -236,11 +256,10 @@ def hand_over(site: Site, held: Held) -> bytes:
     data = reviewed_bytes(site, held)
     if held.state == "approved":
         release = Release.from_bytes(data, "release")
-        facts = {}
-        for entry in ledger.read_entries(site.ledger_path):
-            details = entry.get("details", {})
-            if entry.get("event") in HELD_EVENTS and _held_id(details) == held.held_id:
-                facts = details.get("facts", {})
+        prepared = held_entry(site, held)
+        # the release entry says what the held one said: which request (and coordinator key) it answers, the
+        # counts behind it and the review, so that a ledger reader needs no other entry
+        answered = {key: prepared[key] for key in ADDRESSEE_FIELDS if key in prepared}
         ledger.append(
             site.ledger_path,
             site.private_key(),
@@ -249,9 +268,11 @@ def hand_over(site: Site, held: Held) -> bytes:
                 "held_id": held.held_id,
                 "study_id": release.study_id,
                 "request_id": release.request_id,
+                **answered,
                 "release_sha256": held.release_sha256,
                 "release": data.decode("utf-8"),
-                "facts": facts,
+                "facts": prepared.get("facts", {}),
+                "review": prepared.get("review", {}),
             },
         )
         write_atomic(site.releases_dir / f"{release.study_id}-{release.request_id}.json", data)

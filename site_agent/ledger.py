@@ -11,11 +11,14 @@ Events:
 ``refusal``           the request was refused: ``reason`` as it was sent back (a fixed category, see
                       docs/formats.md), ``detail`` the site's own message, ``study_id``/``request_id`` once the
                       request's signature verified (such a refusal counts against the policy's caps)
-``held``              a release was prepared and held for a person's approval (full text, audit facts, review;
-                      ``preview`` in ledgers written before this name was settled, read alike)
+``held``              a release was prepared and held for a person's approval (full text, audit facts, review,
+                      and whom it answers: ``request`` text, its ``request_sha256`` and the
+                      ``coordinator_key_id`` that signed it; ``preview`` in ledgers written before this name
+                      was settled, read alike)
 ``approval``          a person approved a held release (who, when, the SHA-256 they approved)
 ``rejection``         a person rejected a held release (who, when, why)
-``release``           a release is about to leave (full text and the audit facts of what it shows and hides)
+``release``           a release is about to leave (full text, the audit facts of what it shows and hides, the
+                      review, and whom it answers, as for ``held``)
 ``model_approval``    a person approved a model bundle (``bundle_sha256``, ``name``, ``signer``, ``by``)
 ``model_rejection``   a person rejected a model bundle (as above, with ``reason``)
 ``sent``              the release was handed over (``via``: ``file`` with its path, or ``flower``: handed to
@@ -329,13 +332,15 @@ def summary(entry: dict[str, Any]) -> str:
     """One line for people: what happened, without the release text or the audit facts."""
     details = entry.get("details", {}) or {}
     event = entry.get("event")
-    short = {k: v for k, v in details.items() if k not in ("release", "facts", "review")}
+    short = {k: v for k, v in details.items() if k not in ("release", "facts", "review", "request")}
     for key in ("request_sha256", "bundle_sha256", "release_sha256"):
         if isinstance(short.get(key), str):
             short[key] = short[key][:12]
     if event == "release" or event in HELD_EVENTS:
         study, request = details.get("study_id"), details.get("request_id")
         text = f"study {study} request {request} release {str(details.get('release_sha256', ''))[:12]}"
+        if details.get("coordinator_key_id"):  # older ledgers do not say whose request it answers
+            text += f" for coordinator key {details['coordinator_key_id']}"
         if event in HELD_EVENTS:
             text += f" held for approval as {_held_id(details)}"
         return text

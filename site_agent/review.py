@@ -14,6 +14,7 @@ import argparse
 import getpass
 import html
 import json
+import textwrap
 from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
@@ -26,22 +27,47 @@ from .approval import Held
 from .config import Site, load_site
 
 
-def _policy_line(policy: dict[str, Any]) -> str:
+def _listed(values: Any) -> str:
+    return ", ".join(str(v) for v in values) if isinstance(values, (list, tuple)) and values else "none"
+
+
+def _policy_lines(policy: dict[str, Any]) -> list[tuple[str, str]]:
+    """The policy the release states it was made under, every field of it, in words."""
     zeros = "a count of zero is shown" if policy.get("allow_zero", True) else "a count of zero is withheld too"
     approval_text = "a person approves each release" if policy.get("require_approval") else "no approval step"
-    return (
-        f"counts under {policy.get('min_cell_size')} are withheld (the minimum cell size); {zeros}; every withheld "
-        f"count must keep at least {policy.get('protection_width', 2)} possible values; {approval_text} "
-        f"(policy fingerprint {str(policy.get('policy_sha256'))[:16]})"
+    models_text = (
+        "a person approves each new model before its first use"
+        if policy.get("require_model_approval")
+        else "models are not approved one by one"
     )
+    bands = policy.get("min_band_width") or {}
+    band_text = "; ".join(f"{name} at least {_number_text(width)}" for name, width in sorted(bands.items()))
+    return [
+        (
+            "the site's rules",
+            f"counts under {policy.get('min_cell_size')} are withheld (the minimum cell size); {zeros}; every "
+            f"withheld count must keep at least {policy.get('protection_width', 2)} possible values; {approval_text}; "
+            f"{models_text} (policy fingerprint {str(policy.get('policy_sha256'))[:16]})",
+        ),
+        ("analyses allowed", _listed(policy.get("allowed_analyses"))),
+        ("subgroups allowed", _listed(policy.get("allowed_subgroups"))),
+        ("narrowest bands", band_text or "no narrowest band set"),
+        (
+            "requests allowed",
+            f"at most {policy.get('max_requests_per_study')} per study (refusals count), in at most "
+            f"{policy.get('max_studies')} studies",
+        ),
+        ("coordinator keys trusted", _listed(policy.get("trusted_coordinator_keys"))),
+    ]
 
 
 def describe(site: Site, held: Held) -> dict[str, Any]:
     """Everything a reviewer needs about one held release (verified against the ledger's SHA-256)."""
     data = approval.reviewed_bytes(site, held)
     document = json.loads(data)
-    review = approval.review_details(site, held)
-    facts = approval.held_facts(site, held)
+    prepared = approval.held_entry(site, held)
+    review = prepared.get("review", {}) or {}
+    facts = prepared.get("facts", {}) if isinstance(prepared.get("facts"), dict) else {}
     results = document.get("results", {}) if isinstance(document.get("results"), dict) else {}
     return {
         "id": held.held_id,
@@ -52,6 +78,7 @@ def describe(site: Site, held: Held) -> dict[str, Any]:
         "reason": held.reason,
         "study_id": held.study_id,
         "request_id": held.request_id,
+        "coordinator_key_id": str(prepared.get("coordinator_key_id", "")),
         "release_sha256": held.release_sha256,
         "document": document,
         "text": data.decode("utf-8"),
@@ -120,20 +147,36 @@ def _meta_lines(view: dict[str, Any]) -> list[tuple[str, str]]:
     return [
         ("state", STATE_WORDS.get(view["state"], view["state"])),
         ("study and request", f"study {view['study_id']}, request {view['request_id']}"),
+        (
+            "asked by",
+            f"the coordinator key {view['coordinator_key_id']} (it signed the request; the release goes to it)"
+            if view.get("coordinator_key_id")
+            else "not recorded (a ledger written before the asker was kept)",
+        ),
         ("site", str(doc.get("site_id"))),
         ("prepared", _when(view["prepared_at"])),
         ("the model it comes from", _model_line(view)),
-        ("the site's rules", _policy_line(doc.get("policy", {}))),
-        ("what is approved", f"exactly the release text with SHA-256 {view['release_sha256']}"),
+        *_policy_lines(doc.get("policy", {})),
+        (
+            "what is approved",
+            f"exactly the release text with SHA-256 {view['release_sha256']} (statistics on this page are rounded "
+            "for reading; that text holds every digit)",
+        ),
     ]
+
+
+LABEL_WIDTH = 72  # a longer row label is wrapped onto more lines, never cut
 
 
 def _text_table(table: plain.Table, indent: str = "  ", caption: bool = False) -> list[str]:
     widths = [max(len(row[i]) for row in [table.header, *table.rows]) for i in range(len(table.header))]
-    widths[0] = min(widths[0], 72)
+    widths[0] = min(widths[0], LABEL_WIDTH)
     out = [f"{indent}{table.caption if caption else table.explain}"]
     for n, row in enumerate([table.header, *table.rows]):
-        cells = [row[0][: widths[0]].ljust(widths[0])] + [c.rjust(w) for c, w in zip(row[1:], widths[1:], strict=True)]
+        label = textwrap.wrap(row[0], widths[0], break_long_words=True) or [""]
+        for more in label[:-1]:  # the numbers stand on the label's last line
+            out.append(f"{indent}{more}")
+        cells = [label[-1].ljust(widths[0])] + [c.rjust(w) for c, w in zip(row[1:], widths[1:], strict=True)]
         out.append(f"{indent}{'  '.join(cells).rstrip()}")
         if n == 0:
             out.append(f"{indent}{'-' * (sum(widths) + 2 * (len(widths) - 1))}")

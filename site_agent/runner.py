@@ -240,15 +240,15 @@ def run_request(
     request: Request | None = None
     try:
         request = Request.from_bytes(request_bytes, site.trusted, "request")
-        held = approval.held_for_request(site, sha256_hex(request_bytes))
-        if held is not None:  # asked before and held for approval: answer with exactly the reviewed bytes
-            data = approval.hand_over(site, held)
-            return Outcome(Release.from_bytes(data, "release"), data)
         answered = recorded_release(site, sha256_hex(request_bytes))
         if answered is not None:  # the same bytes asked again (a lost reply): the recorded release, not a new one
             copy = site.releases_dir / f"{answered.release.study_id}-{answered.release.request_id}.json"
             write_atomic(copy, answered.release_bytes)  # restores the site's copy if a crash came first
             return answered
+        held = approval.held_for_request(site, sha256_hex(request_bytes))
+        if held is not None:  # asked before and held for approval: answer with exactly the reviewed bytes
+            data = approval.hand_over(site, held)
+            return Outcome(Release.from_bytes(data, "release"), data)
         bundle = check_policy(site, request, request_bytes, bundle_bytes)
         compare = check_compare_bundle(site, request, compare_bundle_bytes)
         release, facts = _compute(
@@ -272,9 +272,10 @@ def run_request(
         raise exc from None
     release_bytes = release.signed_bytes(private_key)
     signed = Release.from_bytes(release_bytes, "release")
+    assert request is not None  # set in the try block, which returned or raised otherwise
     if site.policy.require_approval:
         review = {**holder["protected"].review(), "model": model_facts(bundle)}  # for the reviewer's page
-        held = approval.hold(site, sha256_hex(request_bytes), release_bytes, facts, review)
+        held = approval.hold(site, request, request_bytes, release_bytes, facts, review)
         raise AwaitingApproval(
             held.held_id, f"release {held.held_id} is held for approval by the site (nothing has been sent)"
         )
@@ -285,7 +286,7 @@ def run_request(
         {
             "study_id": signed.study_id,
             "request_id": signed.request_id,
-            "request_sha256": sha256_hex(request_bytes),
+            **approval.addressee(request, request_bytes),
             "release_sha256": sha256_hex(release_bytes),
             "release": release_bytes.decode("utf-8"),
             "facts": facts,

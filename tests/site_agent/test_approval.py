@@ -130,6 +130,24 @@ def test_approve_then_run_again_writes_the_reviewed_bytes(held, tmp_path: Path, 
     out = tmp_path / "again.json"
     assert site_agent(["release", held_id, "--site-dir", str(site_dir), "--out", str(out)]) == 0
     assert out.read_bytes() == reviewed
+    # The release entry says whom it answers, as a direct release's does: the request's bytes, their SHA-256
+    # and the coordinator key that signed them (found by following the board's guide: after an approval the
+    # entry said none of it, so the ledger did not show to whom a release went).
+    request_bytes = Path(run[run.index("--request") + 1]).read_bytes()
+    release = [e for e in ledger.read_entries(site_dir / "ledger.jsonl") if e["event"] == "release"][0]["details"]
+    assert release["request_sha256"] == sha256_hex(request_bytes)
+    assert release["request"] == request_bytes.decode("utf-8")
+    assert release["coordinator_key_id"] == json.loads(request_bytes)["coordinator_key_id"]
+    assert release["facts"]["counts"] and release["review"]["suppressed"] is not None
+    # Asking again says it is the recorded release, and adds no second release entry.
+    capsys.readouterr()
+    assert site_agent(run) == 0
+    assert "this request was answered before" in capsys.readouterr().err
+    assert events(site_dir).count("release") == 1
+    assert (tmp_path / "release.json").read_bytes() == reviewed
+    capsys.readouterr()
+    assert site_agent(["ledger", "show", "--site-dir", str(site_dir)]) == 0
+    assert f"for coordinator key {release['coordinator_key_id']}" in capsys.readouterr().out
 
 
 def test_a_rejected_release_never_leaves(held, tmp_path: Path, capsys) -> None:  # noqa: ANN001

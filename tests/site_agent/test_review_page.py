@@ -93,6 +93,16 @@ def test_the_review_page_reads_in_plain_words(held_full) -> None:  # noqa: ANN00
         assert re.search(rf"\b{interval['low']} {high}", text), interval
     # the model the release came from, the decision still open, a glossary of what remains abbreviated
     assert release["bundle_sha256"] in text and "“model”" in text
+    # Every field of the policy the release states, and who asked (found by following the board's guide: the
+    # page showed the cell size and width alone, not which subgroups, how many requests or whose keys).
+    policy = release["policy"]
+    assert re.search(r"subgroups allowed\s*mean_radius\s*narrowest", text)
+    assert f"at most {policy['max_requests_per_study']} per study (refusals count)" in text
+    assert f"in at most {policy['max_studies']} studies" in text
+    assert all(key in text for key in policy["trusted_coordinator_keys"]) and policy["trusted_coordinator_keys"]
+    assert ", ".join(policy["allowed_analyses"]) in text
+    request = json.loads((root / "request.json").read_text())
+    assert f"the coordinator key {request['coordinator_key_id']} (it signed the request" in text
     assert "Not decided yet" in text and f"site-agent approve {held_id}" in " ".join(dom.text().split())
     glossary = " ".join(" ".join(d.text().split()) for d in dom.iter("dt"))
     assert "AUC" in glossary and "SHA-256" in glossary
@@ -179,3 +189,19 @@ def test_every_released_agreement_count_has_its_own_words_on_the_page() -> None:
     band = {"variable": "score.compare", "low": 12.0, "high": None}
     assert "screen" not in condition_words(band, "paired")
     assert condition_words({"variable": "score", "low": 0.5, "high": None}, "confusion").startswith("screen +")
+
+
+def test_a_long_row_label_is_wrapped_never_cut() -> None:
+    """Found by following the board's guide: the terminal page cut row labels at 72 characters, so two subgroup
+    rows that differ only at their end read alike."""
+    from site_agent import plain
+    from site_agent.review import LABEL_WIDTH, _text_table
+
+    long = " ".join(["scores at or above 0.25 and below 0.5, aged 24 to 35 months, sex coded 2"] * 2)
+    assert len(long) > LABEL_WIDTH
+    table = plain.Table("caption", "what it counts", ["group", "number"], [[long, "12"], ["short", "withheld"]])
+    lines = _text_table(table)
+    assert not any(long in line for line in lines)  # split over lines ...
+    words = " ".join(" ".join(line.split()) for line in lines[3:])
+    assert words.startswith(long + " 12 short withheld")  # ... nothing of it lost, the number on its last line
+    assert all(len(line) <= 2 + LABEL_WIDTH + 2 + len("withheld") for line in lines[1:])
