@@ -9,8 +9,9 @@ Events:
 
 ``request_received``  a request arrived (its SHA-256 and the bundle's)
 ``refusal``           the request was refused: ``reason`` as it was sent back (a fixed category, see
-                      docs/formats.md), ``detail`` the site's own message, ``study_id``/``request_id`` once the
-                      request's signature verified (such a refusal counts against the policy's caps)
+                      docs/formats.md), ``detail`` the site's own message, and once the request's signature
+                      verified ``study_id``, ``request_id`` and ``coordinator_key_id`` (such a refusal counts
+                      against the policy's caps)
 ``held``              a release was prepared and held for a person's approval (full text, audit facts, review,
                       and whom it answers: ``request`` text, its ``request_sha256`` and the
                       ``coordinator_key_id`` that signed it; ``preview`` in ledgers written before this name

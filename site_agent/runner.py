@@ -264,7 +264,9 @@ def run_request(
         if local != sent:
             details["detail"] = local
         if request is not None:  # a verified request: the refusal counts against the policy's caps
-            details.update(study_id=request.study_id, request_id=request.request_id)
+            details.update(
+                study_id=request.study_id, request_id=request.request_id, coordinator_key_id=request.coordinator_key_id
+            )
         ledger.append(site.ledger_path, private_key, "refusal", details)
         if not isinstance(exc, ValidationToolError):
             exc = InternalError(f"{local}; the request was refused and the refusal recorded in the ledger")

@@ -236,7 +236,15 @@ def test_the_refusal_reads_the_same_whichever_records_trigger_it(tmp_path: Path,
         reasons.append(sent_reasons(site))
         entry = [e for e in ledger.read_entries(site / "ledger.jsonl") if e["event"] == "refusal"][-1]
         assert entry["details"]["study_id"] == "probe" and entry["details"]["error"] == "ScoringError"
-        assert set(entry["details"]) == {"request_sha256", "reason", "error", "detail", "study_id", "request_id"}
+        assert set(entry["details"]) == {
+            "request_sha256",
+            "reason",
+            "error",
+            "detail",
+            "study_id",
+            "request_id",
+            "coordinator_key_id",
+        }
     assert lines[0] == lines[1] and reasons[0] == reasons[1] == ["scoring failed"]
 
 
