@@ -49,8 +49,8 @@ def checker_fingerprint() -> str:
 
 
 def _paths(site: Site, model_sha256: str) -> tuple[Path, Path]:
-    stem = site.root / MODELS_DIR / f"{model_sha256[:16]}.checked"
-    return stem.with_suffix(".json"), stem.with_suffix(".onnx")
+    folder = site.root / MODELS_DIR  # (``with_suffix`` on "X.checked" would drop ".checked")
+    return folder / f"{model_sha256[:16]}.checked.json", folder / f"{model_sha256[:16]}.checked.onnx"
 
 
 def remembered(site: Site, model_bytes: bytes) -> CheckedGraph | None:

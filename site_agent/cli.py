@@ -11,7 +11,6 @@ from pathlib import Path
 from federation.protocol import ValidationToolError
 from federation.protocol.cli_support import ArgumentParser, option, print_json, run_cli, write_atomic
 from federation.protocol.crashpoints import crash_point
-from federation.protocol.errors import REFUSAL_CATEGORIES
 from federation.protocol.progress import records_progress
 from federation.protocol.words import CELLS, WITHHELD
 
@@ -75,7 +74,7 @@ def cmd_run(args: argparse.Namespace) -> int:
         return review.print_held(held, args.site_dir)
     except ValidationToolError as exc:
         sent = getattr(exc, "refusal", None)
-        if sent in REFUSAL_CATEGORIES and sent != str(exc):  # the detail stays here; the category may travel
+        if sent and sent != str(exc):  # the detail stays here; only the travelling line may be passed on
             error = ValidationToolError(f"{exc} (tell the coordinator only: {sent})")
             error.exit_code = exc.exit_code
             raise error from None

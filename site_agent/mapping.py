@@ -134,12 +134,20 @@ def load_mapping(path: Path, schema: Schema) -> Mapping:
     for feature in schema.features:
         raw = raw_features.get(feature.name, {})
         features[feature.name] = _feature_map(raw, feature, f"{source}: [features.{feature.name}]")
+    missing_values = frozenset(_text(v, f"{source}: missing") for v in missing)
+    for name, reference in (("outcome", outcome), ("reference2", reference2)):
+        if reference is not None and (reference.positive | reference.negative) & missing_values:
+            # a value listed as missing would be read as missing, never as the code: say so instead of guessing
+            raise DocumentError(
+                f"{source}: [{name}]: a value listed under positive or negative is also listed under missing "
+                "(the top-level list of local spellings of a missing value); keep it in one place"
+            )
     return Mapping(
         features,
         outcome.column,
         outcome.positive,
         outcome.negative,
-        frozenset(_text(v, f"{source}: missing") for v in missing),
+        missing_values,
         source,
         id_column,
         reference2,
@@ -157,6 +165,8 @@ def _feature_map(raw: Any, feature: Feature, where: str) -> FeatureMap:
     if not isinstance(codes, dict):
         raise DocumentError(f"{where}.codes must be a table of local code = schema value")
     parsed = {str(k).strip(): _text(v, f"{where}.codes") for k, v in codes.items()}
+    if len(parsed) < len(codes):  # "F" and "F " are one code once spaces are trimmed, as values are
+        raise DocumentError(f"{where}.codes: two local codes are the same once leading and trailing spaces go")
     for target in parsed.values():
         if feature.type == "category" and target not in feature.categories:
             raise DocumentError(f"{where}.codes: {target!r} is not a category of the schema")

@@ -10,7 +10,7 @@ model (the ONNX graph's operators after the static check, or a scorecard's inter
 with the attainable score range), the thresholds, who signed it and when it was packed.
 
 Ledger events: ``model_approval`` and ``model_rejection`` (``bundle_sha256``, ``name``, ``signer``, ``by``,
-``decided_at``, ``reason``). The latest decision for a bundle counts.
+``decided_at``, ``reason``). A rejection is final: a rejected bundle is never approved or decided again.
 """
 
 from __future__ import annotations
@@ -81,7 +81,9 @@ def require_approved(site: Site, bundle: Bundle, bundle_bytes: bytes, what: str 
         return
     short = bundle.sha256[:16]
     if current == "rejected":
-        raise ModelNotApproved(f"{what}: model {short} was rejected by this site; it will not be run")
+        refused = ModelNotApproved(f"{what}: model {short} was rejected by this site; it will not be run")
+        refused.rejected = True  # type: ignore[attr-defined]  # read by runner.refusal_reason
+        raise refused
     raise ModelNotApproved(
         f"{what}: model {short} is not approved by this site yet (policy require_model_approval); review it with "
         f"`site-agent model review {short} --site-dir {site.root}`, then `site-agent model approve {short} "
@@ -178,6 +180,13 @@ def decide(site: Site, bundle: Bundle, approve: bool, by: str, reason: str = "")
         raise ValidationToolError("--by: name the person who decides")
     if not approve and not reason.strip():
         raise ValidationToolError("--reason: say why the model is rejected")
+    earlier = decisions(site).get(bundle.sha256)
+    if earlier is not None and earlier.get("state") == "rejected":
+        # a rejection is for good (the guides say so): the same bytes cannot be approved later, by anyone
+        raise ValidationToolError(
+            f"model {bundle.sha256[:16]} was rejected by {earlier.get('by')} on {earlier.get('decided_at')}; a "
+            "rejection is final: ask the coordinator for a new bundle"
+        )
     site_scorer(site, bundle)  # a model that fails the static check cannot be approved; a passing one is kept
     details = {
         "bundle_sha256": bundle.sha256,
@@ -238,8 +247,12 @@ def cmd_model_review(args: argparse.Namespace) -> int:
         print("no model awaits review (give a bundle file or id to see one; --all for decided ones)")
         return 0
     print("\n\n".join(render_text(v) for v in views))
-    if any(v["state"] == "not reviewed" for v in views):
-        print(f"\ndecide: site-agent model approve ID --site-dir {args.site_dir} --by NAME   (or: model reject ...)")
+    for view in views:
+        if view["state"] == "not reviewed":
+            print(
+                f"\ndecide: site-agent model approve {view['id']} --site-dir {args.site_dir} --by NAME   "
+                f"(or: site-agent model reject {view['id']} --site-dir {args.site_dir} --by NAME --reason TEXT)"
+            )
     return 0
 
 

@@ -164,7 +164,7 @@ def schema_for_suggest(site: Site | None, bundle_path: Path | None, schema_path:
             raise ValidationToolError(f"{schema_path}: schema file not found") from None
         return Schema.from_toml(text, str(schema_path))
     if bundle_path is None or site is None:
-        raise ValidationToolError("give --schema SCHEMA.toml, or --bundle with --site (to verify the bundle)")
+        raise ValidationToolError("give --schema SCHEMA.toml, or --bundle with --site-dir (to verify the bundle)")
     try:
         data = bundle_path.read_bytes()
     except FileNotFoundError:

@@ -80,6 +80,8 @@ def refusal_reason(exc: BaseException, phase: str) -> tuple[str, str]:
     if isinstance(exc, LimitReached):
         return f"limit reached: {exc}", local
     if isinstance(exc, ModelNotApproved):
+        if getattr(exc, "rejected", False):
+            return "model not approved by the site: it rejected this model bundle", local
         return "model not approved by the site: it has not approved this model bundle yet", local
     if phase in ("verify", "model"):
         if isinstance(exc, BundleError):
@@ -370,6 +372,7 @@ def preview_request(
     progress: Callable[[int], None] | None = None,
 ) -> Preview:
     """Everything ``run_request`` computes, without signing, sending or writing to the ledger."""
+    ledger.verify_before_use(site.ledger_path, site.public_key())  # as `run` does: a broken ledger is no audit
     answered = recorded_release(site, sha256_hex(request_bytes))
     if answered is not None:
         raise PolicyViolation(

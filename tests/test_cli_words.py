@@ -119,6 +119,9 @@ def test_init_creates_every_folder_the_site_guide_lists(tmp_path: Path) -> None:
     assert {"held/", "releases/", "trusted/"} <= set(listed)
     for name in listed:
         assert (site / name.rstrip("/")).exists(), name
+    # the folder holds the private keys and the ledger: its owner's alone (docs/deployment.md, section on the
+    # site's host; found by following the site-IT guide, which never said to chmod it)
+    assert site.stat().st_mode & 0o777 == 0o700
 
 
 def test_readme_command_summary_names_only_options_that_exist() -> None:

@@ -228,9 +228,10 @@ class Audit:
             if statement.box in known and known[statement.box] != value:
                 raise AuditError(
                     f"count {statement.name!r} differs from the same count in release "
-                    f"{self.releases[first[statement.box]].label}: the records changed since an earlier release of "
-                    "this site, and the audit cannot protect differences between two versions of the data; "
-                    "answer from the data extract earlier releases used (see docs/threat-model.md, data versions)",
+                    f"{self.releases[first[statement.box]].label}: the records, or the mapping that reads them, "
+                    "changed since an earlier release of this site, and the audit cannot protect differences between "
+                    "two versions of the data; answer from the data extract and mapping earlier releases used (see "
+                    "docs/threat-model.md, data versions)",
                     VALUES_REFUSED,
                 )
             known[statement.box] = int(value)

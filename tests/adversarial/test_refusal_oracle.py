@@ -248,7 +248,7 @@ def test_the_refusal_reads_the_same_whichever_records_trigger_it(tmp_path: Path,
     assert lines[0] == lines[1] and reasons[0] == reasons[1] == ["scoring failed"]
 
 
-def test_a_refusal_for_changed_records_names_no_count(tmp_path: Path) -> None:
+def test_a_refusal_for_changed_records_names_no_count(tmp_path: Path, capsys: pytest.CaptureFixture) -> None:
     """Found by our red team: when the records behind a count changed since an earlier release, the audit
     refused with a reason naming the count that differs (``subgroups.sex[1].confusion[0].tp``), which told the
     coordinator the sex and outcome of the records that changed. Two sites, each asked twice for the 2x2
@@ -266,8 +266,12 @@ def test_a_refusal_for_changed_records_names_no_count(tmp_path: Path) -> None:
         assert world.ask("items", "one", "--analyses", "confusion,subgroups", "--subgroup", "sex") is not None
         with (world.root / "records.csv").open("a") as data:
             data.write(",".join(str(v) for v in added) + "\n")
+        capsys.readouterr()
         assert world.ask("items", "two", "--analyses", "confusion,subgroups", "--subgroup", "sex") is None
         reasons.append(sent_reasons(world.site)[-1])
+        # offline, the terminal gives the line to pass on (found by following the site-IT guide: it printed the
+        # site's own message alone, which names the count)
+        assert f"(tell the coordinator only: {reasons[-1]})" in capsys.readouterr().err
         detail = [e for e in ledger.read_entries(world.site / "ledger.jsonl") if e["event"] == "refusal"][-1]
         assert "differs from the same count" in detail["details"]["detail"]  # the site's own record says which
     assert reasons[0] == reasons[1] == f"release withheld by the site's disclosure control: {VALUES_REFUSED}"

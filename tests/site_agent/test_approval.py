@@ -192,6 +192,7 @@ def test_a_ledger_edited_behind_the_review_stops_review_approval_and_run(held, c
         ["approve", held_id, "--site-dir", str(site_dir), "--by", "A. Reviewer"],
         ["release", held_id, "--site-dir", str(site_dir), "--out", str(site_dir.parent / "out.json")],
         run,
+        ["check", *run[1 : run.index("--out")]],  # found by following the site-IT guide: check read on
     ):
         capsys.readouterr()
         assert site_agent(command) == 2, command

@@ -48,8 +48,8 @@ def _bundle(world: dict) -> Bundle:  # noqa: F811
 
 def _entry(world: dict) -> tuple[Path, Path]:  # noqa: F811
     model = _bundle(world).model_bytes
-    stem = world["site"] / "models" / f"{sha256_hex(model)[:16]}.checked"
-    return stem.with_suffix(".json"), stem.with_suffix(".onnx")
+    folder, stem = world["site"] / "models", sha256_hex(model)[:16]  # the names docs/site-it.md gives
+    return folder / f"{stem}.checked.json", folder / f"{stem}.checked.onnx"
 
 
 def test_approval_keeps_the_check_and_a_round_then_skips_the_onnx_import(

@@ -128,6 +128,11 @@ def test_mapping_file_errors_name_the_entry(cancer: Cancer, tmp_path: Path) -> N
         '[features.mean_radius]\ncodes = { "a" = "b" }\n': "must map to numbers",
         '[features.mean_radius]\nmultiply = "twelve"\n': "finite number",
         "surprise = 1\n": "unknown top-level entry",
+        # found by following the site-IT guide: both were taken silently, the first reading every "no" as missing
+        'missing = ["", "no"]\n[outcome]\ncolumn = "d"\npositive = ["yes"]\nnegative = ["no"]\n': (
+            r"\[outcome\]: a value listed under positive or negative is also listed under missing"
+        ),
+        '[features.mean_radius]\ncodes = { "1" = "1", "1 " = "2" }\n': "the same once leading and trailing spaces",
     }
     for text, message in bad.items():
         (tmp_path / "m.toml").write_text(text)

@@ -125,10 +125,22 @@ def test_an_onnx_model_is_reviewed_by_its_operators_and_a_rejected_model_never_r
     reject = ["model", "reject", str(world["onnx"]), "--site-dir", str(world["site"]), "--by", "Board"]
     assert site_agent([*reject, "--reason", "not the model in the protocol"]) == 0
     capsys.readouterr()
-    assert run(world, request_for(world, world["onnx"]), world["onnx"]) == 2
-    assert "was rejected by this site; it will not be run" in capsys.readouterr().err
+    request = request_for(world, world["onnx"])
+    assert run(world, request, world["onnx"]) == 2
+    err = capsys.readouterr().err
+    assert "was rejected by this site; it will not be run" in err
+    # the words to pass on say what the ledger says: rejected, not "not approved yet"
+    assert "(tell the coordinator only: model not approved by the site: it rejected this model bundle)" in err
+    refusal = [e for e in ledger.read_entries(world["site"] / "ledger.jsonl") if e["event"] == "refusal"][-1]
+    assert refusal["details"]["reason"] == "model not approved by the site: it rejected this model bundle"
     summaries = [ledger.summary(e) for e in ledger.read_entries(world["site"] / "ledger.jsonl")]
     assert any(s.startswith("model ") and "rejected by Board" in s for s in summaries)
+    # A rejection is for good, as the guides say (found by following the site-IT guide: a later approval of the
+    # same bytes went through and the model ran).
+    approve = ["model", "approve", str(world["onnx"]), "--site-dir", str(world["site"]), "--by", "IT"]
+    assert site_agent(approve) == 1
+    assert "a rejection is final" in capsys.readouterr().err
+    assert run(world, request, world["onnx"]) == 2
 
 
 def test_approval_needs_a_name_and_a_rejection_a_reason(world: dict, capsys: pytest.CaptureFixture) -> None:
