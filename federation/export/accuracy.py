@@ -13,6 +13,7 @@ from .registry import (
     _BAND_COLUMNS,
     _POOLED_COLUMNS,
     _SITE,
+    HEADLINE,
     POOLED,
     ExportContext,
     _edge,
@@ -115,14 +116,18 @@ def _accuracy(context: ExportContext) -> Iterable[dict[str, Any]]:
             "withheld": _withheld(c for c in ("tp", "fp", "fn", "tn") if site.get(c) is None),
         }
     pooled = context.analysis.get("pooled", {})
-    models = [("univariate DerSimonian-Laird", pooled)]
+    # The headline first (the model the report leads with), then the univariate sensitivity analysis, then each
+    # bivariate fit by its key. The headline row was labelled univariate once (found by following the coordinator's
+    # guide): its numbers were the suppression-aware GLMM's, and DerSimonian-Laird's were in no row.
+    univariate = (pooled.get("sensitivity_analyses") or {}).get("univariate")
+    models = [(HEADLINE, pooled), ("univariate DerSimonian-Laird (complete tables)", univariate)]
     models += [(key.replace("_", " "), value) for key, value in pooled.items() if key.startswith("bivariate")]
     for name, value in models:
         if not isinstance(value, dict) or not isinstance(value.get("sensitivity"), dict):
             continue
         yield {
             "site_id": POOLED,
-            "model": name,
+            "model": f"{name}: {value.get('method', '')}".split(";")[0] if name == HEADLINE else name,
             **_interval("sensitivity", value.get("sensitivity")),
             **_interval("specificity", value.get("specificity")),
             "sites_pooled": len(value.get("sites_pooled", [])) if isinstance(value.get("sites_pooled"), list) else None,

@@ -7,7 +7,7 @@ from typing import Any
 
 from federation.release_values import number_or_none as _number
 
-from .registry import _POOLED_COLUMNS, ExportContext, tidy_table
+from .registry import _POOLED_COLUMNS, HEADLINE, ExportContext, tidy_table
 
 
 def _pooled_results(
@@ -57,8 +57,8 @@ def _pooled(context: ExportContext) -> Iterable[dict[str, Any]]:
             if tau2 is None and measure in ("sensitivity", "specificity"):  # the model keeps them beside
                 tau2 = _number(parent.get(f"tau2_logit_{measure}"))
                 i2 = _number(parent.get(f"i2_logit_{measure}"))
-            if name == "primary" and len(path) == 1:
-                path = ("univariate", *path)
+            if name == "primary" and len(path) == 1:  # the headline's own estimates (not the univariate model)
+                path = (HEADLINE, *path)
             sites = value.get("sites_pooled", parent.get("sites_pooled"))
             yield {
                 "analysis": name,

@@ -15,6 +15,7 @@ from federation.release_values import number_or_none as _number
 
 NA = "NA"
 POOLED = "pooled"
+HEADLINE = "headline"  # the pooled model the report leads with (analysis.json: pooled, model "headline")
 
 
 @dataclass(frozen=True)
