@@ -7,7 +7,8 @@ from typing import Any
 from threadpoolctl import threadpool_limits
 
 from ..further_analysis import further_results
-from ..store import Store
+from ..protocol import SignatureError
+from ..store import Store, StoredRelease
 from .accuracy import _proportion, _site_accuracy, headline_pooling
 from .sections import _calibration, _discrimination, _paired, _subgroups
 from .tables import CELLS, AnalysisError, SiteTable, choose_study, site_tables
@@ -79,13 +80,33 @@ def analyze(
     ``covariates`` (optional) are coordinator-supplied site covariates for the meta-regression.
     """
     study = choose_study(store, study_id)
-    releases = store.releases(study)
+    releases = verified_releases(store, study)
     if not releases:
         raise AnalysisError(f"{store.path}: study {study!r} has no ingested releases yet")
     # Every matrix here is tiny: OpenBLAS threads cost far more than they give (about 8x slower fits on a busy
     # 2-core machine), as in the site's disclosure audit.
     with threadpool_limits(limits=1, user_api="blas"):
         return analyze_tables(study, site_tables(releases), prevalence, covariates, store.integer_features(study))
+
+
+def verified_releases(store: Store, study_id: str) -> list[StoredRelease]:
+    """The study's stored releases, each signature checked again against its site's enrolled key: no result
+    (analysis, report or export) is computed from a release altered after ingest.
+
+    Raises SignatureError (exit code 2) naming the site whose stored release no longer verifies.
+    """
+    rings = store.site_keys()
+    releases = store.releases(study_id)
+    for stored in releases:
+        release = stored.release
+        ring = rings.get(release.site_id)
+        if ring is None:
+            raise SignatureError(f"{store.path}: stored release of site {release.site_id!r} has no enrolled key")
+        try:
+            release.verify(ring, f"{store.path}: stored release of site {release.site_id}")
+        except SignatureError as exc:
+            raise SignatureError(f"{exc}; the store was altered after ingest, so nothing is computed from it") from None
+    return releases
 
 
 def release_sections(store: Store, study_id: str) -> dict[str, dict[str, Any]]:

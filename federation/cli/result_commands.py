@@ -21,7 +21,7 @@ def cmd_analyze(args: argparse.Namespace) -> int:
     from ..further_analysis import read_covariates
     from ..summary import format_summary
 
-    store = Store(args.store)
+    store = _existing_store(args.store)
     covariates = read_covariates(args.covariates) if args.covariates else None
     result = analyze(store, args.study_id, covariates=covariates)
     missing = enrolled_without_release(store, result["study_id"])
@@ -30,6 +30,13 @@ def cmd_analyze(args: argparse.Namespace) -> int:
     else:
         print(format_summary(result, release_sections(store, result["study_id"])))
     return _name_sites_without_release(missing, args.json)
+
+
+def _existing_store(path: Path) -> Store:
+    """The study store at ``path``; a mistyped path is an error, never a new empty store."""
+    if not Path(path).is_file():
+        raise ValidationToolError(f"{path}: study store not found")
+    return Store(path)
 
 
 def _name_sites_without_release(missing: list[str], as_json: bool) -> int:
@@ -121,9 +128,7 @@ def cmd_report(args: argparse.Namespace) -> int:
 def cmd_export(args: argparse.Namespace) -> int:
     from ..export import export_study  # scipy: imported here so `federation --help` starts fast
 
-    if not Path(args.store).is_file():
-        raise ValidationToolError(f"{args.store}: study store not found")
-    result = export_study(Store(args.store), args.out_dir, args.study_id, decisions=_decision_settings(args))
+    result = export_study(_existing_store(args.store), args.out_dir, args.study_id, decisions=_decision_settings(args))
     missing = result.enrolled_without_release
     if args.json:
         print_json(result.to_dict())

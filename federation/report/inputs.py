@@ -13,7 +13,8 @@ from dataclasses import dataclass
 from typing import Any
 
 from federation.analysis import analyze, choose_study
-from federation.protocol import Release, Request, SignatureError, ValidationToolError, sha256_hex
+from federation.analysis.results import verified_releases
+from federation.protocol import Release, Request, ValidationToolError, sha256_hex
 from federation.store import Store
 
 __all__ = ["ReleaseRecord", "ReportInputs", "gather"]
@@ -107,17 +108,9 @@ def gather(
     """
     study = choose_study(store, study_id)
     analysis = analyze(store, study, covariates=covariates)
-    rings = store.site_keys()
     records = []
-    for stored in store.releases(study):
+    for stored in verified_releases(store, study):  # (analyze checked them too: a report is never built otherwise)
         release = stored.release
-        ring = rings.get(release.site_id)
-        if ring is None:
-            raise SignatureError(f"{store.path}: stored release of site {release.site_id!r} has no enrolled key")
-        try:
-            release.verify(ring, f"{store.path}: stored release of site {release.site_id}")
-        except SignatureError as exc:
-            raise SignatureError(f"{exc}; the store was altered after ingest, so no report is built") from None
         policy = release.policy
         records.append(
             ReleaseRecord(

@@ -103,11 +103,22 @@ def test_tampered_release_is_refused_with_exit_2(demo_store: Path, tmp_path: Pat
     assert result.returncode == 2
     assert "signature does not verify" in result.stderr and len(result.stderr.strip().splitlines()) == 1
     assert not out.exists()
+    # analyze and export refuse the same store (found by following the coordinator's guide: they printed and
+    # wrote the altered count)
+    for command in (("analyze", "--json"), ("export", "--out-dir", str(tmp_path / "never"))):
+        result = federation(*command[:1], "--store", str(copy), *command[1:])
+        assert result.returncode == 2, command
+        assert "the store was altered after ingest" in result.stderr and not result.stdout.strip(), command
+    assert not (tmp_path / "never").exists()
 
 
 def test_bad_input_is_one_line_and_exit_1(demo_store: Path, tmp_path: Path) -> None:
     missing = federation("report", "--store", str(tmp_path / "absent.db"), "--out", str(tmp_path / "r.html"))
     assert missing.returncode == 1 and "study store not found" in missing.stderr
+    # analyze says the same, and leaves no empty store behind (it used to make one and say it held 0 studies)
+    missing = federation("analyze", "--store", str(tmp_path / "absent.db"))
+    assert missing.returncode == 1 and "study store not found" in missing.stderr
+    assert not (tmp_path / "absent.db").exists()
     assert not (tmp_path / "absent.db").exists()  # the report does not create an empty store
     unknown = federation("report", "--store", str(demo_store), "--study-id", "nope", "--out", str(tmp_path / "r.html"))
     assert unknown.returncode == 1 and "no study 'nope'" in unknown.stderr
