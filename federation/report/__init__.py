@@ -146,7 +146,11 @@ def build_report(
         html=html,
         study_id=inputs.study_id,
         sites=tuple(s["site_id"] for s in analysis["sites"]),
-        sites_pooled=tuple(analysis["pooled"].get("sites_pooled", [])),
+        # the sites behind a pooled estimate: none when the headline model could not be fitted (its sites_pooled
+        # then lists the sites fit for pooling, which were too few)
+        sites_pooled=tuple(analysis["pooled"].get("sites_pooled", []))
+        if analysis["pooled"].get("sensitivity") is not None
+        else (),
         enrolled_without_release=inputs.enrolled_without_release,
         sections=tuple(anchor for anchor, _, _ in sections),
     )

@@ -49,14 +49,35 @@ KNOWN = {
 KNOWN.update(FURTHER_SECTIONS)
 # Results the analysis files under another name than the analysis a request names.
 SECTION_ALIASES = {"roc": ("discrimination",)}
-SITE_CORE = {"site_id", "threshold", "tp", "fp", "fn", "tn", "suppressed", "sensitivity", "specificity", "flow"}
+# Keys the summary, the flow and the methods show already: no section of their own (found by following the
+# coordinator's guide: the headline model's keys and the sites' cut-backs each got a section headed by the key).
+SITE_CORE = {
+    "site_id",
+    "threshold",
+    "tp",
+    "fp",
+    "fn",
+    "tn",
+    "suppressed",
+    "sensitivity",
+    "specificity",
+    "flow",
+    "cut_back",
+}
 POOLED_CORE = {
     "method",
+    "model",
     "sites_pooled",
     "sites_not_pooled",
     "continuity_corrected_sites",
+    "censored_sites",
     "sensitivity",
     "specificity",
+    "tau_logit_sensitivity",
+    "tau_logit_specificity",
+    "correlation",
+    "not_estimable",
+    "sensitivity_analyses",
     "note",
 }
 TOP_CORE = {"study_id", "sites", "pooled"}

@@ -47,6 +47,19 @@ def _interval(pooled: dict[str, Any], name: str) -> str:
     return text
 
 
+def _traced_interval(pooled: dict[str, Any], name: str) -> tuple[str, str, str] | None:
+    """A pooled quantity's estimate and 95% interval (a between-site SD, a correlation) to three decimals, each
+    traced to its place in the analysis JSON; None when any of the three is missing."""
+    entry = pooled.get(name) if isinstance(pooled.get(name), dict) else {}
+    keys = ("estimate", "ci_low", "ci_high")
+    if any(number(entry.get(k)) is None for k in keys):
+        return None
+    estimate, ci_low, ci_high = (
+        traced(entry[k], f"pooled.{name}.{k}", f"{entry[k]:.3f}".replace("-", "−")) for k in keys
+    )
+    return estimate, ci_low, ci_high
+
+
 def heterogeneity_words(analysis: dict[str, Any], name: str, label: str) -> str:
     """One or two plain sentences on how much ``name`` differs between sites.
 
@@ -76,6 +89,12 @@ def heterogeneity_words(analysis: dict[str, Any], name: str, label: str) -> str:
     elif tau2 is not None:  # the binomial headline model has a between-site variance but no I²
         tau = traced(pooled[f"tau2_logit_{name}"], f"pooled.tau2_logit_{name}", f"{tau2:.3f}")
         sentences.append(f"Between sites, {label.lower()} varied with τ² {tau} on the log-odds scale.")
+    spread = _traced_interval(pooled, f"tau_logit_{name}")
+    if spread is not None:
+        sentences.append(
+            f"Its between-site standard deviation τ is {spread[0]} on the log-odds scale (95% CI {spread[1]} to "
+            f"{spread[2]})."
+        )
     entry = pooled.get(name) if isinstance(pooled.get(name), dict) else {}
     if number(entry.get("pi_low")) is not None and number(entry.get("pi_high")) is not None:
         sentences.append(
@@ -230,15 +249,22 @@ def summary_section(inputs: ReportInputs) -> str:
         reason = quote(note, "pooled.note") if isinstance(note, str) else "too few sites could be pooled"
         parts.append(
             f'<div class="note" id="no-pooled-estimate"><strong>No pooled estimate.</strong> {reason}. '
-            "A pooled estimate (and its diamond in the forest plots) needs at least two sites whose four-cell "
-            "tables (screen result by reference standard) were released in full; each site's own estimate below "
-            "stands on its own and should not be read as the accuracy to expect elsewhere.</div>"
+            "A pooled estimate (and its diamond in the forest plots) needs as many sites with a usable table as the "
+            "reason above says; each site's own estimate below stands on its own and should not be read as the "
+            "accuracy to expect elsewhere.</div>"
         )
     else:
         for name, label, _ in MEASURES:
             words = heterogeneity_words(analysis, name, label)
             if words:
                 parts.append(f"<p>{words}</p>")
+        correlation = _traced_interval(pooled, "correlation")
+        if correlation is not None:
+            parts.append(
+                "<p>Across sites, the logits of sensitivity and specificity had a correlation of "
+                f"{correlation[0]} (95% CI {correlation[1]} to {correlation[2]}); a negative value is what a "
+                "threshold that differs between sites produces.</p>"
+            )
     has_pool = pooled.get("sensitivity") is not None
     parts.append(
         f"<p>{traced(n_pooled, 'pooled.sites_pooled#len', str(n_pooled))} of "

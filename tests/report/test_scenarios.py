@@ -32,7 +32,9 @@ def test_one_site_explains_instead_of_a_diamond(one_site_store: Path, tmp_path: 
     info = json.loads(result.stdout)
     analysis = analyze_json(one_site_store)
     assert len(info["sites"]) == 1 and len(info["enrolled_without_release"]) == 7
-    assert info["sites_pooled"] == analysis["pooled"]["sites_pooled"] and analysis["pooled"]["sensitivity"] is None
+    # nothing was pooled, so no site is named as pooled (the analysis lists the site fit for pooling, too few)
+    assert info["sites_pooled"] == [] and analysis["pooled"]["sensitivity"] is None
+    assert len(analysis["pooled"]["sites_pooled"]) == 1
 
     dom = parse(out.read_text(encoding="utf-8"))
     note = dom.find_id("no-pooled-estimate")
@@ -42,6 +44,8 @@ def test_one_site_explains_instead_of_a_diamond(one_site_store: Path, tmp_path: 
         "not estimable: 1 usable site(s); the bivariate random-effects model needs at least 4"
     )
     assert "too few to pool" in dom.find_id("summary").text()
+    # the note does not contradict its own reason (it said "at least two sites" under "needs at least 4")
+    assert "at least two sites" not in note.text()
     assert dom.find_id("pooled-sensitivity") is None  # no headline card for a pooled value
     figure = dom.find_id("fig-forest-sensitivity")
     assert figure is not None
@@ -140,3 +144,24 @@ def test_any_analysis_json_renders_as_escaped_html(value: object) -> None:
     assert "<b>" not in html  # text from the JSON is escaped, never markup
     tree = parse(f"<div>{html}</div>")
     assert tree.children  # parses as HTML
+
+
+def test_every_section_has_a_title_in_words_and_the_summary_gives_the_spread(
+    demo_store: Path, demo_report: Path
+) -> None:
+    """Found by following the coordinator's guide: the headline model's own keys (model, tau_logit_sensitivity,
+    correlation, sensitivity_analyses ...) and the sites' cut-backs each got a section headed by the bare key,
+    saying only "Results the analysis holds under this name". They are shown where they belong; the between-site
+    SDs and the correlation, with their intervals, are now in the summary."""
+    dom = parse(demo_report.read_text(encoding="utf-8"))
+    titles = [" ".join(h.text().split()) for h in dom.iter("h2")]
+    assert titles and all(t[0].isupper() for t in titles), titles
+    assert "Results the analysis holds under this name" not in dom.text()
+    pooled = analyze_json(demo_store)["pooled"]
+    summary = " ".join(dom.find_id("summary").text().split())
+    for name in ("tau_logit_sensitivity", "tau_logit_specificity", "correlation"):
+        entry = pooled[name]
+        words = [f"{entry[k]:.3f}".replace("-", "−") for k in ("estimate", "ci_low", "ci_high")]
+        assert f"{words[0]} on the log-odds scale (95% CI {words[1]} to {words[2]}" in summary or (
+            name == "correlation" and f"correlation of {words[0]} (95% CI {words[1]} to {words[2]}" in summary
+        ), name

@@ -25,14 +25,18 @@ def resolve(analysis: dict[str, Any], key: str) -> Any:
 
 
 def expected_text(key: str, value: Any) -> str:
-    """How the summary writes a value: proportions as % to 0.1, I² to whole %, tau² to 3 places, counts whole."""
-    last = key.split(".")[-1]
+    """How the summary writes a value: proportions as % to 0.1, I² to whole %, tau² to 3 places, counts whole;
+    a between-site SD (tau) and the correlation of the logits to 3 places, with a minus sign."""
+    parts = key.split(".")
+    last = parts[-1]
     if key.endswith("#len") or isinstance(value, int):
         return str(value)
     if last.startswith("i2_"):
         return f"{100 * value:.0f}%"
     if last.startswith("tau2_"):
         return f"{value:.3f}"
+    if len(parts) > 1 and (parts[1].startswith("tau_logit_") or parts[1] == "correlation"):
+        return f"{value:.3f}".replace("-", "−")
     return f"{100 * value:.1f}%"
 
 
