@@ -330,7 +330,7 @@ def build_parser() -> argparse.ArgumentParser:
         "demo",
         help="run the invented demo consortium end to end",
         description="Generate an invented consortium of eight sites, run one study over it and write the table, "
-        "the store, every site folder and the report into --out. All data is invented.",
+        "the store, every site folder and the report into --out-dir. All data is invented.",
         epilog=_examples("federation demo --out-dir demo-output --engine offline"),
         formatter_class=argparse.RawDescriptionHelpFormatter,
     )

@@ -232,8 +232,19 @@ def decision_section(inputs: ReportInputs, settings: DecisionSettings | None = N
         f"<li><strong>{esc(POLICY)}</strong></li><li>{esc(result['caution'])}</li></ul></div>"
     )
     if not result["thresholds"]:
+        # what was released, and the reason as the analysis gives it (found by following the coordinator's guide:
+        # ROC bands were released at every site and the page still said "at one threshold only")
+        released = int(result.get("thresholds_released") or 0)
+        what = (
+            f"The sites released {released} threshold(s) between them "
+            f"({'the edges of their ROC bands' if result.get('source') == 'roc_bands' else 'their 2×2 tables'}), "
+            if released
+            else "The sites released no threshold beyond the primary table's, "
+        )
         return (
-            head + "<p>The sites released the 2×2 at one threshold only. To compare thresholds, ask for several "
-            "(<code>federation request new --thresholds 0.2,0.3,0.5</code>) or for ROC bands.</p></section>"
+            head + f"<p>{what}and no comparison of thresholds could be pooled: "
+            f"{esc(str(result['choice'].get('status')))}. Sites merge score bands that hold too few participants, "
+            "so their band edges rarely coincide; to compare thresholds, ask every site for the same ones "
+            "(<code>federation request new --thresholds 0.2,0.3,0.5</code>).</p></section>"
         )
     return head + _accuracy_part(result, rows, study) + _net_benefit_part(result, rows, study) + "</section>"

@@ -165,3 +165,25 @@ def test_every_section_has_a_title_in_words_and_the_summary_gives_the_spread(
         assert f"{words[0]} on the log-odds scale (95% CI {words[1]} to {words[2]}" in summary or (
             name == "correlation" and f"correlation of {words[0]} (95% CI {words[1]} to {words[2]}" in summary
         ), name
+
+
+def test_the_threshold_section_says_what_was_released_and_why_nothing_was_pooled(
+    demo_store: Path, demo_report: Path
+) -> None:
+    """Found by following the coordinator's guide: with ROC bands released at every site the section still said
+    the sites released the 2x2 "at one threshold only". It now counts what was released (the request's
+    thresholds, or failing two of them the ROC band edges: federation.decisions.threshold_tables) and gives the
+    analysis's own reason."""
+    from federation.decisions import threshold_tables
+    from federation.store import Store
+
+    store = Store(demo_store)
+    study = analyze_json(demo_store)["study_id"]
+    tables, source = threshold_tables(store.releases(study))
+    store.close()
+    dom = parse(demo_report.read_text(encoding="utf-8"))
+    text = " ".join(dom.find_id("threshold-choice").text().split())
+    assert "at one threshold only" not in text
+    where = "the edges of their ROC bands" if source == "roc_bands" else "their 2×2 tables"
+    assert f"The sites released {len(tables)} threshold(s) between them ({where})" in text
+    assert "no comparison of thresholds could be pooled: not estimable: fewer than 2 thresholds" in text
