@@ -90,6 +90,7 @@ def cmd_bundle_show(args: argparse.Namespace) -> int:
         print_json(info)
         return 0
     print(f"bundle      {args.bundle}")
+    print(f"name        {bundle.manifest.name}")
     print(f"sha256      {bundle.sha256}")
     print(f"signed by   {signer} ({'verified' if verified else 'NOT verified: give --trust'})")
     print(f"model       {bundle.manifest.model_format}, score = {bundle.manifest.score_kind}")
@@ -101,6 +102,12 @@ def cmd_bundle_show(args: argparse.Namespace) -> int:
             if feature.categories
             else f"{feature.type} in [{feature.minimum}, {feature.maximum}]"
         )
+        # what a site's reviewer sees too (site-agent model review): required or not, and what a missing value
+        # is scored as, which every bundle of a study must declare alike
+        if not feature.required:
+            rule += " (optional)"
+        if feature.missing_value is not None:
+            rule += f"; a missing value is scored as {feature.missing_value}"
         print(f"  {feature.name:<20} {rule}")
     return 0
 

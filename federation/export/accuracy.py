@@ -47,10 +47,15 @@ def _flow(context: ExportContext) -> Iterable[dict[str, Any]]:
         excluded = flow.get("excluded") if isinstance(flow.get("excluded"), dict) else {}
         values = {f"excluded_{reason}": _count(n) for reason, n in excluded.items()}
         total = None if any(v is None for v in values.values()) else sum(v for v in values.values() if v is not None)
-        withheld = [
-            name for name in ("read", "analysed", "analysed_positive", "analysed_negative") if flow.get(name) is None
-        ]
-        withheld += [f"excluded.{reason}" for reason, n in excluded.items() if n is None]
+        # named by this table's own columns (it said analysed_positive and excluded.<reason> once)
+        columns = {
+            "read": "read",
+            "analysed": "analysed",
+            "analysed_positive": "analysed_with_condition",
+            "analysed_negative": "analysed_without_condition",
+        }
+        withheld = [column for name, column in columns.items() if flow.get(name) is None]
+        withheld += [f"excluded_{reason}" for reason, n in excluded.items() if n is None]
         yield {
             "site_id": site["site_id"],
             "read": _count(flow.get("read")),

@@ -139,3 +139,27 @@ def test_a_missing_value_outside_the_features_domain_is_refused(entry, rule):
         Schema.from_dict({"features": [{"name": "age_months", **entry}]})
     inside = {**entry, "missing": 0}
     assert Schema.from_dict({"features": [{"name": "age_months", **inside}]}).features[0].missing_value == 0
+
+
+def test_bundle_show_says_what_a_sites_reviewer_sees(key, tmp_path, capsys):
+    """Found by following the coordinator's guide ("Sites see exactly this"): `bundle show` left out the model's
+    name, which inputs are optional and what a missing value is scored as, which `site-agent model review`
+    shows and which every bundle of a study must declare alike."""
+    from federation.cli import main as federation
+
+    schema = Schema.from_dict(
+        {
+            "features": [
+                {"name": "a", "type": "float", "min": 1, "max": 5},
+                {"name": "b", "type": "int", "min": 0, "max": 3, "required": False, "missing": 0},
+            ]
+        }
+    )
+    card = {"format": "scorecard", "kind": "points", "intercept": 0, "weights": {"a": 2, "b": 1}}
+    path = tmp_path / "m.bundle"
+    path.write_bytes(pack_model(json.dumps(card).encode(), "scorecard", schema, key, [3.0], name="card-7"))
+    capsys.readouterr()
+    assert federation(["bundle", "show", str(path)]) == 0
+    out = capsys.readouterr().out
+    assert "name        card-7" in out
+    assert "b                    int in [0.0, 3.0] (optional); a missing value is scored as 0" in out

@@ -283,6 +283,10 @@ def test_export_tables_parse_with_pandas_and_agree_with_the_flow(demo) -> None:
     assert (complete["tp"] + complete["fn"] == flow.loc[complete.index, "analysed_with_condition"]).all()
     known = flow.dropna(subset=["excluded_total", "analysed"])
     assert (known["read"] - known["excluded_total"] == known["analysed"]).all()
+    # each name in a flow row's withheld column is a column of the table, and that column is NA in the row
+    for site_id, row in flow.iterrows():
+        for name in str(row["withheld"]).split(";") if isinstance(row["withheld"], str) else []:
+            assert name in flow.columns and pd.isna(row[name]), (site_id, name)
     pooled = accuracy[accuracy["site_id"] == "pooled"]
     assert {"univariate DerSimonian-Laird (complete tables)", "bivariate glmm"} <= set(pooled["model"])
     subgroups = pd.read_csv(results / "subgroups.csv")
