@@ -184,14 +184,14 @@ def init_site(out: Path, site_id: str, trusted_keys: list[Path]) -> Path:
         raise ValidationToolError(f"{out}: already holds a site.toml; refusing to overwrite")
     if not trusted_keys:
         raise ValidationToolError("--trust: name at least one coordinator public key")
+    keys = [(path, load_public_key(path)) for path in trusted_keys]  # a bad key file stops before anything is made
     out.mkdir(parents=True, exist_ok=True)
     out.chmod(0o700)  # the folder holds the private keys, the ledger and the held releases: its owner only
     (out / "trusted").mkdir(exist_ok=True)
     (out / "releases").mkdir(exist_ok=True)
     (out / "held").mkdir(exist_ok=True)  # releases held for a person's approval
     pinned = []
-    for path in trusted_keys:
-        key = load_public_key(path)
+    for path, key in keys:
         target = out / "trusted" / f"coordinator-{key_id(key)}.pub"
         shutil.copyfile(path, target)
         pinned.append(f'"trusted/{target.name}"')

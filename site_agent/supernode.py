@@ -423,6 +423,11 @@ class SiteNode:
         """Keep the node up until :meth:`stop` (or a signal); return the process exit status for the CLI."""
         pause = self.settings.first_pause_s
         restarts = 0
+        if not self.site.allowed_fab_sha256:  # found by following the site-IT guide: it said nothing until a round
+            self.say(
+                f"site {self.site.site_id}: warning: site.toml [app] allowed_fab_sha256 is empty, so every round will "
+                "be refused; add the coordinator's app hash (`site-agent app hash FAB`) and join again"
+            )
         try:
             while not self._stopping.is_set():
                 started_at = time.monotonic()

@@ -122,6 +122,10 @@ def test_init_creates_every_folder_the_site_guide_lists(tmp_path: Path) -> None:
     # the folder holds the private keys and the ledger: its owner's alone (docs/deployment.md, section on the
     # site's host; found by following the site-IT guide, which never said to chmod it)
     assert site.stat().st_mode & 0o777 == 0o700
+    # a coordinator key that cannot be read stops init before it makes anything (it left a half-made folder)
+    other = tmp_path / "other"
+    args = ["init", "--site-id", "b", "--trust", str(tmp_path / "absent.pub"), "--site-dir", str(other)]
+    assert site_agent(args) != 0 and not other.exists()
 
 
 def test_readme_command_summary_names_only_options_that_exist() -> None:
