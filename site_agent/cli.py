@@ -10,6 +10,7 @@ from pathlib import Path
 
 from federation.protocol import ValidationToolError
 from federation.protocol.cli_support import ArgumentParser, option, print_json, run_cli, write_atomic
+from federation.protocol.cli_support import examples as _examples
 from federation.protocol.crashpoints import crash_point
 from federation.protocol.progress import records_progress
 from federation.protocol.words import CELLS, WITHHELD
@@ -235,10 +236,6 @@ never hold a value from a record.
 """
 
 
-def _examples(*lines: str) -> str:
-    return "example:\n" + "\n".join(f"  {line}" for line in lines)
-
-
 def build_parser() -> argparse.ArgumentParser:
     parser = ArgumentParser(
         prog="site-agent",
@@ -367,7 +364,12 @@ def build_parser() -> argparse.ArgumentParser:
     p.set_defaults(handler=cmd_join)
 
     app = sub.add_parser("app", help="the app bundle this site runs online").add_subparsers(metavar="ACTION")
-    p = app.add_parser("hash", help="build the app bundle from the installed agent and print its SHA-256")
+    p = app.add_parser(
+        "hash",
+        help="build the app bundle from the installed agent and print its SHA-256",
+        epilog=_examples("site-agent app hash --site-dir SITE   # then list the hash under [app] allowed_fab_sha256"),
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
     option(
         p,
         "--site-dir",
@@ -377,7 +379,7 @@ def build_parser() -> argparse.ArgumentParser:
         help="also say whether site.toml [app] allowed_fab_sha256 lists it",
     )
     p.add_argument("--out", type=Path, help="write the bundle (a zip holding only pyproject.toml) to review it")
-    p.add_argument("--json", action="store_true")
+    p.add_argument("--json", action="store_true", help="print the hash and whether site.toml lists it as JSON")
     p.set_defaults(handler=cmd_app_hash)
 
     led = sub.add_parser("ledger", help="inspect and verify the site's ledger").add_subparsers(metavar="ACTION")
@@ -404,7 +406,15 @@ def build_parser() -> argparse.ArgumentParser:
     )
     p.add_argument("--json", action="store_true", help="print the entry count, key id and last hash as JSON")
     p.set_defaults(handler=cmd_ledger_verify)
-    p = led.add_parser("show", help="list ledger entries and the head hash to write down")
+    p = led.add_parser(
+        "show",
+        help="list ledger entries and the head hash to write down",
+        description="List every ledger entry in one line each (what was asked, released, refused, approved, sent) "
+        "and end with the head hash: note it in the board's minutes; `ledger verify --expect-head` later tells "
+        "whether entries were cut off since.",
+        epilog=_examples("site-agent ledger show --site-dir SITE", "site-agent ledger show --site-dir SITE --json"),
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
     option(p, "--site-dir", "--site", dest="site_dir", type=Path, required=True, help="site folder")
     p.add_argument("--json", action="store_true", help="every entry in full as JSON")
     p.set_defaults(handler=cmd_ledger_show)

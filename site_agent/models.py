@@ -23,7 +23,7 @@ from pathlib import Path
 from typing import Any
 
 from federation.protocol import Bundle, ValidationToolError, load_bundle
-from federation.protocol.cli_support import print_json, write_atomic
+from federation.protocol.cli_support import examples, print_json, write_atomic
 from federation.protocol.errors import ModelNotApproved
 
 from . import ledger
@@ -283,18 +283,37 @@ def add_commands(sub: argparse._SubParsersAction) -> None:
         "request named before any decision is kept in SITEDIR/models/ and listed by `model review`.",
     )
     actions = group.add_subparsers(metavar="ACTION")
-    p = actions.add_parser("review", help="show models awaiting review, or one model (bundle file or id)")
+    p = actions.add_parser(
+        "review",
+        help="show models awaiting review, or one model (bundle file or id)",
+        epilog=examples(
+            "site-agent model review --site-dir SITE", "site-agent model review model.bundle --site-dir SITE"
+        ),
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
     p.add_argument("model", nargs="?", help="a bundle file, or a kept model's id (first hex digits of its SHA-256)")
     p.add_argument("--site-dir", type=Path, required=True, help="site folder")
     p.add_argument("--all", action="store_true", help="also list kept models already decided")
     p.add_argument("--json", action="store_true", help="machine-readable output")
     p.set_defaults(handler=cmd_model_review)
-    p = actions.add_parser("approve", help="approve a model: requests naming it may run (recorded in the ledger)")
+    p = actions.add_parser(
+        "approve",
+        help="approve a model: requests naming it may run (recorded in the ledger)",
+        epilog=examples('site-agent model approve 397b5ba0df4ba166 --site-dir SITE --by "Board member A"'),
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
     p.add_argument("model", help="a bundle file, or a kept model's id")
     p.add_argument("--site-dir", type=Path, required=True, help="site folder")
     p.add_argument("--by", required=True, help="name of the person approving")
     p.set_defaults(handler=cmd_model_approve)
-    p = actions.add_parser("reject", help="reject a model: requests naming it are refused (recorded in the ledger)")
+    p = actions.add_parser(
+        "reject",
+        help="reject a model for good: requests naming it are refused (recorded in the ledger)",
+        epilog=examples(
+            'site-agent model reject 397b5ba0df4ba166 --site-dir SITE --by NAME --reason "not the protocol\'s"'
+        ),
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
     p.add_argument("model", help="a bundle file, or a kept model's id")
     p.add_argument("--site-dir", type=Path, required=True, help="site folder")
     p.add_argument("--by", required=True, help="name of the person rejecting")

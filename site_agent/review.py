@@ -20,7 +20,7 @@ from pathlib import Path
 from typing import Any
 
 from federation.protocol import ValidationToolError, key_id, load_public_key
-from federation.protocol.cli_support import EXIT_PARTIAL, option, print_json, write_atomic
+from federation.protocol.cli_support import EXIT_PARTIAL, examples, option, print_json, write_atomic
 
 from . import approval, ledger, models, plain
 from .approval import Held
@@ -513,7 +513,12 @@ def cmd_ledger_show(args: argparse.Namespace) -> int:
 
 def add_commands(sub: argparse._SubParsersAction) -> None:
     """Register review, approve, reject and release on the ``site-agent`` parser."""
-    p = sub.add_parser("review", help="show releases held for approval (exactly what would leave, and why)")
+    p = sub.add_parser(
+        "review",
+        help="show releases held for approval (exactly what would leave, and why)",
+        epilog=examples("site-agent review --site-dir SITE", "site-agent review --site-dir SITE --html review.html"),
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
     option(p, "--site-dir", "--site", dest="site_dir", type=Path, required=True, help="site folder")
     p.add_argument("--html", type=Path, help="write one self-contained HTML page for an ethics board instead")
     p.add_argument("--all", action="store_true", help="also show releases already decided")
@@ -521,21 +526,40 @@ def add_commands(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--json", action="store_true")
     p.set_defaults(handler=cmd_review)
 
-    p = sub.add_parser("approve", help="approve a held release (recorded in the ledger)")
+    p = sub.add_parser(
+        "approve",
+        help="approve a held release (recorded in the ledger)",
+        epilog=examples(
+            'site-agent approve 3f5c0a1b2c3d4e5f --site-dir SITE --by "Board member A" --reason "as agreed"'
+        ),
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
     p.add_argument("id", help="held release id (from `site-agent review`)")
     option(p, "--site-dir", "--site", dest="site_dir", type=Path, required=True, help="site folder")
     p.add_argument("--by", required=True, help="name of the person approving")
     p.add_argument("--reason", help="why, in a sentence (kept in the site's ledger and shown on the review page)")
     p.set_defaults(handler=cmd_approve)
 
-    p = sub.add_parser("reject", help="reject a held release; it will never be sent")
+    p = sub.add_parser(
+        "reject",
+        help="reject a held release; it will never be sent",
+        epilog=examples(
+            'site-agent reject 3f5c0a1b2c3d4e5f --site-dir SITE --reason "not the agreed analyses" --by NAME'
+        ),
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
     p.add_argument("id", help="held release id (from `site-agent review`)")
     option(p, "--site-dir", "--site", dest="site_dir", type=Path, required=True, help="site folder")
     p.add_argument("--reason", required=True, help="why (kept in the site's ledger; never sent)")
     p.add_argument("--by", default="", help="name of the person rejecting (default: your login name)")
     p.set_defaults(handler=cmd_reject)
 
-    p = sub.add_parser("release", help="write an approved release to a file to hand to the coordinator")
+    p = sub.add_parser(
+        "release",
+        help="write an approved release to a file to hand to the coordinator",
+        epilog=examples("site-agent release 3f5c0a1b2c3d4e5f --site-dir SITE --out release.json"),
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
     p.add_argument("id", help="held release id")
     option(p, "--site-dir", "--site", dest="site_dir", type=Path, required=True, help="site folder")
     p.add_argument("--out", type=Path, required=True, help="release file to write")

@@ -145,3 +145,24 @@ def test_readme_command_summary_names_only_options_that_exist() -> None:
             assert option in texts[prog], (prog, option)
             checked += 1
     assert checked > 40
+
+
+def _leaves(parser, path=()):  # noqa: ANN001, ANN202
+    """Every command a person runs: (words, parser) for each sub-command without sub-commands of its own."""
+    import argparse
+
+    groups = [a for a in parser._actions if isinstance(a, argparse._SubParsersAction)]
+    if not groups:
+        yield path, parser
+        return
+    for group in groups:
+        for name, child in group.choices.items():
+            yield from _leaves(child, (*path, name))
+
+
+@pytest.mark.parametrize("build", [federation_parser, site_parser])
+def test_every_command_has_an_example_in_its_help(build) -> None:  # noqa: ANN001
+    """README and the site guide say every command has `--help` with an example; following the guides found a
+    dozen without (the board's review and approve, model review, ledger show, keys, serve ...)."""
+    missing = [" ".join(words) for words, parser in _leaves(build()) if "example:" not in parser.format_help()]
+    assert missing == []

@@ -7,6 +7,7 @@ from collections.abc import Sequence
 from pathlib import Path
 
 from federation.protocol.cli_support import ArgumentParser, option, run_cli
+from federation.protocol.cli_support import examples as _examples
 
 from .result_commands import add_decision_options, cmd_analyze, cmd_demo, cmd_export, cmd_plan, cmd_report
 from .study_commands import cmd_bundle_pack, cmd_bundle_show, cmd_enrol, cmd_ingest, cmd_keys_new, cmd_request_new
@@ -36,10 +37,6 @@ exit codes:
      cut short (continue with `federation run --resume`)
 every error is one line naming the file, field and rule broken; none carries a value from a record.
 """
-
-
-def _examples(*lines: str) -> str:
-    return "example:\n" + "\n".join(f"  {line}" for line in lines)
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -221,6 +218,8 @@ def build_parser() -> argparse.ArgumentParser:
         "built from the store alone and every stored release's signature is checked again. Exit codes: 0 "
         "written; 1 bad input (no store, no such study, no releases); 2 a stored release no longer verifies; "
         "3 written, but some enrolled sites have sent no release for this study.",
+        epilog=_examples("federation report --store study.db --out report.html --bootstrap 200"),
+        formatter_class=argparse.RawDescriptionHelpFormatter,
     )
     p.add_argument("--store", type=Path, required=True, help="study store (SQLite file made by the other commands)")
     p.add_argument("--study-id", help="which study (needed when the store holds several)")

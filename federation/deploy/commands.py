@@ -12,7 +12,7 @@ from pathlib import Path
 from typing import TYPE_CHECKING
 
 from federation.protocol import ValidationToolError
-from federation.protocol.cli_support import option
+from federation.protocol.cli_support import examples, option
 
 from .certs import SERVER_DAYS
 
@@ -113,7 +113,12 @@ def cmd_run(args: argparse.Namespace) -> int:
 
 def add_deploy_commands(sub: argparse._SubParsersAction) -> None:
     certs = sub.add_parser("certs", help="TLS certificates for the SuperLink").add_subparsers(metavar="ACTION")
-    p = certs.add_parser("new", help="make a private CA (ca.crt, ca.key) and a server certificate (server.pem/.key)")
+    p = certs.add_parser(
+        "new",
+        help="make a private CA (ca.crt, ca.key) and a server certificate (server.pem/.key)",
+        epilog=examples("federation certs new --out-dir study/certs --name validation.example.org"),
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
     option(
         p, "--out-dir", "--out", dest="out_dir", type=Path, required=True, help="folder to write the four files into"
     )
@@ -126,7 +131,12 @@ def add_deploy_commands(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--json", action="store_true", help="print the four file paths as JSON")
     p.set_defaults(handler=cmd_certs_new)
 
-    p = sub.add_parser("serve", help="run the study's SuperLink (TLS, node authentication, no dependency installs)")
+    p = sub.add_parser(
+        "serve",
+        help="run the study's SuperLink (TLS, node authentication, no dependency installs)",
+        epilog=examples("federation serve --study-dir study --host 0.0.0.0 --port 8000"),
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
     option(
         p,
         "--study-dir",

@@ -43,6 +43,11 @@ def option(parser: argparse.ArgumentParser, name: str, *old: str, **kwargs: Any)
     return action
 
 
+def examples(*lines: str) -> str:
+    """A sub-command's ``--help`` epilog: one or more example command lines (with RawDescriptionHelpFormatter)."""
+    return "example:\n" + "\n".join(f"  {line}" for line in lines)
+
+
 def finish_parser(parser: argparse.ArgumentParser) -> argparse.ArgumentParser:
     """Every parser and sub-parser: hide old spellings in ``--help`` and name an option by its new spelling
     in error lines (``--site-dir``, never ``--site-dir/--site``)."""
