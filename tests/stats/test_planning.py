@@ -155,6 +155,17 @@ def test_multisite_width_matches_the_binomial_information() -> None:
     assert PlanResult.from_dict(plan.to_dict()) == plan
 
 
+@pytest.mark.parametrize("sites", [2, 3])
+def test_a_consortium_the_report_would_not_pool_is_not_pooled_in_the_plan(sites: int) -> None:
+    # Found by following the coordinator's guide: with 3 sites the plan showed widths and "5 of 5 fitted" while
+    # the report says "not estimable ... needs at least 4" (federation/stats/headline.py).
+    scenario = PlanScenario(0.85, 0.80, 0.30, 0.30, 0.3, 0.3, (800,) * sites)
+    plan = plan_consortium(scenario, simulations=3, seed=1)
+    assert plan.fitted == 0 and plan.sensitivity_ci.median is None
+    reason = "the report's headline model needs at least 4 sites"
+    assert plan.notes[0] == f"not fitted in 3 of 3 simulated consortia: {reason}"
+
+
 def test_small_sites_are_partly_withheld_and_still_pooled() -> None:
     # Prevalence 5% at 150 participants: about 7 with the condition, so FN (and often TP) fall below 10.
     scenario = PlanScenario(0.85, 0.80, 0.05, 0.05, 0.3, 0.3, (150,) * 4 + (1500,) * 2, min_cell_size=10)
