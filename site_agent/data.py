@@ -53,6 +53,9 @@ class PreparedChunk:
     columns: dict[str, np.ndarray] = field(default_factory=dict)  # every schema feature as the models see it
     reference2: np.ndarray | None = None  # int8: 1, 0, or -1 (missing); None when not mapped
     compare_scores: np.ndarray | None = None  # the comparison model's scores (paired requests)
+    # records each feature flagged, by reason (a record may be flagged by several): the site's own messages
+    # name the feature behind most exclusions; never released
+    flagged: Counter[tuple[str, str]] = field(default_factory=Counter)
 
     def __len__(self) -> int:
         return len(self.outcome)
@@ -183,9 +186,10 @@ def prepare_chunk(
         )
     # What the models see, one column a feature; column-major so that each feature is written contiguously.
     matrix = np.empty((n, len(schema.features)), dtype=np.float32, order="F")
+    flagged: Counter[tuple[str, str]] = Counter()
     for j, feature in enumerate(schema.features):
         fmap = mapping.features[feature.name]
-        matrix[:, j] = _feature(batch.column(fmap.column), feature, fmap, mapping, source, reasons)
+        matrix[:, j] = _feature(batch.column(fmap.column), feature, fmap, mapping, source, _Flags(reasons, flagged))
     excluded = np.zeros(n, dtype=bool)
     counts: Counter[str] = Counter()
     for reason in EXCLUSION_REASONS:  # the first reason that applies wins
@@ -208,6 +212,7 @@ def prepare_chunk(
         excluded=counts,
         columns=columns,
         reference2=None if reference2 is None else reference2[keep],
+        flagged=flagged,
     )
 
 
@@ -227,36 +232,48 @@ def _reference(column: pa.Array, ref: ReferenceMap, missing: frozenset[str], sou
     return result
 
 
+@dataclass
+class _Flags:
+    """The chunk's exclusion masks, and how many records each feature flagged for each reason."""
+
+    reasons: dict[str, np.ndarray]
+    flagged: Counter[tuple[str, str]]
+
+    def add(self, reason: str, feature: str, mask: np.ndarray) -> None:
+        self.reasons[reason] |= mask
+        self.flagged[(reason, feature)] += int(np.count_nonzero(mask))
+
+
 def _feature(
     column: pa.Array,
     feature: Feature,
     fmap: FeatureMap,
     mapping: Mapping,
     source: str,
-    reasons: dict[str, np.ndarray],
+    flags: _Flags,
 ) -> np.ndarray:
     where = f"{source}: column {fmap.column!r} (feature {feature.name})"
     if isinstance(column, pa.ChunkedArray):
         column = column.combine_chunks()
     if feature.type == "category":
         values, missing = _category(column, feature, fmap, mapping)
-        reasons["unknown_category"] |= ~missing & np.isnan(values)
+        flags.add("unknown_category", feature.name, ~missing & np.isnan(values))
     else:
         values, missing = _number(column, fmap, mapping, where)
         if fmap.multiply != 1.0:
             values = values * fmap.multiply
-        reasons["out_of_range"] |= ~missing & ~np.isfinite(values)
+        flags.add("out_of_range", feature.name, ~missing & ~np.isfinite(values))
         # Whole numbers already when the column holds integers, with no unit conversion and no codes.
         whole = pa.types.is_integer(column.type) and fmap.multiply == 1.0 and not fmap.codes
         if feature.type == "int" and not whole:
             if fmap.multiply != 1.0:  # a unit conversion: round to the schema's whole unit
                 values = np.round(values)
             with np.errstate(invalid="ignore"):
-                reasons["out_of_range"] |= ~missing & (np.abs(values - np.round(values)) > 1e-9)
+                flags.add("out_of_range", feature.name, ~missing & (np.abs(values - np.round(values)) > 1e-9))
         low = feature.minimum if feature.minimum is not None else -np.inf
         high = feature.maximum if feature.maximum is not None else np.inf
         with np.errstate(invalid="ignore"):
-            reasons["out_of_range"] |= ~missing & ((values < low) | (values > high))
+            flags.add("out_of_range", feature.name, ~missing & ((values < low) | (values > high)))
     if feature.missing_value is not None:  # the schema's missing-answer policy: score as a stated value
         fill = (
             float(feature.categories.index(feature.missing_value))
@@ -265,7 +282,7 @@ def _feature(
         )
         values = np.where(missing, fill, values)
     else:
-        reasons["missing_feature"] |= missing
+        flags.add("missing_feature", feature.name, missing)
     bad = ~np.isfinite(values)  # excluded records: any finite value will do, the models never see them
     return np.where(bad, 0.0, values) if bad.any() else values
 

@@ -328,10 +328,16 @@ def check_something_analysed(flow: Flow, mapping: Mapping, min_cell_size: int) -
     where = mapping.source
     if reason is None:
         raise DataValidationError(f"{where}: no record was read; nothing to analyse (check the data source)")
+    rule = EXCLUSION_RULES.get(reason, reason)
+    by_feature = {name: n for (why, name), n in flow.flagged.items() if why == reason and n}
+    if by_feature:  # name the feature (its mapping table) behind most of them, not [features.*]
+        name = max(sorted(by_feature), key=lambda f: by_feature[f])
+        column = mapping.features[name].column if name in mapping.features else name
+        rule = rule.replace("[features.*]", f"[features.{name}] (column {column!r})", 1)
     raise DataValidationError(
         f"{where}: fewer records were analysed than the minimum cell size, so nothing could be released; most were "
-        f"excluded as {reason}, by the rule {EXCLUSION_RULES.get(reason, reason)}. Fix the mapping and run "
-        "`site-agent check` again (nothing was signed)"
+        f"excluded as {reason}, by the rule {rule}. Fix the mapping and run `site-agent check` again (nothing was "
+        "signed)"
     )
 
 

@@ -274,6 +274,7 @@ def test_a_mapping_that_excludes_everyone_is_refused_before_signing(study, ready
     frame["mean_radius"] = -frame["mean_radius"]  # below the schema's min = 0 for every record
     frame.to_csv(data, index=False)
     assert site_agent([*check, "--data", str(data)]) == 1
-    assert "excluded as out_of_range, by the rule [features.*]: a value lies outside" in one_error_line(
-        capsys, "site-agent"
+    # the rule names the feature and its column (found by following the site-IT guide: it said [features.*])
+    assert "excluded as out_of_range, by the rule [features.mean_radius] (column 'mean_radius'): a value lies " in (
+        one_error_line(capsys, "site-agent")
     )

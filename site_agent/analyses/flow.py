@@ -21,10 +21,12 @@ class Flow:
         self.positive = 0
         self.negative = 0
         self.excluded: Counter[str] = Counter({reason: 0 for reason in reasons})
+        self.flagged: Counter[tuple[str, str]] = Counter()  # (reason, feature): for the site's own messages only
 
     def add(self, chunk: PreparedChunk, scores: np.ndarray) -> None:
         self.read += chunk.read
         self.excluded.update(chunk.excluded)
+        self.flagged.update(chunk.flagged)
         diseased = int(chunk.outcome.sum())
         self.positive += diseased
         self.negative += len(chunk.outcome) - diseased

@@ -119,7 +119,8 @@ def test_column_of_all_missing_values_stops_before_anything_is_signed(
     message = refused(
         capsys,
         check(site, str(tmp_path / "blank.csv"), cancer.mapping, "--json"),
-        "most were excluded as missing_feature, by the rule [features.*]: a required input's column is empty",
+        "most were excluded as missing_feature, by the rule [features.mean_texture] (column 'mean texture'): a "
+        "required input's column is empty",
     )
     assert "fewer records were analysed than the minimum cell size" in message and "569" not in message
 
