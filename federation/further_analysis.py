@@ -35,6 +35,7 @@ import numpy as np
 from threadpoolctl import threadpool_limits
 
 from federation.attempts import attempt as _attempt
+from federation.attempts import not_estimated
 from federation.attempts import not_estimated as _not_estimated
 from federation.labels import level_label
 from federation.protocol import ValidationToolError
@@ -181,6 +182,11 @@ def _margin(tables: Sequence[SiteTable]) -> dict[str, Any] | None:
 
 
 def _likelihood_ratios(pooled: dict[str, Any]) -> dict[str, Any] | None:
+    if pooled.get("sensitivity") is None:
+        # No headline (too few sites): no pooled ratio either, as a bivariate fit of two or three sites would
+        # be read as one (found by following the coordinator's guide: LR+ and DOR from two sites)
+        note = pooled.get("note")
+        return not_estimated(note if isinstance(note, str) and note else "not estimable: no pooled sensitivity")
     for key in BIVARIATE_PREFERENCE:
         fit = pooled.get(key)
         if not isinstance(fit, dict) or _number(fit.get("mean_logit_sensitivity")) is None:

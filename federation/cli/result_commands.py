@@ -21,8 +21,8 @@ def cmd_analyze(args: argparse.Namespace) -> int:
     from ..further_analysis import read_covariates
     from ..summary import format_summary
 
+    covariates = read_covariates(args.covariates) if args.covariates else None  # as report: the file first
     store = _existing_store(args.store)
-    covariates = read_covariates(args.covariates) if args.covariates else None
     result = analyze(store, args.study_id, covariates=covariates)
     missing = enrolled_without_release(store, result["study_id"])
     if args.json:

@@ -144,6 +144,15 @@ def test_likelihood_ratios_come_from_the_headline_bivariate_model(result: dict) 
     assert result["likelihood_ratios"]["diagnostic_odds_ratio"] == reference.diagnostic_odds_ratio.to_dict()
 
 
+def test_no_pooled_ratio_where_the_headline_is_not_estimable() -> None:
+    # Found by following the coordinator's guide: with three sites the headline said "not estimable" (it needs
+    # four: federation/stats/headline.py) while LR+, LR- and DOR came from a bivariate fit of two complete tables.
+    found = analyze_tables("study", TABLES[:3])
+    assert found["pooled"]["sensitivity"] is None
+    assert found["likelihood_ratios"] == {"status": "not estimated", "reason": found["pooled"]["note"]}
+    assert "needs at least 4" in found["pooled"]["note"]
+
+
 def test_deeks_influence_and_contrasts_are_the_stats_functions(result: dict) -> None:
     deeks = deeks_funnel_test(IDS, *([t.cells[c] for t in TABLES] for c in ("tp", "fp", "fn", "tn")))
     assert result["small_site_effects"]["test"] == deeks.test
