@@ -762,7 +762,9 @@ class Audit:
             if total - sum(rounded[g] for g in inside) > high:
                 continue  # even all of them together leave too many records
             # the same question comes back in every repair round and every cut-back attempt of a release
-            question = (f, total, signature, tuple(inside), tuple(rounded[g] for g in inside))
+            # (which of them the audited release shows is part of the question: a repair round withholds more)
+            shown = (own, *(g in self._suppressible for g in inside))
+            question = (f, total, signature, tuple(inside), tuple(rounded[g] for g in inside), shown)
             if question in self._union_answers:
                 chosen = self._union_answers[question]
             else:
