@@ -199,17 +199,6 @@ def _from_ledger(site: Site, held: Held) -> bytes:
     return str(details.get("release", "")).encode("utf-8")
 
 
-def held_facts(site: Site, held: Held) -> dict[str, Any]:
-    """The counts (with their definitions) behind a held release, as recorded in the ledger."""
-    facts = held_entry(site, held).get("facts", {})
-    return facts if isinstance(facts, dict) else {}
-
-
-def review_details(site: Site, held: Held) -> dict[str, Any]:
-    """What suppression did and the audit's result, as recorded in the ledger when the release was prepared."""
-    return held_entry(site, held).get("review", {}) or {}
-
-
 def _decide(site: Site, held_id: str, event: str, by: str, reason: str = "") -> Held:
     held = find(site, held_id)
     if held.state != "held":
