@@ -186,10 +186,10 @@ def prepare_chunk(
         )
     # What the models see, one column a feature; column-major so that each feature is written contiguously.
     matrix = np.empty((n, len(schema.features)), dtype=np.float32, order="F")
-    flagged: Counter[tuple[str, str]] = Counter()
+    flags = _Flags(reasons, Counter())
     for j, feature in enumerate(schema.features):
         fmap = mapping.features[feature.name]
-        matrix[:, j] = _feature(batch.column(fmap.column), feature, fmap, mapping, source, _Flags(reasons, flagged))
+        matrix[:, j] = _feature(batch.column(fmap.column), feature, fmap, mapping, source, flags)
     excluded = np.zeros(n, dtype=bool)
     counts: Counter[str] = Counter()
     for reason in EXCLUSION_REASONS:  # the first reason that applies wins
@@ -212,7 +212,7 @@ def prepare_chunk(
         excluded=counts,
         columns=columns,
         reference2=None if reference2 is None else reference2[keep],
-        flagged=flagged,
+        flagged=flags.flagged,
     )
 
 

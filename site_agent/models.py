@@ -24,7 +24,7 @@ from typing import Any
 
 from federation.protocol import Bundle, ValidationToolError, load_bundle
 from federation.protocol.cli_support import examples, print_json, write_atomic
-from federation.protocol.errors import ModelNotApproved
+from federation.protocol.errors import ModelNotApproved, ModelRejected
 
 from . import ledger
 from .checked_models import site_scorer
@@ -81,9 +81,7 @@ def require_approved(site: Site, bundle: Bundle, bundle_bytes: bytes, what: str 
         return
     short = bundle.sha256[:16]
     if current == "rejected":
-        refused = ModelNotApproved(f"{what}: model {short} was rejected by this site; it will not be run")
-        refused.rejected = True  # type: ignore[attr-defined]  # read by runner.refusal_reason
-        raise refused
+        raise ModelRejected(f"{what}: model {short} was rejected by this site; it will not be run")
     raise ModelNotApproved(
         f"{what}: model {short} is not approved by this site yet (policy require_model_approval); review it with "
         f"`site-agent model review {short} --site-dir {site.root}`, then `site-agent model approve {short} "

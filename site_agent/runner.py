@@ -29,7 +29,7 @@ from federation.protocol import (
 )
 from federation.protocol.cli_support import write_atomic
 from federation.protocol.crashpoints import crash_point
-from federation.protocol.errors import LimitReached, ModelNotApproved, ScoringError
+from federation.protocol.errors import LimitReached, ModelNotApproved, ModelRejected, ScoringError
 
 from . import approval, ledger, models
 from .analyses import Flow, build_analyses, collect_counts, combined_schema, tabulate
@@ -80,7 +80,7 @@ def refusal_reason(exc: BaseException, phase: str) -> tuple[str, str]:
     if isinstance(exc, LimitReached):
         return f"limit reached: {exc}", local
     if isinstance(exc, ModelNotApproved):
-        if getattr(exc, "rejected", False):
+        if isinstance(exc, ModelRejected):
             return "model not approved by the site: it rejected this model bundle", local
         return "model not approved by the site: it has not approved this model bundle yet", local
     if phase in ("verify", "model"):

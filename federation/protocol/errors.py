@@ -66,6 +66,10 @@ class ModelNotApproved(PolicyViolation):
     """The site's policy asks for its own approval of each model bundle, and this one has none yet."""
 
 
+class ModelRejected(ModelNotApproved):
+    """A person at the site rejected this model bundle (for good)."""
+
+
 # What travels to the coordinator when a site refuses a request: one of these, and, only for a refusal made
 # before any record was read (or by the disclosure audit, which names an analysis and a rule), our own
 # one-line message after a colon. See docs/formats.md, "Refusals".
