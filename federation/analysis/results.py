@@ -80,7 +80,18 @@ def analyze(
     ``covariates`` (optional) are coordinator-supplied site covariates for the meta-regression.
     """
     study = choose_study(store, study_id)
-    releases = verified_releases(store, study)
+    return analyze_releases(store, study, verified_releases(store, study), prevalence, covariates)
+
+
+def analyze_releases(
+    store: Store,
+    study: str,
+    releases: list[StoredRelease],
+    prevalence: float | None = None,
+    covariates: dict[str, dict[str, float | str]] | None = None,
+) -> dict[str, Any]:
+    """:func:`analyze` of releases already read and verified (:func:`verified_releases`), so that a caller
+    that also lists them (the report) computes from the same read of the store and checks each signature once."""
     if not releases:
         raise AnalysisError(f"{store.path}: study {study!r} has no ingested releases yet")
     # Every matrix here is tiny: OpenBLAS threads cost far more than they give (about 8x slower fits on a busy

@@ -1,8 +1,9 @@
 """Everything the report reads, gathered from the study store alone.
 
-The numbers come from :func:`federation.analysis.analyze` (the same call as ``federation analyze --json``);
-provenance comes from the stored releases, whose signatures are checked again against the keys enrolled in
-the store, so a report is never built from a release that was altered after ingest.
+The numbers come from the analysis ``federation analyze --json`` prints
+(:func:`federation.analysis.results.analyze_releases`), run on the same read of the stored releases that gives
+the provenance; their signatures are checked once, against the keys enrolled in the store, so a report is never
+built from a release that was altered after ingest.
 """
 
 from __future__ import annotations
@@ -12,8 +13,8 @@ import sqlite3
 from dataclasses import dataclass
 from typing import Any
 
-from federation.analysis import analyze, choose_study
-from federation.analysis.results import verified_releases
+from federation.analysis import choose_study
+from federation.analysis.results import analyze_releases, verified_releases
 from federation.protocol import Release, Request, ValidationToolError, sha256_hex
 from federation.store import Store
 
@@ -107,9 +108,10 @@ def gather(
         A stored release no longer verifies against its site's enrolled key (exit code 2).
     """
     study = choose_study(store, study_id)
-    analysis = analyze(store, study, covariates=covariates)
+    releases = verified_releases(store, study)
+    analysis = analyze_releases(store, study, releases, covariates=covariates)
     records = []
-    for stored in verified_releases(store, study):  # (analyze checked them too: a report is never built otherwise)
+    for stored in releases:
         release = stored.release
         policy = release.policy
         records.append(
