@@ -74,12 +74,7 @@ def cmd_run(args: argparse.Namespace) -> int:
     except AwaitingApproval as held:
         return review.print_held(held, args.site_dir)
     except ValidationToolError as exc:
-        sent = getattr(exc, "refusal", None)
-        if sent and sent != str(exc):  # the detail stays here; only the travelling line may be passed on
-            error = ValidationToolError(f"{exc} (tell the coordinator only: {sent})")
-            error.exit_code = exc.exit_code
-            raise error from None
-        raise
+        raise _for_this_terminal(exc, args) from None
     release = outcome.release
     if outcome.resent_at:
         print(
@@ -99,6 +94,26 @@ def cmd_run(args: argparse.Namespace) -> int:
         shown = "; ".join(f"{CELLS.get(c, c)} {WITHHELD if v is None else v}" for c, v in table.cells.items())
         print(f"  threshold {table.threshold}: {shown}")
     return 0
+
+
+def _for_this_terminal(exc: ValidationToolError, args: argparse.Namespace) -> ValidationToolError:
+    """The refusal as the site's own terminal shows it: the --request path before a refusal of the request file
+    itself, and after the detail the line that may travel to the coordinator.
+
+    The path is added here, after the runner chose the travelling line and wrote the ledger: a folder layout can
+    name people, projects or hosts, so it stays on this terminal.
+    """
+    text = str(exc)
+    if getattr(exc, "input_file", None) == "request":
+        text = f"{args.request}: {text}"
+    sent = getattr(exc, "refusal", None)
+    if sent and sent != str(exc):  # the detail stays here; only the travelling line may be passed on
+        text = f"{text} (tell the coordinator only: {sent})"
+    if text == str(exc):
+        return exc
+    error = ValidationToolError(text)
+    error.exit_code = exc.exit_code
+    return error
 
 
 def _add_request_arguments(p: argparse.ArgumentParser) -> None:
@@ -142,16 +157,19 @@ def cmd_check(args: argparse.Namespace) -> int:
     from .runner import preview_request
 
     site = load_site(args.site_dir)
-    with records_progress() as progress:
-        preview = preview_request(
-            site,
-            _read(args.request, "request file"),
-            _read(args.bundle, "bundle file"),
-            source_from_args(site, args.data, args.table, args.query),
-            args.mapping,
-            compare_bundle_bytes=_read(args.compare, "comparison bundle") if args.compare else None,
-            progress=progress,
-        )
+    try:
+        with records_progress() as progress:
+            preview = preview_request(
+                site,
+                _read(args.request, "request file"),
+                _read(args.bundle, "bundle file"),
+                source_from_args(site, args.data, args.table, args.query),
+                args.mapping,
+                compare_bundle_bytes=_read(args.compare, "comparison bundle") if args.compare else None,
+                progress=progress,
+            )
+    except ValidationToolError as exc:
+        raise _for_this_terminal(exc, args) from None
     if args.json:
         print_json(check_report(preview))
     else:

@@ -100,8 +100,22 @@ def refusal_reason(exc: BaseException, phase: str) -> tuple[str, str]:
 
 def check_request(site: Site, request_bytes: bytes, bundle_bytes: bytes) -> tuple[Request, Bundle]:
     """Verify signatures, the bundle hash and the site policy; raise on any refusal."""
-    request = Request.from_bytes(request_bytes, site.trusted, "request")
+    request = read_request(site, request_bytes)
     return request, check_policy(site, request, request_bytes, bundle_bytes)
+
+
+def read_request(site: Site, request_bytes: bytes) -> Request:
+    """The request document, its coordinator's signature verified against the site's pinned keys.
+
+    A refusal of the document itself (not JSON, a field missing or of the wrong kind, a bad signature) is marked
+    ``input_file = "request"``: the command line then names the file it read, on the site's terminal only. The
+    runner sees bytes, never a path, so no path can reach the line that travels or the ledger.
+    """
+    try:
+        return Request.from_bytes(request_bytes, site.trusted, "request")
+    except ValidationToolError as exc:
+        exc.input_file = "request"  # type: ignore[attr-defined]  # read by the CLI
+        raise
 
 
 def check_policy(site: Site, request: Request, request_bytes: bytes, bundle_bytes: bytes) -> Bundle:
@@ -241,7 +255,7 @@ def run_request(
     holder: dict[str, Any] = {"phase": "verify"}
     request: Request | None = None
     try:
-        request = Request.from_bytes(request_bytes, site.trusted, "request")
+        request = read_request(site, request_bytes)
         answered = recorded_release(site, sha256_hex(request_bytes))
         if answered is not None:  # the same bytes asked again (a lost reply): the recorded release, not a new one
             copy = site.releases_dir / f"{answered.release.study_id}-{answered.release.request_id}.json"

@@ -278,3 +278,50 @@ def test_a_mapping_that_excludes_everyone_is_refused_before_signing(study, ready
     assert "excluded as out_of_range, by the rule [features.mean_radius] (column 'mean_radius'): a value lies " in (
         one_error_line(capsys, "site-agent")
     )
+
+
+def _drop_signature(text: str) -> str:
+    doc = json.loads(text)
+    del doc["signature"]
+    return json.dumps(doc)
+
+
+def _alter_study_id(text: str) -> str:
+    doc = json.loads(text)
+    doc["study_id"] = "bc-other"  # a signed field changed after signing
+    return json.dumps(doc)
+
+
+@pytest.mark.parametrize(
+    "change, expected",
+    [
+        (lambda text: text[: len(text) // 2], "request: not a JSON document"),
+        (_drop_signature, "request: missing field 'signature'"),
+        (_alter_study_id, "request: signature does not verify"),
+    ],
+    ids=["cut short", "no signature", "altered after signing"],
+)
+def test_a_bad_request_file_is_named_on_the_terminal_and_not_in_what_travels(
+    study, ready, tmp_path, capsys, change, expected
+):
+    """Issue: a refused request file said "request: ..." without saying which file. The site's terminal names the
+    --request path; the line that may travel (the ledger's reason, the "tell the coordinator only" part) does not:
+    a folder layout can name people, projects or hosts."""
+    _, request, site_dir = ready
+    folder = tmp_path / "exports-of-ward-seven"  # a path that must stay at the site
+    folder.mkdir()
+    bad = folder / "request-from-coordinator.json"
+    bad.write_text(change(request.read_text()))  # the request `federation request new` wrote, spoiled here
+    capsys.readouterr()
+    out = tmp_path / "release.json"
+    assert run_site(study, bad, site_dir, study.site_csvs[0], out) != 0
+    local, sent = one_error_line(capsys, "site-agent").split(" (tell the coordinator only: ")
+    assert f"{bad}: {expected}" in local
+    assert sent.startswith("request not accepted: ") and folder.name not in sent
+    refusal = ledger_events(site_dir)[-1]
+    assert refusal["event"] == "refusal" and refusal["details"]["reason"] == sent.removesuffix(")")
+    assert folder.name not in (site_dir / "ledger.jsonl").read_text()
+    assert not out.exists()
+    check = ["check", "--site-dir", str(site_dir), "--request", str(bad), "--bundle", str(study.bundle_path)]
+    assert site_agent([*check, "--data", str(study.site_csvs[0])]) != 0
+    assert f"{bad}: {expected}" in one_error_line(capsys, "site-agent")
