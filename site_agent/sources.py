@@ -123,9 +123,51 @@ def csv_header(path: Path) -> list[str]:
     header = [name.strip() for name in next(csv.reader([header_line]))]
     if len(header) == 1 and any(sep in header_line for sep in (";", "\t", "|")):
         raise DataValidationError(f"{source}: the header has one column; the file must be comma-separated")
-    if len(set(header)) != len(header):
-        raise DataValidationError(f"{source}: the header names a column twice; column names must be unique")
+    repeated = repeated_columns(header)
+    if repeated:
+        raise DataValidationError(f"{source}: the header names {repeated}; column names must be unique")
     return header
+
+
+def repeated_columns(names: Sequence[str], among: Collection[str] | None = None) -> str:
+    """Each column name that occurs more than once in ``names`` (only those in ``among``, when given), with
+    its positions counted from 1: ``"column 'age' twice (columns 2 and 5)"``; empty when none repeats.
+
+    A column's name is the export's header, not a record's value: naming it tells site IT what to fix, and
+    the line stays at the site (a data refusal travels as its category alone).
+    """
+    positions: dict[str, list[int]] = {}
+    for number, name in enumerate(names, start=1):
+        if among is None or name in among:
+            positions.setdefault(name, []).append(number)
+    repeated = [(name, found) for name, found in positions.items() if len(found) > 1]
+    parts = [
+        f"column {name!r}{' (no name)' if not name else ''} {_times(len(found))} (columns {_and(found)})"
+        for name, found in repeated[:5]
+    ]
+    if len(repeated) > 5:
+        parts.append(f"{len(repeated) - 5} more names more than once")
+    return "; ".join(parts)
+
+
+def absent_columns(wanted: Sequence[str], names: Collection[str], place: str) -> str:
+    """``"column 'age' named in the mapping is not in PLACE"`` for every wanted column missing from ``names``;
+    empty when none is missing."""
+    absent = [c for c in wanted if c not in names]
+    if not absent:
+        return ""
+    if len(absent) == 1:
+        return f"column {absent[0]!r} named in the mapping is not in {place}"
+    return f"columns {_and([repr(c) for c in absent])} named in the mapping are not in {place}"
+
+
+def _times(count: int) -> str:
+    return "twice" if count == 2 else f"{count} times"
+
+
+def _and(items: Sequence[object]) -> str:
+    words = [str(item) for item in items]
+    return words[0] if len(words) == 1 else f"{', '.join(words[:-1])} and {words[-1]}"
 
 
 def _csv_chunks(
@@ -134,9 +176,9 @@ def _csv_chunks(
     source = str(path)
     header = csv_header(path)
     wanted = list(header if columns is None else columns)
-    absent = [c for c in wanted if c not in header]
+    absent = absent_columns(wanted, header, "the file's header")
     if absent:
-        raise DataValidationError(f"{source}: column {absent[0]!r} named in the mapping is not in the file's header")
+        raise DataValidationError(f"{source}: {absent}")
     try:
         reader = pv.open_csv(
             path,
@@ -204,9 +246,13 @@ def _parquet_chunks(path: Path, columns: Sequence[str] | None, chunk_rows: int) 
         raise DataValidationError(f"{source}: not a readable Parquet file") from None
     names = parquet.schema_arrow.names
     wanted = list(names if columns is None else columns)
-    missing = [c for c in wanted if c not in names]
-    if missing:
-        raise DataValidationError(f"{source}: column {missing[0]!r} named in the mapping is not in the file")
+    # a Parquet file may name two columns alike; reading one of them would hand over both
+    repeated = repeated_columns(names, among=wanted)
+    if repeated:
+        raise DataValidationError(f"{source}: the file names {repeated}; the columns the mapping reads must be unique")
+    absent = absent_columns(wanted, names, "the file")
+    if absent:
+        raise DataValidationError(f"{source}: {absent}")
     if parquet.metadata.num_rows == 0:
         raise DataValidationError(f"{source}: the file has columns but no records")
     try:
@@ -412,20 +458,21 @@ def _sql_chunks(spec: SourceSpec, columns: Sequence[str] | None, chunk_rows: int
             if not present:
                 raise DataValidationError(f"{where}: the table does not exist or has no columns")
             wanted = list(present if columns is None else columns)
-            missing = [c for c in wanted if c not in present]
-            if missing:
-                raise DataValidationError(f"{where}: column {missing[0]!r} named in the mapping is not in the table")
+            absent = absent_columns(wanted, present, "the table")
+            if absent:
+                raise DataValidationError(f"{where}: {absent}")
             statement = sqlalchemy.select(*[sqlalchemy.column(c) for c in wanted]).select_from(
                 sqlalchemy.table(name, schema=schema or None)
             )
             result = streaming.execute(statement)
         keys = list(result.keys())
         wanted = list(keys if columns is None else columns)
-        missing = [c for c in wanted if c not in keys]
-        if missing:
-            raise DataValidationError(f"{where}: column {missing[0]!r} named in the mapping is not in the query result")
-        if len(set(keys)) != len(keys):
-            raise DataValidationError(f"{where}: the query returns a column name twice; name columns uniquely")
+        repeated = repeated_columns(keys)
+        if repeated:
+            raise DataValidationError(f"{where}: the query returns {repeated}; name columns uniquely")
+        absent = absent_columns(wanted, keys, "the query result")
+        if absent:
+            raise DataValidationError(f"{where}: {absent}")
         positions = [keys.index(c) for c in wanted]
         for partition in result.partitions(chunk_rows):
             rows += len(partition)

@@ -9,6 +9,8 @@ from pathlib import Path
 
 import numpy as np
 import pandas as pd
+import pyarrow as pa
+import pyarrow.parquet as pq
 import pytest
 
 from federation.modelpack import pack_model
@@ -220,3 +222,36 @@ def test_sources_refuse_what_is_not_a_source(tmp_path: Path) -> None:
         SourceSpec(url="sqlite:///x.db")
     with pytest.raises(DataValidationError, match="data file not found"):
         list(read_chunks(SourceSpec(path=tmp_path / "absent.csv"), None))
+
+
+def test_a_repeated_column_name_is_named_with_its_positions(site, cancer: Cancer, tmp_path: Path, capsys) -> None:
+    """Issue: "the header names a column twice" did not say which. A column's name is the export's header, not a
+    record's value, so the site's terminal names it (a data refusal travels as its category alone)."""
+    frame = cancer.frame.copy()  # scikit-learn's breast-cancer data, the site's own column names (conftest)
+    names = list(frame.columns)
+    names[names.index("worst texture")] = "mean texture"  # an export that labelled two columns alike
+    frame.columns = names
+    positions = [number for number, name in enumerate(names, start=1) if name == "mean texture"]
+    assert positions == [3, 23]  # record_id, then the 30 features in scikit-learn's order
+    path = tmp_path / "repeated.csv"
+    frame.to_csv(path, index=False)
+    message = refused(capsys, check(site, str(path), cancer.mapping), "column names must be unique")
+    assert f"{path}: the header names column 'mean texture' twice (columns 3 and 23)" in message
+    # Parquet: the columns the mapping reads (reading one of two alike would hand over both)
+    table = pa.Table.from_arrays([pa.array(frame.iloc[:, i]) for i in range(len(names))], names=names)
+    pq.write_table(table, tmp_path / "repeated.parquet")
+    message = refused(capsys, check(site, str(tmp_path / "repeated.parquet"), cancer.mapping), "must be unique")
+    assert "the file names column 'mean texture' twice (columns 3 and 23)" in message
+    # a query that returns a column twice
+    query = "SELECT *, diagnosis FROM records"
+    message = refused(capsys, check(site, f"sqlite:///{cancer.sqlite}", cancer.mapping, "--query", query), "twice")
+    assert "the query returns column 'diagnosis' twice (columns 32 and 34)" in message
+
+
+def test_every_mapped_column_missing_from_the_header_is_named(site, cancer: Cancer, tmp_path: Path, capsys) -> None:
+    frame = cancer.frame.drop(columns=["mean radius", "diagnosis"])  # scikit-learn's breast-cancer data (conftest)
+    path = tmp_path / "short.csv"
+    frame.to_csv(path, index=False)
+    message = refused(capsys, check(site, str(path), cancer.mapping), "are not in the file's header")
+    assert f"{path}: columns " in message
+    assert "'mean radius'" in message and "'diagnosis'" in message
