@@ -543,9 +543,16 @@ def _implicit_zeros(
     table and are returned False.
     """
     m, n = a.shape
-    asked = np.arange(n) if among is None else np.flatnonzero(among)
+    # An atom no equality names can be filled at will, and leaving its column out changes nothing else: a block
+    # joined by bound facts alone can hold thousands of such atoms around one equality.
+    named = np.flatnonzero(np.diff(a.tocsc().indptr) > 0)
+    asked = named if among is None else np.intersect1d(named, np.flatnonzero(among))
     if n == 0 or len(asked) == 0:
         return np.zeros(n, bool)
+    if len(named) < n:
+        implicit = np.zeros(n, bool)
+        implicit[named] = _implicit_zeros(a[:, named].tocsr(), b, homogeneous, np.isin(named, asked))
+        return implicit
     p = len(asked)
     pick = sparse.csr_matrix((np.ones(p), (np.arange(p), asked)), shape=(p, n))
     a_eq = sparse.hstack([a, sparse.csr_matrix((m, p)), sparse.csr_matrix(-b.reshape(-1, 1))]).tocsr()

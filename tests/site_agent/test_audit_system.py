@@ -153,6 +153,26 @@ def test_implicit_zeros_asked_about_some_atoms_agree_with_every_atom_asked(seed:
     assert not audit_system._implicit_zeros(a, b, among=np.zeros(n, bool)).any()
 
 
+def test_atoms_no_equality_names_are_never_implicit_zeros() -> None:
+    # A block joined by bound facts alone holds atoms no equality names; they can be filled at will and are
+    # left out of the program. Reference: scipy's linprog maximising each atom alone (unbounded, or above 0).
+    a, _ = _history_like(1, 10, 60)
+    rng = np.random.default_rng(1)  # a table that leaves 8 atoms empty in every solution
+    table = rng.integers(0, 3, a.shape[1]).astype(float) * (rng.random(a.shape[1]) < 0.6)  # many empty atoms
+    b = a @ table
+    wide = sparse.hstack([sparse.csr_matrix((a.shape[0], 4)), a, sparse.csr_matrix((a.shape[0], 3))]).tocsr()
+    n = wide.shape[1]
+    reference = np.zeros(n, bool)
+    for j in range(n):
+        top = linprog(-np.eye(n)[j], A_eq=wide.toarray(), b_eq=b, bounds=(0, None), method="highs")
+        reference[j] = top.status == 0 and -top.fun <= 1e-9
+    assert reference[4:-3].any() and not reference[:4].any() and not reference[-3:].any()
+    assert audit_system._implicit_zeros(wide, b).tolist() == reference.tolist()
+    among = np.zeros(n, bool)
+    among[[0, 5, 6, n - 1]] = True
+    assert audit_system._implicit_zeros(wide, b, among=among).tolist() == (reference & among).tolist()
+
+
 def test_without_scipy_s_highs_binding_every_program_is_solved_afresh(monkeypatch: pytest.MonkeyPatch) -> None:
     # The kept programs use scipy's private HiGHS binding; without it (an older scipy), or when it no longer has
     # what the audit calls, each program is solved by linprog and the intervals are the same.
