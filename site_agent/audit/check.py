@@ -43,6 +43,9 @@ FULL_MAX_ATOMS = 5_000
 UNION_MAX_ATOMS = 3_000
 UNION_MAX_BOXES = 1_500
 UNION_FAMILY_BOXES = 40  # a family with more boxes inside one F is not searched (the search is quadratic in them)
+# Where the full model has at most this many live atoms in its equations, every union of them is checked
+# (``_any_union_pinned``: 65,536 unions, one matrix product).
+ANY_UNION_MAX_ATOMS = 16
 
 
 @dataclass
@@ -417,6 +420,7 @@ class Audit:
             self._nested_pinned(system, unsafe, findings, seen_regions, key)
             if self.cells is None:
                 self._unions_pinned(system, unsafe, findings, seen_regions, key)
+                self._any_union_pinned(system, unsafe, released_zero, findings, seen_regions)
             if exact and self.cells is None and int((~system.zero).sum()) <= MILP_MAX_ATOMS:
                 self._whole_pinned(system, unsafe, released_zero, findings, seen_regions)
         if findings:
@@ -787,6 +791,65 @@ class Audit:
             names = tuple(self._box_label(b) for b in [f, *chosen][:6])
             candidates = self._candidates(system.combination(vector), system, vector)
             findings.append(Finding("difference", self.releases[self.current].label, names, candidates))
+
+    def _any_union_pinned(
+        self,
+        system: _System,
+        unsafe: Any,
+        released_zero: np.ndarray,
+        findings: list[Finding],
+        seen: set[frozenset[int]],
+    ) -> None:
+        """A small system (at most ``ANY_UNION_MAX_ATOMS`` live atoms in its equations): every union of atoms
+        the shown counts pin down to a value the policy would hide, whatever counts it takes. The searches above
+        look for an atom, a difference of two nested counts and a count less counts inside it; with five cells,
+        a+d less b+d plus b+e gave a+e = 3 while a and e each stayed open (threat model R14). Passed over, as by
+        those searches: a union that is a listed count, or the other cells of one table (withheld cells add up
+        to a shown total less its shown cells, each protected on its own), or that the earlier releases alone
+        pin, or that a recipient who keeps each "0, or at least k" open cannot pin. Only the smallest unions are
+        reported in a round (a larger one that still holds is found in the next)."""
+        live = ~system.zero & ~self.structural_zero & ~released_zero & ~system.free
+        atoms = np.flatnonzero(live & (system.atom_block >= 0))
+        if not 2 <= len(atoms) <= ANY_UNION_MAX_ATOMS:
+            return
+        # every non-empty union as a 0/1 row over these atoms; its distance from the row space, block by block
+        unions = ((np.arange(1, 2 ** len(atoms))[:, None] >> np.arange(len(atoms))) & 1).astype(float)
+        squared = unions.sum(axis=1)
+        for block in system.blocks:
+            columns = np.flatnonzero(np.isin(atoms, block.atoms))
+            if len(columns):
+                where = np.searchsorted(block.atoms, atoms[columns])
+                squared -= np.sum((unions[:, columns] @ block.basis[where]) ** 2, axis=1)
+        values = unions @ system.solution[atoms]
+        rounded = np.round(values)
+        small = ((rounded > 0) & (rounded < self._k)) | ((rounded == 0) & unsafe(0))
+        pinned = np.flatnonzero((squared < 1e-9) & small & (np.abs(values - rounded) < 1e-6))
+        listed = {self._live_region(j, live) for j in range(len(self.box_atoms))}
+        found: list[frozenset[int]] = []
+        for row in sorted(pinned.tolist(), key=lambda r: (unions[r].sum(), r)):
+            region = frozenset(atoms[unions[row] > 0].tolist())
+            if region in seen or region in listed or any(f < region for f in found) or self._cells_of_a_table(region, live):
+                continue
+            vector = np.zeros(self.incidence.shape[1])
+            vector[list(region)] = 1.0
+            value = int(rounded[row])
+            if self._opened(vector, 2, value, value) is not None:
+                continue
+            if self._history_system().residual(vector) < 1e-6:
+                continue  # the earlier releases alone pin it: public before this release
+            found.append(region)
+            seen.add(region)
+            findings.append(self._difference(system, vector))
+
+    def _cells_of_a_table(self, region: frozenset[int], live: np.ndarray) -> bool:
+        """Whether ``region`` is two or more cells of one table (sibling boxes, no two sharing an atom): a sum
+        of counts the release lists, each protected on its own (as :meth:`_rest_is_listed`)."""
+        self._families()
+        for _, members in self._sibling_families:
+            parts = [r for r in (self._live_region(m, live) for m in members) if r and r <= region]
+            if len(parts) >= 2 and sum(map(len, parts)) == len(region) and frozenset().union(*parts) == region:
+                return True
+        return False
 
     def _history_system(self) -> _System:
         """The system of the earlier releases alone (every count of the audited release withheld, with no rule's

@@ -222,7 +222,7 @@ def test_what_the_other_branch_lets_out_stays_protected() -> None:
         # the same boxes hold), each difference of two nested boxes, and each shown box less two or more shown
         # boxes inside it, no two overlapping (here every box is on one variable: siblings), unless what is left
         # is exactly other listed boxes (withheld cells adding up to a total less its shown cells, each protected
-        # on its own); other groups not (threat model R14)
+        # on its own)
         atoms: dict[tuple, set[str]] = {}
         for cell in FIVE:
             atoms.setdefault(tuple(cell in box for box in boxes), set()).add(cell)
@@ -236,11 +236,40 @@ def test_what_the_other_branch_lets_out_stays_protected() -> None:
                     listed = set().union(*(set(b) for b in boxes if set(b) <= set(f) and not set(b) & taken))
                     if sum(map(len, family)) == len(taken) and taken < set(f) and listed != set(f) - taken:
                         regions.append(set(f) - taken)
+        # and, these systems being small (five cells), every other union of cells but two or more boxes that
+        # share no cell (cells of one table: here every box is a set of values of one variable)
+        for size in range(1, 6):
+            for union in map(set, itertools.combinations(FIVE, size)):
+                parts = [set(b) for b in boxes if set(b) <= union]
+                cover = any(
+                    sum(map(len, family)) == len(union) and set().union(*family) == union
+                    for n in range(2, len(parts) + 1)
+                    for family in itertools.combinations(parts, n)
+                )
+                if not cover and union not in map(set, boxes):
+                    regions.append(union)
         for region in regions:
             seen = set(possible[:, [FIVE.index(c) for c in region]].sum(axis=1).tolist())
             assert not (len(seen) == 1 and 0 < next(iter(seen)) < 5), (values, boxes, region)
         checked += 1
     assert checked >= 300
+
+
+def test_no_union_of_cells_is_pinned_small_in_a_small_system() -> None:
+    # Five cells; a+d, b+d and b+e shown give a+e = (a+d) - (b+d) + (b+e) = 3 (k = 5), while a and e each stay
+    # open and no shown count lies inside another: none of the searches for an atom, a nested difference or a
+    # count less counts inside it finds it (threat model R14). Every union is now checked in a small system.
+    # Reference: enumeration of every table of the five cells (``tables``), the recipient's own arithmetic.
+    values = {"a": 1, "b": 7, "c": 1, "d": 5, "e": 2}
+    boxes = ["ad", "bd", "be", "c"]
+    counts = cells(values, boxes)
+    everything = tables(counts, dict(counts.values), {}, 5)
+    assert set(everything[:, [0, 4]].sum(axis=1).tolist()) == {3}  # shown as asked, a+e is known
+    protected = protect(counts, policy(k=5))
+    possible = tables(counts, protected.released, protected.rules, 5)
+    for region in (set(u) for r in range(1, 6) for u in itertools.combinations(FIVE, r)):
+        seen = set(possible[:, [FIVE.index(c) for c in region]].sum(axis=1).tolist())
+        assert not (len(seen) == 1 and 0 < next(iter(seen)) < 5), region
 
 
 # --- a recipient who reruns the site's algorithm (threat model R12) ------------------------------------------
