@@ -828,7 +828,9 @@ class Audit:
         found: list[frozenset[int]] = []
         for row in sorted(pinned.tolist(), key=lambda r: (unions[r].sum(), r)):
             region = frozenset(atoms[unions[row] > 0].tolist())
-            if region in seen or region in listed or any(f < region for f in found) or self._cells_of_a_table(region, live):
+            if region in seen or region in listed or any(f < region for f in found):
+                continue
+            if self._cells_of_a_table(region, live):
                 continue
             vector = np.zeros(self.incidence.shape[1])
             vector[list(region)] = 1.0
