@@ -34,6 +34,8 @@ for an ONNX graph, those a record or a random input reaches), so a score band is
    the box's own. A rest that is exactly the other cells of a chosen box's own table (withheld cells adding up
    to a total less its shown cells) is passed over: each of them is protected by check 1; so is a rest the
    earlier releases alone already pin.
+   In a small system (at most ``ANY_UNION_MAX_ATOMS`` live atoms in its equations) every union of atoms is
+   checked (``Audit._any_union_pinned``), with the same passes and two or more cells of one table passed over.
 
 **Scale: the grouped model.** A site's history crosses every variable's cuts with every other's (fine ROC
 score bands times age bands: 150,000 atoms after 200 releases of mixed analyses), though no count names a fine
