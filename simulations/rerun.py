@@ -28,6 +28,7 @@ import functools
 import random
 import sys
 import time
+from collections.abc import Callable, Iterator
 
 import numpy as np
 
@@ -111,34 +112,50 @@ def regions(releases: tuple[tuple[str, ...], ...]) -> list[str]:
 
 
 def pinned_small(tables: np.ndarray, names: list[str]) -> set[tuple[str, int]]:
+    """Each region of ``names`` that all of ``tables`` (at least one) give the same value in 1..k−1, with it."""
     out = set()
     for region in names:
-        values = set(tables[:, [CELLS.index(c) for c in region]].sum(axis=1).tolist())
-        if len(values) == 1 and 0 < (value := next(iter(values))) < K:
+        values = tables[:, [CELLS.index(c) for c in region]].sum(axis=1)
+        if (value := int(values.min())) == values.max() and 0 < value < K:
             out.add((region, value))
     return out
 
 
-def play(table: tuple[int, ...], releases: tuple[tuple[str, ...], ...], cap: int) -> dict | None:
-    """One scenario: None if skipped (the first release refused, or more than ``cap`` tables to rerun)."""
-    seen = observe(table, releases)
+def play(
+    table: tuple[int, ...],
+    releases: tuple[tuple[str, ...], ...],
+    cap: int | None,
+    algorithm: Callable[[tuple[int, ...], tuple[tuple[str, ...], ...]], tuple] = observe,
+) -> dict | None:
+    """One scenario: None if skipped (the first release refused, or more than ``cap`` tables to rerun).
+
+    ``algorithm`` is what the site runs and the recipient reruns (default: the site's ``protect``).
+    """
+    seen = algorithm(table, releases)
     if seen[0] == ("refused",):
         return None
     possible = stated(seen, releases)
-    if len(possible) > cap:
+    if cap is not None and len(possible) > cap:
         return None
     names = regions(releases)
     kept, channels = [], set()
     for row in possible:
-        other = observe(tuple(int(x) for x in row), releases)
+        other = algorithm(tuple(int(x) for x in row), releases)
         if other == seen:
             kept.append(row)
         elif other[0] != seen[0]:
             channels.add("first release")
         else:
             channels.add("refusal" if ("refused",) in (other[1], seen[1]) else "second release")
-    told = sorted(pinned_small(np.array(kept), names) - pinned_small(possible, names))
-    return {"tables": len(possible), "kept": len(kept), "told": told, "channels": sorted(channels) if told else []}
+    by_facts = pinned_small(possible, names)
+    told = sorted(pinned_small(np.array(kept), names) - by_facts)
+    return {
+        "tables": len(possible),
+        "kept": len(kept),
+        "told": told,
+        "channels": sorted(channels) if told else [],
+        "pinned_by_facts": sorted(by_facts),
+    }
 
 
 def _boxes(rng: random.Random, fewest: int, most: int) -> tuple[str, ...]:
@@ -146,15 +163,21 @@ def _boxes(rng: random.Random, fewest: int, most: int) -> tuple[str, ...]:
     return tuple(sorted({"".join(sorted(rng.sample(CELLS, rng.randint(1, 4)))) for _ in draws}))
 
 
-def campaign(seed: int, scenarios: int, cap: int, out=sys.stdout) -> dict:
+def draw_scenarios(seed: int, count: int) -> Iterator[tuple[tuple[int, ...], tuple[str, ...], tuple[str, ...]]]:
+    """The campaign's random requests: the cells' values, the first release's boxes, the second's."""
     rng = random.Random(seed)
-    checked = skipped = told = 0
-    channels: dict[str, int] = {}
-    started = time.perf_counter()
-    for _ in range(scenarios):
+    for _ in range(count):
         table = tuple(rng.choice([0, 0, 1, 2, 4, 5, 6, 7]) for _ in CELLS)
         first = _boxes(rng, 2, 5)
         second = _boxes(rng, 1, 3)
+        yield table, first, second
+
+
+def campaign(seed: int, scenarios: int, cap: int, out=sys.stdout) -> dict:
+    checked = skipped = told = 0
+    channels: dict[str, int] = {}
+    started = time.perf_counter()
+    for table, first, second in draw_scenarios(seed, scenarios):
         result = play(table, (first, second), cap)
         if result is None:
             skipped += 1
