@@ -84,7 +84,11 @@ def _sums(box: str) -> np.ndarray:
 
 
 def stated(seen: tuple, releases: tuple[tuple[str, ...], ...]) -> np.ndarray:
-    """Every table the released values and the rules' facts allow ("0, or at least k" as a disjunction)."""
+    """Every table the released values and the rules' facts allow ("0, or at least k" as a disjunction).
+
+    A count with neither a value nor a rule belongs to a release still being decided
+    (:mod:`simulations.simulatable`): primary suppression did not take it, so it is not small either.
+    """
     ok = np.ones(len(_GRID), bool)
     for boxes, release in zip(releases, seen, strict=True):
         if release == ("refused",):
@@ -95,7 +99,7 @@ def stated(seen: tuple, releases: tuple[tuple[str, ...], ...]) -> np.ndarray:
                 ok &= total == value
             elif rule == "minimum_cell_size":
                 ok &= (total >= 1) & (total <= K - 1)
-            elif rule in ("complementary", "audit"):
+            elif rule in ("complementary", "audit", None):
                 ok &= (total == 0) | (total >= K)
     return _GRID[ok]
 
