@@ -21,15 +21,19 @@ For each release, in turn:
    S is the set of tables consistent with everything public so far (the earlier releases' stated facts,
    steps 1 and 2, the counts of this release shown so far). For each value v the count takes over S: if
    the tables of S where it equals v pin a region (:func:`simulations.rerun.regions` of both releases,
-   those the campaign checks) to 1..k−1 that S left open, the count is withheld (``audit``, whose fact the
-   pattern already gives); otherwise it is shown and becomes public. It never refuses.
+   those the campaign checks; so the first release already knows the second request's regions, which a site
+   could not) to 1..k−1 that S left open, the count is withheld (``audit``, whose fact the pattern already
+   gives); otherwise it is shown and becomes public. It never refuses (but see ``refuse`` below).
 
 Each decision is a function of the public state alone (cached on it, as :func:`simulations.rerun.observe`
 caches on the table), so every table the stated facts allow gets the same decisions: the recipient who
 reruns it learns nothing beyond them. What it cannot undo is primary suppression's own fact: where the
-earlier releases and which counts are small already pin a region, the stated facts pin it too.
+earlier releases and which counts are small already pin a region, the stated facts pin it too. With
+``refuse`` it refuses such a release, and decides so before reading any of its values: whenever some
+pattern of small counts that the earlier releases allow would pin a region they leave open
+(:func:`primary_could_tell`).
 
-    python -m simulations.simulatable --seed 3 --scenarios 150
+    python -m simulations.simulatable --seed 3 --scenarios 150      (make audit-simulatable)
 
 The scenarios, the cap and the skip rule are those of ``make audit-campaign``, decided by the site's
 ``protect``, so that both protectors are compared on the same set.
@@ -81,11 +85,34 @@ def withholds(releases: Releases, public: tuple, name: str) -> bool:
 
 
 @functools.cache
-def observe(table: tuple[int, ...], releases: Releases) -> tuple:
-    """What the recipient sees of each release when the simulatable protector releases ``table``'s counts."""
+def primary_could_tell(releases: Releases, seen: tuple) -> bool:
+    """Whether some pattern of small counts in the next release, among those the releases ``seen`` so far
+    allow, would pin a region to 1..k−1 that they leave open: primary suppression's rules would then tell it.
+
+    Decided before any value of the release is read, so refusing on it tells nothing either.
+    """
+    tables = stated(seen, releases[: len(seen)])
+    names = regions(releases)
+    before = pinned_small(tables, names)
+    pattern = np.zeros(len(tables), np.int64)
+    for i, box in enumerate(releases[len(seen)]):
+        totals = tables[:, [CELLS.index(c) for c in box]].sum(axis=1)
+        pattern |= ((totals >= 1) & (totals < K)).astype(np.int64) << i
+    return any(pinned_small(tables[pattern == small], names) - before for small in np.unique(pattern))
+
+
+@functools.cache
+def observe(table: tuple[int, ...], releases: Releases, refuse: bool = False) -> tuple:
+    """What the recipient sees of each release when the simulatable protector releases ``table``'s counts.
+
+    It never refuses, unless ``refuse``: then it refuses a release where :func:`primary_could_tell`.
+    """
     values = dict(zip(CELLS, table, strict=True))
     seen: list[tuple] = []
     for boxes in releases:
+        if refuse and primary_could_tell(releases, tuple(seen)):
+            seen.append(("refused",))
+            continue
         counts = counts_of(values, boxes)
         _, withheld = suppress(counts.values, counts.relations, K)
         entries = {
@@ -107,13 +134,14 @@ def _release(names: Iterable[str], entries: dict[str, tuple]) -> tuple:
 
 
 def figures(seen: tuple, releases: Releases) -> dict:
-    """Counts shown in each release (a refused release shows none), and withheld counts other than small ones
-    whose value (not 0) the stated facts pin all the same (the site's audit keeps two values for each; this
+    """Per release, counts shown and whether it was refused; and withheld counts other than small ones whose
+    value (not 0) the stated facts pin all the same (the site's audit keeps two values for each; this
     protector does not try)."""
     possible = stated(seen, releases)
-    shown, known = [], 0
+    shown, refused, known = [], [], 0
     for boxes, release in zip(releases, seen, strict=True):
-        if release == ("refused",):
+        refused.append(int(release == ("refused",)))
+        if refused[-1]:
             shown.append(0)
             continue
         shown.append(sum(value is not None for _, value, _ in release))
@@ -122,45 +150,54 @@ def figures(seen: tuple, releases: Releases) -> dict:
                 box = boxes[int(name.rsplit("b", 1)[1])]
                 totals = possible[:, [CELLS.index(c) for c in box]].sum(axis=1)
                 known += int(totals.min() == totals.max() > 0)  # a withheld 0 needs no protection: zeros are shown
-    return {"shown": shown, "withheld_but_pinned": known}
+    return {"shown": shown, "refused": refused, "withheld_but_pinned": known}
 
 
-def compare(seed: int, scenarios: int, cap: int, out=sys.stdout) -> dict:
-    """The campaign's scenarios under the site's ``protect`` and under the simulatable protector."""
-    protectors = {"site": site_observe, "simulatable": observe}
+def compare(seed: int, scenarios: int, cap: int, refuse: bool = False, out=sys.stdout) -> dict:
+    """The campaign's scenarios under the site's ``protect`` and under the simulatable protector.
+
+    Which scenarios are skipped is decided by the site's ``protect``, as in the campaign; the simulatable
+    protector is played on the same set, however many tables its own facts leave to rerun.
+    """
+    protectors = {"site": site_observe, "simulatable": functools.partial(observe, refuse=refuse)}
     totals = {
-        label: {"told": 0, "pinned_by_facts": 0, "shown": [0, 0], "withheld_but_pinned": 0, "seconds": 0.0}
+        label: {
+            "told": 0,
+            "pinned_by_facts": 0,
+            "shown": [0, 0],
+            "refused": [0, 0],
+            "withheld_but_pinned": 0,
+            "seconds": 0.0,
+        }
         for label in protectors
     }
     against = {"fewer": 0, "same": 0, "more": 0}
     skipped = 0
     for table, first, second in draw_scenarios(seed, scenarios):
         releases = (first, second)
-        results = {}
-        for label, algorithm in protectors.items():
-            started = time.perf_counter()
-            # the site's protect decides which scenarios are skipped, as in the campaign; the simulatable one
-            # is then played on the same set, however many tables its facts leave
-            results[label] = play(table, releases, cap if label == "site" else None, algorithm)
-            totals[label]["seconds"] += time.perf_counter() - started
-            if results[label] is None:
-                break
-        if results["site"] is None:
+        started = time.perf_counter()
+        site = play(table, releases, cap)
+        totals["site"]["seconds"] += time.perf_counter() - started
+        if site is None:
             skipped += 1
             continue
+        started = time.perf_counter()
+        # a first release refused (only with ``refuse``): nothing released, nothing told
+        ours = play(table, releases, None, protectors["simulatable"]) or {"told": [], "pinned_by_facts": []}
+        totals["simulatable"]["seconds"] += time.perf_counter() - started
         shown = {}
-        for label, algorithm in protectors.items():
-            result, counted = results[label], figures(algorithm(table, releases), releases)
-            shown[label] = sum(counted["shown"])
-            total = totals[label]
+        for label, result in (("site", site), ("simulatable", ours)):
+            counted, total = figures(protectors[label](table, releases), releases), totals[label]
             total["told"] += bool(result["told"])
             total["pinned_by_facts"] += bool(result["pinned_by_facts"])
-            total["shown"] = [a + b for a, b in zip(total["shown"], counted["shown"], strict=True)]
+            for key in ("shown", "refused"):
+                total[key] = [a + b for a, b in zip(total[key], counted[key], strict=True)]
             total["withheld_but_pinned"] += counted["withheld_but_pinned"]
-        if results["simulatable"]["told"] or results["simulatable"]["pinned_by_facts"]:
+            shown[label] = sum(counted["shown"])
+        if ours["told"] or ours["pinned_by_facts"]:
             print(
-                f"simulatable: the rerun pins {results['simulatable']['told']}, the stated facts pin "
-                f"{results['simulatable']['pinned_by_facts']}: cells {table}, first {first}, second {second}",
+                f"simulatable: the rerun pins {ours['told']}, the stated facts pin {ours['pinned_by_facts']}: cells "
+                f"{table}, first {first}, second {second}",
                 file=out,
                 flush=True,
             )
@@ -169,13 +206,14 @@ def compare(seed: int, scenarios: int, cap: int, out=sys.stdout) -> dict:
     for total in totals.values():
         total["seconds"] = round(total["seconds"], 1)
     summary = {"seed": seed, "scenarios": scenarios, "checked": scenarios - skipped, "skipped": skipped}
-    summary |= {**totals, "simulatable_shows": against}
+    summary |= {"refuse": refuse, **totals, "simulatable_shows": against}
     for label, total in totals.items():
         print(
             f"seed {seed}, {label}: {summary['checked']} scenarios ({skipped} skipped); the rerun pins a count the "
             f"facts leave open in {total['told']}, the stated facts pin one in {total['pinned_by_facts']}; counts "
             f"shown {sum(total['shown'])} (first release {total['shown'][0]}, second {total['shown'][1]}); "
-            f"withheld counts the facts pin {total['withheld_but_pinned']}; {total['seconds']} s",
+            f"releases refused {total['refused'][0]} first, {total['refused'][1]} second; withheld counts the "
+            f"facts pin {total['withheld_but_pinned']}; {total['seconds']} s",
             file=out,
         )
     print(
@@ -196,9 +234,15 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--seed", type=int, default=3, help="random seed of the scenarios (default 3)")
     parser.add_argument("--scenarios", type=int, default=150, help="scenarios to draw (default 150)")
     parser.add_argument("--cap", type=int, default=300, help="skip a scenario with more tables to rerun (default 300)")
+    parser.add_argument(
+        "--refuse",
+        action="store_true",
+        help="let the simulatable protector refuse a release when primary suppression's rules alone could pin a "
+        "small count (decided before any value of the release is read)",
+    )
     parser.add_argument("--json", action="store_true", help="print the summary as JSON after the lines")
     args = parser.parse_args(argv)
-    summary = compare(args.seed, args.scenarios, args.cap)
+    summary = compare(args.seed, args.scenarios, args.cap, args.refuse)
     if args.json:
         print(json.dumps(summary))
     return 0
