@@ -44,7 +44,7 @@ UNION_MAX_ATOMS = 3_000
 UNION_MAX_BOXES = 1_500
 UNION_FAMILY_BOXES = 40  # a family with more boxes inside one F is not searched (the search is quadratic in them)
 # Where the full model has at most this many live atoms in its equations, every union of them is checked
-# (``_any_union_pinned``: 65,536 unions, one matrix product).
+# (``_any_union_pinned``: 65,535 unions, one matrix product).
 ANY_UNION_MAX_ATOMS = 16
 
 
