@@ -5,8 +5,9 @@ from __future__ import annotations
 import argparse
 import json
 import sys
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from pathlib import Path
+from typing import Any, TypeVar
 
 from federation.protocol import ValidationToolError
 from federation.protocol.cli_support import ArgumentParser, option, print_json, run_cli, write_atomic
@@ -17,6 +18,8 @@ from federation.protocol.words import CELLS, WITHHELD
 
 from . import models, review
 from .config import init_site, load_site
+
+T = TypeVar("T")
 
 
 def _read(path: Path, what: str) -> bytes:
@@ -61,20 +64,9 @@ def cmd_run(args: argparse.Namespace) -> int:
 
     site = load_site(args.site_dir)
     try:
-        with records_progress() as progress:  # a bar on a terminal only; nothing when piped
-            outcome = run_request(
-                site,
-                _read(args.request, "request file"),
-                _read(args.bundle, "bundle file"),
-                source_from_args(site, args.data, args.table, args.query),
-                args.mapping,
-                compare_bundle_bytes=_read(args.compare, "comparison bundle") if args.compare else None,
-                progress=progress,
-            )
+        outcome = _answer(run_request, site, args, source_from_args(site, args.data, args.table, args.query))
     except AwaitingApproval as held:
         return review.print_held(held, args.site_dir)
-    except ValidationToolError as exc:
-        raise _for_this_terminal(exc, args) from None
     release = outcome.release
     if outcome.resent_at:
         print(
@@ -94,6 +86,29 @@ def cmd_run(args: argparse.Namespace) -> int:
         shown = "; ".join(f"{CELLS.get(c, c)} {WITHHELD if v is None else v}" for c, v in table.cells.items())
         print(f"  threshold {table.threshold}: {shown}")
     return 0
+
+
+def _answer(answer: Callable[..., T], site: Any, args: argparse.Namespace, source: Any) -> T:
+    """``answer`` (``run_request`` or ``preview_request``) on the files the command line names, with a progress
+    bar on a terminal only (nothing when piped); a refusal raised as this terminal shows it
+    (:func:`_for_this_terminal`), a release held for approval as it is."""
+    from .approval import AwaitingApproval
+
+    try:
+        with records_progress() as progress:
+            return answer(
+                site,
+                _read(args.request, "request file"),
+                _read(args.bundle, "bundle file"),
+                source,
+                args.mapping,
+                compare_bundle_bytes=_read(args.compare, "comparison bundle") if args.compare else None,
+                progress=progress,
+            )
+    except AwaitingApproval:
+        raise
+    except ValidationToolError as exc:
+        raise _for_this_terminal(exc, args) from None
 
 
 def _for_this_terminal(exc: ValidationToolError, args: argparse.Namespace) -> ValidationToolError:
@@ -157,19 +172,7 @@ def cmd_check(args: argparse.Namespace) -> int:
     from .runner import preview_request
 
     site = load_site(args.site_dir)
-    try:
-        with records_progress() as progress:
-            preview = preview_request(
-                site,
-                _read(args.request, "request file"),
-                _read(args.bundle, "bundle file"),
-                source_from_args(site, args.data, args.table, args.query),
-                args.mapping,
-                compare_bundle_bytes=_read(args.compare, "comparison bundle") if args.compare else None,
-                progress=progress,
-            )
-    except ValidationToolError as exc:
-        raise _for_this_terminal(exc, args) from None
+    preview = _answer(preview_request, site, args, source_from_args(site, args.data, args.table, args.query))
     if args.json:
         print_json(check_report(preview))
     else:
