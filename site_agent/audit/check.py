@@ -812,18 +812,15 @@ class Audit:
         atoms = np.flatnonzero(live & (system.atom_block >= 0))
         if not 2 <= len(atoms) <= ANY_UNION_MAX_ATOMS:
             return
-        # every non-empty union as a 0/1 row over these atoms; its distance from the row space, block by block
+        # every non-empty union as a 0/1 row over these atoms, and its distance from the row space
         unions = ((np.arange(1, 2 ** len(atoms))[:, None] >> np.arange(len(atoms))) & 1).astype(float)
-        squared = unions.sum(axis=1)
-        for block in system.blocks:
-            columns = np.flatnonzero(np.isin(atoms, block.atoms))
-            if len(columns):
-                where = np.searchsorted(block.atoms, atoms[columns])
-                squared -= np.sum((unions[:, columns] @ block.basis[where]) ** 2, axis=1)
+        squared = system.residuals(unions, atoms) ** 2
         values = unions @ system.solution[atoms]
         rounded = np.round(values)
         small = ((rounded > 0) & (rounded < self._k)) | ((rounded == 0) & unsafe(0))
         pinned = np.flatnonzero((squared < 1e-9) & small & (np.abs(values - rounded) < 1e-6))
+        if len(pinned) == 0:
+            return
         listed = {self._live_region(j, live) for j in range(len(self.box_atoms))}
         found: list[frozenset[int]] = []
         for row in sorted(pinned.tolist(), key=lambda r: (unions[r].sum(), r)):

@@ -78,16 +78,24 @@ class _System:
             total += float(v @ v - np.sum((block.basis.T @ v) ** 2))
         return math.sqrt(max(total, 0.0))
 
-    def residuals(self, vectors: np.ndarray) -> np.ndarray:
-        """:meth:`residual` of many vectors (rows) at once."""
+    def residuals(self, vectors: np.ndarray, atoms: np.ndarray | None = None) -> np.ndarray:
+        """:meth:`residual` of many vectors (rows) at once. ``atoms`` (sorted): the vectors' columns are these
+        atoms only, every other atom 0 (many vectors over a few atoms need not be widened to every atom)."""
         if len(vectors) == 0:
             return np.zeros(0)
         squared = np.zeros(len(vectors))
         for block in self.blocks:
-            sub = vectors[:, block.atoms]
-            squared += np.einsum("ij,ij->i", sub, sub) - np.sum((sub @ block.basis) ** 2, axis=1)
+            if atoms is None:
+                sub, basis = vectors[:, block.atoms], block.basis
+            else:
+                positions = np.flatnonzero(np.isin(atoms, block.atoms))
+                if len(positions) == 0:
+                    continue
+                sub, basis = vectors[:, positions], block.basis[np.searchsorted(block.atoms, atoms[positions])]
+            squared += np.einsum("ij,ij->i", sub, sub) - np.sum((sub @ basis) ** 2, axis=1)
         out = np.sqrt(np.maximum(squared, 0.0))
-        out[np.any(vectors[:, self.free] != 0, axis=1)] = math.inf
+        free = self.free if atoms is None else self.free[atoms]
+        out[np.any(vectors[:, free] != 0, axis=1)] = math.inf
         return out
 
     def value(self, vector: np.ndarray) -> float:
