@@ -77,11 +77,8 @@ def withholds(releases: Releases, public: tuple, name: str) -> bool:
     release's entries so far ((name, value, rule); a count not yet decided has neither value nor rule).
     """
     tables = stated(public, releases[: len(public)])
-    names = regions(releases)
-    before = pinned_small(tables, names)
     box = releases[len(public) - 1][int(name.rsplit("b", 1)[1])]
-    totals = tables[:, [CELLS.index(c) for c in box]].sum(axis=1)
-    return any(pinned_small(tables[totals == value], names) - before for value in np.unique(totals))
+    return _some_part_pins(tables, regions(releases), tables[:, [CELLS.index(c) for c in box]].sum(axis=1))
 
 
 @functools.cache
@@ -92,13 +89,18 @@ def primary_could_tell(releases: Releases, seen: tuple) -> bool:
     Decided before any value of the release is read, so refusing on it tells nothing either.
     """
     tables = stated(seen, releases[: len(seen)])
-    names = regions(releases)
-    before = pinned_small(tables, names)
     pattern = np.zeros(len(tables), np.int64)
     for i, box in enumerate(releases[len(seen)]):
         totals = tables[:, [CELLS.index(c) for c in box]].sum(axis=1)
         pattern |= ((totals >= 1) & (totals < K)).astype(np.int64) << i
-    return any(pinned_small(tables[pattern == small], names) - before for small in np.unique(pattern))
+    return _some_part_pins(tables, regions(releases), pattern)
+
+
+def _some_part_pins(tables: np.ndarray, names: list[str], key: np.ndarray) -> bool:
+    """Whether, with ``tables`` split by ``key`` (one value per table: what a decision would reveal), some part
+    pins a region of ``names`` to 1..k−1 that all of them leave open."""
+    before = pinned_small(tables, names)
+    return any(pinned_small(tables[key == value], names) - before for value in np.unique(key))
 
 
 @functools.cache
