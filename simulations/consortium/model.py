@@ -11,6 +11,8 @@ from sklearn.linear_model import LogisticRegression
 
 from .schema import FEATURES, LONG_ITEMS, MODEL_FEATURES, OUTCOME, SEX_CATEGORIES, SUBTYPES
 
+WEIGHT_DECIMALS = 6  # the frozen model's weights, as a paper would print them
+
 
 def model_inputs(frame: pd.DataFrame) -> np.ndarray:
     """The model-input matrix of a schema-terms frame: float32, schema order, categories as their codes.
@@ -32,12 +34,16 @@ def model_inputs(frame: pd.DataFrame) -> np.ndarray:
 
 def _fit_model(frame: pd.DataFrame) -> LogisticRegression:
     """Fit on the twelve screening inputs, then add ``subtype`` as a thirteenth input with weight zero."""
-    fitted = LogisticRegression(max_iter=10_000)  # lbfgs: deterministic
-    fitted.fit(model_inputs(frame)[:, : len(MODEL_FEATURES)], frame[OUTCOME].to_numpy(dtype=int))
-    model = LogisticRegression(max_iter=10_000)
+    # The same weights on every machine: lbfgs on float32 inputs stops at a point that moves in the third decimal
+    # with the CPU's BLAS kernels (and with it the small site's redraw and every table); Newton steps in float64
+    # converge to where kernels differ only around the twelfth decimal, and the weights are frozen at six.
+    fitted = LogisticRegression(solver="newton-cholesky", tol=1e-10, max_iter=100)
+    inputs = model_inputs(frame)[:, : len(MODEL_FEATURES)].astype(np.float64)
+    fitted.fit(inputs, frame[OUTCOME].to_numpy(dtype=int))
+    model = LogisticRegression()
     model.classes_ = fitted.classes_
-    model.coef_ = np.hstack([fitted.coef_, np.zeros((1, 1))])
-    model.intercept_ = fitted.intercept_.copy()
+    model.coef_ = np.round(np.hstack([fitted.coef_, np.zeros((1, 1))]), WEIGHT_DECIMALS)
+    model.intercept_ = np.round(fitted.intercept_, WEIGHT_DECIMALS)
     model.n_features_in_ = len(FEATURES)
     model.n_iter_ = fitted.n_iter_
     return model
