@@ -410,16 +410,35 @@ def test_runtime_port_is_loopback_only_and_refuses_calls_without_the_runtime_sec
 def test_a_site_whose_warm_process_dies_says_so_and_answers_cold(deployment: Deployment, first_round) -> None:
     site = "vellacombe-primary"  # a warm site that stays online for the tests after this one
     join_pid = deployment.fleet.procs[f"join-{site}"].pid
-    (warm,) = [p for p in children(join_pid) if "site_agent.warmstart serve" in cmdline(p)]
     log = deployment.sites[site] / "runtime" / "warm-start.log"
     copies = log.read_text().count("ClientApp copy started")
-    os.kill(warm, signal.SIGKILL)
-    said = "the warm process exited (status -9) within a minute of starting; ClientApps start cold"
-    wait_until(lambda: said in deployment.fleet.log(f"join-{site}"), 30, "join to say the warm process is gone")
+
+    def warm_process() -> int | None:
+        found = [p for p in children(join_pid) if "site_agent.warmstart serve" in cmdline(p)]
+        assert len(found) <= 1
+        return found[0] if found else None
+
+    restarted = "the warm process exited (status -9); starting it again"
+    cold = "the warm process exited (status -9) within a minute of starting; ClientApps start cold"
+    first = warm_process()
+    assert first is not None
+    os.kill(first, signal.SIGKILL)
+    # How long the first warm process has lived depends on how fast the machine ran the tests before this one:
+    # past a minute, join starts it again (once); that second one, killed at once, is the one that leaves it cold.
+    said = wait_until(
+        lambda: next((m for m in (restarted, cold) if m in deployment.fleet.log(f"join-{site}")), None),
+        30,
+        "join to say the warm process is gone",
+    )
+    if said == restarted:
+        second = wait_until(lambda: warm_process() not in (None, first) and warm_process(), 30, "a new warm process")
+        os.kill(int(second), signal.SIGKILL)
+        wait_until(lambda: cold in deployment.fleet.log(f"join-{site}"), 30, "join to leave ClientApps cold")
+        assert deployment.fleet.log(f"join-{site}").count(restarted) == 1
     code, outcome = deployment.federation_run("--ping", "--deadline", "90")
     assert outcome["sites"][site]["status"] == "ready"  # answered by a cold start
     assert log.read_text().count("ClientApp copy started") == copies
-    assert not [p for p in children(join_pid) if "site_agent.warmstart serve" in cmdline(p)]  # not restarted
+    assert warm_process() is None  # not restarted
 
 
 def test_site_killed_mid_round_is_unreachable_and_round_completes(deployment: Deployment, first_round) -> None:
