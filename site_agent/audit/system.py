@@ -8,7 +8,6 @@ from dataclasses import dataclass
 
 import numpy as np
 from scipy import sparse
-from scipy.linalg import qr
 from scipy.optimize import Bounds, LinearConstraint, linprog, milp
 from scipy.sparse.csgraph import connected_components
 
@@ -425,16 +424,19 @@ def _build_system(
 
 
 _SKETCH_FROM = 2_000_000  # entries of a part's dense matrix (16 MB) above which its rows are chosen on a sketch
+_CHUNK = 128  # rows projected together by :func:`_first_independent` (one matrix product per chunk)
 
 
 def _independent_rows(a_live: sparse.csr_matrix, sketch: bool) -> np.ndarray:
-    """Positions of a linearly independent set of rows spanning the row space, preferring sparse rows (pivoted
-    QR on the rows scaled by 1/nnz), done per connected part of the system: a site's history grows the system,
-    not its parts. ``sketch``: a large part's QR (more than ``_SKETCH_FROM`` entries) runs on a Gaussian sketch
-    of the atoms (as many as the part's rows and a quarter more; each atom spread over four of them) instead of
-    every atom, which keeps the rows' linear dependences (almost surely) at a fraction of the cost; the caller
-    proves the choice. A small part gets the exact QR: the choice of rows steers which cells a repair withholds
-    (through the rows' weights), and the exact one prefers sparse rows by their true norms, not sketched ones."""
+    """Positions of a linearly independent set of rows spanning the row space, preferring sparse rows: per
+    connected part of the system (a site's history grows the system, not its parts), the rows taken by
+    increasing number of atoms (then position), each kept unless it is a combination of those kept before it
+    (:func:`_first_independent`). ``sketch``: a large part (more than ``_SKETCH_FROM`` entries) is judged on a
+    Gaussian sketch of its atoms (as many as the part's rows and a quarter more; each atom spread over four of
+    them) instead of every atom, which keeps the rows' linear dependences (almost surely) at a fraction of the
+    cost; the caller proves the choice. The choice steers which cells a repair withholds (through the rows'
+    weights), so it is a fixed order's, not a pivoted QR's: that one broke ties between rows of equal norm (the
+    cells of a table) by rounding, and so by the BLAS kernel."""
     m0 = a_live.shape[0]
     if m0 == 0:
         return np.zeros(0, np.int64)
@@ -444,9 +446,10 @@ def _independent_rows(a_live: sparse.csr_matrix, sketch: bool) -> np.ndarray:
     for label in np.unique(labels[:m0]):
         rows_here = np.flatnonzero(labels[:m0] == label)
         sub = a_live[rows_here]
+        rows_here = rows_here[np.lexsort((rows_here, np.diff(sub.indptr)))]  # sparse rows first, then by position
+        sub = a_live[rows_here]
         cols = np.unique(sub.indices)
-        scaled = sparse.diags(1.0 / np.diff(sub.indptr)) @ sub[:, cols]  # rows x atoms
-        m, n = scaled.shape
+        m, n = len(rows_here), len(cols)
         width = m + max(16, m // 4)
         if sketch and n > 2 * width and m * n > _SKETCH_FROM:
             # each atom adds a Gaussian multiple of its column to four random columns of the sketch
@@ -455,14 +458,41 @@ def _independent_rows(a_live: sparse.csr_matrix, sketch: bool) -> np.ndarray:
                 (rng.standard_normal(4 * n), (np.repeat(np.arange(n), 4), rng.integers(0, width, 4 * n))),
                 shape=(n, width),
             )
-            matrix = (scaled @ spread).T.toarray()
+            matrix = (sub[:, cols] @ spread).toarray()
         else:
-            matrix = scaled.T.toarray()
-        r_factor, pivots = qr(matrix, mode="r", pivoting=True)
-        diagonal = np.abs(np.diag(r_factor))
-        rank = int(np.sum(diagonal > diagonal[0] * 1e-9)) if len(diagonal) else 0
-        chosen_parts.append(rows_here[pivots[:rank]])
+            matrix = sub[:, cols].toarray()
+        chosen_parts.append(rows_here[_first_independent(matrix)])
     return np.sort(np.concatenate(chosen_parts))
+
+
+def _first_independent(rows: np.ndarray, tolerance: float = 1e-9) -> np.ndarray:
+    """Positions of the rows, taken in order, that are not combinations of the rows before them: the first
+    basis of the row space in this order (Gram-Schmidt, each kept row projected twice). Unique, so it does not
+    depend on rounding: a kept row stands at least ``tolerance`` of its norm away from the rows before it
+    (rows of counts: 1e-3 or more), a dependent one about 1e-15."""
+    m, n = rows.shape
+    norms = np.sqrt(np.einsum("ij,ij->i", rows, rows))
+    basis = np.zeros((min(m, n), n))  # orthonormal, spans the rows kept so far
+    kept = 0
+    chosen: list[int] = []
+    for start in range(0, m, _CHUNK):
+        if kept == n:
+            break  # the rows kept span every direction: the rest depend on them
+        chunk = np.array(rows[start : start + _CHUNK], dtype=float)
+        chunk -= (chunk @ basis[:kept].T) @ basis[:kept]  # a row in their span: about 1e-15 of it is left
+        for i in range(len(chunk)):
+            if math.sqrt(float(chunk[i] @ chunk[i])) <= tolerance * norms[start + i]:
+                continue
+            # a row kept: projected once more (twice is enough), so that the basis stays orthonormal to rounding
+            residual = chunk[i] - basis[:kept].T @ (basis[:kept] @ chunk[i])
+            size = math.sqrt(float(residual @ residual))
+            if size <= tolerance * norms[start + i]:
+                continue
+            basis[kept] = residual / size
+            chunk[i + 1 :] -= np.outer(chunk[i + 1 :] @ basis[kept], basis[kept])
+            kept += 1
+            chosen.append(start + i)
+    return np.array(chosen, dtype=np.int64)
 
 
 def _blocks(
@@ -518,8 +548,11 @@ def _blocks(
             rank = basis.shape[1]
             independent = np.arange(len(r_local))
             if rank < len(r_local):  # fixing implicit zeros can make rows dependent again
-                _, pivots = qr(dense.T, mode="r", pivoting=True)
-                independent = np.sort(pivots[:rank])
+                nonzeros = np.count_nonzero(dense, axis=1)
+                order = np.lexsort((np.arange(len(r_local)), nonzeros))  # as _independent_rows: sparse rows first
+                independent = np.sort(order[_first_independent(dense[order])])
+                if len(independent) < rank:  # never fewer rows than the rank: the programs would lose a fact
+                    independent = np.arange(len(r_local))
             block = _Block(keep[c_local], row_ids[r_local], sub, rhs, basis, left, solution, independent)
             if len(q_local):
                 block.g = g_live[q_local][:, c_local].tocsr()
