@@ -42,6 +42,7 @@ DEFAULT_BIN_EDGES = tuple(round(0.1 * j, 1) for j in range(1, 10))
 RISK_CLIP = 1e-12
 MAX_ITERATIONS = 100
 TOLERANCE = 1e-10
+REPORTED_DIGITS = 12  # the fits' figures as released: far more than they mean, and the same on every CPU
 
 
 def linear_predictor(risk: np.ndarray) -> np.ndarray:
@@ -102,6 +103,12 @@ def fit_logistic(
                 return None
             return beta, covariance
     return None
+
+
+def _significant(value: float, digits: int = REPORTED_DIGITS) -> float:
+    """``value`` to ``digits`` significant digits: the last bits of a fit move with the BLAS kernel's summation
+    order (the same bins gave a slope SE of 0.15633666371033494 on one CPU and ...497 on another)."""
+    return float(f"{value:.{digits}g}") if math.isfinite(value) else value
 
 
 def bin_midpoint(band: Band) -> float:
@@ -194,7 +201,7 @@ class Calibration:
             out["slope_intercept_se"] = math.sqrt(slope[1][0, 0])
             out["slope"] = float(slope[0][1])
             out["slope_se"] = math.sqrt(slope[1][1, 1])
-        return out
+        return {key: _significant(value) for key, value in out.items()}
 
     def render(self, released: dict[str, int | None], derived: dict[str, Any]) -> dict[str, Any]:
         bins = []
