@@ -121,15 +121,18 @@ def test_the_interior_test_says_yes_only_for_a_strictly_positive_solution() -> N
 
 
 def test_a_small_part_gets_the_exact_choice() -> None:
-    # Below _SKETCH_FROM entries the rows are chosen by the exact pivoted QR (the choice steers which cells a
-    # repair withholds, so a small study's release does not depend on a random sketch).
+    # Below _SKETCH_FROM entries the rows are chosen on every atom (the choice steers which cells a repair
+    # withholds, so a small study's release does not depend on a random sketch). The sketch keeps the rows'
+    # dependences, and the rows are taken in a fixed order, so it makes the same choice.
     a, _ = _history_like(11, 30, 500)
     assert a.shape[0] * a.shape[1] < audit_system._SKETCH_FROM
-    assert _independent_rows(a, True).tolist() == _independent_rows(a, False).tolist()
+    exact = _independent_rows(a, False).tolist()
+    assert _independent_rows(a, True).tolist() == exact
     with pytest.MonkeyPatch.context() as patch:
         patch.setattr(audit_system, "_SKETCH_FROM", 0)
         sketched = _independent_rows(a, True)
     assert len(sketched) == np.linalg.matrix_rank(a.toarray())  # reference: numpy's SVD rank
+    assert sketched.tolist() == exact
 
 
 @settings(max_examples=20, deadline=None, suppress_health_check=[HealthCheck.too_slow])
