@@ -13,6 +13,12 @@ from scipy.sparse.csgraph import connected_components
 
 from .facts import VALUES_REFUSED, AuditError
 
+# The integer programs stop after a number of branch-and-bound nodes, not seconds, so that the same records give
+# the same release on a fast machine and a slow one (a 1 s limit let a loaded machine skip programs a fast one
+# finished); the seconds are only a guard. A count's blocks are small here (facts.MILP_MAX_ATOMS atoms): the demo's
+# programs take a few milliseconds.
+_MILP_OPTIONS = {"node_limit": 1_000, "time_limit": 30.0}
+
 try:  # HiGHS through scipy's own binding (scipy >= 1.15): a block's program kept between objectives
     from scipy.optimize._highspy import _core as _highs
 except ImportError:  # pragma: no cover - an older scipy: every program is solved afresh by linprog
@@ -221,15 +227,15 @@ class _System:
                     constraints=constraints,
                     integrality=np.ones(len(c)),
                     bounds=Bounds(0, np.inf),
-                    options={"time_limit": 1.0},
+                    options=_MILP_OPTIONS,
                 )
                 if result.status == 0 and result.x is not None:
                     table[block.atoms] = np.round(result.x)
         return tables
 
     def milp_interval(self, vector: np.ndarray, low: int, high: int, strict: bool = False) -> tuple[int, int] | None:
-        """Whole-number min and max (HiGHS branch and bound, 1 s per program); the LP bounds if time runs out
-        (``strict``: None)."""
+        """Whole-number min and max (HiGHS branch and bound, :data:`_MILP_OPTIONS`); the LP bounds if a program
+        stops at its limit (``strict``: None)."""
         if self.unbounded(vector):
             return None if strict else (low, high)
         int_low = int_high = 0
@@ -246,7 +252,7 @@ class _System:
                     constraints=constraints,
                     integrality=np.ones(len(c)),
                     bounds=Bounds(0, np.inf),
-                    options={"time_limit": 1.0},
+                    options=_MILP_OPTIONS,
                 )
                 if result.status != 0 or result.fun is None:
                     return None if strict else (low, high)
