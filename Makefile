@@ -8,15 +8,23 @@ DEMO_OUT ?= demo-output
 export FLWR_TELEMETRY_ENABLED := 0
 export FLWR_DISABLE_UPDATE_CHECK := 1
 
-.PHONY: install demo test lint clean browser postgres validate-stats fuzz bench audit-campaign audit-simulatable
+.PHONY: install constraints demo test lint clean browser postgres validate-stats fuzz bench audit-campaign audit-simulatable
 
-$(STAMP): pyproject.toml
+$(STAMP): pyproject.toml constraints.txt
 	@test -x $(BIN)/python || $(PYTHON) -m venv $(VENV)
 	$(BIN)/python -m pip install --quiet --upgrade pip
-	$(BIN)/python -m pip install --quiet -e ".[test]"
+	$(BIN)/python -m pip install --quiet -c constraints.txt -e ".[test]"
 	@touch $(STAMP)
 
 install: $(STAMP)
+
+# Pin what .venv holds now (after a change to pyproject.toml's dependencies: install without the pins, then
+# run this and `make test`). The file's first lines say why it exists.
+constraints:
+	@test -x $(BIN)/python || (echo "make constraints: no .venv; run make install first" >&2; exit 1)
+	@{ sed -n '/^#/p' constraints.txt; $(BIN)/python -m pip freeze --exclude-editable; } > constraints.txt.new
+	@mv constraints.txt.new constraints.txt
+	@echo "constraints.txt: $$(grep -c '==' constraints.txt) packages pinned"
 
 demo: $(STAMP)
 	$(BIN)/federation demo --out-dir $(DEMO_OUT)
