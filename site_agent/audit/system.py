@@ -452,8 +452,8 @@ def _independent_rows(a_live: sparse.csr_matrix, sketch: bool) -> np.ndarray:
     for label in np.unique(labels[:m0]):
         rows_here = np.flatnonzero(labels[:m0] == label)
         sub = a_live[rows_here]
-        rows_here = rows_here[np.lexsort((rows_here, np.diff(sub.indptr)))]  # sparse rows first, then by position
-        sub = a_live[rows_here]
+        order = _sparse_first(np.diff(sub.indptr))
+        rows_here, sub = rows_here[order], sub[order]
         cols = np.unique(sub.indices)
         m, n = len(rows_here), len(cols)
         width = m + max(16, m // 4)
@@ -469,6 +469,11 @@ def _independent_rows(a_live: sparse.csr_matrix, sketch: bool) -> np.ndarray:
             matrix = sub[:, cols].toarray()
         chosen_parts.append(rows_here[_first_independent(matrix)])
     return np.sort(np.concatenate(chosen_parts))
+
+
+def _sparse_first(nonzeros: np.ndarray) -> np.ndarray:
+    """The order in which rows are offered to :func:`_first_independent`: by number of atoms, then position."""
+    return np.lexsort((np.arange(len(nonzeros)), nonzeros))
 
 
 def _first_independent(rows: np.ndarray, tolerance: float = 1e-9) -> np.ndarray:
@@ -554,8 +559,7 @@ def _blocks(
             rank = basis.shape[1]
             independent = np.arange(len(r_local))
             if rank < len(r_local):  # fixing implicit zeros can make rows dependent again
-                nonzeros = np.count_nonzero(dense, axis=1)
-                order = np.lexsort((np.arange(len(r_local)), nonzeros))  # as _independent_rows: sparse rows first
+                order = _sparse_first(np.count_nonzero(dense, axis=1))
                 independent = np.sort(order[_first_independent(dense[order])])
                 if len(independent) < rank:  # never fewer rows than the rank: the programs would lose a fact
                     independent = np.arange(len(r_local))
