@@ -68,18 +68,25 @@ def _secondary(
     reasons: dict[str, str],
     public: frozenset[str] = frozenset(),
     keep: frozenset[str] = frozenset(),
+    twins: Mapping[str, tuple[str, ...]] | None = None,
 ) -> None:
     """Hide more counts until no relation has exactly one hidden member (in place).
 
     The choice depends on the pattern of hidden counts and the structure only, never on a value or on earlier
     releases (so that a recipient can replay it): the count that matters least to the primary table ``keep``
-    (:func:`keep_rank`), a part before the total, a count that is no relation's total (a leaf, whose loss
+    (:func:`keep_rank`; a count ranks as the highest of its ``twins``, the counts of the same definition whose
+    fate it shares, so a ROC band that is the 2x2 table's false positives is not taken while another band can
+    be), a part before the total, a count that is no relation's total (a leaf, whose loss
     carries no further) before one that is, then the fixed order of names. A value-dependent rule (e.g. "the
     smallest shown part") would tell a recipient who knows the rule that the hidden part is smaller than the
     shown ones. Where the choice is a count an earlier release showed (``public``), it protects nothing: the
     audit then withholds more.
     """
     totals = {relation.total for relation in relations}
+
+    def rank(name: str) -> int:
+        return max(keep_rank(t, keep) for t in (twins or {}).get(name, (name,)))
+
     changed = True
     while changed:
         changed = False
@@ -90,7 +97,7 @@ def _secondary(
             shown = [m for m in relation.members if m not in suppressed]
             if not shown:
                 continue
-            choice = min(shown, key=lambda m: (keep_rank(m, keep), m == relation.total, m in totals, m))
+            choice = min(shown, key=lambda m: (rank(m), m == relation.total, m in totals, m))
             suppressed.add(choice)
             reasons[choice] = f"secondary: otherwise {hidden[0]} could be recomputed from {relation.total} = " + (
                 " + ".join(relation.parts)
@@ -361,7 +368,7 @@ def _protect_once(context: tuple, primary: frozenset[str], dropped: frozenset[st
             )
     # counts with the same definition (e.g. a class total that two analyses report) share one fate
     relations = [*counts.relations, *(Relation(g[0], (n,)) for g in set(twins.values()) for n in g[1:])]
-    _secondary(values, relations, suppressed, reasons, public, primary)
+    _secondary(values, relations, suppressed, reasons, public, primary, twins=twins)
 
     result: AuditResult | None = None
     culprits: set[str] = set()
@@ -411,7 +418,7 @@ def _protect_once(context: tuple, primary: frozenset[str], dropped: frozenset[st
         if stuck or not added:
             raise _Refused(stuck or result.findings, culprits | _units_of(stuck or result.findings, primary))
         suppressed |= added
-        _secondary(values, relations, suppressed, reasons, public, primary)
+        _secondary(values, relations, suppressed, reasons, public, primary, twins=twins)
     else:
         raise _Refused(result.findings if result else [], culprits)
 

@@ -145,16 +145,26 @@ def test_a_study_asking_for_everything_keeps_the_primary_table(tmp_path: Path, c
 
 
 def test_what_a_site_cut_back_reaches_the_coordinator_in_words(tmp_path: Path, capsys) -> None:
-    """Issue 13, item 1: a paired comparison of two scores that are the age ("24 or more" and "30 or more")
-    costs the primary table, so the site cuts the paired comparison back; analyze (terminal and JSON) and the
-    report's flow section say so in the site's words, never a count."""
-    world = World(tmp_path, records(small=SMALL))
-    for name, threshold in (("age24", 24), ("age30", 30)):
-        card = {"kind": "points", "weights": {"age_months": 1}}
-        world.scorecard(name, card, threshold, lambda a, s, i: float(a))
-    release = world.ask("age24", "one", "--analyses", "confusion,paired", compare="age30")
-    assert release is not None and [cut["analysis"] for cut in release.get("cut_back", [])] == ["paired"]
+    """Issue 13, item 1: eleven false positives, one of them a girl's. Her cell is withheld for the minimum
+    cell size and the boys' (ten) as its complement; the 2x2 table's false positives then give hers exactly
+    (eleven less "at least ten"), and only a 2x2 cell could hide it. So the site cuts the subgroups by sex
+    back; analyze (terminal and JSON) and the report's flow section say so in the site's words, never a
+    count. The recipient's interval for her cell (the world's own integer programs) keeps two values."""
+    data = [(40 + i, "f" if i == 0 else "m", 2 + (i > 0), 0) for i in range(11)]  # the false positives
+    for sex in ("f", "m"):
+        data += [
+            (40 + i % 20, sex, item, outcome)
+            for item, outcome, n in ((0, 0, 30), (3, 1, 25), (1, 1, 15))
+            for i in range(n)
+        ]
+    world = World(tmp_path, data)
+    neutral(world)
+    release = world.ask("neutral", "one", "--analyses", "confusion,subgroups", "--subgroup", "sex")
+    assert release is not None and [cut["analysis"] for cut in release.get("cut_back", [])] == ["subgroups.sex"]
     assert release["results"]["confusion"][0]["suppressed"] == []
+    assert release["results"]["confusion"][0]["cells"]["fp"] == 11
+    low, high = oracle_interval(world, lambda cell: cell[1] == "f" and cell[2] >= 2 and cell[3] == 0)
+    assert high - low >= 1, (low, high)
     store = str(tmp_path / "study.db")
     assert federation(["enrol", "--store", store, "--site-id", "site-a", "--key", str(world.site / "site.pub")]) == 0
     assert federation(["ingest", "--store", store, str(tmp_path / "release-0.json")]) == 0

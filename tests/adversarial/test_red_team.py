@@ -65,16 +65,23 @@ def test_score_bands_shifted_across_two_studies_on_a_score_that_is_the_age(tmp_p
 def test_a_paired_comparison_of_two_age_scores_shows_no_small_pair_cell(tmp_path: Path) -> None:
     """Issue 12 item 2, two bundles in one study: the model calls "age 24 or more" positive, the comparison
     "age 30 or more"; the paired 2x2 table's discordant cell with the condition is exactly the small group.
-    The site cuts the paired table back (in words, no count) and the primary table stays whole."""
+    The site withholds that cell and its partner in the paired table, and nothing of the primary table: the
+    partner is the paired cell that is not the same count as a 2x2 cell (until 2026-12-05 secondary
+    suppression took the one that is, and the site then cut the whole paired comparison back)."""
     world = World(tmp_path, records(small=SMALL))
     age_score(world, "age24", 24)
     age_score(world, "age30", 30)
     release = world.ask("age24", "one", "--analyses", "confusion,paired", compare="age30")
     assert release is not None
     paired = release["results"]["paired"]
-    assert paired["diseased"]["model1_compare0"] is None
+    assert paired["suppressed_by"] == {
+        "positive.model1_compare0": "minimum_cell_size",
+        "positive.model1_compare1": "complementary",
+    }
+    assert paired["diseased"]["model0_compare0"] == release["results"]["confusion"][0]["cells"]["fn"]
     assert release["results"]["confusion"][0]["suppressed"] == []
-    assert [cut["analysis"] for cut in release.get("cut_back", [])] == ["paired"]
+    assert release.get("cut_back", []) == []
+    assert paired["auc_model"] is not None and paired["auc_compare"] is not None
     low, high = oracle_interval(world, in_small_band)
     assert high - low >= 1, (low, high)
 

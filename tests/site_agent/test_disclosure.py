@@ -82,6 +82,26 @@ def test_zeros_are_hidden_when_the_policy_says_so() -> None:
     assert hidden.released["confusion[0].tn"] is None or hidden.released["flow.analysed_negative"] is None
 
 
+def test_a_band_that_is_a_cell_of_the_primary_table_is_not_taken_as_a_complement() -> None:
+    # Hand-worked (Hundepool et al. 2012, ch. 4: a complement is any shown member of the relation; the site's
+    # rule picks it by structure, never by value). ROC bands of the negatives: [0, 0.5) is the same count as
+    # the 2x2 table's tn, [0.5, 0.8) holds 26 and [0.8, 1] holds 4 (< k = 10: withheld). The complement in
+    # "negatives = the three bands" must be the middle band: taking the first (first by name) would withhold
+    # tn with it (counts of one definition share one fate), then fp, and the site would cut the bands back.
+    counts = flow_and_table(read=200, missing=0, tp=25, fn=15, fp=30, tn=130)
+    counts.add("roc.negative", 160, ANALYSED, NEGATIVE)
+    edges = ((None, 0.5), (0.5, 0.8), (0.8, None))
+    for i, ((low, high), value) in enumerate(zip(edges, (130, 26, 4), strict=True)):
+        counts.add(f"roc.band[{i}].negative", value, ANALYSED, NEGATIVE, Condition("score", low=low, high=high))
+    counts.relate("roc.negative", "roc.band[0].negative", "roc.band[1].negative", "roc.band[2].negative")
+    protected = protect(counts, policy(k=10))
+    assert protected.suppressed == {"roc.band[1].negative", "roc.band[2].negative"}
+    assert protected.reasons["roc.band[1].negative"].startswith("secondary")
+    assert protected.released["confusion[0].tn"] == 130 and protected.released["roc.band[0].negative"] == 130
+    assert protected.cut_back == ()
+    assert protected.audit.intervals["roc.band[2].negative"].values >= 2
+
+
 def test_derived_statistics_need_every_count_they_rest_on() -> None:
     counts = flow_and_table(read=200, missing=0, tp=25, fn=4, fp=30, tn=141)
     counts.derived["confusion[0].sensitivity"] = (25 / 29, frozenset({"confusion[0].tp", "confusion[0].fn"}))
