@@ -10,7 +10,8 @@ and cutting back other analyses so that the primary table survives.
 3. **The audit** (:mod:`site_agent.audit`) then checks this release together with every earlier release of
    the site, to every study; where a hidden count (or a small region found by differencing) could be
    worked out, it suppresses more counts of this release (other analyses before the primary table, in the
-   fixed order :data:`CUT_ORDER`, then by name) and checks again. What each rule tells (a count withheld
+   fixed order :data:`CUT_ORDER`, a count ranking as the latest part among the counts of its definition,
+   then by name) and checks again. What each rule tells (a count withheld
    for the minimum cell size lies in 1..k−1; one withheld by the complementary rule or the audit was not
    small) is a fact the audit takes into account.
 4. **The primary table comes first.** When cells of the primary table (the flow and the 2×2 table at the
@@ -389,12 +390,14 @@ def _protect_once(context: tuple, primary: frozenset[str], dropped: frozenset[st
         added: set[str] = set()
         stuck: list[Finding] = []
         for finding in result.findings:
-            # other parts before the primary table, in the fixed cut order, then by name: never by value
+            # other parts before the primary table, in the fixed cut order, then by name: never by value. A count
+            # ranks as the last part of the counts with its definition (a paired comparison's model band that is a
+            # ROC band goes with the ROC bands, after the paired table's own cells)
             open_candidates = sorted(
                 (c for c in finding.candidates if c not in suppressed),
                 key=lambda c: (
                     max(keep_rank(t, primary) for t in twins.get(c, (c,))),  # shares the primary's fate
-                    _cut_rank(unit_of(c, primary) or ""),
+                    max(_cut_rank(unit_of(t, primary) or "") for t in twins.get(c, (c,))),  # and the last part's
                     c,
                 ),
             )

@@ -247,14 +247,39 @@ def test_paired_comparison_and_agreement_match_scikit_learn(demo) -> None:
                 assert kappa == pytest.approx(expected[site_id]["kappa_reference_reference2"], abs=1e-9)
     assert sum(r["results"]["agreement"].get("available", False) for r in releases) == 5
     # The comparison model's AUC comes from its own released bands at most sites; the SE of the difference needs
-    # the joint banded table, whose corners are too sparse at these sites' sizes for k = 10 (two correlated
-    # scores), so no site gives it and the pooled difference is not estimated (docs/formats.md, "Derived
-    # statistics"): a record-level covariance would be a further fact about the records.
+    # the joint banded table, whose corners are sparse at these sites' sizes for k = 10 (two correlated scores),
+    # so only two sites give it (docs/formats.md, "Derived statistics": a record-level covariance
+    # would be a further fact about the records), and the pooled difference rests on those two.
     assert sum(r["results"]["paired"]["auc_compare"] is not None for r in releases) >= 2
-    assert all(r["results"]["paired"]["auc_difference_se"] is None for r in releases)
+    with_se = sorted(r["site_id"] for r in releases if r["results"]["paired"]["auc_difference_se"] is not None)
+    assert len(with_se) == 2
     analysis = json.loads((root / "results" / "analysis.json").read_text())
     auc = analysis["paired"]["auc_difference"]
-    assert auc["status"] == "not estimated" and "at least 2 sites" in auc["reason"]
+    assert sorted(auc["sites_pooled"]) == with_se and auc["pooled"]["n_studies"] == 2
+    assert auc["ci_low"] < auc["estimate"] < auc["ci_high"]
+
+
+def test_roc_aucs_match_scikit_learn_and_survive_at_most_sites(demo) -> None:
+    """Each site's released ROC AUC is scikit-learn's roc_auc_score on each record's released band (a run of
+    withheld bands read as one), and the ROC bands keep an AUC at five of the eight sites. Until 2026-12-05
+    the audit, taking a paired comparison's model band as a paired count, withheld the ROC band it is (the
+    same count) and left an AUC at two sites; it now takes the paired table's own cells first."""
+    root, _, _ = demo
+    expected = _expected(root)
+    releases = json.loads((root / "results" / "releases.json").read_text())
+    shown = 0
+    for release in releases:
+        roc = release["results"]["roc"]
+        if roc["auc"] is None:
+            continue
+        shown += 1
+        site = expected[release["site_id"]]
+        assert roc["auc"] == pytest.approx(
+            roc_auc_score(site["truth"], _band_of(site["score"], roc["bands"])), abs=1e-6
+        )
+    assert shown >= 5
+    pooled = json.loads((root / "results" / "analysis.json").read_text())["discrimination"]["pooled_auc"]
+    assert len(pooled["sites_pooled"]) == shown
 
 
 def test_export_tables_parse_with_pandas_and_agree_with_the_flow(demo) -> None:
@@ -268,7 +293,18 @@ def test_export_tables_parse_with_pandas_and_agree_with_the_flow(demo) -> None:
     for name in ("agreement", "paired", "subgroups_pooled", "pooled"):
         assert f"{name}.csv" in written
     text_columns = {"site_id", "model", "withheld", "variable", "level", "side", "pair", "first", "second", "group"}
-    text_columns |= {"measure", "analysis", "quantity", "scale", "note", "file", "column", "meaning"}
+    text_columns |= {
+        "measure",
+        "analysis",
+        "quantity",
+        "scale",
+        "note",
+        "file",
+        "column",
+        "meaning",
+        "status",
+        "criterion",
+    }
     for path in results.glob("*.csv"):
         frame = pd.read_csv(path)
         for column in frame.columns:  # a number column holds numbers and NA, never a word
