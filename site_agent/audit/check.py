@@ -76,6 +76,7 @@ class Audit:
         group: bool = True,
         shortcut: bool = True,
         full_max_atoms: int = FULL_MAX_ATOMS,
+        carry_tables: bool = True,
     ) -> None:
         started = time.perf_counter()
         self.releases = [*earlier, current]
@@ -109,6 +110,9 @@ class Audit:
         self._joined, self._joint_values, self.joints = joint_boxes(self.boxes, models, schema_entries, occupied)
         self.cells: Cells | None = None  # the grouped model's separator cells (None: the full model)
         self._union_answers: dict[tuple, tuple[int, ...] | None] = {}  # see _unions_pinned
+        # whole-number tables the second looks found, tried first in later evaluations (see Branches); None:
+        # each evaluation searches afresh (tests compare repair rounds with fresh audits that way)
+        self._branch_tables: list[np.ndarray] | None = [] if carry_tables else None
         self._grouped: Audit | None = None
         self._full = False
         self._too_large = False
@@ -530,7 +534,7 @@ class Audit:
                         facts.append((told[0], told[1], k, allow_zero, boxes))
                     else:
                         facts.append((release.rules, release.zero, release.min_cell_size, release.allow_zero, boxes))
-                self._branches = Branches(self.incidence, known, self.relation_rows, zero, facts)
+                self._branches = Branches(self.incidence, known, self.relation_rows, zero, facts, self._branch_tables)
             self._opened_cache[key] = self._branches.open(vector, need, low, high)
         return self._opened_cache[key]
 

@@ -86,7 +86,9 @@ def test_a_grouped_history_takes_the_shortcut_only_when_the_full_model_is_too_la
 )
 def test_a_repair_round_decides_as_a_fresh_audit_would(seed: int, n: int, history, k: int) -> None:  # noqa: ANN001
     # A repair round reuses what the round before found (the atoms some table fills, _Pool.zero; the
-    # feasible tables of _Pool); a new audit per round starts from nothing. Both must decide alike.
+    # feasible tables of _Pool); a new audit per round starts from nothing. Both must decide alike. The second
+    # look's kept tables are left out here (carry_tables=False): they may drop a finding a fresh search under
+    # its node limit would keep, and only on a table every fact of the round allows (test_branch_tables.py).
     data = records(seed, n)
     releases = [release(data, kind, cut, age) for kind, cut, age in history]
     earlier = [facts(f"r{j}", counts, k)[0] for j, counts in enumerate(releases[:-1])]
@@ -94,5 +96,5 @@ def test_a_repair_round_decides_as_a_fresh_audit_would(seed: int, n: int, histor
     current = ReleaseFacts("new", current.definitions, {}, current.relations, "", {}, k, True, DOMAINS)
     for values, given_rules in ((released, rules), (dict(releases[-1].values), {})):
         for group in (True, False):
-            carried = _replay(Audit(earlier, current, group=group), values, given_rules, k)
+            carried = _replay(Audit(earlier, current, group=group, carry_tables=False), values, given_rules, k)
             assert carried == _replay(lambda g=group: Audit(earlier, current, group=g), values, given_rules, k)

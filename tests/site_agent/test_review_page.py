@@ -131,11 +131,11 @@ def test_the_review_shows_statistics_as_the_summary_does(held_full, capsys) -> N
     capsys.readouterr()
     assert site_agent(["review", "--site-dir", str(site_dir), "--all"]) == 0
     out = capsys.readouterr().out
-    # At this cell size every score band's count with the condition is withheld, so the released bands leave
-    # one group and no AUC is released (an AUC of 0.5 with SE 0 would describe the suppression): none is shown.
-    # The AUC's own decimals are checked on `site-agent check` (tests/site_agent/test_requests.py).
-    assert roc["auc"] is None and roc["auc_se"] is None
-    assert not re.search(r"AUC \d", out) and "standard error 0.000" not in out
+    # The AUC from the released bands and its SE to three decimals, as the summary prints them (until
+    # 2026-12-05 this site withheld every band's count with the condition, and no AUC was shown).
+    assert roc["auc"] is not None and roc["auc_se"] is not None
+    assert f"AUC {roc['auc']:.3f} (standard error {roc['auc_se']:.3f})" in out
+    assert not re.search(r"AUC \d\.\d{4}", out) and "standard error 0.000" not in out
     observed, expected = calibration["observed"], calibration["expected"]
     assert f"{observed:g} participants with the condition against {expected:.1f} " in out
     assert float(observed).is_integer() and f"{observed:g}" == str(int(observed))
