@@ -65,7 +65,9 @@ class Audit:
     ``group=False`` audits in the full model alone. Where the full model has more than ``full_max_atoms`` atoms
     (known when the audit is built), the grouped model's own evaluation decides, and with ``shortcut`` (the
     default) its clear-only pass is skipped: that pass could only defer to this evaluation or agree with it
-    (see :meth:`evaluate`). ``shortcut=False`` runs it anyway; tests compare both ways.
+    (see :meth:`evaluate`). ``shortcut=False`` runs it anyway; tests compare both ways. ``carry_tables=False``
+    does not keep the second look's tables (:mod:`~.branches`) from one evaluation to the next: each repair round then
+    searches afresh, as a new audit of that round would.
     """
 
     def __init__(
