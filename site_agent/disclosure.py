@@ -85,9 +85,6 @@ def _secondary(
     """
     totals = {relation.total for relation in relations}
 
-    def rank(name: str) -> int:
-        return max(keep_rank(t, keep) for t in (twins or {}).get(name, (name,)))
-
     changed = True
     while changed:
         changed = False
@@ -98,7 +95,7 @@ def _secondary(
             shown = [m for m in relation.members if m not in suppressed]
             if not shown:
                 continue
-            choice = min(shown, key=lambda m: (rank(m), m == relation.total, m in totals, m))
+            choice = min(shown, key=lambda m: (shared_rank(m, keep, twins), m == relation.total, m in totals, m))
             suppressed.add(choice)
             reasons[choice] = f"secondary: otherwise {hidden[0]} could be recomputed from {relation.total} = " + (
                 " + ".join(relation.parts)
@@ -112,6 +109,12 @@ def keep_rank(name: str, primary: frozenset[str]) -> int:
     if name not in primary:
         return 0
     return 1 if name == "flow.read" or name.startswith("flow.excluded.") else 2
+
+
+def shared_rank(name: str, primary: frozenset[str], twins: Mapping[str, tuple[str, ...]] | None) -> int:
+    """:func:`keep_rank` of a count that shares its fate with the counts of its definition (``twins``): the
+    highest of theirs (a ROC band that is the 2x2 table's false positives ranks as that cell)."""
+    return max(keep_rank(t, primary) for t in (twins or {}).get(name, (name,)))
 
 
 def suppress(
@@ -396,7 +399,7 @@ def _protect_once(context: tuple, primary: frozenset[str], dropped: frozenset[st
             open_candidates = sorted(
                 (c for c in finding.candidates if c not in suppressed),
                 key=lambda c: (
-                    max(keep_rank(t, primary) for t in twins.get(c, (c,))),  # shares the primary's fate
+                    shared_rank(c, primary, twins),  # shares the primary's fate
                     max(_cut_rank(unit_of(t, primary) or "") for t in twins.get(c, (c,))),  # and the last part's
                     c,
                 ),
@@ -407,7 +410,7 @@ def _protect_once(context: tuple, primary: frozenset[str], dropped: frozenset[st
             if any(c in added for c in open_candidates):
                 continue  # another finding of this round already hides one of them: check again first
             choice = open_candidates[0]
-            if max(keep_rank(t, primary) for t in twins.get(choice, (choice,))) == 2:
+            if shared_rank(choice, primary, twins) == 2:
                 # the primary table pays: the parts this finding involves are the ones to cut back
                 names = [t for n in finding.names for t in twins.get(n.split(" (release", 1)[0], (n,))]
                 exposed = {u for n in names if (u := unit_of(n.split(" (release", 1)[0], primary))}

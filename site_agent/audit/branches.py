@@ -38,7 +38,6 @@ from __future__ import annotations
 
 import math
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
@@ -260,7 +259,7 @@ class Branches:
         k = self.ors_k[or_rows]
         if np.any((counts > 0.5) & (counts < k - 0.5)):
             return None  # a count this evaluation knows as "0, or at least k" lies between
-        table = self._table(_Given(np.concatenate([x, (counts >= k - 0.5).astype(float)])), matrix, constraint)
+        table = self._checked(np.concatenate([x, (counts >= k - 0.5).astype(float)]), matrix, constraint)
         if table is None:
             return None
         value = round(float(target @ table))
@@ -290,21 +289,19 @@ class Branches:
         """The solver's table if it is a whole-number table of every fact (checked here, not trusted)."""
         if result is None or result.x is None:
             return None
-        table = np.round(result.x)
-        if np.max(np.abs(result.x - table), initial=0.0) > 1e-6:
+        return Branches._checked(result.x, matrix, constraint)
+
+    @staticmethod
+    def _checked(x: np.ndarray, matrix: sparse.csr_matrix, constraint: LinearConstraint) -> np.ndarray | None:
+        """``x`` rounded, if it is a whole-number table of every fact; None otherwise."""
+        table = np.round(x)
+        if np.max(np.abs(x - table), initial=0.0) > 1e-6:
             return None
         slack = 1e-6 * (1.0 + np.abs(constraint.lb[np.isfinite(constraint.lb)]).max(initial=0.0))
         values = matrix @ table
         if np.any(values < constraint.lb - slack) or np.any(values > constraint.ub + slack):
             return None
         return table
-
-
-@dataclass
-class _Given:
-    """A table to check with :meth:`Branches._table`, as a solver would return it."""
-
-    x: np.ndarray
 
 
 def _linear(objective: np.ndarray, constraints: list[LinearConstraint], bounds: Bounds) -> Any:
