@@ -13,7 +13,7 @@ import math
 from collections.abc import Mapping
 from typing import Any
 
-__all__ = ["band_label", "level_label", "number_text", "unit_of"]
+__all__ = ["auc_bounds_text", "band_label", "level_label", "number_text", "unit_of"]
 
 _UNITS = {"months": "months", "years": "years", "weeks": "weeks", "days": "days", "month": "months", "year": "years"}
 
@@ -68,3 +68,24 @@ def level_label(variable: str, level: Any, integer: bool = False) -> str:
     if isinstance(level, str):
         return level
     return "unnamed level"
+
+
+def auc_bounds_text(discrimination: Any) -> str | None:
+    """One sentence on the sites that withheld their AUC: the range their released ROC bands allow each."""
+    found = discrimination.get("auc_bounds") if isinstance(discrimination, Mapping) else None
+    if not isinstance(found, Mapping) or not found:
+        return None
+    ranges = [
+        f"{site} {bounds['low']:.3f} to {bounds['high']:.3f}"
+        for site, bounds in sorted(found.items())
+        if isinstance(bounds, Mapping)
+        and isinstance(bounds.get("low"), float)
+        and isinstance(bounds.get("high"), float)
+    ]
+    if not ranges:
+        return None
+    sites = "1 site" if len(ranges) == 1 else f"{len(ranges)} sites"
+    return (
+        f"AUC withheld at {sites} (not pooled); the smallest and largest AUC each site's released ROC band counts "
+        "allow: " + "; ".join(ranges) + "."
+    )

@@ -34,8 +34,10 @@ from scipy import optimize, sparse
 
 from federation.protocol import Release
 from federation.release_values import count_or_none as _count
+from federation.release_values import number_or_none as _number
+from federation.stats.auc_bounds import Pieces, auc_bounds
 
-__all__ = ["Count", "count_definitions", "feasible_ranges", "primary_ranges"]
+__all__ = ["Count", "auc_range", "count_definitions", "feasible_ranges", "primary_ranges"]
 
 _MAX_ATOMS = 60_000  # beyond this the coordinator gives up on ranges (the likelihood then uses the rule alone)
 _ALL = "all"  # a count of every record read
@@ -378,3 +380,72 @@ def primary_ranges(release: Release, table_index: int, others: Sequence[Release]
     withheld = {key: name for key, name in names.items() if name in values and values[name] is None}
     found = feasible_ranges(counts, withheld.values())
     return {key: found[name] for key, name in withheld.items() if name in found}
+
+
+def _rule_pieces(low: int, high: int, rule: Any, k: int | None, allow_zero: bool) -> list[tuple[int, int]]:
+    """A withheld count's feasible range ``low..high`` cut by what its rule says (docs/formats.md)."""
+    if k is None or rule not in ("minimum_cell_size", "complementary", "audit"):
+        return [(low, high)]  # coarsened (any value), or no rule stated
+    if rule == "minimum_cell_size":
+        pieces = [(max(low, 1 if allow_zero else 0), min(high, k - 1))]
+    else:  # not small: 0 where zeros are shown, or at least k
+        pieces = [(0, 0)] if allow_zero and low == 0 else []
+        pieces.append((max(low, k), high))
+    return [(a, b) for a, b in pieces if a <= b]
+
+
+def auc_range(release: Release, others: Sequence[Release] = ()) -> tuple[float, float] | None:
+    """Where a site withheld its AUC, the smallest and largest AUC its ROC bands allow.
+
+    Each withheld band count takes its feasible range given everything the site sent to the study
+    (:func:`feasible_ranges`), cut by what its rule says (``suppressed_by``: 1..k−1, or "0, or at least k");
+    :func:`federation.stats.auc_bounds.auc_bounds` then finds the extremes over every table those allow with
+    the released class totals. ``None`` where the release shows the AUC, has no bands or class totals, or
+    its counts contradict one another.
+    """
+    roc = release.extra.get("roc")
+    if not isinstance(roc, dict) or _number(roc.get("auc")) is not None:
+        return None
+    bands = roc.get("bands")
+    n_positive, n_negative = _count(roc.get("positive")), _count(roc.get("negative"))
+    if not isinstance(bands, list) or not bands or not all(isinstance(b, dict) for b in bands):
+        return None
+    if n_positive is None or n_negative is None:
+        return None
+    lows = [_bound(b.get("low"), -math.inf) for b in bands]
+    if any(not b < a for a, b in zip(lows[1:], lows, strict=False)):
+        return None  # not in ascending order of score: not the shape the site sends
+    counts = count_definitions(release)
+    for j, other in enumerate(others):
+        counts.extend(count_definitions(other, prefix=f"release[{j}]."))
+    keys = (("positive", n_positive), ("negative", n_negative))
+    withheld = [f"roc.bands[{j}].{key}" for j, band in enumerate(bands) for key, _ in keys if band.get(key) is None]
+    # Each class's count in bands 0..j (below the band's upper edge): what the other counts say about it.
+    below = _Builder("", f"score@{release.bundle_sha256}")
+    for j, band in enumerate(bands[:-1] if withheld else []):
+        for outcome, (key, _) in zip((1, 0), keys, strict=True):
+            below.cell(f"below[{j}].{key}", None, outcome, None, band.get("high"))
+    ranges = feasible_ranges([*counts, *below.counts], [*withheld, *(c.name for c in below.counts)])
+    policy_k = release.policy.get("min_cell_size")
+    k = policy_k if isinstance(policy_k, int) and not isinstance(policy_k, bool) and policy_k >= 1 else None
+    allow_zero = bool(release.policy.get("allow_zero", True))
+    rules = roc.get("suppressed_by") if isinstance(roc.get("suppressed_by"), dict) else {}
+    cells: dict[str, list[Pieces]] = {"positive": [], "negative": []}
+    for j, band in enumerate(bands):
+        for key, total in keys:
+            value = band.get(key)
+            if value is not None:
+                if _count(value) is None:
+                    return None
+                cells[key].append([(value, value)])
+                continue
+            low, high = ranges.get(f"roc.bands[{j}].{key}", (0, total))
+            pieces = _rule_pieces(low, min(high, total), rules.get(f"band[{j}].{key}"), k, allow_zero)
+            if not pieces:
+                return None
+            cells[key].append(pieces)
+    cumulative = tuple(
+        [ranges.get(f"below[{j}].{key}", (0, total)) for j in range(len(bands) - 1)] + [(total, total)]
+        for key, total in keys
+    )
+    return auc_bounds(cells["positive"], cells["negative"], n_positive, n_negative, cumulative)

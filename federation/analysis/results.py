@@ -97,7 +97,8 @@ def analyze_releases(
     # Every matrix here is tiny: OpenBLAS threads cost far more than they give (about 8x slower fits on a busy
     # 2-core machine), as in the site's disclosure audit.
     with threadpool_limits(limits=1, user_api="blas"):
-        return analyze_tables(study, site_tables(releases), prevalence, covariates, store.integer_features(study))
+        tables = site_tables(releases, auc_bounds=True)
+        return analyze_tables(study, tables, prevalence, covariates, store.integer_features(study))
 
 
 def verified_releases(store: Store, study_id: str) -> list[StoredRelease]:

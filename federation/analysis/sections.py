@@ -62,6 +62,11 @@ def _discrimination(tables: list[SiteTable]) -> dict[str, Any] | None:
             )
         )
     }
+    # Where a site withheld its AUC: the smallest and largest its released bands allow (not pooled: a range
+    # has no standard error).
+    out["auc_bounds"] = {
+        t.site_id: {"low": t.auc_bounds[0], "high": t.auc_bounds[1]} for t in tables if t.auc_bounds is not None
+    }
     bands = [b for s, r in sites if (b := _bands(s, r)) is not None]
     # Never a curve from bands summed across sites (it keeps only the edges every site shares): a model in which
     # each site keeps its own band edges and its own accuracy.

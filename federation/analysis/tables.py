@@ -9,7 +9,7 @@ from dataclasses import dataclass, field
 from typing import Any
 
 from federation.protocol import Release, ValidationToolError
-from federation.ranges import primary_ranges
+from federation.ranges import auc_range, primary_ranges
 from federation.stats import RULES, ReleasedTable
 
 from ..store import Store, StoredRelease
@@ -37,6 +37,8 @@ class SiteTable:
     replayable: bool = False
     # What the site cut back so that its primary table could be released (the release's ``cut_back``, in words).
     cut_back: tuple[dict[str, str], ...] = ()
+    # Where the site withheld its AUC: the smallest and largest its released ROC bands allow (federation.ranges).
+    auc_bounds: tuple[float, float] | None = None
 
     def released_table(self) -> ReleasedTable:
         """The table with what the release says about its hidden cells (policy, flow margins, ranges, rules)."""
@@ -97,11 +99,14 @@ def _all_rules(release: Release, table: Any) -> list[str]:
     return found + (list(flow.values()) if isinstance(flow, dict) else [])
 
 
-def site_tables(releases: list[StoredRelease], threshold: float | None = None) -> list[SiteTable]:
+def site_tables(
+    releases: list[StoredRelease], threshold: float | None = None, auc_bounds: bool = False
+) -> list[SiteTable]:
     """The latest release of each site, at ``threshold`` (default: each release's first table).
 
     Each table carries the feasible ranges of its withheld cells and margins, computed from every release
-    the site sent to the study (:func:`federation.ranges.primary_ranges`).
+    the site sent to the study (:func:`federation.ranges.primary_ranges`); with ``auc_bounds``, also the
+    range of a withheld AUC (:func:`federation.ranges.auc_range`, a few tenths of a second a site).
     """
     latest: dict[str, StoredRelease] = {}
     by_site: dict[str, list[Release]] = {}
@@ -141,6 +146,7 @@ def site_tables(releases: list[StoredRelease], threshold: float | None = None) -
                 suppressed_by=rules,
                 replayable=replayable,
                 cut_back=tuple(release.cut_back) if index == 0 else (),
+                auc_bounds=auc_range(release, others) if auc_bounds else None,
             )
         )
     return tables

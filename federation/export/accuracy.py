@@ -177,6 +177,8 @@ def _roc_bands(context: ExportContext) -> Iterable[dict[str, Any]]:
         _SITE,
         ("auc", "area under the ROC curve"),
         ("auc_se", "DeLong (1988) standard error"),
+        ("auc_bound_low", "where the site withheld its AUC: the smallest AUC its released ROC band counts allow"),
+        ("auc_bound_high", "where the site withheld its AUC: the largest AUC its released ROC band counts allow"),
         ("auc_ci_low", "95% interval (pooled rows)"),
         ("auc_ci_high", "95% interval (pooled rows)"),
         ("pi_low", "95% prediction interval (pooled rows)"),
@@ -185,11 +187,20 @@ def _roc_bands(context: ExportContext) -> Iterable[dict[str, Any]]:
     ),
 )
 def _discrimination(context: ExportContext) -> Iterable[dict[str, Any]]:
+    pooled = context.analysis.get("discrimination")
+    bounds = pooled.get("auc_bounds") if isinstance(pooled, dict) else None
     for site_id, sections in context.sections.items():
         roc = sections.get("roc")
         if isinstance(roc, dict):
-            yield {"site_id": site_id, "auc": _number(roc.get("auc")), "auc_se": _number(roc.get("auc_se"))}
-    pooled = context.analysis.get("discrimination")
+            found = bounds.get(site_id) if isinstance(bounds, dict) else None
+            found = found if isinstance(found, dict) else {}
+            yield {
+                "site_id": site_id,
+                "auc": _number(roc.get("auc")),
+                "auc_se": _number(roc.get("auc_se")),
+                "auc_bound_low": _number(found.get("low")),
+                "auc_bound_high": _number(found.get("high")),
+            }
     if isinstance(pooled, dict) and isinstance(pooled.get("pooled_auc"), dict):
         value = pooled["pooled_auc"]
         yield {

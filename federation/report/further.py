@@ -9,6 +9,8 @@ from __future__ import annotations
 
 from typing import Any
 
+from federation.labels import auc_bounds_text
+
 from .html import esc
 
 __all__ = ["FURTHER_SECTIONS", "further_paragraph"]
@@ -87,6 +89,9 @@ def _discrimination(analysis: dict[str, Any]) -> list[str]:
             "AUC pooled on the logit scale from each site's own AUC (Debray et al. 2017): "
             + (_interval(auc) or _why(auc))
         )
+    bounds = auc_bounds_text(found)
+    if bounds:
+        lines.append(bounds)
     roc = found.get("summary_roc")
     if isinstance(roc, dict):
         if _num(roc.get("area_under_curve")) is not None:

@@ -282,6 +282,30 @@ def test_roc_aucs_match_scikit_learn_and_survive_at_most_sites(demo) -> None:
     assert len(pooled["sites_pooled"]) == shown
 
 
+def test_where_a_site_withheld_its_auc_the_bounds_hold_the_auc_of_its_records(demo) -> None:
+    """Each site that withheld its AUC gets the smallest and largest AUC its released band counts allow
+    (docs/formats.md); scikit-learn's roc_auc_score on each record's own band lies between them."""
+    root, _, _ = demo
+    expected = _expected(root)
+    releases = json.loads((root / "results" / "releases.json").read_text())
+    table = pd.read_csv(root / "results" / "discrimination.csv").set_index("site_id")
+    withheld = [r for r in releases if r["results"]["roc"]["auc"] is None]
+    assert withheld
+    for release in withheld:
+        bands = release["results"]["roc"]["bands"]
+        site = expected[release["site_id"]]
+        index = np.searchsorted([b["low"] for b in bands[1:]], site["score"], side="right")
+        truth = roc_auc_score(site["truth"], index)
+        low, high = table.loc[release["site_id"], ["auc_bound_low", "auc_bound_high"]]
+        assert low <= truth <= high
+        assert high - low < 0.5  # a bound, not the whole of 0..1
+        # the report says so in words, beside the pooled AUC
+        assert f"{release['site_id']} {low:.3f} to {high:.3f}" in (root / "report.html").read_text()
+    shown = table.drop(index="pooled")
+    assert shown["auc_bound_low"].notna().sum() == len(withheld)
+    assert shown["auc"].notna().sum() + len(withheld) == len(releases)
+
+
 def test_export_tables_parse_with_pandas_and_agree_with_the_flow(demo) -> None:
     root, _, _ = demo
     results = root / "results"
