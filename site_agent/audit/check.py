@@ -427,6 +427,7 @@ class Audit:
             if self.cells is None:
                 self._unions_pinned(system, unsafe, findings, seen_regions, key)
                 self._any_union_pinned(system, unsafe, released_zero, findings, seen_regions)
+                self._few_atoms_pinned(system, unsafe, released_zero, findings, seen_regions)
             if exact and self.cells is None and int((~system.zero).sum()) <= MILP_MAX_ATOMS:
                 self._whole_pinned(system, unsafe, released_zero, findings, seen_regions)
         if findings:
@@ -845,6 +846,91 @@ class Audit:
             found.append(region)
             seen.add(region)
             findings.append(self._difference(system, vector))
+
+    def _few_atoms_pinned(
+        self,
+        system: _System,
+        unsafe: Any,
+        released_zero: np.ndarray,
+        findings: list[Finding],
+        seen: set[frozenset[int]],
+    ) -> None:
+        """Beyond a small system: every union of two or three atoms of one block that the shown counts pin down
+        to a value the policy would hide (threat model R14: c + e = (a+b+c+e) − (a+b+d+e) + (d+e) gave 3 while c
+        and e each stayed open, in a system too large for :meth:`_any_union_pinned`).
+
+        A union is pinned when its indicator lies in the row space: when its atoms' distances from the row
+        space (vectors) add up to zero. One random direction turns each atom's distance into a number, as
+        :meth:`_residual_keys` does for boxes; pairs whose numbers add up to zero are found by sorting, triples
+        by one search per pair of the sorted numbers, and each candidate whose value the policy would hide is
+        proved by its exact distance. A union across blocks needs no search: each block's part of it is then
+        pinned on its own, and smaller. Passed over as by :meth:`_any_union_pinned`; only the smallest unions
+        are reported in a round. It runs where the system has at most ``UNION_MAX_ATOMS`` live atoms, as
+        :meth:`_unions_pinned` (the search is quadratic, and whether the earlier releases alone pin a union
+        found needs their own system: 2.7 s after 200 releases; long histories are not searched)."""
+        live = ~system.zero & ~self.structural_zero & ~released_zero & ~system.free
+        if not ANY_UNION_MAX_ATOMS < int(live.sum()) <= UNION_MAX_ATOMS:
+            return  # a small system: every union was checked; a long history: not searched
+        rng = np.random.default_rng(1)
+        candidates: list[tuple[int, ...]] = []
+        for block in system.blocks:
+            if not block.basis.shape[1]:
+                continue
+            g = rng.standard_normal(len(block.atoms))
+            key = g - block.basis @ (block.basis.T @ g)
+            distance = 1.0 - np.einsum("ij,ij->i", block.basis, block.basis)  # 0: the atom itself is pinned
+            usable = np.flatnonzero(live[block.atoms] & (distance > 1e-6))
+            if len(usable) < 2:
+                continue
+            order = usable[np.argsort(key[usable], kind="stable")]
+            keys, atoms = key[order], block.atoms[order]
+            values = system.solution[atoms]
+            tolerance = 1e-7 * max(1.0, float(np.abs(keys).max()))
+            lows = np.searchsorted(keys, -keys - tolerance, "left")
+            highs = np.searchsorted(keys, -keys + tolerance, "right")
+            for first in np.flatnonzero(highs > np.maximum(lows, np.arange(len(keys)) + 1)).tolist():
+                candidates += [(first, second) for second in range(max(int(lows[first]), first + 1), int(highs[first]))]
+            positions = np.arange(len(keys))
+            for start in range(0, len(keys) - 2, 128):  # every pair (first < second), 128 firsts at a time
+                firsts, seconds = np.nonzero(positions[None, :] > positions[start : start + 128, None])
+                firsts += start
+                sums = keys[firsts] + keys[seconds]
+                near = np.clip(np.searchsorted(keys, -sums), 1, len(keys) - 1)
+                hit = np.minimum(np.abs(keys[near] + sums), np.abs(keys[near - 1] + sums)) <= tolerance
+                found_pairs = zip(firsts[hit].tolist(), seconds[hit].tolist(), sums[hit].tolist(), strict=True)
+                for first, second, total in found_pairs:
+                    low = int(np.searchsorted(keys, -total - tolerance, "left"))
+                    high = int(np.searchsorted(keys, -total + tolerance, "right"))
+                    candidates += [(first, second, third) for third in range(max(low, second + 1), high)]
+            if not candidates:
+                continue
+            found: list[frozenset[int]] = []
+            listed: set[frozenset[int]] | None = None
+            # by the atoms' own indices (twins' numbers may swap places with the BLAS kernel's rounding)
+            for union in sorted(candidates, key=lambda u: (len(u), sorted(atoms[list(u)].tolist()))):
+                value = float(values[list(union)].sum())
+                rounded = round(value)
+                if abs(value - rounded) > 1e-6 or not ((0 < rounded < self._k) or (rounded == 0 and unsafe(0))):
+                    continue
+                region = frozenset(int(atoms[i]) for i in union)
+                if region in seen or any(f < region for f in found):
+                    continue
+                vector = np.zeros(self.incidence.shape[1])
+                vector[list(region)] = 1.0
+                if system.residual(vector) > 1e-6:
+                    continue  # the random direction's coincidence: not pinned
+                if listed is None:
+                    listed = {self._live_region(j, live) for j in range(len(self.box_atoms))}
+                if region in listed or self._cells_of_a_table(region, live):
+                    continue
+                if self._opened(vector, 2, rounded, rounded) is not None:
+                    continue
+                if self._history_system().residual(vector) < 1e-6:
+                    continue  # the earlier releases alone pin it: public before this release
+                found.append(region)
+                seen.add(region)
+                findings.append(self._difference(system, vector))
+            candidates = []
 
     def _cells_of_a_table(self, region: frozenset[int], live: np.ndarray) -> bool:
         """Whether ``region`` is two or more cells of one table (sibling boxes, no two sharing an atom): a sum

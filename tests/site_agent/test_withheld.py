@@ -11,9 +11,12 @@ small record space (independent of site_agent.audit).
 from __future__ import annotations
 
 import itertools
+import math
+import random
 from types import SimpleNamespace
 
 import numpy as np
+from scipy.optimize import linprog
 
 from federation.protocol import PolicyViolation
 from simulations import rerun
@@ -270,6 +273,95 @@ def test_no_union_of_cells_is_pinned_small_in_a_small_system() -> None:
     for region in (set(u) for r in range(1, 6) for u in itertools.combinations(FIVE, r)):
         seen = set(possible[:, [FIVE.index(c) for c in region]].sum(axis=1).tolist())
         assert not (len(seen) == 1 and 0 < next(iter(seen)) < 5), region
+
+
+def _recipient_range(counts: CountSet, released: dict, rules: dict, k: int, region: str) -> tuple[float, float]:
+    """The smallest and largest number of records in ``region`` (cells of ``z``) over every table of real
+    non-negative cells that gives each shown count its value and each withheld count what its rule says
+    (zeros shown): the recipient's own linear programs (scipy.optimize.linprog, HiGHS)."""
+    letters = sorted({c for d in counts.definitions.values() for c in d.where[0].values})
+    rows, rhs, upper_rows, upper = [], [], [], []
+    for name, definition in counts.definitions.items():
+        row = [1.0 if c in definition.where[0].values else 0.0 for c in letters]
+        if released[name] is not None:
+            rows.append(row)
+            rhs.append(released[name])
+        elif rules[name] == "minimum_cell_size":  # 1..k-1
+            upper_rows += [[-v for v in row], row]
+            upper += [-1.0, k - 1.0]
+    objective = np.array([1.0 if c in region else 0.0 for c in letters])
+    ends = []
+    for sign in (1.0, -1.0):
+        solved = linprog(
+            sign * objective,
+            A_ub=np.array(upper_rows) if upper_rows else None,
+            b_ub=np.array(upper) if upper else None,
+            A_eq=np.array(rows),
+            b_eq=np.array(rhs, dtype=float),
+            bounds=(0, None),
+            method="highs",
+        )
+        assert solved.status in (0, 3)  # 3: unbounded (nothing shown bounds the region)
+        ends.append(sign * solved.fun if solved.status == 0 else -sign * math.inf)
+    return ends[0], ends[1]
+
+
+def test_no_pair_of_cells_is_pinned_small_in_a_large_system() -> None:
+    # The five cells above (a+d, b+d and b+e give a+e = 3, k = 5), now beside fourteen more cells, each shown:
+    # too many live atoms for every union to be checked (at most 16). The pair a+e is found by the search for
+    # unions of two or three atoms in any system (threat model R14); before it, the site released every count
+    # but c and the recipient's linear programs (``_recipient_range``) gave a+e = 3 exactly.
+    values = {"a": 1, "b": 7, "c": 1, "d": 5, "e": 2}
+    more = "fghijklmnopqrs"
+    values.update({c: 6 + i % 3 for i, c in enumerate(more)})
+    boxes = ["ad", "bd", "be", "c", *more]
+    counts = counts_of(values, tuple(boxes))
+    everything = {n: v for n, v in counts.values.items()}
+    assert _recipient_range(counts, everything, {}, 5, "ae") == (3, 3)  # shown as asked, a+e is known
+    protected = protect(counts, policy(k=5))
+    low, high = _recipient_range(counts, protected.released, protected.rules, 5, "ae")
+    assert high - low >= 1  # open: at least two values
+    for cell in "abcde":
+        low, high = _recipient_range(counts, protected.released, protected.rules, 5, cell)
+        assert not (low == high and 0 < low < 5), cell
+    assert sum(v is not None for v in protected.released.values()) >= len(boxes) - 4  # the rest is shown
+
+
+def test_no_two_or_three_cells_are_pinned_small_in_random_larger_releases() -> None:
+    # Random releases of their own making: 20 cells of one variable (values 0..12), 14 random boxes of 2..6
+    # cells and the records read, so that every count is tied into one system of more than 16 live atoms.
+    # The recipient's own linear algebra (numpy's SVD of the shown counts' rows) must pin no cell, and no
+    # union of two or three cells, to 1..k-1. Before the search for unions of two or three atoms (threat model
+    # R14), 5 of 60 such releases (seed 1) and 5 of 100 (seed 2, unions of up to four cells) pinned one.
+    rng = random.Random(1)
+    letters = "abcdefghijklmnopqrst"
+    checked = 0
+    for _ in range(40):
+        values = {c: rng.choice([0, 1, 2, 3, 5, 6, 7, 8, 9, 12]) for c in letters}
+        boxes: set[str] = set()
+        while len(boxes) < 14:
+            boxes.add("".join(sorted(rng.sample(letters, rng.randint(2, 6)))))
+        ordered = [*sorted(boxes), letters]
+        counts = counts_of(values, tuple(ordered))
+        protected = protect(counts, policy(k=5))
+        rows = np.array(
+            [
+                [1.0 if c in box else 0.0 for c in letters]
+                for i, box in enumerate(ordered)
+                if protected.released[f"t.b{i}"] is not None
+            ]
+        )
+        _, singular, right = np.linalg.svd(rows, full_matrices=False)
+        basis = right[singular > 1e-9].T
+        for size in (1, 2, 3):
+            for region in itertools.combinations(range(len(letters)), size):
+                vector = np.zeros(len(letters))
+                vector[list(region)] = 1.0
+                rest = vector - basis @ (basis.T @ vector)
+                if rest @ rest < 1e-12:  # pinned: the shown counts give its value
+                    assert not 0 < sum(values[letters[i]] for i in region) < 5, region
+        checked += 1
+    assert checked == 40
 
 
 # --- a recipient who reruns the site's algorithm (threat model R12) ------------------------------------------
