@@ -36,9 +36,10 @@ for an ONNX graph, those a record or a random input reaches), so a score band is
    earlier releases alone already pin.
    In a small system (at most ``ANY_UNION_MAX_ATOMS`` live atoms in its equations) every union of atoms is
    checked (``Audit._any_union_pinned``), with the same passes and two or more cells of one table passed over;
-   in a larger one of at most ``UNION_MAX_ATOMS`` live atoms, every union of two or three atoms of one block
-   (``Audit._few_atoms_pinned``: the atoms' distances from the row space, turned into numbers by one random
-   direction, add up to zero; each candidate proved by its exact distance).
+   in a larger one of at most ``UNION_MAX_ATOMS`` live atoms, every union of two or three atoms of one block,
+   and of four in a block of at most ``FOUR_MAX_ATOMS`` (``Audit._few_atoms_pinned``: the atoms' distances
+   from the row space, turned into numbers by one random direction, add up to zero; each candidate proved by
+   its exact distance).
 
 **Scale: the grouped model.** A site's history crosses every variable's cuts with every other's (fine ROC
 score bands times age bands: 150,000 atoms after 200 releases of mixed analyses), though no count names a fine

@@ -46,6 +46,9 @@ UNION_FAMILY_BOXES = 40  # a family with more boxes inside one F is not searched
 # Where the full model has at most this many live atoms in its equations, every union of them is checked
 # (``_any_union_pinned``: 65,535 unions, one matrix product).
 ANY_UNION_MAX_ATOMS = 16
+# Beyond it, unions of two or three atoms of one block are searched where the system has at most UNION_MAX_ATOMS
+# live atoms, and unions of four where the block has at most this many (``_few_atoms_pinned``).
+FOUR_MAX_ATOMS = 400
 
 
 @dataclass
@@ -855,15 +858,17 @@ class Audit:
         findings: list[Finding],
         seen: set[frozenset[int]],
     ) -> None:
-        """Beyond a small system: every union of two or three atoms of one block that the shown counts pin down
-        to a value the policy would hide (threat model R14: c + e = (a+b+c+e) − (a+b+d+e) + (d+e) gave 3 while c
-        and e each stayed open, in a system too large for :meth:`_any_union_pinned`).
+        """Beyond a small system: every union of two or three atoms of one block (four, in a block of at most
+        ``FOUR_MAX_ATOMS`` atoms) that the shown counts pin down to a value the policy would hide (threat model
+        R14: c + e = (a+b+c+e) − (a+b+d+e) + (d+e) gave 3 while c and e each stayed open, in a system too large
+        for :meth:`_any_union_pinned`).
 
         A union is pinned when its indicator lies in the row space: when its atoms' distances from the row
         space (vectors) add up to zero. One random direction turns each atom's distance into a number, as
         :meth:`_residual_keys` does for boxes; pairs whose numbers add up to zero are found by sorting, triples
-        by one search per pair of the sorted numbers, and each candidate whose value the policy would hide is
-        proved by its exact distance. A union across blocks needs no search: each block's part of it is then
+        by one search per pair of the sorted numbers, fours by searching the sorted sums of pairs
+        (:meth:`_fours`), and each candidate whose value the policy would hide is proved by its exact
+        distance. A union across blocks needs no search: each block's part of it is then
         pinned on its own, and smaller. Passed over as by :meth:`_any_union_pinned`; only the smallest unions
         are reported in a round. It runs where the system has at most ``UNION_MAX_ATOMS`` live atoms, as
         :meth:`_unions_pinned` (the search is quadratic, and whether the earlier releases alone pin a union
@@ -902,6 +907,8 @@ class Audit:
                     low = int(np.searchsorted(keys, -total - tolerance, "left"))
                     high = int(np.searchsorted(keys, -total + tolerance, "right"))
                     candidates += [(first, second, third) for third in range(max(low, second + 1), high)]
+            if len(keys) <= FOUR_MAX_ATOMS:
+                candidates += self._fours(keys, tolerance)
             if not candidates:
                 continue
             found: list[frozenset[int]] = []
@@ -931,6 +938,27 @@ class Audit:
                 seen.add(region)
                 findings.append(self._difference(system, vector))
             candidates = []
+
+    @staticmethod
+    def _fours(keys: np.ndarray, tolerance: float) -> list[tuple[int, ...]]:
+        """Positions of four sorted numbers that add up to zero: two pairs whose sums cancel (every pair's sum,
+        sorted, searched once). A pair whose own sum is zero is left out: a union holding it is pinned only if
+        the other pair is too, and each pair is then a smaller union."""
+        firsts, seconds = np.nonzero(np.arange(len(keys))[None, :] > np.arange(len(keys))[:, None])
+        sums = keys[firsts] + keys[seconds]
+        keep = np.abs(sums) > tolerance
+        firsts, seconds, sums = firsts[keep], seconds[keep], sums[keep]
+        order = np.argsort(sums, kind="stable")
+        ranked = sums[order]
+        lows = np.searchsorted(ranked, -sums - tolerance, "left")
+        highs = np.searchsorted(ranked, -sums + tolerance, "right")
+        fours: set[tuple[int, ...]] = set()
+        for p in np.flatnonzero(highs > lows).tolist():
+            for q in order[lows[p] : highs[p]].tolist():
+                union = {int(firsts[p]), int(seconds[p]), int(firsts[q]), int(seconds[q])}
+                if len(union) == 4:
+                    fours.add(tuple(sorted(union)))
+        return sorted(fours)
 
     def _cells_of_a_table(self, region: frozenset[int], live: np.ndarray) -> bool:
         """Whether ``region`` is two or more cells of one table (sibling boxes, no two sharing an atom): a sum

@@ -327,12 +327,13 @@ def test_no_pair_of_cells_is_pinned_small_in_a_large_system() -> None:
     assert sum(v is not None for v in protected.released.values()) >= len(boxes) - 4  # the rest is shown
 
 
-def test_no_two_or_three_cells_are_pinned_small_in_random_larger_releases() -> None:
+def test_no_few_cells_are_pinned_small_in_random_larger_releases() -> None:
     # Random releases of their own making: 20 cells of one variable (values 0..12), 14 random boxes of 2..6
     # cells and the records read, so that every count is tied into one system of more than 16 live atoms.
     # The recipient's own linear algebra (numpy's SVD of the shown counts' rows) must pin no cell, and no
-    # union of two or three cells, to 1..k-1. Before the search for unions of two or three atoms (threat model
-    # R14), 5 of 60 such releases (seed 1) and 5 of 100 (seed 2, unions of up to four cells) pinned one.
+    # union of two, three or four cells, to 1..k-1. Before the search for unions of two to four atoms (threat
+    # model R14) 5 of 60 such releases (seed 1) pinned a union of two or three; with unions of two or three
+    # searched but not four, this test failed on cells l, m, q and r.
     rng = random.Random(1)
     letters = "abcdefghijklmnopqrst"
     checked = 0
@@ -353,7 +354,7 @@ def test_no_two_or_three_cells_are_pinned_small_in_random_larger_releases() -> N
         )
         _, singular, right = np.linalg.svd(rows, full_matrices=False)
         basis = right[singular > 1e-9].T
-        for size in (1, 2, 3):
+        for size in (1, 2, 3, 4):
             for region in itertools.combinations(range(len(letters)), size):
                 vector = np.zeros(len(letters))
                 vector[list(region)] = 1.0
