@@ -37,7 +37,8 @@ def _table(results: dict[str, Any]) -> str:
     a = results.get("audit")
     if a:
         lines.append(
-            f"| disclosure audit | {a['counts_in_release']} counts vs {a['earlier_releases']} releases | "
+            f"| disclosure audit | {a['counts_in_release']} counts vs {a['earlier_releases']} releases"
+            f"{' (' + str(a['refused_requests']) + ' requests refused)' if a.get('refused_requests') else ''} | "
             f"{a['protect_s']:.2f} s (LP audit {a['audit_s']:.2f} s) | {a['protect_alone_s']:.3f} s (no history) | "
             f"{a['ratio_to_alone']:.0f}x; {a['ratio_to_target']:.2f} of target | < 2 s | |"
         )

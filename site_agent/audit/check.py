@@ -115,6 +115,7 @@ class Audit:
         self._joined, self._joint_values, self.joints = joint_boxes(self.boxes, models, schema_entries, occupied)
         self.cells: Cells | None = None  # the grouped model's separator cells (None: the full model)
         self._union_answers: dict[tuple, tuple[int, ...] | None] = {}  # see _unions_pinned
+        self._family_regions: tuple[int, list[list[frozenset[int]]]] | None = None  # see _cells_of_a_table
         # whole-number tables the second looks found, tried first in later evaluations (see Branches); None:
         # each evaluation searches afresh (tests compare repair rounds with fresh audits that way)
         self._branch_tables: list[np.ndarray] | None = [] if carry_tables else None
@@ -964,8 +965,14 @@ class Audit:
         """Whether ``region`` is two or more cells of one table (sibling boxes, no two sharing an atom): a sum
         of counts the release lists, each protected on its own (as :meth:`_rest_is_listed`)."""
         self._families()
-        for _, members in self._sibling_families:
-            parts = [r for r in (self._live_region(m, live) for m in members) if r and r <= region]
+        key = hash(live.tobytes())
+        if self._family_regions is None or self._family_regions[0] != key:  # once per evaluation, not per region
+            regions = [
+                [r for r in (self._live_region(m, live) for m in members) if r] for _, members in self._sibling_families
+            ]
+            self._family_regions = (key, regions)
+        for family in self._family_regions[1]:
+            parts = [r for r in family if r <= region]
             if len(parts) >= 2 and sum(map(len, parts)) == len(region) and frozenset().union(*parts) == region:
                 return True
         return False
