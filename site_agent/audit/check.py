@@ -836,20 +836,35 @@ class Audit:
         found: list[frozenset[int]] = []
         for row in sorted(pinned.tolist(), key=lambda r: (unions[r].sum(), r)):
             region = frozenset(atoms[unions[row] > 0].tolist())
-            if region in seen or region in listed or any(f < region for f in found):
-                continue
-            if self._cells_of_a_table(region, live):
-                continue
-            vector = np.zeros(self.incidence.shape[1])
-            vector[list(region)] = 1.0
-            value = int(rounded[row])
-            if self._opened(vector, 2, value, value) is not None:
-                continue
-            if self._history_system().residual(vector) < 1e-6:
-                continue  # the earlier releases alone pin it: public before this release
-            found.append(region)
-            seen.add(region)
-            findings.append(self._difference(system, vector))
+            self._pinned_union(system, region, int(rounded[row]), live, listed, found, seen, findings)
+
+    def _pinned_union(
+        self,
+        system: _System,
+        region: frozenset[int],
+        value: int,
+        live: np.ndarray,
+        listed: set[frozenset[int]],
+        found: list[frozenset[int]],
+        seen: set[frozenset[int]],
+        findings: list[Finding],
+    ) -> None:
+        """A union of atoms the shown counts pin to ``value``, which the policy hides: a finding, unless it is
+        passed over (seen already, or larger than one found; a listed count; cells of one table; pinned by the
+        earlier releases alone; open for a recipient who keeps each "0, or at least k" open)."""
+        if region in seen or region in listed or any(f < region for f in found):
+            return
+        if self._cells_of_a_table(region, live):
+            return
+        vector = np.zeros(self.incidence.shape[1])
+        vector[list(region)] = 1.0
+        if self._history_system().residual(vector) < 1e-6:
+            return  # the earlier releases alone pin it: public before this release
+        if self._opened(vector, 2, value, value) is not None:  # (its integer programs cost most: asked last)
+            return
+        found.append(region)
+        seen.add(region)
+        findings.append(self._difference(system, vector))
 
     def _few_atoms_pinned(
         self,
@@ -921,23 +936,13 @@ class Audit:
                 if abs(value - rounded) > 1e-6 or not ((0 < rounded < self._k) or (rounded == 0 and unsafe(0))):
                     continue
                 region = frozenset(int(atoms[i]) for i in union)
-                if region in seen or any(f < region for f in found):
-                    continue
                 vector = np.zeros(self.incidence.shape[1])
                 vector[list(region)] = 1.0
-                if system.residual(vector) > 1e-6:
-                    continue  # the random direction's coincidence: not pinned
+                if region in seen or system.residual(vector) > 1e-6:
+                    continue  # (a distance above 0: the random direction's coincidence, not pinned)
                 if listed is None:
                     listed = {self._live_region(j, live) for j in range(len(self.box_atoms))}
-                if region in listed or self._cells_of_a_table(region, live):
-                    continue
-                if self._opened(vector, 2, rounded, rounded) is not None:
-                    continue
-                if self._history_system().residual(vector) < 1e-6:
-                    continue  # the earlier releases alone pin it: public before this release
-                found.append(region)
-                seen.add(region)
-                findings.append(self._difference(system, vector))
+                self._pinned_union(system, region, rounded, live, listed, found, seen, findings)
             candidates = []
 
     @staticmethod

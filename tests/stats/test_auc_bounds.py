@@ -4,6 +4,7 @@ counted ½), on scikit-learn's bundled breast cancer data (Street, Wolberg & Man
 
 from __future__ import annotations
 
+import dataclasses
 import itertools
 
 import numpy as np
@@ -51,6 +52,17 @@ def _sklearn_auc(positive: tuple[int, ...], negative: tuple[int, ...]) -> float:
     return float(roc_auc_score(labels, scores))
 
 
+def _every_auc(
+    cells_pos: list, cells_neg: list, n_pos: int, n_neg: int, below_edge: tuple[int, int] | None = None
+) -> list[float]:
+    """scikit-learn's AUC of every table the pieces and totals allow (with ``below_edge``, only those with that
+    many of each class in the first four bands: a 2x2 table at the edge above band 3)."""
+    tables = [_completions(cells_pos, n_pos), _completions(cells_neg, n_neg)]
+    if below_edge is not None:
+        tables = [[t for t in found if sum(t[:4]) == fixed] for found, fixed in zip(tables, below_edge, strict=True)]
+    return [_sklearn_auc(p, n) for p in tables[0] for n in tables[1]]
+
+
 def test_the_data_has_small_bands_to_withhold() -> None:
     positive, negative = _bands()
     # read from the data: 61 of the first 90 records are malignant, by band
@@ -79,7 +91,7 @@ def test_the_bounds_are_the_smallest_and_largest_auc_of_every_table_allowed(
     cells_neg = [_pieces(int(v), hidden_negative.get(j), n_neg) for j, v in enumerate(negative)]
     found = auc_bounds(cells_pos, cells_neg, n_pos, n_neg)
     assert found is not None
-    every = [_sklearn_auc(p, n) for p in _completions(cells_pos, n_pos) for n in _completions(cells_neg, n_neg)]
+    every = _every_auc(cells_pos, cells_neg, n_pos, n_neg)
     assert len(every) >= 2
     assert found[0] == pytest.approx(min(every), abs=1e-12)
     assert found[1] == pytest.approx(max(every), abs=1e-12)
@@ -125,13 +137,7 @@ def test_a_two_by_two_table_at_a_band_edge_narrows_the_bounds_to_the_tables_it_a
     )
     narrow = auc_bounds(cells_pos, cells_neg, n_pos, n_neg, cumulative)
     wide = auc_bounds(cells_pos, cells_neg, n_pos, n_neg)
-    every = [
-        _sklearn_auc(p, n)
-        for p in _completions(cells_pos, n_pos)
-        if sum(p[:4]) == fn
-        for n in _completions(cells_neg, n_neg)
-        if sum(n[:4]) == tn
-    ]
+    every = _every_auc(cells_pos, cells_neg, n_pos, n_neg, below_edge=(fn, tn))
     assert narrow == pytest.approx((min(every), max(every)), abs=1e-12)
     assert narrow is not None and wide is not None
     assert wide[0] < narrow[0] and narrow[1] < wide[1]
@@ -226,25 +232,9 @@ def test_a_release_gets_the_bounds_of_every_table_its_counts_and_rules_allow() -
     found = auc_range(release)
     cells_pos = [_pieces(int(v), hidden_positive.get(j), n_pos) for j, v in enumerate(positive)]
     cells_neg = [_pieces(int(v), hidden_negative.get(j), n_neg) for j, v in enumerate(negative)]
-    every = [
-        _sklearn_auc(p, n)
-        for p in _completions(cells_pos, n_pos)
-        if sum(p[:4]) == fn
-        for n in _completions(cells_neg, n_neg)
-        if sum(n[:4]) == tn
-    ]
+    every = _every_auc(cells_pos, cells_neg, n_pos, n_neg, below_edge=(fn, tn))
     assert len(every) >= 2
     assert found == pytest.approx((min(every), max(every)), abs=1e-12)
     # a release that shows its AUC gets none
-    shown = Release(
-        "study",
-        "r1",
-        "b" * 64,
-        "s1",
-        "2026-12-01T00:00:00Z",
-        policy,
-        flow,
-        (ConfusionTable(14.0, cells),),
-        extra={"roc": {**roc, "auc": 0.8}},
-    )
+    shown = dataclasses.replace(release, extra={"roc": {**roc, "auc": 0.8}})
     assert auc_range(shown) is None
