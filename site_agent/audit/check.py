@@ -51,6 +51,16 @@ ANY_UNION_MAX_ATOMS = 16
 FOUR_MAX_ATOMS = 400
 
 
+def _cancelling(numbers: np.ndarray, tolerance: float) -> list[tuple[int, int]]:
+    """Positions ``(p, q)``, ``p < q``, of two numbers whose sum is within ``tolerance`` of zero (sorted once,
+    each number's negation searched)."""
+    order = np.argsort(numbers, kind="stable")
+    ranked = numbers[order]
+    lows = np.searchsorted(ranked, -numbers - tolerance, "left")
+    highs = np.searchsorted(ranked, -numbers + tolerance, "right")
+    return [(p, q) for p in np.flatnonzero(highs > lows).tolist() for q in order[lows[p] : highs[p]].tolist() if p < q]
+
+
 @dataclass
 class _Statement:
     release: int
@@ -115,7 +125,7 @@ class Audit:
         self._joined, self._joint_values, self.joints = joint_boxes(self.boxes, models, schema_entries, occupied)
         self.cells: Cells | None = None  # the grouped model's separator cells (None: the full model)
         self._union_answers: dict[tuple, tuple[int, ...] | None] = {}  # see _unions_pinned
-        self._family_regions: tuple[int, list[list[frozenset[int]]]] | None = None  # see _cells_of_a_table
+        self._live_regions: tuple[int, set[frozenset[int]], list[list[frozenset[int]]]] | None = None  # _regions
         # whole-number tables the second looks found, tried first in later evaluations (see Branches); None:
         # each evaluation searches afresh (tests compare repair rounds with fresh audits that way)
         self._branch_tables: list[np.ndarray] | None = [] if carry_tables else None
@@ -546,8 +556,12 @@ class Audit:
         return self._opened_cache[key]
 
     def _vector(self, box: int) -> np.ndarray:
+        return self._indicator(self.box_index[box])
+
+    def _indicator(self, atoms: Any) -> np.ndarray:
+        """The 0/1 vector over every atom of a region (a box's atoms, or a union)."""
         vector = np.zeros(self.incidence.shape[1])
-        vector[self.box_index[box]] = 1.0
+        vector[list(atoms) if isinstance(atoms, frozenset) else atoms] = 1.0
         return vector
 
     def _targets(self, current_values: Mapping[str, int | None], first: dict[int, int]) -> dict[int, tuple[int, list]]:
@@ -832,32 +846,30 @@ class Audit:
         pinned = np.flatnonzero((squared < 1e-9) & small & (np.abs(values - rounded) < 1e-6))
         if len(pinned) == 0:
             return
-        listed = {self._live_region(j, live) for j in range(len(self.box_atoms))}
         found: list[frozenset[int]] = []
         for row in sorted(pinned.tolist(), key=lambda r: (unions[r].sum(), r)):
             region = frozenset(atoms[unions[row] > 0].tolist())
-            self._pinned_union(system, region, int(rounded[row]), live, listed, found, seen, findings)
+            self._pinned_union(system, region, self._indicator(region), int(rounded[row]), live, found, seen, findings)
 
     def _pinned_union(
         self,
         system: _System,
         region: frozenset[int],
+        vector: np.ndarray,
         value: int,
         live: np.ndarray,
-        listed: set[frozenset[int]],
         found: list[frozenset[int]],
         seen: set[frozenset[int]],
         findings: list[Finding],
     ) -> None:
-        """A union of atoms the shown counts pin to ``value``, which the policy hides: a finding, unless it is
-        passed over (seen already, or larger than one found; a listed count; cells of one table; pinned by the
-        earlier releases alone; open for a recipient who keeps each "0, or at least k" open)."""
-        if region in seen or region in listed or any(f < region for f in found):
+        """A union of atoms (``vector`` its indicator) the shown counts pin to ``value``, which the policy hides:
+        a finding, unless it is passed over (seen already, or larger than one found; a listed count; cells of
+        one table; pinned by the earlier releases alone; open for a recipient who keeps each "0, or at least k"
+        open)."""
+        if region in seen or region in self._regions(live)[0] or any(f < region for f in found):
             return
         if self._cells_of_a_table(region, live):
             return
-        vector = np.zeros(self.incidence.shape[1])
-        vector[list(region)] = 1.0
         if self._history_system().residual(vector) < 1e-6:
             return  # the earlier releases alone pin it: public before this release
         if self._opened(vector, 2, value, value) is not None:  # (its integer programs cost most: asked last)
@@ -893,7 +905,6 @@ class Audit:
         if not ANY_UNION_MAX_ATOMS < int(live.sum()) <= UNION_MAX_ATOMS:
             return  # a small system: every union was checked; a long history: not searched
         rng = np.random.default_rng(1)
-        candidates: list[tuple[int, ...]] = []
         for block in system.blocks:
             if not block.basis.shape[1]:
                 continue
@@ -907,10 +918,7 @@ class Audit:
             keys, atoms = key[order], block.atoms[order]
             values = system.solution[atoms]
             tolerance = 1e-7 * max(1.0, float(np.abs(keys).max()))
-            lows = np.searchsorted(keys, -keys - tolerance, "left")
-            highs = np.searchsorted(keys, -keys + tolerance, "right")
-            for first in np.flatnonzero(highs > np.maximum(lows, np.arange(len(keys)) + 1)).tolist():
-                candidates += [(first, second) for second in range(max(int(lows[first]), first + 1), int(highs[first]))]
+            candidates: list[tuple[int, ...]] = list(_cancelling(keys, tolerance))
             positions = np.arange(len(keys))
             for start in range(0, len(keys) - 2, 128):  # every pair (first < second), 128 firsts at a time
                 firsts, seconds = np.nonzero(positions[None, :] > positions[start : start + 128, None])
@@ -925,58 +933,54 @@ class Audit:
                     candidates += [(first, second, third) for third in range(max(low, second + 1), high)]
             if len(keys) <= FOUR_MAX_ATOMS:
                 candidates += self._fours(keys, tolerance)
-            if not candidates:
-                continue
             found: list[frozenset[int]] = []
-            listed: set[frozenset[int]] | None = None
             # by the atoms' own indices (twins' numbers may swap places with the BLAS kernel's rounding)
             for union in sorted(candidates, key=lambda u: (len(u), sorted(atoms[list(u)].tolist()))):
                 value = float(values[list(union)].sum())
                 rounded = round(value)
-                if abs(value - rounded) > 1e-6 or not ((0 < rounded < self._k) or (rounded == 0 and unsafe(0))):
+                if abs(value - rounded) > 1e-6 or not unsafe(rounded):
                     continue
                 region = frozenset(int(atoms[i]) for i in union)
-                vector = np.zeros(self.incidence.shape[1])
-                vector[list(region)] = 1.0
-                if region in seen or system.residual(vector) > 1e-6:
-                    continue  # (a distance above 0: the random direction's coincidence, not pinned)
-                if listed is None:
-                    listed = {self._live_region(j, live) for j in range(len(self.box_atoms))}
-                self._pinned_union(system, region, rounded, live, listed, found, seen, findings)
-            candidates = []
+                if region in seen:
+                    continue
+                vector = self._indicator(region)
+                if system.residual(vector) > 1e-6:
+                    continue  # the random direction's coincidence: not pinned
+                self._pinned_union(system, region, vector, rounded, live, found, seen, findings)
 
     @staticmethod
     def _fours(keys: np.ndarray, tolerance: float) -> list[tuple[int, ...]]:
-        """Positions of four sorted numbers that add up to zero: two pairs whose sums cancel (every pair's sum,
-        sorted, searched once). A pair whose own sum is zero is left out: a union holding it is pinned only if
-        the other pair is too, and each pair is then a smaller union."""
+        """Positions of four sorted numbers that add up to zero: two pairs whose sums cancel. A pair whose own
+        sum is zero is left out: a union holding it is pinned only if the other pair is too, and each pair is
+        then a smaller union."""
         firsts, seconds = np.nonzero(np.arange(len(keys))[None, :] > np.arange(len(keys))[:, None])
         sums = keys[firsts] + keys[seconds]
         keep = np.abs(sums) > tolerance
         firsts, seconds, sums = firsts[keep], seconds[keep], sums[keep]
-        order = np.argsort(sums, kind="stable")
-        ranked = sums[order]
-        lows = np.searchsorted(ranked, -sums - tolerance, "left")
-        highs = np.searchsorted(ranked, -sums + tolerance, "right")
-        fours: set[tuple[int, ...]] = set()
-        for p in np.flatnonzero(highs > lows).tolist():
-            for q in order[lows[p] : highs[p]].tolist():
-                union = {int(firsts[p]), int(seconds[p]), int(firsts[q]), int(seconds[q])}
-                if len(union) == 4:
-                    fours.add(tuple(sorted(union)))
+        fours = {
+            tuple(sorted(union))
+            for p, q in _cancelling(sums, tolerance)
+            if len(union := {int(firsts[p]), int(seconds[p]), int(firsts[q]), int(seconds[q])}) == 4
+        }
         return sorted(fours)
+
+    def _regions(self, live: np.ndarray) -> tuple[set[frozenset[int]], list[list[frozenset[int]]]]:
+        """The live atoms of every listed count, and of each sibling family's counts (the cells of one table),
+        for the atoms ``live``: worked out once per evaluation, not once per region asked about."""
+        key = hash(live.tobytes())
+        if self._live_regions is None or self._live_regions[0] != key:
+            self._families()
+            listed = {self._live_region(j, live) for j in range(len(self.box_atoms))}
+            families = [
+                [r for r in (self._live_region(m, live) for m in members) if r] for _, members in self._sibling_families
+            ]
+            self._live_regions = (key, listed, families)
+        return self._live_regions[1], self._live_regions[2]
 
     def _cells_of_a_table(self, region: frozenset[int], live: np.ndarray) -> bool:
         """Whether ``region`` is two or more cells of one table (sibling boxes, no two sharing an atom): a sum
         of counts the release lists, each protected on its own (as :meth:`_rest_is_listed`)."""
-        self._families()
-        key = hash(live.tobytes())
-        if self._family_regions is None or self._family_regions[0] != key:  # once per evaluation, not per region
-            regions = [
-                [r for r in (self._live_region(m, live) for m in members) if r] for _, members in self._sibling_families
-            ]
-            self._family_regions = (key, regions)
-        for family in self._family_regions[1]:
+        for family in self._regions(live)[1]:
             parts = [r for r in family if r <= region]
             if len(parts) >= 2 and sum(map(len, parts)) == len(region) and frozenset().union(*parts) == region:
                 return True
