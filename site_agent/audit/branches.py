@@ -11,7 +11,8 @@ whole-number table that satisfies every fact and gives it a value far enough bey
 (the true table lies inside that interval, so the two are the values the recipient cannot tell apart). The
 search is cheap first: the linear relaxation (in which the disjunction says nothing) rules most findings out
 at once; then, on each side it leaves open, each such count's branch is fixed as the relaxation's optimum
-leans (two choices) and a linear program, then an integer program with a node limit, looks for the table.
+leans (two choices) and a linear program, then integer programs with a node limit, look for the table (first
+on the counts near the linear program's table, the others held at 0; then on all: :func:`_near`).
 Each table found is checked against every fact here, not taken from the solver on trust. The disjunction is
 written with a 0/1 variable ``y`` per count (``count >= k y``, ``count <= M y``, ``M`` at least any count).
 
@@ -58,6 +59,9 @@ BUDGET_PROGRAMS = 200
 # Tables kept across the evaluations of one audit (its repair rounds and cut-back attempts), the latest first.
 KEPT_TABLES = 64
 MAX_ATOMS = 4_000  # a larger part of the model is not asked (its findings stand)
+# A row of at most this many columns through a count the linear table leaves fractional is freed in the
+# second of the smaller integer programs (:func:`_near`)
+NEAR_ROW = 100
 
 
 class Branches:
@@ -226,9 +230,14 @@ class Branches:
                 if linear is None or linear.status != 0:
                     continue  # this choice of branches has no table beyond: nor whole-number ones
                 table = self._table(linear, matrix, constraint)
-                if table is None:
-                    whole = self._solve(np.zeros(n + m), constraints, np.ones(n + m), fixed)
-                    table = self._table(whole, matrix, constraint)
+                for free in [] if table is not None else [*_near(linear.x, constraints, n), None]:
+                    # the integer program on the atoms near the linear table first (much smaller), then whole
+                    bounds = fixed if free is None else Bounds(fixed.lb, np.where(free, fixed.ub, 0.0))
+                    table = self._table(
+                        self._solve(np.zeros(n + m), constraints, np.ones(n + m), bounds), matrix, constraint
+                    )
+                    if table is not None:
+                        break
                 if table is not None and sign * round(float(target @ table)) >= beyond:
                     value = round(float(target @ table))
                     kept = np.full(len(self.position), np.nan)
@@ -302,6 +311,24 @@ class Branches:
         if np.any(values < constraint.lb - slack) or np.any(values > constraint.ub + slack):
             return None
         return table
+
+
+def _near(x: np.ndarray, constraints: list[LinearConstraint], n: int) -> list[np.ndarray]:
+    """Which columns the smaller integer programs leave free (the others held at 0), tried in turn before the whole
+    program: the linear table's nonzero counts; then also every count of a short row (at most ``NEAR_ROW``
+    columns) through one of its fractional counts. The branch variables (after the first ``n``) stay as fixed.
+    A table found there is a whole-number table of every fact like any other (checked); where none is found,
+    the whole program still runs. So the second look proves open at least what it did before, sooner, and
+    sometimes a table the whole program's node limit missed (at 50 earlier releases in ``make bench``: integer
+    programs of 3,004 counts, 5.6-6.7 s each whole, 0.15-0.24 s near the linear table)."""
+    rows = sparse.vstack([sparse.csr_matrix(c.A) for c in constraints]).tocsr()
+    fractional = np.flatnonzero(np.abs(x - np.round(x)) > 1e-6)
+    support = x > 1e-9
+    support[n:] = True
+    short = np.diff(rows.indptr) <= NEAR_ROW
+    touching = short & (np.asarray(abs(rows[:, fractional]).sum(axis=1)).ravel() > 0)
+    near = support | (np.asarray(abs(rows[touching]).sum(axis=0)).ravel() > 0)
+    return [support, near] if near.sum() > support.sum() else [support]
 
 
 def _linear(objective: np.ndarray, constraints: list[LinearConstraint], bounds: Bounds) -> Any:

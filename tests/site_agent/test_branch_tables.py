@@ -73,3 +73,59 @@ def test_a_kept_table_inside_the_interval_proves_nothing() -> None:
     later = branches({0: 10}, ("t.a", "t.b"), [np.array([5.0, 5.0])])
     later.programs = BUDGET_PROGRAMS
     assert later.open(A, 2, 5, 5) is None
+
+
+# Nine cells, four shown sums over them, six cells withheld as "0, or at least 3" (k = 3, zeros shown), two
+# (cells 0 and 2) not released at all and cell 5 in no shown sum. Found by a random search for a system whose
+# linear program, with each count's branch fixed, ends on a fractional table (here halves).
+NINE_SUMS = ((0, 2, 3, 6), (1, 2, 6, 7), (1, 4), (0, 6, 7, 8))
+NINE_SHOWN = (4, 8, 3, 8)
+NINE_WITHHELD = (1, 3, 4, 6, 7, 8)
+
+
+def nine_cell_values(cell: int) -> set[int]:
+    """Every value of ``cell`` over the recipient's whole-number tables of the nine cells (enumerated; each
+    withheld cell 0 or at least 3)."""
+    out = set()
+    for c0, c2, c3, c6 in itertools.product(range(5), repeat=4):  # the first sum, 4, fixes these four's range
+        for c1 in range(4):  # the third sum: c1 + c4 = 3
+            c7 = 8 - c1 - c2 - c6  # the second sum
+            c8 = 8 - c0 - c6 - c7  # the fourth sum
+            table = (c0, c1, c2, c3, 3 - c1, 0, c6, c7, c8)  # cell 5 lies in no sum and touches no other cell
+            if c0 + c2 + c3 + c6 != 4 or min(table) < 0:
+                continue
+            if all(table[c] == 0 or table[c] >= 3 for c in NINE_WITHHELD):
+                out.add(table[cell])
+    return out
+
+
+def test_a_fractional_linear_table_is_made_whole_by_a_small_program_near_it(monkeypatch) -> None:
+    from scipy.optimize import milp
+
+    import site_agent.audit.branches as module
+
+    incidence = np.zeros((4 + 9, 9))
+    for row, cells in enumerate(NINE_SUMS):
+        incidence[row, list(cells)] = 1
+    incidence[4:] = np.eye(9)
+    names = {f"t.{row}": row for row in range(13)}
+    withheld = {f"t.{4 + c}": "complementary" for c in (*NINE_WITHHELD, 5)}
+    facts = [(withheld, dict.fromkeys(withheld, False), 3, True, names)]
+    held = []
+
+    def recorded(*args, **kwargs):  # the real solver, with the columns each integer program holds at 0 noted
+        held.append(int(np.sum(kwargs["bounds"].ub == 0)))
+        return milp(*args, **kwargs)
+
+    monkeypatch.setattr(module, "milp", recorded)
+    second = Branches(
+        sparse.csr_matrix(incidence), dict(enumerate(NINE_SHOWN)), sparse.csr_matrix((0, 9)), np.zeros(9, bool), facts
+    )
+    cell_1 = np.eye(9)[1]
+    # the audit's own branch pins cell 1 at 3; the recipient's tables give it 0 too
+    assert {0, 3} <= nine_cell_values(1)
+    low, high = second.open(cell_1, 2, 3, 3)
+    assert (low, high) == (0, 3) and {low, high} <= nine_cell_values(1)
+    # one integer program ran, holding at 0 more columns than the branches alone (3 of 6 branch variables at 0):
+    # the small program near the linear table found the table, and the whole one did not run
+    assert len(held) == 1 and held[0] > 3
