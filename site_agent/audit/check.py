@@ -4,6 +4,7 @@
 from __future__ import annotations
 
 import copy
+import itertools
 import math
 import time
 from collections.abc import Mapping, Sequence
@@ -47,8 +48,10 @@ UNION_FAMILY_BOXES = 40  # a family with more boxes inside one F is not searched
 # (``_any_union_pinned``: 65,535 unions, one matrix product).
 ANY_UNION_MAX_ATOMS = 16
 # Beyond it, unions of two or three atoms of one block are searched where the system has at most UNION_MAX_ATOMS
-# live atoms, and unions of four where the block has at most this many (``_few_atoms_pinned``).
+# live atoms, unions of four where the block has at most this many (``_few_atoms_pinned``),
 FOUR_MAX_ATOMS = 400
+# and unions of five or six where it has at most this many (the sums of every three atoms: 161,700 at 100).
+SIX_MAX_ATOMS = 100
 
 
 def _cancelling(numbers: np.ndarray, tolerance: float) -> list[tuple[int, int]]:
@@ -59,6 +62,36 @@ def _cancelling(numbers: np.ndarray, tolerance: float) -> list[tuple[int, int]]:
     lows = np.searchsorted(ranked, -numbers - tolerance, "left")
     highs = np.searchsorted(ranked, -numbers + tolerance, "right")
     return [(p, q) for p in np.flatnonzero(highs > lows).tolist() for q in order[lows[p] : highs[p]].tolist() if p < q]
+
+
+def _subset_sums(numbers: np.ndarray, size: int, tolerance: float) -> tuple[np.ndarray, np.ndarray]:
+    """Every set of ``size`` positions (rows, ascending) whose numbers' sum is not within ``tolerance`` of
+    zero, with those sums: a set whose own sum is zero is a smaller union on its own."""
+    sets = np.array(list(itertools.combinations(range(len(numbers)), size)), dtype=np.int64).reshape(-1, size)
+    sums = numbers[sets].sum(axis=1)
+    keep = np.abs(sums) > tolerance
+    return sets[keep], sums[keep]
+
+
+def _fives_and_sixes(numbers: np.ndarray, tolerance: float) -> list[tuple[int, ...]]:
+    """Positions of five or six distinct numbers that add up to zero: the sum of three cancelling the sum of two
+    (five) or of three others (six), no part's own sum zero (see :meth:`Audit._fours`)."""
+    pairs, pair_sums = _subset_sums(numbers, 2, tolerance)
+    threes, three_sums = _subset_sums(numbers, 3, tolerance)
+    out: set[tuple[int, ...]] = set()
+    if len(threes):
+        order = np.argsort(three_sums, kind="stable")
+        ranked = three_sums[order]
+        lows = np.searchsorted(ranked, -pair_sums - tolerance, "left")
+        highs = np.searchsorted(ranked, -pair_sums + tolerance, "right")
+        for p in np.flatnonzero(highs > lows).tolist():
+            for q in order[lows[p] : highs[p]].tolist():
+                if len(union := {*pairs[p].tolist(), *threes[q].tolist()}) == 5:
+                    out.add(tuple(sorted(union)))
+        for p, q in _cancelling(three_sums, tolerance):
+            if len(union := {*threes[p].tolist(), *threes[q].tolist()}) == 6:
+                out.add(tuple(sorted(union)))
+    return sorted(out)
 
 
 @dataclass
@@ -887,7 +920,8 @@ class Audit:
         seen: set[frozenset[int]],
     ) -> None:
         """Beyond a small system: every union of two or three atoms of one block (four, in a block of at most
-        ``FOUR_MAX_ATOMS`` atoms) that the shown counts pin down to a value the policy would hide (threat model
+        ``FOUR_MAX_ATOMS`` atoms; five or six, in one of at most ``SIX_MAX_ATOMS``: :func:`_fives_and_sixes`)
+        that the shown counts pin down to a value the policy would hide (threat model
         R14: c + e = (a+b+c+e) − (a+b+d+e) + (d+e) gave 3 while c and e each stayed open, in a system too large
         for :meth:`_any_union_pinned`).
 
@@ -933,6 +967,8 @@ class Audit:
                     candidates += [(first, second, third) for third in range(max(low, second + 1), high)]
             if len(keys) <= FOUR_MAX_ATOMS:
                 candidates += self._fours(keys, tolerance)
+            if len(keys) <= SIX_MAX_ATOMS:
+                candidates += _fives_and_sixes(keys, tolerance)
             found: list[frozenset[int]] = []
             # by the atoms' own indices (twins' numbers may swap places with the BLAS kernel's rounding)
             for union in sorted(candidates, key=lambda u: (len(u), sorted(atoms[list(u)].tolist()))):
