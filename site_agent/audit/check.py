@@ -4,6 +4,7 @@
 from __future__ import annotations
 
 import copy
+import functools
 import itertools
 import math
 import time
@@ -50,8 +51,10 @@ ANY_UNION_MAX_ATOMS = 16
 # Beyond it, unions of two or three atoms of one block are searched where the system has at most UNION_MAX_ATOMS
 # live atoms, unions of four where the block has at most this many (``_few_atoms_pinned``),
 FOUR_MAX_ATOMS = 400
-# and unions of five or six where it has at most this many (the sums of every three atoms: 161,700 at 100).
+# unions of five or six where it has at most this many (the sums of every three atoms: 161,700 at 100),
 SIX_MAX_ATOMS = 100
+# and unions of seven or eight where it has at most this many (the sums of every four atoms: 91,390 at 40).
+EIGHT_MAX_ATOMS = 40
 
 
 def _cancelling(numbers: np.ndarray, tolerance: float) -> list[tuple[int, int]]:
@@ -64,33 +67,54 @@ def _cancelling(numbers: np.ndarray, tolerance: float) -> list[tuple[int, int]]:
     return [(p, q) for p in np.flatnonzero(highs > lows).tolist() for q in order[lows[p] : highs[p]].tolist() if p < q]
 
 
+@functools.lru_cache(maxsize=64)
+def _combinations(n: int, size: int) -> np.ndarray:
+    """Every set of ``size`` of ``range(n)`` (rows, ascending; kept: the same block sizes recur in every round)."""
+    sets = np.array(list(itertools.combinations(range(n), size)), dtype=np.int64).reshape(-1, size)
+    sets.flags.writeable = False
+    return sets
+
+
 def _subset_sums(numbers: np.ndarray, size: int, tolerance: float) -> tuple[np.ndarray, np.ndarray]:
     """Every set of ``size`` positions (rows, ascending) whose numbers' sum is not within ``tolerance`` of
     zero, with those sums: a set whose own sum is zero is a smaller union on its own."""
-    sets = np.array(list(itertools.combinations(range(len(numbers)), size)), dtype=np.int64).reshape(-1, size)
+    sets = _combinations(len(numbers), size)
     sums = numbers[sets].sum(axis=1)
     keep = np.abs(sums) > tolerance
     return sets[keep], sums[keep]
 
 
-def _fives_and_sixes(numbers: np.ndarray, tolerance: float) -> list[tuple[int, ...]]:
-    """Positions of five or six distinct numbers that add up to zero: the sum of three cancelling the sum of two
-    (five) or of three others (six), no part's own sum zero (see :meth:`Audit._fours`)."""
-    pairs, pair_sums = _subset_sums(numbers, 2, tolerance)
-    threes, three_sums = _subset_sums(numbers, 3, tolerance)
+def _five_to_eight(numbers: np.ndarray, tolerance: float, values: np.ndarray, unsafe: Any) -> list[tuple[int, ...]]:
+    """Positions of five to eight distinct numbers that add up to zero and whose ``values`` add up to a whole
+    number ``unsafe`` holds: the sum of three cancelling the sum of two (five) or of three others (six); in at
+    most ``EIGHT_MAX_ATOMS`` numbers, the sum of four cancelling that of three (seven) or of four others (eight).
+    No part's own sum is zero (see :meth:`Audit._fours`): every set of that size splits so, or holds a smaller
+    union pinned on its own beside the rest (a union of two pinned parts is small only if one of them is)."""
+    sums = {size: _subset_sums(numbers, size, tolerance) for size in (2, 3)}
+    if len(numbers) <= EIGHT_MAX_ATOMS:
+        sums[4] = _subset_sums(numbers, 4, tolerance)
     out: set[tuple[int, ...]] = set()
-    if len(threes):
-        order = np.argsort(three_sums, kind="stable")
-        ranked = three_sums[order]
-        lows = np.searchsorted(ranked, -pair_sums - tolerance, "left")
-        highs = np.searchsorted(ranked, -pair_sums + tolerance, "right")
-        for p in np.flatnonzero(highs > lows).tolist():
-            for q in order[lows[p] : highs[p]].tolist():
-                if len(union := {*pairs[p].tolist(), *threes[q].tolist()}) == 5:
-                    out.add(tuple(sorted(union)))
-        for p, q in _cancelling(three_sums, tolerance):
-            if len(union := {*threes[p].tolist(), *threes[q].tolist()}) == 6:
-                out.add(tuple(sorted(union)))
+    for large, small in ((3, 2), (3, 3), (4, 3), (4, 4)):
+        if large not in sums or not len(sums[large][0]):
+            continue
+        (big_sets, big_sums), (sets, totals) = sums[large], sums[small]
+        # every (small set, large set) whose sums cancel: each small sum's negation searched among the large
+        order = np.argsort(big_sums, kind="stable")
+        lows = np.searchsorted(big_sums[order], -totals - tolerance, "left")
+        highs = np.searchsorted(big_sums[order], -totals + tolerance, "right")
+        hits = highs - lows
+        small_at = np.repeat(np.arange(len(totals)), hits)
+        large_at = order[np.repeat(lows - np.cumsum(hits) + hits, hits) + np.arange(int(hits.sum()))]
+        if large == small:
+            small_at, large_at = small_at[small_at < large_at], large_at[small_at < large_at]
+        # only a union whose value the policy would hide is a candidate (told apart before it is built)
+        value = values[big_sets[large_at]].sum(axis=1) + values[sets[small_at]].sum(axis=1)
+        rounded = np.round(value)
+        whole = np.abs(value - rounded) <= 1e-6
+        hidden = [r for r in np.unique(rounded[whole]).tolist() if unsafe(int(r))]
+        keep = whole & np.isin(rounded, hidden)
+        unions = np.sort(np.hstack([big_sets[large_at[keep]], sets[small_at[keep]]]), axis=1)
+        out.update(map(tuple, unions[np.all(np.diff(unions, axis=1) > 0, axis=1)].tolist()))  # distinct positions
     return sorted(out)
 
 
@@ -920,7 +944,8 @@ class Audit:
         seen: set[frozenset[int]],
     ) -> None:
         """Beyond a small system: every union of two or three atoms of one block (four, in a block of at most
-        ``FOUR_MAX_ATOMS`` atoms; five or six, in one of at most ``SIX_MAX_ATOMS``: :func:`_fives_and_sixes`)
+        ``FOUR_MAX_ATOMS`` atoms; five or six, in one of at most ``SIX_MAX_ATOMS``, and seven or eight in one of at
+        most ``EIGHT_MAX_ATOMS``: :func:`_five_to_eight`)
         that the shown counts pin down to a value the policy would hide (threat model
         R14: c + e = (a+b+c+e) − (a+b+d+e) + (d+e) gave 3 while c and e each stayed open, in a system too large
         for :meth:`_any_union_pinned`).
@@ -968,7 +993,7 @@ class Audit:
             if len(keys) <= FOUR_MAX_ATOMS:
                 candidates += self._fours(keys, tolerance)
             if len(keys) <= SIX_MAX_ATOMS:
-                candidates += _fives_and_sixes(keys, tolerance)
+                candidates += _five_to_eight(keys, tolerance, values, unsafe)
             found: list[frozenset[int]] = []
             # by the atoms' own indices (twins' numbers may swap places with the BLAS kernel's rounding)
             for union in sorted(candidates, key=lambda u: (len(u), sorted(atoms[list(u)].tolist()))):
