@@ -37,8 +37,8 @@ for an ONNX graph, those a record or a random input reaches), so a score band is
    In a small system (at most ``ANY_UNION_MAX_ATOMS`` live atoms in its equations) every union of atoms is
    checked (``Audit._any_union_pinned``), with the same passes and two or more cells of one table passed over;
    in a larger one of at most ``UNION_MAX_ATOMS`` live atoms, every union of two or three atoms of one block,
-   of four in a block of at most ``FOUR_MAX_ATOMS`` and of five or six in one of at most ``SIX_MAX_ATOMS``
-   (``Audit._few_atoms_pinned``: the atoms' distances
+   of four in a block of at most ``FOUR_MAX_ATOMS``, of five or six in one of at most ``SIX_MAX_ATOMS`` and of
+   seven or eight in one of at most ``EIGHT_MAX_ATOMS`` (``Audit._few_atoms_pinned``: the atoms' distances
    from the row space, turned into numbers by one random direction, add up to zero; each candidate proved by
    its exact distance).
 

@@ -55,6 +55,10 @@ FOUR_MAX_ATOMS = 400
 SIX_MAX_ATOMS = 100
 # and unions of seven or eight where it has at most this many (the sums of every four atoms: 91,390 at 40).
 EIGHT_MAX_ATOMS = 40
+# A split (three and two atoms, three and three, ...) whose sums cancel more often than this is not searched
+# (time; the random releases of R14 reach 1.5 million); the matches are taken MATCH_CHUNK at a time (memory).
+MAX_MATCHES = 20_000_000
+MATCH_CHUNK = 500_000
 
 
 def _cancelling(numbers: np.ndarray, tolerance: float) -> list[tuple[int, int]]:
@@ -89,7 +93,8 @@ def _five_to_eight(numbers: np.ndarray, tolerance: float, values: np.ndarray, un
     number ``unsafe`` holds: the sum of three cancelling the sum of two (five) or of three others (six); in at
     most ``EIGHT_MAX_ATOMS`` numbers, the sum of four cancelling that of three (seven) or of four others (eight).
     No part's own sum is zero (see :meth:`Audit._fours`): every set of that size splits so, or holds a smaller
-    union pinned on its own beside the rest (a union of two pinned parts is small only if one of them is)."""
+    union pinned on its own beside the rest (a union of two pinned parts is small only if one of them is). A
+    split with more than ``MAX_MATCHES`` cancelling pairs of sums is left out (a bound on memory, not a proof)."""
     sums = {size: _subset_sums(numbers, size, tolerance) for size in (2, 3)}
     if len(numbers) <= EIGHT_MAX_ATOMS:
         sums[4] = _subset_sums(numbers, 4, tolerance)
@@ -103,18 +108,27 @@ def _five_to_eight(numbers: np.ndarray, tolerance: float, values: np.ndarray, un
         lows = np.searchsorted(big_sums[order], -totals - tolerance, "left")
         highs = np.searchsorted(big_sums[order], -totals + tolerance, "right")
         hits = highs - lows
-        small_at = np.repeat(np.arange(len(totals)), hits)
-        large_at = order[np.repeat(lows - np.cumsum(hits) + hits, hits) + np.arange(int(hits.sum()))]
-        if large == small:
-            small_at, large_at = small_at[small_at < large_at], large_at[small_at < large_at]
-        # only a union whose value the policy would hide is a candidate (told apart before it is built)
-        value = values[big_sets[large_at]].sum(axis=1) + values[sets[small_at]].sum(axis=1)
-        rounded = np.round(value)
-        whole = np.abs(value - rounded) <= 1e-6
-        hidden = [r for r in np.unique(rounded[whole]).tolist() if unsafe(int(r))]
-        keep = whole & np.isin(rounded, hidden)
-        unions = np.sort(np.hstack([big_sets[large_at[keep]], sets[small_at[keep]]]), axis=1)
-        out.update(map(tuple, unions[np.all(np.diff(unions, axis=1) > 0, axis=1)].tolist()))  # distinct positions
+        ends = np.cumsum(hits)
+        if not len(ends) or ends[-1] > MAX_MATCHES:
+            continue  # sums that coincide this often (many atoms whose differences are pinned): not searched
+        # in chunks of about MATCH_CHUNK matches (memory: each is a row of up to eight positions)
+        cuts = [0, *np.searchsorted(ends, np.arange(MATCH_CHUNK, int(ends[-1]), MATCH_CHUNK), "right").tolist()]
+        for first, last in zip(cuts, [*cuts[1:], len(totals)], strict=True):
+            chunk = hits[first:last]
+            small_at = np.repeat(np.arange(first, last), chunk)
+            large_at = order[
+                np.repeat(lows[first:last] - np.cumsum(chunk) + chunk, chunk) + np.arange(int(chunk.sum()))
+            ]
+            if large == small:
+                small_at, large_at = small_at[small_at < large_at], large_at[small_at < large_at]
+            # only a union whose value the policy would hide is a candidate (told apart before it is built)
+            value = values[big_sets[large_at]].sum(axis=1) + values[sets[small_at]].sum(axis=1)
+            rounded = np.round(value)
+            whole = np.abs(value - rounded) <= 1e-6
+            hidden = [r for r in np.unique(rounded[whole]).tolist() if unsafe(int(r))]
+            keep = whole & np.isin(rounded, hidden)
+            unions = np.sort(np.hstack([big_sets[large_at[keep]], sets[small_at[keep]]]), axis=1)
+            out.update(map(tuple, unions[np.all(np.diff(unions, axis=1) > 0, axis=1)].tolist()))  # distinct
     return sorted(out)
 
 

@@ -408,6 +408,46 @@ def test_no_seven_or_eight_cells_are_pinned_small_in_random_releases_of_twenty_f
     assert _no_union_pinned_small(24, 20, 8, 6, 8) == 6
 
 
+def test_the_search_for_five_to_eight_numbers_finds_exactly_the_set_that_cancels() -> None:
+    # The search behind fives to eights (site_agent/audit/check.py ``_five_to_eight``) on its own, against
+    # every subset of 12 numbers (itertools): random numbers, one of them set so that a chosen set of five to
+    # eight adds up to zero. Each number's value is 1, so a set's value is its size, hidden for k = 10.
+    from site_agent.audit.check import _five_to_eight
+
+    rng = np.random.default_rng(3)
+    for size in (5, 6, 7, 8):
+        for _ in range(5):
+            numbers = rng.standard_normal(12)
+            chosen = sorted(rng.choice(12, size=size, replace=False).tolist())
+            numbers[chosen[0]] = -numbers[chosen[1:]].sum()
+            cancelling = [
+                s
+                for n in range(5, 9)
+                for s in itertools.combinations(range(12), n)
+                if abs(numbers[list(s)].sum()) < 1e-9
+            ]
+            assert cancelling == [tuple(chosen)]  # the reference: no other set cancels
+            assert _five_to_eight(numbers, 1e-9, np.ones(12), lambda v: 0 < v < 10) == [tuple(chosen)]
+            # a value the policy shows (here: every set of this size at least k) is no candidate
+            assert _five_to_eight(numbers, 1e-9, np.ones(12), lambda v, k=size: 0 < v < k) == []
+
+
+def test_the_search_for_five_to_eight_numbers_in_chunks_and_past_its_limit(monkeypatch) -> None:
+    # Ten numbers 1 and ten -1: every three 1s cancel every three -1s, every four every four (120 x 120 sixes
+    # and 210 x 210 eights, each made of pairs that cancel on their own). Taken 1,000 matches at a time, the
+    # same unions; past MAX_MATCHES a split is not searched, so time and memory stay bounded.
+    import site_agent.audit.check as check
+
+    numbers = np.array([1.0] * 10 + [-1.0] * 10)
+    unions = check._five_to_eight(numbers, 1e-9, np.ones(20), lambda v: 0 < v < 10)
+    assert len(unions) == math.comb(10, 3) ** 2 + math.comb(10, 4) ** 2
+    assert all(sum(numbers[list(u)]) == 0 and len(u) in (6, 8) for u in unions)
+    monkeypatch.setattr(check, "MATCH_CHUNK", 1_000)
+    assert check._five_to_eight(numbers, 1e-9, np.ones(20), lambda v: 0 < v < 10) == unions
+    monkeypatch.setattr(check, "MAX_MATCHES", 10_000)
+    assert check._five_to_eight(numbers, 1e-9, np.ones(20), lambda v: 0 < v < 10) == []
+
+
 # --- a recipient who reruns the site's algorithm (threat model R12) ------------------------------------------
 
 
