@@ -88,19 +88,19 @@ def _subset_sums(numbers: np.ndarray, size: int, tolerance: float) -> tuple[np.n
     return sets[keep], sums[keep]
 
 
-def _five_to_eight(numbers: np.ndarray, tolerance: float, values: np.ndarray, unsafe: Any) -> list[tuple[int, ...]]:
-    """Positions of five to eight distinct numbers that add up to zero and whose ``values`` add up to a whole
-    number ``unsafe`` holds: the sum of three cancelling the sum of two (five) or of three others (six); in at
-    most ``EIGHT_MAX_ATOMS`` numbers, the sum of four cancelling that of three (seven) or of four others (eight).
-    No part's own sum is zero (see :meth:`Audit._fours`): every set of that size splits so, or holds a smaller
-    union pinned on its own beside the rest (a union of two pinned parts is small only if one of them is). A
-    split with more than ``MAX_MATCHES`` cancelling pairs of sums is left out (a bound on memory, not a proof)."""
-    sums = {size: _subset_sums(numbers, size, tolerance) for size in (2, 3)}
-    if len(numbers) <= EIGHT_MAX_ATOMS:
-        sums[4] = _subset_sums(numbers, 4, tolerance)
+def _cancelling_unions(
+    numbers: np.ndarray, tolerance: float, values: np.ndarray, unsafe: Any, splits: Sequence[tuple[int, int]]
+) -> list[tuple[int, ...]]:
+    """Positions of distinct numbers that add up to zero and whose ``values`` add up to a whole number ``unsafe``
+    holds, each found as a set of ``large`` numbers whose sum cancels that of ``small`` others, for each
+    ``(large, small)`` of ``splits``: (2, 2) gives fours, (3, 2) fives, (3, 3) sixes, (4, 3) sevens, (4, 4) eights.
+    No part's own sum is zero: every set of that size splits so, or holds a smaller union pinned on its own
+    beside the rest (a union of two pinned parts is small only if one of them is). A split with more than
+    ``MAX_MATCHES`` cancelling pairs of sums is left out (a bound on time and memory, not a proof)."""
+    sums = {size: _subset_sums(numbers, size, tolerance) for size in sorted({n for split in splits for n in split})}
     out: set[tuple[int, ...]] = set()
-    for large, small in ((3, 2), (3, 3), (4, 3), (4, 4)):
-        if large not in sums or not len(sums[large][0]):
+    for large, small in splits:
+        if not len(sums[large][0]):
             continue
         (big_sets, big_sums), (sets, totals) = sums[large], sums[small]
         # every (small set, large set) whose sums cancel: each small sum's negation searched among the large
@@ -959,7 +959,7 @@ class Audit:
     ) -> None:
         """Beyond a small system: every union of two or three atoms of one block (four, in a block of at most
         ``FOUR_MAX_ATOMS`` atoms; five or six, in one of at most ``SIX_MAX_ATOMS``, and seven or eight in one of at
-        most ``EIGHT_MAX_ATOMS``: :func:`_five_to_eight`)
+        most ``EIGHT_MAX_ATOMS``: :func:`_cancelling_unions`)
         that the shown counts pin down to a value the policy would hide (threat model
         R14: c + e = (a+b+c+e) − (a+b+d+e) + (d+e) gave 3 while c and e each stayed open, in a system too large
         for :meth:`_any_union_pinned`).
@@ -967,8 +967,9 @@ class Audit:
         A union is pinned when its indicator lies in the row space: when its atoms' distances from the row
         space (vectors) add up to zero. One random direction turns each atom's distance into a number, as
         :meth:`_residual_keys` does for boxes; pairs whose numbers add up to zero are found by sorting, triples
-        by one search per pair of the sorted numbers, fours by searching the sorted sums of pairs
-        (:meth:`_fours`), and each candidate whose value the policy would hide is proved by its exact
+        by one search per pair of the sorted numbers, fours and more by searching the sorted sums of pairs,
+        threes or fours (:func:`_cancelling_unions`, which keeps only unions whose value the policy would hide),
+        and each candidate whose value the policy would hide is proved by its exact
         distance. A union across blocks needs no search: each block's part of it is then
         pinned on its own, and smaller. Passed over as by :meth:`_any_union_pinned`; only the smallest unions
         are reported in a round. It runs where the system has at most ``UNION_MAX_ATOMS`` live atoms, as
@@ -1004,10 +1005,10 @@ class Audit:
                     low = int(np.searchsorted(keys, -total - tolerance, "left"))
                     high = int(np.searchsorted(keys, -total + tolerance, "right"))
                     candidates += [(first, second, third) for third in range(max(low, second + 1), high)]
-            if len(keys) <= FOUR_MAX_ATOMS:
-                candidates += self._fours(keys, tolerance)
-            if len(keys) <= SIX_MAX_ATOMS:
-                candidates += _five_to_eight(keys, tolerance, values, unsafe)
+            splits = [(2, 2)] if len(keys) <= FOUR_MAX_ATOMS else []
+            splits += [(3, 2), (3, 3)] if len(keys) <= SIX_MAX_ATOMS else []
+            splits += [(4, 3), (4, 4)] if len(keys) <= EIGHT_MAX_ATOMS else []
+            candidates += _cancelling_unions(keys, tolerance, values, unsafe, splits) if splits else []
             found: list[frozenset[int]] = []
             # by the atoms' own indices (twins' numbers may swap places with the BLAS kernel's rounding)
             for union in sorted(candidates, key=lambda u: (len(u), sorted(atoms[list(u)].tolist()))):
@@ -1022,22 +1023,6 @@ class Audit:
                 if system.residual(vector) > 1e-6:
                     continue  # the random direction's coincidence: not pinned
                 self._pinned_union(system, region, vector, rounded, live, found, seen, findings)
-
-    @staticmethod
-    def _fours(keys: np.ndarray, tolerance: float) -> list[tuple[int, ...]]:
-        """Positions of four sorted numbers that add up to zero: two pairs whose sums cancel. A pair whose own
-        sum is zero is left out: a union holding it is pinned only if the other pair is too, and each pair is
-        then a smaller union."""
-        firsts, seconds = np.nonzero(np.arange(len(keys))[None, :] > np.arange(len(keys))[:, None])
-        sums = keys[firsts] + keys[seconds]
-        keep = np.abs(sums) > tolerance
-        firsts, seconds, sums = firsts[keep], seconds[keep], sums[keep]
-        fours = {
-            tuple(sorted(union))
-            for p, q in _cancelling(sums, tolerance)
-            if len(union := {int(firsts[p]), int(seconds[p]), int(firsts[q]), int(seconds[q])}) == 4
-        }
-        return sorted(fours)
 
     def _regions(self, live: np.ndarray) -> tuple[set[frozenset[int]], list[list[frozenset[int]]]]:
         """The live atoms of every listed count, and of each sibling family's counts (the cells of one table),

@@ -408,44 +408,48 @@ def test_no_seven_or_eight_cells_are_pinned_small_in_random_releases_of_twenty_f
     assert _no_union_pinned_small(24, 20, 8, 6, 8) == 6
 
 
-def test_the_search_for_five_to_eight_numbers_finds_exactly_the_set_that_cancels() -> None:
-    # The search behind fives to eights (site_agent/audit/check.py ``_five_to_eight``) on its own, against
-    # every subset of 12 numbers (itertools): random numbers, one of them set so that a chosen set of five to
+SPLITS = ((2, 2), (3, 2), (3, 3), (4, 3), (4, 4))  # fours to eights
+
+
+def test_the_search_for_four_to_eight_numbers_finds_exactly_the_set_that_cancels() -> None:
+    # The search behind fours to eights (site_agent/audit/check.py ``_cancelling_unions``) on its own, against
+    # every subset of 12 numbers (itertools): random numbers, one of them set so that a chosen set of four to
     # eight adds up to zero. Each number's value is 1, so a set's value is its size, hidden for k = 10.
-    from site_agent.audit.check import _five_to_eight
+    from site_agent.audit.check import _cancelling_unions
 
     rng = np.random.default_rng(3)
-    for size in (5, 6, 7, 8):
+    for size in (4, 5, 6, 7, 8):
         for _ in range(5):
             numbers = rng.standard_normal(12)
             chosen = sorted(rng.choice(12, size=size, replace=False).tolist())
             numbers[chosen[0]] = -numbers[chosen[1:]].sum()
             cancelling = [
                 s
-                for n in range(5, 9)
+                for n in range(4, 9)
                 for s in itertools.combinations(range(12), n)
                 if abs(numbers[list(s)].sum()) < 1e-9
             ]
             assert cancelling == [tuple(chosen)]  # the reference: no other set cancels
-            assert _five_to_eight(numbers, 1e-9, np.ones(12), lambda v: 0 < v < 10) == [tuple(chosen)]
+            found = _cancelling_unions(numbers, 1e-9, np.ones(12), lambda v: 0 < v < 10, SPLITS)
+            assert found == [tuple(chosen)]
             # a value the policy shows (here: every set of this size at least k) is no candidate
-            assert _five_to_eight(numbers, 1e-9, np.ones(12), lambda v, k=size: 0 < v < k) == []
+            assert _cancelling_unions(numbers, 1e-9, np.ones(12), lambda v, k=size: 0 < v < k, SPLITS) == []
 
 
-def test_the_search_for_five_to_eight_numbers_in_chunks_and_past_its_limit(monkeypatch) -> None:
-    # Ten numbers 1 and ten -1: every three 1s cancel every three -1s, every four every four (120 x 120 sixes
-    # and 210 x 210 eights, each made of pairs that cancel on their own). Taken 1,000 matches at a time, the
-    # same unions; past MAX_MATCHES a split is not searched, so time and memory stay bounded.
+def test_the_search_for_four_to_eight_numbers_in_chunks_and_past_its_limit(monkeypatch) -> None:
+    # Ten numbers 1 and ten -1: every two, three or four 1s cancel as many -1s (45 x 45 fours, 120 x 120 sixes,
+    # 210 x 210 eights, each made of pairs that cancel on their own). Taken 1,000 matches at a time, the same
+    # unions; past MAX_MATCHES a split is not searched, so time and memory stay bounded.
     import site_agent.audit.check as check
 
     numbers = np.array([1.0] * 10 + [-1.0] * 10)
-    unions = check._five_to_eight(numbers, 1e-9, np.ones(20), lambda v: 0 < v < 10)
-    assert len(unions) == math.comb(10, 3) ** 2 + math.comb(10, 4) ** 2
-    assert all(sum(numbers[list(u)]) == 0 and len(u) in (6, 8) for u in unions)
+    unions = check._cancelling_unions(numbers, 1e-9, np.ones(20), lambda v: 0 < v < 10, SPLITS)
+    assert len(unions) == sum(math.comb(10, n) ** 2 for n in (2, 3, 4))
+    assert all(sum(numbers[list(u)]) == 0 and len(u) in (4, 6, 8) for u in unions)
     monkeypatch.setattr(check, "MATCH_CHUNK", 1_000)
-    assert check._five_to_eight(numbers, 1e-9, np.ones(20), lambda v: 0 < v < 10) == unions
-    monkeypatch.setattr(check, "MAX_MATCHES", 10_000)
-    assert check._five_to_eight(numbers, 1e-9, np.ones(20), lambda v: 0 < v < 10) == []
+    assert check._cancelling_unions(numbers, 1e-9, np.ones(20), lambda v: 0 < v < 10, SPLITS) == unions
+    monkeypatch.setattr(check, "MAX_MATCHES", 1_000)
+    assert check._cancelling_unions(numbers, 1e-9, np.ones(20), lambda v: 0 < v < 10, SPLITS) == []
 
 
 # --- a recipient who reruns the site's algorithm (threat model R12) ------------------------------------------
