@@ -319,7 +319,8 @@ def _near(x: np.ndarray, constraints: list[LinearConstraint], n: int) -> list[np
     columns) through one of its fractional counts. The branch variables (after the first ``n``) stay as fixed.
     A table found there is a whole-number table of every fact like any other (checked); where none is found,
     the whole program still runs. So the second look proves open at least what it did before, sooner, and
-    sometimes a table the whole program's node limit missed (at 50 earlier releases in ``make bench``: integer
+    sometimes a table the whole program's node limit missed, unless the smaller programs, which count against
+    ``BUDGET_PROGRAMS`` like any other, spend the budget first (at 50 earlier releases in ``make bench``: integer
     programs of 3,004 counts, 5.6-6.7 s each whole, 0.15-0.24 s near the linear table)."""
     rows = sparse.vstack([sparse.csr_matrix(c.A) for c in constraints]).tocsr()
     fractional = np.flatnonzero(np.abs(x - np.round(x)) > 1e-6)
