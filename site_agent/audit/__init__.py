@@ -44,17 +44,18 @@ for an ONNX graph, those a record or a random input reaches), so a score band is
 
 **Scale: the grouped model.** A site's history crosses every variable's cuts with every other's (fine ROC
 score bands times age bands: 150,000 atoms after 200 releases of mixed analyses), though no count names a fine
-score band and an age band together. The audit therefore first answers in a grouped model
-(:mod:`~site_agent.audit.decompose`): the scores and the boxes over them in a centre, each other variable's
-boxes in a leaf, tied by one row per cell of the leaf boxes' projections onto the centre. Its linear programs
-have the same optima as the full model's, and its atoms answer the differencing checks for full atoms
-exactly, so a clear answer (nothing found, every interval too wide for integer programs to matter) is the
-full audit's answer. Otherwise the full model decides while it has at most ``FULL_MAX_ATOMS`` atoms (a few
-seconds); beyond, the grouped model's findings do (the same regions; the counts it proposes to withhold come
-from its own rows, so a repair may withhold other counts than the full model would). Which case applies is
-known when the audit is built (the full refinement stops as soon as it passes the limit); beyond the limit the
-grouped model evaluates once, without the clear-only pass, which could only agree with that evaluation or defer
-to it (it ran integer programs on every narrow interval of every earlier release).
+score band and an age band together. Where the full model has more than ``FULL_MAX_ATOMS`` atoms, the audit
+therefore answers in a grouped model (:mod:`~site_agent.audit.decompose`): the scores and the boxes over them
+in a centre, each other variable's boxes in a leaf, tied by one row per cell of the leaf boxes' projections
+onto the centre. Its linear programs have the same optima as the full model's, and its atoms answer the atom
+and nesting checks for full atoms exactly; its findings decide (the same regions; the counts it proposes to
+withhold come from its own rows, so a repair may withhold other counts than the full model would). It has
+none of the searches for unions of atoms above, so wherever the full model can be built, the full model
+decides (until 2026-12-05 the grouped model answered first at any size, and its "nothing found" let a union
+of two cells pinned small go out). Which case applies is known when the audit is built (the full refinement
+stops as soon as it passes the limit); beyond the limit the grouped model evaluates once, without the
+clear-only pass, which could only agree with that evaluation or defer to it (it ran integer programs on every
+narrow interval of every earlier release).
 
 **Integrality.** The true interval of a count over whole-number tables can only be narrower than the LP
 relaxation's. We round the LP bounds inward (``ceil(min)``, ``floor(max)``), and where it is cheap (a

@@ -147,7 +147,8 @@ class Audit:
     = suppressed), so that more suppression can be tried without rebuilding the refinement.
 
     ``group=False`` audits in the full model alone. Where the full model has more than ``full_max_atoms`` atoms
-    (known when the audit is built), the grouped model's own evaluation decides, and with ``shortcut`` (the
+    (known when the audit is built), the grouped model (:mod:`~.decompose`) decides; elsewhere the full model
+    does and the grouped model is not built. Where the grouped model decides, with ``shortcut`` (the
     default) its clear-only pass is skipped: that pass could only defer to this evaluation or agree with it
     (see :meth:`evaluate`). ``shortcut=False`` runs it anyway; tests compare both ways. ``carry_tables=False``
     does not keep the second look's tables (:mod:`~.branches`) from one evaluation to the next: each repair round then
@@ -206,15 +207,18 @@ class Audit:
         self._full_masks: list[int] | None = None
         self.shortcut = shortcut
         self.full_max_atoms = full_max_atoms
-        grouped = decompose(self._joined, self.domains, self._joint_values) if group else None
-        if grouped is not None:
+        if group:
             # Whether the full model is small enough to decide is known before any evaluation: its refinement
-            # stops as soon as it passes FULL_MAX_ATOMS (milliseconds, even after 200 releases); kept if small.
+            # stops as soon as it passes FULL_MAX_ATOMS (milliseconds, even after 200 releases). Where it is, it
+            # decides: the grouped model has no searches for unions of atoms (threat model R14), and its answer
+            # "clear" once let a union of two cells pinned small go out
+            # (site_agent/test_withheld.py::test_no_pair_of_cells_is_pinned_small_where_the_model_has_groups).
             try:
                 self._full_masks = refine(self._joined, self.domains, self._joint_values, full_max_atoms)
             except AuditError:
                 self._too_large = True
-            # the grouped model answers first; the full refinement is built only if its answer is not clear
+        grouped = decompose(self._joined, self.domains, self._joint_values) if self._too_large else None
+        if grouped is not None:
             self._grouped = copy.copy(self)
             own = [copy.copy(s) for s in self.statements]  # each model makes equal definitions one count
             lookup = {id(s): o for s, o in zip(self.statements, own, strict=True)}
@@ -356,43 +360,27 @@ class Audit:
             _CONTROLLER = ThreadpoolController()
         with _CONTROLLER.limit(limits=1, user_api="blas"):
             told = (current_rules or {}, current_zero or {})
-            if self._grouped is not None and self._too_large and self.shortcut:
-                # The full model is too large to decide, so the grouped model's own findings do. Its clear-only
-                # pass would decide the same: it is clear only where this evaluation is (every check it makes is
-                # at least as strict: exact LP intervals, integer programs for narrow ones), and where it is
-                # not, this evaluation decides anyway. Skipping it spares the integer programs it runs on
-                # every narrow interval of every earlier release (most of the cost of a long history).
+            if self._grouped is not None:
+                # The full model is too large to decide (it would take minutes), so the grouped model's own
+                # findings do (exact; their candidates come from its rows, so repairs may choose other counts
+                # than the full model). With ``shortcut=False`` its clear-only pass runs first, as the site did
+                # when that pass came before every full model: it is clear only where this evaluation is
+                # (every check it makes is at least as strict: exact LP intervals, integer programs for narrow
+                # ones), so skipping it spares the integer programs it runs on every narrow interval of every
+                # earlier release (most of the cost of a long history).
                 # tests/site_agent/test_audit_shortcut.py compares both ways on random histories.
                 self._grouped.build_seconds = self.build_seconds
-                result = self._grouped._evaluate(
-                    current_values, min_cell_size, allow_zero, protection_width, exact, told
-                )
-                assert result is not None
-                return result
-            small = self._full_masks is not None and len(self._full_masks) <= MILP_MAX_ATOMS
-            if self._grouped is not None:
-                if not small:  # a small full model decides over whole numbers itself (``_whole_pinned``)
+                if not self.shortcut:
                     clear = self._grouped._evaluate(
                         current_values, min_cell_size, allow_zero, protection_width, exact, told, clear_only=True
                     )
                     if clear is not None:
                         return clear
-                if not self._full and not self._too_large:
-                    started = time.perf_counter()
-                    try:
-                        self._build_full(self.full_max_atoms)
-                    except AuditError:
-                        self._too_large = True
-                    self.build_seconds += time.perf_counter() - started
-                if self._too_large:
-                    # the full model would take minutes: the grouped model's own findings (exact; their
-                    # candidates come from its rows, so repairs may choose other counts than the full model)
-                    self._grouped.build_seconds = self.build_seconds
-                    result = self._grouped._evaluate(
-                        current_values, min_cell_size, allow_zero, protection_width, exact, told
-                    )
-                    assert result is not None
-                    return result
+                result = self._grouped._evaluate(
+                    current_values, min_cell_size, allow_zero, protection_width, exact, told
+                )
+                assert result is not None
+                return result
             return self._evaluate(current_values, min_cell_size, allow_zero, protection_width, exact, told)
 
     def _equations(

@@ -24,8 +24,8 @@ used only where every projection is itself a released box, so that each group's 
 and a full atom is one atom of each group, all in the same cells (:class:`Cells` answers the atom and nesting
 questions of the differencing checks from that).
 
-A finding of the grouped model (or an interval so narrow that the full model might run integer programs on
-it) sends the audit to the full model while that is small; :class:`site_agent.audit.check.Audit` does both.
+The grouped model is used only where the full model has too many atoms to build; it has no searches for
+unions of atoms (:class:`site_agent.audit.check.Audit` decides which model answers).
 
 Reference: Lauritzen SL. *Graphical Models*. Oxford University Press, 1996, ch. 3.
 """

@@ -64,9 +64,9 @@ def test_a_grouped_history_takes_the_shortcut_only_when_the_full_model_is_too_la
     history += [release(data, 2, 0.5, 12 + 4 * j) for j in range(8)] + [release(data, 0, 0.5, 30)]
     earlier = [facts(f"r{j}", counts, 5)[0] for j, counts in enumerate(history[:-1])]
     current, released, rules = facts("new", history[-1], 5)
-    small = Audit(earlier, current)  # the full model decides where the grouped model's answer is not clear
+    small = Audit(earlier, current)  # the full model decides: the grouped model is not even built
     too_large = Audit(earlier, current, full_max_atoms=10)
-    assert small._grouped is not None and too_large._grouped is not None
+    assert small._grouped is None and too_large._grouped is not None
     assert not small._too_large and too_large._too_large
     assert len(small._full_masks or []) > 10  # the full model's atoms, found once when the audit is built
     for audit in (small, too_large):

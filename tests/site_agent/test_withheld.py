@@ -327,6 +327,45 @@ def test_no_pair_of_cells_is_pinned_small_in_a_large_system() -> None:
     assert sum(v is not None for v in protected.released.values()) >= len(boxes) - 4  # the rest is shown
 
 
+def test_no_pair_of_cells_is_pinned_small_where_the_model_has_groups() -> None:
+    # The same five cells (a+d, b+d and b+e give a+e = 3, k = 5), each count now of the records scoring at
+    # least 0.5 as well, beside that count itself (the records scoring at least 0.5) and 70 more shown cells:
+    # a subgroup variable z beside the score, whose counts' projection is released, so the audit's grouped
+    # model applies (site_agent/audit/decompose.py), and more than 60 atoms, so no integer program decides.
+    # Before 2026-12-05 the grouped model answered first and, finding nothing, let the release go out whole:
+    # it has no search for unions of atoms (threat model R14), and the recipient's linear algebra gave
+    # a+e = 3. Now the full model decides wherever it can be built.
+    from site_agent.audit import Audit, ReleaseFacts
+    from site_agent.audit.decompose import decompose
+
+    values = {"a": 1, "b": 7, "c": 6, "d": 5, "e": 2}
+    values.update({f"m{i}": 6 + i % 3 for i in range(70)})
+    boxes = [("a", "d"), ("b", "d"), ("b", "e"), *[(f"m{i}",) for i in range(70)]]
+    high = Condition("score", low=0.5)
+    counts = CountSet()
+    for i, box in enumerate(boxes):
+        counts.add(f"t.b{i}", sum(values[c] for c in box), Condition("z", box), high)
+    counts.add("t.high", sum(values.values()), high)
+    facts = ReleaseFacts("t", counts.definitions, {}, counts.relations, "", {}, 5, True, {}, {})
+    assert decompose(Audit([], facts, group=False).boxes) is not None  # a grouped model exists
+    protected = protect(counts, policy(k=5))
+    cells = sorted(values)
+    rows = [[1.0] * len(cells)] if protected.released["t.high"] is not None else []
+    rows += [
+        [1.0 if c in box else 0.0 for c in cells]
+        for i, box in enumerate(boxes)
+        if protected.released[f"t.b{i}"] is not None
+    ]
+    _, singular, right = np.linalg.svd(np.array(rows), full_matrices=False)  # the recipient's linear algebra
+    basis = right[singular > 1e-9].T
+    for region in (("a", "e"), ("a",), ("e",), ("b", "d")):
+        vector = np.array([1.0 if c in region else 0.0 for c in cells])
+        rest = vector - basis @ (basis.T @ vector)
+        if rest @ rest < 1e-12:  # pinned: the shown counts give its value
+            assert not 0 < sum(values[c] for c in region) < 5, region
+    assert sum(v is not None for v in protected.released.values()) >= len(boxes)  # one count withheld at most
+
+
 def test_no_few_cells_are_pinned_small_in_random_larger_releases() -> None:
     # Random releases of their own making: 20 cells of one variable (values 0..12), 14 random boxes of 2..6
     # cells and the records read, so that every count is tied into one system of more than 16 live atoms.
