@@ -49,13 +49,15 @@ therefore answers in a grouped model (:mod:`~site_agent.audit.decompose`): the s
 in a centre, each other variable's boxes in a leaf, tied by one row per cell of the leaf boxes' projections
 onto the centre. Its linear programs have the same optima as the full model's, and its atoms answer the atom
 and nesting checks for full atoms exactly; its findings decide (the same regions; the counts it proposes to
-withhold come from its own rows, so a repair may withhold other counts than the full model would). It has
-none of the searches for unions of atoms above, so wherever the full model can be built, the full model
-decides (until 2026-12-05 the grouped model answered first at any size, and its "nothing found" let a union
-of two cells pinned small go out). Which case applies is known when the audit is built (the full refinement
-stops as soon as it passes the limit); beyond the limit the grouped model evaluates once, without the
-clear-only pass, which could only agree with that evaluation or defer to it (it ran integer programs on every
-narrow interval of every earlier release).
+withhold come from its own rows, so a repair may withhold other counts than the full model would). Its
+searches for unions take one group's atoms at a time (each union of them is a region of the full model; one
+across groups could count a full atom twice), and a group's atom pinned small that is a union of several
+full atoms is such a union; unions across groups are not searched. So wherever the full model can be built,
+the full model decides (until 2026-12-05 the grouped model answered first at any size, without any search for
+unions, and its "nothing found" let a union of two cells pinned small go out). Which case applies is known
+when the audit is built (the full refinement stops as soon as it passes the limit); beyond the limit the
+grouped model evaluates once, without the clear-only pass, which could only agree with that evaluation or
+defer to it (it ran integer programs on every narrow interval of every earlier release).
 
 **Integrality.** The true interval of a count over whole-number tables can only be narrower than the LP
 relaxation's. We round the LP bounds inward (``ceil(min)``, ``floor(max)``), and where it is cheap (a

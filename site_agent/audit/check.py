@@ -497,10 +497,12 @@ class Audit:
             self._atoms_pinned(system, unsafe, released_zero, findings, seen_regions)
             key = self._residual_keys(system)
             self._nested_pinned(system, unsafe, findings, seen_regions, key)
+            # (the grouped model: unions of one group's atoms, each a region of the full model, never two
+            # groups' atoms together, which could count a full atom twice)
+            self._unions_pinned(system, unsafe, findings, seen_regions, key)
             if self.cells is None:
-                self._unions_pinned(system, unsafe, findings, seen_regions, key)
                 self._any_union_pinned(system, unsafe, released_zero, findings, seen_regions)
-                self._few_atoms_pinned(system, unsafe, released_zero, findings, seen_regions)
+            self._few_atoms_pinned(system, unsafe, released_zero, findings, seen_regions)
             if exact and self.cells is None and int((~system.zero).sum()) <= MILP_MAX_ATOMS:
                 self._whole_pinned(system, unsafe, released_zero, findings, seen_regions)
         if findings:
@@ -655,10 +657,13 @@ class Audit:
             region = frozenset([int(atom)])
             if not unsafe(value) or region in seen:
                 continue
-            if self.cells is not None and value > 0 and not self.cells.whole(int(atom), live):
-                continue  # a union of full atoms, each of which other groups' counts leave open
             vector = np.zeros(self.incidence.shape[1])
             vector[atom] = 1.0
+            if self.cells is not None and value > 0 and not self.cells.whole(int(atom), live):
+                # a union of full atoms, each of which other groups' counts leave open: a union pinned small,
+                # passed over as the searches for unions pass one over (a listed count, cells of one table, ...)
+                self._pinned_union(system, region, vector, value, live, [], seen, findings)
+                continue
             if self._opened(vector, 2, value, value) is not None:
                 continue
             seen.add(region)
@@ -962,7 +967,10 @@ class Audit:
         pinned on its own, and smaller. Passed over as by :meth:`_any_union_pinned`; only the smallest unions
         are reported in a round. It runs where the system has at most ``UNION_MAX_ATOMS`` live atoms, as
         :meth:`_unions_pinned` (the search is quadratic, and whether the earlier releases alone pin a union
-        found needs their own system: 2.7 s after 200 releases; long histories are not searched)."""
+        found needs their own system: 2.7 s after 200 releases; long histories are not searched). In the
+        grouped model (a history whose full model is too large) it searches the atoms of one group at a time:
+        each such union is a region of the full model, while a union of two groups' atoms could count a full
+        atom twice."""
         live = ~system.zero & ~self.structural_zero & ~released_zero & ~system.free
         if not ANY_UNION_MAX_ATOMS < int(live.sum()) <= UNION_MAX_ATOMS:
             return  # a small system: every union was checked; a long history: not searched
@@ -974,43 +982,60 @@ class Audit:
             key = g - block.basis @ (block.basis.T @ g)
             distance = 1.0 - np.einsum("ij,ij->i", block.basis, block.basis)  # 0: the atom itself is pinned
             usable = np.flatnonzero(live[block.atoms] & (distance > 1e-6))
-            if len(usable) < 2:
+            groups = self.cells.atom_group[block.atoms[usable]] if self.cells is not None else np.zeros(len(usable))
+            for group in np.unique(groups).tolist():  # the grouped model: one group's atoms at a time
+                mine = usable[groups == group]
+                self._unions_of_block(system, unsafe, key[mine], block.atoms[mine], live, findings, seen)
+
+    def _unions_of_block(
+        self,
+        system: _System,
+        unsafe: Any,
+        key: np.ndarray,
+        atoms: np.ndarray,
+        live: np.ndarray,
+        findings: list[Finding],
+        seen: set[frozenset[int]],
+    ) -> None:
+        """The search of :meth:`_few_atoms_pinned` among ``atoms`` (of one block, and in the grouped model of one
+        group; ``key``: their random numbers)."""
+        if len(atoms) < 2:
+            return
+        order = np.argsort(key, kind="stable")
+        keys, atoms = key[order], atoms[order]
+        values = system.solution[atoms]
+        tolerance = 1e-7 * max(1.0, float(np.abs(keys).max()))
+        candidates: list[tuple[int, ...]] = list(_cancelling(keys, tolerance))
+        positions = np.arange(len(keys))
+        for start in range(0, len(keys) - 2, 128):  # every pair (first < second), 128 firsts at a time
+            firsts, seconds = np.nonzero(positions[None, :] > positions[start : start + 128, None])
+            firsts += start
+            sums = keys[firsts] + keys[seconds]
+            near = np.clip(np.searchsorted(keys, -sums), 1, len(keys) - 1)
+            hit = np.minimum(np.abs(keys[near] + sums), np.abs(keys[near - 1] + sums)) <= tolerance
+            found_pairs = zip(firsts[hit].tolist(), seconds[hit].tolist(), sums[hit].tolist(), strict=True)
+            for first, second, total in found_pairs:
+                low = int(np.searchsorted(keys, -total - tolerance, "left"))
+                high = int(np.searchsorted(keys, -total + tolerance, "right"))
+                candidates += [(first, second, third) for third in range(max(low, second + 1), high)]
+        splits = [(2, 2)] if len(keys) <= FOUR_MAX_ATOMS else []
+        splits += [(3, 2), (3, 3)] if len(keys) <= SIX_MAX_ATOMS else []
+        splits += [(4, 3), (4, 4)] if len(keys) <= EIGHT_MAX_ATOMS else []
+        candidates += _cancelling_unions(keys, tolerance, values, unsafe, splits) if splits else []
+        found: list[frozenset[int]] = []
+        # by the atoms' own indices (twins' numbers may swap places with the BLAS kernel's rounding)
+        for union in sorted(candidates, key=lambda u: (len(u), sorted(atoms[list(u)].tolist()))):
+            value = float(values[list(union)].sum())
+            rounded = round(value)
+            if abs(value - rounded) > 1e-6 or not unsafe(rounded):
                 continue
-            order = usable[np.argsort(key[usable], kind="stable")]
-            keys, atoms = key[order], block.atoms[order]
-            values = system.solution[atoms]
-            tolerance = 1e-7 * max(1.0, float(np.abs(keys).max()))
-            candidates: list[tuple[int, ...]] = list(_cancelling(keys, tolerance))
-            positions = np.arange(len(keys))
-            for start in range(0, len(keys) - 2, 128):  # every pair (first < second), 128 firsts at a time
-                firsts, seconds = np.nonzero(positions[None, :] > positions[start : start + 128, None])
-                firsts += start
-                sums = keys[firsts] + keys[seconds]
-                near = np.clip(np.searchsorted(keys, -sums), 1, len(keys) - 1)
-                hit = np.minimum(np.abs(keys[near] + sums), np.abs(keys[near - 1] + sums)) <= tolerance
-                found_pairs = zip(firsts[hit].tolist(), seconds[hit].tolist(), sums[hit].tolist(), strict=True)
-                for first, second, total in found_pairs:
-                    low = int(np.searchsorted(keys, -total - tolerance, "left"))
-                    high = int(np.searchsorted(keys, -total + tolerance, "right"))
-                    candidates += [(first, second, third) for third in range(max(low, second + 1), high)]
-            splits = [(2, 2)] if len(keys) <= FOUR_MAX_ATOMS else []
-            splits += [(3, 2), (3, 3)] if len(keys) <= SIX_MAX_ATOMS else []
-            splits += [(4, 3), (4, 4)] if len(keys) <= EIGHT_MAX_ATOMS else []
-            candidates += _cancelling_unions(keys, tolerance, values, unsafe, splits) if splits else []
-            found: list[frozenset[int]] = []
-            # by the atoms' own indices (twins' numbers may swap places with the BLAS kernel's rounding)
-            for union in sorted(candidates, key=lambda u: (len(u), sorted(atoms[list(u)].tolist()))):
-                value = float(values[list(union)].sum())
-                rounded = round(value)
-                if abs(value - rounded) > 1e-6 or not unsafe(rounded):
-                    continue
-                region = frozenset(int(atoms[i]) for i in union)
-                if region in seen:
-                    continue
-                vector = self._indicator(region)
-                if system.residual(vector) > 1e-6:
-                    continue  # the random direction's coincidence: not pinned
-                self._pinned_union(system, region, vector, rounded, live, found, seen, findings)
+            region = frozenset(int(atoms[i]) for i in union)
+            if region in seen:
+                continue
+            vector = self._indicator(region)
+            if system.residual(vector) > 1e-6:
+                continue  # the random direction's coincidence: not pinned
+            self._pinned_union(system, region, vector, rounded, live, found, seen, findings)
 
     def _regions(self, live: np.ndarray) -> tuple[set[frozenset[int]], list[list[frozenset[int]]]]:
         """The live atoms of every listed count, and of each sibling family's counts (the cells of one table),

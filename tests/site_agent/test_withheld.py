@@ -327,17 +327,11 @@ def test_no_pair_of_cells_is_pinned_small_in_a_large_system() -> None:
     assert sum(v is not None for v in protected.released.values()) >= len(boxes) - 4  # the rest is shown
 
 
-def test_no_pair_of_cells_is_pinned_small_where_the_model_has_groups() -> None:
-    # The same five cells (a+d, b+d and b+e give a+e = 3, k = 5), each count now of the records scoring at
-    # least 0.5 as well, beside that count itself (the records scoring at least 0.5) and 70 more shown cells:
-    # a subgroup variable z beside the score, whose counts' projection is released, so the audit's grouped
-    # model applies (site_agent/audit/decompose.py), and more than 60 atoms, so no integer program decides.
-    # Before 2026-12-05 the grouped model answered first and, finding nothing, let the release go out whole:
-    # it has no search for unions of atoms (threat model R14), and the recipient's linear algebra gave
-    # a+e = 3. Now the full model decides wherever it can be built.
-    from site_agent.audit import Audit, ReleaseFacts
-    from site_agent.audit.decompose import decompose
-
+def _five_cells_beside_a_score() -> tuple[dict[str, int], list[tuple[str, ...]], CountSet]:
+    """The five cells of the tests above (a+d, b+d and b+e give a+e = 3, k = 5), each count now of the records
+    scoring at least 0.5 as well, beside that count itself and 70 more cells: a subgroup variable z beside the
+    score, whose counts' projection is released, so the audit's grouped model applies
+    (site_agent/audit/decompose.py), with more than 60 atoms, so no integer program decides."""
     values = {"a": 1, "b": 7, "c": 6, "d": 5, "e": 2}
     values.update({f"m{i}": 6 + i % 3 for i in range(70)})
     boxes = [("a", "d"), ("b", "d"), ("b", "e"), *[(f"m{i}",) for i in range(70)]]
@@ -346,24 +340,64 @@ def test_no_pair_of_cells_is_pinned_small_where_the_model_has_groups() -> None:
     for i, box in enumerate(boxes):
         counts.add(f"t.b{i}", sum(values[c] for c in box), Condition("z", box), high)
     counts.add("t.high", sum(values.values()), high)
-    facts = ReleaseFacts("t", counts.definitions, {}, counts.relations, "", {}, 5, True, {}, {})
-    assert decompose(Audit([], facts, group=False).boxes) is not None  # a grouped model exists
-    protected = protect(counts, policy(k=5))
+    return values, boxes, counts
+
+
+def _pinned_small(values: dict[str, int], boxes: list[tuple[str, ...]], released: dict[str, int | None]) -> list:
+    """The regions among a+e, a, e and b+d that the shown counts pin to 1..4: the recipient's own linear algebra
+    (numpy's SVD of the shown counts' rows)."""
     cells = sorted(values)
-    rows = [[1.0] * len(cells)] if protected.released["t.high"] is not None else []
+    rows = [[1.0] * len(cells)] if released["t.high"] is not None else []
     rows += [
-        [1.0 if c in box else 0.0 for c in cells]
-        for i, box in enumerate(boxes)
-        if protected.released[f"t.b{i}"] is not None
+        [1.0 if c in box else 0.0 for c in cells] for i, box in enumerate(boxes) if released[f"t.b{i}"] is not None
     ]
-    _, singular, right = np.linalg.svd(np.array(rows), full_matrices=False)  # the recipient's linear algebra
+    _, singular, right = np.linalg.svd(np.array(rows), full_matrices=False)
     basis = right[singular > 1e-9].T
+    pinned = []
     for region in (("a", "e"), ("a",), ("e",), ("b", "d")):
         vector = np.array([1.0 if c in region else 0.0 for c in cells])
         rest = vector - basis @ (basis.T @ vector)
-        if rest @ rest < 1e-12:  # pinned: the shown counts give its value
-            assert not 0 < sum(values[c] for c in region) < 5, region
+        if rest @ rest < 1e-12 and 0 < sum(values[c] for c in region) < 5:  # pinned, and small
+            pinned.append(region)
+    return pinned
+
+
+def test_no_pair_of_cells_is_pinned_small_where_the_model_has_groups() -> None:
+    # Before 2026-12-05 the grouped model answered first and, finding nothing, let this release go out whole:
+    # it had no search for unions of atoms (threat model R14), and the recipient's linear algebra gave a+e = 3.
+    # Now the full model decides wherever it can be built.
+    from site_agent.audit import Audit, ReleaseFacts
+    from site_agent.audit.decompose import decompose
+
+    values, boxes, counts = _five_cells_beside_a_score()
+    facts = ReleaseFacts("t", counts.definitions, {}, counts.relations, "", {}, 5, True, {}, {})
+    assert decompose(Audit([], facts, group=False).boxes) is not None  # a grouped model exists
+    assert _pinned_small(values, boxes, dict(counts.values)) == [("a", "e")]  # shown as asked
+    protected = protect(counts, policy(k=5))
+    assert _pinned_small(values, boxes, protected.released) == []
     assert sum(v is not None for v in protected.released.values()) >= len(boxes)  # one count withheld at most
+
+
+def test_the_grouped_model_finds_a_pair_of_cells_pinned_small() -> None:
+    # Where the full model is too large to build (more than 5,000 atoms; here forced with full_max_atoms=1),
+    # the grouped model decides. Before 2026-12-05 it had none of the searches for unions of atoms and found
+    # nothing in this release; it now searches unions of one group's atoms (each a region of the full model).
+    from site_agent.audit import Audit, ReleaseFacts
+
+    values, boxes, counts = _five_cells_beside_a_score()
+    facts = ReleaseFacts("t", counts.definitions, {}, counts.relations, "", {}, 5, True, {}, {})
+    audit = Audit([], facts, full_max_atoms=1)
+    shown = dict(counts.values)
+    rules: dict[str, str] = {}
+    for _ in range(5):  # the site's repair rounds: withhold the first count each finding proposes
+        result = audit.evaluate(shown, 5, True, 2, current_rules=rules)
+        assert result.grouped
+        if result.ok:
+            break
+        name = result.findings[0].candidates[0]
+        shown[name], rules[name] = None, "audit"
+    assert result.ok and 1 <= len(rules) <= 2
+    assert _pinned_small(values, boxes, shown) == []
 
 
 def test_no_few_cells_are_pinned_small_in_random_larger_releases() -> None:
