@@ -70,7 +70,7 @@ require_approval = false
 require_model_approval = true
 # Before anything leaves, the agent checks everything this site has released, to every study, taken
 # together: a hidden count must stay uncertain. This is how many different whole numbers must remain
-# possible for it (2 = it can never be worked out exactly; larger is stricter; 1 switches the check off).
+# possible for it (2, the least allowed = it can never be worked out exactly; larger is stricter).
 protection_width = 2
 
 [policy.min_band_width]
@@ -294,8 +294,12 @@ def _policy(raw: Any, where: str) -> Policy:
     if not isinstance(require_model_approval, bool):
         raise DocumentError(f"{where}.require_model_approval: must be true or false")
     width = raw.get("protection_width", 2)
-    if isinstance(width, bool) or not isinstance(width, int) or not 1 <= width <= 1000:
-        raise DocumentError(f"{where}.protection_width: must be a whole number from 1 to 1000")
+    if isinstance(width, bool) or not isinstance(width, int) or not 2 <= width <= 1000:
+        # 1 would let a hidden count be worked out exactly: the audit would have nothing to check
+        raise DocumentError(
+            f"{where}.protection_width: must be a whole number from 2 to 1000 (2: a hidden count can never be "
+            "worked out exactly)"
+        )
     bands = raw.get("min_band_width", {})
     if not isinstance(bands, dict) or not all(
         isinstance(v, (int, float)) and not isinstance(v, bool) and v > 0 for v in bands.values()

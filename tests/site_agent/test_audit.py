@@ -490,3 +490,23 @@ def test_overlapping_age_band_requests_end_to_end(tmp_path) -> None:  # noqa: AN
     low, high = oracle_interval(cells, facts, region)
     assert low <= 1 <= high
     assert high - low + 1 >= 2, "the one diseased child aged 24-29 months can be worked out"
+
+
+def test_a_site_policy_cannot_switch_the_audit_off(tmp_path) -> None:  # noqa: ANN001
+    # protection_width = 1 once switched the audit off (every hidden count could then be worked out exactly);
+    # the promise that nothing released lets a recipient work out a hidden count does not allow it.
+    from federation.protocol.keys import write_keypair
+    from site_agent.config import DocumentError, init_site, load_site
+
+    _, public = write_keypair(tmp_path, "coordinator")
+    folder = init_site(tmp_path / "site", "site-x", [public])
+    config = folder / "site.toml"
+    text = config.read_text()
+    assert "protection_width = 2" in text
+    config.write_text(text.replace("protection_width = 2", "protection_width = 1"))
+    with pytest.raises(
+        DocumentError, match=r"site\.toml: \[policy\]\.protection_width: must be a whole number from 2 to 1000"
+    ):
+        load_site(folder)
+    config.write_text(text.replace("protection_width = 2", "protection_width = 3"))
+    assert load_site(folder).policy.protection_width == 3
