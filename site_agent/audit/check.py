@@ -197,7 +197,10 @@ class Audit:
         self._joined, self._joint_values, self.joints = joint_boxes(self.boxes, models, schema_entries, occupied)
         self.cells: Cells | None = None  # the grouped model's separator cells (None: the full model)
         self._union_answers: dict[tuple, tuple[int, ...] | None] = {}  # see _unions_pinned
-        self._live_regions: tuple[int, set[frozenset[int]], list[list[frozenset[int]]]] | None = None  # _regions
+        # per live-atom mask, each box's number of live atoms; the boxes by atom (see _listed_or_cells_of_a_table)
+        self._live_sizes: tuple[int, np.ndarray] | None = None
+        self._columns: sparse.csc_matrix | None = None
+        self._history_zero: np.ndarray | None = None  # atoms the earlier releases leave empty (_pinned_before)
         # whole-number tables the second looks found, tried first in later evaluations (see Branches); None:
         # each evaluation searches afresh (tests compare repair rounds with fresh audits that way)
         self._branch_tables: list[np.ndarray] | None = [] if carry_tables else None
@@ -874,7 +877,7 @@ class Audit:
             rest = int(round(values[f] - sum(values[g] for g in chosen)))
             if self._opened(vector, 2, rest, rest) is not None:
                 continue
-            if self._history_system().residual(vector) < 1e-6:
+            if self._pinned_before(vector):
                 continue  # the earlier releases alone pin it: public before this release, no cut of it can help
             seen.add(region)
             names = tuple(self._box_label(b) for b in [f, *chosen][:6])
@@ -930,11 +933,9 @@ class Audit:
         a finding, unless it is passed over (seen already, or larger than one found; a listed count; cells of
         one table; pinned by the earlier releases alone; open for a recipient who keeps each "0, or at least k"
         open)."""
-        if region in seen or region in self._regions(live)[0] or any(f < region for f in found):
+        if region in seen or any(f < region for f in found) or self._listed_or_cells_of_a_table(region, live):
             return
-        if self._cells_of_a_table(region, live):
-            return
-        if self._history_system().residual(vector) < 1e-6:
+        if self._pinned_before(vector):
             return  # the earlier releases alone pin it: public before this release
         if self._opened(vector, 2, value, value) is not None:  # (its integer programs cost most: asked last)
             return
@@ -951,11 +952,10 @@ class Audit:
         seen: set[frozenset[int]],
     ) -> None:
         """Beyond a small system: every union of two or three atoms of one block (four, in a block of at most
-        ``FOUR_MAX_ATOMS`` atoms; five or six, in one of at most ``SIX_MAX_ATOMS``, and seven or eight in one of at
-        most ``EIGHT_MAX_ATOMS``: :func:`_cancelling_unions`)
-        that the shown counts pin down to a value the policy would hide (threat model
-        R14: c + e = (a+b+c+e) − (a+b+d+e) + (d+e) gave 3 while c and e each stayed open, in a system too large
-        for :meth:`_any_union_pinned`).
+        ``FOUR_MAX_ATOMS`` atoms; five or six, in one of at most ``SIX_MAX_ATOMS``, and seven or eight in one of
+        at most ``EIGHT_MAX_ATOMS``: :func:`_cancelling_unions`) that the shown counts pin down to a value the
+        policy would hide (threat model R14: c + e = (a+b+c+e) − (a+b+d+e) + (d+e) gave 3 while c and e each
+        stayed open, in a system too large for :meth:`_any_union_pinned`).
 
         A union is pinned when its indicator lies in the row space: when its atoms' distances from the row
         space (vectors) add up to zero. One random direction turns each atom's distance into a number, as
@@ -967,7 +967,7 @@ class Audit:
         pinned on its own, and smaller. Passed over as by :meth:`_any_union_pinned`; only the smallest unions
         are reported in a round. It runs where the system has at most ``UNION_MAX_ATOMS`` live atoms, as
         :meth:`_unions_pinned` (the search is quadratic, and whether the earlier releases alone pin a union
-        found needs their own system: 2.7 s after 200 releases; long histories are not searched). In the
+        found may need their own system: 1.9 s after 200 releases; long histories are not searched). In the
         grouped model (a history whose full model is too large) it searches the atoms of one group at a time:
         each such union is a region of the full model, while a union of two groups' atoms could count a full
         atom twice."""
@@ -1037,27 +1037,50 @@ class Audit:
                 continue  # the random direction's coincidence: not pinned
             self._pinned_union(system, region, vector, rounded, live, found, seen, findings)
 
-    def _regions(self, live: np.ndarray) -> tuple[set[frozenset[int]], list[list[frozenset[int]]]]:
-        """The live atoms of every listed count, and of each sibling family's counts (the cells of one table),
-        for the atoms ``live``: worked out once per evaluation, not once per region asked about."""
+    def _listed_or_cells_of_a_table(self, region: frozenset[int], live: np.ndarray) -> bool:
+        """Whether ``region`` (live atoms) is the live part of a listed count, or of two or more cells of one table
+        (sibling boxes, no two sharing an atom): a sum of counts the release lists, each protected on its own
+        (as :meth:`_rest_is_listed`). Asked of the boxes at once (sparse products), not box by box: after 200
+        releases, listing every box's live atoms took 1.25 s per evaluation."""
         key = hash(live.tobytes())
-        if self._live_regions is None or self._live_regions[0] != key:
+        if self._live_sizes is None or self._live_sizes[0] != key:
             self._families()
-            listed = {self._live_region(j, live) for j in range(len(self.box_atoms))}
-            families = [
-                [r for r in (self._live_region(m, live) for m in members) if r] for _, members in self._sibling_families
-            ]
-            self._live_regions = (key, listed, families)
-        return self._live_regions[1], self._live_regions[2]
-
-    def _cells_of_a_table(self, region: frozenset[int], live: np.ndarray) -> bool:
-        """Whether ``region`` is two or more cells of one table (sibling boxes, no two sharing an atom): a sum
-        of counts the release lists, each protected on its own (as :meth:`_rest_is_listed`)."""
-        for family in self._regions(live)[1]:
-            parts = [r for r in family if r <= region]
-            if len(parts) >= 2 and sum(map(len, parts)) == len(region) and frozenset().union(*parts) == region:
-                return True
+            if self._columns is None:
+                self._columns = self.incidence.tocsc()
+            self._live_sizes = (key, np.asarray(self.incidence @ live.astype(float)).ravel())
+        sizes = self._live_sizes[1]
+        atoms = np.fromiter(sorted(region), dtype=np.int64, count=len(region))
+        within = np.asarray(self._columns[:, atoms].sum(axis=1)).ravel()  # the region's atoms in each box
+        if np.any((within == len(region)) & (sizes == len(region))):
+            return True  # a listed count
+        inside = (within == sizes) & (sizes > 0)  # boxes whose live atoms all lie in the region
+        families = {n for box in np.flatnonzero(inside).tolist() for n in self._family_index.get(box, [])}
+        for number in sorted(families):
+            parts = [m for m in self._sibling_families[number][1] if inside[m]]
+            if len(parts) >= 2 and sizes[parts].sum() == len(region):
+                if np.all(np.asarray(self._columns[:, atoms][parts].sum(axis=0)).ravel() >= 1):
+                    return True  # they cover the region, so no two overlap
         return False
+
+    def _pinned_before(self, vector: np.ndarray) -> bool:
+        """Whether the earlier releases alone pin the region ``vector`` (every count of the audited release
+        withheld, with no rule's fact): public before this release.
+
+        First without building their system: where this evaluation's own combination for the region uses no
+        count the audited release alone shows, and holds on every atom but those the earlier releases
+        themselves leave empty (:meth:`_System.stated`), it is a combination of their counts. Otherwise their
+        system is built (once per audit, on first need: 1.9 s after 200 releases of ``make bench``'s history)."""
+        system = self._system
+        rows = system.combination(vector)
+        if rows and not any(system.row_box[r] in self._suppressible for r in rows):
+            if self._history_zero is None:
+                none = {s.name: None for s in self.statements if s.release == self.current}
+                known, _ = self._known(none)
+                _, _, _, zero, released_zero, _, _ = self._equations(none, ({}, {}), known)
+                self._history_zero = zero | released_zero
+            if system.stated(vector, self._history_zero):
+                return True
+        return self._history_system().residual(vector) < 1e-6
 
     def _history_system(self) -> _System:
         """The system of the earlier releases alone (every count of the audited release withheld, with no rule's
@@ -1066,7 +1089,9 @@ class Audit:
             none = {s.name: None for s in self.statements if s.release == self.current}
             known, _ = self._known(none)
             a, b, row_box, zero, released_zero, bounds, _ = self._equations(none, ({}, {}), known)
-            self._history = _build_system(a, b, row_box, zero | released_zero, *bounds)
+            # every table this evaluation's system allows, the earlier releases allow too: only the atoms it
+            # leaves empty in every table can be empty in all of theirs (its LP asks about those alone)
+            self._history = _build_system(a, b, row_box, zero | released_zero, *bounds, self._system.zero)
         return self._history
 
     def _families(self) -> list[tuple[str, list[int]]]:
