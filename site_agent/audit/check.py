@@ -48,8 +48,8 @@ UNION_FAMILY_BOXES = 40  # a family with more boxes inside one F is not searched
 # Where the full model has at most this many live atoms in its equations, every union of them is checked
 # (``_any_union_pinned``: 65,535 unions, one matrix product).
 ANY_UNION_MAX_ATOMS = 16
-# Beyond it, unions of two or three atoms of one block are searched where the system has at most UNION_MAX_ATOMS
-# live atoms, unions of four where the block has at most this many (``_few_atoms_pinned``),
+# Beyond it, unions of two atoms of one block are searched in any system (by sorting), of three where the block has
+# at most UNION_MAX_ATOMS atoms (one search per pair), of four where it has at most this many (``_few_atoms_pinned``),
 FOUR_MAX_ATOMS = 400
 # unions of five or six where it has at most this many (the sums of every three atoms: 161,700 at 100),
 SIX_MAX_ATOMS = 100
@@ -951,11 +951,12 @@ class Audit:
         findings: list[Finding],
         seen: set[frozenset[int]],
     ) -> None:
-        """Beyond a small system: every union of two or three atoms of one block (four, in a block of at most
-        ``FOUR_MAX_ATOMS`` atoms; five or six, in one of at most ``SIX_MAX_ATOMS``, and seven or eight in one of
-        at most ``EIGHT_MAX_ATOMS``: :func:`_cancelling_unions`) that the shown counts pin down to a value the
-        policy would hide (threat model R14: c + e = (a+b+c+e) − (a+b+d+e) + (d+e) gave 3 while c and e each
-        stayed open, in a system too large for :meth:`_any_union_pinned`).
+        """Beyond a small system: every union of two atoms of one block, and of three where the block has at most
+        ``UNION_MAX_ATOMS`` atoms (four, in a block of at most ``FOUR_MAX_ATOMS`` atoms; five or six, in one of
+        at most ``SIX_MAX_ATOMS``, and seven or eight in one of at most ``EIGHT_MAX_ATOMS``:
+        :func:`_cancelling_unions`) that the shown counts pin down to a value the policy would hide (threat model
+        R14: c + e = (a+b+c+e) − (a+b+d+e) + (d+e) gave 3 while c and e each stayed open, in a system too large
+        for :meth:`_any_union_pinned`).
 
         A union is pinned when its indicator lies in the row space: when its atoms' distances from the row
         space (vectors) add up to zero. One random direction turns each atom's distance into a number, as
@@ -965,15 +966,18 @@ class Audit:
         and each candidate whose value the policy would hide is proved by its exact
         distance. A union across blocks needs no search: each block's part of it is then
         pinned on its own, and smaller. Passed over as by :meth:`_any_union_pinned`; only the smallest unions
-        are reported in a round. It runs where the system has at most ``UNION_MAX_ATOMS`` live atoms, as
-        :meth:`_unions_pinned` (the search is quadratic, and whether the earlier releases alone pin a union
-        found may need their own system: 1.9 s after 200 releases; long histories are not searched). In the
+        are reported in a round. Pairs are searched in any system, long histories too (sorting costs little);
+        triples and more only in the blocks named (the searches are quadratic and more). Until 2026-12-05 no
+        system of more than ``UNION_MAX_ATOMS`` live atoms was searched: after one earlier release of 3,030
+        open cells the five cells above gave a+e = 3 (site_agent/test_withheld.py::
+        test_no_pair_of_cells_is_pinned_small_after_a_long_history). Whether the earlier releases alone pin a
+        union found may need their own system (:meth:`_pinned_before`). In the
         grouped model (a history whose full model is too large) it searches the atoms of one group at a time:
         each such union is a region of the full model, while a union of two groups' atoms could count a full
         atom twice."""
         live = ~system.zero & ~self.structural_zero & ~released_zero & ~system.free
-        if not ANY_UNION_MAX_ATOMS < int(live.sum()) <= UNION_MAX_ATOMS:
-            return  # a small system: every union was checked; a long history: not searched
+        if int(live.sum()) <= ANY_UNION_MAX_ATOMS:
+            return  # a small system: every union was checked
         rng = np.random.default_rng(1)
         for block in system.blocks:
             if not block.basis.shape[1]:
@@ -1006,8 +1010,8 @@ class Audit:
         values = system.solution[atoms]
         tolerance = 1e-7 * max(1.0, float(np.abs(keys).max()))
         candidates: list[tuple[int, ...]] = list(_cancelling(keys, tolerance))
-        positions = np.arange(len(keys))
-        for start in range(0, len(keys) - 2, 128):  # every pair (first < second), 128 firsts at a time
+        positions = np.arange(len(keys)) if len(keys) <= UNION_MAX_ATOMS else np.zeros(0, int)
+        for start in range(0, len(positions) - 2, 128):  # every pair (first < second), 128 firsts at a time
             firsts, seconds = np.nonzero(positions[None, :] > positions[start : start + 128, None])
             firsts += start
             sums = keys[firsts] + keys[seconds]

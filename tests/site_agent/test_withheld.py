@@ -21,6 +21,7 @@ from scipy.optimize import linprog
 from federation.protocol import PolicyViolation
 from simulations import rerun
 from simulations.rerun import counts_of
+from site_agent.audit import Audit, ReleaseFacts
 from site_agent.counts import Condition, CountSet
 from site_agent.disclosure import protect, suppress
 from site_agent.withheld import annotate, rule_of
@@ -366,7 +367,6 @@ def test_no_pair_of_cells_is_pinned_small_where_the_model_has_groups() -> None:
     # Before 2026-12-05 the grouped model answered first and, finding nothing, let this release go out whole:
     # it had no search for unions of atoms (threat model R14), and the recipient's linear algebra gave a+e = 3.
     # Now the full model decides wherever it can be built.
-    from site_agent.audit import Audit, ReleaseFacts
     from site_agent.audit.decompose import decompose
 
     values, boxes, counts = _five_cells_beside_a_score()
@@ -382,7 +382,6 @@ def test_the_grouped_model_finds_a_pair_of_cells_pinned_small() -> None:
     # Where the full model is too large to build (more than 5,000 atoms; here forced with full_max_atoms=1),
     # the grouped model decides. Before 2026-12-05 it had none of the searches for unions of atoms and found
     # nothing in this release; it now searches unions of one group's atoms (each a region of the full model).
-    from site_agent.audit import Audit, ReleaseFacts
 
     values, boxes, counts = _five_cells_beside_a_score()
     facts = ReleaseFacts("t", counts.definitions, {}, counts.relations, "", {}, 5, True, {}, {})
@@ -398,6 +397,31 @@ def test_the_grouped_model_finds_a_pair_of_cells_pinned_small() -> None:
         shown[name], rules[name] = None, "audit"
     assert result.ok and 1 <= len(rules) <= 2
     assert _pinned_small(values, boxes, shown) == []
+
+
+def test_no_pair_of_cells_is_pinned_small_after_a_long_history() -> None:
+    # An earlier release of 1,010 groups of three open cells (x+y and y+z shown in each) gives the site's
+    # system more than 3,000 live atoms. Before 2026-12-05 no union of atoms was searched in such a system
+    # (a long history), and the five cells above (a+d, b+d and b+e give a+e = 3, k = 5) then went out whole.
+    # Pairs are now searched in any system (by sorting).
+    values = {"a": 1, "b": 7, "c": 6, "d": 5, "e": 2}
+    values.update({f"m{i}": 6 + i % 3 for i in range(3 * 1010)})
+    history = CountSet()
+    for i in range(1010):
+        for j, cells in enumerate(((f"m{3 * i}", f"m{3 * i + 1}"), (f"m{3 * i + 1}", f"m{3 * i + 2}"))):
+            history.add(f"h.g{i}.{j}", sum(values[c] for c in cells), Condition("z", cells))
+    first = protect(history, policy(k=5))
+    assert all(v is not None for v in first.released.values())
+    earlier = [ReleaseFacts.from_dict("r0", first.facts(history))]
+    current = CountSet()
+    for name, cells in (("t.ad", ("a", "d")), ("t.bd", ("b", "d")), ("t.be", ("b", "e"))):
+        current.add(name, sum(values[c] for c in cells), Condition("z", cells))
+    assert current.values["t.ad"] - current.values["t.bd"] + current.values["t.be"] == 3  # shown as asked
+    protected = protect(current, policy(k=5), earlier, label="r1")
+    withheld = [n for n, v in protected.released.items() if v is None]
+    assert len(withheld) == 1  # any one of the three leaves a+e open (a, d and e appear nowhere else)
+    audit = Audit(earlier, ReleaseFacts("r1", current.definitions, {}, current.relations, "", {}, 5, True, {}, {}))
+    assert audit.evaluate(dict(current.values), 5, True, 2).atoms > 3000  # a long history indeed
 
 
 def test_no_few_cells_are_pinned_small_in_random_larger_releases() -> None:
