@@ -213,9 +213,9 @@ class Audit:
         if group:
             # Whether the full model is small enough to decide is known before any evaluation: its refinement
             # stops as soon as it passes FULL_MAX_ATOMS (milliseconds, even after 200 releases). Where it is, it
-            # decides: the grouped model has no searches for unions of atoms (threat model R14), and its answer
-            # "clear" once let a union of two cells pinned small go out
-            # (site_agent/test_withheld.py::test_no_pair_of_cells_is_pinned_small_where_the_model_has_groups).
+            # decides: the grouped model searches unions of atoms within one group only (threat model R14), and
+            # when it answered first, with no such search, its "clear" let a union of two cells pinned small go
+            # out (site_agent/test_withheld.py::test_no_pair_of_cells_is_pinned_small_where_the_model_has_groups).
             try:
                 self._full_masks = refine(self._joined, self.domains, self._joint_values, full_max_atoms)
             except AuditError:
