@@ -184,3 +184,53 @@ def test_a_history_of_roc_bands_and_age_bands_needs_far_fewer_atoms() -> None:
     mine = site.evaluate(released, 5, True, 2, current_rules=rules)
     theirs = full.evaluate(released, 5, True, 2, current_rules=rules)
     assert mine.ok == theirs.ok
+
+
+def test_a_union_is_a_listed_count_or_cells_of_one_table_as_box_by_box() -> None:
+    # The audit asks whether a union it found is the live part of a listed count, or of two or more cells of one
+    # table (no two overlapping), with two sparse products over every box at once; the reference here lists
+    # every box's live atoms and every family's cells one by one, as the audit did until 2026-12-05. Random
+    # histories of this file's generator, random sets of live atoms, regions of three kinds (a box's live
+    # atoms, the union of a few cells of one family, random atoms).
+    import random
+
+    def by_box(audit: Audit, region: frozenset[int], live: np.ndarray) -> bool:
+        def live_part(j: int) -> frozenset[int]:
+            return frozenset(audit.box_index[j][live[audit.box_index[j]]].tolist())
+
+        if region in {live_part(j) for j in range(len(audit.box_atoms))}:
+            return True
+        for _, members in audit._families():
+            parts = [r for r in (live_part(m) for m in members) if r and r <= region]
+            if len(parts) >= 2 and sum(map(len, parts)) == len(region) and frozenset().union(*parts) == region:
+                return True
+        return False
+
+    rng = random.Random(0)
+    answers = []
+    for seed in range(6):
+        data = records(seed, 300)
+        history = [release(data, k % 4, 0.3 + 0.05 * (k % 5), 12 + 6 * k) for k in range(6)]
+        earlier = [facts(f"r{j}", counts, 5)[0] for j, counts in enumerate(history[:-1])]
+        current, released, rules = facts("new", history[-1], 5)
+        audit = Audit(earlier, current)
+        audit.evaluate(released, 5, True, 2, current_rules=rules)
+        families = [members for _, members in audit._families()]
+        for _ in range(150):
+            live = np.array([rng.random() < 0.8 for _ in range(audit.incidence.shape[1])])
+            kind = rng.random()
+            if kind < 0.4:
+                box = rng.randrange(len(audit.box_atoms))
+                region = frozenset(audit.box_index[box][live[audit.box_index[box]]].tolist())
+            elif kind < 0.8:
+                family = rng.choice(families)
+                chosen = rng.sample(family, min(len(family), rng.randint(2, 4)))
+                region = frozenset().union(*(audit.box_index[m][live[audit.box_index[m]]].tolist() for m in chosen))
+            else:
+                atoms = np.flatnonzero(live).tolist()
+                region = frozenset(rng.sample(atoms, min(len(atoms), rng.randint(1, 6))))
+            if region:
+                answer = audit._listed_or_cells_of_a_table(region, live)
+                assert answer == by_box(audit, region, live), (seed, sorted(region))
+                answers.append(answer)
+    assert 300 < sum(answers) < len(answers) - 100  # both answers, many times
