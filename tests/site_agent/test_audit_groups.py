@@ -234,3 +234,37 @@ def test_a_union_is_a_listed_count_or_cells_of_one_table_as_box_by_box() -> None
                 assert answer == by_box(audit, region, live), (seed, sorted(region))
                 answers.append(answer)
     assert 300 < sum(answers) < len(answers) - 100  # both answers, many times
+
+
+def test_pinned_before_answers_as_the_earlier_releases_own_system() -> None:
+    # Whether the earlier releases alone pin a region is first proved from the evaluation's own combination
+    # (one that uses no count only the audited release shows); only otherwise is their own system built
+    # (2026-12-05). Either way the answer must be that system's. Regions: every count, and the difference of
+    # every two nested counts, that the audited release's evaluation pins; random histories of this file's
+    # generator, where some counts are new in the audited release and most were shown before.
+    decided_alone = fallbacks = 0
+    for seed in range(6):
+        data = records(seed, 300)
+        history = [release(data, k % 4, 0.3 + 0.05 * (k % 5), 12 + 6 * k) for k in range(6)]
+        earlier = [facts(f"r{j}", counts, 5)[0] for j, counts in enumerate(history[:-1])]
+        current, released, rules = facts("new", history[-1], 5)
+        audit = Audit(earlier, current)
+        audit.evaluate(released, 5, True, 2, current_rules=rules)
+        vectors = [audit._vector(j) for j in range(len(audit.box_atoms))]
+        vectors += [
+            audit._vector(f) - audit._vector(g)
+            for f in range(len(audit.box_atoms))
+            for g in range(len(audit.box_atoms))
+            if audit.box_atoms[g] < audit.box_atoms[f]
+        ]
+        theirs = audit._history_system()
+        built = []
+        audit._history_system = lambda built=built, theirs=theirs: built.append(1) or theirs  # counts fallbacks
+        for vector in vectors:
+            if audit._system.residual(vector) > 1e-6:
+                continue  # not pinned by this evaluation: never asked
+            before = len(built)
+            assert audit._pinned_before(vector) == (theirs.residual(vector) < 1e-6)
+            fallbacks += len(built) - before
+            decided_alone += len(built) == before
+    assert decided_alone > 50 and fallbacks > 50  # both ways, many times
