@@ -200,7 +200,9 @@ class Audit:
         # per live-atom mask, each box's number of live atoms; the boxes by atom (see _listed_or_cells_of_a_table)
         self._live_sizes: tuple[int, np.ndarray] | None = None
         self._columns: sparse.csc_matrix | None = None
-        self._history_zero: np.ndarray | None = None  # atoms the earlier releases leave empty (_pinned_before)
+        # the earlier releases' equations alone, and their system (_history_equations, _history_system)
+        self._history_inputs: tuple | None = None
+        self._history: _System | None = None
         # whole-number tables the second looks found, tried first in later evaluations (see Branches); None:
         # each evaluation searches afresh (tests compare repair rounds with fresh audits that way)
         self._branch_tables: list[np.ndarray] | None = [] if carry_tables else None
@@ -1054,7 +1056,8 @@ class Audit:
             self._live_sizes = (key, np.asarray(self.incidence @ live.astype(float)).ravel())
         sizes = self._live_sizes[1]
         atoms = np.fromiter(sorted(region), dtype=np.int64, count=len(region))
-        within = np.asarray(self._columns[:, atoms].sum(axis=1)).ravel()  # the region's atoms in each box
+        columns = self._columns[:, atoms]
+        within = np.asarray(columns.sum(axis=1)).ravel()  # the region's atoms in each box
         if np.any((within == len(region)) & (sizes == len(region))):
             return True  # a listed count
         inside = (within == sizes) & (sizes > 0)  # boxes whose live atoms all lie in the region
@@ -1062,7 +1065,7 @@ class Audit:
         for number in sorted(families):
             parts = [m for m in self._sibling_families[number][1] if inside[m]]
             if len(parts) >= 2 and sizes[parts].sum() == len(region):
-                if np.all(np.asarray(self._columns[:, atoms][parts].sum(axis=0)).ravel() >= 1):
+                if np.all(np.asarray(columns[parts].sum(axis=0)).ravel() >= 1):
                     return True  # they cover the region, so no two overlap
         return False
 
@@ -1077,25 +1080,29 @@ class Audit:
         system = self._system
         rows = system.combination(vector)
         if rows and not any(system.row_box[r] in self._suppressible for r in rows):
-            if self._history_zero is None:
-                none = {s.name: None for s in self.statements if s.release == self.current}
-                known, _ = self._known(none)
-                _, _, _, zero, released_zero, _, _ = self._equations(none, ({}, {}), known)
-                self._history_zero = zero | released_zero
-            if system.stated(vector, self._history_zero):
+            if system.stated(vector, self._history_equations()[3]):
                 return True
         return self._history_system().residual(vector) < 1e-6
 
-    def _history_system(self) -> _System:
-        """The system of the earlier releases alone (every count of the audited release withheld, with no rule's
-        fact): what was public before this release. Built once, on first need."""
-        if getattr(self, "_history", None) is None:
+    def _history_equations(self) -> tuple:
+        """The earlier releases' equations alone (every count of the audited release withheld, with no rule's
+        fact): ``a``, ``b``, each row's box, the atoms they leave empty (structurally, by a shown 0 or by a
+        rule's fact) and their bound rows. Worked out once, on first need."""
+        if self._history_inputs is None:
             none = {s.name: None for s in self.statements if s.release == self.current}
             known, _ = self._known(none)
             a, b, row_box, zero, released_zero, bounds, _ = self._equations(none, ({}, {}), known)
+            self._history_inputs = (a, b, row_box, zero | released_zero, bounds)
+        return self._history_inputs
+
+    def _history_system(self) -> _System:
+        """The system of the earlier releases alone: what was public before this release. Built once, on first
+        need."""
+        if self._history is None:
+            a, b, row_box, zero, bounds = self._history_equations()
             # every table this evaluation's system allows, the earlier releases allow too: only the atoms it
             # leaves empty in every table can be empty in all of theirs (its LP asks about those alone)
-            self._history = _build_system(a, b, row_box, zero | released_zero, *bounds, self._system.zero)
+            self._history = _build_system(a, b, row_box, zero, *bounds, self._system.zero)
         return self._history
 
     def _families(self) -> list[tuple[str, list[int]]]:
