@@ -328,14 +328,18 @@ def test_no_pair_of_cells_is_pinned_small_in_a_large_system() -> None:
     assert sum(v is not None for v in protected.released.values()) >= len(boxes) - 4  # the rest is shown
 
 
+# The five cells of the tests above with c not small: a+d, b+d and b+e shown give a+e = 3 (k = 5).
+FIVE_CELLS = {"a": 1, "b": 7, "c": 6, "d": 5, "e": 2}
+PAIR_BOXES = (("a", "d"), ("b", "d"), ("b", "e"))
+
+
 def _five_cells_beside_a_score() -> tuple[dict[str, int], list[tuple[str, ...]], CountSet]:
     """The five cells of the tests above (a+d, b+d and b+e give a+e = 3, k = 5), each count now of the records
     scoring at least 0.5 as well, beside that count itself and 70 more cells: a subgroup variable z beside the
     score, whose counts' projection is released, so the audit's grouped model applies
     (site_agent/audit/decompose.py), with more than 60 atoms, so no integer program decides."""
-    values = {"a": 1, "b": 7, "c": 6, "d": 5, "e": 2}
-    values.update({f"m{i}": 6 + i % 3 for i in range(70)})
-    boxes = [("a", "d"), ("b", "d"), ("b", "e"), *[(f"m{i}",) for i in range(70)]]
+    values = {**FIVE_CELLS, **{f"m{i}": 6 + i % 3 for i in range(70)}}
+    boxes = [*PAIR_BOXES, *[(f"m{i}",) for i in range(70)]]
     high = Condition("score", low=0.5)
     counts = CountSet()
     for i, box in enumerate(boxes):
@@ -404,8 +408,7 @@ def test_no_pair_of_cells_is_pinned_small_after_a_long_history() -> None:
     # system more than 3,000 live atoms. Before 2026-12-05 no union of atoms was searched in such a system
     # (a long history), and the five cells above (a+d, b+d and b+e give a+e = 3, k = 5) then went out whole.
     # Pairs are now searched in any system (by sorting).
-    values = {"a": 1, "b": 7, "c": 6, "d": 5, "e": 2}
-    values.update({f"m{i}": 6 + i % 3 for i in range(3 * 1010)})
+    values = {**FIVE_CELLS, **{f"m{i}": 6 + i % 3 for i in range(3 * 1010)}}
     history = CountSet()
     for i in range(1010):
         for j, cells in enumerate(((f"m{3 * i}", f"m{3 * i + 1}"), (f"m{3 * i + 1}", f"m{3 * i + 2}"))):
@@ -414,8 +417,8 @@ def test_no_pair_of_cells_is_pinned_small_after_a_long_history() -> None:
     assert all(v is not None for v in first.released.values())
     earlier = [ReleaseFacts.from_dict("r0", first.facts(history))]
     current = CountSet()
-    for name, cells in (("t.ad", ("a", "d")), ("t.bd", ("b", "d")), ("t.be", ("b", "e"))):
-        current.add(name, sum(values[c] for c in cells), Condition("z", cells))
+    for cells in PAIR_BOXES:
+        current.add("t." + "".join(cells), sum(values[c] for c in cells), Condition("z", cells))
     assert current.values["t.ad"] - current.values["t.bd"] + current.values["t.be"] == 3  # shown as asked
     protected = protect(current, policy(k=5), earlier, label="r1")
     withheld = [n for n, v in protected.released.items() if v is None]
