@@ -309,20 +309,23 @@ def protect(
     context = (counts, k, allow_zero, width, audit, public, bundle, domains, lone, models)
     units = sorted({u for n in counts.values if (u := unit_of(n, primary)) is not None}, key=_cut_rank)
 
-    def attempt(dropped: Sequence[str]) -> tuple[Protected | None, list[Finding], set[str]]:
-        try:
-            result = _protect_once(context, primary, frozenset(dropped))
-            return result, [], set(result.culprits)
-        except _Refused as refused:
-            return None, refused.findings, refused.culprits
-
     floor = _primary_floor(counts, primary, k, allow_zero)
     core = frozenset(n for n in primary if keep_rank(n, primary) == 2)  # the 2x2 cells and the analysed totals
 
     def excess(result: Protected | None) -> int:
         return 10**6 if result is None else len((result.suppressed & core) - floor)
 
-    result, findings, culprits = attempt(())
+    def attempt(dropped: Sequence[str], best: Protected | None) -> tuple[Protected | None, list[Finding], set[str]]:
+        # An attempt withholds more with each audit round, so one that already withholds as many of the primary
+        # table's cells as the best so far cannot do better: it stops there (with the parts it found exposed so far)
+        enough = None if best is None else (core, floor, excess(best))
+        try:
+            result = _protect_once(context, primary, frozenset(dropped), enough)
+            return result, [], set(result.culprits)
+        except _Refused as refused:
+            return None, refused.findings, refused.culprits
+
+    result, findings, culprits = attempt((), None)
     if result is None and any(not f.candidates for f in findings):
         raise _refusal(findings, earlier)  # exposed by earlier releases alone: no cut of this one can help
     best, best_findings = result, findings
@@ -334,7 +337,7 @@ def protect(
         if not new:
             break
         dropped += new
-        result, findings, culprits = attempt(dropped)
+        result, findings, culprits = attempt(dropped, best)
         if excess(result) < excess(best):
             best, best_findings = result, findings
     if best is None:
@@ -351,8 +354,13 @@ def _primary_floor(counts: CountSet, primary: frozenset[str], k: int, allow_zero
     return frozenset(suppressed)
 
 
-def _protect_once(context: tuple, primary: frozenset[str], dropped: frozenset[str]) -> Protected:
-    """One pass: cut back ``dropped`` parts, primary and secondary suppression, then the audit rounds."""
+def _protect_once(
+    context: tuple, primary: frozenset[str], dropped: frozenset[str], enough: tuple | None = None
+) -> Protected:
+    """One pass: cut back ``dropped`` parts, primary and secondary suppression, then the audit rounds.
+
+    ``enough`` = (core, floor, limit): refuse (with the parts found exposed so far) as soon as the pass withholds
+    ``limit`` of the ``core`` cells beyond the ``floor`` (it cannot end with fewer: each round withholds more)."""
     counts, k, allow_zero, width, audit, public, bundle, domains, lone, models = context
     values = counts.values
     reasons: dict[str, str] = {}
@@ -425,6 +433,8 @@ def _protect_once(context: tuple, primary: frozenset[str], dropped: frozenset[st
             raise _Refused(stuck or result.findings, culprits | _units_of(stuck or result.findings, primary))
         suppressed |= added
         _secondary(values, relations, suppressed, reasons, public, primary, twins=twins)
+        if enough is not None and len((suppressed & enough[0]) - enough[1]) >= enough[2]:
+            raise _Refused(result.findings, culprits | _units_of(result.findings, primary))
     else:
         raise _Refused(result.findings if result else [], culprits)
 
