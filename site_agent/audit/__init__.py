@@ -33,10 +33,11 @@ for an ONNX graph, those a record or a random input reaches), so a score band is
    analysis, across every release) by exact dynamic programming over sums, bands only on another variable than
    the box's own. A rest that is exactly the other cells of a chosen box's own table (withheld cells adding up
    to a total less its shown cells) is passed over: each of them is protected by check 1; so is a rest the
-   earlier releases alone already pin.
+   earlier releases alone already pin. It runs in any system: only boxes of the audited release and those
+   holding one are looked at.
    In a small system (at most ``ANY_UNION_MAX_ATOMS`` live atoms in its equations) every union of atoms is
    checked (``Audit._any_union_pinned``), with the same passes and two or more cells of one table passed over;
-   in a larger one of at most ``UNION_MAX_ATOMS`` live atoms, every union of two or three atoms of one block,
+   in a larger one, every union of two atoms of one block, of three in a block of at most ``UNION_MAX_ATOMS``,
    of four in a block of at most ``FOUR_MAX_ATOMS``, of five or six in one of at most ``SIX_MAX_ATOMS`` and of
    seven or eight in one of at most ``EIGHT_MAX_ATOMS`` (``Audit._few_atoms_pinned``: the atoms' distances
    from the row space, turned into numbers by one random direction, add up to zero; each candidate proved by

@@ -40,10 +40,8 @@ _CONTROLLER: ThreadpoolController | None = None
 # Where the grouped model's answer is not clear, the full model decides when it has at most this many atoms
 # (a few seconds); beyond, the grouped model's own findings do (see ``evaluate``).
 FULL_MAX_ATOMS = 5_000
-# The search for a box less several boxes inside it (``_unions_pinned``) runs where the full model has at most
-# this many live atoms and pinned boxes (the demo's sites: up to 1,456 atoms).
+# Triples of atoms are searched in blocks of at most this many atoms (``_few_atoms_pinned``)
 UNION_MAX_ATOMS = 3_000
-UNION_MAX_BOXES = 1_500
 UNION_FAMILY_BOXES = 40  # a family with more boxes inside one F is not searched (the search is quadratic in them)
 # Where the full model has at most this many live atoms in its equations, every union of them is checked
 # (``_any_union_pinned``: 65,535 unions, one matrix product).
@@ -828,37 +826,50 @@ class Audit:
         study, less two bands of a comparison model (ages 30-44 and 45-59) in another, gave the three positives
         aged 24-29 while a third model's bands split them into two open atoms; and one ordinary agreement
         request gave the positives with no second reference (the analysed positives less the two pair cells
-        with one). Systems with more than ``UNION_MAX_ATOMS`` live atoms or ``UNION_MAX_BOXES`` pinned boxes
-        (long histories) are not searched (docs/threat-model.md, R14)."""
+        with one). Long histories are searched too: until 2026-12-05 a system of more than 3,000 live atoms or
+        1,500 pinned boxes was not, and after one earlier release of 3,057 open cells, nine cells less two shown
+        cells gave 4 (site_agent/test_withheld.py::
+        test_nine_cells_less_two_shown_cells_are_not_pinned_small_after_a_long_history)."""
         live_mask = ~system.zero
-        if int(live_mask.sum()) > UNION_MAX_ATOMS:
-            return
         values = self.incidence @ system.solution
-        regions: dict[int, frozenset[int]] = {}
-        for box in np.flatnonzero(np.abs(key) < 1e-7).tolist():
-            region = self._live_region(box, live_mask)
-            if region and round(values[box]) >= 1:
-                regions[box] = region
-        if len(regions) > UNION_MAX_BOXES or not any(b in self._suppressible for b in regions):
+        # the boxes pinned down (key 0) that hold a record, as rows of their live atoms, by size (then number)
+        pinned = np.flatnonzero((np.abs(key) < 1e-7) & (np.round(values) >= 1))
+        member = self.incidence[pinned][:, np.flatnonzero(live_mask)].tocsr()
+        sizes = np.diff(member.indptr)
+        keep = np.lexsort((pinned, sizes))
+        keep = keep[sizes[keep] > 0]
+        boxes, member, sizes = pinned[keep].tolist(), member[keep], sizes[keep]
+        member.data[:] = 1.0
+        audited = np.fromiter((b in self._suppressible for b in boxes), bool, count=len(boxes))
+        if not audited.any():
             return
+        # An F is searched only if it, or a box inside it, is of the audited release (the loop below passes the
+        # others over): which boxes hold one comes from one sparse product, so that a long history's thousands
+        # of pinned boxes cost little (before 2026-12-05, systems of more than 3,000 live atoms or 1,500 pinned
+        # boxes were not searched at all)
+        holds = (member @ member[audited].T).tocsr()  # live atoms each box shares with each of the audited
+        holds.data = (holds.data == sizes[audited][holds.indices]).astype(float)
+        holds.eliminate_zeros()
+        searched = np.flatnonzero(audited | (np.diff(holds.indptr) > 0))
+        shared = (member[searched] @ member.T).tocsr()  # live atoms each such F shares with every pinned box
         low, high = (0 if unsafe(0) else 1), self._k - 1
-        boxes = sorted(regions, key=lambda b: (len(regions[b]), b))
         rounded = {b: int(round(values[b])) for b in boxes}
-        sizes = np.array([len(regions[b]) for b in boxes])
-        rows = np.repeat(np.arange(len(boxes)), sizes)
-        cols = np.fromiter((a for b in boxes for a in regions[b]), dtype=np.int64, count=int(sizes.sum()))
-        member = sparse.csr_matrix((np.ones(len(rows)), (rows, cols)), shape=(len(boxes), len(live_mask)))
-        shared = (member @ member.T).toarray()  # live atoms two boxes share: G lies in F when all of G's
+        regions: dict[int, frozenset[int]] = {}
         signature = hash(live_mask.tobytes())
-        for n, f in enumerate(boxes):
+        for line, n in enumerate(searched.tolist()):
+            f = boxes[n]
             total = rounded[f]
-            within = np.flatnonzero((shared[n] == sizes) & (sizes < sizes[n]))
-            inside = [boxes[m] for m in within if rounded[boxes[m]] <= total - low]
-            own = f in self._suppressible
+            row = shared[line]
+            within = np.sort(row.indices[(row.data == sizes[row.indices]) & (sizes[row.indices] < sizes[n])])
+            inside = [boxes[m] for m in within.tolist() if rounded[boxes[m]] <= total - low]
+            own = bool(audited[n])
             if len(inside) < 2 or not (own or any(g in self._suppressible for g in inside)):
                 continue
             if total - sum(rounded[g] for g in inside) > high:
                 continue  # even all of them together leave too many records
+            for b in (f, *inside):
+                if b not in regions:
+                    regions[b] = self._live_region(b, live_mask)
             # the same question comes back in every repair round and every cut-back attempt of a release
             # (which of them the audited release shows is part of the question: a repair round withholds more)
             shown = (own, *(g in self._suppressible for g in inside))
