@@ -859,8 +859,9 @@ class Audit:
         for line, n in enumerate(searched.tolist()):
             f = boxes[n]
             total = rounded[f]
-            row = shared[line]
-            within = np.sort(row.indices[(row.data == sizes[row.indices]) & (sizes[row.indices] < sizes[n])])
+            others = shared.indices[shared.indptr[line] : shared.indptr[line + 1]]
+            common = shared.data[shared.indptr[line] : shared.indptr[line + 1]]
+            within = np.sort(others[(common == sizes[others]) & (sizes[others] < sizes[n])])
             inside = [boxes[m] for m in within.tolist() if rounded[boxes[m]] <= total - low]
             own = bool(audited[n])
             if len(inside) < 2 or not (own or any(g in self._suppressible for g in inside)):
