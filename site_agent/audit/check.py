@@ -14,6 +14,7 @@ from typing import Any
 
 import numpy as np
 from scipy import sparse
+from scipy.optimize import Bounds, LinearConstraint, milp
 from threadpoolctl import ThreadpoolController
 
 from .branches import Branches
@@ -53,6 +54,12 @@ FOUR_MAX_ATOMS = 400
 SIX_MAX_ATOMS = 100
 # and unions of seven or eight where it has at most this many (the sums of every four atoms: 91,390 at 40).
 EIGHT_MAX_ATOMS = 40
+# Unions larger than those (nine atoms or more; seven or more in a block of more than EIGHT_MAX_ATOMS) are found by
+# an integer program in blocks of at most this many atoms (``_many_atoms_pinned``), at most MANY_TRIES programs a
+# block, each stopped after MANY_OPTIONS' nodes (a count, not a time: the same answer on every machine)
+MANY_MAX_ATOMS = 60
+MANY_TRIES = 20
+MANY_OPTIONS = {"node_limit": 1_000, "time_limit": 30.0, "mip_rel_gap": 0.0}
 # A split (three and two atoms, three and three, ...) whose sums cancel more often than this is not searched
 # (time; the random releases of R14 reach 1.5 million); the matches are taken MATCH_CHUNK at a time (memory).
 MAX_MATCHES = 20_000_000
@@ -506,6 +513,8 @@ class Audit:
             if self.cells is None:
                 self._any_union_pinned(system, unsafe, released_zero, findings, seen_regions)
             self._few_atoms_pinned(system, unsafe, released_zero, findings, seen_regions)
+            if self.cells is None:
+                self._many_atoms_pinned(system, unsafe, released_zero, findings, seen_regions)
             if exact and self.cells is None and int((~system.zero).sum()) <= MILP_MAX_ATOMS:
                 self._whole_pinned(system, unsafe, released_zero, findings, seen_regions)
         if findings:
@@ -1004,6 +1013,82 @@ class Audit:
             for group in np.unique(groups).tolist():  # the grouped model: one group's atoms at a time
                 mine = usable[groups == group]
                 self._unions_of_block(system, unsafe, key[mine], block.atoms[mine], live, findings, seen)
+
+    def _many_atoms_pinned(
+        self,
+        system: _System,
+        unsafe: Any,
+        released_zero: np.ndarray,
+        findings: list[Finding],
+        seen: set[frozenset[int]],
+    ) -> None:
+        """In a block of at most ``MANY_MAX_ATOMS`` atoms (the full model): unions larger than
+        :meth:`_few_atoms_pinned` searches there (nine or more atoms in a block of at most ``EIGHT_MAX_ATOMS``,
+        seven or more beyond), of any size, that the shown counts pin down to a value the policy would hide. One
+        integer program per union (HiGHS, :data:`MANY_OPTIONS`): a 0/1 choice of the block's open atoms that
+        is a combination of the block's rows (``v = Q y``, Q its row space's orthonormal basis), whose value the
+        policy hides, the fewest atoms first. Each union found is proved by its exact distance from the row
+        space and passed over as by :meth:`_any_union_pinned`; a union passed over is excluded and the program
+        solved again (at most ``MANY_TRIES`` times a block). A chain of three boxes reaches any number of atoms:
+        nine cells, each split by an earlier release, A = a0..a4 + d, D = d + e and E = e + a5..a8 gave
+        A - D + E = 3 (k = 5; 29 atoms) until 2026-12-05
+        (site_agent/test_withheld.py::test_nine_cells_of_a_chain_are_not_pinned_small)."""
+        live = ~system.zero & ~self.structural_zero & ~released_zero & ~system.free
+        if int(live.sum()) <= ANY_UNION_MAX_ATOMS:
+            return  # a small system: every union was checked
+        low, high = (0 if unsafe(0) else 1), self._k - 1
+        for block in system.blocks:
+            n, rank = block.basis.shape
+            if not rank or n > MANY_MAX_ATOMS:
+                continue
+            distance = 1.0 - np.einsum("ij,ij->i", block.basis, block.basis)
+            usable = np.flatnonzero(live[block.atoms] & (distance > 1e-6))
+            least = 9 if n <= EIGHT_MAX_ATOMS else 7
+            if len(usable) < least:
+                continue
+            atoms, basis = block.atoms[usable], block.basis[usable]
+            values = system.solution[atoms]
+            m = len(atoms)
+            # variables: v (0/1, one per atom), then y (the union's coordinates in the row space)
+            equal = sparse.hstack([sparse.identity(m), sparse.csr_matrix(-basis)]).tocsr()
+            # the block's other open atoms take no part (an atom pinned on its own may: it changes no pin)
+            others = np.flatnonzero(~live[block.atoms] & (distance > 1e-6))
+            rest = sparse.hstack([sparse.csr_matrix((len(others), m)), sparse.csr_matrix(block.basis[others])])
+            rows = [
+                LinearConstraint(equal, np.zeros(m), np.zeros(m)),
+                LinearConstraint(rest.tocsr(), np.zeros(len(others)), np.zeros(len(others))),
+                LinearConstraint(np.concatenate([values, np.zeros(rank)])[None, :], low - 1e-6, high + 1e-6),
+                LinearConstraint(np.concatenate([np.ones(m), np.zeros(rank)])[None, :], least, np.inf),
+            ]
+            # the fewest atoms first, then the lowest atom numbers (so that the union found does not turn on how
+            # the solver breaks a tie: the same releases on every machine, section 7 of docs/threat-model.md)
+            order = np.argsort(np.argsort(atoms))
+            cost = np.concatenate([1.0 + (order + 1) / (m * (m + 1)), np.zeros(rank)])
+            integrality = np.concatenate([np.ones(m), np.zeros(rank)])
+            bounds = Bounds(
+                np.concatenate([np.zeros(m), np.full(rank, -np.inf)]),
+                np.concatenate([np.ones(m), np.full(rank, np.inf)]),
+            )
+            found: list[frozenset[int]] = []
+            for _ in range(MANY_TRIES):
+                result = milp(cost, constraints=rows, integrality=integrality, bounds=bounds, options=MANY_OPTIONS)
+                if result.status != 0 or result.x is None:
+                    break  # none (or the program stopped at its limit: threat model R14)
+                chosen = np.flatnonzero(result.x[:m] > 0.5)
+                region = frozenset(int(a) for a in atoms[chosen])
+                vector = self._indicator(region)
+                value = float(values[chosen].sum())
+                cut = np.zeros(m + rank)
+                cut[:m] = -1.0
+                cut[chosen] = 1.0
+                # a union found excludes every union that holds it; one passed over, itself alone
+                holds = system.residual(vector) <= 1e-6 and abs(value - round(value)) <= 1e-6 and unsafe(round(value))
+                before = len(findings)
+                if holds:
+                    self._pinned_union(system, region, vector, round(value), live, found, seen, findings)
+                if len(findings) > before:
+                    cut[:m] = np.where(cut[:m] > 0, 1.0, 0.0)
+                rows.append(LinearConstraint(cut[None, :], -np.inf, len(chosen) - 1))
 
     def _unions_of_block(
         self,

@@ -454,6 +454,40 @@ def test_nine_cells_less_two_shown_cells_are_not_pinned_small_after_a_long_histo
     assert withheld == ["t.f"]  # the nine cells stay open (each appears elsewhere only beside an open cell)
 
 
+def test_nine_cells_of_a_chain_are_not_pinned_small() -> None:
+    # Nine cells a0..a8 (3 records), each open and an atom of its own: an earlier release shows a + m and
+    # m + m' for each. The new release shows A = a0..a4 + d, D = d + e and E = e + a5..a8 (d = 6, e = 7):
+    # A - D + E gives the nine cells' 3 records (k = 5). The system has 29 live atoms, beyond the check of every
+    # union (16), and nine atoms are beyond the searches for two to eight; before 2026-12-05 all three counts
+    # went out. The recipient's own linear algebra (numpy's SVD of the shown counts' rows) must not pin them.
+    cells = {f"a{i}": int(i < 3) for i in range(9)}
+    values = {**cells, "d": 6, "e": 7, **{f"m{i}": 6 + i % 3 for i in range(18)}}
+    history = CountSet()
+    for i in range(9):
+        for j, pair in enumerate(((f"a{i}", f"m{2 * i}"), (f"m{2 * i}", f"m{2 * i + 1}"))):
+            history.add(f"h.g{i}.{j}", sum(values[c] for c in pair), Condition("z", pair))
+    first = protect(history, policy(k=5))
+    assert all(v is not None for v in first.released.values())
+    boxes = {"A": ("a0", "a1", "a2", "a3", "a4", "d"), "D": ("d", "e"), "E": ("e", "a5", "a6", "a7", "a8")}
+    current = CountSet()
+    for name, box in boxes.items():
+        current.add(f"t.{name}", sum(values[c] for c in box), Condition("z", box))
+    assert current.values["t.A"] - current.values["t.D"] + current.values["t.E"] == 3  # shown as asked
+    earlier = [ReleaseFacts.from_dict("r0", first.facts(history))]
+    protected = protect(current, policy(k=5), earlier, label="r1")
+    assert protected.audit is not None and protected.audit.atoms == 29
+    names = sorted(values)
+    shown = [d.where[0].values for name, d in history.definitions.items() if first.released[name] is not None]
+    shown += [box for name, box in boxes.items() if protected.released[f"t.{name}"] is not None]
+    rows = np.array([[1.0 if c in box else 0.0 for c in names] for box in shown])
+    _, singular, right = np.linalg.svd(rows, full_matrices=False)
+    basis = right[singular > 1e-9].T
+    vector = np.array([1.0 if c in cells else 0.0 for c in names])
+    rest = vector - basis @ (basis.T @ vector)
+    assert rest @ rest > 1e-6  # the nine cells stay open
+    assert [n for n, v in protected.released.items() if v is None] == ["t.A"]
+
+
 def test_no_few_cells_are_pinned_small_in_random_larger_releases() -> None:
     # Random releases of their own making: 20 cells of one variable (values 0..12), 14 random boxes of 2..6
     # cells and the records read, so that every count is tied into one system of more than 16 live atoms.
