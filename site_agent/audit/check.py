@@ -137,6 +137,13 @@ def _cancelling_unions(
     return sorted(out)
 
 
+def _open_in(block: Any, live: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """A block's live atoms that the shown counts do not pin on their own (positions in ``block.atoms``: the
+    atoms a union search takes), and each atom's squared distance from the row space (0: pinned on its own)."""
+    distance = 1.0 - np.einsum("ij,ij->i", block.basis, block.basis)
+    return np.flatnonzero(live[block.atoms] & (distance > 1e-6)), distance
+
+
 @dataclass
 class _Statement:
     release: int
@@ -1007,8 +1014,7 @@ class Audit:
                 continue
             g = rng.standard_normal(len(block.atoms))
             key = g - block.basis @ (block.basis.T @ g)
-            distance = 1.0 - np.einsum("ij,ij->i", block.basis, block.basis)  # 0: the atom itself is pinned
-            usable = np.flatnonzero(live[block.atoms] & (distance > 1e-6))
+            usable, _ = _open_in(block, live)
             groups = self.cells.atom_group[block.atoms[usable]] if self.cells is not None else np.zeros(len(usable))
             for group in np.unique(groups).tolist():  # the grouped model: one group's atoms at a time
                 mine = usable[groups == group]
@@ -1041,8 +1047,7 @@ class Audit:
             n, rank = block.basis.shape
             if not rank or n > MANY_MAX_ATOMS:
                 continue
-            distance = 1.0 - np.einsum("ij,ij->i", block.basis, block.basis)
-            usable = np.flatnonzero(live[block.atoms] & (distance > 1e-6))
+            usable, distance = _open_in(block, live)
             least = 9 if n <= EIGHT_MAX_ATOMS else 7
             if len(usable) < least:
                 continue

@@ -13,6 +13,8 @@ program over released counts has the same optimum in both models.
 
 from __future__ import annotations
 
+from collections.abc import Callable
+
 import numpy as np
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
@@ -56,8 +58,9 @@ def _mask(data: dict[str, np.ndarray], where: tuple[Condition, ...]) -> np.ndarr
     return keep
 
 
-def release(data: dict[str, np.ndarray], kind: int, cut: float, age_cut: int) -> CountSet:
-    """One release: the flow, then a 2x2 table, ROC bands, or a subgroup table by age band or sex."""
+def with_flow(data: dict[str, np.ndarray]) -> tuple[CountSet, Callable[..., None]]:
+    """A release's counts with the flow added, and the function that adds a count of the records (its name,
+    then its conditions)."""
     out = CountSet()
 
     def add(name: str, *where: Condition) -> None:
@@ -70,6 +73,12 @@ def release(data: dict[str, np.ndarray], kind: int, cut: float, age_cut: int) ->
     for outcome, word in OUTCOMES:
         add(f"flow.analysed_{word}", ANALYSED, outcome)
     out.relate("flow.analysed", "flow.analysed_positive", "flow.analysed_negative")
+    return out, add
+
+
+def release(data: dict[str, np.ndarray], kind: int, cut: float, age_cut: int) -> CountSet:
+    """One release: the flow, then a 2x2 table, ROC bands, or a subgroup table by age band or sex."""
+    out, add = with_flow(data)
     above, below = Condition("score", low=cut), Condition("score", high=cut)
     if kind == 0:
         for outcome, word in OUTCOMES:

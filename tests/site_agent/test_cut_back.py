@@ -16,26 +16,15 @@ from types import SimpleNamespace
 from federation.protocol import PolicyViolation
 from site_agent import disclosure
 from site_agent.audit import Audit, ReleaseFacts
-from site_agent.counts import ANALYSED, Condition, CountSet, excluded
+from site_agent.counts import ANALYSED, Condition, CountSet
 
-from .test_audit_groups import DOMAINS, OUTCOMES, _mask, records
+from .test_audit_groups import DOMAINS, OUTCOMES, records, with_flow
 
 
 def mixed_request(data: dict, cut: float, other_cut: float, edges: list[float], age_cut: int) -> CountSet:
     """One request's counts: the flow, the primary 2x2 table (``confusion[0]``), a 2x2 table at another
     threshold, ROC bands, and subgroup tables by age band and by sex at the primary threshold."""
-    out = CountSet()
-
-    def add(name: str, *where: Condition) -> None:
-        out.add(name, int(_mask(data, where).sum()), *where)
-
-    add("flow.read")
-    add("flow.analysed", ANALYSED)
-    add("flow.excluded.reason", excluded("reason"))
-    out.relate("flow.read", "flow.analysed", "flow.excluded.reason")
-    for outcome, word in OUTCOMES:
-        add(f"flow.analysed_{word}", ANALYSED, outcome)
-    out.relate("flow.analysed", "flow.analysed_positive", "flow.analysed_negative")
+    out, add = with_flow(data)
     for t, threshold in enumerate((cut, other_cut)):
         for outcome, word in OUTCOMES:
             add(f"confusion[{t}].{word}.above", ANALYSED, outcome, Condition("score", low=threshold))
