@@ -1086,12 +1086,12 @@ class Audit:
                 cut = np.zeros(m + rank)
                 cut[:m] = -1.0
                 cut[chosen] = 1.0
-                # a union found excludes every union that holds it; one passed over, itself alone
-                holds = system.residual(vector) <= 1e-6 and abs(value - round(value)) <= 1e-6 and unsafe(round(value))
-                before = len(findings)
-                if holds:
+                exact = abs(value - round(value)) <= 1e-6
+                if system.residual(vector) <= 1e-6 and exact and unsafe(round(value)):
                     self._pinned_union(system, region, vector, round(value), live, found, seen, findings)
-                if len(findings) > before:
+                # a union that holds one found this round (by any search) is excluded with all that hold it: what it
+                # adds is pinned too, and goes with it when a count is withheld; any other, itself alone
+                if any(other <= region for other in seen):
                     cut[:m] = np.where(cut[:m] > 0, 1.0, 0.0)
                 rows.append(LinearConstraint(cut[None, :], -np.inf, len(chosen) - 1))
 
