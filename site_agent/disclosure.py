@@ -32,7 +32,7 @@ cell suppression, linked tables).
 from __future__ import annotations
 
 import re
-from collections.abc import Mapping, Sequence
+from collections.abc import Callable, Mapping, Sequence, Set
 from dataclasses import dataclass, field
 from typing import TYPE_CHECKING, Any
 
@@ -312,15 +312,19 @@ def protect(
     floor = _primary_floor(counts, primary, k, allow_zero)
     core = frozenset(n for n in primary if keep_rank(n, primary) == 2)  # the 2x2 cells and the analysed totals
 
+    def cost(suppressed: Set[str]) -> int:  # the primary table's cells withheld beyond its own rules' floor
+        return len((suppressed & core) - floor)
+
     def excess(result: Protected | None) -> int:
-        return 10**6 if result is None else len((result.suppressed & core) - floor)
+        return 10**6 if result is None else cost(result.suppressed)
 
     def attempt(dropped: Sequence[str], best: Protected | None) -> tuple[Protected | None, list[Finding], set[str]]:
         # An attempt withholds more with each audit round, so one that already withholds as many of the primary
         # table's cells as the best so far cannot do better: it stops there (with the parts it found exposed so far)
-        enough = None if best is None else (core, floor, excess(best))
+        limit = excess(best)
+        beaten = None if best is None else (lambda suppressed: cost(suppressed) >= limit)
         try:
-            result = _protect_once(context, primary, frozenset(dropped), enough)
+            result = _protect_once(context, primary, frozenset(dropped), beaten)
             return result, [], set(result.culprits)
         except _Refused as refused:
             return None, refused.findings, refused.culprits
@@ -355,12 +359,15 @@ def _primary_floor(counts: CountSet, primary: frozenset[str], k: int, allow_zero
 
 
 def _protect_once(
-    context: tuple, primary: frozenset[str], dropped: frozenset[str], enough: tuple | None = None
+    context: tuple,
+    primary: frozenset[str],
+    dropped: frozenset[str],
+    beaten: Callable[[Set[str]], bool] | None = None,
 ) -> Protected:
     """One pass: cut back ``dropped`` parts, primary and secondary suppression, then the audit rounds.
 
-    ``enough`` = (core, floor, limit): refuse (with the parts found exposed so far) as soon as the pass withholds
-    ``limit`` of the ``core`` cells beyond the ``floor`` (it cannot end with fewer: each round withholds more)."""
+    ``beaten``: refuse (with the parts found exposed so far) as soon as it says yes of the counts withheld after an
+    audit round (the pass cannot end better: each round withholds more)."""
     counts, k, allow_zero, width, audit, public, bundle, domains, lone, models = context
     values = counts.values
     reasons: dict[str, str] = {}
@@ -433,7 +440,7 @@ def _protect_once(
             raise _Refused(stuck or result.findings, culprits | _units_of(stuck or result.findings, primary))
         suppressed |= added
         _secondary(values, relations, suppressed, reasons, public, primary, twins=twins)
-        if enough is not None and len((suppressed & enough[0]) - enough[1]) >= enough[2]:
+        if beaten is not None and beaten(suppressed):
             raise _Refused(result.findings, culprits | _units_of(result.findings, primary))
     else:
         raise _Refused(result.findings if result else [], culprits)

@@ -65,9 +65,9 @@ def _history(seed: int, stop: bool) -> tuple[list, int, int]:
     once, evaluate = disclosure._protect_once, Audit.evaluate
     used = {"attempts": 0, "rounds": 0}
 
-    def attempt(context, primary, dropped, enough=None):  # noqa: ANN001, ANN202
+    def attempt(context, primary, dropped, beaten=None):  # noqa: ANN001, ANN202
         used["attempts"] += 1
-        return once(context, primary, dropped, enough if stop else None)
+        return once(context, primary, dropped, beaten if stop else None)
 
     def counted(self, *args, **kwargs):  # noqa: ANN001, ANN002, ANN003, ANN202
         used["rounds"] += 1
