@@ -71,6 +71,8 @@ GLOSSARY = {
     "threshold": "the score at or above which the screen is positive.",
     "withheld": "a count the site does not release, because it is small or would let a small count be worked out.",
     "minimum cell size": "the smallest count the site releases (smaller counts are withheld; zero may be shown).",
+    "finest group": "records that every released count either takes together or leaves out together; every count "
+    "is a sum of finest groups, and the audit checks what sums of them can be worked out.",
 }
 
 
@@ -482,17 +484,61 @@ def audit_sentence(audit: dict[str, Any] | None) -> str:
         return "No audit result was recorded with this release."
     earlier = int(audit.get("releases_considered", 1) or 1) - 1
     scope = (
-        f"this release together with the {earlier} earlier release{'s' if earlier != 1 else ''} to the same study"
+        f"this release together with the {earlier} earlier release{'s' if earlier != 1 else ''} of this site, "
+        "to any study"
         if earlier
         else "this release"
     )
     width = audit.get("protection_width", 2)
     if audit.get("ok"):
         return (
-            f"Passed. The site checked {scope}: no withheld count can be worked out from what was released; "
-            f"each could still be any of at least {width} values."
+            f"Passed. The site checked {scope}: it found no withheld count, and no small group of records, that "
+            f"can be worked out from what was released; each withheld count could still be any of at least "
+            f"{width} values."
         )
     return f"Failed. The site checked {scope}: a withheld count could be worked out (see below)."
+
+
+def unsearched_sentences(audit: dict[str, Any] | None) -> list[str]:
+    """What the audit's searches did not cover, one sentence each (threat model R14), and what no audit models
+    (R12). Empty for an audit recorded before its searches were listed."""
+    if not audit or "not_searched" not in audit:
+        return []
+    out = []
+    for gap in audit.get("not_searched") or []:
+        kind = gap.get("kind") if isinstance(gap, dict) else None
+        if kind == "unions":
+            parts, largest = int(gap.get("parts", 0)), int(gap.get("largest", 0))
+            out.append(
+                f"Not searched in full: whether {gap.get('size')} or more finest groups together could be worked "
+                f"out, in {parts} set{'s' if parts != 1 else ''} of counts tied together (the largest ties "
+                f"{largest} finest groups whose counts are not known); smaller unions were searched."
+            )
+        elif kind == "across_groups":
+            out.append(
+                f"Audited in {gap.get('groups')} parts (a long history): unions that take finest groups of two "
+                "parts were not searched."
+            )
+        elif kind == "whole_numbers":
+            narrow = int(gap.get("narrow", 0))
+            out.append(
+                f"Worked over real numbers and rounded, not by whole-number programs ({gap.get('atoms')} finest "
+                f"groups, beyond the {gap.get('limit')} those programs take): a count that only whole numbers pin "
+                "down was not searched for"
+                + (
+                    f"; {narrow} withheld count{'s' if narrow != 1 else ''} kept so few values that whole numbers "
+                    "could matter."
+                    if narrow
+                    else "."
+                )
+            )
+    if not out:
+        out.append("Every search of the audit ran in full.")
+    out.append(
+        "Not modelled by any audit: what a recipient learns by rerunning the site's own algorithm on every table "
+        "it cannot rule out (docs/threat-model.md, R12); the request caps and the approval of each release bound it."
+    )
+    return out
 
 
 def glossary(text: str) -> list[tuple[str, str]]:

@@ -91,6 +91,7 @@ def describe(site: Site, held: Held) -> dict[str, Any]:
         "audit_sentence": plain.audit_sentence(review.get("audit")),
         "cut_back": plain.cut_back_sentences(review),
         "findings": plain.finding_sentences(facts, review.get("audit")),
+        "not_searched": plain.unsearched_sentences(review.get("audit")),
     }
 
 
@@ -211,6 +212,8 @@ def render_text(view: dict[str, Any], site_dir: Path, exact: bool = False) -> st
     out += ["", "Disclosure audit", f"  {view['audit_sentence']}"]
     for finding in view["findings"]:
         out.append(f"  - {finding}")
+    if view.get("not_searched"):
+        out += ["  What the audit did not search:"] + [f"  - {line}" for line in view["not_searched"]]
     if view.get("model_review"):
         out += ["", "What the model is (site-agent model review)"]
         out += [f"  {line}" for line in models.render_text(view["model_review"]).splitlines()]
@@ -303,7 +306,15 @@ def _html_view(view: dict[str, Any], site: Site) -> str:
             else ""
         )
         + f"<details open><summary>Disclosure audit</summary><p>{html.escape(view['audit_sentence'])}</p>"
-        f"{'<ul>' + findings + '</ul>' if findings else ''}</details>"
+        f"{'<ul>' + findings + '</ul>' if findings else ''}"
+        + (
+            "<p>What the audit did not search:</p><ul>"
+            + "".join(f"<li>{html.escape(line)}</li>" for line in view["not_searched"])
+            + "</ul>"
+            if view.get("not_searched")
+            else ""
+        )
+        + "</details>"
         f"<details><summary>The exact text that would leave (SHA-256 {html.escape(view['release_sha256'][:16])}…)"
         f"</summary><pre>{html.escape(view['text'])}</pre></details></section>"
     )
@@ -334,6 +345,7 @@ def render_html(views: list[dict[str, Any]], site: Site) -> str:
     text = " ".join(
         [
             *(v["audit_sentence"] for v in views),
+            *(line for v in views for line in v.get("not_searched", [])),
             *(w.text for v in views for w in v["withheld"]),
             *(_parts_text(v) for v in views),
         ]

@@ -94,14 +94,20 @@ def _subset_sums(numbers: np.ndarray, size: int, tolerance: float) -> tuple[np.n
 
 
 def _cancelling_unions(
-    numbers: np.ndarray, tolerance: float, values: np.ndarray, unsafe: Any, splits: Sequence[tuple[int, int]]
+    numbers: np.ndarray,
+    tolerance: float,
+    values: np.ndarray,
+    unsafe: Any,
+    splits: Sequence[tuple[int, int]],
+    left_out: list[tuple[int, int]] | None = None,
 ) -> list[tuple[int, ...]]:
     """Positions of distinct numbers that add up to zero and whose ``values`` add up to a whole number ``unsafe``
     holds, each found as a set of ``large`` numbers whose sum cancels that of ``small`` others, for each
     ``(large, small)`` of ``splits``: (2, 2) gives fours, (3, 2) fives, (3, 3) sixes, (4, 3) sevens, (4, 4) eights.
     No part's own sum is zero: every set of that size splits so, or holds a smaller union pinned on its own
     beside the rest (a union of two pinned parts is small only if one of them is). A split with more than
-    ``MAX_MATCHES`` cancelling pairs of sums is left out (a bound on time and memory, not a proof)."""
+    ``MAX_MATCHES`` cancelling pairs of sums is left out (a bound on time and memory, not a proof), and added to
+    ``left_out``."""
     sums = {size: _subset_sums(numbers, size, tolerance) for size in sorted({n for split in splits for n in split})}
     out: set[tuple[int, ...]] = set()
     for large, small in splits:
@@ -114,7 +120,11 @@ def _cancelling_unions(
         highs = np.searchsorted(big_sums[order], -totals + tolerance, "right")
         hits = highs - lows
         ends = np.cumsum(hits)
-        if not len(ends) or ends[-1] > MAX_MATCHES:
+        if not len(ends):
+            continue
+        if ends[-1] > MAX_MATCHES:
+            if left_out is not None:
+                left_out.append((large, small))
             continue  # sums that coincide this often (many atoms whose differences are pinned): not searched
         # in chunks of about MATCH_CHUNK matches (memory: each is a row of up to eight positions)
         cuts = [0, *np.searchsorted(ends, np.arange(MATCH_CHUNK, int(ends[-1]), MATCH_CHUNK), "right").tolist()]
@@ -142,6 +152,43 @@ def _open_in(block: Any, live: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     atoms a union search takes), and each atom's squared distance from the row space (0: pinned on its own)."""
     distance = 1.0 - np.einsum("ij,ij->i", block.basis, block.basis)
     return np.flatnonzero(live[block.atoms] & (distance > 1e-6)), distance
+
+
+def _union_program(
+    block: Any, usable: np.ndarray, others: np.ndarray, dense: bool
+) -> tuple[list[np.ndarray], sparse.csr_matrix, sparse.csr_matrix, int]:
+    """The 0/1 units and equations of :meth:`Audit._many_atoms_pinned`'s program over one block: a union ``v`` of
+    units lies in the row space (``v = W y``) and takes no other open atom (``W[others] y = 0``). ``dense``: one
+    unit per usable atom and ``W`` the row space's orthonormal basis. Otherwise ``W`` is the block's independent
+    rows, transposed (sparse), and usable atoms that every row takes or leaves together are one unit: a vector
+    of the row space is the same on them, so a union takes all of them or none (the demo's blocks of 353-1,447
+    open atoms have 20-53 rows). Returns the units (positions in ``block.atoms``), the equations for ``v``
+    and for the other atoms, and the number of ``y``."""
+    if dense:
+        basis = block.basis
+        equal = sparse.hstack([sparse.identity(len(usable)), sparse.csr_matrix(-basis[usable])]).tocsr()
+        rest = sparse.hstack([sparse.csr_matrix((len(others), len(usable))), sparse.csr_matrix(basis[others])])
+        return [np.array([u]) for u in usable.tolist()], equal, rest.tocsr(), basis.shape[1]
+    columns = block.a[block.independent].T.tocsr()  # atoms x rows
+    columns.sort_indices()
+
+    def signature(atom: int) -> tuple:
+        start, end = columns.indptr[atom], columns.indptr[atom + 1]
+        return (tuple(columns.indices[start:end].tolist()), tuple(columns.data[start:end].tolist()))
+
+    classes: dict[tuple, list[int]] = {}
+    for atom in usable.tolist():
+        classes.setdefault(signature(atom), []).append(atom)
+    units = [np.array(members) for members in classes.values()]
+    firsts = [int(unit[0]) for unit in units]
+    ny = columns.shape[1]
+    equal = sparse.hstack([sparse.identity(len(units)), -columns[firsts]]).tocsr()
+    other_classes: dict[tuple, int] = {}
+    for atom in others.tolist():
+        other_classes.setdefault(signature(atom), atom)
+    other_firsts = list(other_classes.values())
+    rest = sparse.hstack([sparse.csr_matrix((len(other_firsts), len(units))), columns[other_firsts]]).tocsr()
+    return units, equal, rest, ny
 
 
 @dataclass
@@ -490,6 +537,11 @@ class Audit:
         findings: list[Finding] = []
         seen_regions: set[frozenset[int]] = set()
         intervals: dict[str, Interval] = {}
+        # what the searches for unions covered: (block, group) -> (open atoms, size up to which every union was
+        # searched), and block -> (least size the integer program searched from, whether it finished)
+        self._searched: dict[tuple[int, int], tuple[int, int]] = {}
+        self._programs: dict[int, tuple[int, bool]] = {}
+        narrow_unchecked = 0  # narrow intervals of counts whose blocks are too large for integer programs
 
         # A count withheld as not small whose value is 0 is fixed at 0 (the branch it is in) and is no target:
         # the recipient knows only "0, or at least k", and a 0 is a count this policy shows.
@@ -521,7 +573,9 @@ class Audit:
                 self._any_union_pinned(system, unsafe, released_zero, findings, seen_regions)
             self._few_atoms_pinned(system, unsafe, released_zero, findings, seen_regions)
             if self.cells is None:
-                self._many_atoms_pinned(system, unsafe, released_zero, findings, seen_regions)
+                self._many_atoms_pinned(system, unsafe, released_zero, findings, seen_regions, large=False)
+                if not findings:  # the costly programs only where nothing else was found (the next round asks again)
+                    self._many_atoms_pinned(system, unsafe, released_zero, findings, seen_regions, large=True)
             if exact and self.cells is None and int((~system.zero).sum()) <= MILP_MAX_ATOMS:
                 self._whole_pinned(system, unsafe, released_zero, findings, seen_regions)
         if findings:
@@ -571,9 +625,12 @@ class Audit:
                 checked = system.milp_interval(vector, lo_int, hi_int, strict=True)
                 if checked is None or checked[1] - checked[0] + 1 < protection_width:
                     return None
-            if exact and small and exact_interval and hi_int is not None and residual >= _TOL:
+            if exact_interval and hi_int is not None and residual >= _TOL:
                 if hi_int - lo_int + 1 < protection_width + 2:
-                    lo_int, hi_int = system.milp_interval(vector, lo_int, hi_int)
+                    if exact and small:
+                        lo_int, hi_int = system.milp_interval(vector, lo_int, hi_int)
+                    else:
+                        narrow_unchecked += 1
             if hi_int is not None and hi_int - lo_int + 1 < protection_width:
                 opened = self._opened(vector, protection_width, lo_int, hi_int)
                 if opened is not None:  # the recipient's own disjunctions keep it open
@@ -608,7 +665,32 @@ class Audit:
             protection_width=protection_width,
             unrepairable=any(not f.candidates for f in findings),
             grouped=self.cells is not None,
+            unsearched=self._unsearched(system, exact, narrow_unchecked),
         )
+
+    def _unsearched(self, system: _System, exact: bool, narrow: int) -> tuple[dict[str, Any], ...]:
+        """What this evaluation's searches did not cover, in fixed kinds (no value: the site's own review says
+        where the audit did not look; threat model R14). ``unions``: unions of ``size`` or more open atoms in
+        ``parts`` blocks (groups, in the grouped model), the largest of ``largest`` open atoms; ``across_groups``:
+        unions taking atoms of two groups of the grouped model; ``whole_numbers``: regions only whole numbers pin,
+        in a system of more than ``limit`` (``facts.MILP_MAX_ATOMS``) atoms, and ``narrow`` withheld counts whose
+        interval was rounded inward, not checked by an integer program."""
+        parts: dict[int, list[int]] = {}
+        for (number, _), (n, searched) in self._searched.items():
+            least, finished = self._programs.get(number, (0, False))
+            if n <= searched or (self.cells is None and finished and least <= searched + 1):
+                continue
+            parts.setdefault(searched + 1, []).append(n)
+        out: list[dict[str, Any]] = [
+            {"kind": "unions", "size": size, "parts": len(sizes), "largest": max(sizes)}
+            for size, sizes in sorted(parts.items())
+        ]
+        if self.cells is not None:
+            out.append({"kind": "across_groups", "groups": int(len(np.unique(self.cells.atom_group)))})
+        atoms = int((~system.zero).sum())
+        if not (exact and self.cells is None and atoms <= MILP_MAX_ATOMS):
+            out.append({"kind": "whole_numbers", "atoms": atoms, "limit": MILP_MAX_ATOMS, "narrow": narrow})
+        return tuple(out)
 
     def _opened(self, vector: np.ndarray, need: int, low: int, high: int) -> tuple[int, int] | None:
         """Whether a recipient who knows each "0, or at least k" as the disjunction it is (not the branch the
@@ -1009,7 +1091,7 @@ class Audit:
         if int(live.sum()) <= ANY_UNION_MAX_ATOMS:
             return  # a small system: every union was checked
         rng = np.random.default_rng(1)
-        for block in system.blocks:
+        for number, block in enumerate(system.blocks):
             if not block.basis.shape[1]:
                 continue
             g = rng.standard_normal(len(block.atoms))
@@ -1018,7 +1100,8 @@ class Audit:
             groups = self.cells.atom_group[block.atoms[usable]] if self.cells is not None else np.zeros(len(usable))
             for group in np.unique(groups).tolist():  # the grouped model: one group's atoms at a time
                 mine = usable[groups == group]
-                self._unions_of_block(system, unsafe, key[mine], block.atoms[mine], live, findings, seen)
+                searched = self._unions_of_block(system, unsafe, key[mine], block.atoms[mine], live, findings, seen)
+                self._searched[(number, group)] = (len(mine), searched)
 
     def _many_atoms_pinned(
         self,
@@ -1027,6 +1110,7 @@ class Audit:
         released_zero: np.ndarray,
         findings: list[Finding],
         seen: set[frozenset[int]],
+        large: bool = False,
     ) -> None:
         """In a block of at most ``MANY_MAX_ATOMS`` atoms (the full model): unions larger than
         :meth:`_few_atoms_pinned` searches there (nine or more atoms in a block of at most ``EIGHT_MAX_ATOMS``,
@@ -1043,47 +1127,52 @@ class Audit:
         if int(live.sum()) <= ANY_UNION_MAX_ATOMS:
             return  # a small system: every union was checked
         low, high = (0 if unsafe(0) else 1), self._k - 1
-        for block in system.blocks:
+        for number, block in enumerate(system.blocks):
             n, rank = block.basis.shape
-            if not rank or n > MANY_MAX_ATOMS:
+            if not rank or large != (n > MANY_MAX_ATOMS):
                 continue
             usable, distance = _open_in(block, live)
-            least = 9 if n <= EIGHT_MAX_ATOMS else 7
+            if n <= MANY_MAX_ATOMS:
+                least = 9 if n <= EIGHT_MAX_ATOMS else 7
+            else:  # every size the sorting searches of _few_atoms_pinned left out
+                least = self._searched.get((number, 0), (0, 1))[1] + 1
+            self._programs[number] = (least, True)  # every union of at least ``least`` open atoms, unless stopped
             if len(usable) < least:
                 continue
-            atoms, basis = block.atoms[usable], block.basis[usable]
-            values = system.solution[atoms]
-            m = len(atoms)
-            # variables: v (0/1, one per atom), then y (the union's coordinates in the row space)
-            equal = sparse.hstack([sparse.identity(m), sparse.csr_matrix(-basis)]).tocsr()
             # the block's other open atoms take no part (an atom pinned on its own may: it changes no pin)
             others = np.flatnonzero(~live[block.atoms] & (distance > 1e-6))
-            rest = sparse.hstack([sparse.csr_matrix((len(others), m)), sparse.csr_matrix(block.basis[others])])
+            units, equal, rest, ny = _union_program(block, usable, others, n <= MANY_MAX_ATOMS)
+            m = len(units)
+            atoms = [block.atoms[unit] for unit in units]
+            sizes = np.array([len(unit) for unit in units], float)
+            values = np.array([system.solution[a].sum() for a in atoms])
             rows = [
                 LinearConstraint(equal, np.zeros(m), np.zeros(m)),
-                LinearConstraint(rest.tocsr(), np.zeros(len(others)), np.zeros(len(others))),
-                LinearConstraint(np.concatenate([values, np.zeros(rank)])[None, :], low - 1e-6, high + 1e-6),
-                LinearConstraint(np.concatenate([np.ones(m), np.zeros(rank)])[None, :], least, np.inf),
+                LinearConstraint(rest, np.zeros(rest.shape[0]), np.zeros(rest.shape[0])),
+                LinearConstraint(np.concatenate([values, np.zeros(ny)])[None, :], low - 1e-6, high + 1e-6),
+                LinearConstraint(np.concatenate([sizes, np.zeros(ny)])[None, :], least, np.inf),
             ]
             # the fewest atoms first, then the lowest atom numbers (so that the union found does not turn on how
             # the solver breaks a tie: the same releases on every machine, section 7 of docs/threat-model.md)
-            order = np.argsort(np.argsort(atoms))
-            cost = np.concatenate([1.0 + (order + 1) / (m * (m + 1)), np.zeros(rank)])
-            integrality = np.concatenate([np.ones(m), np.zeros(rank)])
+            order = np.argsort(np.argsort([a.min() for a in atoms]))
+            cost = np.concatenate([sizes + (order + 1) / (m * (m + 1)), np.zeros(ny)])
+            integrality = np.concatenate([np.ones(m), np.zeros(ny)])
             bounds = Bounds(
-                np.concatenate([np.zeros(m), np.full(rank, -np.inf)]),
-                np.concatenate([np.ones(m), np.full(rank, np.inf)]),
+                np.concatenate([np.zeros(m), np.full(ny, -np.inf)]),
+                np.concatenate([np.ones(m), np.full(ny, np.inf)]),
             )
             found: list[frozenset[int]] = []
             for _ in range(MANY_TRIES):
                 result = milp(cost, constraints=rows, integrality=integrality, bounds=bounds, options=MANY_OPTIONS)
                 if result.status != 0 or result.x is None:
-                    break  # none (or the program stopped at its limit: threat model R14)
+                    # none left (2: infeasible), or the program stopped at its limit (threat model R14)
+                    self._programs[number] = (least, result.status == 2)
+                    break
                 chosen = np.flatnonzero(result.x[:m] > 0.5)
-                region = frozenset(int(a) for a in atoms[chosen])
+                region = frozenset(int(a) for c in chosen.tolist() for a in atoms[c])
                 vector = self._indicator(region)
                 value = float(values[chosen].sum())
-                cut = np.zeros(m + rank)
+                cut = np.zeros(m + ny)
                 cut[:m] = -1.0
                 cut[chosen] = 1.0
                 exact = abs(value - round(value)) <= 1e-6
@@ -1094,6 +1183,8 @@ class Audit:
                 if any(other <= region for other in seen):
                     cut[:m] = np.where(cut[:m] > 0, 1.0, 0.0)
                 rows.append(LinearConstraint(cut[None, :], -np.inf, len(chosen) - 1))
+            else:
+                self._programs[number] = (least, False)  # MANY_TRIES programs, each found one: more may be left
 
     def _unions_of_block(
         self,
@@ -1104,11 +1195,11 @@ class Audit:
         live: np.ndarray,
         findings: list[Finding],
         seen: set[frozenset[int]],
-    ) -> None:
+    ) -> int:
         """The search of :meth:`_few_atoms_pinned` among ``atoms`` (of one block, and in the grouped model of one
-        group; ``key``: their random numbers)."""
+        group; ``key``: their random numbers). Returns the size up to which every union was searched."""
         if len(atoms) < 2:
-            return
+            return len(atoms)
         order = np.argsort(key, kind="stable")
         keys, atoms = key[order], atoms[order]
         values = system.solution[atoms]
@@ -1129,7 +1220,12 @@ class Audit:
         splits = [(2, 2)] if len(keys) <= FOUR_MAX_ATOMS else []
         splits += [(3, 2), (3, 3)] if len(keys) <= SIX_MAX_ATOMS else []
         splits += [(4, 3), (4, 4)] if len(keys) <= EIGHT_MAX_ATOMS else []
-        candidates += _cancelling_unions(keys, tolerance, values, unsafe, splits) if splits else []
+        left_out: list[tuple[int, int]] = []
+        candidates += _cancelling_unions(keys, tolerance, values, unsafe, splits, left_out) if splits else []
+        sizes = {2, *([3] if len(keys) <= UNION_MAX_ATOMS else []), *(sum(s) for s in splits if s not in left_out)}
+        searched = 1
+        while searched + 1 in sizes:
+            searched += 1
         found: list[frozenset[int]] = []
         # by the atoms' own indices (twins' numbers may swap places with the BLAS kernel's rounding)
         for union in sorted(candidates, key=lambda u: (len(u), sorted(atoms[list(u)].tolist()))):
@@ -1144,6 +1240,7 @@ class Audit:
             if system.residual(vector) > 1e-6:
                 continue  # the random direction's coincidence: not pinned
             self._pinned_union(system, region, vector, rounded, live, found, seen, findings)
+        return searched
 
     def _listed_or_cells_of_a_table(self, region: frozenset[int], live: np.ndarray) -> bool:
         """Whether ``region`` (live atoms) is the live part of a listed count, or of two or more cells of one table

@@ -177,6 +177,8 @@ class AuditResult:
     protection_width: int
     unrepairable: bool = False
     grouped: bool = False  # answered by the grouped model (site_agent.audit.decompose), not the full refinement
+    # what the audit's searches did not cover (``Audit._unsearched``; empty: every search ran in full)
+    unsearched: tuple[dict[str, Any], ...] = ()
 
     def to_dict(self) -> dict[str, Any]:
         return {
@@ -191,4 +193,5 @@ class AuditResult:
                 {"kind": f.kind, "release": f.release, "names": list(f.names), "text": f.describe()}
                 for f in self.findings
             ],
+            "not_searched": [dict(gap) for gap in self.unsearched],
         }

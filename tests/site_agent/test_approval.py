@@ -87,6 +87,7 @@ def test_review_shows_exactly_what_would_leave_and_why(held, capsys) -> None:  #
     assert f"Release {held_id}" in out and "held: waiting for a decision" in out
     assert "Participant flow" in out and "Withheld, and why" in out and "Disclosure audit" in out
     assert "Passed. The site checked this release" in out
+    assert "What the audit did not search:" in out and "Not modelled by any audit" in out
     assert f"site-agent approve {held_id}" in out
 
 

@@ -198,6 +198,32 @@ def test_a_history_of_roc_bands_and_age_bands_needs_far_fewer_atoms() -> None:
     assert mine.ok == theirs.ok
 
 
+def test_the_grouped_model_says_which_unions_it_did_not_search() -> None:
+    # The history above, audited in the grouped model (two groups: the score cells and the age cells, tied by
+    # the threshold's cells) and in the full model: only the grouped model's record names unions across its
+    # groups as not searched, with the number of groups; in a group of 9 open atoms it searched unions of up to
+    # eight (by sorting), and named nine and more. The full model found something in this round, so its
+    # costly integer programs waited for the next round, and its record says which sizes it did not search.
+    data = records(7, 400)
+    history = [release(data, 1, 0.3 + 0.01 * j, 30) for j in range(8)]
+    history += [release(data, 2, 0.5, 12 + 4 * j) for j in range(8)]
+    earlier = [facts(f"r{j}", counts, 5)[0] for j, counts in enumerate(history)]
+    current, released, rules = facts("new", release(data, 0, 0.5, 30), 5)
+    site, full = Audit(earlier, current, full_max_atoms=1), Audit(earlier, current, group=False)
+    mine = site.evaluate(released, 5, True, 2, current_rules=rules)
+    theirs = full.evaluate(released, 5, True, 2, current_rules=rules)
+    assert mine.grouped and not theirs.grouped and not mine.ok and not theirs.ok
+    assert mine.unsearched == (
+        {"kind": "unions", "size": 9, "parts": 1, "largest": 9},
+        {"kind": "across_groups", "groups": 2},
+        {"kind": "whole_numbers", "atoms": 81, "limit": 60, "narrow": 0},
+    )
+    assert theirs.unsearched == (
+        {"kind": "unions", "size": 5, "parts": 2, "largest": 216},
+        {"kind": "whole_numbers", "atoms": 387, "limit": 60, "narrow": 0},
+    )
+
+
 def _evaluated_history(seed: int) -> Audit:
     """Six releases of this file's generator in turn on 300 records, the last one audited (k = 5)."""
     data = records(seed, 300)

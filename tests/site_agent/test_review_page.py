@@ -14,6 +14,7 @@ from pathlib import Path
 import pytest
 
 from federation.cli import main as federation
+from site_agent import plain
 from site_agent.cli import main as site_agent
 from tests.report.dom import ARTIFACTS, parse, render
 
@@ -106,6 +107,19 @@ def test_the_review_page_reads_in_plain_words(held_full) -> None:  # noqa: ANN00
     assert "Not decided yet" in text and f"site-agent approve {held_id}" in " ".join(dom.text().split())
     glossary = " ".join(" ".join(d.text().split()) for d in dom.iter("dt"))
     assert "AUC" in glossary and "SHA-256" in glossary
+    # what the audit's searches did not cover, one line each from the audit's record, and what no audit models
+    gaps = review["audit"]["not_searched"]
+    assert "What the audit did not search:" in text
+    assert sum(s.startswith("Not modelled by any audit") for s in sentences) == 1
+    for gap in gaps:
+        said = {
+            "unions": f"whether {gap.get('size')} or more finest groups together",
+            "across_groups": f"Audited in {gap.get('groups')} parts",
+            "whole_numbers": f"({gap.get('atoms')} finest groups, beyond the {gap.get('limit')}",
+        }[gap["kind"]]
+        assert sum(said in s for s in sentences) == 1, said
+    assert ("Every search of the audit ran in full." in text) == (not gaps)
+    assert ("finest group" in glossary) == bool(gaps)
     # the withheld cells of the screen-result table are marked, never shown as a number or a dash
     for cell in dom.iter("td"):
         if "withheld" in cell.classes():
@@ -189,6 +203,28 @@ def test_every_released_agreement_count_has_its_own_words_on_the_page() -> None:
     band = {"variable": "score.compare", "low": 12.0, "high": None}
     assert "screen" not in condition_words(band, "paired")
     assert condition_words({"variable": "score", "low": 0.5, "high": None}, "confusion").startswith("screen +")
+
+
+def test_what_the_audit_did_not_search_is_said_in_one_line_each() -> None:
+    audit = {"ok": True, "releases_considered": 3, "protection_width": 2}
+    assert plain.unsearched_sentences(audit) == []  # recorded before the audit listed its searches: nothing said
+    assert "with the 2 earlier releases of this site, to any study" in plain.audit_sentence(audit)
+    gaps = [
+        {"kind": "unions", "size": 7, "parts": 2, "largest": 88},
+        {"kind": "across_groups", "groups": 4},
+        {"kind": "whole_numbers", "atoms": 387, "limit": 60, "narrow": 1},
+    ]
+    lines = plain.unsearched_sentences({**audit, "not_searched": gaps})
+    assert lines[:3] == [
+        "Not searched in full: whether 7 or more finest groups together could be worked out, in 2 sets of counts "
+        "tied together (the largest ties 88 finest groups whose counts are not known); smaller unions were searched.",
+        "Audited in 4 parts (a long history): unions that take finest groups of two parts were not searched.",
+        "Worked over real numbers and rounded, not by whole-number programs (387 finest groups, beyond the 60 those "
+        "programs take): a count that only whole numbers pin down was not searched for; 1 withheld count kept so few "
+        "values that whole numbers could matter.",
+    ]
+    assert lines[3].startswith("Not modelled by any audit") and len(lines) == 4
+    assert plain.unsearched_sentences({**audit, "not_searched": []})[0] == "Every search of the audit ran in full."
 
 
 def test_a_long_row_label_is_wrapped_never_cut() -> None:

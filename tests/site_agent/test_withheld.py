@@ -22,7 +22,7 @@ from scipy.optimize import linprog
 from federation.protocol import PolicyViolation
 from simulations import rerun
 from simulations.rerun import counts_of
-from site_agent.audit import Audit, ReleaseFacts
+from site_agent.audit import Audit, ReleaseFacts, check
 from site_agent.counts import Condition, CountSet
 from site_agent.disclosure import protect, suppress
 from site_agent.withheld import annotate, rule_of
@@ -454,38 +454,95 @@ def test_nine_cells_less_two_shown_cells_are_not_pinned_small_after_a_long_histo
     assert withheld == ["t.f"]  # the nine cells stay open (each appears elsewhere only beside an open cell)
 
 
-def test_nine_cells_of_a_chain_are_not_pinned_small() -> None:
-    # Nine cells a0..a8 (3 records), each open and an atom of its own: an earlier release shows a + m and
-    # m + m' for each. The new release shows A = a0..a4 + d, D = d + e and E = e + a5..a8 (d = 6, e = 7):
-    # A - D + E gives the nine cells' 3 records (k = 5). The system has 29 live atoms, beyond the check of every
-    # union (16), and nine atoms are beyond the searches for two to eight; before 2026-12-05 all three counts
-    # went out. The recipient's own linear algebra (numpy's SVD of the shown counts' rows) must not pin them.
-    cells = {f"a{i}": int(i < 3) for i in range(9)}
-    values = {**cells, "d": 6, "e": 7, **{f"m{i}": 6 + i % 3 for i in range(18)}}
+CHAIN_BOXES = {"A": ("a0", "a1", "a2", "a3", "a4", "d"), "D": ("d", "e"), "E": ("e", "a5", "a6", "a7", "a8")}
+
+
+def _chain_of_nine(
+    pad: int, extra: dict[str, tuple[str, ...]] | None = None
+) -> tuple[dict[str, int], list[ReleaseFacts], CountSet, ReleaseFacts]:
+    """Nine cells a0..a8 (3 records), each open and an atom of its own: an earlier release shows, for each, the
+    sums of neighbours along a path a, m1, .., m_pad (values 6..8). The new release's counts A = a0..a4 + d,
+    D = d + e and E = e + a5..a8 (d = 6, e = 7), where A - D + E gives the nine cells' 3 records (k = 5). The
+    cells' values, the earlier release as the site holds it, the new counts (with ``extra`` boxes) and their facts
+    for an audit."""
+    values = {**{f"a{i}": int(i < 3) for i in range(9)}, "d": 6, "e": 7}
+    values |= {f"m{i}.{j}": 6 + j % 3 for i in range(9) for j in range(pad)}
     history = CountSet()
     for i in range(9):
-        for j, pair in enumerate(((f"a{i}", f"m{2 * i}"), (f"m{2 * i}", f"m{2 * i + 1}"))):
+        path = [f"a{i}", *(f"m{i}.{j}" for j in range(pad))]
+        for j in range(pad):
+            pair = (path[j], path[j + 1])
             history.add(f"h.g{i}.{j}", sum(values[c] for c in pair), Condition("z", pair))
     first = protect(history, policy(k=5))
     assert all(v is not None for v in first.released.values())
-    boxes = {"A": ("a0", "a1", "a2", "a3", "a4", "d"), "D": ("d", "e"), "E": ("e", "a5", "a6", "a7", "a8")}
     current = CountSet()
-    for name, box in boxes.items():
+    for name, box in {**CHAIN_BOXES, **(extra or {})}.items():
         current.add(f"t.{name}", sum(values[c] for c in box), Condition("z", box))
     assert current.values["t.A"] - current.values["t.D"] + current.values["t.E"] == 3  # shown as asked
     earlier = [ReleaseFacts.from_dict("r0", first.facts(history))]
-    protected = protect(current, policy(k=5), earlier, label="r1")
-    assert protected.audit is not None and protected.audit.atoms == 29
+    facts = ReleaseFacts("r1", current.definitions, {}, current.relations, "", {}, 5, True)
+    return values, earlier, current, facts
+
+
+def _open_for_the_recipient(values: dict[str, int], earlier: list[ReleaseFacts], released: dict) -> bool:
+    """Whether the nine cells stay open for a recipient's own linear algebra (numpy's SVD of the shown counts'
+    rows, from the earlier release's definitions and the new release's shown boxes)."""
     names = sorted(values)
-    shown = [d.where[0].values for name, d in history.definitions.items() if first.released[name] is not None]
-    shown += [box for name, box in boxes.items() if protected.released[f"t.{name}"] is not None]
+    shown = [d.where[0].values for name, d in earlier[0].definitions.items() if earlier[0].values[name] is not None]
+    shown += [box for name, box in CHAIN_BOXES.items() if released[f"t.{name}"] is not None]
     rows = np.array([[1.0 if c in box else 0.0 for c in names] for box in shown])
     _, singular, right = np.linalg.svd(rows, full_matrices=False)
     basis = right[singular > 1e-9].T
-    vector = np.array([1.0 if c in cells else 0.0 for c in names])
+    vector = np.array([1.0 if c.startswith("a") else 0.0 for c in names])
     rest = vector - basis @ (basis.T @ vector)
-    assert rest @ rest > 1e-6  # the nine cells stay open
+    return bool(rest @ rest > 1e-6)
+
+
+def test_nine_cells_of_a_chain_are_not_pinned_small() -> None:
+    # The chain of _chain_of_nine with two cells on each path: 29 live atoms, beyond the check of every union
+    # (16), and nine atoms are beyond the searches for two to eight; before 2026-12-05 all three counts went out.
+    values, earlier, current, _ = _chain_of_nine(2)
+    protected = protect(current, policy(k=5), earlier, label="r1")
+    assert protected.audit is not None and protected.audit.atoms == 29
+    assert _open_for_the_recipient(values, earlier, protected.released)
     assert [n for n, v in protected.released.items() if v is None] == ["t.A"]
+
+
+def test_nine_cells_of_a_chain_in_a_large_block_are_not_pinned_small() -> None:
+    # The same chain with six and sixty cells on each path: one block of 65 and of 551 open atoms, beyond the
+    # integer program over one variable per atom (60 atoms) and, at 551, beyond the sorting searches for four
+    # (400). Until 2026-12-05 all three counts went out, whatever the chain's length; the program now runs in a
+    # block of any size, over the block's rows, with one variable per set of atoms that every row takes or
+    # leaves together.
+    for pad, atoms in ((6, 65), (60, 551)):
+        values, earlier, current, _ = _chain_of_nine(pad)
+        protected = protect(current, policy(k=5), earlier, label="r1")
+        assert protected.audit is not None and protected.audit.atoms == atoms
+        assert _open_for_the_recipient(values, earlier, protected.released), pad
+        assert [n for n, v in protected.released.items() if v is None] == ["t.A"]
+        # every search ran: what is left unsearched is whole-number reasoning in a system of more than 60 atoms
+        assert protected.audit.unsearched == ({"kind": "whole_numbers", "atoms": atoms, "limit": 60, "narrow": 0},)
+
+
+def test_the_audit_says_what_its_searches_did_not_cover(monkeypatch) -> None:  # noqa: ANN001
+    # A small system: every search ran in full, and the record says so (an empty list).
+    values, earlier, current, facts = _chain_of_nine(2)
+    assert protect(current, policy(k=5), earlier, label="r1").audit.unsearched == ()
+    # A block of 65 open atoms whose program may run only once (MANY_TRIES = 1): the union it finds is reported,
+    # and since more may be left, unions of seven atoms or more (the sizes the sorting searches leave to it in a
+    # block of 61 to 100 open atoms) are named as not searched in full.
+    values, earlier, current, facts = _chain_of_nine(6)
+    monkeypatch.setattr(check, "MANY_TRIES", 1)
+    result = Audit(earlier, facts).evaluate(dict(current.values), 5, True)
+    assert not result.ok and [f.kind for f in result.findings] == ["difference"]
+    assert result.unsearched[0] == {"kind": "unions", "size": 7, "parts": 1, "largest": 65}
+    # a round that found something else skips the costly programs (the next round asks again), and says so:
+    # Q = a0 + m0.0 + m0.1 less the earlier release's m0.0 + m0.1 gives a0 = 1
+    monkeypatch.setattr(check, "MANY_TRIES", 20)
+    values, earlier, current, facts = _chain_of_nine(6, {"Q": ("a0", "m0.0", "m0.1")})
+    result = Audit(earlier, facts).evaluate(dict(current.values), 5, True)
+    assert [f.names for f in result.findings] == [("t.A", "t.Q")]  # (a0 is pinned: 58 atoms of the block stay open)
+    assert result.unsearched[0] == {"kind": "unions", "size": 7, "parts": 1, "largest": 58}
 
 
 def test_no_few_cells_are_pinned_small_in_random_larger_releases() -> None:
