@@ -19,7 +19,7 @@ import numpy as np
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from site_agent.audit import Audit, ReleaseFacts
+from site_agent.audit import Audit, AuditResult, ReleaseFacts
 from site_agent.audit.decompose import decompose
 from site_agent.counts import ANALYSED, NEGATIVE, POSITIVE, Condition, CountSet, excluded
 from site_agent.disclosure import is_unsafe, suppress
@@ -178,40 +178,40 @@ def test_the_grouped_model_answers_as_the_full_model(seed: int, n: int, history,
                 assert ours.high is None or (interval.high is not None and interval.high <= ours.high)
 
 
-def test_a_history_of_roc_bands_and_age_bands_needs_far_fewer_atoms() -> None:
-    # Fine score bands (ROC) and age bands at one threshold: the full refinement crosses every score cell with
-    # every age cell; the grouped model keeps them apart, tied by the threshold's cells.
+def _score_and_age_bands() -> tuple[Audit, Audit, AuditResult, AuditResult]:
+    """Fine score bands (ROC) in eight releases and age bands at one threshold in eight more (400 records,
+    k = 5), then a 2x2 table, audited in the grouped model (forced, as the site builds it where the full model is
+    too large) and in the full model: both audits and their results."""
     data = records(7, 400)
     history = [release(data, 1, 0.3 + 0.01 * j, 30) for j in range(8)]
     history += [release(data, 2, 0.5, 12 + 4 * j) for j in range(8)]
     earlier = [facts(f"r{j}", counts, 5)[0] for j, counts in enumerate(history)]
     current, released, rules = facts("new", release(data, 0, 0.5, 30), 5)
-    # the grouped model decides where the full model is too large to build (here: always)
     site, full = Audit(earlier, current, full_max_atoms=1), Audit(earlier, current, group=False)
+    mine = site.evaluate(released, 5, True, 2, current_rules=rules)
+    theirs = full.evaluate(released, 5, True, 2, current_rules=rules)
+    return site, full, mine, theirs
+
+
+def test_a_history_of_roc_bands_and_age_bands_needs_far_fewer_atoms() -> None:
+    # The full refinement crosses every score cell with every age cell; the grouped model keeps them apart,
+    # tied by the threshold's cells.
+    site, full, mine, theirs = _score_and_age_bands()
     assert site._grouped is not None
     grouped = decompose(site.boxes, site.domains)
     assert grouped is not None
     # 8 ROC releases give 24 score cuts; 8 age releases give 8 age cuts: the full model crosses them
     assert grouped.incidence.shape[1] * 4 < full.incidence.shape[1]
-    mine = site.evaluate(released, 5, True, 2, current_rules=rules)
-    theirs = full.evaluate(released, 5, True, 2, current_rules=rules)
     assert mine.ok == theirs.ok
 
 
 def test_the_grouped_model_says_which_unions_it_did_not_search() -> None:
-    # The history above, audited in the grouped model (two groups: the score cells and the age cells, tied by
-    # the threshold's cells) and in the full model: only the grouped model's record names unions across its
-    # groups as not searched, with the number of groups; in a group of 9 open atoms it searched unions of up to
-    # eight (by sorting), and named nine and more. The full model found something in this round, so its
-    # costly integer programs waited for the next round, and its record says which sizes it did not search.
-    data = records(7, 400)
-    history = [release(data, 1, 0.3 + 0.01 * j, 30) for j in range(8)]
-    history += [release(data, 2, 0.5, 12 + 4 * j) for j in range(8)]
-    earlier = [facts(f"r{j}", counts, 5)[0] for j, counts in enumerate(history)]
-    current, released, rules = facts("new", release(data, 0, 0.5, 30), 5)
-    site, full = Audit(earlier, current, full_max_atoms=1), Audit(earlier, current, group=False)
-    mine = site.evaluate(released, 5, True, 2, current_rules=rules)
-    theirs = full.evaluate(released, 5, True, 2, current_rules=rules)
+    # The history above in the grouped model (two groups: the score cells and the age cells, tied by the
+    # threshold's cells) and in the full model: only the grouped model's record names unions across its groups
+    # as not searched, with the number of groups; in a group of 9 open atoms it searched unions of up to eight
+    # (by sorting), and named nine and more. The full model found something in this round, so its costly
+    # integer programs waited for the next round, and its record says which sizes it did not search.
+    _, _, mine, theirs = _score_and_age_bands()
     assert mine.grouped and not theirs.grouped and not mine.ok and not theirs.ok
     assert mine.unsearched == (
         {"kind": "unions", "size": 9, "parts": 1, "largest": 9},

@@ -22,6 +22,7 @@ from scipy.optimize import linprog
 from federation.protocol import PolicyViolation
 from simulations import rerun
 from simulations.rerun import counts_of
+from site_agent import plain
 from site_agent.audit import Audit, ReleaseFacts, check
 from site_agent.counts import Condition, CountSet
 from site_agent.disclosure import protect, suppress
@@ -509,12 +510,11 @@ def test_nine_cells_of_a_chain_are_not_pinned_small() -> None:
 
 
 def test_nine_cells_of_a_chain_in_a_large_block_are_not_pinned_small() -> None:
-    # The same chain with six and sixty cells on each path: one block of 65 and of 551 open atoms, beyond the
-    # integer program over one variable per atom (60 atoms) and, at 551, beyond the sorting searches for four
-    # (400). Until 2026-12-05 all three counts went out, whatever the chain's length; the program now runs in a
-    # block of any size, over the block's rows, with one variable per set of atoms that every row takes or
-    # leaves together.
-    for pad, atoms in ((6, 65), (60, 551)):
+    # The same chain with six and twelve cells on each path: one block of 65 and of 119 open atoms, beyond the
+    # integer program over one variable per atom (60 atoms). Until 2026-12-05 all three counts went out; the
+    # program now also runs over the block's rows, with one variable per set of atoms that every row takes or
+    # leaves together, in blocks of up to 150 open atoms.
+    for pad, atoms in ((6, 65), (12, 119)):
         values, earlier, current, _ = _chain_of_nine(pad)
         protected = protect(current, policy(k=5), earlier, label="r1")
         assert protected.audit is not None and protected.audit.atoms == atoms
@@ -522,6 +522,22 @@ def test_nine_cells_of_a_chain_in_a_large_block_are_not_pinned_small() -> None:
         assert [n for n, v in protected.released.items() if v is None] == ["t.A"]
         # every search ran: what is left unsearched is whole-number reasoning in a system of more than 60 atoms
         assert protected.audit.unsearched == ({"kind": "whole_numbers", "atoms": atoms, "limit": 60, "narrow": 0},)
+
+
+def test_a_chain_in_a_block_too_large_to_search_is_named_in_the_audit_record() -> None:
+    # Sixty cells on each path: one block of 551 open atoms, beyond the program (150) and beyond the sorting
+    # search for four (400). The three counts go out and the recipient's own SVD pins the nine cells to 3: the
+    # gap threat model R14 states. The site's record says so, and the review page shows it in words.
+    values, earlier, current, _ = _chain_of_nine(60)
+    protected = protect(current, policy(k=5), earlier, label="r1")
+    assert all(v is not None for v in protected.released.values())
+    assert not _open_for_the_recipient(values, earlier, protected.released)
+    assert protected.audit.unsearched == (
+        {"kind": "unions", "size": 4, "parts": 1, "largest": 551},
+        {"kind": "whole_numbers", "atoms": 551, "limit": 60, "narrow": 0},
+    )
+    words = plain.unsearched_sentences(protected.audit.to_dict())
+    assert words[0].startswith("Not searched in full: whether 4 or more finest groups together could be worked out")
 
 
 def test_the_audit_says_what_its_searches_did_not_cover(monkeypatch) -> None:  # noqa: ANN001
