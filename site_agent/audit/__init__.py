@@ -41,9 +41,13 @@ for an ONNX graph, those a record or a random input reaches), so a score band is
    of four in a block of at most ``FOUR_MAX_ATOMS``, of five or six in one of at most ``SIX_MAX_ATOMS`` and of
    seven or eight in one of at most ``EIGHT_MAX_ATOMS`` (``Audit._few_atoms_pinned``: the atoms' distances
    from the row space, turned into numbers by one random direction, add up to zero; each candidate proved by
-   its exact distance); and in a block of at most ``MANY_MAX_ATOMS`` atoms, larger unions of any size by an
-   integer program (``Audit._many_atoms_pinned``: a 0/1 choice of open atoms that is a combination of the
-   block's rows, the fewest atoms first).
+   its exact distance); and larger unions of any size by an integer program (``Audit._many_atoms_pinned``: a
+   0/1 choice of open atoms that is a combination of the block's rows, the fewest atoms first; in a block of
+   more than ``MANY_MAX_ATOMS`` and at most ``LARGE_MAX_ATOMS`` open atoms over the block's sparse rows, one
+   variable per set of atoms every row takes or leaves together, and only in a round where nothing else was
+   found). Each result lists what its searches did not cover (``AuditResult.unsearched``: union sizes in blocks
+   where no program ran or one stopped at its limits, unions across the grouped model's groups, whole-number
+   reasoning in a system of more than ``MILP_MAX_ATOMS`` atoms); the site's review shows it.
 
 **Scale: the grouped model.** A site's history crosses every variable's cuts with every other's (fine ROC
 score bands times age bands: 150,000 atoms after 200 releases of mixed analyses), though no count names a fine

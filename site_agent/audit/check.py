@@ -167,9 +167,9 @@ def _union_program(
     units lies in the row space (``v = W y``) and takes no other open atom (``W[others] y = 0``). ``dense``: one
     unit per usable atom and ``W`` the row space's orthonormal basis. Otherwise ``W`` is the block's independent
     rows, transposed (sparse), and usable atoms that every row takes or leaves together are one unit: a vector
-    of the row space is the same on them, so a union takes all of them or none (the demo's blocks of 353-1,447
-    open atoms have 20-53 rows). Returns the units (positions in ``block.atoms``), the equations for ``v``
-    and for the other atoms, and the number of ``y``."""
+    of the row space is the same on them, so a union takes all of them or none (a block of many atoms has far
+    fewer rows: the demo's blocks of 353-1,447 open atoms have 20-53). Returns the units (positions in
+    ``block.atoms``), the equations for ``v`` and for the other atoms, and the number of ``y``."""
     if dense:
         basis = block.basis
         equal = sparse.hstack([sparse.identity(len(usable)), sparse.csr_matrix(-basis[usable])]).tocsr()
@@ -1128,7 +1128,14 @@ class Audit:
         solved again (at most ``MANY_TRIES`` times a block). A chain of three boxes reaches any number of atoms:
         nine cells, each split by an earlier release, A = a0..a4 + d, D = d + e and E = e + a5..a8 gave
         A - D + E = 3 (k = 5; 29 atoms) until 2026-12-05
-        (site_agent/test_withheld.py::test_nine_cells_of_a_chain_are_not_pinned_small)."""
+        (site_agent/test_withheld.py::test_nine_cells_of_a_chain_are_not_pinned_small).
+
+        ``large``: the blocks of more than ``MANY_MAX_ATOMS`` atoms instead, those with at most
+        ``LARGE_MAX_ATOMS`` open atoms: from the smallest size the sorting searches left out there, over the
+        block's sparse rows (:func:`_union_program`), each program first asked whether any union exists. The
+        same chain with longer paths (65 and 119 open atoms) went out until then (site_agent/test_withheld.py::
+        test_nine_cells_of_a_chain_in_a_large_block_are_not_pinned_small). What ran and whether it finished is
+        kept for :meth:`_unsearched`."""
         live = ~system.zero & ~self.structural_zero & ~released_zero & ~system.free
         if int(live.sum()) <= ANY_UNION_MAX_ATOMS:
             return  # a small system: every union was checked
