@@ -43,10 +43,11 @@ from typing import Any
 
 import numpy as np
 from scipy import sparse
-from scipy.optimize import Bounds, LinearConstraint, linprog, milp
+from scipy.optimize import Bounds, LinearConstraint, linprog
 from scipy.sparse.csgraph import connected_components
 
 from .facts import NOT_SMALL_RULES, AuditError, withheld_bounds
+from .programs import integer_program
 from .system import _Block, _solve_hot
 
 # Each integer program explores at most this many branch-and-bound nodes (a bound that does not depend on the
@@ -283,7 +284,7 @@ class Branches:
         try:
             if not integrality.any():  # a linear program: HiGHS's dual simplex without presolve, 2.5x faster here
                 return _linear(objective, constraints, bounds)
-            return milp(
+            return integer_program(
                 objective,
                 constraints=constraints,
                 integrality=integrality,

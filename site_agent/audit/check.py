@@ -14,7 +14,7 @@ from typing import Any
 
 import numpy as np
 from scipy import sparse
-from scipy.optimize import Bounds, LinearConstraint, milp
+from scipy.optimize import Bounds, LinearConstraint
 from threadpoolctl import ThreadpoolController
 
 from .branches import Branches
@@ -31,6 +31,7 @@ from .facts import (
     ReleaseFacts,
 )
 from .model import Occupied, joint_boxes, meet_entries, models_for_old_entries
+from .programs import integer_program
 from .refinement import Box, Domain, _bits, _whole_numbers, normalise, refine
 from .system import _build_system, _implicit_zeros, _Pool, _System
 
@@ -1184,7 +1185,7 @@ class Audit:
                 if n > MANY_MAX_ATOMS:
                     # is there any such union? (without the fewest-atoms cost HiGHS proves "none", the usual answer,
                     # in 40-75% of the time on the demo's largest blocks); if so, the fewest atoms as below
-                    result = milp(
+                    result = integer_program(
                         np.zeros_like(cost),
                         constraints=rows,
                         integrality=integrality,
@@ -1192,11 +1193,13 @@ class Audit:
                         options=MANY_OPTIONS,
                     )
                     if result.status == 0:
-                        result = milp(
+                        result = integer_program(
                             cost, constraints=rows, integrality=integrality, bounds=bounds, options=MANY_OPTIONS
                         )
                 else:
-                    result = milp(cost, constraints=rows, integrality=integrality, bounds=bounds, options=MANY_OPTIONS)
+                    result = integer_program(
+                        cost, constraints=rows, integrality=integrality, bounds=bounds, options=MANY_OPTIONS
+                    )
                 if result.status != 0 or result.x is None:
                     # none left (2: infeasible), or the program stopped at its limit (threat model R14)
                     self._programs[number] = (least, result.status == 2)

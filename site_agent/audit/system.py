@@ -8,10 +8,11 @@ from dataclasses import dataclass
 
 import numpy as np
 from scipy import sparse
-from scipy.optimize import Bounds, LinearConstraint, linprog, milp
+from scipy.optimize import Bounds, LinearConstraint, linprog
 from scipy.sparse.csgraph import connected_components
 
 from .facts import VALUES_REFUSED, AuditError
+from .programs import integer_program
 
 # The integer programs stop after a number of branch-and-bound nodes, not seconds, so that the same records give
 # the same release on a fast machine and a slow one (a 1 s limit let a loaded machine skip programs a fast one
@@ -222,7 +223,7 @@ class _System:
                     if i < 2
                     else rng.standard_normal(len(block.atoms))
                 )
-                result = milp(
+                result = integer_program(
                     c,
                     constraints=constraints,
                     integrality=np.ones(len(c)),
@@ -247,7 +248,7 @@ class _System:
                 constraints = [LinearConstraint(a, b, b)] if len(b) else []
                 if block.g is not None and block.g.shape[0]:
                     constraints.append(LinearConstraint(block.g, block.g_low, block.g_high))
-                result = milp(
+                result = integer_program(
                     sign * c,
                     constraints=constraints,
                     integrality=np.ones(len(c)),

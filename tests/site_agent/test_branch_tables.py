@@ -113,11 +113,11 @@ def test_a_fractional_linear_table_is_made_whole_by_a_small_program_near_it(monk
     facts = [(withheld, dict.fromkeys(withheld, False), 3, True, names)]
     held = []
 
-    def recorded(*args, **kwargs):  # the real solver, with the columns each integer program holds at 0 noted
+    def recorded(*args, **kwargs):  # the real solver (in this process), with the columns each program holds at 0 noted
         held.append(int(np.sum(kwargs["bounds"].ub == 0)))
         return milp(*args, **kwargs)
 
-    monkeypatch.setattr(module, "milp", recorded)
+    monkeypatch.setattr(module, "integer_program", recorded)
     second = Branches(
         sparse.csr_matrix(incidence), dict(enumerate(NINE_SHOWN)), sparse.csr_matrix((0, 9)), np.zeros(9, bool), facts
     )
