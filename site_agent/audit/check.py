@@ -17,6 +17,7 @@ from scipy import sparse
 from scipy.optimize import Bounds, LinearConstraint
 from threadpoolctl import ThreadpoolController
 
+from . import programs
 from .branches import Branches
 from .decompose import Cells, decompose
 from .facts import (
@@ -232,6 +233,7 @@ class Audit:
         carry_tables: bool = True,
     ) -> None:
         started = time.perf_counter()
+        programs.start()  # the integer programs' worker imports scipy while the system is built
         self.releases = [*earlier, current]
         self.domains: dict[str, Domain] = {}
         schema_entries: dict[str, dict[str, Any]] = {}

@@ -67,6 +67,8 @@ def integer_program(
     global _worker, stopped
     with _lock:
         if _worker is None or not _worker.alive():
+            if _worker is not None:
+                _worker.kill()
             _worker = _Worker()
         answer = _worker.ask(payload, limit)
         if answer is None:  # stopped at the limit, or died: a new worker for the next program
@@ -81,6 +83,15 @@ def integer_program(
         return value
     error = {"ValueError": ValueError}.get(value[0], RuntimeError)
     raise error(value[1])
+
+
+def start() -> None:
+    """Start the worker now, if none runs, without waiting for it: it imports scipy (about 0.4 s) while the
+    audit builds its system, so that the first program does not wait for it."""
+    global _worker
+    with _lock:
+        if _worker is None or not _worker.alive():
+            _worker = _Worker()
 
 
 def worker_pid() -> int | None:
@@ -158,6 +169,25 @@ class _Worker:
             except OSError:
                 pass
         atexit.unregister(self.kill)
+
+
+def _forget_in_child() -> None:
+    """In a forked copy of the agent's process (site_agent.warmstart forks one per message): the parent's worker
+    is not this copy's; its pipes are closed here and the copy starts its own worker."""
+    global _worker, _lock
+    if _worker is not None:
+        for close in (getattr(_worker.process.stdin, "close", None), lambda: os.close(_worker.answers)):
+            try:
+                if close is not None:
+                    close()
+            except OSError:
+                pass
+        atexit.unregister(_worker.kill)
+    _worker, _lock = None, threading.Lock()
+
+
+if hasattr(os, "register_at_fork"):
+    os.register_at_fork(after_in_child=_forget_in_child)
 
 
 def _serve(answers: int) -> None:

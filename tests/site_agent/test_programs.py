@@ -148,3 +148,25 @@ def _state(pid: int) -> str:
         return Path(f"/proc/{pid}/stat").read_text().rsplit(")", 1)[1].split()[0]
     except (FileNotFoundError, IndexError):
         return "gone"
+
+
+def test_a_forked_copy_of_the_agent_starts_its_own_worker() -> None:
+    # site_agent.warmstart forks one copy of the warm process per message: a copy must not write into the
+    # parent's worker (two processes on one pair of pipes would mix their programs and answers)
+    example = _example()
+    assert programs.integer_program(example.pop("c"), **example).status == 0
+    parent = programs.worker_pid()
+    child = os.fork()
+    if child == 0:  # pragma: no cover - in the fork
+        code = 1
+        try:
+            example = _example()
+            mine = programs.integer_program(example.pop("c"), **example)
+            code = 0 if mine.fun == -2.0 and programs.worker_pid() not in (None, parent) else 2
+        finally:
+            os._exit(code)
+    _, status = os.waitpid(child, 0)
+    assert os.waitstatus_to_exitcode(status) == 0
+    example = _example()
+    assert programs.integer_program(example.pop("c"), **example).fun == -2.0
+    assert programs.worker_pid() == parent
