@@ -62,10 +62,10 @@ EIGHT_MAX_ATOMS = 40
 MANY_MAX_ATOMS = 60
 # Beyond MANY_MAX_ATOMS the program runs over the block's sparse rows (one variable per set of atoms every row
 # takes or leaves together), in blocks of at most this many open atoms. Beyond, it is not run (named in the
-# audit's result): in make bench's history its programs over blocks of 300-700 atoms found unions pinned small
-# in most releases, each a further repair round, and one program of 352 sets ran for minutes past HiGHS's own
-# time and node limits, with fractional or whole-number costs alike (threat model R14)
-LARGE_MAX_ATOMS = 150
+# audit's result): in make bench's history, programs of 489-649 sets ran past HiGHS's own time and node limits
+# in most releases from the 23rd on (each now stopped by programs.py after 32 s, and its release took 35-41 s
+# instead of under 1 s); up to 400 its programs found unions pinned small in three releases (threat model R14)
+LARGE_MAX_ATOMS = 400
 MANY_TRIES = 20
 MANY_OPTIONS = {"node_limit": 1_000, "time_limit": 30.0, "mip_rel_gap": 0.0}
 # A split (three and two atoms, three and three, ...) whose sums cancel more often than this is not searched
@@ -1173,8 +1173,7 @@ class Audit:
             # the fewest atoms first, then the lowest atom numbers (so that the union found does not turn on how
             # the solver breaks a tie: the same releases on every machine, section 7 of docs/threat-model.md), in
             # whole numbers: with the tie-break as fractions of 1/(m(m+1)) one program of 352 sets ran for minutes
-            # past HiGHS's time and node limits, and in whole numbers it took 0.18 s, the same union (another of
-            # that block still stalled: LARGE_MAX_ATOMS)
+            # past HiGHS's time and node limits, and in whole numbers it took 0.18 s, the same union
             order = np.argsort(np.argsort([a.min() for a in atoms]))
             cost = np.concatenate([sizes * (m * (m + 1)) + (order + 1), np.zeros(ny)])
             integrality = np.concatenate([np.ones(m), np.zeros(ny)])

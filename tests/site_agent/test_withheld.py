@@ -510,11 +510,12 @@ def test_nine_cells_of_a_chain_are_not_pinned_small() -> None:
 
 
 def test_nine_cells_of_a_chain_in_a_large_block_are_not_pinned_small() -> None:
-    # The same chain with six and twelve cells on each path: one block of 65 and of 119 open atoms, beyond the
-    # integer program over one variable per atom (60 atoms). Until 2026-12-05 all three counts went out; the
-    # program now also runs over the block's rows, with one variable per set of atoms that every row takes or
-    # leaves together, in blocks of up to 150 open atoms.
-    for pad, atoms in ((6, 65), (12, 119)):
+    # The same chain with six, twelve and thirty cells on each path: one block of 65, 119 and 281 open atoms,
+    # beyond the integer program over one variable per atom (60 atoms). Until 2026-12-05 all three counts went
+    # out; the program now also runs over the block's rows, with one variable per set of atoms that every row
+    # takes or leaves together, in blocks of up to 150 open atoms, and of up to 400 since its programs run in a
+    # worker killed at their time limit (site_agent/audit/programs.py): 281 went out until then.
+    for pad, atoms in ((6, 65), (12, 119), (30, 281)):
         values, earlier, current, _ = _chain_of_nine(pad)
         protected = protect(current, policy(k=5), earlier, label="r1")
         assert protected.audit is not None and protected.audit.atoms == atoms
@@ -525,7 +526,7 @@ def test_nine_cells_of_a_chain_in_a_large_block_are_not_pinned_small() -> None:
 
 
 def test_a_chain_in_a_block_too_large_to_search_is_named_in_the_audit_record() -> None:
-    # Sixty cells on each path: one block of 551 open atoms, beyond the program (150) and beyond the sorting
+    # Sixty cells on each path: one block of 551 open atoms, beyond the program (400) and beyond the sorting
     # search for four (400). The three counts go out and the recipient's own SVD pins the nine cells to 3: the
     # gap threat model R14 states. The site's record says so, and the review page shows it in words.
     values, earlier, current, _ = _chain_of_nine(60)
