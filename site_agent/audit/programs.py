@@ -1,7 +1,7 @@
 """The audit's integer programs, each under a hard wall-clock limit.
 
 HiGHS's own time and node limits are checked between its steps, not inside them: one union program of 352 sets
-(a block of more than 150 atoms) ran for minutes past both (threat model R9). A request crafted to make HiGHS
+(a block of 365 open atoms) ran for minutes past both (threat model R9). A request crafted to make HiGHS
 stall could then hold the site's agent until its IT staff stopped it. So every integer program of the audit runs
 here, in one long-lived worker process (a fresh interpreter that imports only numpy and scipy, started by the
 first program of the agent's process), and a program that has not answered within its own time limit and
