@@ -521,10 +521,16 @@ def unsearched_sentences(audit: dict[str, Any] | None) -> list[str]:
             )
         elif kind == "whole_numbers":
             narrow = int(gap.get("narrow", 0))
+            up_to = int(gap.get("withheld_up_to", 0))
             out.append(
                 f"Worked over real numbers and rounded, not by whole-number programs ({gap.get('atoms')} finest "
                 f"groups, beyond the {gap.get('limit')} those programs take): a count that only whole numbers pin "
                 "down was not searched for"
+                + (
+                    f" (withheld counts tied to at most {up_to} finest groups were each decided over whole numbers)"
+                    if up_to
+                    else ""
+                )
                 + (
                     f"; {narrow} withheld count{'s' if narrow != 1 else ''} kept so few values that whole numbers "
                     "could matter."

@@ -69,10 +69,12 @@ defer to it (it ran integer programs on every narrow interval of every earlier r
 **Integrality.** The true interval of a count over whole-number tables can only be narrower than the LP
 relaxation's. We round the LP bounds inward (``ceil(min)``, ``floor(max)``), and where it is cheap (a suppressed
 count whose rounded interval holds fewer than ``protection_width + 2`` values) we solve the two integer programs
-exactly with :func:`scipy.optimize.milp` under a time limit, keeping the LP bound if the limit is hit. Every
-integer program runs in a worker process that is killed 2 s after its time limit (:mod:`~.programs`: HiGHS
-checks its own limits only between its steps). Differencing (check 2) is decided on the relaxation: a region the
-relaxation cannot pin down may, in non-unimodular systems (overlapping counts, or three or more cross-classified
+exactly with :func:`scipy.optimize.milp` under a time limit, keeping the LP bound if the limit is hit. A
+withheld count whose blocks hold more atoms, up to ``WHOLE_MAX_ATOMS``, gets its two integer programs whatever
+its interval, unless whole-number tables found by earlier programs already give it enough values. Every integer
+program runs in a worker process that is killed 2 s after its time limit (:mod:`~.programs`: HiGHS checks its
+own limits only between its steps). Differencing (check 2) is decided on the relaxation: a region the relaxation
+cannot pin down may, in non-unimodular systems (overlapping counts, or three or more cross-classified
 variables), still be pinned down over whole numbers; this is a known limit of the method (Hundepool et al. 2012,
 §4.3). Where the whole system is small (at most ``MILP_MAX_ATOMS`` live atoms) every atom and nested difference
 the relaxation leaves open is also decided by two integer programs (``Audit._whole_pinned``); larger systems

@@ -234,12 +234,21 @@ class _System:
                     table[block.atoms] = np.round(result.x)
         return tables
 
-    def milp_interval(self, vector: np.ndarray, low: int, high: int, strict: bool = False) -> tuple[int, int] | None:
+    def milp_interval(
+        self,
+        vector: np.ndarray,
+        low: int,
+        high: int,
+        strict: bool = False,
+        tables: list[tuple[np.ndarray, np.ndarray]] | None = None,
+    ) -> tuple[int, int] | None:
         """Whole-number min and max (HiGHS branch and bound, :data:`_MILP_OPTIONS`); the LP bounds if a program
-        stops at its limit (``strict``: None)."""
+        stops at its limit (``strict``: None). ``tables``: the two whole-number tables found (each on the
+        vector's blocks, with the atoms it holds) are added to it, for a pool of whole-number tables."""
         if self.unbounded(vector):
             return None if strict else (low, high)
         int_low = int_high = 0
+        found_tables = [self.solution.copy(), self.solution.copy()]
         for block in self.blocks_of(vector):
             c = vector[block.atoms]
             found = []
@@ -258,8 +267,13 @@ class _System:
                 if result.status != 0 or result.fun is None:
                     return None if strict else (low, high)
                 found.append(sign * float(result.fun))
+                found_tables[len(found) - 1][block.atoms] = np.round(result.x)
             int_low += round(found[0])
             int_high += round(found[1])
+        if tables is not None:
+            mask = self.zero.copy()
+            mask[self.block_atoms(vector)] = True
+            tables.extend((table, mask) for table in found_tables)
         return max(low, int_low), min(high, int_high)
 
 

@@ -212,7 +212,7 @@ def test_what_the_audit_did_not_search_is_said_in_one_line_each() -> None:
     gaps = [
         {"kind": "unions", "size": 7, "parts": 2, "largest": 88},
         {"kind": "across_groups", "groups": 4},
-        {"kind": "whole_numbers", "atoms": 387, "limit": 60, "narrow": 1},
+        {"kind": "whole_numbers", "atoms": 387, "limit": 60, "narrow": 1, "withheld_up_to": 400},
     ]
     lines = plain.unsearched_sentences({**audit, "not_searched": gaps})
     assert lines[:3] == [
@@ -220,8 +220,9 @@ def test_what_the_audit_did_not_search_is_said_in_one_line_each() -> None:
         "tied together (the largest ties 88 finest groups whose counts are not known); smaller unions were searched.",
         "Audited in 4 parts (a long history): unions that take finest groups of two parts were not searched.",
         "Worked over real numbers and rounded, not by whole-number programs (387 finest groups, beyond the 60 those "
-        "programs take): a count that only whole numbers pin down was not searched for; 1 withheld count kept so few "
-        "values that whole numbers could matter.",
+        "programs take): a count that only whole numbers pin down was not searched for (withheld counts tied to at "
+        "most 400 finest groups were each decided over whole numbers); 1 withheld count kept so few values that "
+        "whole numbers could matter.",
     ]
     assert lines[3].startswith("Not modelled by any audit") and len(lines) == 4
     assert plain.unsearched_sentences({**audit, "not_searched": []})[0] == "Every search of the audit ran in full."

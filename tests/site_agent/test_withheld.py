@@ -522,7 +522,9 @@ def test_nine_cells_of_a_chain_in_a_large_block_are_not_pinned_small() -> None:
         assert _open_for_the_recipient(values, earlier, protected.released), pad
         assert [n for n, v in protected.released.items() if v is None] == ["t.A"]
         # every search ran: what is left unsearched is whole-number reasoning in a system of more than 60 atoms
-        assert protected.audit.unsearched == ({"kind": "whole_numbers", "atoms": atoms, "limit": 60, "narrow": 0},)
+        assert protected.audit.unsearched == (
+            {"kind": "whole_numbers", "atoms": atoms, "limit": 60, "narrow": 0, "withheld_up_to": 400},
+        )
 
 
 def test_a_chain_in_a_block_too_large_to_search_is_named_in_the_audit_record() -> None:
@@ -535,7 +537,7 @@ def test_a_chain_in_a_block_too_large_to_search_is_named_in_the_audit_record() -
     assert not _open_for_the_recipient(values, earlier, protected.released)
     assert protected.audit.unsearched == (
         {"kind": "unions", "size": 4, "parts": 1, "largest": 551},
-        {"kind": "whole_numbers", "atoms": 551, "limit": 60, "narrow": 0},
+        {"kind": "whole_numbers", "atoms": 551, "limit": 60, "narrow": 0, "withheld_up_to": 400},
     )
     words = plain.unsearched_sentences(protected.audit.to_dict())
     assert words[0].startswith("Not searched in full: whether 4 or more finest groups together could be worked out")
@@ -736,3 +738,78 @@ def test_a_recipient_who_reruns_the_algorithm_does_not_learn_a_small_cell_from_a
     assert [tuple(map(int, row)) for row in kept] == [(0, 1, 1, 0, 6), (0, 2, 1, 1, 5), (1, 1, 2, 0, 5)]
     assert len(stated) == len(kept)  # rerunning rules nothing out
     assert set(kept[:, FIVE.index("c")].tolist()) == {1, 2}
+
+
+# Six cells of one variable and five counts over them, found by a random search over small systems of counts
+# (scipy's own linprog and milp as the recipient): over the reals the counts leave cell a (2 records) between 1
+# and 3, over whole numbers at 2 alone.
+PARITY_CELLS = {"a": 2, "b": 5, "c": 1, "d": 1, "e": 6, "f": 4}
+PARITY_ROWS = {"R1": "abcd", "R2": "abf", "R3": "be", "R4": "cdef", "R5": "bc"}
+
+
+def _whole_number_pin(pad: int) -> tuple[list[tuple[tuple[str, ...], int]], dict]:
+    """An earlier release shows R1, R2 and pair sums along a path of ``pad`` cells from e (values 6..8, which
+    leave e free); the new release asks for a, R3, R4 and R5 (k = 5). Returns the counts the recipient sees (the
+    earlier release's and what the new one shows, each as its cells and value) and the new release's values."""
+    values = dict(PARITY_CELLS) | {f"m{j}": 6 + j % 3 for j in range(pad)}
+    history = CountSet()
+    path = ["e", *(f"m{j}" for j in range(pad))]
+    for j in range(pad):
+        pair = (path[j], path[j + 1])
+        history.add(f"h.p{j}", sum(values[c] for c in pair), Condition("z", pair))
+    for name in ("R1", "R2"):
+        history.add(f"h.{name}", sum(values[c] for c in PARITY_ROWS[name]), Condition("z", tuple(PARITY_ROWS[name])))
+    first = protect(history, policy(k=5))
+    assert all(v is not None for v in first.released.values())
+    earlier = [ReleaseFacts.from_dict("r0", first.facts(history))]
+    current = CountSet()
+    current.add("t.a", values["a"], Condition("z", ("a",)))
+    for name in ("R3", "R4", "R5"):
+        current.add(f"t.{name}", sum(values[c] for c in PARITY_ROWS[name]), Condition("z", tuple(PARITY_ROWS[name])))
+    protected = protect(current, policy(k=5), earlier, label="r1")
+    seen = [(d.where[0].values, earlier[0].values[n]) for n, d in earlier[0].definitions.items()]
+    seen += [
+        (("a",) if n == "t.a" else tuple(PARITY_ROWS[n[2:]]), v) for n, v in protected.released.items() if v is not None
+    ]
+    return seen, protected
+
+
+def _whole_interval(seen: list[tuple[tuple[str, ...], int]], cell: str, k: int) -> tuple[int, int]:
+    """The recipient's own smallest and largest value of ``cell`` over whole-number tables of the shown counts, a
+    withheld count lying in 1..k-1 (scipy.optimize.milp)."""
+    from scipy.optimize import Bounds, LinearConstraint, milp
+
+    names = sorted({c for box, _ in seen for c in box} | {cell})
+    rows = np.array([[1.0 if c in box else 0.0 for c in names] for box, _ in seen])
+    total = np.array([v for _, v in seen], float)
+    target = np.array([1.0 if c == cell else 0.0 for c in names])
+    bounds = Bounds(np.where(target > 0, 1, 0), np.where(target > 0, k - 1, np.inf))
+    ends = []
+    for sign in (1.0, -1.0):
+        result = milp(
+            sign * target,
+            constraints=[LinearConstraint(rows, total, total)],
+            integrality=np.ones(len(names)),
+            bounds=bounds,
+        )
+        assert result.status == 0
+        ends.append(round(sign * result.fun))
+    return ends[0], ends[1]
+
+
+def test_a_count_whole_numbers_pin_in_a_large_block_is_not_released() -> None:
+    # With all five counts shown, the recipient's own integer programs give a = 2: the check of a small system
+    # (at most 60 atoms) finds it and withholds R3 and R5 with a.
+    seen, protected = _whole_number_pin(2)
+    assert protected.audit.atoms == 8
+    assert [n for n, v in protected.released.items() if v is None] == ["t.a", "t.R3", "t.R5"]
+    assert _whole_interval(seen, "a", 5) == (1, 4)
+    # The path from e makes one block of 76 atoms. Until 2026-12-05 the audit took a's interval over the reals
+    # there (1..3, enough values) and showed R3 and R4: the recipient's integer programs then gave a = 2. Its two
+    # integer programs now run in blocks of up to 400 atoms (check.WHOLE_MAX_ATOMS), and R3 is withheld too.
+    seen, protected = _whole_number_pin(70)
+    assert protected.audit.atoms == 76
+    assert [n for n, v in protected.released.items() if v is None] == ["t.a", "t.R3", "t.R5"]
+    assert _whole_interval(seen, "a", 5) == (1, 4)
+    whole = [gap for gap in protected.audit.unsearched if gap["kind"] == "whole_numbers"]
+    assert whole == [{"kind": "whole_numbers", "atoms": 76, "limit": 60, "narrow": 0, "withheld_up_to": 400}]
