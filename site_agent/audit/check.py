@@ -64,7 +64,7 @@ MANY_MAX_ATOMS = 60
 # takes or leaves together), in blocks of at most this many open atoms. Beyond, it is not run (named in the
 # audit's result): in make bench's history, programs of 489-649 sets ran past HiGHS's own time and node limits
 # in most releases from the 23rd on (each now stopped by programs.py after 32 s, and its release took 35-41 s
-# instead of under 1 s); up to 400 its programs found unions pinned small in three releases (threat model R14)
+# instead of under 1 s); up to 400 they changed what four of its first 20 releases withhold (threat model R14)
 LARGE_MAX_ATOMS = 400
 MANY_TRIES = 20
 # A withheld count whose blocks hold more than facts.MILP_MAX_ATOMS atoms and at most this many is decided over
@@ -540,7 +540,7 @@ class Audit:
         # A repair round withholds more of the audited release: every table the round before allowed is still
         # allowed, so only the atoms it left empty can be empty now (the pool keeps them while that holds).
         self._pool.valid_for(known)
-        self._whole.valid_for(known)  # whole-number tables (the integer programs' optima), kept alike
+        self._whole.valid_for(known)  # whole-number tables (programs' optima, LP tables whole on their atoms)
         system = _build_system(a, b, row_box, zero | released_zero, g, g_low, g_high, self._pool.zero)
         self._pool.zero = system.zero.copy()
         self._branches_for = (known, told, min_cell_size, allow_zero, self.structural_zero | released_zero)
@@ -650,8 +650,8 @@ class Audit:
                     return None
             if whole:
                 # a block of more than MILP_MAX_ATOMS atoms and at most WHOLE_MAX_ATOMS: over whole numbers the
-                # count can keep fewer values than over the reals however wide that interval (a count of 2 kept
-                # four values over the reals, 1 to 4, and one over whole numbers, in a block of 76 atoms:
+                # count can keep fewer values than over the reals, however wide that interval (a count of 2 kept
+                # three values over the reals, 1 to 3, and one over whole numbers, in a block of 76 atoms:
                 # site_agent/test_withheld.py::test_a_count_whole_numbers_pin_in_a_large_block_is_not_released),
                 # so its two integer programs run (each bounded by the worker); one stopped at its limit leaves
                 # the count named as not decided over whole numbers
