@@ -162,6 +162,10 @@ class _Worker:
             self.process.wait(timeout=10)
         except subprocess.TimeoutExpired:  # pragma: no cover - a process that survives SIGKILL
             pass
+        self.close_pipes()
+
+    def close_pipes(self) -> None:
+        """This process's ends of the two pipes (the worker itself is left alone)."""
         for close in (getattr(self.process.stdin, "close", None), lambda: os.close(self.answers)):
             try:
                 if close is not None:
@@ -176,13 +180,7 @@ def _forget_in_child() -> None:
     is not this copy's; its pipes are closed here and the copy starts its own worker."""
     global _worker, _lock
     if _worker is not None:
-        for close in (getattr(_worker.process.stdin, "close", None), lambda: os.close(_worker.answers)):
-            try:
-                if close is not None:
-                    close()
-            except OSError:
-                pass
-        atexit.unregister(_worker.kill)
+        _worker.close_pipes()
     _worker, _lock = None, threading.Lock()
 
 
