@@ -14,16 +14,17 @@ Nothing here decides what is released: the program, its options and the answer a
 :func:`scipy.optimize.milp` exactly; only where it runs changes. The worker's output goes to the audit alone (its
 own standard output and error are closed to the site's terminal).
 
-Run as a script, this file is the worker: it reads length-prefixed pickles of ``milp``'s arguments from its
-standard input and writes the result's pickle to the descriptor it was given.
+Run as a script, this file is the worker: it reads ``milp``'s arguments from its standard input and writes the
+result to the descriptor it was given, each length-prefixed and as numpy arrays only (``np.savez``, loaded with
+``allow_pickle=False``: what crosses the pipes is data, never code).
 """
 
 from __future__ import annotations
 
 import atexit
 import ctypes
+import io
 import os
-import pickle
 import select
 import struct
 import subprocess
@@ -32,7 +33,9 @@ import threading
 import time
 from typing import Any
 
-from scipy.optimize import OptimizeResult, milp
+import numpy as np
+from scipy import sparse
+from scipy.optimize import Bounds, LinearConstraint, OptimizeResult, milp
 
 # seconds a program may run past its own time limit before its worker is killed (HiGHS stops within a fraction
 # of a second of the limit when it checks it at all), and how long a new worker may take to start (a fresh
@@ -61,9 +64,7 @@ def integer_program(
     limit = float(options.get("time_limit", DEFAULT_LIMIT)) + GRACE
     if os.name == "nt":  # pragma: no cover - no select() on pipes: in-process, HiGHS's own limits only (R9)
         return milp(c, constraints=constraints, integrality=integrality, bounds=bounds, options=options)
-    payload = pickle.dumps(
-        ((c,), dict(constraints=constraints, integrality=integrality, bounds=bounds, options=options))
-    )
+    payload = _program_bytes(c, constraints, integrality, bounds, options)
     global _worker, stopped
     with _lock:
         if _worker is None or not _worker.alive():
@@ -78,11 +79,105 @@ def integer_program(
             return OptimizeResult(
                 status=1, success=False, x=None, fun=None, message="stopped at the audit's wall-clock limit"
             )
-    kind, value = pickle.loads(answer)
-    if kind == "result":
-        return value
-    error = {"ValueError": ValueError}.get(value[0], RuntimeError)
-    raise error(value[1])
+    return _result_of(answer)
+
+
+# --- what crosses the pipes: numpy arrays only (np.savez, never a pickle: data, not code) -----------------------
+
+_OPTIONS = {"node_limit": int, "time_limit": float, "mip_rel_gap": float, "presolve": bool, "disp": bool}
+
+
+def _to_bytes(arrays: dict[str, Any]) -> bytes:
+    buffer = io.BytesIO()
+    np.savez(buffer, **arrays)
+    return buffer.getvalue()
+
+
+def _from_bytes(data: bytes) -> dict[str, np.ndarray]:
+    with np.load(io.BytesIO(data), allow_pickle=False) as arrays:
+        return {name: arrays[name] for name in arrays.files}
+
+
+def _program_bytes(c: Any, constraints: Any, integrality: Any, bounds: Any, options: dict) -> bytes:
+    """The program as arrays: the costs, integrality and bounds (each as long as the costs), each constraint's
+    matrix (dense, or a sparse one's CSR parts) and row bounds, and the options (only those listed in
+    :data:`_OPTIONS`; any other raises ``ValueError``)."""
+    c = np.asarray(c, float)
+    arrays: dict[str, Any] = {"c": c}
+    if integrality is not None:
+        arrays["integrality"] = np.broadcast_to(np.asarray(integrality, float), c.shape)
+    if bounds is not None:
+        arrays["lower"] = np.broadcast_to(np.asarray(bounds.lb, float), c.shape)
+        arrays["upper"] = np.broadcast_to(np.asarray(bounds.ub, float), c.shape)
+    if constraints is None:
+        constraints = []
+    elif isinstance(constraints, LinearConstraint):
+        constraints = [constraints]
+    arrays["constraints"] = np.array(len(constraints))
+    for i, constraint in enumerate(constraints):
+        matrix = constraint.A
+        if sparse.issparse(matrix):
+            matrix = sparse.csr_matrix(matrix)
+            arrays |= {f"A{i}.data": matrix.data, f"A{i}.indices": matrix.indices, f"A{i}.indptr": matrix.indptr}
+            arrays[f"A{i}.shape"] = np.array(matrix.shape)
+        else:
+            arrays[f"A{i}"] = np.atleast_2d(np.asarray(matrix, float))
+        rows = (arrays[f"A{i}.shape"][0],) if f"A{i}.shape" in arrays else (arrays[f"A{i}"].shape[0],)
+        arrays[f"lb{i}"] = np.broadcast_to(np.asarray(constraint.lb, float), rows)
+        arrays[f"ub{i}"] = np.broadcast_to(np.asarray(constraint.ub, float), rows)
+    for name, value in options.items():
+        if name not in _OPTIONS:
+            raise ValueError(f"the audit's integer programs take no option {name!r}")
+        arrays[f"option.{name}"] = np.array(value, float)
+    return _to_bytes(arrays)
+
+
+def _program_of(data: bytes) -> tuple[tuple[Any, ...], dict[str, Any]]:
+    """``milp``'s arguments from :func:`_program_bytes`."""
+    arrays = _from_bytes(data)
+    constraints = []
+    for i in range(int(arrays["constraints"])):
+        if f"A{i}" in arrays:
+            matrix: Any = arrays[f"A{i}"]
+        else:
+            parts = (arrays[f"A{i}.data"], arrays[f"A{i}.indices"], arrays[f"A{i}.indptr"])
+            matrix = sparse.csr_matrix(parts, shape=tuple(arrays[f"A{i}.shape"]))
+        constraints.append(LinearConstraint(matrix, arrays[f"lb{i}"], arrays[f"ub{i}"]))
+    options = {
+        name[len("option.") :]: _OPTIONS[name[len("option.") :]](arrays[name].item())
+        for name in arrays
+        if name.startswith("option.")
+    }
+    bounds = Bounds(arrays["lower"], arrays["upper"]) if "lower" in arrays else None
+    kwargs = dict(constraints=constraints, integrality=arrays.get("integrality"), bounds=bounds, options=options)
+    return (arrays["c"],), kwargs
+
+
+def _result_bytes(result: OptimizeResult | None, error: Exception | None = None) -> bytes:
+    if error is not None:
+        kind = "ValueError" if isinstance(error, ValueError) else "RuntimeError"
+        return _to_bytes({"error": np.array(kind), "message": np.array(str(error))})
+    arrays: dict[str, Any] = {"status": np.array(int(result.status)), "message": np.array(str(result.message))}
+    if result.x is not None:
+        arrays["x"] = np.asarray(result.x, float)
+    if result.fun is not None:
+        arrays["fun"] = np.array(float(result.fun))
+    return _to_bytes(arrays)
+
+
+def _result_of(data: bytes) -> OptimizeResult:
+    """The worker's answer as ``milp`` returns it (status, x, fun, message, success), or its error raised."""
+    arrays = _from_bytes(data)
+    if "error" in arrays:
+        raise {"ValueError": ValueError}.get(str(arrays["error"]), RuntimeError)(str(arrays["message"]))
+    status = int(arrays["status"])
+    return OptimizeResult(
+        status=status,
+        success=status == 0,
+        x=arrays.get("x"),
+        fun=float(arrays["fun"]) if "fun" in arrays else None,
+        message=str(arrays["message"]),
+    )
 
 
 def start() -> None:
@@ -205,12 +300,11 @@ def _serve(answers: int) -> None:
             head = programs.read(_HEADER.size)
             if len(head) < _HEADER.size:
                 return
-            args, kwargs = pickle.loads(programs.read(_HEADER.unpack(head)[0]))
             try:
-                answer: tuple[str, Any] = ("result", milp(*args, **kwargs))
+                args, kwargs = _program_of(programs.read(_HEADER.unpack(head)[0]))
+                data = _result_bytes(milp(*args, **kwargs))
             except Exception as error:  # noqa: BLE001 - returned to the agent, which raises it there
-                answer = ("error", (type(error).__name__, str(error)))
-            data = pickle.dumps(answer)
+                data = _result_bytes(None, error)
             out.write(_HEADER.pack(len(data)) + data)
             out.flush()
 

@@ -60,6 +60,9 @@ def test_the_worker_answers_what_milp_answers_in_process() -> None:
     # a malformed program raises the ValueError milp raises, whose words the audit's callers expect
     with pytest.raises(ValueError, match="shape"):
         programs.integer_program(c, constraints=[LinearConstraint(np.ones((1, 3)), 0, 1)], integrality=np.ones(2))
+    # only the options the audit uses cross to the worker (as numbers: nothing but arrays crosses the pipes)
+    with pytest.raises(ValueError, match="no option 'threads'"):
+        programs.integer_program(c, **example, options={"threads": 2})
 
 
 def test_a_program_highs_runs_past_its_own_limits_is_stopped_at_the_wall_clock_limit() -> None:
@@ -76,10 +79,9 @@ def test_a_program_highs_runs_past_its_own_limits_is_stopped_at_the_wall_clock_l
         milp(c, constraints=constraints, integrality=integrality, bounds=bounds, options={options!r})
         """
     )
-    started = time.monotonic()
+    still_running = 1.0 + programs.GRACE + 3.0
     with pytest.raises(subprocess.TimeoutExpired):
-        subprocess.run([sys.executable, "-c", reference], timeout=1.0 + programs.GRACE + 3.0, cwd=ROOT)
-    assert time.monotonic() - started >= 1.0 + programs.GRACE + 3.0
+        subprocess.run([sys.executable, "-c", reference], timeout=still_running, cwd=ROOT)
 
     example = _example()
     assert programs.integer_program(example.pop("c"), **example).status == 0  # the worker is up
@@ -89,8 +91,9 @@ def test_a_program_highs_runs_past_its_own_limits_is_stopped_at_the_wall_clock_l
         c, constraints=constraints, integrality=integrality, bounds=bounds, options=options
     )
     elapsed = time.monotonic() - started
-    # stopped at its limit and the grace (a second more for a loaded machine), as HiGHS reports its own limit
-    assert 1.0 + programs.GRACE <= elapsed < 1.0 + programs.GRACE + 1.0
+    # stopped after its limit and the grace, and before the time at which scipy's own milp was still running;
+    # it reports what HiGHS reports at its own limit
+    assert programs.GRACE + 1.0 <= elapsed < still_running
     assert result.status == 1 and result.x is None and not result.success
     assert programs.stopped == stopped + 1
     assert programs.worker_pid() is None
