@@ -15,15 +15,15 @@ Nothing here decides what is released: the program, its options and the answer a
 own standard output and error are closed to the site's terminal).
 
 Run as a script, this file is the worker: it reads ``milp``'s arguments from its standard input and writes the
-result to the descriptor it was given, each length-prefixed and as numpy arrays only (``np.savez``, loaded with
-``allow_pickle=False``: what crosses the pipes is data, never code).
+result to the descriptor it was given, each length-prefixed and as numpy arrays only (their raw bytes after a
+JSON header of names, types and shapes: what crosses the pipes is data, never code).
 """
 
 from __future__ import annotations
 
 import atexit
 import ctypes
-import io
+import json
 import os
 import select
 import struct
@@ -82,20 +82,31 @@ def integer_program(
     return _result_of(answer)
 
 
-# --- what crosses the pipes: numpy arrays only (np.savez, never a pickle: data, not code) -----------------------
+# --- what crosses the pipes: numpy arrays only (raw bytes and a JSON header, never a pickle: data, not code) -----
 
 _OPTIONS = {"node_limit": int, "time_limit": float, "mip_rel_gap": float, "presolve": bool, "disp": bool}
 
 
 def _to_bytes(arrays: dict[str, Any]) -> bytes:
-    buffer = io.BytesIO()
-    np.savez(buffer, **arrays)
-    return buffer.getvalue()
+    """Named arrays as one byte string: a JSON header (each name, dtype and shape) and the arrays' raw bytes."""
+    arrays = {name: np.asarray(value) for name, value in arrays.items()}  # tobytes() is in C order
+    header = json.dumps([[name, a.dtype.str, list(a.shape)] for name, a in arrays.items()]).encode()
+    return b"".join([_HEADER.pack(len(header)), header, *(a.tobytes() for a in arrays.values())])
 
 
 def _from_bytes(data: bytes) -> dict[str, np.ndarray]:
-    with np.load(io.BytesIO(data), allow_pickle=False) as arrays:
-        return {name: arrays[name] for name in arrays.files}
+    """:func:`_to_bytes` read back: numbers, booleans and text only (no object can be built from these bytes)."""
+    size = _HEADER.unpack_from(data)[0]
+    at = _HEADER.size + size
+    out = {}
+    for name, kind, shape in json.loads(data[_HEADER.size : at]):
+        dtype = np.dtype(kind)
+        if dtype.kind not in "fiubU":
+            raise ValueError(f"the worker's answer holds an array of kind {dtype.kind!r}")
+        count = int(np.prod(shape, dtype=np.int64))
+        out[name] = np.frombuffer(data, dtype, count, at).reshape(shape).copy()  # writable, as milp gives it
+        at += count * dtype.itemsize
+    return out
 
 
 def _program_bytes(c: Any, constraints: Any, integrality: Any, bounds: Any, options: dict) -> bytes:
