@@ -608,7 +608,8 @@ class Audit:
             vector, residual = vectors[box], residuals[box]
             duals: dict[int, float] | None = None
             exact_interval = True
-            small = system.atoms_in_blocks(vector) <= MILP_MAX_ATOMS
+            in_blocks = system.atoms_in_blocks(vector)
+            small = in_blocks <= MILP_MAX_ATOMS
             if residual < _TOL:
                 low = high = system.value(vector)
             else:
@@ -630,13 +631,7 @@ class Audit:
                     self._add_tables(points)
             lo_int = max(0, math.ceil(low - 1e-6))
             hi_int = None if math.isinf(high) else math.floor(high + 1e-6)
-            whole = (
-                exact
-                and not small
-                and hi_int is not None
-                and residual >= _TOL
-                and system.atoms_in_blocks(vector) <= WHOLE_MAX_ATOMS
-            )
+            whole = exact and not small and hi_int is not None and residual >= _TOL and in_blocks <= WHOLE_MAX_ATOMS
             if clear_only and whole:
                 return None  # its integer programs run in the evaluation that follows
             if clear_only and hi_int is not None and hi_int - lo_int + 1 < protection_width + (2 if exact else 0):

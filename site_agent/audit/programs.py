@@ -67,11 +67,7 @@ def integer_program(
     payload = _program_bytes(c, constraints, integrality, bounds, options)
     global _worker, stopped
     with _lock:
-        if _worker is None or not _worker.alive():
-            if _worker is not None:
-                _worker.kill()
-            _worker = _Worker()
-        answer = _worker.ask(payload, limit)
+        answer = _running().ask(payload, limit)
         if answer is None:  # stopped at the limit, or died: a new worker for the next program
             _worker.kill()
             _worker = None
@@ -194,10 +190,21 @@ def _result_of(data: bytes) -> OptimizeResult:
 def start() -> None:
     """Start the worker now, if none runs, without waiting for it: it imports scipy (about 0.4 s) while the
     audit builds its system, so that the first program does not wait for it."""
-    global _worker
+    if os.name == "nt":  # pragma: no cover - the programs run in-process there (integer_program)
+        return
     with _lock:
-        if _worker is None or not _worker.alive():
-            _worker = _Worker()
+        _running()
+
+
+def _running() -> _Worker:
+    """The live worker, started if none runs (one that died is killed and its pipes closed first); called with
+    :data:`_lock` held."""
+    global _worker
+    if _worker is None or not _worker.alive():
+        if _worker is not None:
+            _worker.kill()
+        _worker = _Worker()
+    return _worker
 
 
 def worker_pid() -> int | None:
