@@ -520,23 +520,29 @@ def unsearched_sentences(audit: dict[str, Any] | None) -> list[str]:
                 "parts were not searched."
             )
         elif kind == "whole_numbers":
-            narrow = int(gap.get("narrow", 0))
-            up_to = int(gap.get("withheld_up_to", 0))
+            narrow, stopped = int(gap.get("narrow", 0)), int(gap.get("atoms_stopped", 0))
+            up_to, atoms_up_to = int(gap.get("withheld_up_to", 0)), int(gap.get("atoms_up_to", 0))
+            decided = [f"withheld counts tied to at most {up_to} finest groups"] if up_to else []
+            if atoms_up_to:
+                decided.append(f"each finest group in a set of at most {atoms_up_to} tied together")
             out.append(
                 f"Worked over real numbers and rounded, not by whole-number programs ({gap.get('atoms')} finest "
                 f"groups, beyond the {gap.get('limit')} those programs take): a count that only whole numbers pin "
                 "down was not searched for"
+                + (f" ({' and '.join(decided)} were each decided over whole numbers)" if decided else "")
                 + (
-                    f" (withheld counts tied to at most {up_to} finest groups were each decided over whole numbers)"
-                    if up_to
+                    f"; {narrow} withheld count{'s' if narrow != 1 else ''} kept so few values that whole numbers "
+                    "could matter"
+                    if narrow
                     else ""
                 )
                 + (
-                    f"; {narrow} withheld count{'s' if narrow != 1 else ''} kept so few values that whole numbers "
-                    "could matter."
-                    if narrow
-                    else "."
+                    f"; for {stopped} finest group{'s' if stopped != 1 else ''} the whole-number programs stopped "
+                    "at their limit"
+                    if stopped
+                    else ""
                 )
+                + "."
             )
     if not out:
         out.append("Every search of the audit ran in full.")

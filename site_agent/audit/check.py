@@ -70,6 +70,8 @@ MANY_TRIES = 20
 # A withheld count whose blocks hold more than facts.MILP_MAX_ATOMS atoms and at most this many is decided over
 # whole numbers too (two integer programs, whatever its interval over the reals)
 WHOLE_MAX_ATOMS = 400
+# Each atom of a block of at most this many atoms is decided over whole numbers too (``_whole_atoms_pinned``)
+ATOMS_WHOLE_MAX_ATOMS = 400
 MANY_OPTIONS = {"node_limit": 1_000, "time_limit": 30.0, "mip_rel_gap": 0.0}
 # A split (three and two atoms, three and three, ...) whose sums cancel more often than this is not searched
 # (time; the random releases of R14 reach 1.5 million); the matches are taken MATCH_CHUNK at a time (memory).
@@ -545,6 +547,7 @@ class Audit:
         self._pool.zero = system.zero.copy()
         self._branches_for = (known, told, min_cell_size, allow_zero, self.structural_zero | released_zero)
         self._system = system
+        small_system = int((~system.zero).sum()) <= MILP_MAX_ATOMS
         self._branches: Branches | None = None
         self._opened_cache: dict[tuple, tuple[int, int] | None] = {}
 
@@ -590,7 +593,7 @@ class Audit:
                 self._many_atoms_pinned(system, unsafe, released_zero, findings, seen_regions, large=False)
                 if not findings:  # the costly programs only where nothing else was found (the next round asks again)
                     self._many_atoms_pinned(system, unsafe, released_zero, findings, seen_regions, large=True)
-            if exact and self.cells is None and int((~system.zero).sum()) <= MILP_MAX_ATOMS:
+            if exact and self.cells is None and small_system:
                 self._whole_pinned(system, unsafe, released_zero, findings, seen_regions)
         if findings:
             if clear_only:
@@ -687,6 +690,11 @@ class Audit:
                     )
                 )
 
+        # 2. (continued) atoms that only whole numbers pin, in a system too large for _whole_pinned: those of its
+        # blocks of at most ATOMS_WHOLE_MAX_ATOMS atoms, once nothing else was found (the next round asks again)
+        stopped = None  # (not run)
+        if exact and self.cells is None and protection_width >= 2 and not findings and not small_system:
+            stopped = self._whole_atoms_pinned(system, unsafe, released_zero, findings, seen_regions)
         if clear_only and findings:
             return None
         return AuditResult(
@@ -700,7 +708,7 @@ class Audit:
             protection_width=protection_width,
             unrepairable=any(not f.candidates for f in findings),
             grouped=self.cells is not None,
-            unsearched=self._unsearched(system, exact, narrow_unchecked),
+            unsearched=self._unsearched(system, exact, narrow_unchecked, stopped),
         )
 
     def _add_tables(self, points: list[tuple[np.ndarray, np.ndarray]]) -> None:
@@ -709,14 +717,17 @@ class Audit:
         self._pool.add(points)
         self._whole.add([(point, mask & (np.abs(point - np.round(point)) <= 1e-6)) for point, mask in points])
 
-    def _unsearched(self, system: _System, exact: bool, narrow: int) -> tuple[dict[str, Any], ...]:
+    def _unsearched(self, system: _System, exact: bool, narrow: int, stopped: int | None) -> tuple[dict[str, Any], ...]:
         """What this evaluation's searches did not cover, in fixed kinds (no value: the site's own review says
         where the audit did not look; threat model R14). ``unions``: unions of ``size`` or more open atoms in
         ``parts`` blocks (groups, in the grouped model), the largest of ``largest`` open atoms; ``across_groups``:
         unions taking atoms of two groups of the grouped model; ``whole_numbers``: regions only whole numbers pin,
         in a system of more than ``limit`` (``facts.MILP_MAX_ATOMS``) atoms, where withheld counts whose blocks
         hold at most ``withheld_up_to`` atoms were decided over whole numbers, and ``narrow`` withheld counts whose
-        interval was rounded inward near the limit, or whose integer programs stopped, not so decided."""
+        interval was rounded inward near the limit, or whose integer programs stopped, not so decided; each atom
+        of a block of at most ``atoms_up_to`` atoms (0: not searched in this round, which found something else
+        first, or the grouped model) was decided over whole numbers too, but ``atoms_stopped`` atoms whose
+        integer programs stopped at their limit."""
         parts: dict[int, list[int]] = {}
         for (number, _), (n, searched) in self._searched.items():
             least, finished = self._programs.get(number, (0, False))
@@ -738,6 +749,8 @@ class Audit:
                     "limit": MILP_MAX_ATOMS,
                     "narrow": narrow,
                     "withheld_up_to": WHOLE_MAX_ATOMS if exact else 0,
+                    "atoms_up_to": ATOMS_WHOLE_MAX_ATOMS if stopped is not None else 0,
+                    "atoms_stopped": stopped or 0,
                 }
             )
         return tuple(out)
@@ -869,6 +882,72 @@ class Audit:
                 continue
             seen.add(region)
             findings.append(self._difference(system, vector))
+
+    def _whole_atoms_pinned(
+        self,
+        system: _System,
+        unsafe: Any,
+        released_zero: np.ndarray,
+        findings: list[Finding],
+        seen: set[frozenset[int]],
+    ) -> int:
+        """A system of more than ``MILP_MAX_ATOMS`` live atoms: every atom of its blocks of at most
+        ``WHOLE_MAX_ATOMS`` atoms that the real relaxation leaves open, decided over whole numbers. Whole-number
+        tables decide most: an atom that takes two values among them is open, and one that takes a single value
+        the policy shows needs no proof (if it is pinned, it is pinned there). They are, in turn: the tables found
+        so far (``self._whole``), six integer programs of the block (its sum both ways, four random directions),
+        and each program's own optima; only atoms none of them decides get their two integer programs (a cell of
+        1 record that six cells and five counts left between 0 and 1 over the reals, and at 1 over whole numbers,
+        went out in a block of 76 atoms: ``site_agent/test_withheld.py``,
+        ``test_a_cell_whole_numbers_pin_in_a_large_block_is_not_released``).
+        Returns the number of atoms whose programs stopped at their limit (named in the audit's result)."""
+        live = ~system.zero & ~self.structural_zero & ~released_zero
+        stopped = 0
+
+        def undecided(block: Any, atoms: np.ndarray) -> np.ndarray:
+            tables = self._whole.on(block.atoms)
+            if len(tables) == 0:
+                return atoms
+            values = tables[:, atoms]
+            single = np.ptp(values, axis=0) < 0.5
+            small = np.array([unsafe(int(round(v))) for v in values[0]], bool)
+            return atoms[single & small]
+
+        for block in system.blocks:
+            if len(block.atoms) > ATOMS_WHOLE_MAX_ATOMS:
+                continue
+            atoms = np.array(
+                [a for a in block.atoms[live[block.atoms]] if frozenset([int(a)]) not in seen], dtype=np.int64
+            )
+            if len(atoms) == 0:
+                continue
+            atoms = undecided(block, atoms)
+            if len(atoms):
+                tables = system.whole_tables(6, blocks=[block])
+                mask = system.zero.copy()
+                mask[block.atoms] = True
+                self._whole.add([(np.nan_to_num(t), mask) for t in tables if not np.isnan(t[block.atoms]).any()])
+                atoms = undecided(block, atoms)
+            for atom in atoms:
+                if len(undecided(block, np.array([atom]))) == 0:
+                    continue  # a program's table for an earlier atom opened it
+                vector = np.zeros(self.incidence.shape[1])
+                vector[atom] = 1.0
+                if system.residual(vector) < 1e-6:
+                    continue  # pinned over the reals: _atoms_pinned decided it
+                found: list[tuple[np.ndarray, np.ndarray]] = []
+                interval = system.milp_interval(vector, 0, 10**9, strict=True, tables=found)
+                self._whole.add(found)
+                if interval is None:
+                    stopped += 1
+                    continue
+                if interval[0] != interval[1] or not unsafe(interval[0]):
+                    continue
+                if self._opened(vector, 2, interval[0], interval[0]) is not None:
+                    continue
+                seen.add(frozenset([int(atom)]))
+                findings.append(self._difference(system, vector))
+        return stopped
 
     def _nested_pinned(
         self, system: _System, unsafe: Any, findings: list[Finding], seen: set[frozenset[int]], key: np.ndarray

@@ -204,15 +204,16 @@ class _System:
             high = math.inf
         return low, high, duals, points
 
-    def whole_tables(self, count: int, seed: int = 0) -> list[np.ndarray]:
+    def whole_tables(self, count: int, seed: int = 0, blocks: list[_Block] | None = None) -> list[np.ndarray]:
         """Whole-number tables of the system (integer programs per block, random objectives: the sum, its
         negative, then random directions), each a vector over every atom (free atoms 0). A block whose program
-        does not solve in its time limit is left out of every table (its atoms NaN)."""
+        does not solve in its time limit is left out of every table (its atoms NaN), as is every block not in
+        ``blocks`` (None: all)."""
         rng = np.random.default_rng(seed)
         tables = [np.where(self.zero, 0.0, np.nan) for _ in range(count)]
         for table in tables:
             table[self.free] = 0.0
-        for block in self.blocks:
+        for block in self.blocks if blocks is None else blocks:
             a, b = block.a[block.independent], block.b[block.independent]
             constraints = [LinearConstraint(a, b, b)] if len(b) else []
             if block.g is not None and block.g.shape[0]:
@@ -381,14 +382,19 @@ class _Pool:
         """Range of the vector over the points feasible on every atom of ``needed`` (its blocks' atoms)."""
         if len(self.points) < 2:
             return None
+        values = self.on(needed) @ vector
+        if len(values) < 2:
+            return None
+        return float(values.min()), float(values.max())
+
+    def on(self, needed: np.ndarray) -> np.ndarray:
+        """The points feasible on every atom of ``needed`` (one row each; none: no row)."""
+        if not self.points:
+            return np.zeros((0, 0))
         if getattr(self, "_stacked", None) is None or len(self._stacked[0]) != len(self.points):
             self._stacked = (np.stack(self.points), np.stack(self.masks))
         points, masks = self._stacked
-        usable = masks[:, needed].all(axis=1)
-        if usable.sum() < 2:
-            return None
-        values = points[usable] @ vector
-        return float(values.min()), float(values.max())
+        return points[masks[:, needed].all(axis=1)]
 
 
 def _build_system(

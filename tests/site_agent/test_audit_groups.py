@@ -216,11 +216,27 @@ def test_the_grouped_model_says_which_unions_it_did_not_search() -> None:
     assert mine.unsearched == (
         {"kind": "unions", "size": 9, "parts": 1, "largest": 9},
         {"kind": "across_groups", "groups": 2},
-        {"kind": "whole_numbers", "atoms": 81, "limit": 60, "narrow": 0, "withheld_up_to": 400},
+        {
+            "kind": "whole_numbers",
+            "atoms": 81,
+            "limit": 60,
+            "narrow": 0,
+            "withheld_up_to": 400,
+            "atoms_up_to": 0,
+            "atoms_stopped": 0,
+        },
     )
     assert theirs.unsearched == (
         {"kind": "unions", "size": 5, "parts": 2, "largest": 216},
-        {"kind": "whole_numbers", "atoms": 387, "limit": 60, "narrow": 0, "withheld_up_to": 400},
+        {
+            "kind": "whole_numbers",
+            "atoms": 387,
+            "limit": 60,
+            "narrow": 0,
+            "withheld_up_to": 400,
+            "atoms_up_to": 0,
+            "atoms_stopped": 0,
+        },
     )
 
 

@@ -225,6 +225,14 @@ def test_what_the_audit_did_not_search_is_said_in_one_line_each() -> None:
         "whole numbers could matter.",
     ]
     assert lines[3].startswith("Not modelled by any audit") and len(lines) == 4
+    atoms = {"kind": "whole_numbers", "atoms": 76, "limit": 60, "narrow": 0, "withheld_up_to": 400}
+    atoms |= {"atoms_up_to": 400, "atoms_stopped": 2}
+    assert plain.unsearched_sentences({**audit, "not_searched": [atoms]})[0] == (
+        "Worked over real numbers and rounded, not by whole-number programs (76 finest groups, beyond the 60 those "
+        "programs take): a count that only whole numbers pin down was not searched for (withheld counts tied to at "
+        "most 400 finest groups and each finest group in a set of at most 400 tied together were each decided over "
+        "whole numbers); for 2 finest groups the whole-number programs stopped at their limit."
+    )
     assert plain.unsearched_sentences({**audit, "not_searched": []})[0] == "Every search of the audit ran in full."
 
 

@@ -523,7 +523,15 @@ def test_nine_cells_of_a_chain_in_a_large_block_are_not_pinned_small() -> None:
         assert [n for n, v in protected.released.items() if v is None] == ["t.A"]
         # every search ran: what is left unsearched is whole-number reasoning in a system of more than 60 atoms
         assert protected.audit.unsearched == (
-            {"kind": "whole_numbers", "atoms": atoms, "limit": 60, "narrow": 0, "withheld_up_to": 400},
+            {
+                "kind": "whole_numbers",
+                "atoms": atoms,
+                "limit": 60,
+                "narrow": 0,
+                "withheld_up_to": 400,
+                "atoms_up_to": 400,
+                "atoms_stopped": 0,
+            },
         )
 
 
@@ -537,7 +545,15 @@ def test_a_chain_in_a_block_too_large_to_search_is_named_in_the_audit_record() -
     assert not _open_for_the_recipient(values, earlier, protected.released)
     assert protected.audit.unsearched == (
         {"kind": "unions", "size": 4, "parts": 1, "largest": 551},
-        {"kind": "whole_numbers", "atoms": 551, "limit": 60, "narrow": 0, "withheld_up_to": 400},
+        {
+            "kind": "whole_numbers",
+            "atoms": 551,
+            "limit": 60,
+            "narrow": 0,
+            "withheld_up_to": 400,
+            "atoms_up_to": 400,
+            "atoms_stopped": 0,
+        },
     )
     words = plain.unsearched_sentences(protected.audit.to_dict())
     assert words[0].startswith("Not searched in full: whether 4 or more finest groups together could be worked out")
@@ -812,4 +828,95 @@ def test_a_count_whole_numbers_pin_in_a_large_block_is_not_released() -> None:
     assert [n for n, v in protected.released.items() if v is None] == ["t.a", "t.R3", "t.R5"]
     assert _whole_interval(seen, "a", 5) == (1, 4)
     whole = [gap for gap in protected.audit.unsearched if gap["kind"] == "whole_numbers"]
-    assert whole == [{"kind": "whole_numbers", "atoms": 76, "limit": 60, "narrow": 0, "withheld_up_to": 400}]
+    assert whole == [
+        {
+            "kind": "whole_numbers",
+            "atoms": 76,
+            "limit": 60,
+            "narrow": 0,
+            "withheld_up_to": 400,
+            "atoms_up_to": 400,
+            "atoms_stopped": 0,
+        }
+    ]
+
+
+# Six cells of one variable, two counts released earlier and three asked now, found by a random search over such
+# requests with a path of 70 cells beside them (scipy's own linprog and milp over the shown counts as the
+# recipient): over the reals the five counts leave cell c (1 record) between 0 and 1, over whole numbers at 1;
+# and a, b, d at 3, 3, 2.
+PINNED_CELLS = {"a": 3, "b": 3, "c": 1, "d": 2, "e": 6, "f": 0}
+PINNED_EARLIER = ("bcef", "acde")
+PINNED_NOW = ("acdf", "bd", "abf")
+
+
+def _cells_pinned(pad: int) -> tuple[dict[str, tuple[int, int]], dict]:
+    """An earlier release shows the two earlier counts and pair sums along a path of ``pad`` cells from e
+    (values 6..8, which leave e free); the new release asks for the three counts of ``PINNED_NOW`` (k = 5).
+    Returns each of the six cells' interval over whole-number tables of every count shown (the recipient's own
+    integer programs, scipy.optimize.milp), and the new release."""
+    from scipy.optimize import Bounds, LinearConstraint, milp
+
+    values = dict(PINNED_CELLS) | {f"m{j}": 6 + j % 3 for j in range(pad)}
+    history = CountSet()
+    path = ["e", *(f"m{j}" for j in range(pad))]
+    for j in range(pad):
+        pair = (path[j], path[j + 1])
+        history.add(f"h.p{j}", sum(values[c] for c in pair), Condition("z", pair))
+    for j, cells in enumerate(PINNED_EARLIER):
+        history.add(f"h.E{j}", sum(values[c] for c in cells), Condition("z", tuple(cells)))
+    first = protect(history, policy(k=5))
+    assert all(v is not None for v in first.released.values())
+    earlier = [ReleaseFacts.from_dict("r0", first.facts(history))]
+    current = CountSet()
+    for j, cells in enumerate(PINNED_NOW):
+        current.add(f"t.N{j}", sum(values[c] for c in cells), Condition("z", tuple(cells)))
+    protected = protect(current, policy(k=5), earlier, label="r1")
+    seen = [(d.where[0].values, earlier[0].values[n]) for n, d in earlier[0].definitions.items()]
+    seen += [(tuple(PINNED_NOW[int(n[3:])]), v) for n, v in protected.released.items() if v is not None]
+    names = sorted(values)
+    rows = np.array([[1.0 if c in box else 0.0 for c in names] for box, _ in seen])
+    total = np.array([v for _, v in seen], float)
+    intervals = {}
+    for cell in PINNED_CELLS:
+        target = np.array([1.0 if c == cell else 0.0 for c in names])
+        ends = []
+        for sign in (1.0, -1.0):
+            result = milp(
+                sign * target,
+                constraints=[LinearConstraint(rows, total, total)],
+                integrality=np.ones(len(names)),
+                bounds=Bounds(0, np.inf),
+            )
+            ends.append(round(sign * result.fun) if result.status == 0 else sign * math.inf)
+        intervals[cell] = (ends[0], ends[1])
+    return intervals, protected
+
+
+def test_a_cell_whole_numbers_pin_in_a_large_block_is_not_released() -> None:
+    # In a system of at most 60 atoms every atom is decided over whole numbers: acdf is withheld, and no cell is
+    # pinned.
+    intervals, protected = _cells_pinned(2)
+    assert protected.audit.atoms == 8
+    assert [n for n, v in protected.released.items() if v is None] == ["t.N0"]
+    assert all(low < high for low, high in intervals.values()), intervals
+    # The path makes a system of 76 atoms. Until 2026-12-05 (late) the audit decided regions over the reals
+    # there: all three counts went out, and the recipient's integer programs gave c = 1, a = 3, b = 3, d = 2
+    # (over the reals c kept 0..1). Every atom of a block of at most 400 atoms is now decided over whole numbers
+    # too (check.Audit._whole_atoms_pinned), and acdf is withheld as in the small system.
+    intervals, protected = _cells_pinned(70)
+    assert protected.audit.atoms == 76
+    assert [n for n, v in protected.released.items() if v is None] == ["t.N0"]
+    assert all(low < high for low, high in intervals.values()), intervals
+    whole = [gap for gap in protected.audit.unsearched if gap["kind"] == "whole_numbers"]
+    assert whole == [
+        {
+            "kind": "whole_numbers",
+            "atoms": 76,
+            "limit": 60,
+            "narrow": 0,
+            "withheld_up_to": 400,
+            "atoms_up_to": 400,
+            "atoms_stopped": 0,
+        }
+    ]
