@@ -72,6 +72,13 @@ MANY_TRIES = 20
 WHOLE_MAX_ATOMS = 400
 # Each atom of a block of at most this many atoms is decided over whole numbers too (``_whole_atoms_pinned``)
 ATOMS_WHOLE_MAX_ATOMS = 400
+# Wall-clock seconds the integer programs of one request (every round of its audit) may take together; once they
+# are spent the request is refused (programs.Budget; threat model R9)
+PROGRAM_SECONDS = 120.0
+TIME_REFUSED = (
+    "the disclosure audit did not finish within its time for integer programs ({seconds:g} s a request); ask for "
+    "fewer analyses, or fewer or wider bands"
+)
 MANY_OPTIONS = {"node_limit": 1_000, "time_limit": 30.0, "mip_rel_gap": 0.0}
 # A split (three and two atoms, three and three, ...) whose sums cancel more often than this is not searched
 # (time; the random releases of R14 reach 1.5 million); the matches are taken MATCH_CHUNK at a time (memory).
@@ -239,6 +246,7 @@ class Audit:
     ) -> None:
         started = time.perf_counter()
         programs.start()  # the integer programs' worker imports scipy while the system is built
+        self._budget: programs.Budget | None = None  # the request's time for integer programs (first evaluation on)
         self.releases = [*earlier, current]
         self.domains: dict[str, Domain] = {}
         schema_entries: dict[str, dict[str, Any]] = {}
@@ -437,30 +445,37 @@ class Audit:
         global _CONTROLLER
         if _CONTROLLER is None:  # scanning the loaded libraries costs more than a small audit: once per process
             _CONTROLLER = ThreadpoolController()
-        with _CONTROLLER.limit(limits=1, user_api="blas"):
-            told = (current_rules or {}, current_zero or {})
-            if self._grouped is not None:
-                # The full model is too large to decide (it would take minutes), so the grouped model's own
-                # findings do (exact; their candidates come from its rows, so repairs may choose other counts
-                # than the full model). With ``shortcut=False`` its clear-only pass runs first, as the site did
-                # when that pass came before every full model: it is clear only where this evaluation is
-                # (every check it makes is at least as strict: exact LP intervals, integer programs for narrow
-                # ones), so skipping it spares the integer programs it runs on every narrow interval of every
-                # earlier release (most of the cost of a long history).
-                # tests/site_agent/test_audit_shortcut.py compares both ways on random histories.
-                self._grouped.build_seconds = self.build_seconds
-                if not self.shortcut:
-                    clear = self._grouped._evaluate(
-                        current_values, min_cell_size, allow_zero, protection_width, exact, told, clear_only=True
+        if self._budget is None:  # the request's time for integer programs starts now
+            self._budget = programs.Budget(PROGRAM_SECONDS)
+        try:
+            with _CONTROLLER.limit(limits=1, user_api="blas"), programs.within(self._budget):
+                told = (current_rules or {}, current_zero or {})
+                if self._grouped is not None:
+                    # The full model is too large to decide (it would take minutes), so the grouped model's own
+                    # findings do (exact; their candidates come from its rows, so repairs may choose other counts
+                    # than the full model). With ``shortcut=False`` its clear-only pass runs first, as the site did
+                    # when that pass came before every full model: it is clear only where this evaluation is
+                    # (every check it makes is at least as strict: exact LP intervals, integer programs for narrow
+                    # ones), so skipping it spares the integer programs it runs on every narrow interval of every
+                    # earlier release (most of the cost of a long history).
+                    # tests/site_agent/test_audit_shortcut.py compares both ways on random histories.
+                    self._grouped.build_seconds = self.build_seconds
+                    if not self.shortcut:
+                        clear = self._grouped._evaluate(
+                            current_values, min_cell_size, allow_zero, protection_width, exact, told, clear_only=True
+                        )
+                        if clear is not None:
+                            return clear
+                    result = self._grouped._evaluate(
+                        current_values, min_cell_size, allow_zero, protection_width, exact, told
                     )
-                    if clear is not None:
-                        return clear
-                result = self._grouped._evaluate(
-                    current_values, min_cell_size, allow_zero, protection_width, exact, told
-                )
-                assert result is not None
-                return result
-            return self._evaluate(current_values, min_cell_size, allow_zero, protection_width, exact, told)
+                    assert result is not None
+                    return result
+                return self._evaluate(current_values, min_cell_size, allow_zero, protection_width, exact, told)
+        except programs.BudgetSpent:
+            # refused rather than released with the searches after it named as not run: a request crafted to spend
+            # the budget on a few stalling programs would otherwise skip every search that follows
+            raise AuditError(TIME_REFUSED.format(seconds=self._budget.seconds)) from None
 
     def _equations(
         self,

@@ -10,6 +10,11 @@ reached" status (1, no solution), which every search of the audit already treats
 (the search is named in the release's record as not run in full, or the count keeps its linear bounds). The next
 program starts a new worker. A worker that dies without an answer gives the same status.
 
+The programs of one request share a :class:`Budget` of wall-clock time (the audit's ``PROGRAM_SECONDS``): each
+program's limit is cut to what is left, and once it is spent the next program raises :class:`BudgetSpent`, and the
+audit refuses the request. Refused, not released with its searches named as not run: a request crafted to spend
+the budget on a few stalling programs would otherwise skip every search after them.
+
 Nothing here decides what is released: the program, its options and the answer are scipy's
 :func:`scipy.optimize.milp` exactly; only where it runs changes. The worker's output goes to the audit alone (its
 own standard output and error are closed to the site's terminal).
@@ -22,6 +27,8 @@ JSON header of names, types and shapes: what crosses the pipes is data, never co
 from __future__ import annotations
 
 import atexit
+import contextlib
+import contextvars
 import ctypes
 import json
 import os
@@ -53,6 +60,41 @@ started = 0
 stopped = 0
 
 
+class Budget:
+    """Wall-clock time the integer programs of one request may take together (threat model R9): each program's
+    limit is cut to what is left, and once it is spent the next program raises :class:`BudgetSpent` (counted in
+    ``not_run``)."""
+
+    def __init__(self, seconds: float) -> None:
+        self.seconds = float(seconds)
+        self.deadline = time.monotonic() + self.seconds
+        self.not_run = 0
+
+    def left(self) -> float:
+        return self.deadline - time.monotonic()
+
+
+_budget: contextvars.ContextVar[Budget | None] = contextvars.ContextVar("program_budget", default=None)
+
+
+@contextlib.contextmanager
+def within(budget: Budget) -> Any:
+    """Run the programs of this block under ``budget`` (per thread: a context variable)."""
+    token = _budget.set(budget)
+    try:
+        yield budget
+    finally:
+        _budget.reset(token)
+
+
+class BudgetSpent(Exception):  # noqa: N818 - not a RuntimeError: no search may take it for a failed program
+    """The request's time for integer programs is spent: the audit cannot finish, and the request is refused."""
+
+
+def _not_run(message: str) -> OptimizeResult:
+    return OptimizeResult(status=1, success=False, x=None, fun=None, message=message)
+
+
 def integer_program(
     c: Any, *, constraints: Any = None, integrality: Any = None, bounds: Any = None, options: dict | None = None
 ) -> OptimizeResult:
@@ -61,6 +103,13 @@ def integer_program(
     ``status`` 1 and no ``x``, as HiGHS does at its own time limit. The ``ValueError`` or ``RuntimeError`` that
     ``milp`` raises for a malformed program is raised here too."""
     options = dict(options or {})
+    budget = _budget.get()
+    if budget is not None:
+        left = budget.left()
+        if left <= 0:
+            budget.not_run += 1
+            raise BudgetSpent(f"the request's {budget.seconds:g} s for integer programs are spent")
+        options["time_limit"] = min(float(options.get("time_limit", DEFAULT_LIMIT)), left)
     limit = float(options.get("time_limit", DEFAULT_LIMIT)) + GRACE
     if os.name == "nt":  # pragma: no cover - no select() on pipes: in-process, HiGHS's own limits only (R9)
         return milp(c, constraints=constraints, integrality=integrality, bounds=bounds, options=options)
@@ -72,9 +121,7 @@ def integer_program(
             _worker.kill()
             _worker = None
             stopped += 1
-            return OptimizeResult(
-                status=1, success=False, x=None, fun=None, message="stopped at the audit's wall-clock limit"
-            )
+            return _not_run("stopped at the audit's wall-clock limit")
     return _result_of(answer)
 
 

@@ -173,3 +173,31 @@ def test_a_forked_copy_of_the_agent_starts_its_own_worker() -> None:
     example = _example()
     assert programs.integer_program(example.pop("c"), **example).fun == -2.0
     assert programs.worker_pid() == parent
+
+
+def test_the_programs_of_one_request_share_one_budget_of_time() -> None:
+    # A request crafted so that many programs run to their limit would cost 32 s each: the programs of one request
+    # share a budget (the audit's PROGRAM_SECONDS), each program's limit is cut to what is left, and once it is
+    # spent the next program raises BudgetSpent (the audit then refuses the request).
+    c, constraints, integrality, bounds = _stalling()
+    example = _example()
+    assert programs.integer_program(example.pop("c"), **example).status == 0  # the worker is up
+    budget = programs.Budget(1.5)
+    with programs.within(budget):
+        started = time.monotonic()
+        result = programs.integer_program(
+            c, constraints=constraints, integrality=integrality, bounds=bounds, options={"time_limit": 30.0}
+        )
+        elapsed = time.monotonic() - started
+        # cut to the 1.5 s left (HiGHS stops there, or the worker is killed GRACE later), far from its own 30 s
+        assert result.status == 1 and result.x is None
+        assert 1.0 <= elapsed < 1.5 + programs.GRACE + 1.0
+        assert budget.not_run == 0 and budget.left() <= 0
+        example = _example()
+        started = time.monotonic()
+        with pytest.raises(programs.BudgetSpent, match="1.5 s for integer programs are spent"):
+            programs.integer_program(example.pop("c"), **example)
+        assert time.monotonic() - started < 0.5 and budget.not_run == 1
+    # outside the request the programs run as before
+    example = _example()
+    assert programs.integer_program(example.pop("c"), **example).fun == -2.0

@@ -17,6 +17,7 @@ import random
 from types import SimpleNamespace
 
 import numpy as np
+import pytest
 from scipy.optimize import linprog
 
 from federation.protocol import PolicyViolation
@@ -920,3 +921,24 @@ def test_a_cell_whole_numbers_pin_in_a_large_block_is_not_released() -> None:
             "atoms_stopped": 0,
         }
     ]
+
+
+def test_a_request_whose_time_for_programs_is_spent_is_refused(monkeypatch) -> None:  # noqa: ANN001
+    # With no time left for integer programs the cells of the test above cannot be decided over whole numbers.
+    # Released with those searches named as not run, the three counts would pin c = 1 again (the recipient's own
+    # programs: see above); so a request whose time is spent is refused, with one fixed line that names no count
+    # and no analysis (threat model R9).
+    from site_agent.runner import refusal_reason
+
+    monkeypatch.setattr(check, "PROGRAM_SECONDS", 0.0)
+    with pytest.raises(PolicyViolation) as refused:
+        _cells_pinned(70)
+    line, _ = refusal_reason(refused.value, "disclosure")
+    assert line == (
+        "release withheld by the site's disclosure control: the disclosure audit did not finish within its time "
+        "for integer programs (0 s a request); ask for fewer analyses, or fewer or wider bands"
+    )
+    # with the default time (120 s) the same request is audited in full and released as above
+    monkeypatch.setattr(check, "PROGRAM_SECONDS", 120.0)
+    _, protected = _cells_pinned(70)
+    assert [n for n, v in protected.released.items() if v is None] == ["t.N0"]
