@@ -8,7 +8,7 @@ DEMO_OUT ?= demo-output
 export FLWR_TELEMETRY_ENABLED := 0
 export FLWR_DISABLE_UPDATE_CHECK := 1
 
-.PHONY: install constraints demo test lint clean browser postgres validate-stats fuzz bench audit-campaign audit-simulatable
+.PHONY: install constraints demo test lint clean browser postgres validate-stats fuzz bench audit-campaign audit-simulatable audit-whole
 
 $(STAMP): pyproject.toml constraints.txt
 	@test -x $(BIN)/python || $(PYTHON) -m venv $(VENV)
@@ -80,6 +80,15 @@ audit-campaign: $(STAMP)
 # rerun tells of each, and how many counts each shows. The campaign's time and two or three minutes more.
 audit-simulatable: $(STAMP)
 	$(BIN)/python -m simulations.simulatable --seed $(AUDIT_SEED) --scenarios $(AUDIT_SCENARIOS)
+
+# A recipient who reasons with whole numbers (not part of `make test`; docs/threat-model.md, R3): random requests
+# of six cells beside a path of 70 more, released by the site's protect; each cell (AUDIT_WHOLE_FLAGS=--unions:
+# each union of the six) that scipy's integer programs over the shown counts pin to 1..k-1. About 2 minutes.
+AUDIT_WHOLE_SEED ?= 1
+AUDIT_WHOLE_REQUESTS ?= 400
+AUDIT_WHOLE_FLAGS ?=
+audit-whole: $(STAMP)
+	$(BIN)/python -m simulations.whole_numbers --seed $(AUDIT_WHOLE_SEED) --requests $(AUDIT_WHOLE_REQUESTS) $(AUDIT_WHOLE_FLAGS)
 
 lint: $(STAMP)
 	$(BIN)/ruff check federation site_agent simulations tests fuzz
