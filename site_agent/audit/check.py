@@ -70,8 +70,9 @@ MANY_TRIES = 20
 # A withheld count whose blocks hold more than facts.MILP_MAX_ATOMS atoms and at most this many is decided over
 # whole numbers too (two integer programs, whatever its interval over the reals)
 WHOLE_MAX_ATOMS = 400
-# Each atom of a block of at most this many atoms is decided over whole numbers too (``_whole_atoms_pinned``)
-ATOMS_WHOLE_MAX_ATOMS = 400
+# Each atom of a block of at most this many atoms is decided over whole numbers too (``_whole_atoms_pinned``; on
+# the demo, whose largest blocks hold 741-1,447 atoms, 20 integer programs and 1.1 s in all at this limit)
+ATOMS_WHOLE_MAX_ATOMS = 1_500
 # Wall-clock seconds the integer programs of one request (every round of its audit) may take together; once they
 # are spent the request is refused (programs.Budget; threat model R9)
 PROGRAM_SECONDS = 120.0
@@ -907,13 +908,15 @@ class Audit:
         seen: set[frozenset[int]],
     ) -> int:
         """A system of more than ``MILP_MAX_ATOMS`` live atoms: every atom of its blocks of at most
-        ``WHOLE_MAX_ATOMS`` atoms that the real relaxation leaves open, decided over whole numbers. Whole-number
-        tables decide most: an atom that takes two values among them is open, and one that takes a single value
-        the policy shows needs no proof (if it is pinned, it is pinned there). They are, in turn: the tables found
-        so far (``self._whole``), six integer programs of the block (its sum both ways, four random directions),
-        and each program's own optima; only atoms none of them decides get their two integer programs (a cell of
-        1 record that six cells and five counts left between 0 and 1 over the reals, and at 1 over whole numbers,
-        went out in a block of 76 atoms: ``site_agent/test_withheld.py``,
+        ``ATOMS_WHOLE_MAX_ATOMS`` atoms that the real relaxation leaves open, decided over whole numbers.
+        Whole-number tables decide most: an atom that takes two values among them is open, and one that takes a
+        single value the policy shows needs no proof (if it is pinned, it is pinned there). They are, in turn: the
+        tables found so far (``self._whole``), six vertices of the relaxation of the blocks whose atoms those
+        leave undecided (random objectives; a vertex is a whole table where it is whole), six integer programs
+        over the blocks still undecided (many small blocks to a program: the sum both ways, four random
+        directions), and each later program's own optima; only atoms none of them decides get their two integer
+        programs (a cell of 1 record that six cells and five counts left between 0 and 1 over the reals, and at 1
+        over whole numbers, went out in a block of 76 atoms: ``site_agent/test_withheld.py``,
         ``test_a_cell_whole_numbers_pin_in_a_large_block_is_not_released``).
         Returns the number of atoms whose programs stopped at their limit (named in the audit's result)."""
         live = ~system.zero & ~self.structural_zero & ~released_zero
@@ -928,22 +931,23 @@ class Audit:
             small = np.array([unsafe(int(round(v))) for v in values[0]], bool)
             return atoms[single & small]
 
+        left: list[tuple[Any, np.ndarray]] = []
         for block in system.blocks:
             if len(block.atoms) > ATOMS_WHOLE_MAX_ATOMS:
                 continue
             atoms = np.array(
                 [a for a in block.atoms[live[block.atoms]] if frozenset([int(a)]) not in seen], dtype=np.int64
             )
-            if len(atoms) == 0:
-                continue
-            atoms = undecided(block, atoms)
-            if len(atoms):
-                tables = system.whole_tables(6, blocks=[block])
-                mask = system.zero.copy()
-                mask[block.atoms] = True
-                self._whole.add([(np.nan_to_num(t), mask) for t in tables if not np.isnan(t[block.atoms]).any()])
-                atoms = undecided(block, atoms)
-            for atom in atoms:
+            if len(atoms) and len(atoms := undecided(block, atoms)):
+                left.append((block, atoms))
+        if left:  # vertices of the relaxation first (usually whole, and cheap), then whole-number tables
+            self._add_tables(system.vertex_tables([block for block, _ in left], 6))
+            left = [(block, rest) for block, atoms in left if len(rest := undecided(block, atoms))]
+        if left:  # six whole-number tables of those blocks, many small blocks to a program
+            tables = system.whole_tables(6, blocks=[block for block, _ in left])
+            self._whole.add([(np.nan_to_num(t), system.zero | ~np.isnan(t)) for t in tables])
+        for block, atoms in left:
+            for atom in undecided(block, atoms):
                 if len(undecided(block, np.array([atom]))) == 0:
                     continue  # a program's table for an earlier atom opened it
                 vector = np.zeros(self.incidence.shape[1])

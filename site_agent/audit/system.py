@@ -171,6 +171,21 @@ class _System:
                 points.append((point, mask | self.zero))
         return points
 
+    def vertex_tables(self, blocks: list[_Block], count: int, seed: int = 0) -> list[tuple[np.ndarray, np.ndarray]]:
+        """Optima of ``count`` random objectives over ``blocks`` (their LP relaxation, each block's program kept
+        in HiGHS): vertices of a count table's relaxation, usually whole; each with the atoms it was solved on."""
+        rng = np.random.default_rng(seed)
+        points = []
+        for _ in range(count):
+            point, mask = self.solution.copy(), self.zero.copy()
+            for block in blocks:
+                result = _solve_hot(rng.standard_normal(len(block.atoms)), block)
+                if result is not None:
+                    point[block.atoms] = result[1]
+                    mask[block.atoms] = True
+            points.append((point, mask))
+        return points
+
     def lp_interval(
         self, vector: np.ndarray, hot: bool = False
     ) -> tuple[float, float, dict[int, float], list[tuple[np.ndarray, np.ndarray]]]:
@@ -204,26 +219,43 @@ class _System:
             high = math.inf
         return low, high, duals, points
 
-    def whole_tables(self, count: int, seed: int = 0, blocks: list[_Block] | None = None) -> list[np.ndarray]:
-        """Whole-number tables of the system (integer programs per block, random objectives: the sum, its
-        negative, then random directions), each a vector over every atom (free atoms 0). A block whose program
-        does not solve in its time limit is left out of every table (its atoms NaN), as is every block not in
-        ``blocks`` (None: all)."""
+    def whole_tables(
+        self, count: int, seed: int = 0, blocks: list[_Block] | None = None, chunk_atoms: int = 400
+    ) -> list[np.ndarray]:
+        """Whole-number tables of the system (integer programs, random objectives: the sum, its negative, then
+        random directions), each a vector over every atom (free atoms 0). Blocks are taken together, up to
+        ``chunk_atoms`` atoms a program (their rows side by side: an optimum is a whole table of each block; one
+        program per block cost 6,000 programs after a history of 1,000 blocks of three atoms). A chunk whose
+        program does not solve in its time limit is left out of that table (its atoms NaN), as is every block not
+        in ``blocks`` (None: all)."""
         rng = np.random.default_rng(seed)
         tables = [np.where(self.zero, 0.0, np.nan) for _ in range(count)]
         for table in tables:
             table[self.free] = 0.0
+        chunks: list[list[_Block]] = []
         for block in self.blocks if blocks is None else blocks:
-            a, b = block.a[block.independent], block.b[block.independent]
-            constraints = [LinearConstraint(a, b, b)] if len(b) else []
-            if block.g is not None and block.g.shape[0]:
-                constraints.append(LinearConstraint(block.g, block.g_low, block.g_high))
-            for i, table in enumerate(tables):
-                c = (
-                    np.ones(len(block.atoms)) * (1 if i % 2 == 0 else -1)
-                    if i < 2
-                    else rng.standard_normal(len(block.atoms))
+            if not chunks or sum(len(b.atoms) for b in chunks[-1]) + len(block.atoms) > chunk_atoms:
+                chunks.append([])
+            chunks[-1].append(block)
+        for chunk in chunks:
+            atoms = np.concatenate([block.atoms for block in chunk])
+            rows = sparse.block_diag([block.a[block.independent] for block in chunk], format="csr")
+            b = np.concatenate([block.b[block.independent] for block in chunk])
+            constraints = [LinearConstraint(rows, b, b)] if len(b) else []
+            bounded = [block.g is not None and block.g.shape[0] > 0 for block in chunk]
+            if any(bounded):
+                g = sparse.block_diag(
+                    [
+                        block.g if has else sparse.csr_matrix((0, len(block.atoms)))
+                        for block, has in zip(chunk, bounded, strict=True)
+                    ],
+                    format="csr",
                 )
+                low = np.concatenate([block.g_low for block, has in zip(chunk, bounded, strict=True) if has])
+                high = np.concatenate([block.g_high for block, has in zip(chunk, bounded, strict=True) if has])
+                constraints.append(LinearConstraint(g, low, high))
+            for i, table in enumerate(tables):
+                c = np.ones(len(atoms)) * (1 if i % 2 == 0 else -1) if i < 2 else rng.standard_normal(len(atoms))
                 result = integer_program(
                     c,
                     constraints=constraints,
@@ -232,7 +264,7 @@ class _System:
                     options=_MILP_OPTIONS,
                 )
                 if result.status == 0 and result.x is not None:
-                    table[block.atoms] = np.round(result.x)
+                    table[atoms] = np.round(result.x)
         return tables
 
     def milp_interval(

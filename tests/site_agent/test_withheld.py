@@ -530,7 +530,7 @@ def test_nine_cells_of_a_chain_in_a_large_block_are_not_pinned_small() -> None:
                 "limit": 60,
                 "narrow": 0,
                 "withheld_up_to": 400,
-                "atoms_up_to": 400,
+                "atoms_up_to": 1500,
                 "atoms_stopped": 0,
             },
         )
@@ -552,7 +552,7 @@ def test_a_chain_in_a_block_too_large_to_search_is_named_in_the_audit_record() -
             "limit": 60,
             "narrow": 0,
             "withheld_up_to": 400,
-            "atoms_up_to": 400,
+            "atoms_up_to": 1500,
             "atoms_stopped": 0,
         },
     )
@@ -836,7 +836,7 @@ def test_a_count_whole_numbers_pin_in_a_large_block_is_not_released() -> None:
             "limit": 60,
             "narrow": 0,
             "withheld_up_to": 400,
-            "atoms_up_to": 400,
+            "atoms_up_to": 1500,
             "atoms_stopped": 0,
         }
     ]
@@ -903,7 +903,7 @@ def test_a_cell_whole_numbers_pin_in_a_large_block_is_not_released() -> None:
     assert all(low < high for low, high in intervals.values()), intervals
     # The path makes a system of 76 atoms. Until 2026-12-05 (late) the audit decided regions over the reals
     # there: all three counts went out, and the recipient's integer programs gave c = 1, a = 3, b = 3, d = 2
-    # (over the reals c kept 0..1). Every atom of a block of at most 400 atoms is now decided over whole numbers
+    # (over the reals c kept 0..1). Every atom of a block of at most 1,500 atoms is now decided over whole numbers
     # too (check.Audit._whole_atoms_pinned), and acdf is withheld as in the small system.
     intervals, protected = _cells_pinned(70)
     assert protected.audit.atoms == 76
@@ -917,7 +917,7 @@ def test_a_cell_whole_numbers_pin_in_a_large_block_is_not_released() -> None:
             "limit": 60,
             "narrow": 0,
             "withheld_up_to": 400,
-            "atoms_up_to": 400,
+            "atoms_up_to": 1500,
             "atoms_stopped": 0,
         }
     ]
