@@ -91,10 +91,6 @@ class BudgetSpent(Exception):  # noqa: N818 - not a RuntimeError: no search may 
     """The request's time for integer programs is spent: the audit cannot finish, and the request is refused."""
 
 
-def _not_run(message: str) -> OptimizeResult:
-    return OptimizeResult(status=1, success=False, x=None, fun=None, message=message)
-
-
 def integer_program(
     c: Any, *, constraints: Any = None, integrality: Any = None, bounds: Any = None, options: dict | None = None
 ) -> OptimizeResult:
@@ -121,7 +117,9 @@ def integer_program(
             _worker.kill()
             _worker = None
             stopped += 1
-            return _not_run("stopped at the audit's wall-clock limit")
+            return OptimizeResult(
+                status=1, success=False, x=None, fun=None, message="stopped at the audit's wall-clock limit"
+            )
     return _result_of(answer)
 
 

@@ -34,6 +34,21 @@ def policy(k: int = 10, allow_zero: bool = True) -> SimpleNamespace:
     return SimpleNamespace(min_cell_size=k, allow_zero=allow_zero, protection_width=2)
 
 
+def _whole_gap(atoms: int) -> dict:
+    """The audit record's ``whole_numbers`` entry of a system of ``atoms`` atoms where no whole-number program
+    stopped: withheld counts decided over whole numbers in blocks of up to 400 atoms, atoms in blocks of up to
+    1,500."""
+    return {
+        "kind": "whole_numbers",
+        "atoms": atoms,
+        "limit": 60,
+        "narrow": 0,
+        "withheld_up_to": 400,
+        "atoms_up_to": 1500,
+        "atoms_stopped": 0,
+    }
+
+
 def chain(x: int, u: int, v: int, w: int) -> CountSet:
     """Four cells of one variable ``z`` and three overlapping pairs: A = X + U, B = U + V, C = V + W."""
     out = CountSet()
@@ -523,17 +538,7 @@ def test_nine_cells_of_a_chain_in_a_large_block_are_not_pinned_small() -> None:
         assert _open_for_the_recipient(values, earlier, protected.released), pad
         assert [n for n, v in protected.released.items() if v is None] == ["t.A"]
         # every search ran: what is left unsearched is whole-number reasoning in a system of more than 60 atoms
-        assert protected.audit.unsearched == (
-            {
-                "kind": "whole_numbers",
-                "atoms": atoms,
-                "limit": 60,
-                "narrow": 0,
-                "withheld_up_to": 400,
-                "atoms_up_to": 1500,
-                "atoms_stopped": 0,
-            },
-        )
+        assert protected.audit.unsearched == (_whole_gap(atoms),)
 
 
 def test_a_chain_in_a_block_too_large_to_search_is_named_in_the_audit_record() -> None:
@@ -546,15 +551,7 @@ def test_a_chain_in_a_block_too_large_to_search_is_named_in_the_audit_record() -
     assert not _open_for_the_recipient(values, earlier, protected.released)
     assert protected.audit.unsearched == (
         {"kind": "unions", "size": 4, "parts": 1, "largest": 551},
-        {
-            "kind": "whole_numbers",
-            "atoms": 551,
-            "limit": 60,
-            "narrow": 0,
-            "withheld_up_to": 400,
-            "atoms_up_to": 1500,
-            "atoms_stopped": 0,
-        },
+        _whole_gap(551),
     )
     words = plain.unsearched_sentences(protected.audit.to_dict())
     assert words[0].startswith("Not searched in full: whether 4 or more finest groups together could be worked out")
@@ -829,17 +826,7 @@ def test_a_count_whole_numbers_pin_in_a_large_block_is_not_released() -> None:
     assert [n for n, v in protected.released.items() if v is None] == ["t.a", "t.R3", "t.R5"]
     assert _whole_interval(seen, "a", 5) == (1, 4)
     whole = [gap for gap in protected.audit.unsearched if gap["kind"] == "whole_numbers"]
-    assert whole == [
-        {
-            "kind": "whole_numbers",
-            "atoms": 76,
-            "limit": 60,
-            "narrow": 0,
-            "withheld_up_to": 400,
-            "atoms_up_to": 1500,
-            "atoms_stopped": 0,
-        }
-    ]
+    assert whole == [_whole_gap(76)]
 
 
 # Six cells of one variable, two counts released earlier and three asked now, found by a random search over such
@@ -910,17 +897,7 @@ def test_a_cell_whole_numbers_pin_in_a_large_block_is_not_released() -> None:
     assert [n for n, v in protected.released.items() if v is None] == ["t.N0"]
     assert all(low < high for low, high in intervals.values()), intervals
     whole = [gap for gap in protected.audit.unsearched if gap["kind"] == "whole_numbers"]
-    assert whole == [
-        {
-            "kind": "whole_numbers",
-            "atoms": 76,
-            "limit": 60,
-            "narrow": 0,
-            "withheld_up_to": 400,
-            "atoms_up_to": 1500,
-            "atoms_stopped": 0,
-        }
-    ]
+    assert whole == [_whole_gap(76)]
 
 
 def test_a_request_whose_time_for_programs_is_spent_is_refused(monkeypatch) -> None:  # noqa: ANN001
