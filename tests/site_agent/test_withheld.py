@@ -761,21 +761,27 @@ PARITY_CELLS = {"a": 2, "b": 5, "c": 1, "d": 1, "e": 6, "f": 4}
 PARITY_ROWS = {"R1": "abcd", "R2": "abf", "R3": "be", "R4": "cdef", "R5": "bc"}
 
 
-def _whole_number_pin(pad: int) -> tuple[list[tuple[tuple[str, ...], int]], dict]:
-    """An earlier release shows R1, R2 and pair sums along a path of ``pad`` cells from e (values 6..8, which
-    leave e free); the new release asks for a, R3, R4 and R5 (k = 5). Returns the counts the recipient sees (the
-    earlier release's and what the new one shows, each as its cells and value) and the new release's values."""
-    values = dict(PARITY_CELLS) | {f"m{j}": 6 + j % 3 for j in range(pad)}
+def _beside_a_path(values: dict[str, int], pad: int, counts: dict[str, str]) -> list[ReleaseFacts]:
+    """An earlier release (k = 5) of ``counts`` (each a string of cells) and of pair sums along a path of ``pad``
+    cells m0, m1, ... from e: every count shown."""
     history = CountSet()
     path = ["e", *(f"m{j}" for j in range(pad))]
     for j in range(pad):
         pair = (path[j], path[j + 1])
         history.add(f"h.p{j}", sum(values[c] for c in pair), Condition("z", pair))
-    for name in ("R1", "R2"):
-        history.add(f"h.{name}", sum(values[c] for c in PARITY_ROWS[name]), Condition("z", tuple(PARITY_ROWS[name])))
+    for name, cells in counts.items():
+        history.add(name, sum(values[c] for c in cells), Condition("z", tuple(cells)))
     first = protect(history, policy(k=5))
     assert all(v is not None for v in first.released.values())
-    earlier = [ReleaseFacts.from_dict("r0", first.facts(history))]
+    return [ReleaseFacts.from_dict("r0", first.facts(history))]
+
+
+def _whole_number_pin(pad: int) -> tuple[list[tuple[tuple[str, ...], int]], dict]:
+    """An earlier release shows R1, R2 and pair sums along a path of ``pad`` cells from e (values 6..8, which
+    leave e free); the new release asks for a, R3, R4 and R5 (k = 5). Returns the counts the recipient sees (the
+    earlier release's and what the new one shows, each as its cells and value) and the new release's values."""
+    values = dict(PARITY_CELLS) | {f"m{j}": 6 + j % 3 for j in range(pad)}
+    earlier = _beside_a_path(values, pad, {f"h.{name}": PARITY_ROWS[name] for name in ("R1", "R2")})
     current = CountSet()
     current.add("t.a", values["a"], Condition("z", ("a",)))
     for name in ("R3", "R4", "R5"):
@@ -846,16 +852,7 @@ def _cells_pinned(pad: int) -> tuple[dict[str, tuple[int, int]], dict]:
     from scipy.optimize import Bounds, LinearConstraint, milp
 
     values = dict(PINNED_CELLS) | {f"m{j}": 6 + j % 3 for j in range(pad)}
-    history = CountSet()
-    path = ["e", *(f"m{j}" for j in range(pad))]
-    for j in range(pad):
-        pair = (path[j], path[j + 1])
-        history.add(f"h.p{j}", sum(values[c] for c in pair), Condition("z", pair))
-    for j, cells in enumerate(PINNED_EARLIER):
-        history.add(f"h.E{j}", sum(values[c] for c in cells), Condition("z", tuple(cells)))
-    first = protect(history, policy(k=5))
-    assert all(v is not None for v in first.released.values())
-    earlier = [ReleaseFacts.from_dict("r0", first.facts(history))]
+    earlier = _beside_a_path(values, pad, {f"h.E{j}": cells for j, cells in enumerate(PINNED_EARLIER)})
     current = CountSet()
     for j, cells in enumerate(PINNED_NOW):
         current.add(f"t.N{j}", sum(values[c] for c in cells), Condition("z", tuple(cells)))
