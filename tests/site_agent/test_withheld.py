@@ -794,16 +794,18 @@ def _whole_number_pin(pad: int) -> tuple[list[tuple[tuple[str, ...], int]], dict
     return seen, protected
 
 
-def _whole_interval(seen: list[tuple[tuple[str, ...], int]], cell: str, k: int) -> tuple[int, int]:
-    """The recipient's own smallest and largest value of ``cell`` over whole-number tables of the shown counts, a
-    withheld count lying in 1..k-1 (scipy.optimize.milp)."""
+def _recipient_ends(
+    seen: list[tuple[tuple[str, ...], int]], names: list[str], cell: str, low: float = 0, high: float = np.inf
+) -> tuple[float, float]:
+    """The recipient's own smallest and largest value of ``cell`` over whole-number tables of the shown counts
+    (scipy.optimize.milp), every cell of ``names`` at least 0 and ``cell`` within ``low..high``; an end no
+    program reaches (unbounded, or no table at all) is infinite."""
     from scipy.optimize import Bounds, LinearConstraint, milp
 
-    names = sorted({c for box, _ in seen for c in box} | {cell})
     rows = np.array([[1.0 if c in box else 0.0 for c in names] for box, _ in seen])
     total = np.array([v for _, v in seen], float)
     target = np.array([1.0 if c == cell else 0.0 for c in names])
-    bounds = Bounds(np.where(target > 0, 1, 0), np.where(target > 0, k - 1, np.inf))
+    bounds = Bounds(np.where(target > 0, low, 0), np.where(target > 0, high, np.inf))
     ends = []
     for sign in (1.0, -1.0):
         result = milp(
@@ -812,9 +814,17 @@ def _whole_interval(seen: list[tuple[tuple[str, ...], int]], cell: str, k: int) 
             integrality=np.ones(len(names)),
             bounds=bounds,
         )
-        assert result.status == 0
-        ends.append(round(sign * result.fun))
+        ends.append(round(sign * result.fun) if result.status == 0 else sign * math.inf)
     return ends[0], ends[1]
+
+
+def _whole_interval(seen: list[tuple[tuple[str, ...], int]], cell: str, k: int) -> tuple[int, int]:
+    """The recipient's own smallest and largest value of ``cell`` over whole-number tables of the shown counts, a
+    withheld count lying in 1..k-1 (scipy.optimize.milp)."""
+    names = sorted({c for box, _ in seen for c in box} | {cell})
+    low, high = _recipient_ends(seen, names, cell, 1, k - 1)
+    assert math.isfinite(low) and math.isfinite(high)  # both programs solved
+    return int(low), int(high)
 
 
 def test_a_count_whole_numbers_pin_in_a_large_block_is_not_released() -> None:
@@ -849,8 +859,6 @@ def _cells_pinned(pad: int) -> tuple[dict[str, tuple[int, int]], dict]:
     (values 6..8, which leave e free); the new release asks for the three counts of ``PINNED_NOW`` (k = 5).
     Returns each of the six cells' interval over whole-number tables of every count shown (the recipient's own
     integer programs, scipy.optimize.milp), and the new release."""
-    from scipy.optimize import Bounds, LinearConstraint, milp
-
     values = dict(PINNED_CELLS) | {f"m{j}": 6 + j % 3 for j in range(pad)}
     earlier = _beside_a_path(values, pad, {f"h.E{j}": cells for j, cells in enumerate(PINNED_EARLIER)})
     current = CountSet()
@@ -859,22 +867,7 @@ def _cells_pinned(pad: int) -> tuple[dict[str, tuple[int, int]], dict]:
     protected = protect(current, policy(k=5), earlier, label="r1")
     seen = [(d.where[0].values, earlier[0].values[n]) for n, d in earlier[0].definitions.items()]
     seen += [(tuple(PINNED_NOW[int(n[3:])]), v) for n, v in protected.released.items() if v is not None]
-    names = sorted(values)
-    rows = np.array([[1.0 if c in box else 0.0 for c in names] for box, _ in seen])
-    total = np.array([v for _, v in seen], float)
-    intervals = {}
-    for cell in PINNED_CELLS:
-        target = np.array([1.0 if c == cell else 0.0 for c in names])
-        ends = []
-        for sign in (1.0, -1.0):
-            result = milp(
-                sign * target,
-                constraints=[LinearConstraint(rows, total, total)],
-                integrality=np.ones(len(names)),
-                bounds=Bounds(0, np.inf),
-            )
-            ends.append(round(sign * result.fun) if result.status == 0 else sign * math.inf)
-        intervals[cell] = (ends[0], ends[1])
+    intervals = {cell: _recipient_ends(seen, sorted(values), cell) for cell in PINNED_CELLS}
     return intervals, protected
 
 
