@@ -37,7 +37,7 @@ from threadpoolctl import threadpool_limits
 from federation.attempts import attempt as _attempt
 from federation.attempts import not_estimated
 from federation.attempts import not_estimated as _not_estimated
-from federation.labels import auc_bounds_text, level_label
+from federation.labels import auc_bounds_lines, level_label
 from federation.protocol import ValidationToolError
 from federation.release_values import count_or_none as _count
 from federation.release_values import number_or_none as _number
@@ -533,9 +533,7 @@ def summary_lines(result: dict[str, Any]) -> list[str]:
     if discrimination:
         auc = _interval(discrimination.get("pooled_auc"))
         lines.append(f"AUC, site AUCs pooled on the logit scale: {auc or _why(discrimination.get('pooled_auc'))}")
-        bounds = auc_bounds_text(discrimination)
-        if bounds:
-            lines.append(f"  {bounds}")
+        lines.extend(f"  {bounds}" for bounds in auc_bounds_lines(discrimination))
         roc = discrimination.get("summary_roc") or {}
         if _number(roc.get("area_under_curve")) is not None:
             low, high = roc["area_under_curve_ci_low"], roc["area_under_curve_ci_high"]

@@ -13,7 +13,7 @@ import math
 from collections.abc import Mapping
 from typing import Any
 
-__all__ = ["auc_bounds_text", "band_label", "level_label", "number_text", "unit_of"]
+__all__ = ["auc_bounds_lines", "band_label", "level_label", "number_text", "unit_of"]
 
 _UNITS = {"months": "months", "years": "years", "weeks": "weeks", "days": "days", "month": "months", "year": "years"}
 
@@ -70,22 +70,39 @@ def level_label(variable: str, level: Any, integer: bool = False) -> str:
     return "unnamed level"
 
 
-def auc_bounds_text(discrimination: Any) -> str | None:
-    """One sentence on the sites that withheld their AUC: the range their released ROC bands allow each."""
-    found = discrimination.get("auc_bounds") if isinstance(discrimination, Mapping) else None
-    if not isinstance(found, Mapping) or not found:
-        return None
+def _bounds(low: Any, high: Any) -> str | None:
+    return f"{low:.3f} to {high:.3f}" if isinstance(low, float) and isinstance(high, float) else None
+
+
+def auc_bounds_lines(discrimination: Any) -> list[str]:
+    """Sentences on the AUCs a site withheld: the range its released ROC bands allow each, for the site's whole
+    table and then within each subgroup level (``discrimination.auc_bounds``, ``.subgroup_auc_bounds``)."""
+    if not isinstance(discrimination, Mapping):
+        return []
+    found = discrimination.get("auc_bounds")
     ranges = [
-        f"{site} {bounds['low']:.3f} to {bounds['high']:.3f}"
-        for site, bounds in sorted(found.items())
-        if isinstance(bounds, Mapping)
-        and isinstance(bounds.get("low"), float)
-        and isinstance(bounds.get("high"), float)
+        f"{site} {text}"
+        for site, bounds in sorted(found.items() if isinstance(found, Mapping) else [])
+        if isinstance(bounds, Mapping) and (text := _bounds(bounds.get("low"), bounds.get("high")))
     ]
-    if not ranges:
-        return None
-    sites = "1 site" if len(ranges) == 1 else f"{len(ranges)} sites"
-    return (
-        f"AUC withheld at {sites} (not pooled); the smallest and largest AUC each site's released ROC band counts "
-        "allow: " + "; ".join(ranges) + "."
-    )
+    levels = []
+    by_site = discrimination.get("subgroup_auc_bounds")
+    for site, variables in sorted(by_site.items() if isinstance(by_site, Mapping) else []):
+        for variable, found_levels in variables.items() if isinstance(variables, Mapping) else []:
+            for label, bounds in found_levels.items() if isinstance(found_levels, Mapping) else []:
+                if isinstance(bounds, Mapping) and (text := _bounds(bounds.get("low"), bounds.get("high"))):
+                    levels.append(f"{site}, {variable} {label}: {text}")
+    lines = []
+    if ranges:
+        sites = "1 site" if len(ranges) == 1 else f"{len(ranges)} sites"
+        lines.append(
+            f"AUC withheld at {sites} (not pooled); the smallest and largest AUC each site's released ROC band "
+            "counts allow: " + "; ".join(ranges) + "."
+        )
+    if levels:
+        count = "1 subgroup level" if len(levels) == 1 else f"{len(levels)} subgroup levels"
+        lines.append(
+            f"AUC withheld within {count} (not pooled); the smallest and largest AUC each level's released ROC "
+            "band counts allow: " + "; ".join(levels) + "."
+        )
+    return lines

@@ -37,7 +37,7 @@ from federation.release_values import count_or_none as _count
 from federation.release_values import number_or_none as _number
 from federation.stats.auc_bounds import Pieces, auc_bounds
 
-__all__ = ["Count", "auc_range", "count_definitions", "feasible_ranges", "primary_ranges"]
+__all__ = ["Count", "auc_range", "count_definitions", "feasible_ranges", "primary_ranges", "subgroup_auc_ranges"]
 
 _MAX_ATOMS = 60_000  # beyond this the coordinator gives up on ranges (the likelihood then uses the rule alone)
 _ALL = "all"  # a count of every record read
@@ -197,6 +197,14 @@ def _inner(b: _Builder, results: Mapping[str, Any], level: dict[str, Any]) -> No
     _margin(b, results.get("margin"), level)
 
 
+def _level_condition(level: Any) -> frozenset[str] | Interval | None:
+    """The records a subgroup level holds: a category, or a numeric band (None: not a level's shape)."""
+    label = level.get("level") if isinstance(level, dict) else None
+    if isinstance(label, dict):
+        return _interval(label.get("low"), label.get("high"))
+    return frozenset({label}) if isinstance(label, str) else None
+
+
 def _subgroups(b: _Builder, section: Any) -> None:
     if not isinstance(section, dict) or not isinstance(section.get("variables"), list):
         return
@@ -205,14 +213,8 @@ def _subgroups(b: _Builder, section: Any) -> None:
             continue
         feature = f"feature:{variable['variable']}"
         for index, level in enumerate(variable.get("levels") or []):
-            if not isinstance(level, dict):
-                continue
-            label = level.get("level")
-            if isinstance(label, dict):
-                condition: frozenset[str] | Interval = _interval(label.get("low"), label.get("high"))
-            elif isinstance(label, str):
-                condition = frozenset({label})
-            else:
+            condition = _level_condition(level)
+            if condition is None:
                 continue
             where = {feature: condition}
             sub = _Builder(f"{b.prefix}subgroups.{variable['variable']}[{index}].", b.score)
@@ -394,58 +396,136 @@ def _rule_pieces(low: int, high: int, rule: Any, k: int | None, allow_zero: bool
     return [(a, b) for a, b in pieces if a <= b]
 
 
+@dataclass(frozen=True)
+class _WithheldAuc:
+    """A ROC section whose AUC the release withheld: where its counts are named and which records it counts."""
+
+    roc: Mapping[str, Any]
+    prefix: str  # "" for the whole release, "subgroups.sex[1]." for a subgroup level
+    where: Mapping[str, frozenset[str] | Interval]  # the level's condition ({} for the whole release)
+
+
+def _withheld_auc(roc: Any, prefix: str, where: Mapping[str, Any]) -> _WithheldAuc | None:
+    """The section, when it withheld its AUC and has bands in the shape the site sends (ascending score)."""
+    if not isinstance(roc, dict) or _number(roc.get("auc")) is not None:
+        return None
+    bands = roc.get("bands")
+    if not isinstance(bands, list) or not bands or not all(isinstance(b, dict) for b in bands):
+        return None
+    lows = [_bound(b.get("low"), -math.inf) for b in bands]
+    if any(not b < a for a, b in zip(lows[1:], lows, strict=False)):
+        return None  # not in ascending order of score: not the shape the site sends
+    if 0 in (roc.get("positive"), roc.get("negative")):
+        return None  # one class empty: no AUC to bound
+    return _WithheldAuc(roc, prefix, where)
+
+
+def _auc_ranges(
+    release: Release, others: Sequence[Release], sections: Mapping[Any, _WithheldAuc]
+) -> dict[Any, tuple[float, float]]:
+    """The smallest and largest AUC each section's bands allow, given everything the site sent to the study.
+
+    A class total the section withholds is taken where the other counts pin it (its feasible range is one
+    number: a level's own ``analysed_positive``, say); otherwise the section gets no bounds.
+    """
+    if not sections:
+        return {}
+    counts = count_definitions(release)
+    for j, other in enumerate(others):
+        counts.extend(count_definitions(other, prefix=f"release[{j}]."))
+    keys = ("positive", "negative")
+    withheld = [
+        f"{section.prefix}roc.{key}" for section in sections.values() for key in keys if section.roc.get(key) is None
+    ]
+    pinned = feasible_ranges(counts, withheld) if withheld else {}
+    totals: dict[Any, list[int]] = {}
+    for key_of, section in sections.items():
+        found = []
+        for key in keys:
+            shown, bounds = section.roc.get(key), pinned.get(f"{section.prefix}roc.{key}")
+            found.append(
+                _count(shown) if shown is not None else bounds[0] if bounds and bounds[0] == bounds[1] else None
+            )
+        if None not in found:
+            totals[key_of] = found  # type: ignore[assignment]
+    if not totals:
+        return {}
+    # Each class's count in bands 0..j (below the band's upper edge): what the other counts say about it.
+    below = _Builder("", f"score@{release.bundle_sha256}")
+    targets: list[str] = []
+    for s, key_of in enumerate(totals):
+        section = sections[key_of]
+        bands = section.roc["bands"]
+        for j, band in enumerate(bands):
+            targets += [f"{section.prefix}roc.bands[{j}].{key}" for key in keys if band.get(key) is None]
+            if j < len(bands) - 1:
+                for outcome, key in zip((1, 0), keys, strict=True):
+                    below.cell(f"below[{s}][{j}].{key}", None, outcome, None, band.get("high"), **section.where)
+    ranges = feasible_ranges([*counts, *below.counts], [*targets, *(c.name for c in below.counts)])
+    k = release.policy.get("min_cell_size")
+    k = k if isinstance(k, int) and not isinstance(k, bool) and k >= 1 else None
+    allow_zero = bool(release.policy.get("allow_zero", True))
+    out: dict[Any, tuple[float, float]] = {}
+    for s, (key_of, (n_positive, n_negative)) in enumerate(totals.items()):
+        section = sections[key_of]
+        rules = section.roc.get("suppressed_by") if isinstance(section.roc.get("suppressed_by"), dict) else {}
+        cells: dict[str, list[Pieces]] = {"positive": [], "negative": []}
+        bands = section.roc["bands"]
+        contradicted = False
+        for j, band in enumerate(bands):
+            for key, total in zip(keys, (n_positive, n_negative), strict=True):
+                value = band.get(key)
+                if value is not None:
+                    contradicted |= _count(value) is None
+                    cells[key].append([(value, value)])
+                    continue
+                low, high = ranges.get(f"{section.prefix}roc.bands[{j}].{key}", (0, total))
+                pieces = _rule_pieces(low, min(high, total), rules.get(f"band[{j}].{key}"), k, allow_zero)
+                contradicted |= not pieces
+                cells[key].append(pieces)
+        if contradicted:
+            continue
+        cumulative = tuple(
+            [ranges.get(f"below[{s}][{j}].{key}", (0, total)) for j in range(len(bands) - 1)] + [(total, total)]
+            for key, total in zip(keys, (n_positive, n_negative), strict=True)
+        )
+        found = auc_bounds(cells["positive"], cells["negative"], n_positive, n_negative, cumulative)
+        if found is not None:
+            out[key_of] = found
+    return out
+
+
 def auc_range(release: Release, others: Sequence[Release] = ()) -> tuple[float, float] | None:
     """Where a site withheld its AUC, the smallest and largest AUC its ROC bands allow.
 
     Each withheld band count takes its feasible range given everything the site sent to the study
     (:func:`feasible_ranges`), cut by what its rule says (``suppressed_by``: 1..k−1, or "0, or at least k");
     :func:`federation.stats.auc_bounds.auc_bounds` then finds the extremes over every table those allow with
-    the released class totals. ``None`` where the release shows the AUC, has no bands or class totals, or
-    its counts contradict one another.
+    the class totals (released, or pinned by the other counts). ``None`` where the release shows the AUC, has
+    no bands or class totals, or its counts contradict one another.
     """
-    roc = release.extra.get("roc")
-    if not isinstance(roc, dict) or _number(roc.get("auc")) is not None:
-        return None
-    bands = roc.get("bands")
-    n_positive, n_negative = _count(roc.get("positive")), _count(roc.get("negative"))
-    if not isinstance(bands, list) or not bands or not all(isinstance(b, dict) for b in bands):
-        return None
-    if n_positive is None or n_negative is None:
-        return None
-    lows = [_bound(b.get("low"), -math.inf) for b in bands]
-    if any(not b < a for a, b in zip(lows[1:], lows, strict=False)):
-        return None  # not in ascending order of score: not the shape the site sends
-    counts = count_definitions(release)
-    for j, other in enumerate(others):
-        counts.extend(count_definitions(other, prefix=f"release[{j}]."))
-    keys = (("positive", n_positive), ("negative", n_negative))
-    withheld = [f"roc.bands[{j}].{key}" for j, band in enumerate(bands) for key, _ in keys if band.get(key) is None]
-    # Each class's count in bands 0..j (below the band's upper edge): what the other counts say about it.
-    below = _Builder("", f"score@{release.bundle_sha256}")
-    for j, band in enumerate(bands[:-1] if withheld else []):
-        for outcome, (key, _) in zip((1, 0), keys, strict=True):
-            below.cell(f"below[{j}].{key}", None, outcome, None, band.get("high"))
-    ranges = feasible_ranges([*counts, *below.counts], [*withheld, *(c.name for c in below.counts)])
-    policy_k = release.policy.get("min_cell_size")
-    k = policy_k if isinstance(policy_k, int) and not isinstance(policy_k, bool) and policy_k >= 1 else None
-    allow_zero = bool(release.policy.get("allow_zero", True))
-    rules = roc.get("suppressed_by") if isinstance(roc.get("suppressed_by"), dict) else {}
-    cells: dict[str, list[Pieces]] = {"positive": [], "negative": []}
-    for j, band in enumerate(bands):
-        for key, total in keys:
-            value = band.get(key)
-            if value is not None:
-                if _count(value) is None:
-                    return None
-                cells[key].append([(value, value)])
+    section = _withheld_auc(release.extra.get("roc"), "", {})
+    return _auc_ranges(release, others, {None: section} if section else {}).get(None)
+
+
+def subgroup_auc_ranges(release: Release, others: Sequence[Release] = ()) -> dict[tuple[str, int], tuple[float, float]]:
+    """:func:`auc_range` for each subgroup level that withheld its AUC: ``(variable, level index) -> (low, high)``.
+
+    A level's bands count the records of that level only, and so do its class totals. Levels with
+    one class empty (an AUC needs both) and levels whose counts allow no table get none.
+    """
+    subgroups = release.extra.get("subgroups")
+    variables = subgroups.get("variables") if isinstance(subgroups, dict) else None
+    sections: dict[Any, _WithheldAuc] = {}
+    for variable in variables if isinstance(variables, list) else []:
+        if not isinstance(variable, dict) or not isinstance(variable.get("variable"), str):
+            continue
+        name = variable["variable"]
+        for index, level in enumerate(variable.get("levels") or []):
+            condition = _level_condition(level)
+            if condition is None:
                 continue
-            low, high = ranges.get(f"roc.bands[{j}].{key}", (0, total))
-            pieces = _rule_pieces(low, min(high, total), rules.get(f"band[{j}].{key}"), k, allow_zero)
-            if not pieces:
-                return None
-            cells[key].append(pieces)
-    cumulative = tuple(
-        [ranges.get(f"below[{j}].{key}", (0, total)) for j in range(len(bands) - 1)] + [(total, total)]
-        for key, total in keys
-    )
-    return auc_bounds(cells["positive"], cells["negative"], n_positive, n_negative, cumulative)
+            found = _withheld_auc(level.get("roc"), f"subgroups.{name}[{index}].", {f"feature:{name}": condition})
+            if found is not None:
+                sections[(name, index)] = found
+    return _auc_ranges(release, others, sections)

@@ -24,7 +24,7 @@ import math
 from collections.abc import Mapping
 from typing import Any
 
-from federation.labels import auc_bounds_text
+from federation.labels import auc_bounds_lines
 from federation.protocol.documents import calibration_intercept
 
 from .protocol.words import NOT_DEFINED_MARK, POOLED_MODELS, WITHHELD_LEGEND, WITHHELD_MARK
@@ -222,8 +222,7 @@ def _roc(result: dict, sites: Mapping[str, dict]) -> list[str]:
     )
     if isinstance(discrimination, dict):
         lines.append(_pooled_line("pooled AUC (random effects, logit scale)", discrimination.get("pooled_auc")) or "")
-        bounds = auc_bounds_text(discrimination)
-        lines.append(f"  {bounds}" if bounds else "")
+        lines.extend(f"  {bounds}" for bounds in auc_bounds_lines(discrimination))
         roc = discrimination.get("summary_roc")
         if isinstance(roc, dict) and _finite(roc.get("area_under_curve")):
             low, high = roc.get("area_under_curve_ci_low"), roc.get("area_under_curve_ci_high")

@@ -54,7 +54,7 @@ def analyze_tables(
     pooled = headline_pooling(tables)
     result: dict[str, Any] = {"study_id": study_id, "sites": sites}
     for key, build in (
-        ("discrimination", _discrimination),
+        ("discrimination", lambda t: _discrimination(t, integer_variables)),
         ("calibration", _calibration),
         ("paired", _paired),
         ("subgroups", lambda t: _subgroups(t, integer_variables)),

@@ -49,7 +49,19 @@ def _bands(site_id: str, roc: dict[str, Any]) -> SiteBands | None:
     )
 
 
-def _discrimination(tables: list[SiteTable]) -> dict[str, Any] | None:
+def _subgroup_auc_bounds(table: SiteTable, integer_variables: frozenset[str]) -> dict[str, dict[str, Any]]:
+    """``{variable: {level label: {"low", "high"}}}`` for the site's subgroup levels that withheld their AUC."""
+    section = _section(table, "subgroups") or {}
+    variables = {v.get("variable"): v for v in section.get("variables") or [] if isinstance(v, dict)}
+    out: dict[str, dict[str, Any]] = {}
+    for (name, index), (low, high) in sorted(table.subgroup_auc_bounds.items()):
+        level = (variables.get(name) or {}).get("levels", [])[index]
+        label = level_label(name, level.get("level"), name in integer_variables)
+        out.setdefault(name, {})[label] = {"low": low, "high": high}
+    return out
+
+
+def _discrimination(tables: list[SiteTable], integer_variables: frozenset[str] = frozenset()) -> dict[str, Any] | None:
     sites = [(t.site_id, _section(t, "roc")) for t in tables]
     sites = [(s, r) for s, r in sites if r is not None]
     if not sites:
@@ -66,6 +78,9 @@ def _discrimination(tables: list[SiteTable]) -> dict[str, Any] | None:
     # has no standard error).
     out["auc_bounds"] = {
         t.site_id: {"low": t.auc_bounds[0], "high": t.auc_bounds[1]} for t in tables if t.auc_bounds is not None
+    }
+    out["subgroup_auc_bounds"] = {
+        t.site_id: _subgroup_auc_bounds(t, integer_variables) for t in tables if t.subgroup_auc_bounds
     }
     bands = [b for s, r in sites if (b := _bands(s, r)) is not None]
     # Never a curve from bands summed across sites (it keeps only the edges every site shares): a model in which

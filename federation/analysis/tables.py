@@ -9,7 +9,7 @@ from dataclasses import dataclass, field
 from typing import Any
 
 from federation.protocol import Release, ValidationToolError
-from federation.ranges import auc_range, primary_ranges
+from federation.ranges import auc_range, primary_ranges, subgroup_auc_ranges
 from federation.stats import RULES, ReleasedTable
 
 from ..store import Store, StoredRelease
@@ -39,6 +39,8 @@ class SiteTable:
     cut_back: tuple[dict[str, str], ...] = ()
     # Where the site withheld its AUC: the smallest and largest its released ROC bands allow (federation.ranges).
     auc_bounds: tuple[float, float] | None = None
+    # The same within each subgroup level that withheld its AUC: (variable, level's place) -> (low, high).
+    subgroup_auc_bounds: dict[tuple[str, int], tuple[float, float]] = field(default_factory=dict)
 
     def released_table(self) -> ReleasedTable:
         """The table with what the release says about its hidden cells (policy, flow margins, ranges, rules)."""
@@ -106,7 +108,8 @@ def site_tables(
 
     Each table carries the feasible ranges of its withheld cells and margins, computed from every release
     the site sent to the study (:func:`federation.ranges.primary_ranges`); with ``auc_bounds``, also the
-    range of a withheld AUC (:func:`federation.ranges.auc_range`, a few tenths of a second a site).
+    range of a withheld AUC, overall and within each subgroup level (:func:`federation.ranges.auc_range`,
+    :func:`federation.ranges.subgroup_auc_ranges`; a few tenths of a second a site).
     """
     latest: dict[str, StoredRelease] = {}
     by_site: dict[str, list[Release]] = {}
@@ -147,6 +150,7 @@ def site_tables(
                 replayable=replayable,
                 cut_back=tuple(release.cut_back) if index == 0 else (),
                 auc_bounds=auc_range(release, others) if auc_bounds else None,
+                subgroup_auc_bounds=subgroup_auc_ranges(release, others) if auc_bounds else {},
             )
         )
     return tables

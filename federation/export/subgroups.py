@@ -29,12 +29,17 @@ from .registry import _POOLED_COLUMNS, _SITE, ExportContext, _edge, _withheld, t
         ("fp", "false positives"),
         ("fn", "false negatives"),
         ("tn", "true negatives"),
-        ("auc", "AUC within the level (computed at the site)"),
+        ("auc", "AUC within the level (computed at the site from the level's released ROC band counts)"),
         ("auc_se", "its DeLong standard error"),
+        ("auc_bound_low", "where the site withheld the level's AUC: the smallest AUC its released counts allow"),
+        ("auc_bound_high", "where the site withheld the level's AUC: the largest AUC its released counts allow"),
         ("withheld", "names of this row's counts the site withheld"),
     ),
 )
 def _subgroups(context: ExportContext) -> Iterable[dict[str, Any]]:
+    discrimination = context.analysis.get("discrimination")
+    found = discrimination.get("subgroup_auc_bounds") if isinstance(discrimination, dict) else None
+    bounds = found if isinstance(found, dict) else {}
     for site_id, sections in context.sections.items():
         section = sections.get("subgroups")
         variables = section.get("variables") if isinstance(section, dict) else None
@@ -56,16 +61,20 @@ def _subgroups(context: ExportContext) -> Iterable[dict[str, Any]]:
                     "analysed_without_condition": _count(level.get("analysed_negative")),
                     **{c: _count(cells.get(c)) for c in ("tp", "fp", "fn", "tn")},
                 }
+                label = level_label(name, raw, name in context.integer_variables)
+                bound = ((bounds.get(site_id) or {}).get(name) or {}).get(label) or {}
                 yield {
                     "site_id": site_id,
                     "variable": name,
-                    "level": level_label(name, raw, name in context.integer_variables),
+                    "level": label,
                     "band_low": _edge(band.get("low")),
                     "band_high": _edge(band.get("high")),
                     "threshold": _number(first.get("threshold")),
                     **counts,
                     "auc": _number(roc.get("auc")),
                     "auc_se": _number(roc.get("auc_se")),
+                    "auc_bound_low": _number(bound.get("low")),
+                    "auc_bound_high": _number(bound.get("high")),
                     "withheld": _withheld(k for k, v in counts.items() if v is None),
                 }
 

@@ -9,7 +9,7 @@ from __future__ import annotations
 
 from typing import Any
 
-from federation.labels import auc_bounds_text
+from federation.labels import auc_bounds_lines
 
 from .html import esc
 
@@ -89,9 +89,7 @@ def _discrimination(analysis: dict[str, Any]) -> list[str]:
             "AUC pooled on the logit scale from each site's own AUC (Debray et al. 2017): "
             + (_interval(auc) or _why(auc))
         )
-    bounds = auc_bounds_text(found)
-    if bounds:
-        lines.append(bounds)
+    lines.extend(auc_bounds_lines(found))
     roc = found.get("summary_roc")
     if isinstance(roc, dict):
         if _num(roc.get("area_under_curve")) is not None:

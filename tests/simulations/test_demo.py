@@ -125,6 +125,7 @@ def _expected(root: Path) -> dict[str, dict]:
             "points": points.astype(float),
             "long_called": points >= LONG_THRESHOLD,
             "n": len(frame),
+            "frame": frame,
         }
         if "reference2" in frame:
             both = frame["reference2"].to_numpy() >= 0
@@ -304,6 +305,43 @@ def test_where_a_site_withheld_its_auc_the_bounds_hold_the_auc_of_its_records(de
     shown = table.drop(index="pooled")
     assert shown["auc_bound_low"].notna().sum() == len(withheld)
     assert shown["auc"].notna().sum() + len(withheld) == len(releases)
+
+
+def test_where_a_subgroup_level_withheld_its_auc_the_bounds_hold_the_auc_of_its_records(demo) -> None:
+    """Each subgroup level that withheld its AUC, with both classes present, gets the smallest and largest AUC
+    its released counts allow (docs/formats.md); scikit-learn's roc_auc_score on the level's records, each at
+    its own band, lies between them."""
+    root, _, _ = demo
+    expected = _expected(root)
+    releases = {r["site_id"]: r for r in json.loads((root / "results" / "releases.json").read_text())}
+    table = pd.read_csv(root / "results" / "subgroups.csv")
+    bounded = 0
+    for (site_id, variable), rows in table.groupby(["site_id", "variable"], sort=False):
+        variables = releases[site_id]["results"]["subgroups"]["variables"]
+        levels = next(v["levels"] for v in variables if v["variable"] == variable)
+        assert len(levels) == len(rows)
+        site = expected[site_id]
+        for level, (_, row) in zip(levels, rows.iterrows(), strict=True):
+            if pd.isna(row["auc_bound_low"]):
+                continue
+            bounded += 1
+            assert pd.isna(row["auc"])
+            values = site["frame"][variable].to_numpy()
+            raw = level["level"]
+            if isinstance(raw, dict):
+                low, high = raw["low"], raw["high"]
+                inside = (values >= (-np.inf if low is None else low)) & (values < (np.inf if high is None else high))
+            else:
+                inside = values == raw
+            bands = level["roc"]["bands"]
+            index = np.searchsorted([b["low"] for b in bands[1:]], site["score"][inside], side="right")
+            truth = roc_auc_score(site["truth"][inside], index)
+            assert row["auc_bound_low"] - 1e-12 <= truth <= row["auc_bound_high"] + 1e-12
+            assert (
+                f"{site_id}, {variable} {row['level']}: {row['auc_bound_low']:.3f}"
+                in (root / "report.html").read_text()
+            )
+    assert bounded >= 5  # 7 levels at five sites on 2026-12-05
 
 
 def test_export_tables_parse_with_pandas_and_agree_with_the_flow(demo) -> None:

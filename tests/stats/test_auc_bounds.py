@@ -13,7 +13,7 @@ from sklearn.datasets import load_breast_cancer
 from sklearn.metrics import roc_auc_score
 
 from federation.protocol.documents import ConfusionTable, Release
-from federation.ranges import auc_range
+from federation.ranges import auc_range, subgroup_auc_ranges
 from federation.stats import auc_bounds as bounds_module
 from federation.stats.auc_bounds import auc_bounds
 
@@ -238,3 +238,106 @@ def test_a_release_gets_the_bounds_of_every_table_its_counts_and_rules_allow() -
     # a release that shows its AUC gets none
     shown = dataclasses.replace(release, extra={"roc": {**roc, "auc": 0.8}})
     assert auc_range(shown) is None
+
+
+def _texture_levels() -> list[tuple[np.ndarray, np.ndarray]]:
+    """The bands above within two levels of mean texture (below 19, then 19 or more): positives, negatives."""
+    data = load_breast_cancer()
+    radius = data.data[:90, list(data.feature_names).index("mean radius")]
+    texture = data.data[:90, list(data.feature_names).index("mean texture")]
+    malignant = data.target[:90] == 0
+    band = np.searchsorted([11.0, 12.0, 13.0, 14.0, 15.5, 17.0, 19.0], radius, side="right")
+    levels = []
+    for inside in (texture < 19.0, texture >= 19.0):
+        levels.append(tuple(np.bincount(band[inside & c], minlength=8) for c in (malignant, ~malignant)))
+    return levels
+
+
+def _subgroup_release(hidden: list[dict[str, dict[int, str]]], totals_shown: tuple[bool, bool]) -> Release:
+    """A release whose only ROC bands are those within the two texture levels (each level's counts ``hidden``
+    by their rules; a level that hides none shows its AUC), with the whole 2x2 table at radius 14.0 and the flow
+    shown; each level's class totals shown or withheld as ``totals_shown`` says."""
+    edges = [11.0, 12.0, 13.0, 14.0, 15.5, 17.0, 19.0]
+    rule_names = {"small": "minimum_cell_size", "complementary": "complementary"}
+    levels = []
+    for index, ((positive, negative), shown) in enumerate(zip(_texture_levels(), totals_shown, strict=True)):
+        bands, rules = [], {}
+        for j, (p, n) in enumerate(zip(positive.tolist(), negative.tolist(), strict=True)):
+            band = {"low": None if j == 0 else edges[j - 1], "high": None if j == len(edges) else edges[j]}
+            for key, value in (("positive", p), ("negative", n)):
+                rule = hidden[index][key].get(j)
+                band[key] = None if rule else value
+                if rule:
+                    rules[f"band[{j}].{key}"] = rule_names[rule]
+            bands.append(band)
+        n_pos, n_neg = (int(positive.sum()), int(negative.sum())) if shown else (None, None)
+        roc = {"bands": bands, "positive": n_pos, "negative": n_neg, "auc": None, "suppressed_by": rules}
+        if not any(hidden[index].values()):
+            roc["auc"] = _sklearn_auc(tuple(positive), tuple(negative))
+        label = {"low": None, "high": 19.0} if index == 0 else {"low": 19.0, "high": None}
+        levels.append({"level": label, "analysed_positive": n_pos, "analysed_negative": n_neg, "roc": roc})
+    positive, negative = (sum(level[c] for level in _texture_levels()) for c in (0, 1))
+    n_pos, n_neg = int(positive.sum()), int(negative.sum())
+    fn, tn = int(positive[:4].sum()), int(negative[:4].sum())
+    cells = {"tp": n_pos - fn, "fp": n_neg - tn, "fn": fn, "tn": tn}
+    flow = {"read": 90, "analysed": 90, "analysed_positive": n_pos, "analysed_negative": n_neg, "excluded": {}}
+    subgroups = {"variables": [{"variable": "texture", "levels": levels}]}
+    return Release(
+        "study",
+        "r1",
+        "b" * 64,
+        "s1",
+        "2026-12-01T00:00:00Z",
+        {"min_cell_size": K, "allow_zero": True},
+        flow,
+        (ConfusionTable(14.0, cells),),
+        extra={"subgroups": subgroups},
+    )
+
+
+NONE_HIDDEN: dict[str, dict[int, str]] = {"positive": {}, "negative": {}}
+HIDDEN_IN_LEVEL = {
+    "positive": {1: "small", 3: "small", 6: "complementary"},
+    "negative": {0: "complementary", 4: "small"},
+}
+
+
+def test_a_subgroup_level_gets_the_bounds_of_every_table_its_counts_and_rules_allow() -> None:
+    # The first texture level withholds five band counts by their rules and its class totals; the second level
+    # is shown in full, so the flow pins the first level's totals and the 2x2 table its counts below 14.0.
+    (positive, negative), (other_pos, other_neg) = _texture_levels()
+    # read from the data: the level below texture 19 holds 17 malignant and 21 benign records, by band
+    assert positive.tolist() == [0, 1, 1, 2, 1, 2, 7, 3]
+    assert negative.tolist() == [7, 2, 5, 6, 1, 0, 0, 0]
+    for counts, hidden in ((positive, HIDDEN_IN_LEVEL["positive"]), (negative, HIDDEN_IN_LEVEL["negative"])):
+        for j, rule in hidden.items():
+            assert (1 <= counts[j] < K) if rule == "small" else (counts[j] == 0 or counts[j] >= K)
+    found = subgroup_auc_ranges(_subgroup_release([HIDDEN_IN_LEVEL, NONE_HIDDEN], (False, True)))
+    assert set(found) == {("texture", 0)}  # the second level shows its AUC
+    n_pos, n_neg = int(positive.sum()), int(negative.sum())
+    cells_pos = [_pieces(int(v), HIDDEN_IN_LEVEL["positive"].get(j), n_pos) for j, v in enumerate(positive)]
+    cells_neg = [_pieces(int(v), HIDDEN_IN_LEVEL["negative"].get(j), n_neg) for j, v in enumerate(negative)]
+    every = _every_auc(
+        cells_pos, cells_neg, n_pos, n_neg, below_edge=(int(positive[:4].sum()), int(negative[:4].sum()))
+    )
+    assert len(every) >= 2
+    assert found[("texture", 0)] == pytest.approx((min(every), max(every)), abs=1e-12)
+    truth = _sklearn_auc(tuple(positive), tuple(negative))
+    assert min(every) <= truth <= max(every) and min(every) < max(every)
+
+
+def test_a_subgroup_level_whose_class_totals_nothing_pins_gets_no_bounds() -> None:
+    # Both levels withhold their class totals and the second also a band count of each class (1 and 3
+    # records: minimum cell size), so the flow gives only sums and neither level's totals are known: no bounds
+    # are guessed.
+    other = {"positive": {0: "small"}, "negative": {1: "small"}}
+    (_, _), (other_pos, other_neg) = _texture_levels()
+    assert 1 <= other_pos[0] < K and 1 <= other_neg[1] < K
+    assert subgroup_auc_ranges(_subgroup_release([HIDDEN_IN_LEVEL, other], (False, False))) == {}
+    # with the first level's totals shown, the flow pins the second level's too: each gets bounds that hold the
+    # AUC of its own bands (scikit-learn; the second level's is then exact: one count of each class withheld)
+    found = subgroup_auc_ranges(_subgroup_release([HIDDEN_IN_LEVEL, other], (True, False)))
+    assert set(found) == {("texture", 0), ("texture", 1)}
+    for index, (positive, negative) in enumerate(_texture_levels()):
+        low, high = found[("texture", index)]
+        assert low - 1e-12 <= _sklearn_auc(tuple(positive), tuple(negative)) <= high + 1e-12
