@@ -670,7 +670,9 @@ class Audit:
                 # so its two integer programs run (each bounded by the worker); one stopped at its limit leaves
                 # the count named as not decided over whole numbers
                 tables = self._whole.range(vector, system.block_atoms(vector))
-                if tables is None or _whole_numbers(*tables) < protection_width:
+                if exact_interval and lo_int == hi_int:
+                    pass  # one whole number over the reals: the same one over whole numbers (the records' table)
+                elif tables is None or _whole_numbers(*tables) < protection_width:
                     found: list[tuple[np.ndarray, np.ndarray]] = []
                     checked = system.milp_interval(vector, 0, 10**9, strict=True, tables=found)
                     self._whole.add(found)
