@@ -68,10 +68,8 @@ MANY_MAX_ATOMS = 60
 LARGE_MAX_ATOMS = 400
 MANY_TRIES = 20
 # A withheld count whose blocks hold more than facts.MILP_MAX_ATOMS atoms and at most this many is decided over
-# whole numbers too (two integer programs, whatever its interval over the reals, unless it holds one whole number
-# or whole-number tables already give it enough values). 400 until 2026-12-05 (night); the demo's blocks hold up
-# to 1,447 atoms, where 47 more programs made an offline demo about 9 s longer, with the same releases
-WHOLE_MAX_ATOMS = 1_500
+# whole numbers too (two integer programs, whatever its interval over the reals)
+WHOLE_MAX_ATOMS = 400
 # Each atom of a block of at most this many atoms is decided over whole numbers too (``_whole_atoms_pinned``; on
 # the demo, whose largest blocks hold 741-1,447 atoms, 20 integer programs and 1.1 s in all at this limit)
 ATOMS_WHOLE_MAX_ATOMS = 1_500

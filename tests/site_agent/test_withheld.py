@@ -36,13 +36,14 @@ def policy(k: int = 10, allow_zero: bool = True) -> SimpleNamespace:
 
 def _whole_gap(atoms: int) -> dict:
     """The audit record's ``whole_numbers`` entry of a system of ``atoms`` atoms where no whole-number program
-    stopped: withheld counts and atoms decided over whole numbers in blocks of up to 1,500 atoms."""
+    stopped: withheld counts decided over whole numbers in blocks of up to 400 atoms, atoms in blocks of up to
+    1,500."""
     return {
         "kind": "whole_numbers",
         "atoms": atoms,
         "limit": 60,
         "narrow": 0,
-        "withheld_up_to": 1500,
+        "withheld_up_to": 400,
         "atoms_up_to": 1500,
         "atoms_stopped": 0,
     }
@@ -835,24 +836,13 @@ def test_a_count_whole_numbers_pin_in_a_large_block_is_not_released() -> None:
     assert _whole_interval(seen, "a", 5) == (1, 4)
     # The path from e makes one block of 76 atoms. Until 2026-12-05 the audit took a's interval over the reals
     # there (1..3, enough values) and showed R3 and R4: the recipient's integer programs then gave a = 2. Its two
-    # integer programs now run in blocks of up to 1,500 atoms (check.WHOLE_MAX_ATOMS; 400 until 2026-12-05, night),
-    # and R3 is withheld too.
+    # integer programs now run in blocks of up to 400 atoms (check.WHOLE_MAX_ATOMS), and R3 is withheld too.
     seen, protected = _whole_number_pin(70)
     assert protected.audit.atoms == 76
     assert [n for n, v in protected.released.items() if v is None] == ["t.a", "t.R3", "t.R5"]
     assert _whole_interval(seen, "a", 5) == (1, 4)
     whole = [gap for gap in protected.audit.unsearched if gap["kind"] == "whole_numbers"]
     assert whole == [_whole_gap(76)]
-    # A path of 600 cells makes one block of 606 atoms: until 2026-12-05 (night) a's interval was taken over the
-    # reals there, certified only as at least as wide as 1..4 (two tables); its integer programs now run in
-    # blocks of up to 1,500 atoms and give the recipient's own interval exactly.
-    seen, protected = _whole_number_pin(600)
-    assert protected.audit.atoms == 606
-    assert [n for n, v in protected.released.items() if v is None] == ["t.a", "t.R3", "t.R5"]
-    interval = protected.audit.intervals["t.a"]
-    assert (interval.low, interval.high, interval.exact) == (*_whole_interval(seen, "a", 5), True)
-    whole = [gap for gap in protected.audit.unsearched if gap["kind"] == "whole_numbers"]
-    assert whole == [_whole_gap(606)]
 
 
 # Six cells of one variable, two counts released earlier and three asked now, found by a random search over such
