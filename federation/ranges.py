@@ -456,11 +456,16 @@ def _auc_ranges(
     for s, key_of in enumerate(totals):
         section = sections[key_of]
         bands = section.roc["bands"]
-        for j, band in enumerate(bands):
-            targets += [f"{section.prefix}roc.bands[{j}].{key}" for key in keys if band.get(key) is None]
-            if j < len(bands) - 1:
-                for outcome, key in zip((1, 0), keys, strict=True):
-                    below.cell(f"below[{s}][{j}].{key}", None, outcome, None, band.get("high"), **section.where)
+        hidden = [
+            f"{section.prefix}roc.bands[{j}].{key}"
+            for j, band in enumerate(bands)
+            for key in keys
+            if band.get(key) is None
+        ]
+        targets += hidden
+        for j, band in enumerate(bands[:-1] if hidden else []):  # every band shown: nothing to narrow
+            for outcome, key in zip((1, 0), keys, strict=True):
+                below.cell(f"below[{s}][{j}].{key}", None, outcome, None, band.get("high"), **section.where)
     ranges = feasible_ranges([*counts, *below.counts], [*targets, *(c.name for c in below.counts)])
     k = release.policy.get("min_cell_size")
     k = k if isinstance(k, int) and not isinstance(k, bool) and k >= 1 else None

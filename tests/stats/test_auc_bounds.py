@@ -331,8 +331,8 @@ def test_a_subgroup_level_whose_class_totals_nothing_pins_gets_no_bounds() -> No
     # records: minimum cell size), so the flow gives only sums and neither level's totals are known: no bounds
     # are guessed.
     other = {"positive": {0: "small"}, "negative": {1: "small"}}
-    (_, _), (other_pos, other_neg) = _texture_levels()
-    assert 1 <= other_pos[0] < K and 1 <= other_neg[1] < K
+    _, (other_pos, other_neg) = _texture_levels()
+    assert other_pos[0] in range(1, K) and other_neg[1] in range(1, K)
     assert subgroup_auc_ranges(_subgroup_release([HIDDEN_IN_LEVEL, other], (False, False))) == {}
     # with the first level's totals shown, the flow pins the second level's too: each gets bounds that hold the
     # AUC of its own bands (scikit-learn; the second level's is then exact: one count of each class withheld)
