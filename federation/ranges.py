@@ -37,7 +37,15 @@ from federation.release_values import count_or_none as _count
 from federation.release_values import number_or_none as _number
 from federation.stats.auc_bounds import Pieces, auc_bounds
 
-__all__ = ["Count", "auc_range", "count_definitions", "feasible_ranges", "primary_ranges", "subgroup_auc_ranges"]
+__all__ = [
+    "Count",
+    "auc_range",
+    "auc_ranges",
+    "count_definitions",
+    "feasible_ranges",
+    "primary_ranges",
+    "subgroup_auc_ranges",
+]
 
 _MAX_ATOMS = 60_000  # beyond this the coordinator gives up on ranges (the likelihood then uses the rule alone)
 _ALL = "all"  # a count of every record read
@@ -500,28 +508,15 @@ def _auc_ranges(
     return out
 
 
-def auc_range(release: Release, others: Sequence[Release] = ()) -> tuple[float, float] | None:
-    """Where a site withheld its AUC, the smallest and largest AUC its ROC bands allow.
-
-    Each withheld band count takes its feasible range given everything the site sent to the study
-    (:func:`feasible_ranges`), cut by what its rule says (``suppressed_by``: 1..k−1, or "0, or at least k");
-    :func:`federation.stats.auc_bounds.auc_bounds` then finds the extremes over every table those allow with
-    the class totals (released, or pinned by the other counts). ``None`` where the release shows the AUC, has
-    no bands or class totals, or its counts contradict one another.
-    """
-    section = _withheld_auc(release.extra.get("roc"), "", {})
-    return _auc_ranges(release, others, {None: section} if section else {}).get(None)
-
-
-def subgroup_auc_ranges(release: Release, others: Sequence[Release] = ()) -> dict[tuple[str, int], tuple[float, float]]:
-    """:func:`auc_range` for each subgroup level that withheld its AUC: ``(variable, level index) -> (low, high)``.
-
-    A level's bands count the records of that level only, and so do its class totals. Levels with
-    one class empty (an AUC needs both) and levels whose counts allow no table get none.
-    """
-    subgroups = release.extra.get("subgroups")
-    variables = subgroups.get("variables") if isinstance(subgroups, dict) else None
+def _withheld_aucs(release: Release, whole: bool = True, levels: bool = True) -> dict[Any, _WithheldAuc]:
+    """The release's ROC sections that withheld their AUC: ``None`` for the whole release (``whole``),
+    ``(variable, level index)`` for each subgroup level (``levels``)."""
     sections: dict[Any, _WithheldAuc] = {}
+    section = _withheld_auc(release.extra.get("roc"), "", {}) if whole else None
+    if section is not None:
+        sections[None] = section
+    subgroups = release.extra.get("subgroups") if levels else None
+    variables = subgroups.get("variables") if isinstance(subgroups, dict) else None
     for variable in variables if isinstance(variables, list) else []:
         if not isinstance(variable, dict) or not isinstance(variable.get("variable"), str):
             continue
@@ -533,4 +528,30 @@ def subgroup_auc_ranges(release: Release, others: Sequence[Release] = ()) -> dic
             found = _withheld_auc(level.get("roc"), f"subgroups.{name}[{index}].", {f"feature:{name}": condition})
             if found is not None:
                 sections[(name, index)] = found
-    return _auc_ranges(release, others, sections)
+    return sections
+
+
+def auc_range(release: Release, others: Sequence[Release] = ()) -> tuple[float, float] | None:
+    """Where a site withheld its AUC, the smallest and largest AUC its ROC bands allow.
+
+    Each withheld band count takes its feasible range given everything the site sent to the study
+    (:func:`feasible_ranges`), cut by what its rule says (``suppressed_by``: 1..k−1, or "0, or at least k");
+    :func:`federation.stats.auc_bounds.auc_bounds` then finds the extremes over every table those allow with
+    the class totals (released, or pinned by the other counts). ``None`` where the release shows the AUC, has
+    no bands or class totals, or its counts contradict one another.
+    """
+    return _auc_ranges(release, others, _withheld_aucs(release, levels=False)).get(None)
+
+
+def subgroup_auc_ranges(release: Release, others: Sequence[Release] = ()) -> dict[tuple[str, int], tuple[float, float]]:
+    """:func:`auc_range` for each subgroup level that withheld its AUC: ``(variable, level index) -> (low, high)``.
+
+    A level's bands count the records of that level only, and so do its class totals. Levels with
+    one class empty (an AUC needs both) and levels whose counts allow no table get none.
+    """
+    return _auc_ranges(release, others, _withheld_aucs(release, whole=False))
+
+
+def auc_ranges(release: Release, others: Sequence[Release] = ()) -> dict[Any, tuple[float, float]]:
+    """:func:`auc_range` (key ``None``) and :func:`subgroup_auc_ranges` together, from one set of programs."""
+    return _auc_ranges(release, others, _withheld_aucs(release))

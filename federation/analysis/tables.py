@@ -9,7 +9,7 @@ from dataclasses import dataclass, field
 from typing import Any
 
 from federation.protocol import Release, ValidationToolError
-from federation.ranges import auc_range, primary_ranges, subgroup_auc_ranges
+from federation.ranges import auc_ranges, primary_ranges
 from federation.stats import RULES, ReleasedTable
 
 from ..store import Store, StoredRelease
@@ -108,8 +108,8 @@ def site_tables(
 
     Each table carries the feasible ranges of its withheld cells and margins, computed from every release
     the site sent to the study (:func:`federation.ranges.primary_ranges`); with ``auc_bounds``, also the
-    range of a withheld AUC, overall and within each subgroup level (:func:`federation.ranges.auc_range`,
-    :func:`federation.ranges.subgroup_auc_ranges`; a few tenths of a second a site).
+    range of a withheld AUC, overall and within each subgroup level (:func:`federation.ranges.auc_ranges`; a few
+    tenths of a second a site).
     """
     latest: dict[str, StoredRelease] = {}
     by_site: dict[str, list[Release]] = {}
@@ -128,6 +128,7 @@ def site_tables(
             continue
         index, table = candidates[0]
         others = [r for r in by_site[site_id] if r is not release]
+        withheld_aucs = auc_ranges(release, others) if auc_bounds else {}
         ranges = primary_ranges(release, index, others) if table.suppressed or None in release.flow.values() else {}
         rules = _rules_named(release, table)
         replayable = (
@@ -149,8 +150,8 @@ def site_tables(
                 suppressed_by=rules,
                 replayable=replayable,
                 cut_back=tuple(release.cut_back) if index == 0 else (),
-                auc_bounds=auc_range(release, others) if auc_bounds else None,
-                subgroup_auc_bounds=subgroup_auc_ranges(release, others) if auc_bounds else {},
+                auc_bounds=withheld_aucs.get(None),
+                subgroup_auc_bounds={key: found for key, found in withheld_aucs.items() if key is not None},
             )
         )
     return tables

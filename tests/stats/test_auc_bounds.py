@@ -13,7 +13,7 @@ from sklearn.datasets import load_breast_cancer
 from sklearn.metrics import roc_auc_score
 
 from federation.protocol.documents import ConfusionTable, Release
-from federation.ranges import auc_range, subgroup_auc_ranges
+from federation.ranges import auc_range, auc_ranges, subgroup_auc_ranges
 from federation.stats import auc_bounds as bounds_module
 from federation.stats.auc_bounds import auc_bounds
 
@@ -230,6 +230,7 @@ def test_a_release_gets_the_bounds_of_every_table_its_counts_and_rules_allow() -
         extra={"roc": roc},
     )
     found = auc_range(release)
+    assert auc_ranges(release) == {None: found}  # the whole release's and the levels' together: the same
     cells_pos = [_pieces(int(v), hidden_positive.get(j), n_pos) for j, v in enumerate(positive)]
     cells_neg = [_pieces(int(v), hidden_negative.get(j), n_neg) for j, v in enumerate(negative)]
     every = _every_auc(cells_pos, cells_neg, n_pos, n_neg, below_edge=(fn, tn))
@@ -313,6 +314,7 @@ def test_a_subgroup_level_gets_the_bounds_of_every_table_its_counts_and_rules_al
         for j, rule in hidden.items():
             assert (1 <= counts[j] < K) if rule == "small" else (counts[j] == 0 or counts[j] >= K)
     found = subgroup_auc_ranges(_subgroup_release([HIDDEN_IN_LEVEL, NONE_HIDDEN], (False, True)))
+    assert auc_ranges(_subgroup_release([HIDDEN_IN_LEVEL, NONE_HIDDEN], (False, True))) == found
     assert set(found) == {("texture", 0)}  # the second level shows its AUC
     n_pos, n_neg = int(positive.sum()), int(negative.sum())
     cells_pos = [_pieces(int(v), HIDDEN_IN_LEVEL["positive"].get(j), n_pos) for j, v in enumerate(positive)]
